@@ -1,0 +1,316 @@
+"""Pure data shaping for the dashboard: tables and chart frames from store query results.
+
+Nothing here imports streamlit or touches the store; every function takes and returns plain
+pandas / numpy objects so it can be tested on its own (``tests/test_dashboard_shaping.py``).
+
+Units: ``beta`` is the elasticity b = d log q / d log p (dimensionless); ``beta_lo`` /
+``beta_hi`` its confidence interval at the configured level; ``innovation`` the one-step-ahead
+residual on the log-quantity scale; timestamps are UTC.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+
+from dashboard.legend import STATUS_RANK, status_label
+
+DASH = "—"
+
+#: Sort choices offered on the overview page -> (columns, ascending flags).
+SORTS = {
+    "needs attention first": (["_rank", "open_alerts", "series"], [True, False, True]),
+    "series id": (["series"], [True]),
+    "elasticity, most negative first": (["elasticity", "series"], [True, True]),
+    "elasticity, least negative first": (["elasticity", "series"], [False, True]),
+    "widest interval first": (["_width", "series"], [False, True]),
+    "most open alerts first": (["open_alerts", "series"], [False, True]),
+    "oldest last observation first": (["last_observation", "series"], [True, True]),
+}
+
+
+def to_utc(values) -> pd.Series:
+    """Timestamps (ISO 8601 text, epoch seconds or datetimes) as a tz-aware UTC series."""
+    s = pd.Series(values)
+    if s.empty:
+        return pd.Series(pd.to_datetime(s, utc=True))
+    if pd.api.types.is_numeric_dtype(s):
+        return pd.to_datetime(s, unit="s", utc=True)
+    if pd.api.types.is_datetime64_any_dtype(s):
+        return pd.to_datetime(s, utc=True)
+    return pd.to_datetime(s, utc=True, format="ISO8601")
+
+
+def fmt_num(x, digits: int = 2) -> str:
+    """A number with ``digits`` decimals and a true minus sign; ``'—'`` when missing.
+
+    >>> fmt_num(-1.5), fmt_num(float('nan'))
+    ('−1.50', '—')
+    """
+    if x is None or (isinstance(x, float) and math.isnan(x)) or pd.isna(x):
+        return DASH
+    return f"{float(x):.{digits}f}".replace("-", "−")
+
+
+def fmt_pct(x, digits: int = 1) -> str:
+    """A fraction as a signed percentage, ``'—'`` when missing (``-0.646 -> '−64.6%'``)."""
+    if x is None or pd.isna(x):
+        return DASH
+    return f"{100.0 * float(x):+.{digits}f}%".replace("-", "−")
+
+
+def fmt_timedelta(td) -> str:
+    """A duration in the largest sensible unit: ``'3.5 days'``, ``'40 min'``; ``'—'`` if missing."""
+    if td is None or pd.isna(td):
+        return DASH
+    secs = pd.Timedelta(td).total_seconds()
+    if math.isinf(secs):
+        return "unbounded"
+    for unit, size in (("days", 86400.0), ("hours", 3600.0), ("min", 60.0)):
+        if abs(secs) >= size:
+            return f"{secs / size:.3g} {unit}"
+    return f"{secs:.3g} s"
+
+
+# ----------------------------------------------------------------------------- overview
+def sparkline_lists(spark: pd.DataFrame, value: str = "beta") -> dict[str, list[float]]:
+    """Long sparkline rows (series, ts, value) -> {series: [values in time order]}, NaN dropped."""
+    if spark is None or len(spark) == 0:
+        return {}
+    df = spark[["series", "ts", value]].dropna(subset=[value])
+    df = df.sort_values(["series", "ts"], kind="stable")
+    return {k: g.to_list() for k, g in df.groupby("series", sort=False)[value]}
+
+
+def overview_table(latest: pd.DataFrame, sparks: dict[str, list[float]] | None = None) -> pd.DataFrame:
+    """One display row per series from the store's latest estimates.
+
+    Columns: ``series``, ``status`` (symbol + words), ``elasticity``, ``lo``, ``hi`` (NaN while
+    warming up; the page shows ``'—'`` beside the status that explains it), ``trend`` (list of
+    recent elasticities for a sparkline), ``open_alerts``, ``last_observation`` (UTC),
+    ``n_obs``, ``n_eff``, and the helper columns ``status_code``, ``_rank``, ``_width``.
+    """
+    sparks = sparks or {}
+    out = pd.DataFrame({"series": latest["series"].astype(str).to_numpy()})
+    code = latest["status"].fillna("warming_up").astype(str).to_numpy()
+    out["status"] = [status_label(c) for c in code]
+    for src, dst in (("beta", "elasticity"), ("beta_lo", "lo"), ("beta_hi", "hi")):
+        out[dst] = pd.to_numeric(latest[src], errors="coerce").astype("float64").to_numpy()
+    out["trend"] = [sparks.get(s, []) for s in out["series"]]
+    if "open_alerts" in latest:
+        out["open_alerts"] = pd.to_numeric(latest["open_alerts"], errors="coerce"
+                                           ).fillna(0).astype("int64").to_numpy()
+    else:
+        out["open_alerts"] = 0
+    last_col = "last_obs_ts" if "last_obs_ts" in latest else "ts"
+    out["last_observation"] = to_utc(latest[last_col]).to_numpy()
+    out["n_obs"] = (pd.to_numeric(latest["n_obs"], errors="coerce").to_numpy()
+                    if "n_obs" in latest else np.nan)
+    out["n_eff"] = pd.to_numeric(latest["n_eff"], errors="coerce").astype("float64").to_numpy()
+    out["status_code"] = code
+    out["_rank"] = [STATUS_RANK.get(c, 9) for c in code]
+    out["_width"] = out["hi"] - out["lo"]
+    return out
+
+
+def filter_overview(table: pd.DataFrame, statuses=None, text: str = "",
+                    only_open_alerts: bool = False) -> pd.DataFrame:
+    """Rows whose status is in ``statuses`` (all when empty/None), whose series id contains
+    ``text`` (case-insensitive, literal, not a regex) and, if asked, with open alerts."""
+    mask = np.ones(len(table), dtype=bool)
+    if statuses:
+        mask &= table["status_code"].isin(list(statuses)).to_numpy()
+    text = (text or "").strip()
+    if text:
+        mask &= table["series"].str.contains(text, case=False, regex=False).to_numpy()
+    if only_open_alerts:
+        mask &= (table["open_alerts"] > 0).to_numpy()
+    return table.loc[mask]
+
+
+def sort_overview(table: pd.DataFrame, by: str) -> pd.DataFrame:
+    """Sort by one of :data:`SORTS`; missing elasticities always go last."""
+    if by not in SORTS:
+        raise ValueError(f"sort {by!r}: choose one of {sorted(SORTS)}")
+    cols, asc = SORTS[by]
+    return table.sort_values(cols, ascending=asc, na_position="last", kind="stable")
+
+
+# ----------------------------------------------------------------------------- history
+def band_frame(history: pd.DataFrame) -> pd.DataFrame:
+    """Elasticity with its band for drawing: ``ts`` (UTC), ``beta``, ``beta_lo``, ``beta_hi``,
+    ``status`` and ``drawable`` (all three finite; warming-up rows are kept but not drawn)."""
+    out = pd.DataFrame({"ts": to_utc(history["ts"]).to_numpy()})
+    for c in ("beta", "beta_lo", "beta_hi"):
+        out[c] = pd.to_numeric(history[c], errors="coerce").astype("float64").to_numpy()
+    out["status"] = history["status"].astype(str).to_numpy()
+    out["drawable"] = np.isfinite(out[["beta", "beta_lo", "beta_hi"]].to_numpy()).all(axis=1)
+    return out
+
+
+def downsample(df: pd.DataFrame, columns=("beta", "beta_lo", "beta_hi"), max_points: int = 1500,
+               keep=None) -> tuple[pd.DataFrame, int]:
+    """Thin a time-ordered frame for drawing, never hiding what matters.
+
+    The rows are cut into equal-count buckets; in each bucket the first row and the rows holding
+    the minimum and the maximum of every column in ``columns`` are kept, so every peak and
+    trough survives. Rows flagged by ``keep`` (a boolean array, e.g. alert times) are always
+    kept, as are the first and the last row.
+
+    Returns
+    -------
+    (frame, total)
+        The kept rows in their original order and the number of rows before thinning, so the
+        page can say "showing N of M points".
+    """
+    n = len(df)
+    if n <= max_points:
+        return df, n
+    cols = [c for c in columns if c in df]
+    per_bucket = 2 * len(cols) + 1
+    nb = max(1, max_points // per_bucket)
+    bucket = (np.arange(n, dtype=np.int64) * nb) // n
+    mask = np.zeros(n, dtype=bool)
+    mask[0] = mask[-1] = True
+    starts = np.r_[True, bucket[1:] != bucket[:-1]]
+    mask |= starts
+    for c in cols:
+        v = df[c].to_numpy(dtype="float64", na_value=np.nan)
+        idx = np.flatnonzero(np.isfinite(v))
+        if idx.size == 0:
+            continue
+        order = idx[np.lexsort((v[idx], bucket[idx]))]
+        bb = bucket[order]
+        edge = bb[1:] != bb[:-1]
+        mask[order[np.r_[True, edge]]] = True   # bucket minimum
+        mask[order[np.r_[edge, True]]] = True   # bucket maximum
+    if keep is not None:
+        mask |= np.asarray(keep, dtype=bool)
+    return df.loc[mask], n
+
+
+def nearest_keep_mask(ts: pd.Series, marks) -> np.ndarray:
+    """Boolean mask of the rows of ``ts`` nearest (at or before) each time in ``marks``."""
+    t = to_utc(ts).to_numpy()
+    keep = np.zeros(len(t), dtype=bool)
+    if len(t) == 0 or marks is None or len(marks) == 0:
+        return keep
+    m = to_utc(pd.Series(list(marks))).to_numpy()
+    pos = np.clip(np.searchsorted(t, m, side="right") - 1, 0, len(t) - 1)
+    keep[pos] = True
+    return keep
+
+
+def residual_frame(history: pd.DataFrame) -> pd.DataFrame:
+    """One-step-ahead residuals (log scale) with a ±2 residual-SD guide, finite rows only.
+
+    A residual r means the actual quantity was exp(r) times the one-step forecast.
+    """
+    out = pd.DataFrame({"ts": to_utc(history["ts"]).to_numpy()})
+    out["residual"] = pd.to_numeric(history.get("innovation"), errors="coerce").astype("float64").to_numpy()
+    sd = pd.to_numeric(history.get("resid_sd"), errors="coerce").astype("float64").to_numpy()
+    out["upper"], out["lower"] = 2.0 * sd, -2.0 * sd
+    out["z"] = pd.to_numeric(history.get("z"), errors="coerce").astype("float64").to_numpy()
+    return out.loc[np.isfinite(out["residual"].to_numpy())]
+
+
+def effective_window(forgetting: float, ts=None) -> dict:
+    """Effective memory of exponential forgetting with factor λ.
+
+    ``n_obs = (1 + λ) / (1 - λ)``: Kish's effective sample size (Σw)² / Σw² of the weights
+    w_k = λ^k summed to infinity (infinite for λ = 1, no forgetting). ``spacing`` is the median
+    gap between observations and ``time = n_obs * spacing``.
+    """
+    lam = float(forgetting)
+    if not (0.0 < lam <= 1.0):
+        raise ValueError(f"forgetting = {forgetting!r}: must be in (0, 1]")
+    n_obs = math.inf if lam == 1.0 else (1.0 + lam) / (1.0 - lam)
+    spacing = pd.NaT
+    if ts is not None and len(ts) > 1:
+        d = to_utc(ts).sort_values().diff().dropna()
+        if len(d):
+            spacing = d.median()
+    if pd.isna(spacing):
+        time = pd.NaT
+    elif math.isinf(n_obs):
+        time = pd.Timedelta.max
+    else:
+        time = spacing * n_obs
+    return {"forgetting": lam, "n_obs": n_obs, "spacing": spacing, "time": time}
+
+
+def price_change_effect(p1: float, p2: float, beta: float, beta_lo: float, beta_hi: float) -> dict:
+    """Exact relative change in quantity for a price move p1 -> p2 under elasticity b.
+
+    ``change = (p2 / p1) ** b - 1``; since r**b is monotone in b for fixed r > 0, the interval
+    is the range of ``r ** beta_lo - 1`` and ``r ** beta_hi - 1``. NaN elasticity gives NaN
+    results (the page shows the status that explains it).
+
+    >>> round(price_change_effect(10.0, 20.0, -1.5, -1.5, -1.5)["change"], 4)
+    -0.6464
+    """
+    for name, p in (("current price", p1), ("new price", p2)):
+        if not (isinstance(p, (int, float)) and math.isfinite(p) and p > 0):
+            raise ValueError(f"{name} = {p!r}: must be a finite number > 0")
+    r = float(p2) / float(p1)
+    ch = r ** beta - 1.0 if math.isfinite(beta) else math.nan
+    a = r ** beta_lo - 1.0 if math.isfinite(beta_lo) else math.nan
+    b = r ** beta_hi - 1.0 if math.isfinite(beta_hi) else math.nan
+    lo, hi = (min(a, b), max(a, b)) if math.isfinite(a) and math.isfinite(b) else (math.nan, math.nan)
+    return {"ratio": r, "price_change": r - 1.0, "change": ch, "change_lo": lo, "change_hi": hi}
+
+
+# ----------------------------------------------------------------------------- alerts
+def alert_markers(alerts: pd.DataFrame, band: pd.DataFrame) -> pd.DataFrame:
+    """Alert markers for the elasticity chart: ``ts`` (when the alert opened), ``beta`` (the
+    alert's own elasticity, else the estimate at or before that time), ``kind``, ``state``."""
+    cols = ["ts", "beta", "kind", "state"]
+    if alerts is None or len(alerts) == 0:
+        return pd.DataFrame(columns=cols)
+    ts_col = "opened_ts" if "opened_ts" in alerts else "ts"
+    m = pd.DataFrame({"ts": to_utc(alerts[ts_col]).to_numpy(),
+                      "beta": pd.to_numeric(alerts.get("beta"), errors="coerce")
+                      .astype("float64").to_numpy(),
+                      "kind": alerts["kind"].astype(str).to_numpy(),
+                      "state": (alerts["state"].astype(str).to_numpy() if "state" in alerts
+                                else "open")})
+    m = m.loc[m["ts"].notna()].sort_values("ts", kind="stable")
+    drawn = band.loc[band["drawable"], ["ts", "beta"]].sort_values("ts", kind="stable")
+    if len(drawn) and m["beta"].isna().any():
+        near = pd.merge_asof(m[["ts"]], drawn.rename(columns={"beta": "_near"}), on="ts",
+                             direction="nearest")
+        m["beta"] = m["beta"].fillna(pd.Series(near["_near"].to_numpy(), index=m.index))
+    return m.loc[m["beta"].notna(), cols].reset_index(drop=True)
+
+
+def series_truth(truth: pd.DataFrame | None, series: str) -> pd.DataFrame:
+    """Known change points of one series (``ts``, ``kind``), time-ordered."""
+    if truth is None or len(truth) == 0:
+        return pd.DataFrame(columns=["ts", "kind"])
+    t = truth.loc[truth["series"].astype(str) == str(series), ["ts", "kind"]]
+    return t.assign(ts=to_utc(t["ts"]).to_numpy()).sort_values("ts").reset_index(drop=True)
+
+
+def filter_alerts(alerts: pd.DataFrame, states=None, kinds=None, text: str = "") -> pd.DataFrame:
+    """Alerts whose state and kind are among those chosen (all when empty) and whose series id
+    contains ``text`` (case-insensitive, literal)."""
+    mask = np.ones(len(alerts), dtype=bool)
+    if states:
+        mask &= alerts["state"].isin(list(states)).to_numpy()
+    if kinds:
+        mask &= alerts["kind"].isin(list(kinds)).to_numpy()
+    text = (text or "").strip()
+    if text:
+        mask &= alerts["series"].astype(str).str.contains(text, case=False, regex=False).to_numpy()
+    return alerts.loc[mask]
+
+
+def latest_per_series(estimates: pd.DataFrame) -> pd.DataFrame:
+    """The last row of every series in a time-ordered estimates table (replay output)."""
+    if estimates is None or len(estimates) == 0:
+        return pd.DataFrame(columns=list(getattr(estimates, "columns", [])))
+    order = estimates.assign(_t=to_utc(estimates["ts"]).to_numpy()).sort_values(
+        ["series", "_t"], kind="stable")
+    return order.groupby("series", sort=True).tail(1).drop(columns="_t").reset_index(drop=True)
