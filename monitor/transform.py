@@ -9,7 +9,7 @@ layer applies the configured zero policy (see :mod:`monitor.validate`).
 >>> parameter_names(specs)
 ['intercept', 'elasticity', 'promo', 'log_temperature']
 >>> row = design_row({"price": 10.0, "promo": 1.0, "temperature": 20.0}, specs)
->>> [round(v, 4) for v in row]
+>>> [round(float(v), 4) for v in row]
 [1.0, 2.3026, 1.0, 2.9957]
 """
 

@@ -22,10 +22,12 @@ least-squares sandwich; with forgetting, ``sigma^2 P`` alone overstates the vari
 ``n_eff - k`` degrees of freedom.
 
 Excitation guard: the exponentially weighted sd of log price (same ``lam``) is tracked; while it
-is below ``min_price_sd`` the status is ``low_variation`` and, if the guard is on, forgetting is
-paused (``lam`` is replaced by 1 in the step), so the covariance cannot wind up as ``lam^-n``
-along the unexcited direction while no new information arrives. Observations are then forgotten
-only as fast as informative ones replace them. This is the "conditional updating" remedy for
+is below ``min_price_sd`` the status is ``low_variation``. With flat prices the covariance winds
+up as ``lam^-n`` along the unexcited direction and the first price change afterwards throws b
+around. The guard tracks the same sd over a short window (``guard_lam``, default 0.8, about 9
+observations) and, while that is below ``min_price_sd``, pauses forgetting (``lam`` is replaced by
+1 in the step): observations are then forgotten only as fast as informative ones replace them,
+and P stops growing within a few observations of the prices going flat. This is the "conditional updating" remedy for
 estimator windup (Astrom & Wittenmark 1995, Adaptive Control, sec. 11.x; from memory).
 """
 
@@ -37,8 +39,9 @@ from numba import njit
 from monitor.estimators.tquantile import t_lookup
 
 # layout of the scalar part of a state vector
-I_W, I_W2, I_V, I_N, I_LPW, I_LPMEAN, I_LPM2, I_E, I_ZSD, I_Z, I_PAUSED, I_NPAUSED = range(12)
-NS = 12
+(I_W, I_W2, I_V, I_N, I_LPW, I_LPMEAN, I_LPM2, I_E, I_ZSD, I_Z, I_PAUSED, I_NPAUSED,
+ I_GW, I_GMEAN, I_GM2) = range(15)
+NS = 15
 
 # columns of the per-observation output row
 O_BETA, O_SE, O_LO, O_HI, O_NEFF, O_STATUS, O_E, O_Z, O_INTERCEPT, O_RESID_SD = range(10)
@@ -63,30 +66,47 @@ def init_state(prior_mean: np.ndarray, prior_var: np.ndarray) -> np.ndarray:
 
 
 @njit(cache=True, inline="always")
-def step_general(st, x, y, k, lam, guard, min_price_sd, min_neff, tq, out, u):
+def ew_variance(st, i, v, lam):
+    """Exponentially weighted mean and variance of ``v`` in slots i, i+1, i+2 (West 1979)."""
+    w = lam * st[i] + 1.0
+    d = v - st[i + 1]
+    mean = st[i + 1] + d / w
+    m2 = lam * st[i + 2] + d * (v - mean)
+    if m2 < 0.0:
+        m2 = 0.0
+    st[i] = w
+    st[i + 1] = mean
+    st[i + 2] = m2
+    return m2 / w
+
+
+@njit(cache=True, inline="always")
+def excitation(st, lp, lam, guard, guard_lam, min_price_sd):
+    """Update both price-variation statistics; return (low_variation, lambda for this step).
+
+    ``low_variation``: the EW sd of log price over the estimator's own window (``lam``) is below
+    ``min_price_sd``. The guard pauses forgetting when the sd over a short window
+    (``guard_lam``, about (1 + g) / (1 - g) observations) is below it, so a flat stretch is
+    caught within a few observations and P grows by at most a few factors of 1/lam.
+    """
+    thr = min_price_sd * min_price_sd
+    lowvar = ew_variance(st, I_LPW, lp, lam) < thr
+    fast_low = ew_variance(st, I_GW, lp, guard_lam) < thr
+    if guard and fast_low:
+        st[I_NPAUSED] += 1.0
+        st[I_PAUSED] = 1.0
+        return lowvar, 1.0
+    st[I_PAUSED] = 0.0
+    return lowvar, lam
+
+
+@njit(cache=True, inline="always")
+def step_general(st, x, y, k, lam, guard, guard_lam, min_price_sd, min_neff, tq, out, u):
     """The update for any k (controls present); see the module docstring for the formulas."""
     th = NS
     p0 = NS + k
     s0 = NS + k + k * k
-    # excitation statistic: exponentially weighted mean and variance of log price (West 1979)
-    lp = x[1]
-    lw = lam * st[I_LPW] + 1.0
-    dlp = lp - st[I_LPMEAN]
-    mean = st[I_LPMEAN] + dlp / lw
-    m2 = lam * st[I_LPM2] + dlp * (lp - mean)
-    if m2 < 0.0:
-        m2 = 0.0
-    st[I_LPW] = lw
-    st[I_LPMEAN] = mean
-    st[I_LPM2] = m2
-    lowvar = m2 < min_price_sd * min_price_sd * lw
-    lt = lam
-    if guard and lowvar:
-        lt = 1.0
-        st[I_NPAUSED] += 1.0
-        st[I_PAUSED] = 1.0
-    else:
-        st[I_PAUSED] = 0.0
+    lowvar, lt = excitation(st, x[1], lam, guard, guard_lam, min_price_sd)
 
     # prediction from the previous state
     yhat = 0.0
@@ -181,28 +201,12 @@ def step_general(st, x, y, k, lam, guard, min_price_sd, min_neff, tq, out, u):
 
 
 @njit(cache=True, inline="always")
-def step_two(st, x1, y, lam, guard, min_price_sd, min_neff, tq, out):
+def step_two(st, x1, y, lam, guard, guard_lam, min_price_sd, min_neff, tq, out):
     """The same update written out for k = 2 (intercept and log price), about 4x faster.
 
     Equal to :func:`step_general` to rounding (tests/test_estimator_kernel.py checks 1e-9).
     """
-    lw = lam * st[I_LPW] + 1.0
-    dlp = x1 - st[I_LPMEAN]
-    mean = st[I_LPMEAN] + dlp / lw
-    m2 = lam * st[I_LPM2] + dlp * (x1 - mean)
-    if m2 < 0.0:
-        m2 = 0.0
-    st[I_LPW] = lw
-    st[I_LPMEAN] = mean
-    st[I_LPM2] = m2
-    lowvar = m2 < min_price_sd * min_price_sd * lw
-    lt = lam
-    if guard and lowvar:
-        lt = 1.0
-        st[I_NPAUSED] += 1.0
-        st[I_PAUSED] = 1.0
-    else:
-        st[I_PAUSED] = 0.0
+    lowvar, lt = excitation(st, x1, lam, guard, guard_lam, min_price_sd)
     a = st[NS]
     b = st[NS + 1]
     p00 = st[NS + 2]
@@ -288,20 +292,20 @@ def step_two(st, x1, y, lam, guard, min_price_sd, min_neff, tq, out):
 
 
 @njit(cache=True, inline="always")
-def rls_step(st, x, y, k, lam, guard, min_price_sd, min_neff, tq, out, u):
+def rls_step(st, x, y, k, lam, guard, guard_lam, min_price_sd, min_neff, tq, out, u):
     """One update of one series' state ``st`` in place; writes the output row ``out``.
 
     ``x`` is the design row, ``y = log q``; ``u`` is a scratch vector of length k (no
     allocation in the hot loop). Dispatches to the written-out k = 2 form when it applies.
     """
     if k == 2:
-        step_two(st, x[1], y, lam, guard, min_price_sd, min_neff, tq, out)
+        step_two(st, x[1], y, lam, guard, guard_lam, min_price_sd, min_neff, tq, out)
     else:
-        step_general(st, x, y, k, lam, guard, min_price_sd, min_neff, tq, out, u)
+        step_general(st, x, y, k, lam, guard, guard_lam, min_price_sd, min_neff, tq, out, u)
 
 
 @njit(cache=True)
-def rls_run(state, sid, X, y, lam, guard, min_price_sd, min_neff, tq, out):
+def rls_run(state, sid, X, y, lam, guard, guard_lam, min_price_sd, min_neff, tq, out):
     """Run :func:`rls_step` over rows in order; row j updates series ``sid[j]``.
 
     ``state`` is ``(n_series, state_size(k))``, updated in place; ``out`` is ``(n, NOUT)``.
@@ -310,4 +314,4 @@ def rls_run(state, sid, X, y, lam, guard, min_price_sd, min_neff, tq, out):
     k = X.shape[1]
     u = np.empty(k)
     for j in range(X.shape[0]):
-        rls_step(state[sid[j]], X[j], y[j], k, lam, guard, min_price_sd, min_neff, tq, out[j], u)
+        rls_step(state[sid[j]], X[j], y[j], k, lam, guard, guard_lam, min_price_sd, min_neff, tq, out[j], u)

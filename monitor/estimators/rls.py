@@ -77,15 +77,19 @@ class ElasticityRLS:
         Status is ``warming_up`` until n_eff reaches this (and at least k + 2).
     min_price_sd : float
         Status is ``low_variation`` while the exponentially weighted sd of log price is below this
-        (0.01: prices vary by less than about 1%).
+        (default 0.02: prices vary by less than about 2%)..
     excitation_guard : bool
-        Pause forgetting while ``low_variation`` holds, so the covariance cannot wind up.
+        Pause forgetting while prices are flat over a short window, so the covariance cannot wind
+        up (see :mod:`monitor.estimators.kernel`).
+    guard_forgetting : float in (0, 1)
+        Forgetting factor of the guard's short window (0.8: about 9 observations).
     """
 
     def __init__(self, forgetting: float = 0.99, controls: Sequence[str] = (),
                  log_controls: Sequence[str] = (), prior_mean: float = 0.0,
                  prior_sd: float = DEFAULT_PRIOR_SD, level: float = 0.95, min_n_eff: float = 10.0,
-                 min_price_sd: float = 0.01, excitation_guard: bool = True):
+                 min_price_sd: float = 0.02, excitation_guard: bool = True,
+                 guard_forgetting: float = 0.8):
         self.forgetting = _check_range("forgetting", forgetting, 0.0, 1.0, True, False)
         self.controls = tuple(controls)
         self.log_controls = tuple(log_controls)
@@ -95,6 +99,7 @@ class ElasticityRLS:
         self.min_n_eff = _check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
         self.min_price_sd = _check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
         self.excitation_guard = bool(excitation_guard)
+        self.guard_forgetting = _check_range("guard_forgetting", guard_forgetting, 0.0, 1.0, True, True)
         self._specs: tuple[ControlSpec, ...] = parse_controls(self.controls, self.log_controls)
         self._k = 2 + len(self._specs)
         self._state = K.init_state(*self.prior())
@@ -119,7 +124,8 @@ class ElasticityRLS:
     @property
     def kernel_args(self) -> tuple:
         """Arguments after the data in :func:`monitor.estimators.kernel.rls_run`."""
-        return (self.forgetting, self.excitation_guard, self.min_price_sd, self.min_n_eff, self._tq)
+        return (self.forgetting, self.excitation_guard, self.guard_forgetting, self.min_price_sd,
+                self.min_n_eff, self._tq)
 
     # ------------------------------------------------------------------ learning
     def learn_one(self, x: Mapping[str, object], y: float) -> "ElasticityRLS":
@@ -247,7 +253,8 @@ class ElasticityRLS:
         return {"forgetting": self.forgetting, "controls": list(self.controls),
                 "log_controls": list(self.log_controls), "prior_mean": self.prior_mean,
                 "prior_sd": self.prior_sd, "level": self.level, "min_n_eff": self.min_n_eff,
-                "min_price_sd": self.min_price_sd, "excitation_guard": self.excitation_guard}
+                "min_price_sd": self.min_price_sd, "excitation_guard": self.excitation_guard,
+                "guard_forgetting": self.guard_forgetting}
 
     @classmethod
     def from_state(cls, state: Mapping) -> "ElasticityRLS":
