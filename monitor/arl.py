@@ -20,10 +20,12 @@ Methods
 value by Nystrom's method with composite Gauss-Legendre quadrature (Crowder 1987 for EWMA;
 for CUSUM the probability atom of the statistic at zero is carried as its own unknown).
 The kernels are smooth, so the error falls geometrically with the number of nodes; panels two
-kernel standard deviations wide with 10 nodes each give about 10 significant digits (ARLs
-up to about 1e7; above about 1e12 the near-singular system costs digits, see below).
+kernel standard deviations wide with 10 nodes each give about 10 significant digits for ARLs
+up to about 1e7. Larger ARLs make the system nearly singular and cost digits: about 1e-8
+relative near 1e9, 1e-5 near 1e12 (compared with an extended-precision solve).
 ``method="markov"`` is the Markov-chain approximation (Brook & Evans 1972; Lucas & Saccucci
-1990), error O(width^2), with one Richardson extrapolation step. Both agree to about 1e-7.
+1990), error O(width^2), with one Richardson extrapolation step. The two agree to about 1e-7
+for ARLs below 1e6 and 1e-6 near 1e9.
 
 Two-sided CUSUM: ``1/ARL = 1/ARL+ + 1/ARL-`` (Van Dobben de Bruyn 1968; Lucas & Crosier
 1982). For two zero-start sides with k >= 0 it is exact: at a lower-side alarm the upper
@@ -104,12 +106,18 @@ def _shifts(shift) -> np.ndarray:
 
 
 def _finish(values: np.ndarray, shape: tuple):
-    values = np.where((values > ARL_CEILING) | ~(values >= 1.0), np.inf, values)
+    # a run lasts at least one observation; rounding can put a true 1 + tiny just below 1,
+    # while a solve beyond float64 resolution gives values far off (even negative)
+    values = np.where((values > ARL_CEILING) | ~(values >= 0.5), np.inf, np.maximum(values, 1.0))
     return float(values[0]) if shape == () else values.reshape(shape)
 
 
 # --------------------------------------------------------------------------- quadrature
 @lru_cache(maxsize=None)
+def _legendre() -> tuple[np.ndarray, np.ndarray]:
+    return leggauss(_ORDER)
+
+
 def _nodes(a: float, b: float, panels: int) -> tuple[np.ndarray, np.ndarray]:
     """Composite Gauss-Legendre nodes and weights on [a, b] (``panels`` x ``_ORDER`` nodes)."""
     if panels * _ORDER > MAX_NODES:
@@ -117,14 +125,10 @@ def _nodes(a: float, b: float, panels: int) -> tuple[np.ndarray, np.ndarray]:
             f"the ARL solve needs {panels * _ORDER} quadrature nodes (more than {MAX_NODES}): "
             "the decision interval is too wide relative to one step of the statistic; "
             "use a larger k (CUSUM) or lam (EWMA), or siegmund_arl for a CUSUM estimate")
-    x, w = leggauss(_ORDER)
+    x, w = _legendre()
     edges = np.linspace(a, b, panels + 1)
     half, mid = 0.5 * np.diff(edges), 0.5 * (edges[1:] + edges[:-1])
-    nodes = (mid[:, None] + half[:, None] * x).ravel()
-    weights = (half[:, None] * w).ravel()
-    nodes.setflags(write=False)
-    weights.setflags(write=False)
-    return nodes, weights
+    return (mid[:, None] + half[:, None] * x).ravel(), (half[:, None] * w).ravel()
 
 
 def _phi(x: np.ndarray) -> np.ndarray:
@@ -166,7 +170,7 @@ def _cusum_upper_markov_once(k: float, h: float, shift: float, m: int) -> float:
 
 
 def _cusum_upper_markov(k: float, h: float, shift: float, m: int | None) -> float:
-    m = m or max(200, 100 * math.ceil(h))
+    m = m or min(MAX_NODES, max(200, 50 * math.ceil(h)))
     if m > MAX_NODES:
         raise ConfigError(f"n_nodes = {m} is out of range: at most {MAX_NODES} chain states")
     m2 = max(2, m // 2)
@@ -206,7 +210,7 @@ def cusum_arl(k, h, shift=0.0, sides=2, method="integral", n_nodes=None):
         Integral equation with Gauss-Legendre quadrature, or Brook & Evans' Markov chain.
     n_nodes : int, optional
         Quadrature nodes (integral; default 5 per unit of h) or chain states (markov;
-        default 100 per unit of h, at least 200).
+        default 50 per unit of h, from 200 to 3000).
 
     Returns
     -------
@@ -288,7 +292,7 @@ def _ewma_markov_once(lam: float, c: float, shift: float, m: int) -> float:
 
 
 def _ewma_markov(lam: float, c: float, shift: float, m: int | None) -> float:
-    n = m or max(201, 20 * math.ceil(2.0 * c / lam) + 1)
+    n = m or min(MAX_NODES, max(201, 20 * math.ceil(2.0 * c / lam) + 1))
     if n > MAX_NODES:
         raise ConfigError(f"n_nodes = {n} is out of range: at most {MAX_NODES} chain states")
     m1, m2 = max(1, n // 4), max(2, n // 2)
@@ -341,7 +345,11 @@ def ewma_arl(lam, L, shift=0.0, method="integral", n_nodes=None):
 # --------------------------------------------------------------------------- inverse design
 def _solve_log(f, target: float, lo: float, hi: float, floor: float) -> float:
     """Root of ``log f(x) = log target``, f increasing; widen [lo, hi] until it brackets."""
-    g = lambda x: math.log(f(x)) - math.log(target)  # noqa: E731
+    def g(x):
+        value = f(x)  # beyond float64 resolution (huge, or garbage): treat as "too high"
+        ok = 0.0 < value <= ARL_CEILING
+        return math.log(value) - math.log(target) if ok else 50.0
+
     glo, ghi = g(lo), g(hi)
     for _ in range(60):
         if glo <= 0.0 <= ghi:
@@ -362,8 +370,11 @@ def _cusum_h_cached(k: float, arl0: float, sides: int) -> float:
     # start from Siegmund's approximation, which is within a few percent in control
     def sieg(h):
         return float(siegmund_arl(k, h, 0.0, sides))
-    guess = brentq(lambda h: math.log(sieg(h)) - math.log(arl0), 1e-9, 1e4) if sieg(1e-9) < arl0 \
-        else 0.1
+    if sieg(1e4) < arl0:  # only near k = 0; the exact solve would need > MAX_NODES nodes
+        raise ConfigError(f"arl0 = {arl0:g} is out of range for k = {k:g}: it needs h > 1e4; "
+                          "use a larger k")
+    guess = 0.1 if sieg(1e-9) >= arl0 else \
+        brentq(lambda h: math.log(sieg(h)) - math.log(arl0), 1e-9, 1e4)
     def exact(h):
         return _cusum_raw(k, h, 0.0, sides, "integral", None)
     return _solve_log(exact, arl0, max(1e-9, 0.95 * guess - 0.1), 1.05 * guess + 0.1, 1e-9)
@@ -373,7 +384,8 @@ def cusum_h_for_arl0(k, arl0, sides=2) -> float:
     """Decision interval h giving in-control ARL ``arl0`` (exact integral method, cached).
 
     Root of ``log cusum_arl(k, h) = log arl0`` by Brent's method, bracketed from Siegmund's
-    approximation; h is returned to about 1e-10.
+    approximation: the ARL at the returned h equals ``arl0`` to about 1e-10 relative for
+    arl0 up to 1e6 (1e-5 at 1e12). An uncached call takes a few milliseconds for k >= 0.25.
 
     Examples
     --------
@@ -399,6 +411,10 @@ def _ewma_L_cached(lam: float, arl0: float) -> float:
 
 def ewma_L_for_arl0(lam, arl0) -> float:
     """Limit width L giving in-control ARL ``arl0`` for the EWMA chart (cached).
+
+    Root of ``log ewma_arl(lam, L) = log arl0`` by Brent's method, bracketed below the
+    Shewhart (lam = 1) limit; accuracy as :func:`cusum_h_for_arl0`. An uncached call takes a
+    few milliseconds for lam >= 0.05 (about 30 ms at lam = 0.01, arl0 = 1e6).
 
     Examples
     --------

@@ -245,7 +245,7 @@ def design_threshold_by_simulation(
         if not np.all(np.isfinite(chunk)):
             i, t = np.argwhere(~np.isfinite(chunk))[0]
             raise ConfigError(f"simulate_paths chunk {number}, path {i}, step {t}: value "
-                              f"{chunk[i, t]!r} is not finite")
+                              f"{float(chunk[i, t])!r} is not finite")
         chunk = chunk[:, : max_len - steps]
         run_max = np.maximum(np.maximum.accumulate(chunk, axis=1), running[:, None])
         running = run_max[:, -1]
