@@ -138,6 +138,19 @@ def sort_overview(table: pd.DataFrame, by: str) -> pd.DataFrame:
     return table.sort_values(cols, ascending=asc, na_position="last", kind="stable")
 
 
+def alert_counts(summary: dict) -> dict:
+    """From :func:`monitor.store.store_summary`: ``{'open', 'acknowledged', 'active', 'by_kind'}``
+    where ``active`` = open + acknowledged (not yet resolved) and ``by_kind`` maps each kind
+    with an active alert to its active count, largest first."""
+    states = summary.get("alerts_by_state") or {}
+    kinds = summary.get("alerts_by_kind") or {}
+    by_kind = {k: int(v.get("open", 0)) + int(v.get("acknowledged", 0)) for k, v in kinds.items()}
+    by_kind = dict(sorted(((k, v) for k, v in by_kind.items() if v > 0),
+                          key=lambda kv: (-kv[1], kv[0])))
+    o, a = int(states.get("open", 0)), int(states.get("acknowledged", 0))
+    return {"open": o, "acknowledged": a, "active": o + a, "by_kind": by_kind}
+
+
 # ----------------------------------------------------------------------------- history
 def band_frame(history: pd.DataFrame) -> pd.DataFrame:
     """Elasticity with its band for drawing: ``ts`` (UTC), ``beta``, ``beta_lo``, ``beta_hi``,

@@ -1,0 +1,74 @@
+"""Small streamlit pieces shared by the pages: sidebar controls, the caution line, the store
+path, the truth file and the live-refresh interval."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+import streamlit as st
+
+from dashboard import data, files
+from dashboard.legend import CAUTION
+
+#: Refresh intervals offered in the sidebar (seconds).
+REFRESH_CHOICES = (2, 5, 10, 30, 60, 300)
+DEFAULT_REFRESH = 10
+
+
+def sidebar() -> None:
+    """Live-refresh interval and pause toggle, a refresh button, and where the data comes from."""
+    s = data.app_settings()
+    with st.sidebar:
+        st.subheader("Live refresh")
+        st.select_slider("Refresh every (seconds)", options=list(REFRESH_CHOICES),
+                         value=DEFAULT_REFRESH, key="refresh_seconds",
+                         help="How often the numbers on the page are re-read from the store.")
+        st.toggle("Pause live refresh", value=False, key="refresh_paused")
+        if st.button("Refresh now", key="refresh_now"):
+            data.clear_queries()
+        st.caption(f"Store: `{s['db'] or 'none given'}`")
+        if s["truth"]:
+            st.caption(f"Known change points: `{s['truth']}`")
+
+
+def run_every() -> float | None:
+    """Seconds between fragment reruns, or ``None`` while paused."""
+    if st.session_state.get("refresh_paused", False):
+        return None
+    return float(st.session_state.get("refresh_seconds", DEFAULT_REFRESH))
+
+
+def caution() -> None:
+    """The caution line shown at the top of every page."""
+    st.info(CAUTION, icon=":material/balance:")
+
+
+def require_db() -> str:
+    """The store path, or an explanation and a stop when none was given or it does not exist."""
+    db = data.app_settings()["db"]
+    if not db:
+        st.error("No store given. Start the dashboard with `elmon dashboard --db PATH`.")
+        st.stop()
+    if not Path(db).is_file():
+        st.error(f"Store `{db}` not found. Create it with the service or `elmon demo`, "
+                 "then start the dashboard with `elmon dashboard --db PATH`.")
+        st.stop()
+    return db
+
+
+@st.cache_data(ttl=60, show_spinner=False)
+def _truth(path: str, mtime: float) -> tuple[pd.DataFrame, pd.DataFrame]:
+    return files.load_truth(path)
+
+
+def truth() -> tuple[pd.DataFrame | None, pd.DataFrame | None, str | None]:
+    """``(known change points, rejected rows, error message)`` from the ``--truth`` file."""
+    path = data.app_settings()["truth"]
+    if not path:
+        return None, None, None
+    try:
+        good, bad = _truth(path, Path(path).stat().st_mtime if Path(path).exists() else 0.0)
+    except (OSError, ValueError, files.SourceError) as exc:
+        return None, None, str(exc)
+    return good, bad, None

@@ -1,0 +1,101 @@
+"""Alerts page: open, acknowledged and resolved alerts with filters; acknowledge or resolve one
+with a note (through the store functions the CLI uses); the event history of an alert."""
+
+from __future__ import annotations
+
+import pandas as pd
+import streamlit as st
+
+from dashboard import data, shaping, ui
+from dashboard.legend import ALERT_SHAPES, STATE_SYMBOLS
+from monitor.errors import ElmonError
+
+STATES = ("open", "acknowledged", "resolved")
+TABLE_COLUMNS = ["id", "series", "kind", "state", "severity", "opened_ts", "beta", "beta_lo",
+                 "beta_hi", "message"]
+
+
+def _table(view: pd.DataFrame) -> pd.DataFrame:
+    t = view.reindex(columns=TABLE_COLUMNS).copy()
+    t["state"] = [STATE_SYMBOLS.get(s, s) for s in t["state"].astype(str)]
+    t["kind"] = t["kind"].astype(str).str.replace("_", " ")
+    t["opened_ts"] = shaping.to_utc(t["opened_ts"]).to_numpy()
+    return t
+
+
+def _column_config() -> dict:
+    cc = st.column_config
+    return {"id": cc.NumberColumn("alert", format="%d"),
+            "opened_ts": cc.DatetimeColumn("opened (data time, UTC)", format="YYYY-MM-DD HH:mm",
+                                           timezone="UTC"),
+            "beta": cc.NumberColumn("elasticity b", format="%.2f"),
+            "beta_lo": cc.NumberColumn("interval low", format="%.2f"),
+            "beta_hi": cc.NumberColumn("interval high", format="%.2f")}
+
+
+def _detail(db: str, alert_id: int) -> None:
+    a = data.alert(db, alert_id)
+    st.subheader(f"Alert {alert_id}: {a['series']} · {str(a['kind']).replace('_', ' ')}")
+    cols = st.columns(4)
+    cols[0].metric("State", STATE_SYMBOLS.get(a["state"], a["state"]))
+    cols[1].metric("Severity", str(a.get("severity", "—")))
+    cols[2].metric("Elasticity b", shaping.fmt_num(a.get("beta")))
+    cols[3].metric("Interval", f"[{shaping.fmt_num(a.get('beta_lo'))}, "
+                               f"{shaping.fmt_num(a.get('beta_hi'))}]")
+    st.write(a.get("message", ""))
+    st.page_link("views/series.py", label=f"Open series detail: {a['series']}",
+                 icon=":material/show_chart:", query_params={"series": str(a["series"])})
+    st.markdown("**Event history**")
+    ev = data.events(db, alert_id)
+    st.dataframe(ev, hide_index=True, placeholder="—", key="al_events")
+
+    note = st.text_area("Note", key="al_note", placeholder="what was checked, what was decided")
+    who = st.text_input("Your name", key="al_who")
+    c1, c2 = st.columns(2)
+    ack = c1.button("Acknowledge", key="al_ack", disabled=a["state"] != "open",
+                    help="Mark as seen; it stays active until resolved.")
+    res = c2.button("Resolve", key="al_resolve", disabled=a["state"] == "resolved")
+    if ack or res:
+        action = "acknowledge" if ack else "resolve"
+        try:
+            data.change_alert(db, alert_id, action, note, who)
+        except (ElmonError, ValueError) as exc:
+            st.error(f"Could not {action} alert {alert_id}: {exc}")
+        else:
+            st.session_state["al_flash"] = f"Alert {alert_id}: {action}d."
+            st.rerun()
+
+
+def render() -> None:
+    db = ui.require_db()
+    st.title("Alerts")
+    if st.session_state.get("al_flash"):
+        st.success(st.session_state.pop("al_flash"))
+    c1, c2, c3 = st.columns([2, 3, 3])
+    states = c1.multiselect("State", STATES, default=["open", "acknowledged"], key="al_states",
+                            placeholder="all states")
+    kinds = c2.multiselect("Kind", list(ALERT_SHAPES), key="al_kinds",
+                           format_func=lambda k: ALERT_SHAPES[k][1], placeholder="all kinds")
+    text = c3.text_input("Search series id", key="al_search")
+
+    everything = data.alerts(db)
+    view = shaping.filter_alerts(everything, states, kinds, text)
+    counts = everything["state"].value_counts() if len(everything) else pd.Series(dtype=int)
+    st.caption(f"{len(view):,} of {len(everything):,} alerts shown · "
+               + " · ".join(f"{STATE_SYMBOLS[s]} {int(counts.get(s, 0)):,}" for s in STATES))
+    if not len(view):
+        st.info("No alerts match these filters.")
+        return
+    st.dataframe(_table(view), column_config=_column_config(), hide_index=True,
+                 placeholder="—", key="al_table", height=360)
+    ids = [int(i) for i in view["id"]]
+    labels = {int(r.id): f"#{int(r.id)} · {r.series} · {str(r.kind).replace('_', ' ')} · {r.state}"
+              for r in view.itertuples()}
+    wanted = st.session_state.get("al_selected")
+    chosen = st.selectbox("Alert", ids, index=ids.index(wanted) if wanted in ids else 0,
+                          format_func=labels.get, key="al_pick")
+    st.session_state["al_selected"] = chosen
+    _detail(db, chosen)
+
+
+render()

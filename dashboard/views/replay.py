@@ -1,0 +1,140 @@
+"""Replay page: pick a replay output folder (or run a replay of a log) and see its estimates,
+alerts, rejects and, where a truth file was used, detection delay and false alarms."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import pandas as pd
+import streamlit as st
+
+from dashboard import charts, data, files, shaping
+from monitor.errors import ElmonError
+
+MAX_DRAWN = 1500
+NONE = "(none)"
+
+
+@st.cache_data(ttl=30, show_spinner=False)
+def _load(folder: str, stamp: float) -> dict:
+    return files.load_replay(folder)
+
+
+def _roots() -> list[str]:
+    roots = [os.getcwd()]
+    db = data.app_settings()["db"]
+    if db:
+        roots.insert(0, str(Path(db).resolve().parent))
+    return roots
+
+
+def _stamp(folder: str) -> float:
+    p = Path(folder) / "estimates.csv"
+    return p.stat().st_mtime if p.is_file() else 0.0
+
+
+def _run_form() -> None:
+    with st.expander("Run a replay of a log"):
+        log = st.text_input("Observation log (CSV or Parquet)", key="rp_log")
+        out = st.text_input("Output folder", key="rp_out")
+        lam = st.number_input("Forgetting factor", min_value=0.5, max_value=1.0, value=0.99,
+                              step=0.001, format="%.3f", key="rp_lambda")
+        if st.button("Run replay", key="rp_run", disabled=not (log and out)):
+            try:
+                from monitor.replay import run_replay
+            except ImportError as exc:
+                st.error(f"Replay is not available in this installation: {exc}")
+                return
+            try:
+                with st.spinner("Replaying…"):
+                    run_replay(log, out, forgetting=float(lam))
+            except (ElmonError, OSError, ValueError, TypeError) as exc:
+                st.error(f"Replay failed: {exc}")
+            else:
+                st.session_state["rp_ran"] = out
+                st.rerun()
+
+
+def _detection(rep: dict) -> None:
+    det = rep["detection"]
+    summ = rep["summary"]
+    if det is None:
+        st.info("No detection.csv: this replay ran without a truth file of known change points.")
+        return
+    st.subheader("Detection against known change points")
+    table = files.detection_summary(det)
+    st.dataframe(table, hide_index=True, placeholder="—", key="rp_det_summary",
+                 column_config={"detection_rate": st.column_config.NumberColumn(
+                     "detection rate", format="percent")})
+    fa = summ.get("false_alarms")
+    if isinstance(fa, dict):
+        st.caption("False alarms (alerts not explained by a known change point): "
+                   + " · ".join(f"{k}: {v}" for k, v in fa.items()))
+    elif fa is not None:
+        st.metric("False alarms", f"{fa}")
+    st.markdown("**Per change point**")
+    st.dataframe(det, hide_index=True, placeholder="—", key="rp_det")
+
+
+def render() -> None:
+    st.title("Replay")
+    found = sorted({f for r in _roots() for f in files.find_replay_folders(r)})
+    c1, c2 = st.columns(2)
+    picked = c1.selectbox("Replay output found near the store", [NONE] + found, key="rp_found",
+                          index=1 if found else 0)
+    typed = c2.text_input("…or type a replay output folder", key="rp_folder_text")
+    _run_form()
+    folder = (typed.strip() or st.session_state.get("rp_ran")
+              or (picked if picked != NONE else ""))
+    if not folder:
+        st.info("Pick or type a folder written by `elmon replay LOG --out DIR`.")
+        return
+    try:
+        rep = _load(folder, _stamp(folder))
+    except ElmonError as exc:
+        st.error(str(exc))
+        return
+    if rep["missing"]:
+        st.warning("Missing from this folder: " + ", ".join(rep["missing"]))
+    est, alerts, rejects = rep["estimates"], rep["alerts"], rep["rejects"]
+    cols = st.columns(4)
+    cols[0].metric("Series", f"{est['series'].nunique() if len(est) else 0:,}")
+    cols[1].metric("Estimates", f"{len(est):,}")
+    cols[2].metric("Alerts", f"{len(alerts):,}")
+    cols[3].metric("Rejected rows", f"{len(rejects):,}")
+    _detection(rep)
+
+    st.subheader("Final estimate per series")
+    final = shaping.latest_per_series(est)
+    st.dataframe(final, hide_index=True, placeholder="—", key="rp_final")
+    if len(est):
+        ids = sorted(est["series"].astype(str).unique())
+        s = st.selectbox("Series to draw", ids, key="rp_series")
+        part = est.loc[est["series"].astype(str) == s]
+        band = shaping.band_frame(part)
+        drawn = band.loc[band["drawable"]]
+        al = alerts.loc[alerts["series"].astype(str) == s] if len(alerts) else alerts
+        if len(al):
+            al = al.rename(columns={"rule": "kind"}) if "kind" not in al else al
+        markers = shaping.alert_markers(al, band)
+        thin, total = shaping.downsample(
+            drawn, max_points=MAX_DRAWN, keep=shaping.nearest_keep_mask(drawn["ts"], markers["ts"]))
+        st.altair_chart(charts.elasticity_chart(thin, alerts=markers,
+                                                title=f"Replay: elasticity of {s}"),
+                        width="stretch")
+        st.caption(f"Showing {len(thin):,} of {total:,} points"
+                   + (f"; {len(band) - len(drawn):,} without a value (warming up) not drawn"
+                      if len(band) > len(drawn) else "") + ".")
+    st.subheader("Alerts")
+    st.dataframe(alerts, hide_index=True, placeholder="—", key="rp_alerts")
+    st.subheader("Rejected rows")
+    if len(rejects):
+        st.dataframe(rejects, hide_index=True, placeholder="—", key="rp_rejects")
+    else:
+        st.caption("None.")
+    with st.expander("Settings and counts (summary.json)"):
+        st.json(rep["summary"])
+
+
+render()

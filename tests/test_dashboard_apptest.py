@@ -1,0 +1,223 @@
+"""AppTest (streamlit.testing.v1) of every dashboard page on stores seeded through the store API.
+
+Charts come back from AppTest as elements of type ``vega_lite_chart`` whose Vega-Lite spec is
+JSON in ``proto.spec``; the fragment's refresh timer never fires under AppTest, so each test
+re-runs explicitly.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import time
+from pathlib import Path
+
+import pytest
+import streamlit as st
+from streamlit.testing.v1 import AppTest
+
+import dashboard_fixtures as fx
+from monitor import store as mstore
+
+APP = Path(__file__).resolve().parents[1] / "dashboard" / "app.py"
+
+
+@pytest.fixture(scope="module")
+def seeded(tmp_path_factory):
+    d = tmp_path_factory.mktemp("dash")
+    facts = fx.seed_store(d / "store.sqlite", long_obs=5000)
+    facts["truth"] = str(fx.write_truth(d / "truth.csv", facts))
+    facts["replay"] = str(fx.write_replay_folder(d / "replay-out", facts))
+    return facts
+
+
+@pytest.fixture()
+def app(seeded, monkeypatch):
+    monkeypatch.setenv("ELMON_DB", seeded["path"])
+    monkeypatch.setenv("ELMON_TRUTH", seeded["truth"])
+    at = AppTest.from_file(str(APP), default_timeout=30)
+    at.run()
+    assert not at.exception, [e.value for e in at.exception]
+    return at
+
+
+def _metrics(at) -> dict:
+    return {m.label: m.value for m in at.metric}
+
+
+def _captions(at) -> str:
+    return "\n".join(c.value for c in at.caption)
+
+
+def _charts(at) -> list[dict]:
+    return [json.loads(c.proto.spec) for c in at.get("vega_lite_chart")]
+
+
+def _no_errors(at) -> None:
+    assert not at.exception, [e.value for e in at.exception]
+    assert not at.error, [e.value for e in at.error]
+
+
+def test_overview_counts_table_and_filters(app, seeded):
+    at = app
+    _no_errors(at)
+    assert [t.value for t in at.title] == ["Overview"]
+    assert "statistical evidence" in at.info[0].value and "tariff" in at.info[0].value
+    m = _metrics(at)
+    n = len(seeded["series"])
+    assert m["Series"] == f"{n}" and m["Open alerts"] == "5"   # 4 open + 1 acknowledged
+    assert "Open alerts by kind: " in _captions(at)
+    table = at.dataframe[0].value
+    assert len(table) == n and {"elasticity", "lo", "hi", "trend", "status"} <= set(table.columns)
+    warm = table.loc[table["status"].str.contains("warming up")]
+    assert len(warm) and warm["elasticity"].isna().all()   # shown as — beside its status
+    assert all(len(t) == 30 for t in table.loc[table["series"] == "depot00/item00000", "trend"])
+    # sidebar: live-refresh interval and pause toggle
+    assert at.sidebar.select_slider(key="refresh_seconds").value == 10
+    assert at.sidebar.toggle(key="refresh_paused").value is False
+    at.text_input(key="ov_search").input("ITEM0000").run()
+    assert len(at.dataframe[0].value) == 10 and f"10 of {n} series shown" in _captions(at)
+    at.text_input(key="ov_search").input("").run()
+    at.multiselect(key="ov_status").set_value(["changed"]).run()
+    assert set(at.dataframe[0].value["status"]) == {"◆ changed"}
+    at.multiselect(key="ov_status").set_value([]).run()
+    at.selectbox(key="ov_sort").set_value("elasticity, most negative first").run()
+    b = at.dataframe[0].value["elasticity"].dropna().to_numpy()
+    assert (b[:-1] <= b[1:]).all()
+    at.toggle(key="refresh_paused").set_value(True).run()
+    _no_errors(at)
+
+
+def test_series_detail_charts_and_panels(app, seeded):
+    at = app
+    s = seeded["series"][1]                       # moved at the known change point
+    at.switch_page("views/series.py")
+    at.query_params["series"] = s
+    at.run()
+    _no_errors(at)
+    assert [t.value for t in at.title] == ["Series detail"]
+    assert at.selectbox(key="sd_series").value == s
+    m = _metrics(at)
+    assert m["Status"] == "◆ changed" and m["Forgetting factor λ"] == "0.9900"
+    # (1 + 0.99) / (1 - 0.99) = 199 observations; hourly data -> 199 h = 8.29 days
+    assert m["Effective window (observations)"] == "199"
+    assert m["Effective window (time)"] == "8.29 days"
+    specs = _charts(at)
+    assert len(specs) == 3                        # elasticity, log-log, residuals
+    marks = [layer["mark"]["type"] for layer in specs[0]["layer"]]
+    assert marks == ["area", "line", "rule", "rule", "point"]   # band, b, bounds, truth, alert
+    cap = _captions(at)
+    assert "Showing 285 of 285 points" in cap and "known change points: 1" in cap
+    assert "15 estimates without a value (warming up) are not drawn" in cap
+
+    # price-change panel: exact (p2/p1)^b - 1 against a hand computation from the store's b
+    row = mstore.latest_estimates(seeded["path"]).set_index("series").loc[s]
+    at.number_input(key="pc_p1").set_value(10.0).run()
+    at.number_input(key="pc_p2").set_value(12.0).run()
+    expected = 1.2 ** row["beta"] - 1.0
+    lo, hi = sorted([1.2 ** row["beta_lo"] - 1.0, 1.2 ** row["beta_hi"] - 1.0])
+    m = _metrics(at)
+    assert m["Price change"] == "+20.0%"
+    assert m["Expected quantity change"] == f"{100 * expected:+.1f}%".replace("-", "−")
+    assert m["Interval"].startswith(f"[{100 * lo:+.1f}%".replace("-", "−"))
+    assert hi > lo
+
+
+def test_series_detail_thins_long_history_and_says_so(app):
+    at = app
+    at.switch_page("views/series.py")
+    at.query_params["series"] = "depot99/long-history"
+    at.run()
+    _no_errors(at)
+    cap = _captions(at)
+    assert "of 4,985 points (thinned for drawing" in cap        # 5000 minus 15 warming up
+    shown = int(cap.split("Showing ")[1].split(" of ")[0].replace(",", ""))
+    assert 100 < shown <= 1500 + 1
+    assert "Showing" in cap and "of 4,985 residuals" in cap
+
+
+def test_warming_up_series_shows_dash_with_status(app, seeded):
+    at = app
+    at.switch_page("views/series.py")
+    at.query_params["series"] = seeded["series"][-2]   # ten observations, all warming up
+    at.run()
+    _no_errors(at)
+    m = _metrics(at)
+    assert m["Elasticity b"] == "—" and m["Status"] == "◌ warming up"
+    assert m["Expected quantity change"] == "—"
+    assert "no estimate yet: status ◌ warming up" in _captions(at)
+    assert not any("nan" in v.lower() for v in m.values())
+
+
+def test_alerts_acknowledge_and_resolve_change_the_store(app, seeded):
+    at = app
+    at.switch_page("views/alerts.py").run()
+    _no_errors(at)
+    assert [t.value for t in at.title] == ["Alerts"]
+    assert len(at.dataframe[0].value) == 5             # open + acknowledged by default
+    target = seeded["alert_ids"][3]                    # sign_flip, open
+    assert mstore.get_alert(seeded["path"], target)["state"] == "open"
+    at.selectbox(key="al_pick").set_value(target).run()
+    at.text_area(key="al_note").input("price test in progress, confirmed with the store")
+    at.text_input(key="al_who").input("analyst")
+    at.button(key="al_ack").click().run()
+    _no_errors(at)
+    a = mstore.get_alert(seeded["path"], target)
+    assert a["state"] == "acknowledged"
+    ev = mstore.alert_events(seeded["path"], target)
+    assert ev["event"].tolist() == ["opened", "acknowledged"]
+    assert ev["note"].iloc[-1] == "price test in progress, confirmed with the store"
+    assert ev["who"].iloc[-1] == "analyst"
+    assert f"Alert {target}: acknowledged." in [s.value for s in at.success]
+    assert _metrics(at)["State"] == "◑ acknowledged"
+    assert at.button(key="al_ack").disabled
+    at.button(key="al_resolve").click().run()
+    assert mstore.get_alert(seeded["path"], target)["state"] == "resolved"
+    at.multiselect(key="al_states").set_value(["resolved"]).run()
+    assert target in at.dataframe[0].value["id"].tolist()
+    assert len(at.dataframe[1].value) == 3             # event history: opened, ack, resolved
+
+
+def test_replay_page_reads_folder_and_detection(app, seeded):
+    at = app
+    at.switch_page("views/replay.py").run()
+    _no_errors(at)
+    at.text_input(key="rp_folder_text").input(seeded["replay"]).run()
+    _no_errors(at)
+    m = _metrics(at)
+    assert (m["Series"], m["Alerts"], m["Rejected rows"]) == ("4", "2", "1")
+    assert m["False alarms"] == "0"
+    det = at.dataframe[0].value
+    assert det.loc[0, "detected"] == 2 and det.loc[0, "median_delay_obs"] == 13.5
+    assert len(_charts(at)) == 1
+
+
+def test_no_store_given_explains(monkeypatch, tmp_path):
+    monkeypatch.delenv("ELMON_DB", raising=False)
+    monkeypatch.delenv("ELMON_TRUTH", raising=False)
+    at = AppTest.from_file(str(APP), default_timeout=30).run()
+    assert not at.exception
+    assert "elmon dashboard --db PATH" in at.error[0].value
+    monkeypatch.setenv("ELMON_DB", str(tmp_path / "missing.sqlite"))
+    at = AppTest.from_file(str(APP), default_timeout=30).run()
+    assert not at.exception and "not found" in at.error[0].value
+
+
+@pytest.mark.slow
+def test_overview_first_render_10k_series_under_2s(tmp_path, monkeypatch):
+    facts = fx.seed_many(tmp_path / "wide.sqlite", n_series=10_000, n_obs=30)
+    monkeypatch.setenv("ELMON_DB", facts["path"])
+    monkeypatch.delenv("ELMON_TRUTH", raising=False)
+    times = []
+    for _ in range(2):   # cold caches each time; the better of two runs, the machine is shared
+        st.cache_data.clear()
+        st.cache_resource.clear()
+        at = AppTest.from_file(str(APP), default_timeout=60)
+        t0 = time.perf_counter()
+        at.run()
+        times.append(time.perf_counter() - t0)
+        assert not at.exception, [e.value for e in at.exception]
+    assert len(at.dataframe[0].value) == 10_000 and _metrics(at)["Series"] == "10,000"
+    print(f"first render of the overview with 10,000 series: {min(times):.2f} s "
+          f"(runs: {', '.join(f'{t:.2f}' for t in times)})")
+    assert min(times) < 2.0 and math.isfinite(min(times))
