@@ -94,7 +94,7 @@ def _observation_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
             rule = "must be > 0" if name == "price" else "must be >= 0"
-            raise ValidationError(f"{_where(df, i, what)}: field {name!r} = {vals[i]!r}: "
+            raise ValidationError(f"{_where(df, i, what)}: field {name!r} = {float(vals[i])!r}: "
                                   f"{name} {rule} and finite (validate rows before the store)",
                                   field=name, value=vals[i], row=i)
     dup = df.duplicated(["series", "ts"])
@@ -137,7 +137,7 @@ def _estimate_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
         vals = _floats(df, col, what)
         if np.isinf(vals).any():
             i = int(np.flatnonzero(np.isinf(vals))[0])
-            raise ValidationError(f"{_where(df, i, what)}: field {col!r} = {vals[i]!r}: "
+            raise ValidationError(f"{_where(df, i, what)}: field {col!r} = {float(vals[i])!r}: "
                                   f"estimates must be finite or NaN", field=col, row=i)
         if col == "beta":
             undefined = np.isnan(vals) & ~status.isin(("warming_up", "low_variation")).to_numpy()
@@ -147,7 +147,7 @@ def _estimate_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
                                       f"{status.iloc[i]!r}: an undefined beta needs status "
                                       f"warming_up or low_variation", field="beta", row=i)
         cols.append(_objects(vals))
-    rows = [(s, t, *vals[:6], st, *vals[6:]) for s, t, st, *vals in
+    rows = [(s, t, *vals[:5], st, *vals[5:]) for s, t, st, *vals in
             zip(df["series"].tolist(), df["ts"].tolist(), status.tolist(), *cols)]
     return df, rows
 

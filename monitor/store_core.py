@@ -36,6 +36,11 @@ from monitor.store_schema import MIGRATIONS, MIGRATIONS_TABLE, SCHEMA_VERSION
 #: Seconds a connection waits for a lock held by another writer before giving up.
 DEFAULT_BUSY_TIMEOUT = 10.0
 
+#: Columns that query frames always return as float64 (NULL -> NaN), even when all NULL.
+FLOAT_COLUMNS = frozenset({"beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "intercept",
+                           "resid_sd", "innovation", "z", "price", "quantity", "low", "high",
+                           "forgetting", "lag_seconds"})
+
 _WHOLE_SECOND = re.compile(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ$")
 
 
@@ -96,10 +101,10 @@ def format_ts_array(values: Any, field: str = "ts") -> np.ndarray:
         try:
             if is_str.all():
                 stamps = pd.to_datetime(text, utc=True, format="ISO8601", errors="coerce")
-            else:
-                stamps = pd.to_datetime(text, utc=True, errors="coerce")
+            else:   # datetimes, Timestamps or a mixture: one at a time, each message exact
+                stamps = pd.Series([_to_timestamp(v) for v in text], dtype="datetime64[ns, UTC]")
         except (ValueError, TypeError):
-            stamps = pd.Series([_to_timestamp(v) for v in text])
+            stamps = pd.Series([_to_timestamp(v) for v in text], dtype="datetime64[ns, UTC]")
         bad = stamps.isna().to_numpy()
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
@@ -212,6 +217,8 @@ class Store:
         outbox row per name (the service sets this from its config).
     notify_events : tuple of str
         Alert events that are delivered through the outbox.
+    applied_on_open : list of int
+        Migration ids applied when this writer opened the file (empty when it was current).
     """
 
     def __init__(self, conn: sqlite3.Connection, path: Path, readonly: bool):
@@ -221,6 +228,7 @@ class Store:
         self.db = sqlite_utils.Database(conn, execute_plugins=False, recursive_triggers=False)
         self.sinks: tuple[str, ...] = ()
         self.notify_events: tuple[str, ...] = ("opened", "acknowledged", "resolved", "reminded")
+        self.applied_on_open: list[int] = []
         self._lock = threading.RLock()
 
     @classmethod
@@ -266,7 +274,7 @@ class Store:
             if readonly:
                 check_schema(store)
             else:
-                migrate(store)
+                store.applied_on_open = migrate(store)
         except BaseException:
             conn.close()
             raise
@@ -338,6 +346,8 @@ class Store:
             names = [d[0] for d in cur.description]
             data = cur.fetchall()
         df = pd.DataFrame.from_records(data, columns=names)
+        for col in FLOAT_COLUMNS.intersection(df.columns):
+            df[col] = df[col].astype("float64")
         for col in ts_columns:
             if col in df.columns:
                 df[col] = pd.to_datetime(df[col], utc=True, format="ISO8601")
