@@ -59,7 +59,7 @@ class Simulation(tuple):
         return self
 
     def __getnewargs_ex__(self):
-        return (tuple(self),), {"bad": self.bad, "meta": self.meta}
+        return tuple(self), {"bad": self.bad, "meta": self.meta}
 
     @property
     def log(self) -> pd.DataFrame:
@@ -76,13 +76,15 @@ class Simulation(tuple):
 
 # ---------------------------------------------------------------------------------- validation
 
-def check_int(name: str, value, minimum: int = 1, maximum: int | None = None) -> int:
+def check_int(name: str, value, minimum: int = 1, maximum: int | None = None,
+              why: str = "") -> int:
     """Return ``value`` as int or raise ConfigError naming the parameter and the range."""
+    why = f" ({why})" if why else ""
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
-        raise ConfigError(f"{name} = {value!r}: must be an integer >= {minimum}")
+        raise ConfigError(f"{name} = {value!r}: must be an integer >= {minimum}{why}")
     if value < minimum or (maximum is not None and value > maximum):
         upper = f" and <= {maximum}" if maximum is not None else ""
-        raise ConfigError(f"{name} = {value!r}: must be >= {minimum}{upper}")
+        raise ConfigError(f"{name} = {value!r}: must be >= {minimum}{upper}{why}")
     return int(value)
 
 

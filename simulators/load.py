@@ -100,7 +100,7 @@ def load(seed: int = 0, n_series: int = 6, length: int = 4368, *, start: str = "
         peak``; controls ``hdd, cdd, event, shoulder, peak``.
     """
     n_series = check_int("n_series", n_series)
-    length = check_int("length", length, minimum=240)
+    length = check_int("length", length, minimum=240, why="10 days of hours")
     sigma = check_float("sigma", sigma, 0.0, 1.0)
     event_share = check_float("event_share", event_share, 0.0, 0.5)
     rng = np.random.default_rng(seed)

@@ -77,7 +77,8 @@ def retail(seed: int = 0, n_series: int = 12, length: int = 365, *, start: str =
     n_series : int
         Number of product-store series (default 12).
     length : int
-        Time steps per series (default 365; days, or hours with ``freq="h"``).
+        Time steps per series (default 365; days, or hours with ``freq="h"``); at least
+        28 days.
     start : str
         First timestamp (UTC), default 2024-01-01 (a Monday).
     freq : {"D", "h"}
@@ -99,14 +100,15 @@ def retail(seed: int = 0, n_series: int = 12, length: int = 365, *, start: str =
         (+ ``peak`` hourly).
     """
     n_series = check_int("n_series", n_series)
-    length = check_int("length", length, minimum=28)
     check_choice("freq", freq, ("D", "h"))
+    spd = 1 if freq == "D" else 24
+    length = check_int("length", length, minimum=28 * spd,
+                       why="28 days: room for every series role")
     check_choice("noise", noise, ("lognormal", "poisson"))
     sigma = check_float("sigma", sigma, 0.0, 2.0)
     hold = check_int("hold", hold)
     promo_share = check_float("promo_share", promo_share, 0.0, 0.5)
     rng = np.random.default_rng(seed)
-    spd = 1 if freq == "D" else 24
     S, T = n_series, length
     n_days = -(-T // spd)
     cells = catalogue(S)
