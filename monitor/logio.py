@@ -75,8 +75,21 @@ def read_log(path, columns: Mapping[str, str] | None = None,
         raise SourceError(f"{p}: unreadable {fmt} file: {exc}") from None
     except OSError as exc:
         raise SourceError(f"{p}: unreadable {fmt} file: {exc}") from None
-    frame = table.to_pandas()
+    frame = table_to_frame(table)
     frame = frame.rename(columns=_rename(list(frame.columns), mapping))
+    return frame
+
+
+def table_to_frame(table: pa.Table) -> pd.DataFrame:
+    """Arrow table to pandas, keeping an empty field distinguishable from a literal NaN.
+
+    pandas turns both a null and a NaN of a float column into NaN; a float column with nulls is
+    therefore converted to objects with None for the empty fields (rare, so the cost is rare).
+    """
+    frame = table.to_pandas()
+    for name, col in zip(table.column_names, table.columns):
+        if pa.types.is_floating(col.type) and col.null_count > 0:
+            frame[name] = pd.Series(col.to_pylist(), dtype=object, index=frame.index)
     return frame
 
 
@@ -102,7 +115,7 @@ def iter_log_batches(path, columns: Mapping[str, str] | None = None,
     if log_format(p) == "parquet":
         pf = pq.ParquetFile(p)
         for batch in pf.iter_batches(batch_size=batch_rows):
-            df = batch.to_pandas()
+            df = table_to_frame(pa.Table.from_batches([batch]))
             yield df.rename(columns=_rename(list(df.columns), mapping))
         return
     with open(p, "rb") as fh:

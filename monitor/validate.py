@@ -10,8 +10,8 @@ Checks, in order, each giving one reason per row (the first that fails):
   price <= 0; quantity < 0; quantity == 0 (zero policy: ``reject`` quarantines it, ``skip``
   counts it and keeps it out of the estimator); a logged control <= 0;
 - per series, in time order, against state carried across batches (:class:`SeriesGate`):
-  a duplicate (same series and timestamp; ``keep_first`` keeps the first and quarantines later
-  copies); a row older than the series' last accepted time by more than ``allowed_lateness_s``;
+  a duplicate (same series and timestamp as the latest or one of the last 15 accepted rows;
+  ``keep_first`` keeps the first and quarantines later copies); a row older than the series' last accepted time by more than ``allowed_lateness_s``;
   a suspected unit error: a price ``unit_ratio`` (50) times or more away from the median of the
   series' last accepted prices (for example cents logged against dollars).
 """
@@ -30,7 +30,8 @@ from monitor.errors import ConfigError, SourceError
 
 REQUIRED = ("series", "ts", "price", "quantity")
 WINDOW = 15          # recent accepted prices kept per series for the unit check
-MIN_HISTORY = 5      # accepted prices needed before the unit check applies
+MIN_HISTORY = 2      # accepted prices needed before the unit check uses the series' history
+MIN_BATCH = 5        # time-ordered batches: rows of a new series that give a batch median
 
 
 @dataclass(frozen=True)
@@ -68,9 +69,17 @@ REJECT_COLUMNS = ["row", "series", "ts", "field", "value", "reason", "raw"]
 
 
 def _is_blank(col: pd.Series) -> np.ndarray:
-    if col.dtype == object or pd.api.types.is_string_dtype(col):
+    """Empty fields. Float columns hold no empties (:func:`monitor.logio.table_to_frame` turns a
+    float column with nulls into objects with None), so a NaN there is a literal NaN."""
+    if col.dtype == object:
+        none = np.fromiter((v is None or v is pd.NA or (isinstance(v, str) and not v.strip())
+                            for v in col), dtype=bool, count=len(col))
+        return none
+    if pd.api.types.is_string_dtype(col):
         s = col.astype("string")
         return (s.isna() | (s.str.strip() == "")).to_numpy(dtype=bool)
+    if pd.api.types.is_float_dtype(col):
+        return np.zeros(len(col), dtype=bool)
     return col.isna().to_numpy(dtype=bool)
 
 
@@ -81,7 +90,10 @@ def parse_numbers(col: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     s = col.astype("string").str.strip()
     v = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
     low = s.str.lower()
-    nan_words = low.isin(["nan", "+nan", "-nan"]).to_numpy(dtype=bool, na_value=False)
+    nan_words = low.isin(["nan", "+nan", "-nan"]).to_numpy(dtype=bool, na_value=False).copy()
+    if col.dtype == object:   # literal NaN floats kept beside None (empty) by table_to_frame
+        nan_words |= np.fromiter((isinstance(v, float) and v != v for v in col), dtype=bool,
+                                 count=len(col))
     v[nan_words] = np.nan
     bad = np.isnan(v) & ~nan_words & ~_is_blank(col)
     return v, bad
@@ -132,6 +144,7 @@ class SeriesGate:
         self.index: dict[str, int] = {}
         self.last_ts = np.zeros(0, dtype=np.int64)
         self.ring = np.zeros((0, WINDOW))
+        self.ring_ts = np.zeros((0, WINDOW), dtype=np.int64)
         self.count = np.zeros(0, dtype=np.int64)
 
     def ids(self, series: np.ndarray) -> np.ndarray:
@@ -148,44 +161,59 @@ class SeriesGate:
             grow = n - self.last_ts.size
             self.last_ts = np.concatenate([self.last_ts, np.full(grow, np.iinfo(np.int64).min)])
             self.ring = np.vstack([self.ring, np.zeros((grow, WINDOW))])
+            self.ring_ts = np.vstack([self.ring_ts, np.zeros((grow, WINDOW), dtype=np.int64)])
             self.count = np.concatenate([self.count, np.zeros(grow, dtype=np.int64)])
         return mapping[codes]
 
     def state_of(self, series: str) -> dict:
         i = self.index[series]
-        return {"last_ts": int(self.last_ts[i]), "ring": self.ring[i].tolist(), "count": int(self.count[i])}
+        return {"last_ts": int(self.last_ts[i]), "ring": self.ring[i].tolist(),
+                "ring_ts": self.ring_ts[i].tolist(), "count": int(self.count[i])}
 
     def restore(self, series: str, state: dict) -> None:
         i = self.ids(np.array([series], dtype=object))[0]
         self.last_ts[i] = int(state["last_ts"])
         self.ring[i] = np.asarray(state["ring"], dtype=np.float64)
+        self.ring_ts[i] = np.asarray(state["ring_ts"], dtype=np.int64)
         self.count[i] = int(state["count"])
 
 
 @njit(cache=True)
-def _ordered_checks(sid, ts, lp, last_ts, ring, count, lateness_ns, log_ratio, reject_all, code):
-    """Walk rows sorted by (sid, ts, arrival); set code 1 duplicate, 2 late, 3 unit error."""
+def _ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_ratio,
+                    reject_all, code, batch_median):
+    """Walk rows sorted by (sid, ts, arrival); set code 1 duplicate, 2 late, 3 unit error.
+
+    The unit check compares log price with the median of the series' last accepted prices (once
+    2 are known), or else with ``batch_median`` (NaN: no check).
+    """
     n = sid.shape[0]
     w = ring.shape[1]
     tmp = np.empty(w)
     for j in range(n):
         s = sid[j]
         if count[s] > 0 or last_ts[s] != np.iinfo(np.int64).min:
-            if ts[j] == last_ts[s]:
+            dup = ts[j] == last_ts[s]
+            for i in range(min(count[s], w)):
+                if ring_ts[s, i] == ts[j]:
+                    dup = True
+            if dup:
                 code[j] = 1
                 continue
             if ts[j] < last_ts[s] - lateness_ns:
                 code[j] = 2
                 continue
         c = min(count[s], w)
-        if c >= 5:
+        if c >= 2:
             for i in range(c):
                 tmp[i] = ring[s, i]
             med = np.median(tmp[:c])
-            if abs(lp[j] - med) >= log_ratio:
-                code[j] = 3
-                continue
+        else:
+            med = batch_median[s]
+        if med == med and abs(lp[j] - med) >= log_ratio:
+            code[j] = 3
+            continue
         ring[s, count[s] % w] = lp[j]
+        ring_ts[s, count[s] % w] = ts[j]
         count[s] += 1
         if ts[j] > last_ts[s]:
             last_ts[s] = ts[j]
@@ -206,7 +234,8 @@ _ORDER_REASONS = {1: ("ts", "duplicate row: same series and timestamp as an earl
 
 def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
                    settings: ValidationSettings | None = None, gate: SeriesGate | None = None,
-                   now_ns: int | None = None, row_offset: int = 0) -> Validated:
+                   now_ns: int | None = None, row_offset: int = 0,
+                   order_by: str = "time") -> Validated:
     """Validate a frame of raw rows in arrival order.
 
     Parameters
@@ -220,13 +249,21 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         Reference time (ns UTC) for the future-timestamp check; no check when omitted.
     row_offset : int
         Number of data rows before this frame in its source (row numbers are 1-based data rows).
+    order_by : "time" or "arrival"
+        ``time`` (replay): each series' rows are checked and returned in timestamp order; a new
+        series' unit check may use the median of its prices in this batch. ``arrival`` (live
+        service): rows are checked in arrival order and returned in it, so the result does not
+        depend on how rows were split into batches (needed for exact resume); a row older than
+        the series' latest accepted time by more than the allowed lateness is late.
 
     Returns
     -------
     Validated
-        ``good`` sorted by series and ts (stable) with column ``row``; ``rejects`` with
+        ``good`` in processing order (see ``order_by``) with column ``row``; ``rejects`` with
         ``row, series, ts, field, value, reason, raw``; ``zero_skipped`` rows (zero policy skip).
     """
+    if order_by not in ("time", "arrival"):
+        raise ValueError(f"order_by = {order_by!r}: must be 'time' or 'arrival'")
     settings = settings or ValidationSettings()
     gate = gate if gate is not None else SeriesGate()
     names = list(REQUIRED) + list(controls) + list(log_controls)
@@ -275,16 +312,28 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     sid_all = np.full(n, -1, dtype=np.int64)
     if idx.size:
         sid_all[idx] = gate.ids(series.to_numpy(dtype=object)[idx])
-        order = idx[np.lexsort((idx, ts[idx], sid_all[idx]))]
+        if order_by == "time":
+            order = idx[np.lexsort((idx, ts[idx], sid_all[idx]))]
+        else:
+            order = idx[np.argsort(sid_all[idx], kind="stable")]
         code = np.zeros(order.size, dtype=np.int8)
-        _ordered_checks(sid_all[order], ts[order], np.log(values["price"][order]), gate.last_ts,
-                        gate.ring, gate.count, np.int64(settings.allowed_lateness_s * 1e9),
-                        math.log(settings.unit_ratio), settings.duplicate_policy == "reject_all", code)
+        lp = np.log(values["price"][order])
+        grouped = pd.Series(lp).groupby(sid_all[order])
+        batch_median = np.full(gate.last_ts.size, np.nan)
+        if order_by == "time":
+            med = grouped.median().where(grouped.size() >= MIN_BATCH)
+            batch_median[med.index.to_numpy()] = med.to_numpy(dtype=np.float64)
+        _ordered_checks(sid_all[order], ts[order], lp, gate.last_ts,
+                        gate.ring, gate.ring_ts, gate.count, np.int64(settings.allowed_lateness_s * 1e9),
+                        math.log(settings.unit_ratio), settings.duplicate_policy == "reject_all", code,
+                        batch_median)
         for c, (fld, text) in _ORDER_REASONS.items():
             m = np.zeros(n, dtype=bool)
             m[order[code == c]] = True
             flag(m, fld, text.format(ratio=settings.unit_ratio))
         good_idx = order[code == 0]
+        if order_by == "arrival":
+            good_idx = np.sort(good_idx)
     else:
         good_idx = idx
 
@@ -302,8 +351,10 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
 
 
 def _cell(v) -> str:
-    if v is None or (isinstance(v, float) and math.isnan(v)):
-        return "" if v is None else "nan"
+    if v is None:
+        return ""
+    if isinstance(v, float) and math.isnan(v):
+        return "nan"
     if v is pd.NA or v is pd.NaT:
         return ""
     if isinstance(v, pd.Timestamp):
@@ -316,10 +367,14 @@ def _reject_frame(frame, rows, bad, bad_field, reason) -> pd.DataFrame:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in REJECT_COLUMNS})
     sub = frame.iloc[bad]
     records = sub.to_dict(orient="records")
+    # in text columns a missing value is an empty field; in float columns NaN is a literal NaN
+    text_cols = {c for c in frame.columns
+                 if frame[c].dtype != object and pd.api.types.is_string_dtype(frame[c])}
     out = []
     for j, rec in zip(bad, records):
         fld = bad_field[j]
-        raw = {k: _cell(v) for k, v in rec.items()}
+        raw = {k: ("" if k in text_cols and isinstance(v, float) and math.isnan(v) else _cell(v))
+               for k, v in rec.items()}
         val = raw.get(fld, "")
         out.append({"row": int(rows[j]), "series": raw.get("series", ""), "ts": raw.get("ts", ""),
                     "field": fld, "value": val,
