@@ -1,0 +1,230 @@
+"""The estimator kernel: elmon's compiled RLS step against four references on the same rows.
+
+Figures (targets from issue 8, for a 2-core machine of this class, one core used: the kernel
+is a single-threaded numba loop):
+
+- 2 parameters (intercept, log price), 10k series x 1k steps in arrival order: >= 30M obs/s;
+- one series of 10M steps: >= 20M obs/s;
+- 4 controls (6 parameters), 10k series x 500 steps: reported.
+
+elmon is timed through its public batch path :func:`monitor.estimators.run_batch` with the
+default settings (forgetting 0.995 here, excitation guard on), states fresh for each run and the
+output array allocated once outside the clock. It computes, per observation, the coefficients,
+the sandwich standard error, the t interval, n_eff, the status and the standardized innovation;
+the references compute less (coefficients and covariance only).
+
+Equivalence checks (what is compared is said in each row):
+
+- the plain Python loop against elmon's own timed output: the path of b, to 1e-10;
+- statsmodels RecursiveLS (lambda = 1, diffuse start) against elmon with forgetting 1: the final
+  coefficient vectors; elmon's weak proper prior N(0, 1000^2) moves them by about
+  (prior precision 1e-6) x Var(theta) x |theta|, far below the 1e-6 tolerance used;
+- river's BayesianLinearRegression with the matched prior (see :mod:`benchmarks.references`)
+  against elmon with the excitation guard off: the path of the posterior mean of b;
+- river's LinearRegression is SGD, a different estimator: its final b is shown beside the truth.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from benchmarks import references as R
+from benchmarks.common import Context, Row, rate_row, speed_ratio, timed
+from benchmarks.data import panel
+
+LAM = 0.995                 # forgetting factor and river's smoothing (effective window ~400)
+
+
+def _est(**kw):
+    from monitor.estimators import ElasticityRLS
+
+    return ElasticityRLS(forgetting=kw.pop("forgetting", LAM), **kw)
+
+
+def elmon_times(est, p, runs: int):
+    """Times of ``runs`` full passes of ``run_batch`` over panel ``p``, and the last result."""
+    from monitor.estimators import run_batch
+    from monitor.estimators import kernel as K
+    from monitor.estimators.batch import initial_states
+
+    out = np.empty((p.n, K.NOUT))
+    m = min(p.n, 2000)   # warm-up: load the compiled kernel from numba's cache
+    run_batch(est, p.sid[:m], p.X[:m], p.y[:m])
+    times, res = [], None
+    for _ in range(runs):
+        states = initial_states(est, p.n_series)
+        t, res = timed(lambda: run_batch(est, p.sid, p.X, p.y, states=states, out=out))
+        times.append(t)
+    return times, res
+
+
+def _agree(diff: float, tol: float) -> str:
+    return "agrees" if diff <= tol else "**DIFFERS**"
+
+
+def _prior_var(est) -> list[float]:
+    return list(est.prior()[1])
+
+
+def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: str,
+          blr: bool = True) -> list[Row]:
+    """Reference rows for the rows ``rows`` of panel ``p`` (a prefix of the same data)."""
+    from monitor.estimators import run_batch
+    from monitor.estimators import kernel as K
+
+    sid, X, y = p.sid[rows], p.X[rows], p.y[rows]
+    series = np.unique(sid)
+    sid = np.unique(sid, return_inverse=True)[1].astype(np.int64)
+    elmon_out = res.out
+    paused = int(res.states[series, K.I_NPAUSED].sum())
+    n = rows.size
+    out = []
+    on = f"on {what} ({n:,} obs, identical rows)"
+
+    # plain Python loop, checked against elmon's own timed output
+    _, path = R.plain_loop(sid, X, y, LAM, _prior_var(est), path=True)
+    times = [R.plain_loop(sid, X, y, LAM, _prior_var(est))[0] for _ in range(ctx.runs)]
+    if paused == 0:   # the guard never acted: elmon's timed output is plain RLS
+        eb, note = elmon_out[rows, K.O_BETA], " (elmon's timed output; its guard never paused)"
+    else:
+        eb = run_batch(_est(excitation_guard=False, controls=est.controls), sid, X, y).beta
+        note = f" (elmon with the guard off: it paused {paused} times in the timed run)"
+    d = float(np.max(np.abs(path - eb)))
+    row = rate_row(f"plain Python RLS loop {on}", n, times, reference=True)
+    row.ratio = speed_ratio(elmon_rate, row.value)
+    row.check = (f"path of b, max abs diff vs elmon over all {n:,} steps = {d:.1e} "
+                 f"(tolerance 1e-10): {_agree(d, 1e-10)}{note}")
+    out.append(row)
+
+    # statsmodels RecursiveLS (filter only), lambda = 1 on both sides for the check
+    times = [R.recursive_ls(sid, X, y)[0] for _ in range(ctx.runs)]
+    _, raw = R.recursive_ls(sid, X, y)
+    _, withprior = R.recursive_ls(sid, X, y, prior_var=_prior_var(est))
+    e1 = _est(forgetting=1.0, controls=est.controls)
+    r1 = run_batch(e1, sid, X, y)
+    k = X.shape[1]
+    theta = r1.states[:, K.NS:K.NS + k]
+    d_final = max(float(np.max(np.abs(theta[s] - withprior[s][:, -1]))) for s in withprior)
+    d_raw = max(float(np.max(np.abs(theta[s] - raw[s][:, -1]))) for s in raw)
+    d_path = max(float(np.max(np.abs(r1.beta[sid == s] - withprior[s][1]))) for s in withprior)
+    row = rate_row(f"statsmodels RecursiveLS, filter only {on}", n, times, reference=True)
+    row.ratio = speed_ratio(elmon_rate, row.value)
+    row.check = (f"elmon forgetting=1 vs RecursiveLS given elmon's prior N(0, 1000^2 I) as {k} "
+                 f"leading pseudo-rows: final coefficients of {len(raw)} series max abs diff "
+                 f"{d_final:.1e}, whole path of b {d_path:.1e} (tolerance 1e-7: the first updates "
+                 f"from a 1e6 prior variance cost either algorithm about 6 of 16 digits): "
+                 f"{_agree(max(d_final, d_path), 1e-7)}; against the plain diffuse start the "
+                 f"final coefficients differ by {d_raw:.1e}, the prior's pull")
+    out.append(row)
+
+    if not blr:
+        return out
+    # river BayesianLinearRegression, smoothing = lambda, constant feature
+    times = []
+    for _ in range(ctx.runs):
+        t, _ = R.river_blr(sid, X, y, smoothing=LAM)
+        times.append(t)
+    row = rate_row(f"river BayesianLinearRegression(smoothing={LAM}) {on}", n, times,
+                   reference=True)
+    row.ratio = speed_ratio(elmon_rate, row.value)
+    m = min(n, ctx.size(20_000, 5_000))
+    pv = est.prior_sd ** 2
+    _, bpath = R.river_blr(sid[:m], X[:m], y[:m], smoothing=LAM,
+                           alpha=R.blr_matched_alpha(pv, LAM), path=True)
+    eg = _est(excitation_guard=False)
+    epath = run_batch(eg, sid[:m], X[:m], y[:m]).beta
+    step = np.zeros(m, dtype=np.int64)
+    seen: dict[int, int] = {}
+    for j, s in enumerate(sid[:m].tolist()):
+        step[j] = seen.get(s, 0)
+        seen[s] = step[j] + 1
+    late = step >= 10
+    d_all = float(np.nanmax(np.abs(bpath - epath)))
+    d_late = float(np.nanmax(np.abs(bpath[late] - epath[late])))
+    row.check = (f"posterior mean of b (river, alpha = 1000^2/(1-s) so its prior equals elmon's) vs "
+                 f"elmon's b, guard off, first {m:,} rows: max abs diff {d_late:.1e} from each "
+                 f"series' 10th step on ({d_all:.1e} including the first steps, where river's "
+                 f"matrix inverse of a nearly flat prior loses digits) (tolerance 1e-6): "
+                 f"{_agree(d_late, 1e-6)}")
+    out.append(row)
+
+    # river LinearRegression (SGD)
+    times, w = [], None
+    for _ in range(ctx.runs):
+        t, w = R.river_sgd(sid, X, y)
+        times.append(t)
+    row = rate_row(f"river LinearRegression (SGD) {on}", n, times, reference=True)
+    row.ratio = speed_ratio(elmon_rate, row.value)
+    s0 = int(sid[0])
+    truth = p.beta[int(p.sid[rows][0])]
+    eb = elmon_out[rows, K.O_BETA][np.flatnonzero(sid == s0)[-1]]
+    row.check = (f"a different estimator (SGD, lr 0.01): final b of the first series "
+                 f"{w[s0]:.3f} vs elmon {eb:.3f}, true {truth:.3f}; not expected to agree")
+    out.append(row)
+    return out
+
+
+def _blr_nan_row(ctx: Context, p) -> Row:
+    first, done, secs, what = R.river_blr_first_nan(
+        p.X, p.y, LAM, max_updates=ctx.size(1_000_000, 200_000), max_seconds=60.0)
+    if first is None:
+        return Row(f"river BayesianLinearRegression(smoothing={LAM}): updates until NaN", None,
+                   reference=True,
+                   check=f"no NaN in {done:,} updates ({secs:.0f} s, stopped: {what})")
+    return Row(f"river BayesianLinearRegression(smoothing={LAM}): updates until its "
+               f"prediction is NaN", float(first), "updates", reference=True,
+               ratio="elmon: finite through all 10M steps",
+               check=(f"first non-finite prediction at update {first:,} ({what}); river keeps >= 8 "
+                      f"feature slots and the unused slots' prior precision s^N underflows "
+                      f"near N = 141,500 for s = {LAM}"))
+
+
+def run(ctx: Context) -> list[Row]:
+    rows: list[Row] = []
+
+    # ---- 2 parameters, 10k series x 1k steps
+    S, T = ctx.size(10_000, 1_000), ctx.size(1_000, 200)
+    p = panel(S, T, seed=1)
+    est = _est()
+    times, res = elmon_times(est, p, ctx.runs)
+    main = rate_row(f"estimator kernel, 2 parameters, {S:,} series x {T:,} steps, one core",
+                    p.n, times, target=30e6)
+    finite = bool(np.isfinite(res.beta[-S:]).all())
+    main.check = (f"RLS with forgetting {LAM}, default settings; all final b finite: {finite}")
+    rows.append(main)
+    sub = np.flatnonzero(p.sid < ctx.size(20, 5))
+    rows += _refs(ctx, p, sub, est, main.value, res,
+                  f"the first {ctx.size(20, 5)} series")
+    del p, res
+
+    # ---- one series, 10M steps
+    N = ctx.size(10_000_000, 1_000_000)
+    p = panel(1, N, seed=2)
+    times, res = elmon_times(est, p, ctx.runs)
+    main = rate_row(f"estimator kernel, 2 parameters, one series of {N:,} steps", N, times,
+                    target=20e6)
+    main.check = f"final b {res.beta[-1]:.4f}, true {p.beta[0]:.4f}; finite throughout: " \
+                 f"{bool(np.isfinite(res.beta[10:]).all())}"
+    rows.append(main)
+    first = np.arange(ctx.size(100_000, 20_000))
+    rows += _refs(ctx, p, first, est, main.value, res,
+                  f"its first {first.size:,} steps")
+    rows.append(_blr_nan_row(ctx, p))
+    del p, res
+
+    # ---- 4 controls (6 parameters)
+    S, T = ctx.size(10_000, 1_000), ctx.size(500, 100)
+    p = panel(S, T, controls=4, seed=3)
+    est6 = _est(controls=("promo", "weekend", "temperature", "competitor_lp"))
+    times, res = elmon_times(est6, p, ctx.runs)
+    main = rate_row(f"estimator kernel, 4 controls (6 parameters), {S:,} series x {T:,} steps",
+                    p.n, times)
+    main.target = "report"
+    main.check = "general-k step (loops over k); promo, weekend, temperature, competitor log price"
+    rows.append(main)
+    sub = np.flatnonzero(p.sid < ctx.size(20, 5))
+    rows += _refs(ctx, p, sub, est6, main.value, res,
+                  f"the first {ctx.size(20, 5)} series", blr=False)
+    for r in rows:
+        r.group = "estimator"
+    return rows
