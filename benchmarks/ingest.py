@@ -1,0 +1,150 @@
+"""Ingest into the SQLite store, one transaction per batch.
+
+Rows: 1,000 series of hourly observations in arrival order, in batches of 10,000 rows (ten hours
+of every series: one service poll). Each run starts from a new store file (WAL,
+``synchronous=NORMAL``, as :meth:`monitor.store.Store.open` sets it).
+
+- elmon, observations: :func:`monitor.store.write_batch` with the batch's observations (checks
+  every value, formats the timestamps, updates the per-series counts); target >= 100k rows/s;
+- elmon, a whole service batch: the same observations plus one estimate per observation, the
+  newest estimate per series and one checkpoint per series (what the service commits per poll);
+  reported;
+- reference: plain ``sqlite3`` ``executemany`` of the same rows, already as tuples with
+  formatted timestamps, into a table and unique index identical to the store's observations, one
+  transaction per batch, same pragmas: the floor SQLite itself sets on this machine.
+
+The check: the stored row count and the sum of prices equal the input's.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+
+import numpy as np
+import pandas as pd
+
+from benchmarks.common import Context, Row, rate_row, speed_ratio, timed
+
+BATCH = 10_000
+S = 1_000
+
+
+def batches(n_rows: int, with_estimates: bool = False, seed: int = 11):
+    """Observation frames (and estimate frames) of BATCH rows each, arrival order."""
+    rng = np.random.default_rng(seed)
+    names = np.array([f"store{i % 40:02d}/item{i:06d}" for i in range(S)])
+    steps = n_rows // S
+    t0 = pd.Timestamp("2024-01-01", tz="UTC")
+    out = []
+    per = BATCH // S
+    for b in range(steps // per):
+        step = np.repeat(np.arange(b * per, (b + 1) * per), S)
+        sid = np.tile(np.arange(S), per)
+        price = np.round(5.0 * np.exp(rng.normal(0, 0.1, step.size)), 2)
+        qty = np.round(np.exp(3.0 - 1.8 * np.log(price) + rng.normal(0, 0.2, step.size)), 3)
+        obs = pd.DataFrame({"series": names[sid], "ts": t0 + pd.to_timedelta(step, unit="h"),
+                            "price": price, "quantity": qty, "source": "feed.csv",
+                            "source_row": b * BATCH + np.arange(step.size)})
+        out.append(obs)
+    return out
+
+
+def _estimates(obs: pd.DataFrame, states: dict) -> tuple[pd.DataFrame, dict]:
+    """The estimates and checkpoints the service would write for this batch (real kernel)."""
+    from monitor.estimators import ElasticityRLS, run_batch
+    from monitor.estimators.batch import initial_states
+    from monitor.estimators import kernel as K
+
+    est = ElasticityRLS(forgetting=0.99)
+    codes, names = pd.factorize(obs["series"], sort=True)
+    if "st" not in states:
+        states["st"] = initial_states(est, len(names))
+    X = np.column_stack([np.ones(len(obs)), np.log(obs["price"].to_numpy())])
+    res = run_batch(est, codes.astype(np.int64), X, np.log(obs["quantity"].to_numpy()),
+                    states=states["st"])
+    o = res.out
+    frame = pd.DataFrame({"series": obs["series"].to_numpy(), "ts": obs["ts"],
+                          "beta": o[:, K.O_BETA], "beta_se": o[:, K.O_SE], "beta_lo": o[:, K.O_LO],
+                          "beta_hi": o[:, K.O_HI], "n_eff": o[:, K.O_NEFF],
+                          "status": res.status_labels(), "intercept": o[:, K.O_INTERCEPT],
+                          "resid_sd": o[:, K.O_RESID_SD], "innovation": o[:, K.O_E],
+                          "z": o[:, K.O_Z]})
+    last_ts = obs["ts"].iloc[-1]
+    ckpt = {str(n): {"state": res.states[i].tolist(), "last_ts": last_ts}
+            for i, n in enumerate(names)}
+    return frame, ckpt
+
+
+def _elmon(path, obs_batches, extra=None) -> float:
+    from monitor import store as ms
+
+    store = ms.Store.open(path)
+    try:
+        t, _ = timed(lambda: [ms.write_batch(store, observations=o, **(extra[i] if extra else {}))
+                              for i, o in enumerate(obs_batches)])
+        total = store.scalar("SELECT count(*) FROM observations")
+        psum = store.scalar("SELECT sum(price) FROM observations")
+    finally:
+        store.close()
+    want = sum(len(o) for o in obs_batches)
+    wsum = float(sum(o["price"].sum() for o in obs_batches))
+    if total != want or abs(psum - wsum) > 1e-9 * wsum:
+        raise AssertionError(f"store holds {total} rows (price sum {psum}); wrote {want} ({wsum})")
+    return t
+
+
+def _raw(path, tuples) -> float:
+
+    con = sqlite3.connect(path, isolation_level=None)
+    con.execute("PRAGMA journal_mode=WAL")
+    con.execute("PRAGMA synchronous=NORMAL")
+    con.execute("CREATE TABLE observations (id INTEGER PRIMARY KEY, series TEXT NOT NULL, "
+                "ts TEXT NOT NULL, price REAL NOT NULL, quantity REAL NOT NULL, controls TEXT, "
+                "source TEXT, source_row INTEGER)")
+    con.execute("CREATE UNIQUE INDEX observations_series_ts ON observations (series, ts)")
+    sql = ("INSERT INTO observations (series, ts, price, quantity, controls, source, source_row) "
+           "VALUES (?, ?, ?, ?, ?, ?, ?)")
+
+    def go():
+        for rows in tuples:
+            con.execute("BEGIN")
+            con.executemany(sql, rows)
+            con.execute("COMMIT")
+
+    t, _ = timed(go)
+    con.close()
+    return t
+
+
+def run(ctx: Context) -> list[Row]:
+    n = ctx.size(200_000, 50_000)
+    obs = batches(n)
+    n = sum(len(o) for o in obs)
+    fig = f"ingest into SQLite: write_batch, {n:,} observations in batches of {BATCH:,}"
+    times = [_elmon(ctx.tmp / f"ingest-{r}.sqlite", obs) for r in range(ctx.runs)]
+    main = rate_row(fig, n, times, unit="rows/s", target=100e3)
+    main.check = "one transaction per batch; check: stored count and price sum equal the input"
+
+    tuples = [list(zip(o["series"].tolist(),
+                       o["ts"].dt.strftime("%Y-%m-%dT%H:%M:%SZ").tolist(),
+                       o["price"].tolist(), o["quantity"].tolist(), [None] * len(o),
+                       o["source"].tolist(), o["source_row"].tolist())) for o in obs]
+    rtimes = [_raw(ctx.tmp / f"raw-{r}.sqlite", tuples) for r in range(ctx.runs)]
+    ref = rate_row("plain sqlite3 executemany of the same rows (prebuilt tuples, same table, "
+                   "index and pragmas)", n, rtimes, unit="rows/s", reference=True)
+    ref.ratio = speed_ratio(main.value, ref.value)
+    ref.check = "SQLite's own floor on this machine: no checks, no formatting"
+
+    state: dict = {}
+    extra = []
+    for o in obs:
+        est, ckpt = _estimates(o, state)
+        extra.append({"estimates": est, "checkpoints": ckpt})
+    ftimes = [_elmon(ctx.tmp / f"full-{r}.sqlite", obs, extra) for r in range(ctx.runs)]
+    full = rate_row(f"whole service batch: observations + an estimate per observation + latest "
+                    f"+ {S:,} checkpoints per batch", n, ftimes, unit="rows/s")
+    full.target = "report"
+    full.check = f"rows/s counts observations; {2 * n:,} rows written in all plus checkpoints"
+    for p in ctx.tmp.glob("*.sqlite*"):
+        p.unlink()
+    return [main, ref, full]
