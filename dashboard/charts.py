@@ -22,17 +22,34 @@ ELASTICITY_ELEMENTS = {
 }
 
 
+#: Text colour of axis and legend labels (WCAG contrast on white about 12.6:1).
+INK = "#31333f"
+
+
+def _finish(chart):
+    """Dark axis and legend text, so labels keep an accessible contrast under any theme."""
+    return (chart.configure_axis(labelColor=INK, titleColor=INK, labelFontSize=12)
+            .configure_legend(labelColor=INK, titleColor=INK)
+            .configure_title(color=INK))
+
+
 def _element_scale(names) -> alt.Scale:
     return alt.Scale(domain=list(names), range=[ELASTICITY_ELEMENTS[n] for n in names])
 
 
-def _shape_scale() -> alt.Scale:
-    return alt.Scale(domain=list(ALERT_SHAPES), range=[s for s, _ in ALERT_SHAPES.values()])
+def _shape_scale(extra=()) -> alt.Scale:
+    words = [w for _, w in ALERT_SHAPES.values()] + [e for e in extra]
+    shapes = [s for s, _ in ALERT_SHAPES.values()] + ["circle"] * len(extra)
+    return alt.Scale(domain=words, range=shapes)
+
+
+def _kind_words(kinds) -> list[str]:
+    return [ALERT_SHAPES.get(k, (None, str(k).replace("_", " ")))[1] for k in kinds]
 
 
 def elasticity_chart(band: pd.DataFrame, low: float | None = None, high: float | None = None,
                      alerts: pd.DataFrame | None = None, truth: pd.DataFrame | None = None,
-                     height: int = 320, title: str = "Elasticity over time") -> alt.LayerChart:
+                     height: int = 340, title: str | None = None) -> alt.LayerChart:
     """Elasticity line with its confidence band, the bounds as horizontal rules, alert markers
     (shape = alert kind) and known change points as dotted vertical rules.
 
@@ -42,7 +59,8 @@ def elasticity_chart(band: pd.DataFrame, low: float | None = None, high: float |
     """
     names = list(ELASTICITY_ELEMENTS)
     colour = alt.Color("element:N", scale=_element_scale(names),
-                       legend=alt.Legend(title=None, orient="bottom"))
+                       legend=alt.Legend(title=None, orient="top", symbolOpacity=1.0,
+                                         symbolStrokeWidth=3, labelFontSize=12))
     data = band.loc[band["drawable"]].assign(element="elasticity")
     x = alt.X("ts:T", title="time (UTC)")
     tip = [alt.Tooltip("ts:T", title="time", format="%Y-%m-%d %H:%M"),
@@ -72,19 +90,27 @@ def elasticity_chart(band: pd.DataFrame, low: float | None = None, high: float |
                                                    format="%Y-%m-%d %H:%M"),
                                        alt.Tooltip("kind:N")]))
     if alerts is not None and len(alerts):
-        layers.append(alt.Chart(alerts.assign(element="alert"))
+        words = _kind_words(alerts["kind"])
+        extra = sorted(set(words) - {w for _, w in ALERT_SHAPES.values()})
+        layers.append(alt.Chart(alerts.assign(element="alert", alert_kind=words))
                       .mark_point(filled=True, size=130, opacity=1.0, stroke="#ffffff",
                                   strokeWidth=1)
                       .encode(x="ts:T", y="beta:Q", color=colour,
-                              shape=alt.Shape("kind:N", scale=_shape_scale(),
-                                              legend=alt.Legend(title="alert kind",
-                                                                orient="bottom")),
+                              shape=alt.Shape("alert_kind:N", scale=_shape_scale(extra),
+                                              legend=alt.Legend(
+                                                  title="alert marker", orient="right",
+                                                  symbolFillColor=COLOURS["alert"],
+                                                  symbolStrokeColor=COLOURS["alert"],
+                                                  symbolSize=110, labelFontSize=12)),
                               tooltip=[alt.Tooltip("ts:T", title="alert",
                                                    format="%Y-%m-%d %H:%M"),
-                                       alt.Tooltip("kind:N"), alt.Tooltip("state:N"),
+                                       alt.Tooltip("alert_kind:N", title="kind"),
+                                       alt.Tooltip("state:N"),
                                        alt.Tooltip("beta:Q", title="elasticity", format=".3f")]))
-    return alt.layer(*layers).properties(height=height, title=title).resolve_scale(
-        color="shared")
+    chart = alt.layer(*layers).properties(height=height)
+    if title:
+        chart = chart.properties(title=title)
+    return _finish(chart.resolve_scale(color="shared"))
 
 
 def loglog_chart(windows: pd.DataFrame, lines: pd.DataFrame, height: int = 320) -> alt.LayerChart:
@@ -92,7 +118,8 @@ def loglog_chart(windows: pd.DataFrame, lines: pd.DataFrame, height: int = 320) 
     with its least-squares line (its slope is that window's elasticity)."""
     scale = alt.Scale(domain=["earlier", "recent"],
                       range=[COLOURS["earlier"], COLOURS["recent"]])
-    colour = alt.Color("window:N", scale=scale, legend=alt.Legend(title="window", orient="bottom"))
+    colour = alt.Color("window:N", scale=scale,
+                       legend=alt.Legend(title="window", orient="top", symbolOpacity=1.0))
     shape = alt.Shape("window:N", scale=alt.Scale(domain=["earlier", "recent"],
                                                   range=["circle", "triangle-up"]), legend=None)
     pts = alt.Chart(windows).mark_point(filled=True, size=36, opacity=0.7).encode(
@@ -105,7 +132,8 @@ def loglog_chart(windows: pd.DataFrame, lines: pd.DataFrame, height: int = 320) 
     if len(lines):
         layers.append(alt.Chart(lines).mark_line(strokeWidth=3).encode(
             x="log_price:Q", y="log_quantity:Q", color=colour, detail="window:N"))
-    return alt.layer(*layers).properties(height=height, title="Log-log: recent vs earlier window")
+    return _finish(alt.layer(*layers).properties(height=height,
+                                                 title="Log-log: recent vs earlier window"))
 
 
 def residual_chart(resid: pd.DataFrame, height: int = 220) -> alt.LayerChart:
@@ -119,5 +147,5 @@ def residual_chart(resid: pd.DataFrame, height: int = 220) -> alt.LayerChart:
                  alt.Tooltip("residual:Q", format=".3f"),
                  alt.Tooltip("z:Q", title="standardized", format=".2f")])
     zero = alt.Chart(pd.DataFrame({"y": [0.0]})).mark_rule(color=COLOURS["truth"]).encode(y="y:Q")
-    return alt.layer(band, pts, zero).properties(
-        height=height, title="One-step-ahead residuals (band: ±2 residual SD)")
+    return _finish(alt.layer(band, pts, zero).properties(
+        height=height, title="One-step-ahead residuals (band: ±2 residual SD)"))

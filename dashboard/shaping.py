@@ -115,6 +115,20 @@ def overview_table(latest: pd.DataFrame, sparks: dict[str, list[float]] | None =
     return out
 
 
+def trend_range(trends, lo_q: float = 0.01, hi_q: float = 0.99) -> tuple[float, float] | None:
+    """A common y range for the sparklines: the 1st to 99th percentile of all their values,
+    so a small wiggle is not blown up to full height as it would be with per-row scaling.
+    ``None`` when there are no values."""
+    vals = np.fromiter((v for t in trends for v in t), dtype="float64")
+    vals = vals[np.isfinite(vals)]
+    if vals.size == 0:
+        return None
+    lo, hi = np.quantile(vals, [lo_q, hi_q])
+    if hi - lo < 1e-9:
+        lo, hi = lo - 0.5, hi + 0.5
+    return float(lo), float(hi)
+
+
 def filter_overview(table: pd.DataFrame, statuses=None, text: str = "",
                     only_open_alerts: bool = False) -> pd.DataFrame:
     """Rows whose status is in ``statuses`` (all when empty/None), whose series id contains

@@ -27,9 +27,10 @@ def sidebar() -> None:
         st.toggle("Pause live refresh", value=False, key="refresh_paused")
         if st.button("Refresh now", key="refresh_now"):
             data.clear_queries()
-        st.caption(f"Store: `{s['db'] or 'none given'}`")
+        st.caption(f"Store: `{Path(s['db']).name if s['db'] else 'none given'}`",
+                   help=s["db"] or "Start with elmon dashboard --db PATH.")
         if s["truth"]:
-            st.caption(f"Known change points: `{s['truth']}`")
+            st.caption(f"Known change points: `{Path(s['truth']).name}`", help=s["truth"])
 
 
 def run_every() -> float | None:

@@ -209,7 +209,9 @@ def test_overview_first_render_10k_series_under_2s(tmp_path, monkeypatch):
     monkeypatch.setenv("ELMON_DB", facts["path"])
     monkeypatch.delenv("ELMON_TRUTH", raising=False)
     times = []
-    for _ in range(2):   # cold caches each time; the better of two runs, the machine is shared
+    # cold caches each time; the best of three runs is the figure (as the timeit docs advise:
+    # the minimum shows what the code costs, the spread what else the shared machine did)
+    for _ in range(3):
         st.cache_data.clear()
         st.cache_resource.clear()
         at = AppTest.from_file(str(APP), default_timeout=60)
@@ -221,3 +223,33 @@ def test_overview_first_render_10k_series_under_2s(tmp_path, monkeypatch):
     print(f"first render of the overview with 10,000 series: {min(times):.2f} s "
           f"(runs: {', '.join(f'{t:.2f}' for t in times)})")
     assert min(times) < 2.0 and math.isfinite(min(times))
+
+
+def test_replay_page_runs_a_replay_of_a_log(app, tmp_path):
+    import numpy as np
+    import pandas as pd
+
+    rng = np.random.default_rng(4)
+    parts = []
+    for s in ("kiosk-a/tea", "kiosk-b/scone"):    # invented demo series
+        p = 10 * np.exp(rng.normal(0, 0.1, 300))
+        q = np.exp(4 - 1.3 * np.log(p) + rng.normal(0, 0.1, 300))
+        ts = pd.date_range("2024-01-01", periods=300, freq="h", tz="UTC")
+        parts.append(pd.DataFrame({"series": s, "ts": ts.strftime("%Y-%m-%dT%H:%M:%SZ"),
+                                   "price": p, "quantity": q}))
+    log = tmp_path / "log.csv"
+    pd.concat(parts).to_csv(log, index=False)
+    out = tmp_path / "replay-out"
+    at = app
+    at.switch_page("views/replay.py").run()
+    at.text_input(key="rp_log").input(str(log))
+    at.text_input(key="rp_out").input(str(out))
+    at.number_input(key="rp_lambda").set_value(0.98).run()   # the button enables on rerun
+    at.button(key="rp_run").click().run(timeout=60)
+    _no_errors(at)
+    assert (out / "estimates.csv").is_file() and (out / "summary.json").is_file()
+    m = _metrics(at)
+    assert (m["Series"], m["Estimates"]) == ("2", "600")
+    assert f"`{out}`" in _captions(at)
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["settings"]["estimator"]["forgetting"] == 0.98

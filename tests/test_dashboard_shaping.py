@@ -271,3 +271,13 @@ def test_latest_per_series_takes_last_row():
                       "2024-01-01T00:00:00Z", "2024-01-01T00:00:00Z"], "beta": [1.0, 2.0, 3.0]})
     out = shaping.latest_per_series(e)
     assert out["beta"].tolist() == [1.0, 2.0]
+
+
+def test_trend_range_is_common_and_robust():
+    trends = [[-1.0, -1.1], [], [-2.0, np.nan, -0.5]] + [[-1.2]] * 200
+    lo, hi = shaping.trend_range(trends)
+    # numpy.quantile reference on the finite values
+    vals = np.array([-1.0, -1.1, -2.0, -0.5] + [-1.2] * 200)
+    assert (lo, hi) == tuple(np.quantile(vals, [0.01, 0.99]))
+    assert shaping.trend_range([[], []]) is None
+    assert shaping.trend_range([[1.0, 1.0]]) == (0.5, 1.5)

@@ -6,14 +6,15 @@ from __future__ import annotations
 import streamlit as st
 
 from dashboard import data, shaping, ui
-from dashboard.legend import ALERT_SHAPES, STATUS_STYLE, legend_markdown
+from dashboard.legend import ALERT_SHAPES, COLOURS, STATUS_STYLE, legend_markdown
 
 TABLE_COLUMNS = ["series", "status", "elasticity", "lo", "hi", "trend", "open_alerts",
                  "last_observation", "n_obs", "n_eff"]
 
 
-def _column_config() -> dict:
+def _column_config(y_range=None) -> dict:
     cc = st.column_config
+    y_min, y_max = y_range if y_range else (None, None)
     return {
         "series": cc.TextColumn("series", pinned=True),
         "status": cc.TextColumn("status", help="Symbols are explained under the table."),
@@ -22,7 +23,9 @@ def _column_config() -> dict:
                                            "status says there is no estimate yet."),
         "lo": cc.NumberColumn("interval low", format="%.2f"),
         "hi": cc.NumberColumn("interval high", format="%.2f"),
-        "trend": cc.LineChartColumn("trend (recent b)", width="small"),
+        "trend": cc.LineChartColumn("trend (recent b)", width="small", y_min=y_min,
+                                    y_max=y_max, color=COLOURS["estimate"],
+                                    help="The last stored elasticities, all rows on one scale."),
         "open_alerts": cc.NumberColumn("open alerts", format="%d"),
         "last_observation": cc.DatetimeColumn("last observation (UTC)",
                                               format="YYYY-MM-DD HH:mm", timezone="UTC"),
@@ -72,7 +75,8 @@ def render() -> None:
         view = shaping.sort_overview(
             shaping.filter_overview(table, statuses, text, only_open), sort)
         st.caption(f"{len(view):,} of {len(table):,} series shown")
-        event = st.dataframe(view[TABLE_COLUMNS], column_config=_column_config(),
+        y_range = shaping.trend_range(view["trend"])
+        event = st.dataframe(view[TABLE_COLUMNS], column_config=_column_config(y_range),
                              hide_index=True, placeholder="—", key="ov_table",
                              on_select="rerun", selection_mode="single-row", height=520)
         st.caption("Status: " + legend_markdown() + ". Trend: the last elasticities of the "

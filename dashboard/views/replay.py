@@ -3,6 +3,7 @@ alerts, rejects and, where a truth file was used, detection delay and false alar
 
 from __future__ import annotations
 
+import inspect
 import os
 from pathlib import Path
 
@@ -38,18 +39,30 @@ def _run_form() -> None:
     with st.expander("Run a replay of a log"):
         log = st.text_input("Observation log (CSV or Parquet)", key="rp_log")
         out = st.text_input("Output folder", key="rp_out")
-        lam = st.number_input("Forgetting factor", min_value=0.5, max_value=1.0, value=0.99,
-                              step=0.001, format="%.3f", key="rp_lambda")
+        cfg_path = st.text_input("Config file (TOML, optional)", key="rp_config")
+        lam = st.number_input("Forgetting factor λ", min_value=0.5, max_value=1.0, value=0.99,
+                              step=0.001, format="%.3f", key="rp_lambda",
+                              help="Overrides [estimator] forgetting of the config file.")
+        truth = st.text_input("Truth file of known change points (optional)", key="rp_truth")
         if st.button("Run replay", key="rp_run", disabled=not (log and out)):
             try:
+                from monitor.config import load_config
                 from monitor.replay import run_replay
             except ImportError as exc:
                 st.error(f"Replay is not available in this installation: {exc}")
                 return
+            kwargs = {}
+            if truth:
+                if "truth" not in inspect.signature(run_replay).parameters:
+                    st.error("This version of the replay takes no truth file; run it without.")
+                    return
+                kwargs["truth"] = truth
             try:
+                cfg = load_config(cfg_path or None).with_overrides("estimator",
+                                                                  forgetting=float(lam))
                 with st.spinner("Replaying…"):
-                    run_replay(log, out, forgetting=float(lam))
-            except (ElmonError, OSError, ValueError, TypeError) as exc:
+                    run_replay(log, out, config=cfg, **kwargs)
+            except (ElmonError, OSError, ValueError) as exc:
                 st.error(f"Replay failed: {exc}")
             else:
                 st.session_state["rp_ran"] = out
@@ -65,8 +78,16 @@ def _detection(rep: dict) -> None:
     st.subheader("Detection against known change points")
     table = files.detection_summary(det)
     st.dataframe(table, hide_index=True, placeholder="—", key="rp_det_summary",
-                 column_config={"detection_rate": st.column_config.NumberColumn(
-                     "detection rate", format="percent")})
+                 column_config={
+                     "change_points": st.column_config.NumberColumn("change points"),
+                     "detection_rate": st.column_config.NumberColumn("detection rate",
+                                                                     format="percent"),
+                     "median_delay_obs": st.column_config.NumberColumn(
+                         "median delay (observations)", format="%.1f"),
+                     "max_delay_obs": st.column_config.NumberColumn(
+                         "longest delay (observations)", format="%.0f")})
+    st.caption("Delay: observations from the change point to the first alert that caught it; "
+               "undetected change points do not enter the delays.")
     fa = summ.get("false_alarms")
     if isinstance(fa, dict):
         st.caption("False alarms (alerts not explained by a known change point): "
@@ -90,6 +111,7 @@ def render() -> None:
     if not folder:
         st.info("Pick or type a folder written by `elmon replay LOG --out DIR`.")
         return
+    st.caption(f"Showing replay output in `{folder}`")
     try:
         rep = _load(folder, _stamp(folder))
     except ElmonError as exc:

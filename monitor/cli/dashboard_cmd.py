@@ -2,13 +2,15 @@
 
 The command runs ``python -m streamlit run dashboard/app.py --server.headless true
 --server.address ADDRESS --server.port PORT --browser.gatherUsageStats false --theme.base light
--- --db PATH [--truth FILE]`` and waits for it; Ctrl-C stops the server.
+--client.toolbarMode minimal -- --db PATH [--truth FILE]`` and waits for it; Ctrl-C stops the server.
 """
 
 from __future__ import annotations
 
+import signal
 import subprocess
 import sys
+import threading
 from pathlib import Path
 
 from monitor.cli import HelpFormatter
@@ -37,7 +39,8 @@ def streamlit_command(db: str, port: int = DEFAULT_PORT, address: str = "127.0.0
     cmd = [sys.executable, "-m", "streamlit", "run", str(app_path()),
            "--server.headless", "true", "--server.address", address,
            "--server.port", str(int(port)), "--browser.gatherUsageStats", "false",
-           "--theme.base", "light", "--", "--db", str(db)]
+           "--theme.base", "light", "--client.toolbarMode", "minimal",
+           "--", "--db", str(db)]
     if truth:
         cmd += ["--truth", str(truth)]
     return cmd
@@ -58,6 +61,9 @@ def run_dashboard(db: str, port: int = DEFAULT_PORT, address: str = "127.0.0.1",
     print(f"elmon dashboard: serving {dbp} at http://{address}:{int(port)}/  (Ctrl-C stops)",
           flush=True)
     proc = subprocess.Popen(cmd)
+    if threading.current_thread() is threading.main_thread():
+        # a SIGTERM to this command stops the server too (same path as Ctrl-C)
+        signal.signal(signal.SIGTERM, _interrupt)
     try:
         return proc.wait()
     except KeyboardInterrupt:
@@ -67,6 +73,10 @@ def run_dashboard(db: str, port: int = DEFAULT_PORT, address: str = "127.0.0.1",
         except subprocess.TimeoutExpired:
             proc.kill()
         raise
+
+
+def _interrupt(signum, frame):
+    raise KeyboardInterrupt
 
 
 def _handler(args) -> int:
