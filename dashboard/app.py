@@ -29,4 +29,5 @@ pages = [
 page = st.navigation(pages)
 ui.sidebar()
 ui.caution()
-page.run()
+with ui.store_guard():
+    page.run()

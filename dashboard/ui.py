@@ -3,6 +3,7 @@ path, the truth file and the live-refresh interval."""
 
 from __future__ import annotations
 
+import contextlib
 from pathlib import Path
 
 import pandas as pd
@@ -10,6 +11,7 @@ import streamlit as st
 
 from dashboard import data, files
 from dashboard.legend import CAUTION
+from monitor.errors import ElmonError
 
 #: Refresh intervals offered in the sidebar (seconds).
 REFRESH_CHOICES = (2, 5, 10, 30, 60, 300)
@@ -55,7 +57,22 @@ def require_db() -> str:
         st.error(f"Store `{db}` not found. Create it with the service or `elmon demo`, "
                  "then start the dashboard with `elmon dashboard --db PATH`.")
         st.stop()
+    try:
+        data.get_store(db)
+    except ElmonError as exc:
+        st.error(f"The store cannot be opened: {exc}")
+        st.stop()
     return db
+
+
+@contextlib.contextmanager
+def store_guard():
+    """Show a store error (locked, migrated by a newer elmon, damaged) as a message on the page
+    instead of a traceback; the next refresh tries again."""
+    try:
+        yield
+    except ElmonError as exc:
+        st.error(f"The store could not be read: {exc}")
 
 
 @st.cache_data(ttl=60, show_spinner=False)

@@ -201,6 +201,12 @@ def test_no_store_given_explains(monkeypatch, tmp_path):
     monkeypatch.setenv("ELMON_DB", str(tmp_path / "missing.sqlite"))
     at = AppTest.from_file(str(APP), default_timeout=30).run()
     assert not at.exception and "not found" in at.error[0].value
+    junk = tmp_path / "junk.sqlite"
+    junk.write_text("this is not a database")
+    monkeypatch.setenv("ELMON_DB", str(junk))
+    at = AppTest.from_file(str(APP), default_timeout=30).run()
+    assert not at.exception
+    assert "The store cannot be opened" in at.error[0].value and "junk.sqlite" in at.error[0].value
 
 
 @pytest.mark.slow
@@ -219,7 +225,9 @@ def test_overview_first_render_10k_series_under_2s(tmp_path, monkeypatch):
         at.run()
         times.append(time.perf_counter() - t0)
         assert not at.exception, [e.value for e in at.exception]
-    assert len(at.dataframe[0].value) == 10_000 and _metrics(at)["Series"] == "10,000"
+    table = at.dataframe[0].value
+    assert len(table) == 10_000 and _metrics(at)["Series"] == "10,000"
+    assert table["trend"].map(len).eq(30).all()          # every row drew its sparkline
     print(f"first render of the overview with 10,000 series: {min(times):.2f} s "
           f"(runs: {', '.join(f'{t:.2f}' for t in times)})")
     assert min(times) < 2.0 and math.isfinite(min(times))

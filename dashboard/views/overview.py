@@ -68,25 +68,26 @@ def render() -> None:
 
     @st.fragment(run_every=ui.run_every())
     def live() -> None:
-        summ = data.summary(db)
-        _counts(summ)
-        latest = data.latest(db)
-        table = shaping.overview_table(latest, shaping.sparkline_lists(data.sparklines(db)))
-        view = shaping.sort_overview(
-            shaping.filter_overview(table, statuses, text, only_open), sort)
-        st.caption(f"{len(view):,} of {len(table):,} series shown")
-        y_range = shaping.trend_range(view["trend"])
-        event = st.dataframe(view[TABLE_COLUMNS], column_config=_column_config(y_range),
-                             hide_index=True, placeholder="—", key="ov_table",
-                             on_select="rerun", selection_mode="single-row", height=520)
-        st.caption("Status: " + legend_markdown() + ". Trend: the last elasticities of the "
-                   "series; select a row to open its detail.")
-        rows = event.selection.rows if event is not None else []
-        if rows:
-            chosen = str(view["series"].iloc[rows[0]])
-            st.session_state["series"] = chosen
-            st.page_link("views/series.py", label=f"Open series detail: {chosen}",
-                         icon=":material/show_chart:", query_params={"series": chosen})
+        with ui.store_guard():
+            summ = data.summary(db)
+            _counts(summ)
+            latest = data.latest(db)
+            table = shaping.overview_table(latest, shaping.sparkline_lists(data.sparklines(db)))
+            view = shaping.sort_overview(
+                shaping.filter_overview(table, statuses, text, only_open), sort)
+            st.caption(f"{len(view):,} of {len(table):,} series shown")
+            y_range = shaping.trend_range(view["trend"])
+            event = st.dataframe(view[TABLE_COLUMNS], column_config=_column_config(y_range),
+                                 hide_index=True, placeholder="—", key="ov_table",
+                                 on_select="rerun", selection_mode="single-row", height=520)
+            st.caption("Status: " + legend_markdown() + ". Trend: the last elasticities of the "
+                       "series; select a row to open its detail.")
+            rows = event.selection.rows if event is not None else []
+            if rows:
+                chosen = str(view["series"].iloc[rows[0]])
+                st.session_state["series"] = chosen
+                st.page_link("views/series.py", label=f"Open series detail: {chosen}",
+                             icon=":material/show_chart:", query_params={"series": chosen})
 
     live()
 

@@ -164,12 +164,13 @@ def render() -> None:
 
     @st.fragment(run_every=ui.run_every())
     def live() -> None:
-        row = data.latest(db).set_index("series").loc[series]
-        row["series"] = series
-        _headline(row)
-        hist = data.history(db, series)
-        st.subheader("Elasticity over time")
-        _elasticity(db, series, hist, row)
+        with ui.store_guard():
+            row = data.latest(db).set_index("series").loc[series]
+            row["series"] = series
+            _headline(row)
+            hist = data.history(db, series)
+            st.subheader("Elasticity over time")
+            _elasticity(db, series, hist, row)
 
     live()
     hist = data.history(db, series)
