@@ -1,0 +1,91 @@
+"""Store functions the live service needs beyond :mod:`monitor.store`: source errors, staleness.
+
+Kept apart from the store modules (they belong to the store's owner); everything here goes
+through :meth:`Store.atomic` / :meth:`Store.rows` with parameterized SQL.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pandas as pd
+
+from monitor.store import Store, from_json, parse_ts, wall_ts
+
+#: prefix of the alert ``series`` used for alerts about a source rather than a series
+SOURCE_PREFIX = "source:"
+
+
+def record_source_error(store: Store, source: str, kind: str, message: str | None) -> None:
+    """Set (or clear, with ``None``) a source's ``last_error`` without touching its position,
+    counts or ``last_run_at`` (which keeps meaning "last committed batch")."""
+    with store.atomic():
+        store.execute("INSERT INTO source_offsets (source, kind, last_error) VALUES (?, ?, ?) "
+                      "ON CONFLICT (source) DO UPDATE SET last_error = excluded.last_error, "
+                      "kind = coalesce(source_offsets.kind, excluded.kind)",
+                      (source, kind, None if message is None else str(message)[:2000]))
+
+
+def source_rows_at(store: Store) -> dict[str, pd.Timestamp]:
+    """Wall time of each source's last committed batch (``last_run_at``)."""
+    return {r["source"]: parse_ts(r["last_run_at"]) for r in
+            store.rows("SELECT source, last_run_at FROM source_offsets WHERE last_run_at IS NOT NULL")}
+
+
+def series_activity(store: Store) -> pd.DataFrame:
+    """Every series with its newest data time, the wall time of its last write and its own
+    ``stale_after_s`` setting (from ``series.settings``, NaN when not set)."""
+    rows = store.rows("SELECT series, last_ts, updated_at, settings FROM series ORDER BY series")
+    df = pd.DataFrame(rows, columns=["series", "last_ts", "updated_at", "settings"])
+    df["stale_after_s"] = [float((from_json(s) or {}).get("stale_after_s", float("nan")))
+                           if s else float("nan") for s in df["settings"]]
+    df["updated_at"] = pd.to_datetime(df["updated_at"], utc=True, format="ISO8601")
+    return df.drop(columns=["settings"])
+
+
+def active_stale(store: Store) -> dict[str, int]:
+    """``series -> alert id`` of every ``stale`` alert not resolved (sources included)."""
+    return {r["series"]: r["id"] for r in
+            store.rows("SELECT id, series FROM alerts WHERE kind = 'stale' AND state != 'resolved'")}
+
+
+def stale_changes(store: Store, now: Any, source_limits: dict[str, float],
+                  source_last: dict[str, Any], series_after: float) -> list[dict]:
+    """Alert changes that open ``stale`` alerts for silent sources and series and resolve the
+    ones whose source or series has sent rows again.
+
+    ``source_limits``: source -> seconds (0 = not watched); ``source_last``: source -> wall
+    time of its last rows; ``series_after``: default seconds for series (0 = off; a series'
+    own ``stale_after_s`` setting wins).
+    """
+    now_ts = parse_ts(wall_ts(now))
+    active = active_stale(store)
+    changes: list[dict] = []
+
+    def decide(key: str, age: float, limit: float, ts, what: str, details: dict) -> None:
+        if limit > 0 and age > limit and key not in active:
+            changes.append({"action": "open", "series": key, "kind": "stale", "ts": ts,
+                            "beta": None, "beta_lo": None, "beta_hi": None,
+                            "severity": "warning", "details": details, "cooldown": limit,
+                            "message": f"{what} has sent nothing for {age:.0f} s (expected "
+                                       f"within {limit:g} s)"})
+        elif key in active and (limit <= 0 or age <= limit):
+            changes.append({"action": "resolve", "series": key, "kind": "stale", "ts": ts,
+                            "note": f"{what} is sending again"})
+
+    for name, limit in source_limits.items():
+        last = source_last.get(name)
+        if last is None:
+            continue
+        age = (now_ts - parse_ts(last)).total_seconds()
+        decide(SOURCE_PREFIX + name, age, float(limit), wall_ts(now_ts), f"source {name}",
+               {"age_s": age, "stale_after_s": limit})
+    series = series_activity(store)
+    for r in series.itertuples(index=False):
+        limit = r.stale_after_s if r.stale_after_s == r.stale_after_s else series_after
+        age = (now_ts - r.updated_at).total_seconds()
+        if r.last_ts is None:
+            continue
+        decide(r.series, age, float(limit), r.last_ts, f"series {r.series}",
+               {"age_s": age, "stale_after_s": limit, "last_ts": r.last_ts})
+    return changes
