@@ -76,12 +76,31 @@ def fmt_timedelta(td) -> str:
 
 # ----------------------------------------------------------------------------- overview
 def sparkline_lists(spark: pd.DataFrame, value: str = "beta") -> dict[str, list[float]]:
-    """Long sparkline rows (series, ts, value) -> {series: [values in time order]}, NaN dropped."""
+    """Long sparkline rows (series, ts, value) -> {series: [values in time order]}, NaN dropped.
+
+    Vectorized: one stable sort (skipped when the rows already come ordered by series and ts,
+    as :func:`monitor.store.sparkline_data` returns them) and one split at the series breaks.
+    """
     if spark is None or len(spark) == 0:
         return {}
-    df = spark[["series", "ts", value]].dropna(subset=[value])
-    df = df.sort_values(["series", "ts"], kind="stable")
-    return {k: g.to_list() for k, g in df.groupby("series", sort=False)[value]}
+    v = pd.to_numeric(spark[value], errors="coerce").to_numpy(dtype="float64", na_value=np.nan)
+    keep = np.isfinite(v)
+    codes, names = pd.factorize(spark["series"].astype(str), sort=False)
+    t = spark["ts"]
+    t = (t.astype("int64").to_numpy() if pd.api.types.is_datetime64_any_dtype(t)
+         else to_utc(t).astype("int64").to_numpy())
+    codes, t, v = codes[keep], t[keep], v[keep]
+    if len(codes) == 0:
+        return {}
+    ordered = bool(np.all((codes[1:] > codes[:-1]) |
+                          ((codes[1:] == codes[:-1]) & (t[1:] >= t[:-1]))))
+    if not ordered:
+        order = np.lexsort((t, codes))
+        codes, v = codes[order], v[order]
+    breaks = np.flatnonzero(codes[1:] != codes[:-1]) + 1
+    starts = np.r_[0, breaks]
+    return {str(names[codes[i]]): chunk.tolist()
+            for i, chunk in zip(starts, np.split(v, breaks))}
 
 
 def overview_table(latest: pd.DataFrame, sparks: dict[str, list[float]] | None = None) -> pd.DataFrame:
