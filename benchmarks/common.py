@@ -255,3 +255,15 @@ class Context:
 
     def size(self, full: int, quick: int) -> int:
         return quick if self.quick else full
+
+
+def attempt(figure: str, fn: Callable[[], list[Row]], target: str = "") -> list[Row]:
+    """``fn()``'s rows, or one row saying why the figure could not be measured (the library
+    piece is missing or broken at the moment), so the other figures still come out."""
+    try:
+        return fn()
+    except Exception as exc:    # noqa: BLE001 - reported in the table, the run goes on
+        import traceback
+
+        traceback.print_exc()
+        return [not_measured(figure, f"{type(exc).__name__}: {exc}", target=target)]
