@@ -31,6 +31,7 @@ def cmd_run(args) -> int:
 
     logging.basicConfig(level=getattr(logging, args.log_level.upper()), stream=sys.stderr,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    logging.getLogger("apscheduler").setLevel(max(logging.WARNING, logging.root.level))
     config = load_config(args.config)
     service = Service(config, store=args.db, base=Path(args.config).resolve().parent)
     print(f"elmon run: store {service.store.path}, {len(service.monitor.series)} series "
