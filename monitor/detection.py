@@ -130,9 +130,18 @@ class Scores:
     horizon: int = DEFAULT_HORIZON
 
     @classmethod
-    def merge(cls, parts: list["Scores"]) -> "Scores":
-        """Scores of disjoint sets of series, combined (same result as scoring them together)."""
-        ch = pd.concat([p.changes for p in parts], ignore_index=True) if parts else _empty_changes()
+    def merge(cls, parts: list["Scores"], truth: pd.DataFrame | None = None) -> "Scores":
+        """Scores of disjoint sets of series (each from ``score(..., partial=True)``), combined;
+        with ``truth``, its series seen in no part are added as ``no_data``. The result equals
+        scoring all series together."""
+        frames = [p.changes for p in parts]
+        if truth is not None:
+            seen = set().union(*(set(p.quiet["series"]) for p in parts)) if parts else set()
+            rest = truth[~truth["series"].isin(seen)]
+            if len(rest):
+                frames.append(score(np.zeros(0, np.int64), np.zeros(0, np.int64), [], _empty_alerts(),
+                                    rest, parts[0].horizon if parts else DEFAULT_HORIZON).changes)
+        ch = pd.concat(frames, ignore_index=True) if frames else _empty_changes()
         q = pd.concat([p.quiet for p in parts], ignore_index=True) if parts else _empty_quiet()
         return cls(_sort_changes(ch), q.sort_values("series", kind="stable").reset_index(drop=True),
                    parts[0].horizon if parts else DEFAULT_HORIZON)
@@ -146,18 +155,29 @@ def _empty_changes() -> pd.DataFrame:
     return pd.DataFrame({c: pd.Series(dtype=object) for c in DETECTION_COLUMNS})
 
 
+def _empty_alerts() -> pd.DataFrame:
+    return pd.DataFrame({"series": pd.Series(dtype=object), "ts": pd.Series(dtype="int64"),
+                         "rule": pd.Series(dtype=object)})
+
+
 def _empty_quiet() -> pd.DataFrame:
     return pd.DataFrame({"series": pd.Series(dtype=object), "n_obs": pd.Series(dtype="int64"),
                          "quiet_obs": pd.Series(dtype="int64"),
                          "false_alarms": pd.Series(dtype="int64")})
 
 
+_FLOAT_COLS = ("delay_obs", "delay_s", "beta_before", "beta_after")
+
+
 def _sort_changes(ch: pd.DataFrame) -> pd.DataFrame:
+    """Canonical row order and column types (text as str, numbers as float64/int64)."""
+    ch = ch.astype({c: (float if c in _FLOAT_COLS else int if c == "window_obs" else str)
+                    for c in DETECTION_COLUMNS})
     return ch.sort_values(["series", "ts", "kind"], kind="stable").reset_index(drop=True)
 
 
 def score(sid: np.ndarray, ts: np.ndarray, names, alerts: pd.DataFrame, truth: pd.DataFrame,
-          horizon: int = DEFAULT_HORIZON) -> Scores:
+          horizon: int = DEFAULT_HORIZON, partial: bool = False) -> Scores:
     """Score alerts against truth on the processed observations ``(sid, ts)``.
 
     Parameters
@@ -172,6 +192,9 @@ def score(sid: np.ndarray, ts: np.ndarray, names, alerts: pd.DataFrame, truth: p
         From :func:`truth_frame` / :func:`read_truth`.
     horizon : int
         Detection window after the last affected observation, in observations (>= 1).
+    partial : bool
+        Score only the truth rows of series in ``names`` (one partition of the series; combine
+        partitions with :meth:`Scores.merge`).
     """
     if int(horizon) < 1:
         raise ValidationError(f"horizon = {horizon!r}: must be >= 1 observation", field="horizon")
@@ -207,6 +230,8 @@ def score(sid: np.ndarray, ts: np.ndarray, names, alerts: pd.DataFrame, truth: p
     false_alarms = np.bincount(a_code[valid], minlength=len(names)).astype(np.int64)
     for series, group in truth.groupby("series", sort=True):
         c = code_of.get(series)
+        if partial and c is None:
+            continue
         t = ts[starts[c]:ends[c]] if c is not None else np.array([], np.int64)
         n = t.size
         i0s = np.searchsorted(t, group["ts"].to_numpy(), "left")
