@@ -118,25 +118,41 @@ def _truthy(values: pd.Series) -> np.ndarray:
 
 
 def detection_summary(detection: pd.DataFrame) -> pd.DataFrame:
-    """Per change-point kind (and ``'all'``): change points, detected, detection rate, median
-    and maximum detection delay in observations; delays of undetected points are not counted."""
+    """Per change-point kind (and ``'all'`` when there are several): change points, scored
+    (detected or missed), detected, missed, detection rate (detected / scored), median and
+    longest detection delay in observations (over the detected ones only).
+
+    Reads the replay's ``detection.csv``: a ``status`` column (``detected``, ``missed``,
+    ``no_data``, ``not_scored``, see :mod:`monitor.detection`), or a boolean ``detected`` column.
+    """
+    cols = ["kind", "change_points", "scored", "detected", "missed", "detection_rate",
+            "median_delay_obs", "max_delay_obs"]
     if detection is None or len(detection) == 0:
-        return pd.DataFrame(columns=["kind", "change_points", "detected", "detection_rate",
-                                     "median_delay_obs", "max_delay_obs"])
-    det = detection.copy()
-    det["_hit"] = _truthy(det["detected"]) if "detected" in det else False
-    delay = pd.to_numeric(det.get("delay_obs"), errors="coerce") if "delay_obs" in det \
-        else pd.Series(np.nan, index=det.index)
-    det["_delay"] = delay.where(det["_hit"])
-    kind = det["kind"].astype(str) if "kind" in det else pd.Series("all", index=det.index)
-    rows = []
-    groups = [(k, det.loc[kind == k]) for k in sorted(kind.unique())]
+        return pd.DataFrame(columns=cols)
+    det = detection
+    if "status" in det:
+        status = det["status"].astype(str).str.strip()
+        hit = status.eq("detected").to_numpy()
+        scored = status.isin(["detected", "missed"]).to_numpy()
+    else:
+        hit = _truthy(det["detected"]) if "detected" in det else np.zeros(len(det), bool)
+        scored = np.ones(len(det), dtype=bool)
+    delay = (pd.to_numeric(det["delay_obs"], errors="coerce").to_numpy(dtype="float64",
+                                                                         na_value=np.nan)
+             if "delay_obs" in det else np.full(len(det), np.nan))
+    delay = np.where(hit, delay, np.nan)
+    kind = det["kind"].astype(str).to_numpy() if "kind" in det else np.full(len(det), "all")
+    groups = [(k, kind == k) for k in sorted(set(kind))]
     if len(groups) > 1:
-        groups.append(("all", det))
-    for k, g in groups:
-        n, hits = len(g), int(g["_hit"].sum())
-        rows.append({"kind": k, "change_points": n, "detected": hits,
-                     "detection_rate": hits / n if n else np.nan,
-                     "median_delay_obs": float(g["_delay"].median()) if hits else np.nan,
-                     "max_delay_obs": float(g["_delay"].max()) if hits else np.nan})
-    return pd.DataFrame(rows)
+        groups.append(("all", np.ones(len(det), dtype=bool)))
+    rows = []
+    for k, m in groups:
+        n_scored, n_hit = int(scored[m].sum()), int(hit[m].sum())
+        d = delay[m & hit]
+        d = d[np.isfinite(d)]
+        rows.append({"kind": k, "change_points": int(m.sum()), "scored": n_scored,
+                     "detected": n_hit, "missed": n_scored - n_hit,
+                     "detection_rate": n_hit / n_scored if n_scored else np.nan,
+                     "median_delay_obs": float(np.median(d)) if d.size else np.nan,
+                     "max_delay_obs": float(d.max()) if d.size else np.nan})
+    return pd.DataFrame(rows, columns=cols)

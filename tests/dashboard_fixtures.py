@@ -8,6 +8,7 @@ look like what the service writes; the estimator itself is tested elsewhere.
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
@@ -126,11 +127,23 @@ def write_replay_folder(folder: Path, facts: dict, n_obs: int = 200) -> Path:
     pd.DataFrame({"row": [17], "series": [facts["series"][0]], "ts": ["not-a-time"],
                   "reason": ["row 17: field 'ts' = 'not-a-time': not a timestamp"]}
                  ).to_csv(folder / "rejects.csv", index=False)
-    (folder / "summary.json").write_text('{"observations": 800, "alerts": 2, "false_alarms": 0,'
-                                         ' "settings": {"forgetting": 0.99}}')
-    pd.DataFrame({"series": [facts["series"][1], facts["series"][3]],
-                  "ts": ["2024-03-05T04:00:00Z"] * 2, "kind": ["elasticity_change"] * 2,
-                  "detected": [True, True], "delay_obs": [12, 15], "delay_time": ["12h", "15h"]}
+    detection = {"changes": 2, "detected": 2, "missed": 0, "detection_rate": 1.0,
+                 "median_delay_obs": 13.5, "p90_delay_obs": 14.7, "false_alarms": 0,
+                 "false_alarms_per_10k": 0.0, "quiet_obs": 500}
+    (folder / "summary.json").write_text(json.dumps(
+        {"rows": 801, "accepted": 800, "rejected": 1, "alerts": 2, "detection": detection,
+         "settings": {"estimator": {"forgetting": 0.99}}}))
+    # the columns of monitor.detection.DETECTION_COLUMNS (one row per known change point)
+    pd.DataFrame({"series": [facts["series"][i] for i in (1, 3, 0)],
+                  "kind": ["elasticity_change", "elasticity_change", "unit_error"],
+                  "ts": ["2024-03-05T04:00:00Z"] * 3, "end_ts": [None] * 3,
+                  "status": ["detected", "detected", "not_scored"],
+                  "rules": ["elasticity_change", "elasticity_change", ""],
+                  "alert_ts": ["2024-03-05T16:00:00Z", "2024-03-05T19:00:00Z", None],
+                  "alert_rule": ["elasticity_change", "elasticity_change", None],
+                  "delay_obs": [12, 15, None], "delay_s": [43200.0, 54000.0, None],
+                  "window_obs": [48, 48, None], "beta_before": [-1.5] * 3,
+                  "beta_after": [-0.7, -0.7, -1.5], "note": ["", "", "prices in cents"]}
                  ).to_csv(folder / "detection.csv", index=False)
     return folder
 

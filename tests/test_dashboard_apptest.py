@@ -186,9 +186,12 @@ def test_replay_page_reads_folder_and_detection(app, seeded):
     _no_errors(at)
     m = _metrics(at)
     assert (m["Series"], m["Alerts"], m["Rejected rows"]) == ("4", "2", "1")
-    assert m["False alarms"] == "0"
-    det = at.dataframe[0].value
-    assert det.loc[0, "detected"] == 2 and det.loc[0, "median_delay_obs"] == 13.5
+    assert (m["Detected"], m["Detection rate"], m["False alarms"]) == ("2 of 2", "100%", "0")
+    assert m["Median delay (observations)"] == "13.5"
+    det = at.dataframe[0].value.set_index("kind")
+    assert det.loc["elasticity_change", "detected"] == 2
+    assert det.loc["elasticity_change", "median_delay_obs"] == 13.5      # median of 12 and 15
+    assert det.loc["unit_error", "scored"] == 0                          # caught by validation
     assert len(_charts(at)) == 1
 
 

@@ -266,6 +266,20 @@ def test_replay_folder_and_detection_summary(tmp_path):
         files.load_replay(tmp_path)
 
 
+def test_detection_summary_reads_status_column():
+    # the layout of monitor.detection.DETECTION_COLUMNS: status detected / missed / no_data /
+    # not_scored; only detected and missed are scored, delays only over the detected
+    det = pd.DataFrame({"kind": ["elasticity_change"] * 4 + ["flat_price"],
+                        "status": ["detected", "missed", "detected", "no_data", "not_scored"],
+                        "delay_obs": [4, np.nan, 10, np.nan, np.nan]})
+    s = files.detection_summary(det).set_index("kind")
+    row = s.loc["elasticity_change"]
+    assert (row["change_points"], row["scored"], row["detected"], row["missed"]) == (4, 3, 2, 1)
+    assert row["detection_rate"] == pytest.approx(2 / 3) and row["median_delay_obs"] == 7.0
+    assert s.loc["flat_price", "scored"] == 0 and math.isnan(s.loc["flat_price", "detection_rate"])
+    assert s.loc["all", "change_points"] == 5
+
+
 def test_latest_per_series_takes_last_row():
     e = pd.DataFrame({"series": ["a", "b", "a"], "ts": ["2024-01-02T00:00:00Z",
                       "2024-01-01T00:00:00Z", "2024-01-01T00:00:00Z"], "beta": [1.0, 2.0, 3.0]})

@@ -69,6 +69,23 @@ def _run_form() -> None:
                 st.rerun()
 
 
+def _detection_metrics(block: dict) -> None:
+    """Headline numbers of summary.json's ``detection`` block (see monitor.detection)."""
+    rate = block.get("detection_rate")
+    cols = st.columns(4)
+    cols[0].metric("Detected", f"{block.get('detected', 0)} of {block.get('changes', 0)}",
+                   help="Changes in the response with data after them.")
+    cols[1].metric("Detection rate", "—" if rate is None else f"{100 * rate:.0f}%")
+    med, p90 = block.get("median_delay_obs"), block.get("p90_delay_obs")
+    cols[2].metric("Median delay (observations)", shaping.fmt_num(med, 1),
+                   help="90th percentile: " + shaping.fmt_num(p90, 1))
+    fa, per = block.get("false_alarms"), block.get("false_alarms_per_10k")
+    cols[3].metric("False alarms", "—" if fa is None else f"{fa}",
+                   help="per 10,000 quiet observations: " + shaping.fmt_num(per, 2))
+    if rate is None:
+        st.caption("— : no change in the response with data after it, so no rate.")
+
+
 def _detection(rep: dict) -> None:
     det = rep["detection"]
     summ = rep["summary"]
@@ -76,24 +93,26 @@ def _detection(rep: dict) -> None:
         st.info("No detection.csv: this replay ran without a truth file of known change points.")
         return
     st.subheader("Detection against known change points")
-    table = files.detection_summary(det)
-    st.dataframe(table, hide_index=True, placeholder="—", key="rp_det_summary",
+    block = summ.get("detection")
+    if isinstance(block, dict):
+        _detection_metrics(block)
+    elif summ.get("false_alarms") is not None:
+        st.metric("False alarms", f"{summ['false_alarms']}")
+    cc = st.column_config
+    st.dataframe(files.detection_summary(det), hide_index=True, placeholder="—",
+                 key="rp_det_summary",
                  column_config={
-                     "change_points": st.column_config.NumberColumn("change points"),
-                     "detection_rate": st.column_config.NumberColumn("detection rate",
-                                                                     format="percent"),
-                     "median_delay_obs": st.column_config.NumberColumn(
-                         "median delay (observations)", format="%.1f"),
-                     "max_delay_obs": st.column_config.NumberColumn(
-                         "longest delay (observations)", format="%.0f")})
+                     "change_points": cc.NumberColumn("change points"),
+                     "scored": cc.NumberColumn("scored", help="detected or missed; changes "
+                                               "without data after them or caught by "
+                                               "validation are not scored"),
+                     "detection_rate": cc.NumberColumn("detection rate", format="percent"),
+                     "median_delay_obs": cc.NumberColumn("median delay (observations)",
+                                                         format="%.1f"),
+                     "max_delay_obs": cc.NumberColumn("longest delay (observations)",
+                                                      format="%.0f")})
     st.caption("Delay: observations from the change point to the first alert that caught it; "
-               "undetected change points do not enter the delays.")
-    fa = summ.get("false_alarms")
-    if isinstance(fa, dict):
-        st.caption("False alarms (alerts not explained by a known change point): "
-                   + " · ".join(f"{k}: {v}" for k, v in fa.items()))
-    elif fa is not None:
-        st.metric("False alarms", f"{fa}")
+               "missed change points do not enter the delays.")
     st.markdown("**Per change point**")
     st.dataframe(det, hide_index=True, placeholder="—", key="rp_det")
 
