@@ -295,3 +295,21 @@ def test_trend_range_is_common_and_robust():
     assert (lo, hi) == tuple(np.quantile(vals, [0.01, 0.99]))
     assert shaping.trend_range([[], []]) is None
     assert shaping.trend_range([[1.0, 1.0]]) == (0.5, 1.5)
+
+
+# ---------------------------------------------------------------- elmon dashboard command
+def test_dashboard_command_line_and_errors(tmp_path, capsys):
+    from monitor.cli import main
+    from monitor.cli.dashboard_cmd import streamlit_command
+
+    cmd = streamlit_command("s.sqlite", 8765, truth="t.csv")
+    flags = dict(zip(cmd[5:-5:2], cmd[6:-5:2]))
+    assert cmd[1:4] == ["-m", "streamlit", "run"] and cmd[4].endswith("dashboard/app.py")
+    assert flags["--server.address"] == "127.0.0.1" and flags["--server.port"] == "8765"
+    assert flags["--server.headless"] == "true" and flags["--browser.gatherUsageStats"] == "false"
+    assert cmd[-5:] == ["--", "--db", "s.sqlite", "--truth", "t.csv"]
+    assert main(["dashboard", "--db", str(tmp_path / "none.sqlite")]) == 2
+    assert "none.sqlite" in capsys.readouterr().err
+    (tmp_path / "s.sqlite").write_bytes(b"")
+    assert main(["dashboard", "--db", str(tmp_path / "s.sqlite"), "--port", "70000"]) == 2
+    assert "--port = 70000" in capsys.readouterr().err
