@@ -1,8 +1,9 @@
 """The SQLite store of elmon: schema, migrations, atomic batches, alert lifecycle, queries.
 
 Import everything from here; the code lives in :mod:`monitor.store_core` (connection,
-transactions, migrations, timestamps), :mod:`monitor.store_schema` (the tables),
-:mod:`monitor.store_batch` (batch writes, checkpoints, offsets, thinning),
+transactions, migrations), :mod:`monitor.store_codec` (timestamps, JSON),
+:mod:`monitor.store_schema` (the tables), :mod:`monitor.store_batch` (batch writes,
+checkpoints, offsets, thinning) with :mod:`monitor.store_rows` (row checks),
 :mod:`monitor.store_alerts` (lifecycle) and :mod:`monitor.store_queries` (reads).
 
 Opening
@@ -18,12 +19,14 @@ opened for that one call, read-only for the queries). A Store can be shared by t
 Tables
 ------
 ``series`` (settings and running counts), ``observations`` (unique per series and ts),
-``rejects``, ``estimates`` (history, possibly thinned), ``latest_estimates`` (the newest
-estimate per series), ``alerts``, ``alert_events``, ``checkpoints``, ``source_offsets``,
-``outbox``, ``silences`` and ``migrations`` (id, name, applied_at). Column lists are in
-:mod:`monitor.store_schema`. Data times are ISO 8601 UTC text with ``Z``
-(:func:`format_ts`); wall times have six fractional digits (:func:`wall_ts`). NaN is stored
-as NULL, and a NULL ``beta`` only with status ``warming_up`` or ``low_variation``.
+``rejects``, ``estimates`` (history, possibly thinned), ``alerts``, ``alert_events``,
+``checkpoints``, ``source_offsets``, ``outbox``, ``silences``, ``migrations`` (id, name,
+applied_at), and two caches that :func:`write_batch` keeps in the same transaction so that
+the dashboard never scans history: ``latest_estimates`` (the newest estimate per series) and
+``sparklines`` (the last ``SPARK_KEEP`` = 60 stored betas per series). Column lists are in
+:mod:`monitor.store_schema`. Data times are ISO 8601 UTC text with ``Z`` (:func:`format_ts`);
+wall times have six fractional digits (:func:`wall_ts`). NaN is stored as NULL, and a NULL
+``beta`` only with status ``warming_up`` or ``low_variation``.
 
 Writing a batch (the service's loop)
 ------------------------------------
@@ -37,20 +40,23 @@ Writing a batch (the service's loop)
                 rejects=bad_rows)
 
 All of it commits in one transaction or none of it does: a crash between batches loses
-nothing and repeats nothing. Throughput measured on this 2-core machine class
-(``tests/test_store.py::test_throughput``): 100,000 observation rows in one ``write_batch``
-take about 0.6-0.8 s (130k-170k rows/s, including validation and timestamp checks).
+nothing and repeats nothing. Throughput measured on this 2-core machine class: 100,000
+observation rows in one ``write_batch`` take 0.6-0.8 s when the machine is otherwise idle
+(about 130k rows/s including the checks; 115k rows/s averaged while the table grows to a
+million rows), about half that while other jobs share the cores. Estimate rows cost about
+1.3 times as much (more columns, plus the two caches).
 
 Size on disk
 ------------
-Measured on a store holding 1,000,000 observations and estimates of 1,000 series (hourly
-timestamps, eight-character series names, no controls, all estimate fields set), after
-``VACUUM``: about 77 bytes per observation row (table plus its ``(series, ts)`` index) and
-about 125 bytes per estimate row (12 columns, ``WITHOUT ROWID`` keyed by series and ts). So
-a million observations cost about 77 MB with nothing thinned, 202 MB with every estimate
-kept (``every_n=1``), and about 82 MB with ``every_n=24`` (one estimate a day of hourly data,
-plus status changes). A year of hourly data for 2,000 series is 17.5 million observations:
-about 1.35 GB plus 2.2 GB of estimates at ``every_n=1``, or 1.45 GB in all at ``every_n=24``.
+Measured after ``VACUUM`` on a store with 1,000 series of 1,000 hourly observations each
+(series names of 8 characters, ``source`` and ``source_row`` set, no controls) and one
+estimate per observation with all twelve fields set: 109 bytes per observation (table plus
+its unique ``(series, ts)`` index) and 125 bytes per estimate row (``WITHOUT ROWID``, keyed by
+series and ts). Per million observations that is 109 MB with no estimate history, 234 MB
+keeping every estimate (``every_n=1``), and about 115 MB with ``every_n=24`` (one estimate a
+day of hourly data, plus each status change). A year of hourly data for 2,000 series (17.5
+million observations) is about 4.1 GB at ``every_n=1`` and 2.0 GB at ``every_n=24``. Controls
+add their JSON text (about 12 bytes per named value). The two caches add about 2.5 kB per series.
 """
 
 from __future__ import annotations
@@ -63,20 +69,22 @@ from monitor.store_alerts import (ALERT_KINDS, ALERT_STATES, SEVERITIES, acknowl
 from monitor.store_batch import (ESTIMATE_COLUMNS, OBSERVATION_COLUMNS, Checkpoint,
                                  existing_observation_keys, get_offset, load_checkpoints,
                                  thin_estimates, write_batch)
+from monitor.store_codec import (format_ts, format_ts_array, from_json, parse_ts,
+                                 parse_ts_column, to_json, utc_now, wall_ts)
 from monitor.store_core import (DEFAULT_BUSY_TIMEOUT, Store, applied_migrations, check_schema,
-                                format_ts, format_ts_array, from_json, migrate, open_store,
-                                parse_ts, to_json, utc_now, wall_ts)
+                                migrate, open_store)
 from monitor.store_queries import (alert_events, latest_estimates, list_alerts, list_outbox,
                                    list_rejects, list_silences, open_alerts, series_history,
                                    series_observations, source_status, sparkline_data,
                                    store_summary)
-from monitor.store_schema import MIGRATIONS, SCHEMA_VERSION, TABLES
+from monitor.store_schema import MIGRATIONS, SCHEMA_VERSION, SPARK_KEEP, TABLES
 
 __all__ = [
     "ALERT_KINDS", "ALERT_STATES", "SEVERITIES", "ESTIMATE_COLUMNS", "OBSERVATION_COLUMNS",
-    "DEFAULT_BUSY_TIMEOUT", "MIGRATIONS", "SCHEMA_VERSION", "TABLES",
+    "DEFAULT_BUSY_TIMEOUT", "MIGRATIONS", "SCHEMA_VERSION", "SPARK_KEEP", "TABLES",
     "Store", "StoreError", "Checkpoint", "open_store", "migrate", "check_schema",
     "applied_migrations", "format_ts", "format_ts_array", "wall_ts", "utc_now", "parse_ts",
+    "parse_ts_column",
     "to_json", "from_json",
     "write_batch", "thin_estimates", "existing_observation_keys", "load_checkpoints",
     "get_offset",

@@ -28,7 +28,8 @@ from typing import Any
 import pandas as pd
 
 from monitor.errors import StoreError, ValidationError
-from monitor.store_core import Store, accepts_path, format_ts, from_json, parse_ts, to_json, wall_ts
+from monitor.store_codec import format_ts, from_json, parse_ts, to_json, wall_ts
+from monitor.store_core import Store, accepts_path
 
 #: Alert kinds the rules raise (other lower-case names are accepted for new rules).
 ALERT_KINDS = ("out_of_bounds", "elasticity_change", "level_shift", "sign_flip",

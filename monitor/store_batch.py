@@ -7,24 +7,55 @@ Rows are written with ``executemany`` inside one ``BEGIN IMMEDIATE`` transaction
 
 from __future__ import annotations
 
-import dataclasses
+import json
 from typing import Any, Iterable, Mapping, NamedTuple
 
 import numpy as np
 import pandas as pd
 
-from monitor.errors import ConfigError, StoreError, ValidationError
+from monitor.errors import ConfigError, StoreError
 from monitor.store_alerts import apply_alert_change
-from monitor.store_core import Store, accepts_path, format_ts, format_ts_array, from_json, to_json, utc_now, \
-    wall_ts
-from monitor.types import STATUS_LABELS
+from monitor.store_codec import format_ts_array, from_json, wall_ts
+from monitor.store_core import Store, accepts_path
+from monitor.store_schema import SPARK_KEEP, beta_text, spark_text
+from monitor.store_rows import (ESTIMATE_COLUMNS, OBSERVATION_COLUMNS, as_frame,  # noqa: F401
+                                checkpoint_rows, estimate_rows, newest_per_series,
+                                observation_rows,
+                                offset_statements, reject_rows, series_counts, settings_sql)
 
-OBSERVATION_COLUMNS = ("series", "ts", "price", "quantity", "controls", "source", "source_row")
-ESTIMATE_COLUMNS = ("series", "ts", "beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "status",
-                    "intercept", "resid_sd", "innovation", "z")
-_EST_FLOATS = ("beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "intercept", "resid_sd",
-               "innovation", "z")
-_SERIES_SETTINGS = ("low", "high", "forgetting", "settings")
+
+_UPSERT_SPARK = ("INSERT INTO sparklines (series, n, ts, beta) VALUES (?, ?, ?, ?) ON CONFLICT "
+                 "(series) DO UPDATE SET n = excluded.n, ts = excluded.ts, beta = excluded.beta")
+
+
+def _spark_updates(store: Store, est_df: pd.DataFrame, est_rows: list[tuple]) -> list[tuple]:
+    """New sparkline cache rows: each series' cached points plus this batch's, last SPARK_KEEP.
+
+    Rows of a batch normally come after the cached ones; a late estimate (older ``ts``) is
+    merged in time order.
+    """
+    order = pd.DataFrame({"series": est_df["series"].to_numpy(object),
+                          "ts": est_df["ts"].to_numpy(object)})
+    order = order.sort_values(["series", "ts"], kind="stable")
+    order = order.groupby("series", sort=False).tail(SPARK_KEEP)
+    idx = order.index.to_numpy()
+    names = order["series"].to_numpy(object)
+    cuts = np.flatnonzero(names[1:] != names[:-1]) + 1
+    starts, ends = np.r_[0, cuts], np.r_[cuts, len(names)]
+    cached = {r[0]: r[1:] for r in store.conn.execute(
+        "SELECT series, ts, beta FROM sparklines WHERE series IN (SELECT value FROM json_each(?))",
+        (json.dumps(names[starts].tolist()),))}
+    ts_all = order["ts"].tolist()
+    beta_all = [beta_text(est_rows[i][2]) for i in idx]
+    out = []
+    for lo, hi in zip(starts.tolist(), ends.tolist()):
+        name = names[lo]
+        new = list(zip(ts_all[lo:hi], beta_all[lo:hi]))
+        if name in cached:
+            old = list(zip(cached[name][0].split(","), cached[name][1].split(",")))
+            new = old + new if old[-1][0] < new[0][0] else sorted(old + new)
+        out.append((name, *spark_text(new[-SPARK_KEEP:])))
+    return out
 
 
 class Checkpoint(NamedTuple):
@@ -33,130 +64,6 @@ class Checkpoint(NamedTuple):
     state: Any
     last_ts: str | None
     last_pos: Any
-
-
-def _frame(data: Any, key: str | None = None) -> pd.DataFrame:
-    """DataFrame from a DataFrame, list of dicts/dataclasses, or a mapping key -> dict."""
-    if isinstance(data, pd.DataFrame):
-        return data.reset_index(drop=True)
-    if isinstance(data, Mapping) and key is not None:
-        data = [{key: k, **(v if isinstance(v, Mapping) else {"value": v})}
-                for k, v in data.items()]
-    rows = [dataclasses.asdict(r) if dataclasses.is_dataclass(r) else dict(r) for r in data]
-    return pd.DataFrame.from_records(rows)
-
-
-def _objects(values: np.ndarray) -> list:
-    """Float array -> list with ``None`` in place of NaN (SQLite NULL)."""
-    out = values.astype(object)
-    out[np.isnan(values)] = None
-    return out.tolist()
-
-
-def _floats(df: pd.DataFrame, col: str, what: str) -> np.ndarray:
-    if col not in df.columns:
-        return np.full(len(df), np.nan)
-    try:
-        values = pd.to_numeric(df[col], errors="raise").to_numpy(dtype="float64",
-                                                                  na_value=np.nan)
-    except (ValueError, TypeError) as exc:
-        raise ValidationError(f"{what}: column {col!r} is not numeric ({exc})",
-                              field=col) from None
-    return values
-
-
-def _where(df: pd.DataFrame, i: int, what: str) -> str:
-    return f"{what} {i} (series {df['series'].iloc[i]!r}, ts {df['ts'].iloc[i]!r})"
-
-
-def _require(df: pd.DataFrame, cols: Iterable[str], what: str) -> None:
-    missing = [c for c in cols if c not in df.columns]
-    if missing:
-        raise ValidationError(f"{what}: missing column(s) {', '.join(missing)}",
-                              field=missing[0])
-    for col in ("series",):
-        if col in df.columns:
-            bad = df[col].isna() | (df[col].astype(str).str.len() == 0)
-            if bad.any():
-                i = int(np.flatnonzero(bad.to_numpy())[0])
-                raise ValidationError(f"{what} {i}: field 'series' is empty", field="series",
-                                      row=i)
-
-
-def _observation_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
-    df = _frame(data)
-    what = "observation"
-    _require(df, ("series", "ts", "price", "quantity"), what)
-    df = df.assign(series=df["series"].astype(str), ts=format_ts_array(df["ts"]))
-    price, qty = _floats(df, "price", what), _floats(df, "quantity", what)
-    for name, vals, ok in (("price", price, price > 0), ("quantity", qty, qty >= 0)):
-        bad = ~(np.isfinite(vals) & ok)
-        if bad.any():
-            i = int(np.flatnonzero(bad)[0])
-            rule = "must be > 0" if name == "price" else "must be >= 0"
-            raise ValidationError(f"{_where(df, i, what)}: field {name!r} = {float(vals[i])!r}: "
-                                  f"{name} {rule} and finite (validate rows before the store)",
-                                  field=name, value=vals[i], row=i)
-    dup = df.duplicated(["series", "ts"])
-    if dup.any():
-        i = int(np.flatnonzero(dup.to_numpy())[0])
-        raise StoreError(f"{_where(df, i, what)} appears twice in the batch")
-    extra = [c for c in df.columns if c not in OBSERVATION_COLUMNS]
-    if "controls" in df.columns:
-        controls = [v if isinstance(v, str) or v is None else
-                    (None if isinstance(v, float) and np.isnan(v) else to_json(dict(v)))
-                    for v in df["controls"].tolist()]
-    elif extra:
-        packed = df[extra].to_dict("records")
-        controls = [to_json(r) for r in packed]
-    else:
-        controls = [None] * len(df)
-    source = df["source"].astype(object).where(df["source"].notna(), None).tolist() \
-        if "source" in df.columns else [None] * len(df)
-    srow = _objects(_floats(df, "source_row", what))
-    srow = [None if v is None else int(v) for v in srow]
-    rows = list(zip(df["series"].tolist(), df["ts"].tolist(), price.tolist(), qty.tolist(),
-                    controls, source, srow))
-    return df, rows
-
-
-def _estimate_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
-    df = _frame(data)
-    what = "estimate"
-    _require(df, ("series", "ts", "status"), what)
-    df = df.assign(series=df["series"].astype(str), ts=format_ts_array(df["ts"]))
-    status = df["status"].astype(object)
-    bad = ~status.isin(STATUS_LABELS)
-    if bad.any():
-        i = int(np.flatnonzero(bad.to_numpy())[0])
-        raise ValidationError(f"{_where(df, i, what)}: field 'status' = {status.iloc[i]!r}: "
-                              f"status must be one of {', '.join(STATUS_LABELS)}",
-                              field="status", value=status.iloc[i], row=i)
-    cols = []
-    for col in _EST_FLOATS:
-        vals = _floats(df, col, what)
-        if np.isinf(vals).any():
-            i = int(np.flatnonzero(np.isinf(vals))[0])
-            raise ValidationError(f"{_where(df, i, what)}: field {col!r} = {float(vals[i])!r}: "
-                                  f"estimates must be finite or NaN", field=col, row=i)
-        if col == "beta":
-            undefined = np.isnan(vals) & ~status.isin(("warming_up", "low_variation")).to_numpy()
-            if undefined.any():
-                i = int(np.flatnonzero(undefined)[0])
-                raise ValidationError(f"{_where(df, i, what)}: beta is NaN with status "
-                                      f"{status.iloc[i]!r}: an undefined beta needs status "
-                                      f"warming_up or low_variation", field="beta", row=i)
-        cols.append(_objects(vals))
-    rows = [(s, t, *vals[:5], st, *vals[5:]) for s, t, st, *vals in
-            zip(df["series"].tolist(), df["ts"].tolist(), status.tolist(), *cols)]
-    return df, rows
-
-
-def _latest(df: pd.DataFrame, rows: list[tuple]) -> list[tuple]:
-    order = pd.DataFrame({"series": df["series"], "ts": df["ts"]})
-    order = order.sort_values(["series", "ts"], kind="stable").drop_duplicates("series",
-                                                                               keep="last")
-    return [rows[i] for i in order.index]
 
 
 _INSERT_OBS = ("INSERT INTO observations (series, ts, price, quantity, controls, source, "
@@ -174,89 +81,6 @@ _UPSERT_SERIES_COUNTS = (
     " last_ts = max(coalesce(last_ts, excluded.last_ts), coalesce(excluded.last_ts, last_ts)),"
     " n_obs = n_obs + excluded.n_obs, n_estimates = n_estimates + excluded.n_estimates,"
     " updated_at = excluded.updated_at")
-
-
-def _series_counts(obs: pd.DataFrame | None, est: pd.DataFrame | None, now: str) -> list[tuple]:
-    parts = {}
-    if obs is not None and len(obs):
-        g = obs.groupby("series")["ts"].agg(["min", "max", "size"])
-        for s, lo, hi, n in zip(g.index.tolist(), g["min"].tolist(), g["max"].tolist(),
-                                g["size"].tolist()):
-            parts[s] = [lo, hi, int(n), 0]
-    if est is not None and len(est):
-        for s, n in est.groupby("series").size().items():
-            parts.setdefault(s, [None, None, 0, 0])[3] = int(n)
-    return [(s, lo, hi, n, ne, now) for s, (lo, hi, n, ne) in parts.items()]
-
-
-def _settings_sql(df: pd.DataFrame, now: str) -> list[tuple[str, tuple]]:
-    statements = []
-    for rec in df.to_dict("records"):
-        cols = [c for c in _SERIES_SETTINGS if c in rec]
-        unknown = [c for c in rec if c != "series" and c not in _SERIES_SETTINGS]
-        if unknown:
-            raise ValidationError(f"series {rec['series']!r}: unknown setting(s) "
-                                  f"{', '.join(unknown)}; allowed: {', '.join(_SERIES_SETTINGS)}",
-                                  field=unknown[0])
-        values = [to_json(rec[c]) if c == "settings" else
-                  (None if rec[c] is None or pd.isna(rec[c]) else float(rec[c])) for c in cols]
-        low, high = rec.get("low"), rec.get("high")
-        if low is not None and high is not None and not pd.isna(low) and not pd.isna(high) \
-                and float(low) >= float(high):
-            raise ValidationError(f"series {rec['series']!r}: bounds low = {low} must be below "
-                                  f"high = {high}", field="low", value=low)
-        sets = ", ".join(f"{c} = excluded.{c}" for c in cols + ["updated_at"])
-        sql = (f"INSERT INTO series (series, {', '.join(cols + ['updated_at'])}) VALUES "
-               f"({', '.join('?' * (len(cols) + 2))}) ON CONFLICT (series) DO UPDATE SET {sets}")
-        statements.append((sql, (str(rec["series"]), *values, now)))
-    return statements
-
-
-def _reject_rows(data: Any, now: str) -> list[tuple]:
-    df = _frame(data)
-    if "reason" not in df.columns:
-        raise ValidationError("reject: missing column 'reason'", field="reason")
-    rows = []
-    for i, r in enumerate(df.to_dict("records")):
-        get = lambda k: None if k not in r or (not isinstance(r[k], (dict, list)) and
-                                               pd.isna(r[k])) else r[k]
-        reason = get("reason")
-        if not reason:
-            raise ValidationError(f"reject {i}: field 'reason' is empty; every rejected row "
-                                  f"needs its reason", field="reason", row=i)
-        row_no = get("row")
-        value = get("value")
-        rows.append((get("source"), None if row_no is None else int(row_no), get("series"),
-                     None if get("ts") is None else str(get("ts")), get("field"),
-                     None if value is None else str(value), to_json(get("raw")), str(reason),
-                     now))
-    return rows
-
-
-def _checkpoint_rows(data: Any, now: str) -> list[tuple]:
-    df = _frame(data, key="series")
-    if "state" not in df.columns:
-        raise ValidationError("checkpoint: missing field 'state'", field="state")
-    rows = []
-    for r in df.to_dict("records"):
-        last_ts = r.get("last_ts")
-        rows.append((str(r["series"]), to_json(r["state"]),
-                     None if last_ts is None or (isinstance(last_ts, float) and np.isnan(last_ts))
-                     else format_ts(last_ts), to_json(r.get("last_pos")), now))
-    return rows
-
-
-def _offset_statements(data: Any, now: str) -> list[tuple]:
-    df = _frame(data, key="source")
-    rows = []
-    for r in df.to_dict("records"):
-        has_pos = "position" in r and r["position"] is not None
-        err = r.get("last_error")
-        err = None if err is None or (isinstance(err, float) and np.isnan(err)) else str(err)
-        rows.append((str(r["source"]), r.get("kind"), to_json(r["position"]) if has_pos else None,
-                     int(r.get("rows_read") or 0), int(r.get("rows_rejected") or 0), now, err,
-                     int(has_pos)))
-    return rows
 
 
 _UPSERT_OFFSET = (
@@ -323,23 +147,23 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
                                "alerts_reminded": [], "alerts_unchanged": []}
     obs_df = obs_rows = est_df = est_rows = latest_rows = None
     if observations is not None:
-        obs_df, obs_rows = _observation_rows(observations)
+        obs_df, obs_rows = observation_rows(observations)
     if estimates is not None:
-        est_df, est_rows = _estimate_rows(estimates)
+        est_df, est_rows = estimate_rows(estimates)
     if latest_estimates is not None:
-        latest_rows = _latest(*_estimate_rows(latest_estimates))
+        latest_rows = newest_per_series(*estimate_rows(latest_estimates))
     elif est_rows:
-        latest_rows = _latest(est_df, est_rows)
-    settings = _settings_sql(_frame(series, key="series"), now) if series is not None else []
-    reject_rows = _reject_rows(rejects, now) if rejects is not None else []
-    ckpt_rows = _checkpoint_rows(checkpoints, now) if checkpoints is not None else []
-    offset_rows = _offset_statements(offsets, now) if offsets is not None else []
+        latest_rows = newest_per_series(est_df, est_rows)
+    settings_stmts = settings_sql(as_frame(series, key="series"), now) if series is not None else []
+    reject_params = reject_rows(rejects, now) if rejects is not None else []
+    ckpt_params = checkpoint_rows(checkpoints, now) if checkpoints is not None else []
+    offset_params = offset_statements(offsets, now) if offsets is not None else []
     changes = list(alert_changes or [])
     with store.atomic():
-        for sql, params in settings:
+        for sql, params in settings_stmts:
             store.conn.execute(sql, params)
-        summary["series"] = len(settings)
-        counts = _series_counts(obs_df, est_df, now)
+        summary["series"] = len(settings_stmts)
+        counts = series_counts(obs_df, est_df, now)
         if counts:
             store.conn.executemany(_UPSERT_SERIES_COUNTS, counts)
         if obs_rows:
@@ -361,21 +185,23 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
             summary["estimates"] = len(est_rows)
         if latest_rows:
             store.conn.executemany(_UPSERT_LATEST, latest_rows)
-        if reject_rows:
+        if est_rows:
+            store.conn.executemany(_UPSERT_SPARK, _spark_updates(store, est_df, est_rows))
+        if reject_params:
             store.conn.executemany(
                 "INSERT INTO rejects (source, row, series, ts, field, value, raw, reason, "
-                "rejected_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)", reject_rows)
-            summary["rejects"] = len(reject_rows)
-        if ckpt_rows:
+                "rejected_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)", reject_params)
+            summary["rejects"] = len(reject_params)
+        if ckpt_params:
             store.conn.executemany(
                 "INSERT INTO checkpoints (series, state, last_ts, last_pos, updated_at) VALUES "
                 "(?, ?, ?, ?, ?) ON CONFLICT (series) DO UPDATE SET state = excluded.state, "
                 "last_ts = excluded.last_ts, last_pos = excluded.last_pos, "
-                "updated_at = excluded.updated_at", ckpt_rows)
-            summary["checkpoints"] = len(ckpt_rows)
-        if offset_rows:
-            store.conn.executemany(_UPSERT_OFFSET, offset_rows)
-            summary["offsets"] = len(offset_rows)
+                "updated_at = excluded.updated_at", ckpt_params)
+            summary["checkpoints"] = len(ckpt_params)
+        if offset_params:
+            store.conn.executemany(_UPSERT_OFFSET, offset_params)
+            summary["offsets"] = len(offset_params)
         for change in changes:
             outcome, alert_id = apply_alert_change(store, change, now=now)
             if alert_id is not None:
@@ -399,7 +225,7 @@ def existing_observation_keys(store: Store, frame: Any) -> set[tuple[str, str]]:
     One indexed range query per distinct series; ``ts`` is normalized with
     :func:`format_ts_array` first.
     """
-    df = _frame(frame)
+    df = as_frame(frame)
     if not len(df):
         return set()
     df = pd.DataFrame({"series": df["series"].astype(str), "ts": format_ts_array(df["ts"])})

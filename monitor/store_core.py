@@ -1,4 +1,4 @@
-"""The :class:`Store` connection, transactions, migrations and timestamp helpers.
+"""The :class:`Store` connection, transactions and migrations.
 
 Everything public here is re-exported by :mod:`monitor.store`, which documents the whole store.
 
@@ -16,21 +16,17 @@ writer do not block each other. Both connections run in autocommit mode
 from __future__ import annotations
 
 import contextlib
-import datetime as dt
 import functools
-import json
-import math
-import re
 import sqlite3
 import threading
 from pathlib import Path
 from typing import Any, Iterator, Sequence
 
-import numpy as np
 import pandas as pd
 import sqlite_utils
 
-from monitor.errors import StoreError, ValidationError
+from monitor.errors import StoreError
+from monitor.store_codec import parse_ts_column, utc_now
 from monitor.store_schema import MIGRATIONS, MIGRATIONS_TABLE, SCHEMA_VERSION
 
 #: Seconds a connection waits for a lock held by another writer before giving up.
@@ -40,161 +36,6 @@ DEFAULT_BUSY_TIMEOUT = 10.0
 FLOAT_COLUMNS = frozenset({"beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "intercept",
                            "resid_sd", "innovation", "z", "price", "quantity", "low", "high",
                            "forgetting", "lag_seconds"})
-
-_WHOLE_SECOND = re.compile(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ$")
-
-
-# ---------------------------------------------------------------- timestamps and JSON
-
-def _to_timestamp(value: Any) -> pd.Timestamp:
-    """Parse one timestamp to a UTC :class:`pandas.Timestamp` (naive means UTC)."""
-    if isinstance(value, (bool, np.bool_)):
-        raise ValidationError(f"timestamp {value!r} is not a time", field="ts", value=value)
-    try:
-        if isinstance(value, (int, float, np.integer, np.floating)):
-            stamp = pd.Timestamp(float(value), unit="s", tz="UTC")
-        else:
-            stamp = pd.Timestamp(value)
-    except (ValueError, TypeError, OverflowError) as exc:
-        raise ValidationError(f"timestamp {value!r} is not ISO 8601 or epoch seconds ({exc})",
-                              field="ts", value=value) from None
-    if stamp is pd.NaT:
-        raise ValidationError(f"timestamp {value!r} is empty", field="ts", value=value)
-    return stamp.tz_localize("UTC") if stamp.tzinfo is None else stamp.tz_convert("UTC")
-
-
-def format_ts(value: Any) -> str:
-    """Canonical data timestamp: ISO 8601 UTC, ``Z`` suffix, microseconds only when present.
-
-    Accepts ISO strings (with an offset, ``Z`` or naive = UTC), datetimes, pandas/numpy
-    timestamps and epoch seconds.
-
-    >>> format_ts("2024-03-01 12:00:00+01:00")
-    '2024-03-01T11:00:00Z'
-    >>> format_ts(1709294400.25)
-    '2024-03-01T12:00:00.250000Z'
-    """
-    if isinstance(value, str) and _WHOLE_SECOND.match(value):
-        return value
-    stamp = _to_timestamp(value)
-    if stamp.microsecond or stamp.nanosecond:
-        return stamp.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
-    return stamp.strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
-def format_ts_array(values: Any, field: str = "ts") -> np.ndarray:
-    """Vectorized :func:`format_ts` over a column; returns an object array of strings.
-
-    Raises :class:`ValidationError` naming the first value that is empty or does not parse.
-    """
-    col = values if isinstance(values, pd.Series) else pd.Series(values)
-    col = col.reset_index(drop=True)
-    if pd.api.types.is_datetime64_any_dtype(col.dtype):
-        stamps = col
-    elif pd.api.types.is_numeric_dtype(col.dtype) and not pd.api.types.is_bool_dtype(col.dtype):
-        stamps = pd.to_datetime(col.astype("float64"), unit="s", utc=True)
-    else:
-        text = col.astype(object)
-        is_str = np.fromiter((isinstance(v, str) for v in text), bool, len(text))
-        if is_str.all() and col.astype(str).str.match(_WHOLE_SECOND.pattern).all():
-            return text.to_numpy(object)
-        try:
-            if is_str.all():
-                stamps = pd.to_datetime(text, utc=True, format="ISO8601", errors="coerce")
-            else:   # datetimes, Timestamps or a mixture: one at a time, each message exact
-                stamps = pd.Series([_to_timestamp(v) for v in text], dtype="datetime64[ns, UTC]")
-        except (ValueError, TypeError):
-            stamps = pd.Series([_to_timestamp(v) for v in text], dtype="datetime64[ns, UTC]")
-        bad = stamps.isna().to_numpy()
-        if bad.any():
-            i = int(np.flatnonzero(bad)[0])
-            raise ValidationError(f"{field} {text[i]!r} at position {i} is not an ISO 8601 "
-                                  f"timestamp", field=field, value=text[i], row=i)
-    if stamps.dt.tz is not None:
-        stamps = stamps.dt.tz_convert("UTC").dt.tz_localize(None)
-    arr = stamps.to_numpy("datetime64[ns]")
-    bad = np.isnat(arr)
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
-        raise ValidationError(f"{field} at position {i} is empty (NaT)", field=field, row=i)
-    # batches repeat timestamps (every series at the same hour): format each distinct one once
-    uniq, inverse = np.unique(arr, return_inverse=True)
-    secs = uniq.astype("datetime64[s]")
-    whole = secs == uniq
-    text = np.char.add(np.datetime_as_string(secs, unit="s"), "Z").astype(object)
-    if not whole.all():
-        frac = uniq[~whole].astype("datetime64[us]")
-        text[~whole] = np.char.add(np.datetime_as_string(frac, unit="us"), "Z")
-    return text[inverse.reshape(-1)]
-
-
-def wall_ts(value: Any = None) -> str:
-    """Wall-clock timestamp, fixed width ``YYYY-MM-DDTHH:MM:SS.ffffffZ``; now when ``None``.
-
-    Wall times are compared as text in SQL (``next_attempt_at <= ?``), so they always carry
-    six fractional digits.
-
-    >>> wall_ts("2024-05-01T08:30:00Z")
-    '2024-05-01T08:30:00.000000Z'
-    """
-    stamp = pd.Timestamp.now(tz="UTC") if value is None else _to_timestamp(value)
-    return stamp.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
-
-
-def utc_now() -> str:
-    """The current wall-clock time as :func:`wall_ts` text."""
-    return wall_ts(None)
-
-
-def parse_ts(value: Any) -> pd.Timestamp:
-    """Parse a stored (or any accepted) timestamp into a UTC :class:`pandas.Timestamp`."""
-    return _to_timestamp(value)
-
-
-def _json_default(obj: Any) -> Any:
-    if isinstance(obj, np.integer):
-        return int(obj)
-    if isinstance(obj, np.floating):
-        return float(obj)
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    if isinstance(obj, (pd.Timestamp, dt.datetime, np.datetime64)):
-        return format_ts(obj)
-    raise TypeError(f"{type(obj).__name__} is not JSON serializable")
-
-
-def to_json(obj: Any, *, finite: bool = False) -> str | None:
-    """Compact JSON text (sorted keys); ``None`` stays ``None``.
-
-    With ``finite=True`` every NaN or infinity becomes ``null`` (for payloads sent out);
-    otherwise they are written as ``NaN``/``Infinity``, which Python reads back bit for bit
-    (estimator checkpoints).
-    """
-    if obj is None:
-        return None
-    if finite:
-        obj = finite_or_none(json.loads(json.dumps(obj, default=_json_default)))
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=_json_default,
-                      allow_nan=not finite)
-
-
-def finite_or_none(obj: Any) -> Any:
-    """Replace non-finite floats by ``None``, recursively through dicts and lists."""
-    if isinstance(obj, float):
-        return obj if math.isfinite(obj) else None
-    if isinstance(obj, dict):
-        return {k: finite_or_none(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [finite_or_none(v) for v in obj]
-    return obj
-
-
-def from_json(text: str | None) -> Any:
-    """Inverse of :func:`to_json` (``None`` and empty text give ``None``)."""
-    return json.loads(text) if text else None
-
 
 # ---------------------------------------------------------------- the store
 
@@ -350,7 +191,7 @@ class Store:
             df[col] = df[col].astype("float64")
         for col in ts_columns:
             if col in df.columns:
-                df[col] = pd.to_datetime(df[col], utc=True, format="ISO8601")
+                df[col] = parse_ts_column(df[col])
         return df
 
     def schema_version(self) -> int:
@@ -402,11 +243,12 @@ def accepts_path(readonly: bool):
 
 # ---------------------------------------------------------------- migrations
 
-def migrate(store: Store) -> list[int]:
-    """Apply pending migrations in id order; returns the ids applied (empty when current).
+def migrate(store: Store, until: int | None = None) -> list[int]:
+    """Apply pending migrations in id order (up to id ``until``); returns the ids applied.
 
     Each migration runs in its own ``BEGIN IMMEDIATE`` transaction with its ``migrations`` row,
-    re-checked inside the transaction, so two processes opening a new file at once are safe.
+    re-checked inside the transaction, so two processes opening a new file at once are safe
+    and a failing migration leaves the store at the previous version.
     """
     applied: list[int] = []
     with store.atomic():
@@ -415,12 +257,17 @@ def migrate(store: Store) -> list[int]:
     if version > SCHEMA_VERSION:
         raise StoreError(f"store {str(store.path)!r} has schema version {version}, newer than "
                          f"this elmon ({SCHEMA_VERSION}); upgrade elmon")
-    for mig_id, name, statements in MIGRATIONS:
+    for mig_id, name, steps in MIGRATIONS:
+        if until is not None and mig_id > until:
+            break
         with store.atomic():
             if store.scalar("SELECT 1 FROM migrations WHERE id = ?", (mig_id,)):
                 continue
-            for sql in statements:
-                store.execute(sql)
+            for step in steps:
+                if callable(step):
+                    step(store.conn)
+                else:
+                    store.execute(step)
             store.execute("INSERT INTO migrations (id, name, applied_at) VALUES (?, ?, ?)",
                           (mig_id, name, utc_now()))
         applied.append(mig_id)

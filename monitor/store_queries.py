@@ -13,11 +13,14 @@ from __future__ import annotations
 import json
 from typing import Any, Iterable
 
+import numpy as np
 import pandas as pd
 
 from monitor.errors import ValidationError
 from monitor.store_alerts import ALERT_STATES, get_alert
-from monitor.store_core import Store, accepts_path, format_ts, from_json, parse_ts, wall_ts
+from monitor.store_codec import format_ts, from_json, parse_ts, parse_ts_column, wall_ts
+from monitor.store_core import Store, accepts_path
+from monitor.store_schema import SPARK_KEEP
 
 _ALERT_TS = ("opened_ts", "opened_at", "updated_at", "resolved_ts", "resolved_at",
              "last_reminded_at")
@@ -190,22 +193,38 @@ def sparkline_data(store: Store, series_list: Iterable[str] | None = None,
                    points: int = 30) -> pd.DataFrame:
     """The last ``points`` stored estimates of each series (all series, or ``series_list``).
 
-    Long format ``series, ts, beta, beta_lo, beta_hi, status`` ordered by series then ts. One
-    query: for each series (``CROSS JOIN`` keeps series as the outer loop) an index seek finds
-    its ``points``-th newest ``ts``, then a range scan reads the rows after it.
+    Long format ``series, ts, beta`` ordered by series then ts. Up to ``SPARK_KEEP`` (60)
+    points come from the ``sparklines`` cache that :func:`write_batch` keeps: one row per
+    series, so 10,000 trend lines cost one small read. More points are read from the history
+    (per series an index seek for its ``points``-th newest ``ts``, then a range scan).
     """
     points = int(points)
     if points < 1:
         raise ValidationError(f"points = {points}: need at least 1", field="points")
-    sql = ("SELECT e.series, e.ts, e.beta, e.beta_lo, e.beta_hi, e.status FROM series s"
-           " CROSS JOIN estimates e ON e.series = s.series AND e.ts >= coalesce((SELECT e2.ts FROM"
-           " estimates e2 WHERE e2.series = s.series ORDER BY e2.ts DESC LIMIT 1 OFFSET ?), '')")
-    params: list[Any] = [points - 1]
+    where, params = "", []
     if series_list is not None:
-        sql += " WHERE s.series IN (SELECT value FROM json_each(?))"
+        where = " WHERE series IN (SELECT value FROM json_each(?))"
         params.append(json.dumps([str(s) for s in series_list]))
-    sql += " ORDER BY e.series, e.ts"
-    return store.frame(sql, params, ts_columns=("ts",))
+    if points > SPARK_KEEP:
+        sql = ("SELECT e.series, e.ts, e.beta FROM series s CROSS JOIN estimates e ON"
+               " e.series = s.series AND e.ts >= coalesce((SELECT e2.ts FROM estimates e2 WHERE"
+               " e2.series = s.series ORDER BY e2.ts DESC LIMIT 1 OFFSET ?), '')"
+               + where.replace("series IN", "s.series IN") + " ORDER BY e.series, e.ts")
+        return store.frame(sql, [points - 1] + params, ts_columns=("ts",))
+    rows = store.rows("SELECT series, n, ts, beta FROM sparklines" + where + " ORDER BY series",
+                      params)
+    names, counts, ts_parts, beta_parts = [], [], [], []
+    for r in rows:
+        ts, beta = r["ts"].split(","), r["beta"].split(",")
+        if r["n"] > points:
+            ts, beta = ts[-points:], beta[-points:]
+        names.append(r["series"])
+        counts.append(len(ts))
+        ts_parts.extend(ts)
+        beta_parts.extend(beta)
+    return pd.DataFrame({"series": np.repeat(np.array(names, dtype=object), counts),
+                         "ts": parse_ts_column(pd.Series(ts_parts, dtype=object)),
+                         "beta": np.array(beta_parts, dtype="float64")})
 
 
 @accepts_path(readonly=True)
