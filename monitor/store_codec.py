@@ -5,6 +5,10 @@ digits only when a fraction is present (:func:`format_ts`). Wall times (``*_at``
 ``until``) always carry six fractional digits (:func:`wall_ts`) because SQL compares them as
 text. JSON is compact with sorted keys; NaN survives in checkpoints and becomes ``null`` in
 payloads sent out.
+
+Text order equals time order for data times, with one exception: within a single second a
+whole-second time (``...:05Z``) sorts after a fractional one (``...:05.250000Z``). Series that
+mix the two inside one second (rare: sub-second data) should send fractional times throughout.
 """
 
 from __future__ import annotations
