@@ -148,6 +148,19 @@ def trend_range(trends, lo_q: float = 0.01, hi_q: float = 0.99) -> tuple[float, 
     return float(lo), float(hi)
 
 
+def scale_trends(trends, y_range: tuple[float, float] | None) -> list[list[float]]:
+    """Map every sparkline onto [0, 1] of the common range ``y_range`` = (lo, hi), values outside
+    clipped to its ends, so all rows share one vertical scale (0 = lo, 1 = hi). Streamlit's line
+    cells stretch any row that leaves the configured y range to full height, which would undo a
+    common scale; mapping first avoids that."""
+    if y_range is None:
+        return [list(t) for t in trends]
+    lo, hi = y_range
+    span = hi - lo
+    return [np.clip((np.asarray(t, dtype="float64") - lo) / span, 0.0, 1.0).tolist()
+            for t in trends]
+
+
 def filter_overview(table: pd.DataFrame, statuses=None, text: str = "",
                     only_open_alerts: bool = False) -> pd.DataFrame:
     """Rows whose status is in ``statuses`` (all when empty/None), whose series id contains

@@ -313,3 +313,9 @@ def test_dashboard_command_line_and_errors(tmp_path, capsys):
     (tmp_path / "s.sqlite").write_bytes(b"")
     assert main(["dashboard", "--db", str(tmp_path / "s.sqlite"), "--port", "70000"]) == 2
     assert "--port = 70000" in capsys.readouterr().err
+
+
+def test_scale_trends_maps_onto_common_unit_range():
+    out = shaping.scale_trends([[-2.0, -1.0, 0.5], []], (-2.0, 0.0))
+    assert out == [[0.0, 0.5, 1.0], []]          # (b - lo) / (hi - lo), clipped to [0, 1]
+    assert shaping.scale_trends([[1.0]], None) == [[1.0]]

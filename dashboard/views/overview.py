@@ -14,7 +14,9 @@ TABLE_COLUMNS = ["series", "status", "elasticity", "lo", "hi", "trend", "open_al
 
 def _column_config(y_range=None) -> dict:
     cc = st.column_config
-    y_min, y_max = y_range if y_range else (None, None)
+    scale = (f"All rows share one scale, from {shaping.fmt_num(y_range[0])} (bottom) to "
+             f"{shaping.fmt_num(y_range[1])} (top), the 1st to 99th percentile of the values "
+             "shown; values beyond are drawn at the edge." if y_range else "")
     return {
         "series": cc.TextColumn("series", pinned=True),
         "status": cc.TextColumn("status", help="Symbols are explained under the table."),
@@ -23,9 +25,9 @@ def _column_config(y_range=None) -> dict:
                                            "status says there is no estimate yet."),
         "lo": cc.NumberColumn("interval low", format="%.2f"),
         "hi": cc.NumberColumn("interval high", format="%.2f"),
-        "trend": cc.LineChartColumn("trend (recent b)", width="small", y_min=y_min,
-                                    y_max=y_max, color=COLOURS["estimate"],
-                                    help="The last stored elasticities, all rows on one scale."),
+        "trend": cc.LineChartColumn("trend (recent b)", width="medium", y_min=0.0, y_max=1.0,
+                                    color=COLOURS["estimate"],
+                                    help="The last stored elasticities. " + scale),
         "open_alerts": cc.NumberColumn("open alerts", format="%d"),
         "last_observation": cc.DatetimeColumn("last observation (UTC)",
                                               format="YYYY-MM-DD HH:mm", timezone="UTC"),
@@ -77,7 +79,8 @@ def render() -> None:
                 shaping.filter_overview(table, statuses, text, only_open), sort)
             st.caption(f"{len(view):,} of {len(table):,} series shown")
             y_range = shaping.trend_range(view["trend"])
-            event = st.dataframe(view[TABLE_COLUMNS], column_config=_column_config(y_range),
+            shown = view[TABLE_COLUMNS].assign(trend=shaping.scale_trends(view["trend"], y_range))
+            event = st.dataframe(shown, column_config=_column_config(y_range),
                                  hide_index=True, placeholder="—", key="ov_table",
                                  on_select="rerun", selection_mode="single-row", height=520)
             st.caption("Status: " + legend_markdown() + ". Trend: the last elasticities of the "
