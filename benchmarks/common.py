@@ -48,17 +48,41 @@ def median(values: list[float]) -> float:
 
 
 def timed(fn: Callable[[], object]) -> tuple[float, object]:
-    """Seconds taken by ``fn()`` (garbage collector off while timing) and its result."""
+    """Seconds taken by ``fn()`` (garbage collector off while timing) and its result.
+
+    ``timed.cpu_share`` is then the process CPU time over the wall time of that call: for a
+    single-threaded figure, the share of one core the process actually got on the shared
+    machine (1.0 = a core to itself).
+    """
     gc.collect()
     was = gc.isenabled()
     gc.disable()
     try:
+        c0 = time.process_time()
         t0 = time.perf_counter()
         res = fn()
-        return time.perf_counter() - t0, res
+        t = time.perf_counter() - t0
+        timed.cpu_share = (time.process_time() - c0) / t if t > 0 else float("nan")
+        return t, res
     finally:
         if was:
             gc.enable()
+
+
+timed.cpu_share = float("nan")
+
+
+def share_note(shares: list[float], n: int | None = None, times: list[float] | None = None,
+               unit: str = "obs") -> str:
+    """'got 0.62-0.97 of a core': how much CPU the timed runs received; with ``n`` and
+    ``times`` also the median rate per CPU-second (what an unshared core would give, roughly)."""
+    if not shares:
+        return ""
+    txt = f"the process got {min(shares):.2f}-{max(shares):.2f} of a core while timed"
+    if n and times:
+        per_cpu = median([n / (t * s) for t, s in zip(times, shares) if t * s > 0])
+        txt += f" ({fmt(per_cpu, unit + '/s')} per CPU-second)"
+    return txt
 
 
 def repeat(fn: Callable[[], object], runs: int) -> tuple[list[float], object]:

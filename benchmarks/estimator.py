@@ -29,7 +29,7 @@ from __future__ import annotations
 import numpy as np
 
 from benchmarks import references as R
-from benchmarks.common import Context, Row, rate_row, speed_ratio, timed
+from benchmarks.common import Context, Row, rate_row, share_note, speed_ratio, timed
 from benchmarks.data import panel
 
 LAM = 0.995                 # forgetting factor and river's smoothing (effective window ~400)
@@ -50,11 +50,13 @@ def elmon_times(est, p, runs: int):
     out = np.empty((p.n, K.NOUT))
     m = min(p.n, 2000)   # warm-up: load the compiled kernel from numba's cache
     run_batch(est, p.sid[:m], p.X[:m], p.y[:m])
-    times, res = [], None
+    times, res, shares = [], None, []
     for _ in range(runs):
         states = initial_states(est, p.n_series)
         t, res = timed(lambda: run_batch(est, p.sid, p.X, p.y, states=states, out=out))
         times.append(t)
+        shares.append(timed.cpu_share)
+    elmon_times.shares = shares
     return times, res
 
 
@@ -190,7 +192,8 @@ def run(ctx: Context) -> list[Row]:
     main = rate_row(f"estimator kernel, 2 parameters, {S:,} series x {T:,} steps, one core",
                     p.n, times, target=30e6)
     finite = bool(np.isfinite(res.beta[-S:]).all())
-    main.check = (f"RLS with forgetting {LAM}, default settings; all final b finite: {finite}")
+    main.check = (f"RLS with forgetting {LAM}, default settings; all final b finite: {finite}; "
+                  f"{share_note(elmon_times.shares, p.n, times)}")
     rows.append(main)
     sub = np.flatnonzero(p.sid < ctx.size(20, 5))
     rows += _refs(ctx, p, sub, est, main.value, res,
@@ -204,7 +207,7 @@ def run(ctx: Context) -> list[Row]:
     main = rate_row(f"estimator kernel, 2 parameters, one series of {N:,} steps", N, times,
                     target=20e6)
     main.check = f"final b {res.beta[-1]:.4f}, true {p.beta[0]:.4f}; finite throughout: " \
-                 f"{bool(np.isfinite(res.beta[10:]).all())}"
+                 f"{bool(np.isfinite(res.beta[10:]).all())}; {share_note(elmon_times.shares, p.n, times)}"
     rows.append(main)
     first = np.arange(ctx.size(100_000, 20_000))
     rows += _refs(ctx, p, first, est, main.value, res,
@@ -220,7 +223,8 @@ def run(ctx: Context) -> list[Row]:
     main = rate_row(f"estimator kernel, 4 controls (6 parameters), {S:,} series x {T:,} steps",
                     p.n, times)
     main.target = "report"
-    main.check = "general-k step (loops over k); promo, weekend, temperature, competitor log price"
+    main.check = ("general-k step (loops over k); promo, weekend, temperature, competitor log "
+                  f"price; {share_note(elmon_times.shares, p.n, times)}")
     rows.append(main)
     sub = np.flatnonzero(p.sid < ctx.size(20, 5))
     rows += _refs(ctx, p, sub, est6, main.value, res,
