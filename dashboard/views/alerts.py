@@ -47,7 +47,17 @@ def _detail(db: str, alert_id: int) -> None:
                  icon=":material/show_chart:", query_params={"series": str(a["series"])})
     st.markdown("**Event history**")
     ev = data.events(db, alert_id)
-    st.dataframe(ev, hide_index=True, placeholder="—", key="al_events")
+    cc = st.column_config
+    st.dataframe(ev, hide_index=True, placeholder="—", key="al_events",
+                 column_order=["event", "at", "ts", "who", "note"],
+                 column_config={"at": cc.DatetimeColumn("when (clock, UTC)",
+                                                        format="YYYY-MM-DD HH:mm:ss",
+                                                        timezone="UTC"),
+                                "ts": cc.DatetimeColumn("data time (UTC)",
+                                                        format="YYYY-MM-DD HH:mm",
+                                                        timezone="UTC",
+                                                        help="— for actions by people"),
+                                "note": cc.TextColumn("note", width="large")})
 
     note = st.text_area("Note", key="al_note", placeholder="what was checked, what was decided")
     who = st.text_input("Your name", key="al_who")
