@@ -1,0 +1,95 @@
+"""Start the service again and again and kill it with SIGKILL at random moments.
+
+Run as ``python tests/crash_launcher.py CONFIG OUT.json ROUNDS SEED LO HI`` by
+tests/test_crash_resume.py. The launcher imports elmon once and warms the compiled kernels,
+then for each round forks a child process that builds a fresh :class:`monitor.service.Service`
+from the store (nothing but imported modules is inherited: no connection, no thread, no
+state) and runs it; after a random delay in [LO, HI] seconds the child is killed with SIGKILL.
+Forking saves the interpreter start-up (seconds on this machine) that an exec would pay in each
+of the rounds; the rounds that start the ``elmon`` command itself are done by the test.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import random
+import signal
+import sqlite3
+import sys
+import time
+from pathlib import Path
+
+
+def committed(db: Path) -> int:
+    if not db.exists():
+        return 0
+    try:
+        conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
+        try:
+            row = conn.execute("SELECT coalesce(sum(rows_read), 0) FROM source_offsets").fetchone()
+        finally:
+            conn.close()
+        return int(row[0])
+    except sqlite3.Error:
+        return -1
+
+
+def warm_up() -> None:
+    """Load the numba kernels in the parent so each child starts processing at once."""
+    import numpy as np
+    import pandas as pd
+
+    from monitor.config import estimator_from_config, validation_from_config
+    from monitor.pipeline import Pipeline
+    from monitor.replay import prepare_rows
+    from monitor.validate import validate_frame
+
+    from monitor.config import load_config
+    cfg = load_config(sys.argv[1])
+    est = estimator_from_config(cfg)
+    frame = pd.DataFrame({"series": ["w"] * 3, "ts": ["2024-01-01", "2024-01-02", "2024-01-03"],
+                          "price": ["1.0", "1.1", "1.2"], "quantity": ["5", "6", "7"],
+                          **{c: ["0", "1", "0"] for c in est.controls}})
+    v = validate_frame(frame, controls=est.controls, log_controls=est.log_controls,
+                       settings=validation_from_config(cfg), now_ns=0, order_by="arrival")
+    sid, X, y, names = prepare_rows(v.good, est)
+    Pipeline.from_config(cfg, est).run(sid, X, y, n_series=len(names))
+    del np
+
+
+def main() -> int:
+    config_path, out, rounds, seed, lo, hi = sys.argv[1:7]
+    rounds, lo, hi = int(rounds), float(lo), float(hi)
+    from monitor import service_config  # noqa: F401
+    from monitor.config import load_config
+    from monitor.service import Service
+
+    warm_up()
+    cfg = load_config(config_path)
+    base = Path(config_path).resolve().parent
+    db = base / cfg.section("store")["path"]
+    rng = random.Random(int(seed))
+    log = []
+    for i in range(rounds):
+        before = committed(db)
+        pid = os.fork()
+        if pid == 0:                                   # the child: a service, killed below
+            code = 1
+            try:
+                Service(cfg, base=base).run(install_signals=False)
+                code = 0
+            finally:
+                os._exit(code)
+        delay = rng.uniform(lo, hi)
+        time.sleep(delay)
+        os.kill(pid, signal.SIGKILL)
+        _, status = os.waitpid(pid, 0)
+        log.append({"round": i, "delay": delay, "before": before, "after": committed(db),
+                    "killed": os.WIFSIGNALED(status) and os.WTERMSIG(status) == signal.SIGKILL})
+    Path(out).write_text(json.dumps(log))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
