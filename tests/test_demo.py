@@ -1,0 +1,74 @@
+"""`elmon demo` end to end, headless and accelerated: the live feed, the service and the store
+catch the retail scenario's step change in b, and every part stops cleanly."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import pandas as pd
+import pytest
+
+from monitor.store import list_alerts, open_store
+
+
+@pytest.mark.slow
+def test_demo_catches_the_scenario_change_point(tmp_path):
+    wd = tmp_path / "demo"
+    # 40 simulated days a second: the 365-day scenario is appended in about 9 s
+    cmd = [sys.executable, "-m", "monitor", "demo", "--no-dashboard", "--workdir", str(wd),
+           "--speed", str(40 * 86400), "--duration", "14"]
+    proc = subprocess.run(cmd, capture_output=True, text=True, timeout=240)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert "stopped cleanly" in proc.stdout
+    truth = pd.read_csv(wd / "truth.csv")
+    change = truth[(truth.kind == "elasticity_change")].iloc[0]
+    store = open_store(wd / "elmon-demo.sqlite", readonly=True)
+    try:
+        alerts = list_alerts(store, series=change.series, kind="elasticity_change")
+    finally:
+        store.close()
+    assert len(alerts) >= 1, proc.stdout[-3000:]
+    opened = pd.to_datetime(alerts["opened_ts"], utc=True).min()
+    t_change = pd.Timestamp(change.ts)
+    # raised after the change, within 60 days of it (daily data)
+    assert t_change <= opened <= t_change + pd.Timedelta(days=60), (opened, t_change)
+    assert f"ALERT" in proc.stdout and change.series in proc.stdout
+
+
+@pytest.mark.slow
+def test_demo_with_dashboard_stops_every_process_on_sigterm(tmp_path):
+    import socket
+    import urllib.request
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    wd = tmp_path / "demo"
+    proc = subprocess.Popen([sys.executable, "-m", "monitor", "demo", "--workdir", str(wd),
+                             "--port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
+                            text=True)
+    try:
+        deadline = time.monotonic() + 90
+        ok = False
+        while time.monotonic() < deadline and not ok:
+            try:
+                with urllib.request.urlopen(f"http://127.0.0.1:{port}/_stcore/health", timeout=1) as r:
+                    ok = r.read().strip() == b"ok"
+            except OSError:
+                time.sleep(0.5)
+        assert ok, "the dashboard never answered"
+        time.sleep(2)
+        proc.send_signal(signal.SIGTERM)
+        out, _ = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 0, out[-3000:]
+    assert "dashboard: http://127.0.0.1:" in out and "stopped cleanly" in out
+    time.sleep(1)
+    with pytest.raises(OSError):
+        urllib.request.urlopen(f"http://127.0.0.1:{port}/_stcore/health", timeout=1)
