@@ -30,6 +30,7 @@ class Panel:
     beta: np.ndarray       # (n_series,) true elasticity
     n_series: int
     length: int
+    changed: np.ndarray | None = None   # (n_series,) bool: b changes at ``change_at``
 
     @property
     def n(self) -> int:
@@ -40,8 +41,14 @@ class Panel:
 
 
 def panel(n_series: int, length: int, controls: int = 0, seed: int = 0,
-          layout: str = "time") -> Panel:
-    """``n_series`` series of ``length`` steps (see the module docstring)."""
+          layout: str = "time", change_every: int = 0, change_at: int = 0,
+          change_by: float = 0.0) -> Panel:
+    """``n_series`` series of ``length`` steps (see the module docstring).
+
+    With ``change_every = m > 0`` every m-th series (0, m, 2m, ...) has its elasticity moved by
+    ``change_by`` from step ``change_at`` on (a step change pivoting at the base price, so the
+    level at the base price stays put); ``Panel.changed`` marks them.
+    """
     rng = np.random.default_rng(seed)
     n = n_series * length
     if layout == "time":
@@ -57,6 +64,11 @@ def panel(n_series: int, length: int, controls: int = 0, seed: int = 0,
     X[:, 0] = 1.0
     X[:, 1] = lp0[sid] + rng.normal(0.0, 0.1, n)
     y = a[sid] + b[sid] * X[:, 1]
+    changed = np.zeros(n_series, dtype=bool)
+    if change_every:
+        changed[::change_every] = True
+        hit = changed[sid] & (step >= change_at)
+        y[hit] += change_by * (X[hit, 1] - lp0[sid[hit]])
     if controls:
         cols = [
             (rng.random(n) < 0.15).astype(np.float64),                   # promo flag
@@ -68,7 +80,7 @@ def panel(n_series: int, length: int, controls: int = 0, seed: int = 0,
             X[:, 2 + j] = cols[j]
             y += CONTROL_COEF[j] * cols[j]
     y += rng.normal(0.0, 0.2, n)
-    return Panel(sid, step, X, y, b, n_series, length)
+    return Panel(sid, step, X, y, b, n_series, length, changed)
 
 
 def loglog_frame(n_series: int, length: int, seed: int = 0, start: str = "2024-01-01T00:00:00"):
