@@ -112,8 +112,8 @@ def test_series_detail_charts_and_panels(app, seeded):
 
     # price-change panel: exact (p2/p1)^b - 1 against a hand computation from the store's b
     row = mstore.latest_estimates(seeded["path"]).set_index("series").loc[s]
-    at.number_input(key="pc_p1").set_value(10.0).run()
-    at.number_input(key="pc_p2").set_value(12.0).run()
+    at.number_input(key=f"pc_p1:{s}").set_value(10.0).run()
+    at.number_input(key=f"pc_p2:{s}").set_value(12.0).run()
     expected = 1.2 ** row["beta"] - 1.0
     lo, hi = sorted([1.2 ** row["beta_lo"] - 1.0, 1.2 ** row["beta_hi"] - 1.0])
     m = _metrics(at)
@@ -121,6 +121,31 @@ def test_series_detail_charts_and_panels(app, seeded):
     assert m["Expected quantity change"] == f"{100 * expected:+.1f}%".replace("-", "−")
     assert m["Interval"].startswith(f"[{100 * lo:+.1f}%".replace("-", "−"))
     assert hi > lo
+
+
+def test_series_detail_switching_series_resets_its_inputs(app, seeded):
+    at = app
+    a, b = seeded["series"][0], seeded["series"][2]
+    at.switch_page("views/series.py")
+    at.query_params["series"] = a
+    at.run()
+    at.selectbox(key="sd_series").set_value(b).run()
+    _no_errors(at)
+    last_price = mstore.series_history(seeded["path"], b)["price"].iloc[-1]
+    assert at.number_input(key=f"pc_p1:{b}").value == pytest.approx(last_price)
+    assert at.query_params["series"] == [b] or at.query_params["series"] == b
+    # log-log windows: the recent slope is numpy.polyfit's on the last 75 rows (the default
+    # window, a quarter of the 300 observations)
+    import numpy as np
+
+    h = mstore.series_history(seeded["path"], b)
+    assert at.slider(key=f"sd_window:{b}").value == 75
+    slope = np.polyfit(np.log(h["price"].iloc[-75:]), np.log(h["quantity"].iloc[-75:]), 1)[0]
+    m = _metrics(at)
+    assert m["recent window slope"] == f"{slope:.2f}".replace("-", "−")
+    assert m["earlier window slope"] != "—"
+    at.radio(key=f"sd_earlier:{b}").set_value("first").run()
+    _no_errors(at)
 
 
 def test_series_detail_thins_long_history_and_says_so(app):
@@ -236,6 +261,7 @@ def test_overview_first_render_10k_series_under_2s(tmp_path, monkeypatch):
     assert min(times) < 2.0 and math.isfinite(min(times))
 
 
+@pytest.mark.slow   # the first replay in a process may compile the numba kernels (~7 s)
 def test_replay_page_runs_a_replay_of_a_log(app, tmp_path):
     import numpy as np
     import pandas as pd

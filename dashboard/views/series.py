@@ -34,7 +34,7 @@ def _headline(row: pd.Series) -> None:
     cols[1].metric("Interval", f"[{fmt_num(row['beta_lo'])}, {fmt_num(row['beta_hi'])}]")
     cols[2].metric("Status", status_label(status))
     cols[3].metric("Effective n", fmt_num(row.get("n_eff"), 0))
-    if not math.isfinite(float(row["beta"]) if pd.notna(row["beta"]) else math.nan):
+    if pd.isna(row["beta"]):
         st.caption(f"— means no estimate yet: status {status_label(status)}.")
 
 
@@ -64,21 +64,23 @@ def _elasticity(db: str, series: str, hist: pd.DataFrame, row: pd.Series) -> Non
         st.dataframe(truth_bad, hide_index=True)
 
 
-def _windows(hist: pd.DataFrame, anchors: list) -> None:
+def _windows(hist: pd.DataFrame, anchors: list, series: str) -> None:
     pts = loglog.loglog_points(hist)
     if len(pts) < 4:
         st.info(f"Only {len(pts)} observation(s) on the log scale: not enough for two windows.")
         return
     c1, c2 = st.columns(2)
     n = c1.slider("Window length (observations)", min_value=2, max_value=max(3, len(pts) // 2),
-                  value=min(100, max(2, len(pts) // 4)), key="sd_window")
-    choice = c2.radio("Earlier window", list(loglog.EARLIER_CHOICES), key="sd_earlier",
+                  value=min(100, max(2, len(pts) // 4)), key=f"sd_window:{series}")
+    choice = c2.radio("Earlier window", list(loglog.EARLIER_CHOICES),
+                      key=f"sd_earlier:{series}",
                       format_func=lambda k: loglog.EARLIER_CHOICES[k],
                       index=1 if anchors else 0)
     anchor = None
     if choice == "anchor":
         if anchors:
-            anchor = st.selectbox("Ends before", anchors, index=len(anchors) - 1, key="sd_anchor",
+            anchor = st.selectbox("Ends before", anchors, index=len(anchors) - 1,
+                                  key=f"sd_anchor:{series}",
                                   format_func=lambda t: f"{pd.Timestamp(t):%Y-%m-%d %H:%M} UTC")
         else:
             choice = "preceding"
@@ -130,13 +132,14 @@ def _memory(hist: pd.DataFrame, row: pd.Series) -> None:
                "of weights λ^k), times the median spacing between observations.")
 
 
-def _price_change(hist: pd.DataFrame, row: pd.Series) -> None:
+def _price_change(hist: pd.DataFrame, row: pd.Series, series: str) -> None:
     prices = pd.to_numeric(hist.get("price"), errors="coerce").dropna()
     last = float(prices.iloc[-1]) if len(prices) and prices.iloc[-1] > 0 else 1.0
     c1, c2 = st.columns(2)
-    p1 = c1.number_input("Current price", min_value=1e-9, value=last, format="%.4f", key="pc_p1")
+    p1 = c1.number_input("Current price", min_value=1e-9, value=last, format="%.4f",
+                         key=f"pc_p1:{series}")
     p2 = c2.number_input("New price", min_value=1e-9, value=round(last * 1.05, 4),
-                         format="%.4f", key="pc_p2")
+                         format="%.4f", key=f"pc_p2:{series}")
     b = float(row["beta"]) if pd.notna(row["beta"]) else math.nan
     lo = float(row["beta_lo"]) if pd.notna(row["beta_lo"]) else math.nan
     hi = float(row["beta_hi"]) if pd.notna(row["beta_hi"]) else math.nan
@@ -181,11 +184,11 @@ def render() -> None:
     t_scatter, t_resid, t_price, t_memory = st.tabs(
         ["Log-log windows", "Residuals", "What a price change does", "Memory"])
     with t_scatter:
-        _windows(hist, anchors)
+        _windows(hist, anchors, series)
     with t_resid:
         _residuals(hist)
     with t_price:
-        _price_change(hist, row)
+        _price_change(hist, row, series)
     with t_memory:
         _memory(hist, row)
 
