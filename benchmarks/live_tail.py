@@ -8,7 +8,8 @@ and a JSON-lines sink (so each alert gets an outbox row; delivery itself is not 
 Which row opens each series' alert is found first by a dry run of the same rows through a
 :class:`monitor.engine.Monitor` on a scratch store. The feed then gets every series' rows up to
 the one before its trigger row; once the service has committed them, for each series in turn
-the benchmark waits a random 0-1 s (so the row lands at a random phase of the poll), appends
+the benchmark waits until a chosen phase of the poll cycle (phases spread evenly over the
+interval, in shuffled order, timed from the last commit seen), appends
 the trigger row (one whole line, flushed) and polls the store's ``outbox`` read-only every 5 ms
 until the alert's row is there. Expected: about half the poll interval plus one batch's time.
 """
@@ -106,11 +107,15 @@ def run(ctx: Context) -> list[Row]:
             time.sleep(0.05)
         else:
             raise RuntimeError("the service did not take in the prepared rows within 60 s")
-        rnd = random.Random(5)
+        # stratified poll phases: sample i lands (i + 0.5) / K of a poll interval after the
+        # last commit seen (a commit marks a poll), in shuffled order
+        phases = [(i + 0.5) / len(series) for i in range(len(series))]
+        random.Random(5).shuffle(phases)
         sql = ("SELECT count(*) FROM outbox o JOIN alerts a ON a.id = o.alert_id "
                "WHERE a.series = ? AND a.kind = 'out_of_bounds'")
-        for s in series:
-            time.sleep(rnd.uniform(0.0, POLL_S))
+        t_prev = time.perf_counter()
+        for s, phase in zip(series, phases):
+            time.sleep((phase * POLL_S - (time.perf_counter() - t_prev)) % POLL_S)
             r = rows[(rows["series"] == s) & (rows["step"] == trig[s])].iloc[0]
             with open(feed, "a") as fh:
                 fh.write(_line(r))
@@ -120,7 +125,8 @@ def run(ctx: Context) -> list[Row]:
                 if time.perf_counter() - t0 > 15:
                     raise RuntimeError(f"no outbox row for {s} 15 s after its trigger row")
                 time.sleep(0.005)
-            lat.append(time.perf_counter() - t0)
+            t_prev = time.perf_counter()
+            lat.append(t_prev - t0)
         ro.close()
     finally:
         svc.stop()
@@ -135,5 +141,5 @@ def run(ctx: Context) -> list[Row]:
                 "s", lat, target=f"report (expected ~{POLL_S / 2:g} s + one batch)",
                 better="lower",
                 check=(f"{len(lat)} alerts (out_of_bounds, bounds {BOUNDS['low']}..{BOUNDS['high']}"
-                       f", true b -2), one per series, each row at a random poll phase; min "
+                       f", true b -2), one per series, rows landing at phases spread evenly over the poll interval; min "
                        f"{min(lat):.2f} s, max {max(lat):.2f} s"))]
