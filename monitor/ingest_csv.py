@@ -125,6 +125,7 @@ def parse_lines(names: list[str], canon: list[str], body: bytes, first_row: int,
         return pd.DataFrame({c: pd.Series(dtype=object) for c in canon}), \
             np.zeros(0, dtype=np.int64), empty_rejects(), n_lines
     try:
+        body.decode("utf-8")                 # pyarrow's bad-line handler needs UTF-8 text
         frame, bad_lines = _parse_fast(names, body)
         if len(frame) + len(bad_lines) != n_lines:   # a lone CR split a line: go line by line
             raise UnicodeDecodeError("utf-8", b"", 0, 1, "line count differs")
