@@ -119,7 +119,10 @@ def input_size(path) -> int:
     """Bytes of a CSV file or rows of a Parquet file (the unit of :attr:`LogChunk.position`)."""
     p = _check_file(path)
     if log_format(p) == "parquet":
-        return pq.ParquetFile(p).metadata.num_rows
+        try:
+            return pq.ParquetFile(p).metadata.num_rows
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise SourceError(f"{p}: unreadable parquet file: {exc}") from None
     return p.stat().st_size
 
 

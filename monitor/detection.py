@@ -55,7 +55,7 @@ RESPONSE_KINDS = ("elasticity_change", "gradual_drift", "level_shift")
 #: alert rules that count as false alarms in quiet stretches
 FALSE_ALARM_RULES = ("elasticity_change", "level_shift")
 #: default detection window after the last affected observation, observations
-DEFAULT_HORIZON = 60
+DEFAULT_HORIZON = 90
 DETECTION_COLUMNS = ["series", "kind", "ts", "end_ts", "status", "rules", "alert_ts", "alert_rule",
                      "delay_obs", "delay_s", "window_obs", "beta_before", "beta_after", "note"]
 NAT = np.iinfo(np.int64).min

@@ -11,6 +11,8 @@ from monitor.config import load_config
 EXAMPLE = """example:
   elmon replay sales.csv --out replay-out/ --forgetting 0.98 --control promo
   elmon replay load.parquet --out out/ --log-control temperature --config elmon.toml
+  elmon replay retail.csv --out out/ --truth retail_truth.csv --report out/report.html
+  elmon replay big.parquet --out out/ --sample-every 24 --engine dask --scheduler tcp://10.0.0.5:8786
 """
 
 
@@ -39,6 +41,9 @@ def config_from_args(args) -> "object":
     return cfg
 
 
+MAX_LISTED = 40
+
+
 def print_summary(summary: dict, out_dir) -> None:
     print(f"replayed {summary['rows']} rows of {summary['series']} series: "
           f"{summary['accepted']} processed, {summary['rejected']} rejected, "
@@ -46,17 +51,38 @@ def print_summary(summary: dict, out_dir) -> None:
     t = summary["timing"]
     print(f"wall time {t['wall_s']:.2f} s ({t['rows_per_s']:,.0f} rows/s)")
     print(f"{'series':<32} {'beta':>8} {'95% interval':>20} {'n_eff':>8}  status")
-    for name, f in sorted(summary["final"].items()):
+    listed = sorted(summary["final"].items())
+    for name, f in listed[:MAX_LISTED]:
         b = "—" if f["beta"] is None else f"{f['beta']:8.3f}"
         band = "—" if f["beta_lo"] is None else f"[{f['beta_lo']:.3f}, {f['beta_hi']:.3f}]"
         print(f"{name:<32} {b:>8} {band:>20} {f['n_eff']:8.1f}  {f['status']}")
-    print(f"wrote {out_dir}/estimates.csv, alerts.csv, rejects.csv, summary.json")
+    if len(listed) > MAX_LISTED:
+        print(f"... and {len(listed) - MAX_LISTED} more series (final estimates in summary.json)")
+    print_detection(summary)
+    print(f"wrote {out_dir}/estimates.csv, alerts.csv, rejects.csv, summary.json"
+          + (", detection.csv" if "detection" in summary else "")
+          + (f"; report {summary['report']}" if summary.get("report") else ""))
+
+
+def print_detection(summary: dict) -> None:
+    d = summary.get("detection")
+    if not d:
+        return
+    fmt = lambda v, spec: "—" if v is None else format(v, spec)  # noqa: E731
+    print(f"known changes: {d['detected']} of {d['changes']} detected "
+          f"({fmt(d['detection_rate'], '.0%')}), median delay {fmt(d['median_delay_obs'], '.1f')} obs, "
+          f"90th percentile {fmt(d['p90_delay_obs'], '.1f')} obs; false alarms "
+          f"{fmt(d['false_alarms_per_10k'], '.2f')} per 10,000 quiet observations "
+          f"({d['false_alarms']} in {d['quiet_obs']:,})")
 
 
 def handle(args) -> int:
-    from monitor.replay import run_replay
+    from monitor.cli.run_options import engine_kwargs
+    from monitor.replay_engine import replay
 
-    summary = run_replay(args.log, args.out, config_from_args(args))
+    summary = replay(args.log, args.out, config_from_args(args), truth=args.truth,
+                     report=args.report, report_series=args.report_series,
+                     sample_every=args.sample_every, horizon=args.horizon, **engine_kwargs(args))
     if args.json:
         print(json.dumps(summary, indent=2, sort_keys=True))
     else:
@@ -73,4 +99,20 @@ def register(sub) -> None:
     p.add_argument("--out", required=True, help="output folder")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     add_common_options(p)
+    add_replay_options(p)
     p.set_defaults(func=handle)
+
+
+def add_replay_options(p: argparse.ArgumentParser) -> None:
+    """Truth, report, sampling and engine options (monitor.cli.run_options)."""
+    from monitor.cli.run_options import add_engine_options, add_truth_options, positive_int
+
+    add_truth_options(p)
+    p.add_argument("--report", metavar="PATH",
+                   help="write a self-contained HTML report (plots need no network)")
+    p.add_argument("--report-series", action="append", metavar="NAME",
+                   help="series to plot in the report (repeatable; default: those in --truth)")
+    p.add_argument("--sample-every", type=positive_int, default=1, metavar="N",
+                   help="write every N-th estimate per series plus status changes and alerts "
+                        "(default 1: all)")
+    add_engine_options(p)
