@@ -45,11 +45,12 @@ from monitor.config import Config, estimator_from_config, validation_from_config
 from monitor.engine_batch import (DUPLICATE, LATE, NAT, BatchReport, duplicates_against_store,
                                   extra_rejects, missing_column_rejects, observation_frame,
                                   reject_frame, renumber, required_columns, zero_rows)
-from monitor.errors import StoreError, ValidationError
+from monitor.errors import ConfigError, StoreError, ValidationError
 from monitor.estimators.rls import floats_from_json, floats_to_json
 from monitor.pipeline import Pipeline
 from monitor.replay import estimates_frame, prepare_rows
 from monitor.store import Store, load_checkpoints, thin_estimates, wall_ts, write_batch
+from monitor.store_service import series_bounds
 from monitor.types import Estimate
 from monitor.validate import SeriesGate, format_ts, validate_frame
 
@@ -94,7 +95,7 @@ class Monitor:
             self._lock = threading.RLock()
             self._controls = list(self.estimator.controls) + list(self.estimator.log_controls)
             self._required = required_columns(self.estimator)
-            self._run_takes_ts = "ts" in inspect.signature(self.pipeline.run).parameters
+            self._run_params = set(inspect.signature(self.pipeline.run).parameters)
             self._restore()
         except BaseException:
             self.close()
@@ -140,11 +141,17 @@ class Monitor:
         self._zero: dict[str, int] = {}
         for series, cp in sorted(load_checkpoints(self.store).items()):
             st = cp.state
-            vec = self._vec_from_json(st["pipeline"])
+            try:
+                vec = self._vec_from_json(st["pipeline"])
+            except (ConfigError, ValidationError) as exc:
+                raise StoreError(f"checkpoint of series {series!r}: {exc}; the store was "
+                                 f"written with another model configuration (use a new store "
+                                 f"or the old configuration)") from None
             if vec.shape != (self._width,):
-                raise StoreError(f"checkpoint of series {series!r} holds a state of length "
-                                 f"{vec.size}, this configuration needs {self._width} (were "
-                                 f"controls or detectors changed? use a new store)")
+                raise StoreError(f"checkpoint of series {series!r}: a state of length "
+                                 f"{vec.size}, this configuration needs {self._width}; the "
+                                 f"store was written with another model configuration (use a "
+                                 f"new store or the old configuration)")
             self._index[series] = len(self._names)
             self._names.append(series)
             vectors.append(vec)
@@ -309,7 +316,7 @@ class Monitor:
             sid, X, y, names = prepare_rows(good, self.estimator)
             glob = self._ensure(names)
             states = self._states[glob].copy()
-            kw = {"ts": good["ts"].to_numpy(dtype=np.int64)} if self._run_takes_ts else {}
+            kw = self._run_extras(good, names)
             res = self.pipeline.run(sid, X, y, n_series=len(names), states=states, **kw)
             est = estimates_frame(good, res.out, res.status)
             plan["estimates"] = est
@@ -321,15 +328,20 @@ class Monitor:
             plan["states"] = (glob, res.states)
             # rows are in arrival order (each series' accepted rows in time order unless a
             # lateness is allowed): per series, the last row processed and the newest time
-            per = pd.DataFrame({"sid": sid, "row": good["row"].to_numpy(),
-                                "ts": good["ts"].to_numpy(), "j": np.arange(len(sid))})
-            agg = per.groupby("sid").agg(n=("j", "size"), last=("j", "max"), row=("row", "max"),
-                                         ts=("ts", "max"))
-            for k, r in zip(agg.index.to_numpy(), agg.itertuples(index=False)):
+            m, idx = len(names), np.arange(len(sid))
+            count = np.bincount(sid, minlength=m)
+            last = np.zeros(m, dtype=np.int64)
+            last[sid] = idx                       # repeated indices: the last one is kept
+            newest = np.full(m, NAT, dtype=np.int64)
+            np.maximum.at(newest, sid, good["ts"].to_numpy(dtype=np.int64))
+            top = np.zeros(m, dtype=np.int64)
+            np.maximum.at(top, sid, good["row"].to_numpy(dtype=np.int64))
+            status = est["status"].to_numpy()
+            for k in range(m):
                 s = names[k]
-                touched[s] = {"updates": self._updates.get(s, 0) + int(r.n),
-                              "last_status": est["status"].iat[int(r.last)], "row": int(r.row),
-                              "ts": int(r.ts), "vec": res.states[k]}
+                touched[s] = {"updates": self._updates.get(s, 0) + int(count[k]),
+                              "last_status": status[last[k]], "row": int(top[k]),
+                              "ts": int(newest[k]), "vec": res.states[k]}
             obs_parts.append(observation_frame(good, self._controls, label))
         if zeros is not None and len(zeros):
             zc = zeros.groupby("series").agg(n=("row", "size"), row=("row", "max"),
@@ -349,6 +361,25 @@ class Monitor:
         plan["touched"] = touched
         plan["checkpoints"] = {s: self._checkpoint(s, t, source) for s, t in touched.items()}
         return plan
+
+    def _run_extras(self, good: pd.DataFrame, names: list[str]) -> dict:
+        """Optional arguments of ``Pipeline.run``: row times, series names (for messages) and
+        each series' own elasticity bounds from the store's ``series`` table (a side not set
+        there keeps the ``[bounds]`` limit)."""
+        kw = {}
+        if "ts" in self._run_params:
+            kw["ts"] = good["ts"].to_numpy(dtype=np.int64)
+        if "names" in self._run_params:
+            kw["names"] = names
+        if {"low", "high"} <= self._run_params and hasattr(self.pipeline, "bounds"):
+            own = series_bounds(self.store, names)
+            if own:
+                low, high = self.pipeline.bounds.limits()
+                pick = lambda n, i, dflt: own[n][i] if n in own and own[n][i] is not None \
+                    else dflt  # noqa: E731
+                kw["low"] = np.array([pick(n, 0, low) for n in names], dtype=np.float64)
+                kw["high"] = np.array([pick(n, 1, high) for n in names], dtype=np.float64)
+        return kw
 
     def _alert_changes(self, res, good: pd.DataFrame, est: pd.DataFrame, names: list[str],
                        sid: np.ndarray) -> list[dict]:

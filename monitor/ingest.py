@@ -61,7 +61,7 @@ class Source(Protocol):
 def _header(path: Path, where: str, final: bool) -> tuple[list[str], int] | None:
     """Header names and the byte offset after the header line (None: no complete line yet)."""
     with open(path, "rb") as fh:
-        block = fh.read(1 << 20)
+        block = fh.readline(1 << 20)
     cut = block.find(b"\n")
     if cut < 0:
         if not block or not final:

@@ -6,6 +6,7 @@ through :meth:`Store.atomic` / :meth:`Store.rows` with parameterized SQL.
 
 from __future__ import annotations
 
+import json
 from typing import Any
 
 import pandas as pd
@@ -24,6 +25,17 @@ def record_source_error(store: Store, source: str, kind: str, message: str | Non
                       "ON CONFLICT (source) DO UPDATE SET last_error = excluded.last_error, "
                       "kind = coalesce(source_offsets.kind, excluded.kind)",
                       (source, kind, None if message is None else str(message)[:2000]))
+
+
+def series_bounds(store: Store, names: list[str]) -> dict[str, tuple]:
+    """``series -> (low, high)`` for the series among ``names`` that have their own elasticity
+    bounds in the ``series`` table (either side may be ``None``)."""
+    if not names:
+        return {}
+    rows = store.rows("SELECT series, low, high FROM series WHERE (low IS NOT NULL OR high IS "
+                      "NOT NULL) AND series IN (SELECT value FROM json_each(?))",
+                      (json.dumps([str(n) for n in names]),))
+    return {r["series"]: (r["low"], r["high"]) for r in rows}
 
 
 def source_rows_at(store: Store) -> dict[str, pd.Timestamp]:

@@ -37,7 +37,7 @@ path = "{db}"
 estimates_every = 3
 
 [estimator]
-forgetting = 0.97
+forgetting = 0.99
 controls = ["promo"]
 
 [validation]

@@ -23,7 +23,7 @@ from monitor.store import Store, thin_estimates
 from simulators import simulate
 from tests.service_helpers import assert_same_store, csv_bytes, dump, frame, states
 
-CFG = Config({"estimator": {"forgetting": 0.97, "controls": ["promo"]},
+CFG = Config({"estimator": {"forgetting": 0.99, "controls": ["promo"]},
               "validation": {"zero_policy": "skip"}, "store": {"estimates_every": 3}})
 
 
@@ -98,7 +98,7 @@ def test_live_ingest_in_batches_equals_replay_to_the_bit(tmp_path, log):
     path.write_bytes(csv_bytes(log))
     run_replay(path, tmp_path / "replay", CFG)
     rc = main(["ingest", str(path), "--db", str(tmp_path / "s.sqlite"), "--batch-rows", "37",
-               "--control", "promo", "--forgetting", "0.97", "--zero-policy", "skip"])
+               "--control", "promo", "--forgetting", "0.99", "--zero-policy", "skip"])
     assert rc == 0
     replay = pd.read_csv(tmp_path / "replay" / "estimates.csv")
     live = frame(tmp_path / "s.sqlite", "SELECT * FROM estimates")
@@ -179,7 +179,7 @@ def test_a_second_writer_process_is_refused(tmp_path):
 
 def test_a_changed_model_is_refused_on_restore(tmp_path, log):
     run_in_batches(tmp_path / "c.sqlite", log.iloc[:20], [])
-    with pytest.raises(StoreError, match="needs .* use a new store"):
+    with pytest.raises(StoreError, match="checkpoint of series .* another model configuration"):
         Monitor(tmp_path / "c.sqlite", Config({"estimator": {"controls": []}}))
 
 
