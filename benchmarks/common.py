@@ -271,11 +271,17 @@ def machine_text(m: dict, elapsed_s: float | None = None) -> str:
 class Context:
     """Run settings shared by the groups: sizes (``quick`` shrinks them), repetitions, scratch."""
 
-    def __init__(self, quick: bool = False, runs: int = 3, tmp: Path | None = None):
+    def __init__(self, quick: bool = False, runs: int = 3, tmp: Path | None = None,
+                 budget_s: float = 14 * 60):
         self.quick = quick
         self.runs = runs
         self.tmp = tmp
         self.log = print
+        self.deadline = time.monotonic() + budget_s
+
+    def time_left(self) -> float:
+        """Seconds left of the whole run's budget (``make bench`` must end within 15 min)."""
+        return self.deadline - time.monotonic()
 
     def size(self, full: int, quick: int) -> int:
         return quick if self.quick else full
