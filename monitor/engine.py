@@ -45,6 +45,7 @@ from monitor.config import Config, estimator_from_config, validation_from_config
 from monitor.engine_batch import (DUPLICATE, LATE, NAT, BatchReport, duplicates_against_store,
                                   extra_rejects, missing_column_rejects, observation_frame,
                                   reject_frame, renumber, required_columns, zero_rows)
+from monitor.engine_fast import NOT_PLAIN, observe_plain
 from monitor.errors import ConfigError, StoreError, ValidationError
 from monitor.estimators.rls import floats_from_json, floats_to_json
 from monitor.pipeline import Pipeline
@@ -96,6 +97,9 @@ class Monitor:
             self._controls = list(self.estimator.controls) + list(self.estimator.log_controls)
             self._required = required_columns(self.estimator)
             self._run_params = set(inspect.signature(self.pipeline.run).parameters)
+            self._fast = True                 # Monitor.observe tries monitor.engine_fast first
+            self.plain_calls = 0              # observe calls that took the one-row path
+            self._nan_median = np.zeros(0)
             self._restore()
         except BaseException:
             self.close()
@@ -192,6 +196,12 @@ class Monitor:
         kept out of the estimator (zero policy ``skip``). A rejected row is stored in
         ``rejects`` and raises :class:`~monitor.errors.ValidationError` naming the field.
         """
+        if self._fast:
+            with self._lock:
+                done = observe_plain(self, series, ts, price, quantity, controls)
+            if done is not NOT_PLAIN:
+                self.plain_calls += 1
+                return done
         frame = pd.DataFrame({"series": [series], "ts": [ts], "price": [price],
                               "quantity": [quantity], **{k: [v] for k, v in controls.items()}})
         rep = self.observe_many(frame)
@@ -316,7 +326,7 @@ class Monitor:
             sid, X, y, names = prepare_rows(good, self.estimator)
             glob = self._ensure(names)
             states = self._states[glob].copy()
-            kw = self._run_extras(good, names)
+            kw = self._run_extras(good["ts"].to_numpy(dtype=np.int64), names)
             res = self.pipeline.run(sid, X, y, n_series=len(names), states=states, **kw)
             est = estimates_frame(good, res.out, res.status)
             plan["estimates"] = est
@@ -342,7 +352,8 @@ class Monitor:
                 touched[s] = {"updates": self._updates.get(s, 0) + int(count[k]),
                               "last_status": status[last[k]], "row": int(top[k]),
                               "ts": int(newest[k]), "vec": res.states[k]}
-            obs_parts.append(observation_frame(good, self._controls, label))
+            obs_parts.append(observation_frame(good, self._controls, label,
+                                               est["ts"].to_numpy()))
         if zeros is not None and len(zeros):
             zc = zeros.groupby("series").agg(n=("row", "size"), row=("row", "max"),
                                              ts=("ts", "max"))
@@ -359,16 +370,16 @@ class Monitor:
         if obs_parts:
             plan["observations"] = pd.concat(obs_parts, ignore_index=True)
         plan["touched"] = touched
-        plan["checkpoints"] = {s: self._checkpoint(s, t, source) for s, t in touched.items()}
+        plan["checkpoints"] = self._checkpoints(touched, source)
         return plan
 
-    def _run_extras(self, good: pd.DataFrame, names: list[str]) -> dict:
+    def _run_extras(self, ts: np.ndarray, names: list[str]) -> dict:
         """Optional arguments of ``Pipeline.run``: row times, series names (for messages) and
         each series' own elasticity bounds from the store's ``series`` table (a side not set
         there keeps the ``[bounds]`` limit)."""
         kw = {}
         if "ts" in self._run_params:
-            kw["ts"] = good["ts"].to_numpy(dtype=np.int64)
+            kw["ts"] = ts
         if "names" in self._run_params:
             kw["names"] = names
         if {"low", "high"} <= self._run_params and hasattr(self.pipeline, "bounds"):
@@ -402,17 +413,24 @@ class Monitor:
                             "note": ev.get("message") or "rule cleared"})
         return out
 
-    def _checkpoint(self, series: str, t: dict, source: str) -> dict:
-        i = self._index[series]
-        vec = t["vec"] if t["vec"] is not None else self._states[i]
-        gate = self.gate.state_of(series) if series in self.gate.index else None
-        last_obs = max(self._last_obs.get(series, NAT), t["ts"], t.get("zero_ts", NAT))
-        state = {"pipeline": self._vec_to_json(vec), "gate": gate, "updates": t["updates"],
-                 "last_status": t["last_status"], "last_obs_ns": int(last_obs),
-                 "zero_skipped": self._zero.get(series, 0) + t.get("zero", 0)}
-        t["last_obs"] = int(last_obs)
-        return {"state": state, "last_ts": format_ts(np.array([last_obs]))[0]
-                if last_obs != NAT else None, "last_pos": {"source": source, "row": t["row"]}}
+    def _checkpoints(self, touched: dict[str, dict], source: str) -> dict[str, dict]:
+        """The checkpoint row of every series the batch touched (see the module docstring)."""
+        names = list(touched)
+        newest = np.array([max(self._last_obs.get(s, NAT), touched[s]["ts"],
+                               touched[s].get("zero_ts", NAT)) for s in names], dtype=np.int64)
+        text = format_ts(np.where(newest == NAT, 0, newest)) if len(names) else []
+        out = {}
+        for s, last_obs, iso in zip(names, newest.tolist(), text):
+            t = touched[s]
+            vec = t["vec"] if t["vec"] is not None else self._states[self._index[s]]
+            gate = self.gate.state_of(s) if s in self.gate.index else None
+            t["last_obs"] = last_obs
+            state = {"pipeline": self._vec_to_json(vec), "gate": gate, "updates": t["updates"],
+                     "last_status": t["last_status"], "last_obs_ns": last_obs,
+                     "zero_skipped": self._zero.get(s, 0) + t.get("zero", 0)}
+            out[s] = {"state": state, "last_ts": iso if last_obs != NAT else None,
+                      "last_pos": {"source": source, "row": t["row"]}}
+        return out
 
     def _commit(self, plan: dict) -> None:
         """Move the committed batch's state into memory (only after the transaction)."""

@@ -151,10 +151,13 @@ def extra_rejects(frame: pd.DataFrame, local: np.ndarray, rows: np.ndarray, why:
     return out
 
 
-def observation_frame(df: pd.DataFrame, controls: list[str], label: str) -> pd.DataFrame:
-    """Rows to store in ``observations`` (``ts`` as ISO text, controls as a dict per row)."""
+def observation_frame(df: pd.DataFrame, controls: list[str], label: str,
+                      ts_text: np.ndarray | None = None) -> pd.DataFrame:
+    """Rows to store in ``observations`` (``ts`` as ISO text, controls as a dict per row);
+    ``ts_text`` is the ISO text of ``df["ts"]`` when already formatted."""
     out = pd.DataFrame({"series": df["series"].astype(str).to_numpy(),
-                        "ts": format_ts(df["ts"].to_numpy(dtype=np.int64)),
+                        "ts": format_ts(df["ts"].to_numpy(dtype=np.int64))
+                        if ts_text is None else ts_text,
                         "price": df["price"].to_numpy(dtype=np.float64),
                         "quantity": df["quantity"].to_numpy(dtype=np.float64)})
     if controls:

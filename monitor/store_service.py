@@ -1,4 +1,5 @@
-"""Store functions the live service needs beyond :mod:`monitor.store`: source errors, staleness.
+"""Store functions the live service needs beyond :mod:`monitor.store`: source errors,
+staleness, per-series bounds and the single-observation writer.
 
 Kept apart from the store modules (they belong to the store's owner); everything here goes
 through :meth:`Store.atomic` / :meth:`Store.rows` with parameterized SQL.
@@ -9,9 +10,22 @@ from __future__ import annotations
 import json
 from typing import Any
 
+import sqlite3
+
 import pandas as pd
 
+from monitor.errors import StoreError
 from monitor.store import Store, from_json, parse_ts, wall_ts
+from monitor.store_alerts import apply_alert_change
+# the store's own statements, so the single-row writer cannot drift from write_batch's SQL
+from monitor.store_batch import (_INSERT_EST, _INSERT_OBS, _UPSERT_LATEST, _UPSERT_OFFSET,
+                                 _UPSERT_SERIES_COUNTS, _UPSERT_SPARK)
+from monitor.store_schema import SPARK_KEEP, beta_text, spark_text
+
+_UPSERT_CHECKPOINT = (
+    "INSERT INTO checkpoints (series, state, last_ts, last_pos, updated_at) VALUES "
+    "(?, ?, ?, ?, ?) ON CONFLICT (series) DO UPDATE SET state = excluded.state, "
+    "last_ts = excluded.last_ts, last_pos = excluded.last_pos, updated_at = excluded.updated_at")
 
 #: prefix of the alert ``series`` used for alerts about a source rather than a series
 SOURCE_PREFIX = "source:"
@@ -101,3 +115,43 @@ def stale_changes(store: Store, now: Any, source_limits: dict[str, float],
         decide(r.series, age, float(limit), r.last_ts, f"series {r.series}",
                {"age_s": age, "stale_after_s": limit, "last_ts": r.last_ts})
     return changes
+
+
+def write_one(store: Store, *, observation: tuple, estimate: tuple, keep: bool,
+              checkpoint: tuple, offset: tuple, changes: list, now: str) -> dict:
+    """One observation's batch in one transaction, without building frames (``Monitor.observe``).
+
+    Writes exactly the rows :func:`monitor.store.write_batch` writes for a batch of one
+    accepted observation, with the same SQL statements: the series' counts, the observation,
+    the estimate (history only when ``keep``; ``latest_estimates`` always), the sparkline cache,
+    the checkpoint, the source offset and the alert changes. Parameters are the rows in the
+    statements' column order (``estimate`` with NULL for NaN). tests/test_engine.py holds the two
+    writers equal over every table.
+    """
+    series, ts = observation[0], observation[1]
+    summary = {"alerts_opened": [], "alerts_resolved": [], "alerts_reminded": [],
+               "alerts_unchanged": []}
+    with store.atomic():
+        store.conn.execute(_UPSERT_SERIES_COUNTS, (series, ts, ts, 1, int(keep), now))
+        try:
+            store.conn.execute(_INSERT_OBS, observation)
+        except sqlite3.IntegrityError:
+            raise StoreError(f"observation (series {series!r}, ts {ts!r}) is already stored; "
+                             f"the batch was not written") from None
+        if keep:
+            store.conn.execute(_INSERT_EST, estimate)
+        store.conn.execute(_UPSERT_LATEST, estimate)
+        if keep:
+            row = store.conn.execute("SELECT ts, beta FROM sparklines WHERE series = ?",
+                                     (series,)).fetchone()
+            pairs = list(zip(row[0].split(","), row[1].split(","))) if row else []
+            new = (ts, beta_text(estimate[2]))
+            pairs = pairs + [new] if not pairs or pairs[-1][0] < ts else sorted(pairs + [new])
+            store.conn.execute(_UPSERT_SPARK, (series, *spark_text(pairs[-SPARK_KEEP:])))
+        store.conn.execute(_UPSERT_CHECKPOINT, checkpoint)
+        store.conn.execute(_UPSERT_OFFSET, offset)
+        for change in changes:
+            outcome, alert_id = apply_alert_change(store, change, now=now)
+            if alert_id is not None:
+                summary[f"alerts_{outcome}"].append(alert_id)
+    return summary

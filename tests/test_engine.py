@@ -9,6 +9,7 @@ missing-column cases. Data come from the project's retail simulator (invented se
 from __future__ import annotations
 
 import sqlite3
+import struct
 
 import numpy as np
 import pandas as pd
@@ -209,3 +210,66 @@ def test_a_source_without_a_required_column_has_every_row_rejected(tmp_path):
         rep = mon.observe_many(bad)
     assert rep.rejected == 2 and rep.accepted == 0
     assert all("missing column(s) ['quantity']" in r for r in rep.rejects["reason"])
+
+
+def every_table(path) -> dict:
+    """Every table of a store (wall-clock columns left out), rows in a fixed order."""
+    conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    try:
+        names = [r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type = "
+                                            "'table' AND name NOT LIKE 'sqlite_%' AND name != "
+                                            "'migrations' ORDER BY name")]
+        out = {}
+        for t in names:
+            cols = [r[1] for r in conn.execute(f"PRAGMA table_info({t})")
+                    if not r[1].endswith("_at") and r[1] not in ("at", "until")]
+            q = ", ".join(f'"{c}"' for c in cols)
+            out[t] = [tuple(struct.pack("<d", v) if isinstance(v, float) else v for v in row)
+                      for row in conn.execute(f"SELECT {q} FROM {t} ORDER BY {q}")]
+        return out
+    finally:
+        conn.close()
+
+
+def test_the_one_row_path_of_observe_writes_what_the_batch_path_writes(tmp_path):
+    rng = np.random.default_rng(21)
+    t0 = pd.Timestamp("2024-02-01T00:00:00Z")
+    hours = {"a": 0, "b": 0, "c": 0}
+    calls = []
+    for i in range(260):
+        s = ["a", "b", "c"][i % 3] if rng.random() > 0.03 else f"new{i}"
+        h = hours.setdefault(s, 0)
+        hours[s] = h + 1
+        ts = t0 + pd.Timedelta(hours=h)
+        form = i % 4   # the timestamp forms validation accepts
+        tsv = [ts.strftime("%Y-%m-%dT%H:%M:%SZ"),
+               (ts + pd.Timedelta(hours=2)).strftime("%Y-%m-%dT%H:%M:%S+02:00"),
+               ts.value / 1e9, ts][form]
+        p = float(np.round(5 * np.exp(rng.normal(0, 0.15)), 2))
+        shift = 1.2 if s == "a" and h > 60 else 0.0          # a level shift: alerts
+        q = float(np.round(np.exp(3 - 1.5 * np.log(p) + shift + rng.normal(0, 0.1)), 3))
+        u = rng.random()
+        if u < 0.04:
+            p = -p                                            # rejected
+        elif u < 0.08:
+            q = 0.0                                           # zero_policy skip: kept, not fed
+        elif u < 0.11 and h:
+            tsv = (ts - pd.Timedelta(hours=1)).strftime("%Y-%m-%dT%H:%M:%SZ")   # repeat
+        calls.append((s, tsv, p, q, int(rng.random() < 0.3)))
+    stores = {}
+    for fast in (True, False):
+        db = tmp_path / f"{fast}.sqlite"
+        with Monitor(db, CFG) as mon:
+            mon._fast = fast
+            for s, tsv, p, q, promo in calls:
+                try:
+                    mon.observe(s, tsv, price=p, quantity=q, promo=promo)
+                except ValidationError:
+                    pass
+            stores[fast] = (db, mon.plain_calls)
+    assert stores[True][1] > 150 and stores[False][1] == 0     # the one-row path was taken
+    fast, general = every_table(stores[True][0]), every_table(stores[False][0])
+    assert fast.keys() == general.keys()
+    for t in general:
+        assert fast[t] == general[t], t
+    assert len(general["alerts"]) >= 1 and len(general["rejects"]) >= 10
