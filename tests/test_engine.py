@@ -14,6 +14,8 @@ import struct
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.cli import main
 from monitor.config import Config
@@ -273,3 +275,28 @@ def test_the_one_row_path_of_observe_writes_what_the_batch_path_writes(tmp_path)
     for t in general:
         assert fast[t] == general[t], t
     assert len(general["alerts"]) >= 1 and len(general["rejects"]) >= 10
+
+
+@settings(max_examples=300, deadline=None)
+@given(ns=st.integers(-8_000_000_000_000_000_000, 7_000_000_000_000_000_000),
+       digits=st.integers(0, 9), zone=st.sampled_from(["Z", "", "+02:00", "-05:30", "+00:00"]))
+def test_one_row_timestamps_read_and_print_as_validation_does(ns, digits, zone):
+    # reference: monitor.validate (pandas to_datetime with format="ISO8601", strftime)
+    from monitor.engine_fast import iso_z, plain_ns
+    from monitor.validate import format_ts, parse_timestamps
+
+    assert iso_z(ns) == format_ts(np.array([ns]))[0]
+    stamp = pd.Timestamp(ns, tz="UTC")
+    local = stamp.tz_convert("Etc/GMT-2") if zone == "+02:00" else stamp
+    if zone == "-05:30":
+        local = stamp - pd.Timedelta(hours=5, minutes=30)
+    elif zone == "+00:00" or zone in ("Z", ""):
+        local = stamp
+    text = local.strftime("%Y-%m-%dT%H:%M:%S")
+    if digits:
+        text += "." + f"{local.nanosecond + 1000 * local.microsecond:09d}"[:digits]
+    text += zone
+    expect = parse_timestamps(pd.Series([text], dtype=object))[0]
+    assert plain_ns(text) == expect, text
+    assert plain_ns(float(ns // 10**9)) == parse_timestamps(pd.Series([float(ns // 10**9)]))[0] \
+        or abs(ns // 10**9) >= 1e11
