@@ -120,12 +120,19 @@ THRESHOLD_KEYS = {"level": {"cusum": "cusum_h", "ewma": "ewma_L", "page_hinkley"
 def with_thresholds(base: Config, settings: list[dict]) -> list[dict]:
     """Each setting plus its designed chart thresholds as explicit ``[detectors]`` keys.
 
-    The designs are simulated here, once, in grid order (:mod:`monitor.detectors.design`
-    caches them per process), so every worker and every engine evaluates the same thresholds;
-    tuning.csv reports them.
+    The designs are simulated here, once, in grid order from an empty design cache
+    (:mod:`monitor.detectors.design` caches and extends its simulations per process), so every
+    worker and every engine, in any process, evaluates the same thresholds; tuning.csv
+    reports them.
     """
+    from monitor.detectors import design
     from monitor.pipeline import Pipeline
 
+    # A design extends cached simulations, so its last digits depend on what the process
+    # designed before; start from an empty cache so the thresholds depend on the grid alone.
+    clear = getattr(getattr(design, "_simulation", None), "cache_clear", None)
+    if clear is not None:
+        clear()
     out = []
     for s in settings:
         cfg = setting_config(base, s)
