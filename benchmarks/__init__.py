@@ -21,5 +21,6 @@ One module per figure group:
 - :mod:`benchmarks.live`: one observation through the in-process live path, and a row landing in
   a tailed CSV until its alert is in the outbox;
 - :mod:`benchmarks.memory`: state bytes per series and resident size at 1M series;
-- :mod:`benchmarks.dashboard`: the overview page's render time with 10k series (AppTest).
+- :mod:`benchmarks.dashboard`: the overview page's render time with 10k series (AppTest);
+- :mod:`benchmarks.tuning`: threshold tuning, settings x observations per second, local and Dask.
 """

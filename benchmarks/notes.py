@@ -44,6 +44,10 @@ MEASURES = {
         "**Memory.** A fresh interpreter holding N series (names, a name index, the "
         "pipeline's state arrays) after 3 observations each; state bytes are the arrays' exact "
         "size, resident size is psutil's RSS."),
+    "tuning": (
+        "**Tuning.** `tune` over a 9-setting grid on a retail simulation with known change "
+        "points, local worker processes and a Dask LocalCluster; settings x observations per "
+        "second of wall time, and whether both engines score every setting the same."),
     "dashboard": (
         "**Dashboard.** AppTest of `dashboard/app.py` on a store of 10,000 series x 30 "
         "observations and estimates (computed by the real kernel), caches cleared before each "

@@ -24,7 +24,7 @@ from pathlib import Path
 from benchmarks.common import Context, Row, machine, machine_text, table
 
 #: replay runs last: it takes as many runs (up to --runs) as the time budget leaves
-GROUPS = ("estimator", "detection", "ingest", "live", "memory", "dashboard", "replay")
+GROUPS = ("estimator", "detection", "ingest", "live", "memory", "dashboard", "tuning", "replay")
 RESULTS = Path(__file__).resolve().parent / "RESULTS.md"
 
 INTRO = """\
