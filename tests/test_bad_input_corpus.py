@@ -34,6 +34,8 @@ REASONS = {"empty_field": "empty field", "unparsable_number": "not a number",
            "inf_value": "infinity is not a value", "bad_timestamp": "unparsable timestamp",
            "future_timestamp": "in the future", "duplicate_key": "duplicate row",
            "late_row": "late row", "unit_error": "suspected unit error"}
+#: the thresholds the pipeline designs for the default settings, given to skip the design time
+DESIGNED = Config({"detectors": {"cusum_h": 8.09, "slope_h": 84.4}})
 MALFORMED = [b"only,three,fields\n", b"a,b,c,d,e,f,g,h,i\n", b"\xff\xfe\xfd,not,utf8,at,all,x\n"]
 
 
@@ -44,6 +46,7 @@ def corpus_service(tmp_path, zero_policy):
     cfg = validate_config({
         "store": {"path": "s.sqlite"},
         "estimator": {"controls": ["promo"]},
+        "detectors": {"cusum_h": 8.09, "slope_h": 84.4},   # designed values, given (no design time)
         "validation": {"zero_policy": zero_policy},
         "service": {"poll_interval_s": 0.05, "batch_rows": 64, "stale_check_s": 3600},
         "sources": {"feed": {"type": "csv", "path": "feed.csv"},
@@ -125,7 +128,7 @@ def test_duplicate_policy_keep_first_or_reject_all(tmp_path):
     (tmp_path / "f.csv").write_bytes(rows)
     for policy, kept in (("keep_first", [10.0, 11.0, 13.0]), ("reject_all", [10.0, 13.0])):
         db = tmp_path / f"{policy}.sqlite"
-        with Monitor(db, Config({"validation": {"duplicate_policy": policy}})) as mon:
+        with Monitor(db, Config({**DESIGNED.data, "validation": {"duplicate_policy": policy}})) as mon:
             mon.process_chunk(CsvTail("f", tmp_path / "f.csv").read(None, 100), "f", "csv")
         got = frame(db, "SELECT quantity FROM observations ORDER BY ts, quantity")
         assert got["quantity"].tolist() == kept, policy
@@ -173,7 +176,7 @@ def test_random_csv_content_never_crashes_ingest_nor_loses_a_valid_row(items, cr
         split = int(cut * len(data))                         # a growing file, cut anywhere
         path.write_bytes(data[:split])
         src = CsvTail("feed", path)
-        with Monitor(db) as mon:
+        with Monitor(db, DESIGNED) as mon:
             position = None
             for stage in (0, 1):
                 while True:

@@ -9,6 +9,7 @@ missing-column cases. Data come from the project's retail simulator (invented se
 from __future__ import annotations
 
 import sqlite3
+import tomllib
 import struct
 
 import numpy as np
@@ -26,8 +27,17 @@ from monitor.store import Store, thin_estimates
 from simulators import simulate
 from tests.service_helpers import assert_same_store, csv_bytes, dump, frame, states
 
-CFG = Config({"estimator": {"forgetting": 0.99, "controls": ["promo"]},
-              "validation": {"zero_policy": "skip"}, "store": {"estimates_every": 3}})
+CFG_TOML = """
+[estimator]
+forgetting = 0.99
+controls = ["promo"]
+[validation]
+zero_policy = "skip"
+[detectors]     # the thresholds the pipeline designs by simulation for ARL0 20000 and
+cusum_h = 8.09  # forgetting 0.99 (monitor.detectors.design), given to skip the design time
+slope_h = 84.4
+"""
+CFG = Config({**tomllib.loads(CFG_TOML), "store": {"estimates_every": 3}})
 
 
 @pytest.fixture(scope="module")
@@ -100,8 +110,9 @@ def test_live_ingest_in_batches_equals_replay_to_the_bit(tmp_path, log):
     path = tmp_path / "log.csv"
     path.write_bytes(csv_bytes(log))
     run_replay(path, tmp_path / "replay", CFG)
+    (tmp_path / "elmon.toml").write_text(CFG_TOML)
     rc = main(["ingest", str(path), "--db", str(tmp_path / "s.sqlite"), "--batch-rows", "37",
-               "--control", "promo", "--forgetting", "0.99", "--zero-policy", "skip"])
+               "--config", str(tmp_path / "elmon.toml")])
     assert rc == 0
     replay = pd.read_csv(tmp_path / "replay" / "estimates.csv")
     live = frame(tmp_path / "s.sqlite", "SELECT * FROM estimates")
@@ -124,16 +135,18 @@ def test_rerun_of_a_finished_ingest_adds_nothing_and_says_so(tmp_path, log, caps
     path = tmp_path / "log.csv"
     path.write_bytes(csv_bytes(log.iloc[:100]))
     db = tmp_path / "s.sqlite"
-    assert main(["ingest", str(path), "--db", str(db), "--control", "promo"]) == 0
+    (tmp_path / "elmon.toml").write_text(CFG_TOML)
+    args = ["ingest", str(path), "--db", str(db), "--config", str(tmp_path / "elmon.toml")]
+    assert main(args) == 0
     first = dump(db)
     capsys.readouterr()
-    assert main(["ingest", str(path), "--db", str(db), "--control", "promo"]) == 0
+    assert main(args) == 0
     out = capsys.readouterr().out
     assert "nothing new" in out and "row 100" in out and "nothing added" in out
     assert dump(db) == first
     with open(path, "ab") as fh:                            # the file grows: only the new rows
         fh.write(csv_bytes(log.iloc[100:130]).split(b"\n", 1)[1])
-    assert main(["ingest", str(path), "--db", str(db), "--control", "promo"]) == 0
+    assert main(args) == 0
     assert "continuing after row 100" in capsys.readouterr().out
     assert len(dump(db)["observations"]) == len(first["observations"]) + 30
 
@@ -174,20 +187,22 @@ def test_a_failed_commit_leaves_no_trace(tmp_path, log):
 
 
 def test_a_second_writer_process_is_refused(tmp_path):
-    with Monitor(tmp_path / "w.sqlite"):
+    with Monitor(tmp_path / "w.sqlite", CFG):
         with pytest.raises(StoreError, match="another elmon process"):
-            Monitor(tmp_path / "w.sqlite")
-    Monitor(tmp_path / "w.sqlite").close()                  # free again once closed
+            Monitor(tmp_path / "w.sqlite", CFG)
+    Monitor(tmp_path / "w.sqlite", CFG).close()                # free again once closed
 
 
 def test_a_changed_model_is_refused_on_restore(tmp_path, log):
     run_in_batches(tmp_path / "c.sqlite", log.iloc[:20], [])
     with pytest.raises(StoreError, match="checkpoint of series .* another model configuration"):
-        Monitor(tmp_path / "c.sqlite", Config({"estimator": {"controls": []}}))
+        Monitor(tmp_path / "c.sqlite", Config({"estimator": {"controls": []},
+                                                "detectors": CFG.data["detectors"]}))
 
 
 def test_repeats_the_gate_cannot_see_are_rejected_not_fatal(tmp_path):
-    cfg = Config({"validation": {"allowed_lateness_s": 30 * 86400.0, "zero_policy": "skip"}})
+    cfg = Config({"validation": {"allowed_lateness_s": 30 * 86400.0, "zero_policy": "skip"},
+                  "detectors": CFG.data["detectors"]})
     ts = [f"2024-01-{d:02d}T00:00:00Z" for d in range(1, 21)]
     base = pd.DataFrame({"series": "s", "ts": ts, "price": 5.0 + np.arange(20) % 3 * 0.1,
                          "quantity": 50.0})
@@ -208,7 +223,7 @@ def test_repeats_the_gate_cannot_see_are_rejected_not_fatal(tmp_path):
 def test_a_source_without_a_required_column_has_every_row_rejected(tmp_path):
     bad = pd.DataFrame({"series": ["a", "b"], "ts": ["2024-01-01", "2024-01-02"],
                         "price": [1.0, 2.0]})
-    with Monitor(tmp_path / "m.sqlite") as mon:
+    with Monitor(tmp_path / "m.sqlite", Config({"detectors": CFG.data["detectors"]})) as mon:
         rep = mon.observe_many(bad)
     assert rep.rejected == 2 and rep.accepted == 0
     assert all("missing column(s) ['quantity']" in r for r in rep.rejects["reason"])

@@ -29,13 +29,16 @@ from simulators import LiveAppender, simulate
 from tests.service_helpers import assert_same_store, csv_bytes, dump, frame
 
 ROOT = Path(__file__).resolve().parents[1]
+#: the thresholds the pipeline designs by simulation for the default ARL0 20000 and forgetting
+#: 0.99 (monitor.detectors.design), given so that each process skips the design time
+DESIGNED = {"cusum_h": 8.09, "slope_h": 84.4}
 
 
 def config(**sections):
     base = {"store": {"path": "s.sqlite"},
             "service": {"poll_interval_s": 0.05, "batch_rows": 100, "delivery_interval_s": 0.1,
                         "stale_check_s": 0.2},
-            "estimator": {"controls": ["promo"]}}
+            "estimator": {"controls": ["promo"]}, "detectors": DESIGNED}
     for k, v in sections.items():
         base[k] = {**base.get(k, {}), **v} if isinstance(v, dict) else v
     return validate_config(base)
@@ -113,6 +116,9 @@ def test_sigterm_finishes_the_batch_commits_and_exits_zero(tmp_path, log):
         batch_rows = 50
         [estimator]
         controls = ["promo"]
+        [detectors]
+        cusum_h = 8.09
+        slope_h = 84.4
         [sources.feed]
         type = "csv"
         path = "feed.csv"
@@ -133,6 +139,7 @@ def test_sigterm_finishes_the_batch_commits_and_exits_zero(tmp_path, log):
     assert 0 < rows_read and len(got["observations"]) + len(got["rejects"]) == rows_read
     # finishing the file afterwards gives the same store as one uninterrupted run
     cfg = validate_config({"store": {"path": "s.sqlite"}, "estimator": {"controls": ["promo"]},
+                           "detectors": DESIGNED,
                            "sources": {"feed": {"type": "csv", "path": "feed.csv"}}})
     with Service(cfg, base=tmp_path) as svc:
         svc.run_once()
