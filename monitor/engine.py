@@ -223,18 +223,21 @@ class Monitor:
         """Process a :class:`monitor.ingest_csv.Chunk` read from a source and commit its position."""
         return self.process_batch(chunk.frame, source, chunk.position, kind=kind, rows=chunk.rows,
                                   pre_rejects=chunk.rejects, notice=chunk.notice,
-                                  label=chunk.label, consumed=chunk.consumed)
+                                  label=chunk.label, consumed=chunk.consumed,
+                                  notice_kind=chunk.notice_kind)
 
     # ------------------------------------------------------------------ one batch
     def process_batch(self, frame: pd.DataFrame, source: str, new_position: dict | None, *,
                       kind: str = "api", rows: np.ndarray | None = None, pre_rejects=None,
                       notice: str | None = None, label: str | None = None,
-                      consumed: int | None = None) -> BatchReport:
+                      consumed: int | None = None,
+                      notice_kind: str = "source_reset") -> BatchReport:
         """Validate, run and commit one batch; see the module docstring.
 
         ``rows`` are the source's row numbers of ``frame`` (increasing; default: continuing
         the source's count), ``pre_rejects`` lines the source could not split into fields,
-        ``notice`` a source problem to report (opens a ``source_reset`` alert), ``label`` the
+        ``notice`` a source problem to report (opens an alert of kind ``notice_kind``: by
+        default ``source_reset``; ``source_error`` for a skipped file), ``label`` the
         ``source`` text of stored rows, ``consumed`` the source rows accounted for.
         """
         t0 = time.perf_counter()
@@ -255,7 +258,7 @@ class Monitor:
                 changes = plan["changes"]
                 if notice:
                     changes = changes + [{"action": "open", "series": f"source:{source}",
-                                          "kind": "source_reset", "ts": wall_ts(),
+                                          "kind": notice_kind, "ts": wall_ts(),
                                           "beta": None, "beta_lo": None, "beta_hi": None,
                                           "message": notice, "severity": "warning"}]
                 offset = {"kind": kind, "position": new_position, "rows_read": consumed,

@@ -20,7 +20,9 @@ Positions (JSON in ``source_offsets.position``)
 - ``folder``: ``{"done": {file: [size, mtime_ns]}, "current": {...} | null}``: each CSV or
   Parquet file is processed once, in order of modification time then name, after it has not
   changed for ``settle_s`` seconds; a large file is read in several batches (``current``
-  holds the offset inside it). Rows are labelled ``NAME/FILE`` in the store.
+  holds the offset inside it). Rows are labelled ``NAME/FILE`` in the store. A file that
+  cannot be read, disappears half-read or changes after it was read is reported (a
+  ``source_error`` alert) and skipped, so it never blocks the files after it.
 - ``sql``: ``{"key": last key, "rows": rows read}``: ``SELECT * FROM table WHERE key > ?
   ORDER BY key LIMIT n``. SQLite files are built in (opened read-only); other databases go
   through a SQLAlchemy URL. The key must increase in commit order (an ``INTEGER PRIMARY KEY``
@@ -203,7 +205,13 @@ class FolderSource:
             gone = (f"{path} disappeared after {cur['rows']} of its rows were read; the rest "
                     f"is lost to elmon")
             return self._empty({**pos, "current": None}, gone)
-        chunk = self._read_file(path, cur, max_rows)
+        try:
+            chunk = self._read_file(path, cur, max_rows)
+        except (SourceError, OSError) as exc:   # a damaged file must not block the ones after it
+            done[cur["name"]] = [cur["size"], cur["mtime_ns"]]
+            return self._empty({**pos, "done": done, "current": None},
+                               f"{exc}; the file is skipped (fix it and give it a new name to "
+                               f"have it read)")
         done_now = chunk.extra.pop("complete")
         keep = {k: v for k, v in done.items() if k in present or k == cur["name"]}
         if done_now:
@@ -212,13 +220,13 @@ class FolderSource:
                           "reported": pos.get("reported")}
         chunk.label = f"{self.name}/{cur['name']}"
         if notices and pos.get("reported") != notices:
-            chunk.notice = "; ".join(notices)
+            chunk.notice, chunk.notice_kind = "; ".join(notices), "source_error"
             chunk.position["reported"] = notices
         return chunk
 
     def _empty(self, position: dict, notice: str) -> Chunk:
         return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(), position, 0,
-                     notice=notice)
+                     notice=notice, notice_kind="source_error")
 
     def _read_file(self, path: Path, cur: dict, max_rows: int) -> Chunk:
         suffix = path.suffix.lower()

@@ -51,7 +51,8 @@ class Chunk:
     consumed : int
         Data rows this chunk accounts for (frame rows, rejected lines and blank lines).
     notice : str, optional
-        A problem found before reading (file replaced or truncated); reported by the engine.
+        A problem found before reading (file replaced or truncated, a folder file that cannot
+        be read); the engine opens an alert of kind ``notice_kind`` about it.
     label : str, optional
         Text written in the ``source`` column of observations and rejects (default: the
         source name; a folder source adds the file name).
@@ -65,6 +66,7 @@ class Chunk:
     notice: str | None = None
     label: str | None = None
     extra: dict = field(default_factory=dict)
+    notice_kind: str = "source_reset"
 
 
 def empty_rejects() -> pd.DataFrame:

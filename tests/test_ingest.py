@@ -308,3 +308,17 @@ def test_sources_from_config_resolve_paths_against_the_config_folder(tmp_path):
 def test_source_config_errors_name_the_key(spec, message):
     with pytest.raises(ConfigError, match=message):
         validate_config({"sources": {"feed": spec}})
+
+
+def test_folder_skips_an_unreadable_file_and_reports_it(tmp_path):
+    (tmp_path / "a.parquet").write_bytes(b"this is not parquet")
+    (tmp_path / "b.csv").write_bytes(HEADER + line(0))
+    old = time.time() - 100
+    os.utime(tmp_path / "a.parquet", (old, old))
+    src = FolderSource("d", tmp_path, settle_s=0.0)
+    first = src.read(None, 10)
+    assert first.notice_kind == "source_error" and "unreadable parquet file" in first.notice
+    assert "skipped" in first.notice and len(first.frame) == 0
+    nxt = src.read(first.position, 10)                      # the next file is not blocked
+    assert nxt.label == "d/b.csv" and len(nxt.frame) == 1
+    assert src.read(nxt.position, 10) is None
