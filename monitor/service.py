@@ -71,7 +71,13 @@ class Service:
             store = Path(service_config.store_settings(config)["path"]).expanduser()
             store = store if store.is_absolute() else base / store
         self.sources = sources_from_config(config, base)
-        self.sinks = sinks_from_config(config.section("sinks"))   # env variables checked here
+        sink_specs = {}
+        for name, spec in (config.section("sinks") or {}).items():
+            spec = dict(spec) if isinstance(spec, dict) else spec
+            if isinstance(spec, dict) and "path" in spec and not Path(spec["path"]).expanduser().is_absolute():
+                spec["path"] = str(base / spec["path"])    # like sources: relative to the config
+            sink_specs[name] = spec
+        self.sinks = sinks_from_config(sink_specs)   # env variables checked here
         self.monitor = Monitor(store, config)
         self.store = self.monitor.store
         self.stop_event = threading.Event()
