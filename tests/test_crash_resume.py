@@ -150,4 +150,5 @@ def test_sigkill_at_random_moments_then_restart_ends_exactly_as_an_uninterrupted
     ref = dump(tmp_path / "ref.sqlite")
     assert len(ref["observations"]) + len(ref["rejects"]) == len(lines) - 1
     assert len(ref["rejects"]) >= 12 and len(ref["estimates"]) > 500
+    assert len(ref["alerts"]) >= 2 and len(ref["outbox"]) >= 2      # alerts are compared too
     assert_same_store(tmp_path / "crash.sqlite", tmp_path / "ref.sqlite")
