@@ -48,6 +48,27 @@ from monitor.store_service import record_source_error, source_rows_at, stale_cha
 log = logging.getLogger("elmon.service")
 
 
+def config_folder(config: Config) -> Path:
+    """The folder relative paths of ``config`` are taken from: the config file's, else the
+    working directory."""
+    if config.path and Path(config.path).is_file():
+        return Path(config.path).resolve().parent
+    return Path.cwd()
+
+
+def configured_sinks(config: Config, base: Path) -> dict:
+    """``[sinks.*]`` built by :func:`monitor.sinks.sinks_from_config`, a log sink's relative
+    ``path`` taken from ``base`` like the sources' paths."""
+    specs = {}
+    for name, spec in (config.section("sinks") or {}).items():
+        spec = dict(spec) if isinstance(spec, dict) else spec
+        if isinstance(spec, dict) and "path" in spec \
+                and not Path(spec["path"]).expanduser().is_absolute():
+            spec["path"] = str(base / Path(spec["path"]).expanduser())
+        specs[name] = spec
+    return sinks_from_config(specs)
+
+
 class Service:
     """Sources, a :class:`~monitor.engine.Monitor`, sinks and the jobs that tie them together.
 
@@ -64,20 +85,12 @@ class Service:
     def __init__(self, config: Config, store=None, base: Path | None = None):
         self.config = config
         self.settings = service_config.service_settings(config)
-        base = Path(base) if base is not None else (Path(config.path).parent
-                                                    if config.path and config.path != "config"
-                                                    else Path.cwd())
+        base = Path(base) if base is not None else config_folder(config)
         if store is None:
             store = Path(service_config.store_settings(config)["path"]).expanduser()
             store = store if store.is_absolute() else base / store
         self.sources = sources_from_config(config, base)
-        sink_specs = {}
-        for name, spec in (config.section("sinks") or {}).items():
-            spec = dict(spec) if isinstance(spec, dict) else spec
-            if isinstance(spec, dict) and "path" in spec and not Path(spec["path"]).expanduser().is_absolute():
-                spec["path"] = str(base / spec["path"])    # like sources: relative to the config
-            sink_specs[name] = spec
-        self.sinks = sinks_from_config(sink_specs)   # env variables checked here
+        self.sinks = configured_sinks(config, base)   # env variables checked here
         self.monitor = Monitor(store, config)
         self.store = self.monitor.store
         self.stop_event = threading.Event()
@@ -256,7 +269,7 @@ def ingest_file(path, store, config: Config | None = None, batch_rows: int | Non
         from monitor.errors import ConfigError
         raise ConfigError(f"batch_rows = {rows_per_batch}: must be >= 1")
     name, src = file_source(path, config.section("columns"))
-    sinks = sinks_from_config(config.section("sinks")) if deliver else {}
+    sinks = configured_sinks(config, config_folder(config)) if deliver else {}
     t0 = time.perf_counter()
     out = {"source": name, "batches": 0, "rows": 0, "accepted": 0, "rejected": 0,
            "zero_skipped": 0, "alerts_opened": 0, "notices": []}

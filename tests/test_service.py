@@ -276,3 +276,20 @@ def test_a_reader_process_beside_the_writing_service_sees_no_lock_errors(tmp_pat
         .isna().all()
     with open_store(tmp_path / "s.sqlite", readonly=True) as st:   # commits landed in batches
         assert st.scalar("SELECT count(*) FROM observations") > 0
+
+
+def test_a_log_sink_path_is_taken_from_the_config_folder(tmp_path, log, monkeypatch):
+    elsewhere = tmp_path / "cwd"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    feed = tmp_path / "feed.csv"
+    feed.write_bytes(csv_bytes(log.iloc[:10]))
+    cfg = config(sources={"feed": {"type": "csv", "path": "feed.csv"}},
+                 sinks={"log": {"path": "alerts.jsonl"}})
+    with Service(cfg, base=tmp_path) as svc:
+        svc.run_once()
+        feed.write_bytes(csv_bytes(log.iloc[:3]))          # truncated: a source_reset alert
+        svc.run_once()
+    lines = (tmp_path / "alerts.jsonl").read_text().splitlines()
+    assert [json.loads(x)["kind"] for x in lines] == ["source_reset"]
+    assert not (elsewhere / "alerts.jsonl").exists()
