@@ -12,17 +12,7 @@ checkpoints and the source's new position are written in ONE transaction
 (:func:`monitor.store.write_batch`). Memory is updated only after that commit, so a failed or
 killed batch leaves no trace and the next start repeats it from the committed position.
 
-Checkpoint of a series (``checkpoints.state``, JSON)::
-
-    {"pipeline": [...],        # Pipeline.state_to_json(vector): estimator + detectors + rules
-     "gate": {"last_ts", "ring", "count"},   # SeriesGate state (duplicate / lateness / unit checks)
-     "updates": n,             # estimator updates so far (estimate thinning counts from it)
-     "last_status": "ok",      # status of the last update (thinning keeps status changes)
-     "last_obs_ns": t,         # newest observation time, zero-quantity rows included
-     "zero_skipped": z}        # zero-quantity rows kept out of the estimator
-
-Floats are written by Python's shortest round-trip repr (NaN as ``NaN``), so a restored vector
-equals the saved one bit for bit and a resumed run continues exactly as an uninterrupted one.
+What is checkpointed and how a restart restores it is in :mod:`monitor.engine_state`.
 
 Only one process may write a store's live state: the Monitor holds an exclusive lock on
 ``<store>.writer.lock`` (released when the process ends, even by SIGKILL).
@@ -30,30 +20,28 @@ Only one process may write a store's live state: the Monitor holds an exclusive 
 
 from __future__ import annotations
 
-import fcntl
 import inspect
-import os
 import threading
 import time
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from monitor import service_config
 from monitor.config import Config, estimator_from_config, validation_from_config
-from monitor.engine_batch import (DUPLICATE, LATE, NAT, BatchReport, duplicates_against_store,
-                                  extra_rejects, missing_column_rejects, observation_frame,
-                                  reject_frame, renumber, required_columns, zero_rows)
+from monitor.engine_batch import (DUPLICATE, LATE, NAT, BatchReport, alert_changes,
+                                  duplicates_against_store, extra_rejects,
+                                  missing_column_rejects, observation_frame, reject_frame,
+                                  renumber, required_columns, zero_rows)
 from monitor.engine_fast import NOT_PLAIN, observe_plain
-from monitor.errors import ConfigError, StoreError, ValidationError
-from monitor.estimators.rls import floats_from_json, floats_to_json
+from monitor.engine_state import checkpoints, restore, vector_to_json
+from monitor.errors import ValidationError
 from monitor.pipeline import Pipeline
 from monitor.replay import estimates_frame, prepare_rows
-from monitor.store import Store, load_checkpoints, thin_estimates, wall_ts, write_batch
-from monitor.store_service import series_bounds
+from monitor.store import Store, thin_estimates, wall_ts, write_batch
+from monitor.store_service import release_writer_lock, series_bounds, take_writer_lock
 from monitor.types import Estimate
-from monitor.validate import SeriesGate, format_ts, validate_frame
+from monitor.validate import validate_frame
 
 __all__ = ["Monitor", "BatchReport"]
 
@@ -91,7 +79,7 @@ class Monitor:
         self.store = Store.open(store, create=True) if self._own else store
         self._lockfile = None
         try:
-            self._take_writer_lock()
+            self._lockfile = take_writer_lock(self.store.path)
             self.store.sinks = service_config.sink_names(self.config)
             self._lock = threading.RLock()
             self._controls = list(self.estimator.controls) + list(self.estimator.log_controls)
@@ -106,69 +94,13 @@ class Monitor:
             raise
 
     # ------------------------------------------------------------------ set-up
-    def _take_writer_lock(self) -> None:
-        path = Path(str(self.store.path) + ".writer.lock")
-        fh = open(path, "a+")
-        try:
-            fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
-            fh.seek(0)
-            holder = fh.read().strip() or "unknown"
-            fh.close()
-            raise StoreError(f"store {str(self.store.path)!r} is being processed by another "
-                             f"elmon process (pid {holder}); stop it first") from None
-        fh.seek(0)
-        fh.truncate()
-        fh.write(str(os.getpid()))
-        fh.flush()
-        self._lockfile = fh
 
     def _vec_to_json(self, vec: np.ndarray):
-        if hasattr(self.pipeline, "state_to_json"):
-            return self.pipeline.state_to_json(vec)
-        return floats_to_json(vec)
-
-    def _vec_from_json(self, obj) -> np.ndarray:
-        if hasattr(self.pipeline, "state_from_json"):
-            return np.asarray(self.pipeline.state_from_json(obj), dtype=np.float64)
-        return floats_from_json(obj)
+        return vector_to_json(self.pipeline, vec)
 
     def _restore(self) -> None:
         """Every series from its checkpoint; each source's row count from its offset."""
-        self.gate = SeriesGate()
-        self._index: dict[str, int] = {}
-        self._names: list[str] = []
-        fresh = self.pipeline.new_states(1)
-        self._width = fresh.shape[1]
-        vectors, self._updates, self._last_status = [], {}, {}
-        self._last_obs: dict[str, int] = {}
-        self._zero: dict[str, int] = {}
-        for series, cp in sorted(load_checkpoints(self.store).items()):
-            st = cp.state
-            try:
-                vec = self._vec_from_json(st["pipeline"])
-            except (ConfigError, ValidationError) as exc:
-                raise StoreError(f"checkpoint of series {series!r}: {exc}; the store was "
-                                 f"written with another model configuration (use a new store "
-                                 f"or the old configuration)") from None
-            if vec.shape != (self._width,):
-                raise StoreError(f"checkpoint of series {series!r}: a state of length "
-                                 f"{vec.size}, this configuration needs {self._width}; the "
-                                 f"store was written with another model configuration (use a "
-                                 f"new store or the old configuration)")
-            self._index[series] = len(self._names)
-            self._names.append(series)
-            vectors.append(vec)
-            if st.get("gate") is not None:
-                self.gate.restore(series, st["gate"])
-            self._updates[series] = int(st.get("updates", 0))
-            if st.get("last_status") is not None:
-                self._last_status[series] = st["last_status"]
-            self._last_obs[series] = int(st.get("last_obs_ns", NAT))
-            self._zero[series] = int(st.get("zero_skipped", 0))
-        self._states = np.array(vectors, dtype=np.float64).reshape(len(vectors), self._width)
-        self._rows_read = {r["source"]: int(r["rows_read"])
-                           for r in self.store.rows("SELECT source, rows_read FROM source_offsets")}
+        restore(self)
 
     @property
     def series(self) -> list[str]:
@@ -337,7 +269,7 @@ class Monitor:
                 est, self.estimates_every,
                 previous_status={s: self._last_status[s] for s in names if s in self._last_status},
                 start_count={s: self._updates.get(s, 0) for s in names})
-            plan["changes"] = self._alert_changes(res, good, est, names, sid)
+            plan["changes"] = alert_changes(res, est, names, sid)
             plan["states"] = (glob, res.states)
             # rows are in arrival order (each series' accepted rows in time order unless a
             # lateness is allowed): per series, the last row processed and the newest time
@@ -373,7 +305,7 @@ class Monitor:
         if obs_parts:
             plan["observations"] = pd.concat(obs_parts, ignore_index=True)
         plan["touched"] = touched
-        plan["checkpoints"] = self._checkpoints(touched, source)
+        plan["checkpoints"] = checkpoints(self, touched, source)
         return plan
 
     def _run_extras(self, ts: np.ndarray, names: list[str]) -> dict:
@@ -395,45 +327,6 @@ class Monitor:
                 kw["high"] = np.array([pick(n, 1, high) for n in names], dtype=np.float64)
         return kw
 
-    def _alert_changes(self, res, good: pd.DataFrame, est: pd.DataFrame, names: list[str],
-                       sid: np.ndarray) -> list[dict]:
-        """The pipeline's alert events as store alert changes (open / resolve), in row order."""
-        events = getattr(res, "events", None)
-        if events is None or not len(events):
-            return []
-        out = []
-        for ev in events.sort_values("row", kind="stable").to_dict("records"):
-            j = int(ev["row"])
-            series, ts = names[int(sid[j])], est["ts"].iat[j]
-            if ev["action"] == "open":
-                out.append({"action": "open", "series": series, "kind": ev["kind"], "ts": ts,
-                            "beta": ev.get("beta"), "beta_lo": ev.get("beta_lo"),
-                            "beta_hi": ev.get("beta_hi"), "message": ev["message"],
-                            "severity": ev.get("severity") or "warning",
-                            "details": ev.get("details")})
-            else:
-                out.append({"action": "resolve", "series": series, "kind": ev["kind"], "ts": ts,
-                            "note": ev.get("message") or "rule cleared"})
-        return out
-
-    def _checkpoints(self, touched: dict[str, dict], source: str) -> dict[str, dict]:
-        """The checkpoint row of every series the batch touched (see the module docstring)."""
-        names = list(touched)
-        newest = np.array([max(self._last_obs.get(s, NAT), touched[s]["ts"],
-                               touched[s].get("zero_ts", NAT)) for s in names], dtype=np.int64)
-        text = format_ts(np.where(newest == NAT, 0, newest)) if len(names) else []
-        out = {}
-        for s, last_obs, iso in zip(names, newest.tolist(), text):
-            t = touched[s]
-            vec = t["vec"] if t["vec"] is not None else self._states[self._index[s]]
-            gate = self.gate.state_of(s) if s in self.gate.index else None
-            t["last_obs"] = last_obs
-            state = {"pipeline": self._vec_to_json(vec), "gate": gate, "updates": t["updates"],
-                     "last_status": t["last_status"], "last_obs_ns": last_obs,
-                     "zero_skipped": self._zero.get(s, 0) + t.get("zero", 0)}
-            out[s] = {"state": state, "last_ts": iso if last_obs != NAT else None,
-                      "last_pos": {"source": source, "row": t["row"]}}
-        return out
 
     def _commit(self, plan: dict) -> None:
         """Move the committed batch's state into memory (only after the transaction)."""
@@ -453,8 +346,7 @@ class Monitor:
         if self._own and self.store is not None:
             self.store.close()
         if self._lockfile is not None:
-            fcntl.flock(self._lockfile, fcntl.LOCK_UN)
-            self._lockfile.close()
+            release_writer_lock(self._lockfile)
             self._lockfile = None
 
     def __enter__(self) -> "Monitor":

@@ -181,5 +181,27 @@ def reject_frame(parts: list[pd.DataFrame], label: str) -> pd.DataFrame:
     return df.sort_values("row", kind="stable").reset_index(drop=True)
 
 
+def alert_changes(res, est: pd.DataFrame, names: list[str], sid: np.ndarray) -> list[dict]:
+    """The pipeline's alert events as store alert changes (open / resolve), in row order;
+    ``est`` supplies each row's ISO time, ``names[sid[row]]`` its series."""
+    events = getattr(res, "events", None)
+    if events is None or not len(events):
+        return []
+    out = []
+    for ev in events.sort_values("row", kind="stable").to_dict("records"):
+        j = int(ev["row"])
+        series, ts = names[int(sid[j])], est["ts"].iat[j]
+        if ev["action"] == "open":
+            out.append({"action": "open", "series": series, "kind": ev["kind"], "ts": ts,
+                        "beta": ev.get("beta"), "beta_lo": ev.get("beta_lo"),
+                        "beta_hi": ev.get("beta_hi"), "message": ev["message"],
+                        "severity": ev.get("severity") or "warning",
+                        "details": ev.get("details")})
+        else:
+            out.append({"action": "resolve", "series": series, "kind": ev["kind"], "ts": ts,
+                        "note": ev.get("message") or "rule cleared"})
+    return out
+
+
 def required_columns(est) -> list[str]:
     return list(REQUIRED) + list(est.controls) + list(est.log_controls)

@@ -18,7 +18,7 @@ from numbers import Real
 import numpy as np
 import pandas as pd
 
-from monitor.engine_batch import NAT
+from monitor.engine_batch import NAT, alert_changes
 from monitor.estimators import kernel as K
 from monitor.store import to_json, wall_ts
 from monitor.store_service import write_one
@@ -145,7 +145,7 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
     records = getattr(res, "records", None)
     if records is None or len(records):
         est = pd.DataFrame({"ts": [ts]})
-        changes = mon._alert_changes(res, None, est, [series], sid)
+        changes = alert_changes(res, est, [series], sid)
     source = "api"
     row = mon._rows_read.get(source, 0) + 1
     gate_state = mon.gate.state_of(series)

@@ -7,7 +7,9 @@ through :meth:`Store.atomic` / :meth:`Store.rows` with parameterized SQL.
 
 from __future__ import annotations
 
+import fcntl
 import json
+import os
 from typing import Any
 
 import sqlite3
@@ -29,6 +31,30 @@ _UPSERT_CHECKPOINT = (
 
 #: prefix of the alert ``series`` used for alerts about a source rather than a series
 SOURCE_PREFIX = "source:"
+
+
+def take_writer_lock(store_path):
+    """Hold ``<store>.writer.lock`` exclusively (``flock``) so one process writes live state;
+    the kernel releases it when the process ends, even by SIGKILL. Returns the open file."""
+    fh = open(str(store_path) + ".writer.lock", "a+")
+    try:
+        fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        fh.seek(0)
+        holder = fh.read().strip() or "unknown"
+        fh.close()
+        raise StoreError(f"store {str(store_path)!r} is being processed by another elmon "
+                         f"process (pid {holder}); stop it first") from None
+    fh.seek(0)
+    fh.truncate()
+    fh.write(str(os.getpid()))
+    fh.flush()
+    return fh
+
+
+def release_writer_lock(fh) -> None:
+    fcntl.flock(fh, fcntl.LOCK_UN)
+    fh.close()
 
 
 def record_source_error(store: Store, source: str, kind: str, message: str | None) -> None:

@@ -9,7 +9,6 @@ malformed lines, adjacent duplicates, and a folder file that lacks a column.
 
 from __future__ import annotations
 
-import os
 import tempfile
 import time
 from pathlib import Path
