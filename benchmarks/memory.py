@@ -12,6 +12,8 @@ RSS again and the peak.
   detectors' and rules' state where the pipeline has them);
 - target (issue 8): at most 150 MB of state at 1M series;
 - resident size: RSS after minus RSS before (state + names + index), and the process total.
+
+One child process is run (its state sizes are exact; its RSS varies by a few MB between runs).
 """
 
 from __future__ import annotations
@@ -99,7 +101,8 @@ def child(n: int) -> dict:
 def run(ctx: Context) -> list[Row]:
     n = ctx.size(1_000_000, 100_000)
     results = []
-    for _ in range(min(ctx.runs, 2)):   # state sizes are exact; RSS varies little
+    for _ in range(1):   # one fresh process: state sizes are exact, RSS varies little, and the
+        #                  child costs about a minute of the 15-minute budget
         proc = subprocess.run([sys.executable, "-m", "benchmarks.memory", "--child", str(n)],
                               cwd=ROOT, capture_output=True, text=True, timeout=600)
         if proc.returncode != 0:

@@ -66,11 +66,12 @@ CAUSES = {
         "estimates, the last row of a batch), keep S and the guard statistics in a "
         "cheaper form, and write fewer output columns in the bulk path"),
     "live path: Monitor.observe": (
-        "each call builds pandas frames for one row and runs the whole batch path "
-        "(validate_frame, groupby aggregations, write_batch with its checks) plus one SQLite "
-        "commit; cProfile shows about half in validation/planning and half in write_batch. "
-        "Closing it: a one-row path without pandas (the compiled step on the series' state "
-        "row, a prepared INSERT per table) with commits grouped every few milliseconds"),
+        "the calls take the one-row path and the median is well under 1 ms, but the tail is "
+        "not: the CPU time per call (shown beside the wall time) has a p99 above 1 ms of its "
+        "own, and on this shared machine (load average above the 2 cores) a call that is "
+        "descheduled waits a few ms for a core, which the wall-clock p99 shows. Closing it: "
+        "trim the CPU tail of the one-row path (the periodic work some calls do: a profile of "
+        "the slowest 1% of calls is the place to start) and measure on a quiet machine"),
     "ingest of a": (
         "per batch, the checkpoint of every touched series is formatted one by one "
         "(format_ts via pandas per series), every estimate row is inserted into an indexed "

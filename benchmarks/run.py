@@ -23,8 +23,11 @@ from pathlib import Path
 
 from benchmarks.common import Context, Row, machine, machine_text, table
 
-#: replay runs last: it takes as many runs (up to --runs) as the time budget leaves
-GROUPS = ("estimator", "detection", "ingest", "live", "memory", "dashboard", "tuning", "replay")
+#: replay and tuning run last: they take as many runs (up to --runs) as the time budget leaves
+GROUPS = ("estimator", "detection", "ingest", "live", "memory", "dashboard", "replay", "tuning")
+#: seconds a group needs at least (one run of each figure, loaded machine), reserved for it
+#: while the groups before it decide how many runs they can afford
+MIN_S = {"tuning": 120.0}
 RESULTS = Path(__file__).resolve().parent / "RESULTS.md"
 
 INTRO = """\
@@ -69,7 +72,8 @@ def main(argv: list[str] | None = None) -> int:
     with tempfile.TemporaryDirectory(prefix="elmon-bench-") as tmp:
         ctx = Context(quick=args.quick, runs=args.runs, tmp=Path(tmp),
                       budget_s=args.budget_min * 60)
-        for g in groups:
+        for i, g in enumerate(groups):
+            ctx.reserve_s = sum(MIN_S.get(h, 0.0) for h in groups[i + 1:])
             t0 = time.perf_counter()
             print(f"==> {g}", flush=True)
             try:
