@@ -159,13 +159,22 @@ def has_attr(module: str, attr: str) -> bool:
 # ---------------------------------------------------------------------------- the machine
 
 def _cpu_model() -> str:
+    """Model name, family/model numbers, cache size, and whether it is a virtual machine."""
+    fields: dict[str, str] = {}
     try:
         for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
+            if ":" in line:
+                k, v = (x.strip() for x in line.split(":", 1))
+                fields.setdefault(k, v)
     except OSError:
-        pass
-    return platform.processor() or "unknown"
+        return platform.processor() or "unknown"
+    name = fields.get("model name", platform.processor() or "unknown")
+    extra = [f"family {fields['cpu family']}, model {fields['model']}"] if "cpu family" in fields else []
+    if "cache size" in fields:
+        extra.append(f"cache {fields['cache size']}")
+    if "hypervisor" in fields.get("flags", "").split():
+        extra.append("virtual machine")
+    return f"{name} ({', '.join(extra)})" if extra else name
 
 
 def _mem_total_gb() -> float | None:
