@@ -94,7 +94,7 @@ def run(ctx: Context) -> list[Row]:
                   f"{_check(summary, first_series, first_rows, n)}"
                   + (f"; {len(replay)} run(s) only: the time budget of the whole benchmark "
                      f"left no room for more" if cut else ""))
-    ref = Row(f"pyarrow.csv.read_csv of the same file (parse only)", tp, "s", parse,
+    ref = Row("pyarrow.csv.read_csv of the same file (parse only)", tp, "s", parse,
               reference=True, better="lower", ratio=f"replay / parse = {ratio:.1f}x",
               check=f"{n / tp / 1e6:.1f}M rows/s, multi-threaded, defaults")
     return [main, ref]

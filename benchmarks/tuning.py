@@ -43,7 +43,7 @@ def _data(ctx: Context):
 def _runs(ctx: Context, log, truth, engine: str, **kw):
     from monitor.tuning import tune
 
-    rates, res = [], None
+    rates, res, t = [], None, 0.0
     for r in range(min(ctx.runs, RUNS)):
         if r and ctx.time_left() < 1.2 * t * (2 if engine == "local" else 1):
             break                        # leave room for the other engine: end within 15 min
@@ -93,7 +93,7 @@ def run(ctx: Context) -> list[Row]:
     a = local[COMPARE].to_numpy(dtype=float)
     b = dres[COMPARE].to_numpy(dtype=float)
     same = a.shape == b.shape and bool(np.all((a == b) | (np.isnan(a) & np.isnan(b))))
-    dask = Row(f"tuning, Dask LocalCluster (2 workers x 1 thread), same grid and log",
+    dask = Row("tuning, Dask LocalCluster (2 workers x 1 thread), same grid and log",
                median(drates), "setting-obs/s", drates, target="report",
                ratio=f"local / Dask = {median(rates) / median(drates):.2f}x",
                check=(f"check: every setting's {', '.join(COMPARE)} equal to the local engine's: "
