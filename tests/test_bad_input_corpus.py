@@ -152,6 +152,7 @@ valid = st.tuples(st.sampled_from(["s0", "s1", "s2"]), st.integers(100, 999),
                   st.integers(1000, 99999))
 
 
+@pytest.mark.slow
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(items=st.lists(st.one_of(valid, garbage_text.map(str.encode), garbage_bytes, odd_row),
                       max_size=60),

@@ -249,6 +249,7 @@ def every_table(path) -> dict:
         conn.close()
 
 
+@pytest.mark.slow
 def test_the_one_row_path_of_observe_writes_what_the_batch_path_writes(tmp_path):
     rng = np.random.default_rng(21)
     t0 = pd.Timestamp("2024-02-01T00:00:00Z")
