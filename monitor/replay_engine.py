@@ -73,11 +73,16 @@ class TableWriter:
         self._w = pacsv.CSVWriter(str(self.path), schema)
         self.rows = 0
 
-    def write(self, frame: pd.DataFrame) -> None:
-        if len(frame):
-            self._w.write_table(pa.Table.from_pandas(frame[self.schema.names], schema=self.schema,
-                                                     preserve_index=False))
-            self.rows += len(frame)
+    def write(self, frame: pd.DataFrame | pa.Table) -> None:
+        if not len(frame):
+            return
+        if isinstance(frame, pa.Table):
+            table = frame.select(self.schema.names).cast(self.schema)
+        else:
+            table = pa.Table.from_pandas(frame[self.schema.names], schema=self.schema,
+                                         preserve_index=False)
+        self._w.write_table(table)
+        self.rows += len(frame)
 
     def close(self) -> None:
         self._w.close()

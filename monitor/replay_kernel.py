@@ -18,8 +18,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 
 from monitor.estimators import kernel as K
+from monitor.isotime import iso_utc
 from monitor.replay import ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, estimates_frame
 from monitor.transform import design_matrix
 from monitor.types import STATUS_LABELS
@@ -124,7 +126,7 @@ def validate_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row
     if rows is not None:
         v = renumber(v, np.asarray(rows, dtype=np.int64))
     if len(v.good):
-        sid = carried.gate.ids(v.good["series"].to_numpy(dtype=object))
+        sid = carried.gate.ids(v.good["series"])      # arrow-backed text: no Python strings
     else:
         sid = np.zeros(0, np.int64)
     return v, sid
@@ -170,7 +172,7 @@ def run_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offs
 class Partial:
     """Output pieces of one chunk or partition, ready for the driver to write and add up."""
 
-    estimates: pd.DataFrame
+    estimates: pa.Table           # estimates.csv rows (sampled)
     alerts: pd.DataFrame
     opened: pd.DataFrame          # series, ts (int64 ns), rule: alerts opened (detection)
     rejects: pd.DataFrame
@@ -183,6 +185,32 @@ class Partial:
     obs_sid: np.ndarray | None = None
     obs_ts: np.ndarray | None = None
     scores: object = None         # detection Scores of whole series (Dask partitions)
+
+
+_LABELS = pa.array(STATUS_LABELS, pa.string())
+_EST_FLOATS = (("beta", K.O_BETA), ("beta_se", K.O_SE), ("beta_lo", K.O_LO), ("beta_hi", K.O_HI),
+               ("n_eff", K.O_NEFF))
+_EST_TAIL = (("intercept", K.O_INTERCEPT), ("resid_sd", K.O_RESID_SD), ("innovation", K.O_E),
+             ("z", K.O_Z))
+
+
+def estimates_table(good: pd.DataFrame, out: np.ndarray, status: np.ndarray,
+                    idx: np.ndarray | None = None) -> pa.Table:
+    """estimates.csv rows (:data:`ESTIMATE_COLUMNS`) as an Arrow table, built without pandas;
+    the same values and text as :func:`monitor.replay.estimates_frame` (NaN as empty)."""
+    sel = slice(None) if idx is None else idx
+    series = pa.array(good["series"].to_numpy(dtype=object) if good["series"].dtype == object
+                      else good["series"].array, pa.string())
+    if idx is not None:
+        series = series.take(pa.array(idx))
+    cols = {"series": series, "ts": iso_utc(good["ts"].to_numpy(dtype=np.int64)[sel])}
+    o = out[sel]
+    for name, j in _EST_FLOATS:
+        cols[name] = pa.array(o[:, j], pa.float64(), from_pandas=True)
+    cols["status"] = _LABELS.take(pa.array(np.asarray(status[sel], dtype=np.int64)))
+    for name, j in _EST_TAIL:
+        cols[name] = pa.array(o[:, j], pa.float64(), from_pandas=True)
+    return pa.table(cols)
 
 
 def sample_mask(sid: np.ndarray, status: np.ndarray, event_rows: np.ndarray, every: int,
@@ -212,13 +240,7 @@ def partial_of(res: ChunkResult, setup: Setup, carried: CarriedState) -> Partial
     v, good = res.validated, res.validated.good
     ev_rows = res.events["row"].to_numpy(dtype=np.int64) if len(res.events) else np.zeros(0, np.int64)
     keep = sample_mask(res.sid, res.status, ev_rows, setup.sample_every, carried)
-    est_all = None
-    if keep.all():
-        est_all = estimates_frame(good, res.out, res.status)
-        estimates = est_all
-    else:
-        idx = np.flatnonzero(keep)
-        estimates = estimates_frame(good.iloc[idx], res.out[idx], res.status[idx])
+    estimates = estimates_table(good, res.out, res.status, None if keep.all() else np.flatnonzero(keep))
     alerts = res.alerts
     opened = pd.DataFrame({"series": alerts["series"].to_numpy(dtype=object),
                            "ts": _ts_of_events(good, res.events),
@@ -230,8 +252,7 @@ def partial_of(res: ChunkResult, setup: Setup, carried: CarriedState) -> Partial
     if setup.report_series and len(good):
         m = good["series"].isin(setup.report_series).to_numpy()
         if m.any():
-            report = (est_all[m] if est_all is not None else
-                      estimates_frame(good[m], res.out[m], res.status[m])).assign(
+            report = estimates_frame(good[m], res.out[m], res.status[m]).assign(
                 ts_ns=good["ts"].to_numpy(dtype=np.int64)[m])
     p = Partial(estimates, alerts, opened, rejects, final, res.n_rows, len(good), len(v.rejects),
                 len(v.zero_skipped), report)
@@ -257,7 +278,7 @@ def _final(good: pd.DataFrame, res: ChunkResult) -> pd.DataFrame:
     last = np.flatnonzero(np.r_[sid[1:] != sid[:-1], True])
     counts = np.diff(np.r_[-1, last])
     f = pd.DataFrame({name: res.out[last, slot] for name, slot in zip(FINAL_FIELDS, _FINAL_SLOTS)},
-                     index=pd.Index(good["series"].to_numpy(dtype=object)[last], name="series"))
+                     index=pd.Index(good["series"].iloc[last].to_numpy(dtype=object), name="series"))
     f.insert(0, "ts", good["ts"].to_numpy(dtype=np.int64)[last])
     f["status"] = np.array(STATUS_LABELS, dtype=object)[res.status[last]]
     f["n"] = counts.astype(np.int64)
@@ -268,7 +289,11 @@ def combine(parts: list[Partial]) -> Partial:
     """One :class:`Partial` from consecutive ones (chunks of the same series set, in order)."""
     def cat(name):
         frames = [getattr(p, name) for p in parts if len(getattr(p, name))]
-        return pd.concat(frames, ignore_index=True) if frames else getattr(parts[0], name)
+        if not frames:
+            return getattr(parts[0], name)
+        if isinstance(frames[0], pa.Table):
+            return pa.concat_tables(frames)
+        return pd.concat(frames, ignore_index=True)
 
     final = parts[0].final
     for p in parts[1:]:

@@ -274,11 +274,13 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     rows = np.arange(row_offset + 1, row_offset + n + 1, dtype=np.int64)
     reason = np.full(n, None, dtype=object)
     bad_field = np.full(n, None, dtype=object)
+    flagged = np.zeros(n, dtype=bool)          # reason is set (cheaper than reason == None)
 
     def flag(mask, fld, text):
-        m = mask & (reason == None)  # noqa: E711 - elementwise on object array
+        m = mask & ~flagged
         reason[m] = text
         bad_field[m] = fld
+        flagged[m] = True
 
     series = frame["series"]
     flag(_is_blank(series), "series", "empty field")
@@ -301,17 +303,19 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     flag(values["quantity"] < 0, "quantity", "quantity must be >= 0")
     for c in log_controls:
         flag(values[c] <= 0, c, "a control entered in logs must be > 0")
-    zero = (values["quantity"] == 0) & (reason == None)  # noqa: E711
+    zero = (values["quantity"] == 0) & ~flagged
     if settings.zero_policy == "reject":
         flag(zero, "quantity", "zero quantity cannot be logged (zero_policy = reject)")
         zero[:] = False
 
     # ordered checks on the remaining rows, per series in time order
-    ok = (reason == None) & ~zero  # noqa: E711
+    ok = ~flagged & ~zero
     idx = np.flatnonzero(ok)
     sid_all = np.full(n, -1, dtype=np.int64)
     if idx.size:
-        sid_all[idx] = gate.ids(series.to_numpy(dtype=object)[idx])
+        # a text column (arrow-backed) is factorized by arrow without making Python strings
+        arrow_text = pd.api.types.is_string_dtype(series) and series.dtype != object
+        sid_all[idx] = gate.ids(series.iloc[idx] if arrow_text else series.to_numpy(dtype=object)[idx])
         if order_by == "time":
             order = idx[np.lexsort((idx, ts[idx], sid_all[idx]))]
         else:
@@ -337,15 +341,17 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     else:
         good_idx = idx
 
-    good = pd.DataFrame({"row": rows[good_idx],
-                         "series": series.to_numpy(dtype=object)[good_idx].astype(str),
-                         "ts": ts[good_idx]})
+    if pd.api.types.is_string_dtype(series) and series.dtype != object:
+        good_series = series.iloc[good_idx].astype("str").reset_index(drop=True)   # same values
+    else:
+        good_series = series.to_numpy(dtype=object)[good_idx].astype(str)
+    good = pd.DataFrame({"row": rows[good_idx], "series": good_series, "ts": ts[good_idx]})
     for c, v in values.items():
         good[c] = v[good_idx]
-    bad = np.flatnonzero(reason != None)  # noqa: E711
+    bad = np.flatnonzero(flagged)
     rejects = _reject_frame(frame, rows, bad, bad_field, reason)
     zi = np.flatnonzero(zero)
-    zero_frame = pd.DataFrame({"row": rows[zi], "series": series.to_numpy(dtype=object)[zi],
+    zero_frame = pd.DataFrame({"row": rows[zi], "series": series.iloc[zi].to_numpy(dtype=object),
                                "ts": ts[zi]})
     return Validated(good=good.reset_index(drop=True), rejects=rejects, zero_skipped=zero_frame)
 
