@@ -16,7 +16,8 @@ Positions (JSON in ``source_offsets.position``)
   reported as a ``notice`` (the engine opens a ``source_reset`` alert) and, with
   ``on_reset = "restart"`` (default), the new file is read from its start (repeated rows are
   then rejected as duplicates by validation); with ``"stop"`` the source raises
-  :class:`SourceError` at every poll until the position is reset.
+  :class:`SourceError` at every poll until the position is reset
+  (``elmon run --reset-source NAME``).
 - ``folder``: ``{"done": {file: [size, mtime_ns]}, "current": {...} | null}``: each CSV or
   Parquet file is processed once, in order of modification time then name, after it has not
   changed for ``settle_s`` seconds; a large file is read in several batches (``current``
@@ -118,7 +119,8 @@ class CsvTail:
         if pos.get("offset"):
             notice = self._changed(pos, st)
             if notice and self.on_reset == "stop":
-                raise SourceError(f"{notice}; on_reset = 'stop': reset the source to read it")
+                raise SourceError(f"{notice}; on_reset = 'stop': start the service with "
+                                  f"--reset-source {self.name} to read it from its start")
             if notice:
                 notice += "; reading the new file from its start"
                 pos = {}

@@ -57,6 +57,15 @@ def release_writer_lock(fh) -> None:
     fh.close()
 
 
+def reset_source(store: Store, source: str) -> bool:
+    """Forget a source's position (its counts stay), so it is read again from its start; the
+    caller holds the writer lock. Returns whether the source was known."""
+    with store.atomic():
+        cur = store.execute("UPDATE source_offsets SET position = NULL, last_error = NULL "
+                            "WHERE source = ?", (source,))
+    return cur.rowcount > 0
+
+
 def record_source_error(store: Store, source: str, kind: str, message: str | None) -> None:
     """Set (or clear, with ``None``) a source's ``last_error`` without touching its position,
     counts or ``last_run_at`` (which keeps meaning "last committed batch")."""

@@ -293,3 +293,35 @@ def test_a_log_sink_path_is_taken_from_the_config_folder(tmp_path, log, monkeypa
     lines = (tmp_path / "alerts.jsonl").read_text().splitlines()
     assert [json.loads(x)["kind"] for x in lines] == ["source_reset"]
     assert not (elsewhere / "alerts.jsonl").exists()
+
+
+def test_on_reset_stop_waits_until_the_source_is_reset(tmp_path, log, capsys):
+    from monitor.cli import main
+
+    feed = tmp_path / "feed.csv"
+    feed.write_bytes(csv_bytes(log.iloc[:20]))
+    (tmp_path / "elmon.toml").write_text(textwrap.dedent("""
+        [store]
+        path = "s.sqlite"
+        [estimator]
+        controls = ["promo"]
+        [detectors]
+        cusum_h = 8.09
+        slope_h = 84.4
+        [sources.feed]
+        type = "csv"
+        path = "feed.csv"
+        on_reset = "stop"
+    """))
+    args = ["run", "--config", str(tmp_path / "elmon.toml"), "--once", "--log-level", "error"]
+    assert main(args) == 0
+    other = tmp_path / "other.csv"
+    other.write_bytes(csv_bytes(log.iloc[20:30]))
+    os.replace(other, feed)
+    assert main(args) == 0                                   # stopped: nothing read
+    err = frame(tmp_path / "s.sqlite", "SELECT last_error FROM source_offsets")["last_error"][0]
+    assert "was replaced" in err and "--reset-source feed" in err
+    assert frame(tmp_path / "s.sqlite", "SELECT count(*) AS n FROM observations")["n"][0] == 20
+    assert main(args + ["--reset-source", "feed"]) == 0
+    assert "position forgotten" in capsys.readouterr().err
+    assert frame(tmp_path / "s.sqlite", "SELECT count(*) AS n FROM observations")["n"][0] == 30

@@ -33,7 +33,10 @@ def cmd_run(args) -> int:
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     logging.getLogger("apscheduler").setLevel(max(logging.WARNING, logging.root.level))
     config = load_config(args.config)
-    service = Service(config, store=args.db, base=Path(args.config).resolve().parent)
+    base = Path(args.config).resolve().parent
+    for name in args.reset_source or []:
+        print(reset_source_position(config, args.db, base, name), file=sys.stderr)
+    service = Service(config, store=args.db, base=base)
     print(f"elmon run: store {service.store.path}, {len(service.monitor.series)} series "
           f"restored, sources: {', '.join(service.sources) or 'none'}", file=sys.stderr,
           flush=True)
@@ -47,6 +50,26 @@ def cmd_run(args) -> int:
               f"skipped, {t['alerts_opened']} alerts opened")
         return 0
     return service.run()
+
+
+def reset_source_position(config, db, base: Path, name: str) -> str:
+    """Forget source ``name``'s position in the store (``--reset-source``); returns a message."""
+    from monitor.errors import ConfigError
+    from monitor.store import Store
+    from monitor.store_service import release_writer_lock, reset_source, take_writer_lock
+
+    if name not in config.section("sources"):
+        raise ConfigError(f"--reset-source {name}: no [sources.{name}] in the config")
+    path = Path(db) if db else Path(service_config.store_settings(config)["path"]).expanduser()
+    path = path if path.is_absolute() or db else base / path
+    with Store.open(path, create=True) as store:
+        lock = take_writer_lock(store.path)
+        try:
+            known = reset_source(store, name)
+        finally:
+            release_writer_lock(lock)
+    return (f"elmon run: source {name}: position forgotten; it is read again from its start"
+            if known else f"elmon run: source {name}: no position stored yet")
 
 
 def cmd_ingest(args) -> int:
@@ -93,6 +116,9 @@ def register(sub) -> None:
     p.add_argument("--db", metavar="PATH", help="store file (overrides [store] path)")
     p.add_argument("--once", action="store_true",
                    help="drain every source once, check staleness, deliver, then exit")
+    p.add_argument("--reset-source", action="append", metavar="NAME",
+                   help="read source NAME again from its start (after a replaced file with "
+                        "on_reset = 'stop'; rows already stored are rejected as duplicates)")
     p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"],
                    help="logging detail on stderr (default info)")
     p.set_defaults(func=cmd_run)
