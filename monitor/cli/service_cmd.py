@@ -32,6 +32,9 @@ def cmd_run(args) -> int:
     logging.basicConfig(level=getattr(logging, args.log_level.upper()), stream=sys.stderr,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     logging.getLogger("apscheduler").setLevel(max(logging.WARNING, logging.root.level))
+    # "skipped: maximum number of running instances reached" is max_instances=1 at work (a
+    # poll still draining a backlog); the service logs its own problems
+    logging.getLogger("apscheduler.scheduler").setLevel(logging.ERROR)
     config = load_config(args.config)
     base = Path(args.config).resolve().parent
     for name in args.reset_source or []:
