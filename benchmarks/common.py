@@ -41,6 +41,46 @@ class Row:
     reference: bool = False
     better: str = "higher"
     group: str = ""
+    profile: dict = field(default_factory=dict)   # share of time per part (cProfile), if taken
+
+
+def profile_shares(fn: Callable[[], object], parts: dict[str, list[tuple[str, str]]]
+                   ) -> dict[str, float]:
+    """Run ``fn`` under cProfile; the share of its time spent in each part.
+
+    ``parts`` maps a label to ``(file name fragment, function name)`` pairs; a part's time is
+    the cumulative time of its functions (pick parts that do not nest in one another). Parts
+    whose functions did not run are left out; ``other`` is the remainder.
+    """
+    import cProfile
+    import pstats
+
+    prof = cProfile.Profile()
+    prof.enable()
+    try:
+        fn()
+    finally:
+        prof.disable()
+    st = pstats.Stats(prof)
+    total = max((v[3] for v in st.stats.values()), default=0.0)   # the outermost call
+    if total <= 0:
+        return {}
+    out = {}
+    for label, funcs in parts.items():
+        cum = sum(v[3] for (f, _, name), v in st.stats.items()
+                  if any(name == fn_ and frag in f for frag, fn_ in funcs))
+        if cum > 0:
+            out[label] = min(cum / total, 1.0)
+    rest = 1.0 - sum(out.values())
+    if rest > 0.005:
+        out["other"] = rest
+    return out
+
+
+def shares_text(shares: dict[str, float]) -> str:
+    """'writing outputs 51%, validation 18%, ...' largest first."""
+    return ", ".join(f"{k} {v:.0%}" for k, v in sorted(shares.items(), key=lambda kv: -kv[1])
+                     if v >= 0.005)
 
 
 def median(values: list[float]) -> float:

@@ -29,7 +29,8 @@ import sqlite3
 import numpy as np
 import pandas as pd
 
-from benchmarks.common import Context, Row, attempt, has_module, rate_row, speed_ratio, timed
+from benchmarks.common import (Context, Row, attempt, has_module, profile_shares, rate_row,
+                               shares_text, speed_ratio, timed)
 
 BATCH = 10_000
 S = 1_000
@@ -176,10 +177,24 @@ def _ingest_file(ctx: Context, obs: list[pd.DataFrame], n: int) -> Row:
         if out["accepted"] != n:
             raise AssertionError(f"ingest_file accepted {out['accepted']} of {n} rows")
         times.append(t)
+    shares = profile_shares(lambda: ingest_file(csv, ctx.tmp / "ingest-profile.sqlite"), PARTS)
     csv.unlink()
     row = rate_row(f"ingest of a {n:,}-row CSV end to end (ingest_file, as elmon ingest): read, "
                    f"validate, estimate, detect, commit per batch ([service] batch_rows default)", n, times,
                    unit="rows/s", target=100e3)
+    row.profile = shares
     row.check = (f"check: {out['accepted']:,} of {n:,} rows accepted, {out['rejected']} rejected, "
-                 f"{out['batches']} batches; every estimate kept (estimates_every = 1)")
+                 f"{out['batches']} batches; every estimate kept (estimates_every = 1); where the "
+                 f"time goes (cProfile of one more run): {shares_text(shares) or 'not profiled'}")
     return row
+
+
+#: parts of an ingest for the profile (file fragment, function); they do not nest
+PARTS = {
+    "store writes (write_batch)": [("store_batch.py", "write_batch")],
+    "validation": [("validate.py", "validate_frame")],
+    "reading the CSV": [("ingest_csv.py", "read_csv_chunk")],
+    "pipeline kernel": [("pipeline_kernel.py", "pipeline_run")],
+    "checkpoints": [("engine_state.py", "checkpoints")],
+    "duplicate check against the store": [("engine_batch.py", "duplicates_against_store")],
+}

@@ -7,7 +7,7 @@ they name where the time goes rather than guess.
 
 from __future__ import annotations
 
-from benchmarks.common import Row, fmt
+from benchmarks.common import Row, fmt, shares_text
 
 MEASURES = {
     "estimator": (
@@ -72,12 +72,6 @@ CAUSES = {
         "descheduled waits a few ms for a core, which the wall-clock p99 shows. Closing it: "
         "trim the CPU tail of the one-row path (the periodic work some calls do: a profile of "
         "the slowest 1% of calls is the place to start) and measure on a quiet machine"),
-    "ingest of a": (
-        "per batch, the checkpoint of every touched series is formatted one by one "
-        "(format_ts via pandas per series), every estimate row is inserted into an indexed "
-        "table beside the observation, and validation walks the rows in Python in places; "
-        "closing it: vectorized checkpoint rows, estimates thinned by default "
-        "([store] estimates_every), and a validation pass without per-row Python"),
     "ingest into SQLite": (
         "part of it is SQLite itself on this shared machine: the plain sqlite3 row beside it "
         "(prebuilt tuples, the same unique index on two text columns, a WAL commit per batch) "
@@ -92,13 +86,6 @@ CAUSES = {
         "charts and rules off in the config recovers only about 15%, so the always-on part "
         "(slope statistic, episode and run trackers, event bookkeeping, status) is where a "
         "profile of the compiled step should look first"),
-    "replay of a": (
-        "a cProfile of the same replay on 1M rows: formatting timestamps for estimates.csv "
-        "with pandas strftime about 26% of the time, writing the CSV 27%, validation 21%, "
-        "building pandas frames about 13%, the compiled pipeline itself 8%, reading the file "
-        "a few percent. Closing it: format each series' regular timestamps once (or keep the "
-        "source's text), write estimates as Parquet or thinned (sample_every), and build the "
-        "output table from numpy columns with pyarrow directly"),
     "state at": (
         "one series' pipeline state row is 179 float64 (1,432 bytes): the estimator 25 "
         "(15 scalars, theta, P and S as full k x k matrices) and the detectors and rules 154 "
@@ -111,11 +98,39 @@ CAUSES = {
 }
 
 
+#: what would shrink each part of a profile (see Row.profile)
+REMEDIES = {
+    "writing outputs": "write estimates.csv thinned (sample_every) or as Parquet: the CSV "
+                       "writer formats a text row of 12 fields per observation",
+    "validation": "profile validate_frame's own checks next (its share is above) and "
+                  "compile or merge the costliest passes",
+    "reading": "read only the needed columns, with their types given to pyarrow",
+    "reading the CSV": "parse each byte block with pyarrow in one call where the lines are "
+                       "well formed",
+    "estimates table": "build the output columns straight from numpy arrays",
+    "pipeline kernel": "see the pipeline figure",
+    "store writes (write_batch)": "keep estimates thinned ([store] estimates_every) and build "
+                                  "the insert tuples from numpy columns in one pass",
+    "checkpoints": "write checkpoints as one vectorized batch (or every n batches) instead of "
+                   "one JSON document per touched series per batch",
+    "duplicate check against the store": "check against the in-memory last timestamps first "
+                                         "and query the store only for older rows",
+}
+
+
+def _from_profile(shares: dict[str, float]) -> str:
+    top = [k for k, _ in sorted(shares.items(), key=lambda kv: -kv[1]) if k != "other"][:2]
+    fixes = "; ".join(f"{k}: {REMEDIES[k]}" for k in top if k in REMEDIES)
+    text = f"where the time goes (cProfile, measured in this run): {shares_text(shares)}"
+    return text + (f". Closing it: {fixes}" if fixes else "")
+
+
 def _misses(rows: list[Row]) -> list[str]:
     out = []
     for r in rows:
         if r.met is False:
-            cause = next((c for k, c in CAUSES.items() if r.figure.startswith(k)), None)
+            cause = _from_profile(r.profile) if r.profile else \
+                next((c for k, c in CAUSES.items() if r.figure.startswith(k)), None)
             line = f"- **{r.figure}**: {fmt(r.value, r.unit)} against {r.target}."
             if cause:
                 line += f" Why: {cause}."

@@ -23,7 +23,8 @@ import shutil
 
 import numpy as np
 
-from benchmarks.common import Context, Row, has_module, median, not_measured, timed
+from benchmarks.common import (Context, Row, has_module, median, not_measured, profile_shares,
+                               shares_text, timed)
 from benchmarks.data import loglog_frame, write_csv
 
 NEED_GB = 4.0     # input ~0.5 GB plus estimates.csv ~2.2 GB, with room
@@ -59,15 +60,15 @@ def run(ctx: Context) -> list[Row]:
         from monitor.replay_engine import replay as driver
 
         how = "replay_engine.replay, as elmon replay"
-        go = lambda out: driver(path, out, progress=False)   # noqa: E731
+        go = lambda out, log=path: driver(log, out, progress=False)   # noqa: E731
     else:
         from monitor.replay import run_replay
 
         how = "run_replay"
-        go = lambda out: run_replay(path, out)               # noqa: E731
+        go = lambda out, log=path: run_replay(log, out)               # noqa: E731
     small = ctx.tmp / "warm.csv"          # compile / load the kernels outside the clock
     write_csv(loglog_frame(4, 500, seed=6), small)
-    t_warm, _ = timed(lambda: go(ctx.tmp / "warm-out"))
+    t_warm, _ = timed(lambda: go(ctx.tmp / "warm-out", small))
     shutil.rmtree(ctx.tmp / "warm-out")
     small.unlink()
     ctx.log(f"    warm-up replay of 2,000 rows: {t_warm:.1f} s")
@@ -82,22 +83,45 @@ def run(ctx: Context) -> list[Row]:
             cut = True
             break
     path.unlink()
+    shares = _profile(ctx, go)
 
     tp, trp = median(parse), median(replay)
     ratio = trp / tp
     timing = summary["timing"]
     main = Row(f"{figure} ({how})", trp, "s", replay, target="<= 2x pyarrow parse", met=ratio <= 2.0,
-               ratio=f"{ratio:.1f}x pyarrow's parse time")
+               ratio=f"{ratio:.1f}x pyarrow's parse time", profile=shares)
     main.check = (f"{n / trp / 1e6:.2f}M rows/s; {size_mb:.0f} MB file; last run: "
                   f"{_split(timing, how)}; a warm-up replay of 2,000 rows first (compiling or "
                   f"loading the kernels) took {t_warm:.1f} s, not counted; "
-                  f"{_check(summary, first_series, first_rows, n)}"
+                  f"{_check(summary, first_series, first_rows, n)}; where the time goes (cProfile "
+                  f"of a 1M-row replay): {shares_text(shares) or 'not profiled'}"
                   + (f"; {len(replay)} run(s) only: the time budget of the whole benchmark "
                      f"left no room for more" if cut else ""))
     ref = Row("pyarrow.csv.read_csv of the same file (parse only)", tp, "s", parse,
               reference=True, better="lower", ratio=f"replay / parse = {ratio:.1f}x",
               check=f"{n / tp / 1e6:.1f}M rows/s, multi-threaded, defaults")
     return [main, ref]
+
+
+#: parts of a replay for the profile (file fragment, function): they do not nest
+PARTS = {
+    "writing outputs": [("replay_engine.py", "write"), ("logio.py", "write_table")],
+    "validation": [("validate.py", "validate_frame")],
+    "reading": [("logio.py", "read_log"), ("chunks.py", "iter_chunks")],
+    "pipeline kernel": [("pipeline_kernel.py", "pipeline_run")],
+    "estimates table": [("replay_kernel.py", "estimates_table"), ("replay.py", "estimates_frame")],
+}
+
+
+def _profile(ctx: Context, go) -> dict[str, float]:
+    """Shares of a 1M-row replay's time by part (one run under cProfile, not timed)."""
+    small = ctx.tmp / "profile.csv"
+    write_csv(loglog_frame(ctx.size(200, 40), 5_000, seed=8), small)
+    try:
+        return profile_shares(lambda: go(ctx.tmp / "profile-out", small), PARTS)
+    finally:
+        shutil.rmtree(ctx.tmp / "profile-out", ignore_errors=True)
+        small.unlink()
 
 
 def _split(timing: dict, how: str) -> str:
