@@ -249,9 +249,26 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
     return summary
 
 
+def prefetch(chunks):
+    """Iterate ``chunks`` with the next one read in a background thread (pyarrow parses
+    without the GIL), so reading overlaps processing; at most two chunks are held."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    it = iter(chunks)
+    with ThreadPoolExecutor(1, thread_name_prefix="elmon-read") as pool:
+        nxt = pool.submit(next, it, None)
+        while True:
+            chunk = nxt.result()
+            if chunk is None:
+                return
+            nxt = pool.submit(next, it, None)
+            yield chunk
+
+
 def _replay_local(log, config, setup, acc, chunk_rows, progress):
     carried = CarriedState()
     total, chunks = log_chunks(log, config.section("columns"), chunk_rows)
+    chunks = prefetch(chunks)
     bar = progress if isinstance(progress, Progress) else Progress(total, "replay", enabled=bool(progress))
     n_chunks, t_read = 0, 0.0
     t = time.perf_counter()
