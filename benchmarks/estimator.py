@@ -98,6 +98,22 @@ def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: 
                  f"(tolerance 1e-10): {_agree(d, 1e-10)}{note}")
     out.append(row)
 
+    if X.shape[1] == 2:
+        # a bare compiled update (theta and P only) on the whole of elmon's rows: the floor
+        bt = [R.bare_compiled(p.sid, p.X, p.y, LAM, _prior_var(est))[0] for _ in range(ctx.runs)]
+        _, bpath = R.bare_compiled(sid, X, y, LAM, _prior_var(est))
+        eg = run_batch(_est(excitation_guard=False), sid, X, y).beta
+        d = float(np.max(np.abs(bpath - eg)))
+        row = rate_row(f"bare compiled RLS update, theta and P only (numba, "
+                       f"benchmarks/references.py) on all {p.n:,} rows", p.n, bt, reference=True)
+        row.ratio = speed_ratio(elmon_rate, row.value)
+        row.check = (f"the floor of any RLS kernel here (no variance, interval, n_eff, status or "
+                     f"output row); path of b vs elmon (guard off) on the {n:,} reference rows: "
+                     f"max abs diff {d:.1e} (tolerance 1e-9: another compiled instruction order, "
+                     f"rounding that is largest in the first steps from the 1e6 prior): "
+                     f"{_agree(d, 1e-9)}")
+        out.append(row)
+
     # statsmodels RecursiveLS (filter only), lambda = 1 on both sides for the check
     times = [R.recursive_ls(sid, X, y)[0] for _ in range(ctx.runs)]
     _, raw = R.recursive_ls(sid, X, y)

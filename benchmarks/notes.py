@@ -57,9 +57,9 @@ MEASURES = {
 #: causes of misses seen when profiling, keyed by the start of the figure's name
 CAUSES = {
     "estimator kernel, 2 parameters": (
-        "the step computes far more than the RLS update: a bare compiled update of theta and "
-        "P alone runs at about 100M obs/s on this machine, the full step at 7-15M; the cost is "
-        "in the extras per observation (sandwich matrix S, two exponentially weighted "
+        "the step computes far more than the RLS update: compare the bare compiled update of "
+        "theta and P on the same rows (a reference row of this figure); the cost is in the "
+        "extras per observation (sandwich matrix S, two exponentially weighted "
         "variances for the excitation guard, the t-quantile lookup, interval, status, ten "
         "output columns), and in sharing the two cores (see the core share). Closing it: "
         "compute the interval and status only for rows that are kept or shown (thinned "

@@ -161,3 +161,56 @@ def plain_loop(sid, X, y, lam: float, prior_var, path: bool = False):
         for s, x, yy in zip(sl, rows, yl):
             models[s].update(x, yy)
     return time.perf_counter() - t0, out
+
+
+def bare_compiled(sid, X, y, lam: float, prior_var):
+    """Time a bare compiled RLS update (theta and P only, k = 2, numba): the floor of what any
+    RLS kernel can do per observation on this machine; returns (seconds, b path)."""
+    n_series = int(sid.max()) + 1
+    st = np.zeros((n_series, 5))
+    st[:, 2] = prior_var[0]
+    st[:, 4] = prior_var[1]
+    out = np.empty(y.shape[0])
+    _bare(st[:1], sid[:2] * 0, X[:2], y[:2], lam, out[:2])       # compile outside the clock
+    st[0] = (0.0, 0.0, prior_var[0], 0.0, prior_var[1])
+    t0 = time.perf_counter()
+    _bare(st, sid, X, y, lam, out)
+    return time.perf_counter() - t0, out
+
+
+def _bare_impl(st, sid, X, y, lam, out):
+    # state per series: a, b, P00, P01, P11 (same update as benchmarks.plain_rls)
+    inv_l = 1.0 / lam
+    for j in range(X.shape[0]):
+        s = st[sid[j]]
+        x1 = X[j, 1]
+        a, b, p00, p01, p11 = s[0], s[1], s[2], s[3], s[4]
+        e = y[j] - a - b * x1
+        u0 = p00 + p01 * x1
+        u1 = p01 + p11 * x1
+        inv_d = 1.0 / (lam + u0 + u1 * x1)
+        g = e * inv_d
+        s[0] = a + u0 * g
+        s[1] = b + u1 * g
+        s[2] = (p00 - u0 * u0 * inv_d) * inv_l
+        s[3] = (p01 - u0 * u1 * inv_d) * inv_l
+        s[4] = (p11 - u1 * u1 * inv_d) * inv_l
+        out[j] = s[1]
+
+
+def _compiled():
+    from numba import njit
+
+    return njit(cache=False)(_bare_impl)
+
+
+class _Lazy:
+    fn = None
+
+    def __call__(self, *args):
+        if _Lazy.fn is None:
+            _Lazy.fn = _compiled()
+        return _Lazy.fn(*args)
+
+
+_bare = _Lazy()
