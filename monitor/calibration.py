@@ -37,7 +37,6 @@ import time
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
 import monitor.pipeline_settings  # noqa: F401  (registers [detectors], [bounds], [rules])
 from monitor.config import Config, estimator_from_config, validate

@@ -49,7 +49,9 @@ def table_html(df: pd.DataFrame, max_rows: int = MAX_TABLE_ROWS, floats: str = "
         cells = []
         for v in rec:
             if isinstance(v, (float, np.floating)):
-                cells.append(f'<td class="n">{"" if not np.isfinite(v) else esc(floats.format(v))}</td>')
+                text = "" if not np.isfinite(v) else (f"{int(v):,}" if v == int(v) and abs(v) < 1e12
+                                                      else floats.format(v))
+                cells.append(f'<td class="n">{esc(text)}</td>')
             elif isinstance(v, (int, np.integer)) and not isinstance(v, bool):
                 cells.append(f'<td class="n">{int(v):,}</td>')
             else:
@@ -257,6 +259,15 @@ def _tradeoff_chart(summary: dict, res: pd.DataFrame) -> str:
     return c.to_svg()
 
 
+def _metric_items(prefix: str, m: dict) -> list[tuple[str, str]]:
+    return [(f"{prefix} false alarms per 10,000", _fmt(m["false_alarms_per_10k"], "{:.2f}")),
+            (f"{prefix} detection rate", _fmt(m["detection_rate"], "{:.0%}")),
+            (f"{prefix} median delay counting misses as never, obs",
+             _fmt(m["median_delay_all_obs"], "{:.1f}")),
+            (f"{prefix} median / 90th percentile delay of the detected, obs",
+             f"{_fmt(m['median_delay_obs'], '{:.1f}')} / {_fmt(m['p90_delay_obs'], '{:.1f}')}")]
+
+
 def write_tuning_report(path, summary: dict, res: pd.DataFrame) -> Path:
     """The tuning report: trade-off plot, the recommendation and every setting's metrics."""
     rec = summary.get("recommended")
@@ -267,23 +278,17 @@ def write_tuning_report(path, summary: dict, res: pd.DataFrame) -> Path:
              ("recommendation", rec["label"] if rec else "none within the budget"),
              ("why", summary["reason"])]
     if rec:
-        items += [("  its false alarms per 10,000", _fmt(rec["false_alarms_per_10k"], "{:.2f}")),
-                  ("  its detection rate", _fmt(rec["detection_rate"], "{:.0%}")),
-                  ("  its median / 90th percentile delay, obs",
-                   f"{_fmt(rec['median_delay_obs'], '{:.1f}')} / {_fmt(rec['p90_delay_obs'], '{:.1f}')}")]
-    dflt = summary["defaults"]
-    items += [("defaults: false alarms per 10,000", _fmt(dflt["false_alarms_per_10k"], "{:.2f}")),
-              ("defaults: detection rate", _fmt(dflt["detection_rate"], "{:.0%}")),
-              ("defaults: median delay, obs", _fmt(dflt["median_delay_obs"], "{:.1f}"))]
+        items += _metric_items("  its", rec)
+    items += _metric_items("defaults:", summary["defaults"])
     order = res.assign(_d=res["median_delay_all_obs"].fillna(np.inf)).sort_values(
         ["recommended", "within_budget", "_d"], ascending=[False, False, True], kind="stable")
-    cols = [c for c in res.columns if c not in ("_d",)]
+    cols = [c for c in res.columns if c not in ("_d", "median_delay_s")]
     sections = ["<h2>Recommendation</h2>" + kv_table(items)
                 + '<p class="note">recommended.toml beside this report is the base config with the '
                   "recommended values: pass it to elmon replay or elmon run with --config. The rates "
                   "are measured on this log; check them on held-out data before relying on them.</p>",
                 "<h2>Trade-off</h2>" + _tradeoff_chart(summary, res),
-                "<h2>Every setting</h2>" + table_html(order[cols])]
+                "<h2>Every setting</h2>" + table_html(order[cols], floats="{:.4g}")]
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(page(f"elmon tune of {Path(summary['log']).name}", sections), encoding="utf-8")
