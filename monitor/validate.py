@@ -363,8 +363,9 @@ def _cell(v) -> str:
         return "nan"
     if v is pd.NA or v is pd.NaT:
         return ""
-    if isinstance(v, pd.Timestamp):
-        return format_ts(np.array([v.tz_convert("UTC").value if v.tzinfo else v.value]))[0]
+    if isinstance(v, pd.Timestamp):   # format_ts's text, without its per-call array set-up
+        u = v.tz_convert("UTC") if v.tzinfo else v
+        return u.strftime("%Y-%m-%dT%H:%M:%S.%fZ" if u.value % 1_000_000_000 else "%Y-%m-%dT%H:%M:%SZ")
     return str(v)
 
 
