@@ -10,6 +10,7 @@ from monitor.config import load_config
 
 EXAMPLE = """example:
   elmon replay sales.csv --out replay-out/ --forgetting 0.98 --control promo
+  elmon replay sales.csv --out out/ --bounds -4 -0.3 --arl0 50000
   elmon replay load.parquet --out out/ --log-control temperature --config elmon.toml
   elmon replay retail.csv --out out/ --truth retail_truth.csv --report out/report.html
   elmon replay big.parquet --out out/ --sample-every 24 --engine dask --scheduler tcp://10.0.0.5:8786
@@ -29,15 +30,64 @@ def add_common_options(p: argparse.ArgumentParser) -> None:
     for col in ("series", "ts", "price", "quantity"):
         p.add_argument(f"--{col}-col", dest=f"{col}_col", metavar="NAME",
                        help=f"name of the {col} column in the log (default '{col}')")
+    add_detector_options(p)
+
+
+def add_detector_options(p: argparse.ArgumentParser) -> None:
+    """Detector, bounds and alert-rule settings ([detectors], [bounds], [rules] in a config)."""
+    g = p.add_argument_group("detectors and alerts (thresholds not given are designed from --arl0)")
+    g.add_argument("--arl0", type=float, metavar="N",
+                   help="in-control ARL: mean observations per series between false alarms of "
+                        "each chart (default 20000)")
+    g.add_argument("--bounds", type=float, nargs=2, metavar=("LOW", "HIGH"),
+                   help="allowed elasticity range, e.g. --bounds -4 -0.3")
+    g.add_argument("--bounds-mode", choices=["interval", "point"],
+                   help="breach when the confidence interval (default) or the estimate is outside")
+    g.add_argument("--persistence", type=int, metavar="N",
+                   help="consecutive breaching updates before a bounds alert (default 3)")
+    g.add_argument("--clear-after", type=int, metavar="N",
+                   help="consecutive updates back inside before it clears (default 5)")
+    g.add_argument("--level-chart", choices=["cusum", "ewma", "page_hinkley", "none"],
+                   help="chart on the standardized innovations -> level_shift (default cusum)")
+    g.add_argument("--slope-chart", choices=["cusum", "ewma", "page_hinkley", "none"],
+                   help="chart on the fast-minus-reference slope statistic -> elasticity_change "
+                        "(default cusum)")
+    g.add_argument("--cusum-k", type=float, metavar="K",
+                   help="reference value of the level CUSUM, sd units (default 0.5)")
+    g.add_argument("--cusum-h", type=float, metavar="H",
+                   help="decision interval of the level CUSUM, sd units (default: designed)")
+    g.add_argument("--slope-k", type=float, metavar="K",
+                   help="reference value of the slope CUSUM (default 1.0)")
+    g.add_argument("--slope-h", type=float, metavar="H",
+                   help="decision interval of the slope CUSUM (default: designed)")
+    g.add_argument("--fast-forgetting", type=float, metavar="LAM",
+                   help="forgetting of the fast slope regression (default 0.95)")
+    g.add_argument("--reference-forgetting", type=float, metavar="LAM",
+                   help="forgetting of the reference slope regression (default 0.998)")
+    g.add_argument("--cooldown", type=int, metavar="N",
+                   help="observations after an alert clears before that kind can open again "
+                        "(default 50)")
 
 
 def config_from_args(args) -> "object":
+    import monitor.pipeline_settings  # noqa: F401  (registers [detectors], [bounds], [rules])
+
     cfg = load_config(args.config)
     cfg = cfg.with_overrides("estimator", forgetting=args.forgetting, controls=args.control,
                              log_controls=args.log_control, level=args.level)
     cfg = cfg.with_overrides("validation", zero_policy=args.zero_policy)
     cfg = cfg.with_overrides("columns", series=args.series_col, ts=args.ts_col,
                              price=args.price_col, quantity=args.quantity_col)
+    get = lambda name: getattr(args, name, None)  # noqa: E731  (commands without the group)
+    cfg = cfg.with_overrides("detectors", arl0=get("arl0"), level_chart=get("level_chart"),
+                             slope_chart=get("slope_chart"), cusum_k=get("cusum_k"),
+                             cusum_h=get("cusum_h"), slope_k=get("slope_k"), slope_h=get("slope_h"),
+                             fast_forgetting=get("fast_forgetting"),
+                             reference_forgetting=get("reference_forgetting"))
+    low, high = get("bounds") or (None, None)
+    cfg = cfg.with_overrides("bounds", low=low, high=high, mode=get("bounds_mode"),
+                             persistence=get("persistence"), clear_after=get("clear_after"))
+    cfg = cfg.with_overrides("rules", cooldown=get("cooldown"))
     return cfg
 
 
@@ -48,6 +98,8 @@ def print_summary(summary: dict, out_dir) -> None:
     print(f"replayed {summary['rows']} rows of {summary['series']} series: "
           f"{summary['accepted']} processed, {summary['rejected']} rejected, "
           f"{summary['zero_skipped']} zero quantities skipped, {summary['alerts']} alerts")
+    if summary.get("alerts_by_rule"):
+        print("alerts by kind: " + ", ".join(f"{k} {v}" for k, v in sorted(summary["alerts_by_rule"].items())))
     t = summary["timing"]
     print(f"wall time {t['wall_s']:.2f} s ({t['rows_per_s']:,.0f} rows/s)")
     print(f"{'series':<32} {'beta':>8} {'95% interval':>20} {'n_eff':>8}  status")
