@@ -79,7 +79,8 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
                        now_ns=time.time_ns() if now_ns is None else now_ns)
     good = v.good
     sid, X, y, names = prepare_rows(good, est)
-    result = pipe.run(sid, X, y, n_series=len(names))
+    result = pipe.run(sid, X, y, n_series=len(names), ts=good["ts"].to_numpy(dtype=np.int64),
+                      names=names)
     t_core = time.perf_counter()
 
     out_dir = Path(out_dir)
