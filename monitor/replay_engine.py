@@ -177,6 +177,16 @@ def choose_report_series(truth: pd.DataFrame | None, requested=None) -> list[str
     return list(dict.fromkeys(rank.sort_values(["r", "ts"], kind="stable")["series"]))[:MAX_REPORT_SERIES]
 
 
+def first_series(log, columns, n: int = 4) -> list[str]:
+    """The first ``n`` series ids of the log (the report's default without truth)."""
+    for chunk in iter_chunks(log, columns, chunk_rows=2000):
+        if "series" not in chunk.frame.columns:
+            return []
+        ids = chunk.frame["series"].dropna().astype(str)
+        return list(dict.fromkeys(ids[ids.str.strip() != ""]))[:n]
+    return []
+
+
 def replay(log, out_dir, config: Config | None = None, *, truth=None, report=None,
            report_series=None, chunk_rows: int | None = None, sample_every: int = 1,
            engine: str = "local", scheduler: str | None = None, progress: bool | Progress = True,
@@ -194,7 +204,7 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
     report : path, optional
         HTML report to write (:func:`monitor.report.write_replay_report`).
     report_series : list of str, optional
-        Series to plot (default: those with known changes in the truth, else the first seen).
+        Series to plot (default: those with known changes in the truth, else the log's first 4).
     chunk_rows : int, optional
         Read in chunks of about this many rows (default: whole if small, else 1,000,000).
     sample_every : int
@@ -214,6 +224,8 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
         raise ConfigError(f"engine = {engine!r}: must be 'local' or 'dask'")
     truth_df = read_truth(truth) if truth is not None else None
     chosen = choose_report_series(truth_df, report_series) if report else []
+    if report and not chosen:
+        chosen = first_series(log, config.section("columns"))
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     setup = make_setup(config, sample_every, now_ns, chosen, keep_obs=truth_df is not None)

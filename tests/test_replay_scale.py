@@ -158,3 +158,11 @@ def test_cli_replay_with_truth_and_report(retail, tmp_path, capsys):
     assert (out / "report.html").exists()
     summary = json.loads((out / "summary.json").read_text())
     assert summary["detection"]["observations"] == summary["accepted"]
+
+
+def test_report_without_truth_plots_the_first_series(retail, tmp_path):
+    replay(retail / "log.csv", tmp_path / "o", CFG, report=tmp_path / "r.html", progress=False,
+           now_ns=NOW)
+    html = (tmp_path / "r.html").read_text()
+    first = pd.read_csv(retail / "log.csv", nrows=200)["series"].drop_duplicates().head(4)
+    assert all(f"Elasticity of {name}" in html for name in first)
