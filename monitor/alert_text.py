@@ -60,6 +60,10 @@ def _num(v: float):
     return None if v is None or not math.isfinite(v) else float(v)
 
 
+def _int(v: float):
+    return None if v is None or not math.isfinite(v) else int(v)
+
+
 def severity(kind: str, action: str, r: np.ndarray, interval_mode: bool = True) -> str:
     """Severity of one event record (see the module docstring)."""
     if action == "clear" or kind == "low_variation":
@@ -78,14 +82,14 @@ def severity(kind: str, action: str, r: np.ndarray, interval_mode: bool = True) 
 
 def details(kind: str, action: str, r: np.ndarray) -> dict:
     """JSON-able details of one event record."""
-    d = {"observation": int(r[EV_N]), "started_observation": int(r[EV_START_N]),
+    d = {"observation": _int(r[EV_N]), "started_observation": _int(r[EV_START_N]),
          "started_ts": _fmt_ts(r[EV_START_TS], r[EV_START_N]) if math.isfinite(r[EV_START_TS]) else None,
          "beta_before": _num(r[EV_OLD_B]), "beta_before_lo": _num(r[EV_OLD_LO]),
          "beta_before_hi": _num(r[EV_OLD_HI]),
          "effect_of_10pct_price_rise": _num(1.1 ** r[EV_BETA] - 1.0) if math.isfinite(r[EV_BETA]) else None}
     if action == "clear":
-        d.update(opened_observation=int(r[EV_START_N]), open_for_observations=int(r[EV_SIZE]),
-                 alarms_while_open=int(r[EV_COUNT]))
+        d.update(opened_observation=_int(r[EV_START_N]), open_for_observations=_int(r[EV_SIZE]),
+                 alarms_while_open=_int(r[EV_COUNT]))
         return d
     if kind in ("elasticity_change", "level_shift"):
         d.update(direction="up" if r[EV_SIDE] > 0 else "down", statistic=_num(r[EV_STAT]))
@@ -112,7 +116,7 @@ def message(kind: str, action: str, series: str, r: np.ndarray) -> str:
               if math.isfinite(r[EV_BETA]) else "")
     if action == "clear":
         return (f"{series}: {kind.replace('_', ' ')} resolved at {at} after "
-                f"{int(r[EV_SIZE])} observations; now {now}"
+                f"{_int(r[EV_SIZE])} observations; now {now}"
                 + (f", {effect}." if effect else "."))
     if kind == "elasticity_change":
         was = effect_of_10pct(r[EV_OLD_B])
