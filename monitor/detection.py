@@ -216,11 +216,15 @@ def score(sid: np.ndarray, ts: np.ndarray, names, alerts: pd.DataFrame, truth: p
     a_code = np.array([code_of.get(s, -1) for s in a_series], dtype=np.int64)
     keep = a_code >= 0
     a_code, a_ts, a_rule = a_code[keep], a_ts[keep], a_rule[keep]
+    order = np.lexsort((a_ts, a_code))                 # alerts by series, then time
+    a_code, a_ts, a_rule = a_code[order], a_ts[order], a_rule[order]
+    a_lo = np.searchsorted(a_code, codes, "left")
+    a_hi = np.searchsorted(a_code, codes, "right")
     # alert -> index of its observation within its series
     a_idx = np.empty(a_code.size, dtype=np.int64)
     for c in np.unique(a_code):
-        m = a_code == c
-        a_idx[m] = np.searchsorted(ts[starts[c]:ends[c]], a_ts[m], "left")
+        a, b = a_lo[c], a_hi[c]
+        a_idx[a:b] = np.searchsorted(ts[starts[c]:ends[c]], a_ts[a:b], "left")
     fa_mask = np.isin(a_rule, FALSE_ALARM_RULES)
 
     rows = []
@@ -228,21 +232,30 @@ def score(sid: np.ndarray, ts: np.ndarray, names, alerts: pd.DataFrame, truth: p
     quiet_obs = n_per.copy()
     valid = fa_mask & (a_idx < n_per[a_code]) if a_code.size else np.zeros(0, dtype=bool)
     false_alarms = np.bincount(a_code[valid], minlength=len(names)).astype(np.int64)
+    empty = (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, object))
     for series, group in truth.groupby("series", sort=True):
         c = code_of.get(series)
         if partial and c is None:
             continue
         t = ts[starts[c]:ends[c]] if c is not None else np.array([], np.int64)
-        n = t.size
+        mine = (a_idx[a_lo[c]:a_hi[c]], a_ts[a_lo[c]:a_hi[c]], a_rule[a_lo[c]:a_hi[c]]) \
+            if c is not None else empty
         i0s = np.searchsorted(t, group["ts"].to_numpy(), "left")
-        quiet = np.ones(n, dtype=bool)
-        for j, (_, ch) in enumerate(group.iterrows()):
-            rows.append(_score_one(ch, t, i0s, j, horizon, c, a_code, a_idx, a_ts, a_rule, quiet))
+        quiet = np.ones(t.size, dtype=bool)
+        for j, ch in enumerate(group.itertuples(index=False)):
+            rows.append(_score_one(ch, t, i0s, j, horizon, mine, quiet))
         if c is not None:
+            idx, rule = mine[0], mine[2]
+            sel = np.isin(rule, FALSE_ALARM_RULES) & (idx < t.size)
             quiet_obs[c] = int(quiet.sum())
-            sel = (a_code == c) & fa_mask & (a_idx < n)
-            false_alarms[c] = int(quiet[a_idx[sel]].sum())
+            false_alarms[c] = int(quiet[idx[sel]].sum())
     changes = pd.DataFrame(rows, columns=DETECTION_COLUMNS) if rows else _empty_changes()
+    for col in ("ts", "end_ts", "alert_ts"):          # ns -> ISO 8601 text in one pass
+        if len(changes):
+            v = changes[col].to_numpy(dtype=np.int64)
+            text = np.full(v.size, "", dtype=object)
+            text[v != NAT] = format_ts(v[v != NAT])
+            changes[col] = text
     has_obs = (ends - starts) > 0
     quiet_df = pd.DataFrame({"series": np.array(names, dtype=object)[has_obs],
                              "n_obs": (ends - starts)[has_obs].astype(np.int64),
@@ -257,26 +270,24 @@ def _ns(col: pd.Series) -> np.ndarray:
     return parse_timestamps(col)
 
 
-def _iso(ns: int) -> str:
-    return "" if ns == NAT else str(format_ts(np.array([ns], dtype=np.int64))[0])
-
-
-def _score_one(ch, t, i0s, j, horizon, c, a_code, a_idx, a_ts, a_rule, quiet) -> dict:
-    """One change point: window, first counted alert, delay; marks its exclusion zone."""
-    kind = ch["kind"]
+def _score_one(ch, t, i0s, j, horizon, mine, quiet) -> dict:
+    """One change point: window, first counted alert, delay; marks its exclusion zone.
+    ``mine``: the series' alerts (observation index, time, rule), in time order. Times stay
+    int64 ns here (NAT when empty); :func:`score` writes them as text."""
+    kind = ch.kind
     rules = KIND_RULES.get(kind, ())
-    row = {"series": ch["series"], "kind": kind, "ts": _iso(int(ch["ts"])),
-           "end_ts": _iso(int(ch["end_ts"])), "rules": " ".join(rules), "alert_ts": "",
-           "alert_rule": "", "delay_obs": np.nan, "delay_s": np.nan, "window_obs": 0,
-           "beta_before": ch["beta_before"], "beta_after": ch["beta_after"], "note": ch["note"]}
+    row = {"series": ch.series, "kind": kind, "ts": int(ch.ts), "end_ts": int(ch.end_ts),
+           "rules": " ".join(rules), "alert_ts": NAT, "alert_rule": "", "delay_obs": np.nan,
+           "delay_s": np.nan, "window_obs": 0, "beta_before": ch.beta_before,
+           "beta_after": ch.beta_after, "note": ch.note}
     n = t.size
     i0 = int(i0s[j])
     if i0 >= n:
         row["status"] = "no_data"
         return row
     i_end = i0
-    if ch["end_ts"] != NAT:
-        i_end = max(i0, int(np.searchsorted(t, ch["end_ts"], "right")) - 1)
+    if ch.end_ts != NAT:
+        i_end = max(i0, int(np.searchsorted(t, ch.end_ts, "right")) - 1)
     later = i0s[(i0s > i0)]
     stop = min(i_end + 1 + horizon, n, int(later.min()) if later.size else n)
     row["window_obs"] = stop - i0
@@ -285,13 +296,14 @@ def _score_one(ch, t, i0s, j, horizon, c, a_code, a_idx, a_ts, a_rule, quiet) ->
     if not rules:
         row["status"] = "not_scored"
         return row
-    sel = np.flatnonzero((a_code == c) & np.isin(a_rule, rules) & (a_idx >= i0) & (a_idx < stop))
+    idx, a_ts, a_rule = mine
+    sel = np.flatnonzero(np.isin(a_rule, rules) & (idx >= i0) & (idx < stop))
     if sel.size == 0:
         row["status"] = "missed"
         return row
-    first = sel[np.argmin(a_idx[sel])]
-    row.update(status="detected", alert_ts=_iso(int(a_ts[first])), alert_rule=a_rule[first],
-               delay_obs=float(a_idx[first] - i0), delay_s=(int(a_ts[first]) - int(ch["ts"])) / 1e9)
+    first = sel[np.argmin(idx[sel])]
+    row.update(status="detected", alert_ts=int(a_ts[first]), alert_rule=a_rule[first],
+               delay_obs=float(idx[first] - i0), delay_s=(int(a_ts[first]) - int(ch.ts)) / 1e9)
     return row
 
 
