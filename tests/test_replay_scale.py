@@ -48,8 +48,9 @@ def test_whole_file_equals_run_replay(retail, tmp_path):
     for f in ("estimates.csv", "rejects.csv"):
         assert (tmp_path / "ref" / f).read_bytes() == (tmp_path / "new" / f).read_bytes(), f
     ref, new = pd.read_csv(tmp_path / "ref" / "alerts.csv"), pd.read_csv(tmp_path / "new" / "alerts.csv")
-    cols = ["series", "ts", "rule", "beta", "beta_lo", "beta_hi"]
+    cols = ["series", "ts", "rule", "beta", "beta_lo", "beta_hi", "message"]
     key = ["series", "ts", "rule"]
+    assert len(ref) > 0
     pd.testing.assert_frame_equal(ref[cols].sort_values(key).reset_index(drop=True),
                                   new[cols].sort_values(key).reset_index(drop=True))
     ref_s = json.loads((tmp_path / "ref" / "summary.json").read_text())
