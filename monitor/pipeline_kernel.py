@@ -33,7 +33,7 @@ from numba import njit
 
 from monitor.alert_text import (EV_BETA, EV_COUNT, EV_EXTRA, EV_HI, EV_KIND, EV_LO, EV_N,
                                 EV_OLD_B, EV_OLD_HI, EV_OLD_LO, EV_ROW, EV_SIDE, EV_SIZE,
-                                EV_START_N, EV_START_TS, EV_STAT, EV_TS, EV_ACTION, NEV)
+                                EV_START_N, EV_START_TS, EV_STAT, EV_TS, EV_ACTION)
 from monitor.detectors.base import F_ALARM, F_DOWN
 from monitor.detectors.bounds import B_ACTIVE, B_SIDE, bounds_step, hysteresis_step
 from monitor.detectors.charts import chart_stat, chart_step

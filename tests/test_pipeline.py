@@ -326,3 +326,22 @@ def test_elasticity_step_is_detected_and_delay_reported():
     st = res.status.reshape(4000, 40)
     after = np.array([st[3000 + dl + 50, s] for s, dl in enumerate(delays)])
     assert (after == 4).mean() > 0.9
+
+
+def test_flat_price_stretch_raises_no_elasticity_alert():
+    # 30 series whose prices stay at the base price for hours 600-1100, then vary again: no
+    # elasticity or bounds alert during the stretch nor in the 100 hours after it, when a
+    # wound-up estimator would throw b around. While forgetting is paused the slope chart and
+    # the bounds are not fed at all; in the 100 hours after, the designed false-alarm rate
+    # gives 30 x 100 / 20,000 = 0.15 expected alarms (the seed is fixed)
+    sid, X, y, ts = simulate(30, 1800, flat=(600, 1100), seed=29)
+    res = _pipe(b_low=-4.0, b_high=-0.3).run(sid, X, y, 30, ts=ts)
+    ev = res.events
+    hour = np.repeat(np.arange(1800), 30)[ev["row"].to_numpy()]
+    window = ev[(hour >= 600) & (hour < 1200) & (ev["action"] == "open")]
+    assert not set(window["kind"]) & {"elasticity_change", "out_of_bounds", "sign_flip"}
+    lv = window[window["kind"] == "low_variation"]
+    assert lv["sid"].nunique() == 30 and (lv["severity"] == "info").all()
+    # the estimate is held through the flat stretch and is still right afterwards
+    b = res.out[:, K.O_BETA].reshape(1800, 30)
+    assert np.abs(b[1400] + 1.5).max() < 0.8
