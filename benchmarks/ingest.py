@@ -100,11 +100,25 @@ def _elmon(path, obs_batches, extra=None) -> float:
     return t
 
 
-def _raw(path, tuples) -> float:
+def store_pragmas(tmp) -> dict:
+    """The pragmas a store connection runs with (read back from a real Store)."""
+    from monitor import store as ms
 
+    st = ms.Store.open(tmp / "pragmas.sqlite")
+    try:
+        got = {k: st.scalar(f"PRAGMA {k}") for k in ("journal_mode", "synchronous", "cache_size",
+                                                    "foreign_keys")}
+    finally:
+        st.close()
+    for f in tmp.glob("pragmas.sqlite*"):
+        f.unlink()
+    return got
+
+
+def _raw(path, tuples, pragmas: dict) -> float:
     con = sqlite3.connect(path, isolation_level=None)
-    con.execute("PRAGMA journal_mode=WAL")
-    con.execute("PRAGMA synchronous=NORMAL")
+    for k, v in pragmas.items():
+        con.execute(f"PRAGMA {k} = {v}")
     con.execute("CREATE TABLE observations (id INTEGER PRIMARY KEY, series TEXT NOT NULL, "
                 "ts TEXT NOT NULL, price REAL NOT NULL, quantity REAL NOT NULL, controls TEXT, "
                 "source TEXT, source_row INTEGER)")
@@ -136,11 +150,13 @@ def run(ctx: Context) -> list[Row]:
                        o["ts"].dt.strftime("%Y-%m-%dT%H:%M:%SZ").tolist(),
                        o["price"].tolist(), o["quantity"].tolist(), [None] * len(o),
                        o["source"].tolist(), o["source_row"].tolist())) for o in obs]
-    rtimes = [_raw(ctx.tmp / f"raw-{r}.sqlite", tuples) for r in range(ctx.runs)]
+    pragmas = store_pragmas(ctx.tmp)
+    rtimes = [_raw(ctx.tmp / f"raw-{r}.sqlite", tuples, pragmas) for r in range(ctx.runs)]
     ref = rate_row("plain sqlite3 executemany of the same rows (prebuilt tuples, same table, "
                    "index and pragmas)", n, rtimes, unit="rows/s", reference=True)
     ref.ratio = speed_ratio(main.value, ref.value)
-    ref.check = "SQLite's own floor on this machine: no checks, no formatting"
+    ref.check = ("SQLite's own floor on this machine: no checks, no formatting; pragmas as the "
+                 "store's connection: " + ", ".join(f"{k}={v}" for k, v in pragmas.items()))
 
     obs = obs[:len(obs) // 2]      # the slower paths on half the rows (rates, not totals)
     n = sum(len(o) for o in obs)

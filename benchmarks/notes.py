@@ -18,18 +18,21 @@ MEASURES = {
         "prefix of the same rows, inputs converted to their native form before the clock "
         "starts: river's BayesianLinearRegression (`smoothing` = the forgetting factor, a "
         "constant feature), river's LinearRegression (SGD), statsmodels' RecursiveLS "
-        "(`filter` only, lambda = 1) and a plain Python RLS loop (`benchmarks/plain_rls.py`). "
-        "The references compute less per observation than elmon (no interval, no status)."),
+        "(`filter` only, lambda = 1), a plain Python RLS loop (`benchmarks/plain_rls.py`) and "
+        "a bare compiled update of theta and P (`benchmarks/references.py`, the floor). The "
+        "references compute less per observation than elmon (no interval, no status)."),
     "detection": (
         "**Estimator + detectors + rules.** `Pipeline.from_config(Config(), est).run(...)` over "
         "the same kind of rows (estimate, slope statistic, level and slope charts, bounds, "
         "sign flip, low variation, alert policy), against river's PageHinkley and ADWIN fed "
         "the standardized innovations elmon's own charts see."),
     "replay": (
-        "**Replay.** `run_replay` on a generated CSV of 1,000 series x 10,000 hourly rows: "
-        "read, validate every row, run the pipeline, write estimates.csv (one row per "
-        "observation), alerts.csv, rejects.csv and summary.json; beside pyarrow's "
-        "`read_csv` of the same file from the page cache."),
+        "**Replay.** What `elmon replay LOG --out DIR` runs (`monitor.replay_engine.replay`, "
+        "chunks of 1M rows) on a generated CSV of 1,000 series x 10,000 hourly rows: read, "
+        "validate every row, run the pipeline, write estimates.csv (one row per observation), "
+        "alerts.csv, rejects.csv and summary.json; beside pyarrow's `read_csv` of the same "
+        "file from the page cache. A cProfile of a 1M-row replay in the same run says where "
+        "the time goes."),
     "ingest": (
         "**Ingest.** Batches of 10,000 rows (ten hours of 1,000 series) written with "
         "`write_batch`, one transaction each, new store per run; beside plain sqlite3 "
@@ -61,7 +64,9 @@ CAUSES = {
         "theta and P on the same rows (a reference row of this figure); the cost is in the "
         "extras per observation (sandwich matrix S, two exponentially weighted "
         "variances for the excitation guard, the t-quantile lookup, interval, status, ten "
-        "output columns), and in sharing the two cores (see the core share). Closing it: "
+        "output columns), and in sharing the two cores (see the core share). With one series every "
+        "step waits for the one before (a chain of dependent divisions), so even the bare "
+        "update runs several times slower there than over many interleaved series. Closing it: "
         "compute the interval and status only for rows that are kept or shown (thinned "
         "estimates, the last row of a batch), keep S and the guard statistics in a "
         "cheaper form, and write fewer output columns in the bulk path"),
