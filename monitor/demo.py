@@ -65,6 +65,11 @@ controls = [{controls}]
 [validation]
 zero_policy = "skip"
 
+[detectors]
+# in-control ARL 2,000 observations per chart: for a 12-series demo that is quick to react;
+# the production default is 20,000 (see "Choosing thresholds for a false-alarm budget")
+arl0 = 2000
+
 [service]
 poll_interval_s = 1.0
 delivery_interval_s = 2.0

