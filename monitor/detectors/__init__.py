@@ -15,8 +15,8 @@ from monitor.detectors.bounds import BoundsDetector
 from monitor.detectors.cusum import CUSUM
 from monitor.detectors.ewma import EWMAChart
 from monitor.detectors.page_hinkley import PageHinkley
-from monitor.detectors.river_adapter import RiverDetector
+from monitor.detectors.river_adapter import RiverDetector, false_alarm_rate, run_per_series
 from monitor.detectors.slope import FastSlowSlope, SlopeChangeDetector
 
 __all__ = ["BoundsDetector", "CUSUM", "EWMAChart", "PageHinkley", "SlopeChangeDetector",
-           "FastSlowSlope", "RiverDetector"]
+           "FastSlowSlope", "RiverDetector", "run_per_series", "false_alarm_rate"]

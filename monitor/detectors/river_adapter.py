@@ -117,6 +117,29 @@ class RiverDetector:
         return f"RiverDetector({self.name!r}{', ' if args else ''}{args})"
 
 
+def run_per_series(detector, sid, values) -> np.ndarray:
+    """Run a fresh clone of ``detector`` per series over ``values`` (rows in time order within
+    each series, as in a pipeline batch); returns a boolean alarm per row.
+
+    ``values`` is any per-row signal: the standardized innovation ``result.out[:, O_Z]``, the
+    slope statistic ``result.signals[:, S_D]`` (``keep_signals=True``), or the estimate.
+
+    >>> import numpy as np
+    >>> sid = np.array([0, 1, 0, 1, 0, 1])
+    >>> run_per_series(RiverDetector("PageHinkley", delta=0.0, threshold=0.5, min_instances=1),
+    ...                sid, np.array([0.0, 0.0, 0.0, 0.0, 3.0, 0.0])).tolist()
+    [False, False, False, False, True, False]
+    """
+    sid = np.asarray(sid)
+    values = np.asarray(values, dtype=np.float64)
+    alarms = np.zeros(values.shape[0], dtype=bool)
+    for s in np.unique(sid):
+        rows = np.flatnonzero(sid == s)
+        det = detector.clone()
+        alarms[rows] = [det.update(v).drift_detected for v in values[rows]]
+    return alarms
+
+
 def false_alarm_rate(detector, n: int = 100_000, seed: int = 0) -> float:
     """Alarms per observation of a fresh clone of ``detector`` on iid N(0, 1) values."""
     det = detector.clone()
