@@ -89,7 +89,15 @@ class Config:
         return Config(data, self.path)
 
 
+def _register_all() -> None:
+    """Import the modules that declare their sections, so every file is checked the same way
+    whichever command reads it (imported here, lazily, to keep the core free of cycles)."""
+    import monitor.pipeline_settings  # noqa: F401  [detectors], [bounds], [rules]
+    import monitor.service_config  # noqa: F401  [store], [service], [sources], [sinks]
+
+
 def validate(data: Mapping, source: str = "config") -> Config:
+    _register_all()
     out: dict = {}
     for name, content in data.items():
         if name in FREE_SECTIONS:
