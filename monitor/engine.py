@@ -32,7 +32,7 @@ from monitor.config import Config, estimator_from_config, validation_from_config
 from monitor.engine_batch import (DUPLICATE, LATE, NAT, BatchReport, alert_changes,
                                   duplicates_against_store, extra_rejects,
                                   missing_column_rejects, observation_frame, reject_frame,
-                                  renumber, required_columns, zero_rows)
+                                  required_columns, zero_rows)
 from monitor.engine_fast import NOT_PLAIN, observe_plain
 from monitor.engine_state import checkpoints, restore, vector_to_json
 from monitor.errors import ValidationError
@@ -41,7 +41,7 @@ from monitor.replay import estimates_frame, prepare_rows
 from monitor.store import Store, thin_estimates, wall_ts, write_batch
 from monitor.store_service import release_writer_lock, series_bounds, take_writer_lock
 from monitor.types import Estimate
-from monitor.validate import validate_frame
+from monitor.validate import renumber, validate_frame
 
 __all__ = ["Monitor", "BatchReport"]
 

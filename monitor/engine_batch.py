@@ -1,4 +1,4 @@
-"""Pieces of one engine batch: row renumbering, the store-side duplicate check, frames to write.
+"""Pieces of one engine batch: the store-side duplicate check, frames to write.
 
 Used by :class:`monitor.engine.Monitor`; nothing here holds state between batches.
 """
@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.store import existing_observation_keys
-from monitor.validate import REJECT_COLUMNS, REQUIRED, Validated, format_ts, parse_numbers
+from monitor.validate import REJECT_COLUMNS, REQUIRED, format_ts, parse_numbers
 
 NAT = np.iinfo(np.int64).min
 DUPLICATE = "duplicate row: same series and timestamp as an earlier row"
@@ -72,26 +72,6 @@ def missing_column_rejects(frame: pd.DataFrame, rows: np.ndarray, missing: list[
                     "field": missing[0], "value": "", "reason": f"row {int(r)}: {why}",
                     "raw": json.dumps(raw, sort_keys=True)})
     return pd.DataFrame(out, columns=REJECT_COLUMNS)
-
-
-def renumber(v: Validated, rows: np.ndarray) -> Validated:
-    """Map validation's row numbers (1..n within the frame) onto the source's row numbers."""
-    good = v.good.assign(row=rows[v.good["row"].to_numpy(dtype=np.int64) - 1])
-    rej = v.rejects
-    if len(rej):
-        local = rej["row"].to_numpy(dtype=np.int64)
-        real = rows[local - 1]
-        reasons = [f"row {b}:" + text[len(f"row {a}:"):] if text.startswith(f"row {a}:") else text
-                   for a, b, text in zip(local.tolist(), real.tolist(), rej["reason"].tolist())]
-        rej = rej.assign(row=real, reason=reasons)
-    zero = v.zero_skipped
-    if len(zero):
-        zero = zero.assign(local=zero["row"].to_numpy(dtype=np.int64) - 1,
-                           row=rows[zero["row"].to_numpy(dtype=np.int64) - 1])
-    else:
-        zero = zero.assign(local=np.zeros(0, dtype=np.int64)) if len(zero.columns) else \
-            pd.DataFrame({"row": [], "series": [], "ts": [], "local": []})
-    return Validated(good=good, rejects=rej, zero_skipped=zero)
 
 
 def zero_rows(frame: pd.DataFrame, zero: pd.DataFrame, controls: list[str]) -> pd.DataFrame:

@@ -25,7 +25,7 @@ from monitor.isotime import iso_utc
 from monitor.replay import ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, estimates_frame
 from monitor.transform import design_matrix
 from monitor.types import STATUS_LABELS
-from monitor.validate import SeriesGate, Validated, validate_frame
+from monitor.validate import SeriesGate, Validated, renumber, validate_frame
 
 #: columns of alerts.csv: those of DESIGN.md, then the severity
 ALERT_OUT_COLUMNS = ALERT_COLUMNS + ["severity"]
@@ -93,22 +93,6 @@ class ChunkResult:
     events: pd.DataFrame
     n_rows: int
     alerts: pd.DataFrame       # alerts.csv rows of the alerts opened in this chunk
-
-
-def renumber(v: Validated, rows: np.ndarray) -> Validated:
-    """Map validation's positional row numbers (1..n) onto the source's row numbers ``rows``."""
-    good = v.good.assign(row=rows[v.good["row"].to_numpy(dtype=np.int64) - 1])
-    rej = v.rejects
-    if len(rej):
-        local = rej["row"].to_numpy(dtype=np.int64)
-        real = rows[local - 1]
-        reasons = [f"row {b}:" + t[len(f"row {a}:"):] if t.startswith(f"row {a}:") else t
-                   for a, b, t in zip(local.tolist(), real.tolist(), rej["reason"].tolist())]
-        rej = rej.assign(row=real, reason=reasons)
-    zero = v.zero_skipped
-    if len(zero):
-        zero = zero.assign(row=rows[zero["row"].to_numpy(dtype=np.int64) - 1])
-    return Validated(good=good, rejects=rej, zero_skipped=zero)
 
 
 def validate_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offset: int = 0,

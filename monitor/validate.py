@@ -388,3 +388,26 @@ def _reject_frame(frame, rows, bad, bad_field, reason) -> pd.DataFrame:
                     "reason": f"row {int(rows[j])}: field '{fld}' = {val!r}: {reason[j]}",
                     "raw": json.dumps(raw, sort_keys=True)})
     return pd.DataFrame(out, columns=REJECT_COLUMNS)
+
+
+def renumber(v: Validated, rows: np.ndarray) -> Validated:
+    """Map validation's row numbers (1..n within the frame) onto the source's row numbers.
+
+    ``zero_skipped`` gains a column ``local``: each skipped row's position within the frame.
+    """
+    good = v.good.assign(row=rows[v.good["row"].to_numpy(dtype=np.int64) - 1])
+    rej = v.rejects
+    if len(rej):
+        local = rej["row"].to_numpy(dtype=np.int64)
+        real = rows[local - 1]
+        reasons = [f"row {b}:" + text[len(f"row {a}:"):] if text.startswith(f"row {a}:") else text
+                   for a, b, text in zip(local.tolist(), real.tolist(), rej["reason"].tolist())]
+        rej = rej.assign(row=real, reason=reasons)
+    zero = v.zero_skipped
+    if len(zero):
+        zero = zero.assign(local=zero["row"].to_numpy(dtype=np.int64) - 1,
+                           row=rows[zero["row"].to_numpy(dtype=np.int64) - 1])
+    else:
+        zero = zero.assign(local=np.zeros(0, dtype=np.int64)) if len(zero.columns) else \
+            pd.DataFrame({"row": [], "series": [], "ts": [], "local": []})
+    return Validated(good=good, rejects=rej, zero_skipped=zero)
