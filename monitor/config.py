@@ -121,18 +121,22 @@ def validate(data: Mapping, source: str = "config") -> Config:
     return Config(out, source)
 
 
+def read_toml(path: str | Path, what: str = "config file") -> dict:
+    """Parse a TOML file, mapping a missing or malformed file to ConfigError naming it."""
+    p = Path(path)
+    if not p.is_file():
+        raise ConfigError(f"{p}: {what} not found")
+    try:
+        return tomllib.loads(p.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{p}: not valid TOML: {exc}") from None
+
+
 def load_config(path: str | Path | None) -> Config:
     """Read and validate a TOML file (an empty config when ``path`` is None)."""
     if path is None:
         return Config()
-    p = Path(path)
-    if not p.exists():
-        raise ConfigError(f"{p}: config file not found")
-    try:
-        data = tomllib.loads(p.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"{p}: not valid TOML: {exc}") from None
-    return validate(data, str(p))
+    return validate(read_toml(path), str(Path(path)))
 
 
 def estimator_from_config(cfg: Config):

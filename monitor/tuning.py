@@ -34,7 +34,6 @@ from __future__ import annotations
 
 import itertools
 import math
-import tomllib
 from pathlib import Path
 
 import numpy as np
@@ -42,6 +41,7 @@ import pandas as pd
 
 import monitor.pipeline_settings  # noqa: F401  (registers [detectors], [bounds], [rules])
 from monitor.config import Config, validate
+from monitor.config import read_toml
 from monitor.errors import ConfigError
 
 MAX_SETTINGS = 5000
@@ -52,14 +52,7 @@ METRICS = ["false_alarms_per_10k", "detection_rate", "median_delay_obs", "p90_de
 
 def read_space(path) -> dict[str, dict[str, list]]:
     """The search space of a TOML file: ``{section: {key: [values]}}`` (scalars become lists)."""
-    p = Path(path)
-    if not p.is_file():
-        raise ConfigError(f"{p}: search space file not found")
-    try:
-        data = tomllib.loads(p.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"{p}: not valid TOML: {exc}") from None
-    return space_from_dict(data, str(p))
+    return space_from_dict(read_toml(path, "search space file"), str(Path(path)))
 
 
 def space_from_dict(data: dict, source: str = "space") -> dict[str, dict[str, list]]:
