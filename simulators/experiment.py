@@ -95,7 +95,7 @@ def experiment(seed: int = 0, n_series: int = 6, length: int = 150, *,
                    for n in names]
     test_start = str(iso_z(ts_ns[B]))
     plan = {"series": sorted({n.split("/")[0] + "/*" for n in names}), "start": test_start,
-            "ladder": list(LADDER), "ladder_kind": "multipliers", "target_halfwidth": 0.12}
+            "ladder": list(LADDER), "ladder_kind": "multipliers", "target_halfwidth": 0.2}
     meta = {"scenario": "experiment_offladder" if off_ladder else "experiment", "seed": seed,
             "n_series": S, "length": B + T, "freq": "D", "noise": "lognormal", "sigma": sigma,
             "controls": ["weekend"], "coefficients": dict(COEF), "randomized": True, "b": b,

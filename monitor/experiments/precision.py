@@ -31,11 +31,12 @@ def observations_to_target(n, sigma, info_rate, n_params, target, alpha, phi) ->
     where the target is out of reach within :data:`MAX_OBS`. Returns float64 whole numbers.
 
     >>> float(observations_to_target(200, 0.15, 0.011, 5, 0.1, 0.05, 1.0)[()])
-    1890.0
+    1953.0
     """
-    n, sigma, rate, p, target = (np.atleast_1d(a).ravel() for a in np.broadcast_arrays(
-        *(np.asarray(v, np.float64) for v in (n, sigma, info_rate, n_params, target))))
-    shape = np.broadcast(*(np.asarray(v) for v in (n, sigma, info_rate, n_params, target))).shape
+    args = np.broadcast_arrays(*(np.asarray(v, np.float64) for v in
+                                 (n, sigma, info_rate, n_params, target)))
+    shape = args[0].shape
+    n, sigma, rate, p, target = (np.atleast_1d(a).ravel() for a in args)
     out = np.full(n.shape, np.nan)
     ok = np.isfinite(n) & np.isfinite(sigma) & np.isfinite(rate) & (rate > 0) & (sigma >= 0)
     if not ok.any():

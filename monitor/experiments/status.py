@@ -234,7 +234,7 @@ def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] 
     lad = mhealth.ladder_check(price, ref[codes], plan.ladder, plan.ladder_kind,
                                plan.ladder_tolerance, plan.max_off_ladder)
     levels = mhealth.price_levels(logp - np.log(ref[codes]), lad["rung"])
-    weekday = test["ts"].dt.weekday.to_numpy()
+    weekday = test["ts"].dt.day_of_week.to_numpy()
     by_day = mhealth.balance_check(levels, weekday, "weekdays")
     by_series = mhealth.balance_check(levels, codes, "series")
     stall = mhealth.stall_check(codes, logp, names, plan.stall_window)
