@@ -38,7 +38,7 @@ def heterogeneity(b: np.ndarray, se: np.ndarray, level: float = 0.95) -> dict:
 
     >>> out = heterogeneity(np.array([-1.2, -1.9, -1.5, -2.4]), np.array([0.1, 0.1, 0.1, 0.1]))
     >>> round(out["tau"], 3), out["k"], out["tau_lo"] > 0
-    (0.503, 4, True)
+    (0.51, 4, True)
     """
     b = np.asarray(b, np.float64)
     se = np.asarray(se, np.float64)
