@@ -227,3 +227,32 @@ def test_plan_errors_name_key_value_and_rule(spec, text):
     with pytest.raises(ConfigError, match=r"\[experiments\.x\]") as exc:
         plan_from_config("x", spec)
     assert text in str(exc.value)
+
+
+def test_innovation_is_the_one_step_prediction_error_of_the_earlier_fit():
+    sim = experiment(seed=9, n_series=3, length=40)
+    df = _test_rows(sim)
+    df = df.assign(lp=np.log(df["price"]), lq=np.log(df["quantity"]))
+    names = sorted(df["series"].unique())
+    codes = pd.Categorical(df["series"], categories=names).codes
+    path = pooled_path(codes, design_matrix(df["lp"], df[["weekend"]].to_numpy(), df["lq"]))
+    for i in (30, 77, len(df) - 1):
+        # outside reference: statsmodels OLS on the rows before i, predicting row i
+        ref = smf.ols("lq ~ lp + weekend + C(series)", data=df.iloc[:i]).fit()
+        pred = ref.predict(df.iloc[[i]]).iloc[0]
+        assert abs(path.innovation[i] - (df["lq"].iloc[i] - pred)) < 1e-8
+    assert np.isnan(path.innovation[0])
+
+
+def test_prices_that_follow_demand_compromise_the_test():
+    from simulators import simulate
+
+    sim = simulate("observational", seed=1)
+    plan = plan_from_config("obs", {"series": ["*"], "start": "2024-01-01"})
+    st = evaluate(sim.log, plan, controls=["weekend"])
+    assert st.summary["verdict"] == "compromised"
+    assert any("prices follow demand" in r for r in st.summary["reasons"])
+    # the clean ladder test passes the same diagnostic
+    clean = experiment(seed=1)
+    ok = evaluate(clean.log, plan_from_config("t", clean.meta["experiment"]), controls=["weekend"])
+    assert ok.health["price_feedback"]["ok"] and ok.health["price_feedback"]["max_abs_t"] < 4

@@ -15,5 +15,6 @@ from monitor.experiments.plan import (EXPERIMENTS_SECTION, ExperimentPlan, check
                                       plan_from_config, plans_from_section)
 from monitor.experiments.status import SUMMARY_FIELDS, VERDICTS, ExperimentStatus, evaluate
 
+
 __all__ = ["EXPERIMENTS_SECTION", "ExperimentPlan", "ExperimentStatus", "SUMMARY_FIELDS",
            "VERDICTS", "check_experiments", "evaluate", "plan_from_config", "plans_from_section"]

@@ -124,3 +124,29 @@ def stall_check(codes: np.ndarray, log_p: np.ndarray, names: list[str], window: 
     stalled = [names[int(c)] for c in flat.index]
     share = len(stalled) / max(1, df["c"].nunique())
     return {"stalled_series": stalled, "share": share}
+
+
+def feedback_check(codes: np.ndarray, log_p: np.ndarray, innovation: np.ndarray,
+                   names: list[str]) -> dict:
+    """The price-feedback diagnostic (:mod:`monitor.estimators.feedback`, Granger 1969 form)
+    on the experiment's rows at forgetting 1: fails when a series' verdict at its newest row is
+    ``feedback`` (yesterday's demand surprise predicts today's price move), which a randomized
+    ladder rules out. ``innovation`` is the pooled fit's one-step prediction error."""
+    try:
+        from monitor.estimators import feedback as mfb
+    except ImportError:
+        return {"ok": True, "reason": "", "flagged": [],
+                "note": "price-feedback diagnostic not available in this installation"}
+    res = mfb.run_feedback(codes, log_p, innovation, forgetting=1.0)
+    last = pd.Series(np.arange(len(codes))).groupby(np.asarray(codes)).last().to_numpy()
+    verdict = res.out[last, mfb.FB_VERDICT]
+    t = res.out[last, mfb.FB_T]
+    flagged = [names[int(codes[j])] for j, v in zip(last, verdict) if v == mfb.V_FEEDBACK]
+    ok = not flagged
+    reason = "" if ok else (f"prices follow demand in {len(flagged)} series "
+                            f"({', '.join(flagged[:5])}): yesterday's demand surprise predicts "
+                            f"today's price (|t| >= {mfb.DEFAULT_T_ON:g}), which a randomized "
+                            f"ladder rules out")
+    return {"ok": ok, "reason": reason, "flagged": flagged,
+            "max_abs_t": float(np.nanmax(np.abs(t))) if np.isfinite(t).any() else None,
+            "note": ""}

@@ -38,7 +38,9 @@ class PooledPath:
     ``n`` observations so far, ``n_series`` series seen, ``b`` the pooled elasticity,
     ``sigma`` the residual sd (log units), ``info`` the partial information ``I_b``,
     ``df`` the residual degrees of freedom. Entries are NaN until the fit is identified
-    (``df >= 1`` and the regressor block non-singular).
+    (``df >= 1`` and the regressor block non-singular). ``innovation`` is each row's one-step
+    prediction error ``log q - a_s - b log p - c'z`` (log units) with the fit of the rows
+    before it (NaN on a series' first row or before the fit is identified).
     """
 
     n: np.ndarray
@@ -48,6 +50,7 @@ class PooledPath:
     info: np.ndarray
     df: np.ndarray
     controls: np.ndarray | None = None
+    innovation: np.ndarray | None = None
 
     @property
     def se(self) -> np.ndarray:
@@ -69,7 +72,8 @@ def _group_ranks(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return rank, order
 
 
-def welford_increments(codes: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def welford_increments(codes: np.ndarray, w: np.ndarray
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-row increments ``(n-1)/n (w - m_old)(w - m_old)'`` of the centred cross-products.
 
     Parameters
@@ -81,8 +85,9 @@ def welford_increments(codes: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np
 
     Returns
     -------
-    (inc, rank) : ((n, d, d) float64, (n,) int)
-        The increments and each row's 1-based position within its series.
+    (inc, rank, dev) : ((n, d, d) float64, (n,) int, (n, d) float64)
+        The increments, each row's 1-based position within its series, and ``w - m_old``
+        (NaN on a series' first row, which has no earlier mean).
     """
     rank, order = _group_ranks(codes)
     ws = w[order]
@@ -100,7 +105,9 @@ def welford_increments(codes: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np
     inc_s = ((rs - 1) / rs)[:, None, None] * dev[:, :, None] * dev[:, None, :]
     inc = np.empty_like(inc_s)
     inc[order] = inc_s
-    return inc, rank
+    dev_out = np.empty_like(dev)
+    dev_out[order] = np.where(rs[:, None] > 1, dev, np.nan)
+    return inc, rank, dev_out
 
 
 def _solve_path(C: np.ndarray, n: np.ndarray, n_series: np.ndarray) -> tuple:
@@ -155,13 +162,17 @@ def pooled_path(codes: np.ndarray, w: np.ndarray) -> PooledPath:
     (-1.47, 97)
     """
     codes = np.asarray(codes)
-    inc, rank = welford_increments(codes, np.asarray(w, np.float64))
+    inc, rank, dev = welford_increments(codes, np.asarray(w, np.float64))
     C = np.cumsum(inc, axis=0)
     n = np.arange(1, len(codes) + 1)
     n_series = np.cumsum(rank == 1)
     b, sigma, info, df, theta = _solve_path(C, n, n_series)
+    # a_s = m_y - theta' m_R with the series' earlier means, so the error is dev_y - theta' dev_R
+    prev = np.vstack([np.full((1, theta.shape[1]), np.nan), theta[:-1]])
+    innovation = dev[:, -1] - np.einsum("ij,ij->i", prev, dev[:, :-1])
     return PooledPath(n=n, n_series=n_series, b=b, sigma=sigma, info=info, df=df,
-                      controls=theta[:, 1:] if theta.shape[1] > 1 else None)
+                      controls=theta[:, 1:] if theta.shape[1] > 1 else None,
+                      innovation=innovation)
 
 
 def series_cross_products(codes: np.ndarray, w: np.ndarray, n_codes: int) -> tuple:

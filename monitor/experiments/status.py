@@ -130,12 +130,12 @@ def _reference_prices(base: pd.DataFrame, names: list[str], test: pd.DataFrame,
     """Pre-test price per series: the median baseline price, else (with a note) the median test
     price over the median ladder multiplier."""
     med = base.groupby("series")["price"].median()
-    ref = med.reindex(names).to_numpy(np.float64)
+    ref = med.reindex(names).to_numpy(np.float64).copy()
     missing = ~np.isfinite(ref)
     if missing.any():
         mult = float(np.median(plan.ladder)) if plan.ladder and plan.ladder_kind == "multipliers" \
             else 1.0
-        fallback = (test.groupby("series")["price"].median().reindex(names) / mult).to_numpy()
+        fallback = (test.groupby("series")["price"].median().reindex(names) / mult).to_numpy(float)
         ref[missing] = fallback[missing]
         if plan.ladder is not None and plan.ladder_kind == "multipliers":
             notes.append(f"{int(missing.sum())} series have no observation in the "
@@ -145,7 +145,7 @@ def _reference_prices(base: pd.DataFrame, names: list[str], test: pd.DataFrame,
 
 
 def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] = (),
-             log_controls: Sequence[str] = (), feedback: Any = None) -> ExperimentStatus:
+             log_controls: Sequence[str] = (), feedback: bool = True) -> ExperimentStatus:
     """The experiment's status from observation rows (see the module docstring).
 
     Parameters
@@ -157,9 +157,9 @@ def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] 
     plan : ExperimentPlan
     controls, log_controls : list of str
         Control columns entered as they are and as their logarithm (as ``[estimator]``).
-    feedback : callable, optional
-        ``feedback(rows) -> dict(ok, reason, ...)``, the price-feedback diagnostic; its
-        failure compromises the test.
+    feedback : bool
+        Run the price-feedback diagnostic (:func:`~monitor.experiments.health.feedback_check`)
+        when this installation has it; its failure compromises the test.
     """
     notes: list[str] = []
     alpha = 1.0 - plan.level
@@ -239,12 +239,10 @@ def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] 
     by_series = mhealth.balance_check(levels, codes, "series")
     stall = mhealth.stall_check(codes, logp, names, plan.stall_window)
     checks = {"ladder": lad, "weekday_balance": by_day, "series_balance": by_series}
-    if feedback is not None:
-        fb = feedback(test)
-        checks["price_feedback"] = fb
+    if feedback:
+        checks["price_feedback"] = mhealth.feedback_check(codes, logp, path.innovation, names)
     else:
-        checks["price_feedback"] = {"ok": True, "reason": "",
-                                    "note": "price-feedback diagnostic not available"}
+        checks["price_feedback"] = {"ok": True, "reason": "", "note": "not run"}
     health = {**checks, "stall": stall}
 
     # verdict

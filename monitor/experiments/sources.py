@@ -1,0 +1,74 @@
+"""Where an experiment's rows come from: the store (CLI, dashboard) or replay's validated rows.
+
+- :func:`status_from_store` reads the plan's series from ``baseline_start`` to ``end`` through
+  the store's query :func:`monitor.store.experiment_observations` (all SQL stays in the store),
+  unpacks the controls column and calls :func:`~monitor.experiments.status.evaluate`.
+- :func:`statuses_from_config` does it for every ``[experiments.NAME]`` of a config, with the
+  controls of ``[estimator]``.
+- :func:`experiments_json` gives the JSON document replay writes as ``experiments.json``.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any, Sequence
+
+import pandas as pd
+
+from monitor.experiments.plan import ExperimentPlan, plans_from_section
+from monitor.experiments.status import ExperimentStatus, evaluate
+
+
+def unpack_controls(df: pd.DataFrame) -> pd.DataFrame:
+    """Spread the store's ``controls`` column (dicts) into one column per control."""
+    if "controls" not in df.columns:
+        return df
+    ctl = pd.DataFrame([c if isinstance(c, dict) else {} for c in df["controls"]],
+                       index=df.index)
+    ctl = ctl.drop(columns=[c for c in ctl.columns if c in df.columns], errors="ignore")
+    return pd.concat([df.drop(columns=["controls"]), ctl], axis=1)
+
+
+def status_from_store(store: Any, plan: ExperimentPlan, controls: Sequence[str] = (),
+                      log_controls: Sequence[str] = ()) -> ExperimentStatus:
+    """The experiment's status from the observations table of ``store`` (a Store or a path)."""
+    from monitor import store as mstore
+
+    rows = mstore.experiment_observations(store, list(plan.series), plan.baseline_start,
+                                          plan.end)
+    return evaluate(unpack_controls(rows), plan, controls, log_controls)
+
+
+def plans_from_config(cfg: Any) -> dict[str, ExperimentPlan]:
+    """``{name: plan}`` of a validated Config's ``[experiments]`` section."""
+    return plans_from_section(cfg.section("experiments") or None)
+
+
+def controls_from_config(cfg: Any) -> tuple[list[str], list[str]]:
+    """``(controls, log_controls)`` of ``[estimator]``."""
+    est = cfg.section("estimator")
+    return list(est.get("controls", [])), list(est.get("log_controls", []))
+
+
+def statuses_from_frame(frame: pd.DataFrame, cfg: Any) -> list[ExperimentStatus]:
+    """Every configured experiment evaluated on validated rows (replay, at the end of a log)."""
+    controls, log_controls = controls_from_config(cfg)
+    return [evaluate(frame, plan, controls, log_controls)
+            for plan in plans_from_config(cfg).values()]
+
+
+def experiments_json(statuses: list[ExperimentStatus]) -> list[dict]:
+    """One JSON object per experiment: the summary fields (``elmon experiment status --json``)."""
+    return [s.to_json() for s in statuses]
+
+
+def write_experiments_json(frame: pd.DataFrame, cfg: Any, out_dir: str | Path) -> Path | None:
+    """Replay's hook: write ``out_dir/experiments.json`` when ``[experiments]`` is configured
+    (None, and nothing written, when it is not)."""
+    if not plans_from_config(cfg):
+        return None
+    path = Path(out_dir) / "experiments.json"
+    doc = experiments_json(statuses_from_frame(frame, cfg))
+    path.write_text(json.dumps(doc, indent=2, allow_nan=False) + "\n", encoding="utf-8")
+    return path
