@@ -52,6 +52,7 @@ from numba import njit
 from monitor.estimators import kernel as K
 from monitor.estimators.tquantile import t_lookup
 
+
 #: extra output column: the first stage's effective F (the shared columns are kernel.O_*)
 O_FSTAT = K.NOUT
 NOUT_IV = K.NOUT + 1
@@ -59,6 +60,9 @@ NOUT_IV = K.NOUT + 1
 ST_WEAK_INSTRUMENT = 5
 #: default threshold of the first stage's effective F
 DEFAULT_F_MIN = 10.0
+#: the shared band-code column, when the least-squares kernel has one (IV bands are robust, HC)
+_O_BAND = getattr(K, "O_BAND", -1)
+_BAND_HC = getattr(K, "BAND_HC", 1)
 
 
 def sizes(k: int, n_instruments: int) -> tuple[int, int, int]:
@@ -106,13 +110,13 @@ def init_state(k: int, n_instruments: int) -> np.ndarray:
 
 
 @njit(cache=True, inline="always")
-def _pk(a, b, n):
+def packed_index(a, b, n):
     """Index of (a, b), a <= b, in the packed upper triangle of an n x n matrix."""
     return a * (2 * n - a - 1) // 2 + b
 
 
 @njit(cache=True)
-def _chol(A, L, n):
+def chol(A, L, n):
     """Cholesky factor L (lower, row-major n x n) of A; False when A is not positive definite
     to working precision (a pivot below 1e-13 of its diagonal entry)."""
     for i in range(n):
@@ -132,7 +136,7 @@ def _chol(A, L, n):
 
 
 @njit(cache=True)
-def _chol_inv(L, Ainv, n):
+def chol_inv(L, Ainv, n):
     """Inverse of A = L L' from its Cholesky factor (row-major n x n, symmetric result)."""
     for c in range(n):
         # solve L y = e_c, then L' x = y; column c of the inverse
@@ -149,7 +153,7 @@ def _chol_inv(L, Ainv, n):
 
 
 @njit(cache=True)
-def _meat(st, o_q, c, ng, m, nz2, M):
+def meat(st, o_q, c, ng, m, nz2, M):
     """``M = sum_{a,b} c_a c_b Q[a, b]`` (m x m): the weighted sum of (c'g)^2 z z'."""
     for i in range(m * m):
         M[i] = 0.0
@@ -162,10 +166,10 @@ def _meat(st, o_q, c, ng, m, nz2, M):
             if cb == 0.0:
                 continue
             f = ca * cb if a == b else 2.0 * ca * cb
-            base = o_q + _pk(a, b, ng) * nz2
+            base = o_q + packed_index(a, b, ng) * nz2
             for p in range(m):
                 for q in range(p, m):
-                    M[p * m + q] += f * st[base + _pk(p, q, m)]
+                    M[p * m + q] += f * st[base + packed_index(p, q, m)]
     for p in range(m):
         for q in range(p + 1, m):
             M[q * m + p] = M[p * m + q]
@@ -251,11 +255,11 @@ def iv_step(st, r, y, k, nq, lam, min_price_sd, min_neff, f_min, tq, out, w):
     l2 = lam * lam
     for p in range(m):
         for q in range(p, m):
-            zz[_pk(p, q, m)] = g[2 + p] * g[2 + q]
+            zz[packed_index(p, q, m)] = g[2 + p] * g[2 + q]
     for a in range(ng):
         for b in range(a, ng):
             gab = g[a] * g[b]
-            ia = _pk(a, b, ng)
+            ia = packed_index(a, b, ng)
             st[o_g + ia] = lam * st[o_g + ia] + gab
             base = o_q + ia * nz2
             for t in range(nz2):
@@ -269,6 +273,8 @@ def iv_step(st, r, y, k, nq, lam, min_price_sd, min_neff, f_min, tq, out, w):
     neff = W * W / W2
 
     out[K.O_NEFF] = neff
+    if _O_BAND >= 0:
+        out[_O_BAND] = _BAND_HC
     out[K.O_E] = e
     out[K.O_Z] = st[K.I_Z]
     ok = _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M, V, T, Pi,
@@ -320,17 +326,17 @@ def _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M,
     """
     for a in range(ng):
         for b in range(a, ng):
-            v = st[o_g + _pk(a, b, ng)]
+            v = st[o_g + packed_index(a, b, ng)]
             Gf[a * ng + b] = v
             Gf[b * ng + a] = v
     for p in range(m):
         for q in range(m):
             Szz[p * m + q] = Gf[(2 + p) * ng + 2 + q]
     st[o_sc + J_FSTAT] = np.nan
-    if not _chol(Szz, L, m):
+    if not chol(Szz, L, m):
         st[o_sc + J_PIVOT] = 0.0
         return False
-    _chol_inv(L, Sinv, m)
+    chol_inv(L, Sinv, m)
     # Pi = Szz^-1 Szx  (m x k)
     for p in range(m):
         for i in range(k):
@@ -354,10 +360,10 @@ def _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M,
             s = 0.5 * (A[i * k + j] + A[j * k + i])
             A[i * k + j] = s
             A[j * k + i] = s
-    if not _chol(A, LA, k):
+    if not chol(A, LA, k):
         st[o_sc + J_PIVOT] = 0.0
         return False
-    _chol_inv(LA, Ainv, k)
+    chol_inv(LA, Ainv, k)
     st[o_sc + J_PIVOT] = 1.0
     for i in range(k):
         acc = 0.0
@@ -376,7 +382,7 @@ def _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M,
             rss += c[a] * Gf[a * ng + b] * c[b]
     st[K.I_V] = rss if rss > 0.0 else 0.0
     # sandwich: Ainv (Pi' M Pi) Ainv
-    _meat(st, o_q, c, ng, m, nz2, M)
+    meat(st, o_q, c, ng, m, nz2, M)
     for p in range(m):
         for i in range(k):
             acc = 0.0
@@ -412,7 +418,7 @@ def _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M,
     d[1] = 1.0
     for p in range(m):
         d[2 + p] = -pif[p]
-    _meat(st, o_q, d, ng, m, nz2, M)
+    meat(st, o_q, d, ng, m, nz2, M)
     # V = Sinv M Sinv (robust covariance of the first-stage coefficients)
     for p in range(m):
         for q in range(m):
@@ -430,9 +436,9 @@ def _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M,
     for a in range(nq):
         for b in range(nq):
             Sx[a * nq + b] = Sinv[(x0 + a) * m + x0 + b]
-    if not _chol(Sx, Lx, nq):
+    if not chol(Sx, Lx, nq):
         return True
-    _chol_inv(Lx, Sxt, nq)          # S~ = ((Szz^-1)_XX)^-1
+    chol_inv(Lx, Sxt, nq)          # S~ = ((Szz^-1)_XX)^-1
     num = 0.0
     den = 0.0
     for a in range(nq):

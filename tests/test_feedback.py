@@ -1,0 +1,107 @@
+"""Price-feedback diagnostic: the regression against statsmodels, and its verdicts on the
+observational scenario (prices follow demand) and on randomized price tests.
+
+Without an instrument the elasticity estimator's innovations feed the diagnostic; it must
+flag at least 95 % of observational series and at most 5 % of randomized-price series.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+
+from monitor.estimators import feedback as F
+from monitor.estimators.batch import run_batch
+from monitor.estimators.rls import ElasticityRLS
+from simulators import observational, retail
+from simulators.base import CHANGE_KINDS
+
+
+def naive_innovations(sim, controls):
+    """Rows the pipeline would accept (positive quantity, outside unit-error / stock-out /
+    outage windows), the least-squares estimator's innovations and its warming-up flags."""
+    log = sim.log
+    keep = np.array(log["quantity"] > 0)
+    for ch in sim.changes[sim.changes["kind"].isin(["unit_error", "stockout", "outage"])].itertuples():
+        end = ch.end_ts or ch.ts
+        keep &= ~((log["series"] == ch.series) & (log["ts"] >= ch.ts) & (log["ts"] <= end)).to_numpy()
+    log = log[keep]
+    sid = log["series"].astype("category").cat.codes.to_numpy().astype(np.int64)
+    X = np.column_stack([np.ones(len(log)), np.log(log["price"])]
+                        + [log[c].to_numpy(float) for c in controls])
+    y = np.log(log["quantity"].to_numpy(float))
+    out = run_batch(ElasticityRLS(forgetting=0.99, controls=controls), sid, X, y).out
+    return sid, X[:, 1], out[:, 6], out[:, 5] != 0
+
+
+def test_statistic_equals_statsmodels_ols_with_hc1_at_forgetting_one():
+    # the regression dlp_t = a + h lp_{t-1} + g e_{t-1}: coefficient, HC1 se and t of g
+    # against statsmodels OLS(cov_type="HC1") on the same rows
+    rng = np.random.default_rng(5)
+    n = 500
+    e = rng.normal(0, 0.2, n)
+    lp = np.empty(n)
+    lp[0] = 1.0
+    for t in range(1, n):
+        lp[t] = 0.7 + 0.3 * lp[t - 1] + 0.1 * e[t - 1] + rng.normal(0, 0.03 + 0.05 * (t % 3 == 0))
+    res = F.run_feedback(np.zeros(n, np.int64), lp, e, forgetting=1.0)
+    X = sm.add_constant(np.column_stack([lp[:-1], e[:-1]]))
+    ref = sm.OLS(np.diff(lp), X).fit(cov_type="HC1")
+    last = res.out[-1]
+    assert last[F.FB_COEF] == pytest.approx(ref.params[2], rel=1e-9)
+    assert last[F.FB_SE] == pytest.approx(ref.bse[2], rel=1e-9)
+    assert last[F.FB_T] == pytest.approx(ref.tvalues[2], rel=1e-9)
+    assert F.VERDICTS[int(last[F.FB_VERDICT])] == "feedback"
+
+
+def test_unusable_rows_are_skipped_as_regressors():
+    rng = np.random.default_rng(6)
+    n = 200
+    lp, e = rng.normal(1, 0.1, n), rng.normal(0, 0.2, n)
+    use = np.ones(n, bool)
+    use[:20] = False
+    res = F.run_feedback(np.zeros(n, np.int64), lp, e, use, forgetting=1.0)
+    # rows 0..20 give no regression row (row 21 is the first with a usable previous row)
+    assert np.isnan(res.out[:21, F.FB_COEF]).all()
+    X = sm.add_constant(np.column_stack([lp[20:-1], e[20:-1]]))
+    ref = sm.OLS(np.diff(lp[20:]), X).fit(cov_type="HC1")
+    assert res.out[-1, F.FB_T] == pytest.approx(ref.tvalues[2], rel=1e-9)
+    assert F.VERDICTS[int(res.out[-1, F.FB_VERDICT])] == "none"
+
+
+def test_flags_observational_series_and_says_biased_toward_zero():
+    sim = observational(seed=7, n_series=200)
+    sid, lp, e, use = naive_innovations(sim, ["weekend"])
+    res = F.run_feedback(sid, lp, e, use)
+    hit = res.flagged(sid)
+    assert hit.mean() >= 0.95, hit.mean()
+    last = len(sid) - 1 - np.unique(sid[::-1], return_index=True)[1]     # each series' last row
+    # the manager raises prices after busy days and shocks persist: biased up (toward zero)
+    assert (res.out[last, F.FB_DIRECTION] == 1).mean() >= 0.95
+
+
+def test_randomized_price_tests_are_rarely_flagged():
+    sim = retail(seed=7, n_series=200)
+    assert sim.meta["randomized"] is True
+    sid, lp, e, use = naive_innovations(sim, ["promo", "weekend"])
+    res = F.run_feedback(sid, lp, e, use)
+    hit = res.flagged(sid)
+    assert hit.mean() <= 0.05, hit.mean()
+    assert (res.out[:, F.FB_VERDICT] == F.V_WARMING_UP).any()       # early rows: no verdict
+
+
+def test_streaming_class_message_and_checks():
+    rng = np.random.default_rng(8)
+    fb = F.PriceFeedback(forgetting=0.98)
+    u = 0.0
+    for _ in range(400):
+        lp = 1.5 - 0.4 * u + rng.normal(0, 0.02)      # price cut after busy days
+        u = 0.8 * u + rng.normal(0, 0.1)
+        fb.learn_one(lp, u)
+    assert fb.verdict == "feedback" and fb.direction == "down" and fb.t < -4
+    msg = F.feedback_message("harbor-st/oat-bar", fb.t, fb.coefficient, -1)
+    assert "away from zero" in msg and "--instrument" in msg and "Randomize" in msg
+    with pytest.raises(ValueError, match="t_off"):
+        F.PriceFeedback(t_on=2.0, t_off=3.0)
+    assert "unit_error" in CHANGE_KINDS
