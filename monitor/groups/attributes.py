@@ -230,3 +230,47 @@ def attribute_settings(values: Mapping) -> dict:
     if path is not None and (not isinstance(path, str) or not path.strip()):
         raise ConfigError(f"[series] attributes = {path!r}: must be a file path")
     return {"key": list(key), "groups": list(groups), "attributes": path}
+
+
+def group_resolver(group_cols: Sequence[str], key_cols: Sequence[str] = (),
+                   file_attrs: pd.DataFrame | None = None):
+    """A function ``series -> group label or None`` for series seen or not seen yet.
+
+    A group column that is a key column is read from the series id itself
+    (:func:`~monitor.groups.keys.split_key`), so a new series has its group the moment its first
+    row arrives; other group columns come from ``file_attrs`` (the attributes file). A series
+    whose id does not split into the key's parts, or that lacks a value, has no group.
+
+    >>> f = group_resolver(["store"], ["sku", "store"])
+    >>> f("tea/north"), f("no-separator")
+    ('north', None)
+    """
+    from monitor.groups.keys import split_key
+
+    groups, keys = list(group_cols), list(key_cols)
+    table: dict[str, dict] = {}
+    if file_attrs is not None and len(file_attrs):
+        cols = [c for c in file_attrs.columns if c != SERIES_COLUMN]
+        for row in file_attrs[[SERIES_COLUMN] + cols].itertuples(index=False):
+            table[str(row[0])] = dict(zip(cols, row[1:]))
+    for g in groups:
+        if g not in keys and not any(g in v for v in table.values()) and g not in (
+                file_attrs.columns if file_attrs is not None else ()):
+            raise ConfigError(f"group column {g!r}: neither a key column ({keys}) nor a column "
+                              f"of the attributes file")
+
+    def resolve(series: str) -> str | None:
+        values = dict(table.get(series, {}))
+        if any(g in keys for g in groups) and len(keys) > 1:
+            try:
+                values.update(zip(keys, split_key(series, len(keys))))
+            except ValueError:
+                return None
+        elif len(keys) == 1 and groups and keys[0] in groups:
+            values[keys[0]] = series
+        vals = [values.get(g) for g in groups]
+        if any(v is None or (isinstance(v, float) and v != v) or v == "" for v in vals):
+            return None
+        return str(vals[0]) if len(vals) == 1 else join_key([str(v) for v in vals])
+
+    return resolve
