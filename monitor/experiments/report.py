@@ -30,6 +30,26 @@ EXPERIMENT_CAUTIONS = (
 CS_COLOUR = "#5b2a86"
 
 
+def path_for_display(path: pd.DataFrame, max_points: int = 1500) -> pd.DataFrame:
+    """The pooled path thinned to at most ``max_points`` rows (the newest row always kept), with
+    ``fixed_halfwidth`` added and infinite bounds as NaN: what the charts draw."""
+    if not len(path):
+        return path.assign(fixed_halfwidth=pd.Series(dtype=float))
+    p = path.iloc[thin(len(path), max_points)].copy()
+    p["fixed_halfwidth"] = (p["b_hi"] - p["b_lo"]) / 2
+    num = p.select_dtypes("number").columns
+    p[num] = p[num].where(np.isfinite(p[num]), np.nan)
+    return p.reset_index(drop=True)
+
+
+def progress_share(halfwidth: float | None, target: float) -> float:
+    """Share of the planned information gathered: ``min(1, (target / halfwidth)^2)`` (the
+    half-width falls about as 1 / sqrt(information)); 0 while the band is unbounded."""
+    if halfwidth is None or not np.isfinite(halfwidth) or halfwidth <= 0:
+        return 0.0
+    return float(min(1.0, (target / halfwidth) ** 2))
+
+
 def _fmt(v, spec: str = "{:.3f}") -> str:
     return "—" if v is None or (isinstance(v, float) and not np.isfinite(v)) else spec.format(v)
 
