@@ -12,6 +12,7 @@ import pytest
 import statsmodels.api as sm
 
 from monitor.estimators import feedback as F
+from monitor.estimators import kernel as K
 from monitor.estimators.batch import run_batch
 from monitor.estimators.rls import ElasticityRLS
 from simulators import observational, retail
@@ -32,7 +33,7 @@ def naive_innovations(sim, controls):
                         + [log[c].to_numpy(float) for c in controls])
     y = np.log(log["quantity"].to_numpy(float))
     out = run_batch(ElasticityRLS(forgetting=0.99, controls=controls), sid, X, y).out
-    return sid, X[:, 1], out[:, 6], out[:, 5] != 0
+    return sid, X[:, 1], out[:, K.O_E], out[:, K.O_STATUS] != K.ST_WARMING_UP
 
 
 def test_statistic_equals_statsmodels_ols_with_hc1_at_forgetting_one():
