@@ -174,7 +174,9 @@ def test_status_summary_fields_and_truth_inside_bands():
     assert s["verdict"] == "collecting" and s["eta_obs"] > 0
     assert s["cs_lo"] < s["b_lo"] < sim.meta["b"] < s["b_hi"] < s["cs_hi"]
     assert s["n_obs"] == 6 * 150
-    assert pd.Timestamp(s["eta_ts"]) > pd.Timestamp(sim.log["ts"].max())
+    # six daily series gather six observations a day
+    expected = pd.Timestamp(sim.log["ts"].max()) + pd.Timedelta(days=s["eta_obs"] / 6)
+    assert abs(pd.Timestamp(s["eta_ts"]) - expected) <= pd.Timedelta(seconds=1)
     # per-series rows, one per series, each with its own band
     assert len(st.series) == 6 and (st.series["cs_lo"] < st.series["b_lo"]).all()
 

@@ -157,8 +157,8 @@ def main() -> None:
     st.progress(share, text=f"Progress toward the target: {100 * share:.0f}% of the information")
     path = path_for_display(st_.path)
     if len(path):
-        st.altair_chart(_b_chart(path), use_container_width=True)
-        st.altair_chart(_halfwidth_chart(path, s["target_halfwidth"]), use_container_width=True)
+        st.altair_chart(_b_chart(path), width="stretch")
+        st.altair_chart(_halfwidth_chart(path, s["target_halfwidth"]), width="stretch")
     st.subheader("Per-series estimates")
     het = st_.heterogeneity
     if het.get("tau") is not None:
@@ -168,9 +168,9 @@ def main() -> None:
     elif het.get("note"):
         st.caption(het["note"])
     if len(st_.series):
-        st.dataframe(st_.series, hide_index=True, use_container_width=True)
+        st.dataframe(st_.series, hide_index=True, width="stretch")
     st.subheader("Health")
-    st.dataframe(_health_table(st_.health), hide_index=True, use_container_width=True)
+    st.dataframe(_health_table(st_.health), hide_index=True, width="stretch")
     for note in st_.notes:
         st.caption(note)
 

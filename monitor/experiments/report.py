@@ -57,7 +57,7 @@ def _fmt(v, spec: str = "{:.3f}") -> str:
 def _b_chart(path: pd.DataFrame, target: float) -> str:
     keep = thin(len(path))
     p = path.iloc[keep]
-    x = pd.to_datetime(p["ts"], utc=True).astype("int64").to_numpy()
+    x = pd.to_datetime(p["ts"], utc=True).dt.as_unit("ns").astype("int64").to_numpy()
     b = p["b"].to_numpy(float)
     lo_cs, hi_cs = p["cs_lo"].to_numpy(float), p["cs_hi"].to_numpy(float)
     lo, hi = p["b_lo"].to_numpy(float), p["b_hi"].to_numpy(float)

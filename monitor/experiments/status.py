@@ -223,7 +223,7 @@ def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] 
     m = observations_to_target(n, path.sigma[-1], info_rate, n_params, plan.target_halfwidth,
                                alpha, plan.cs_precision)[()]
     eta_obs = float(max(0.0, m - n)) if np.isfinite(m) else None
-    ts_s = test["ts"].astype("int64").to_numpy() / 1e9
+    ts_s = ((test["ts"] - pd.Timestamp(0, tz="UTC")) / pd.Timedelta(seconds=1)).to_numpy(float)
     cad = cadence_seconds(codes, ts_s, len(names))
     last_ts = test["ts"].iloc[-1]
     eta_ts = eta_timestamp(last_ts, eta_obs, cad) if eta_obs is not None else None
