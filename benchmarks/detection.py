@@ -2,7 +2,7 @@
 
 Rows: 10,000 invented series x 1,000 hourly steps in arrival order; every 10th series has its
 elasticity moved by -0.8 from step 600 (a step change pivoting at the base price). The pipeline
-is :meth:`monitor.pipeline.Pipeline.run` with the default ``[detectors]`` and ``[rules]``
+is :meth:`monitor.pipeline.run.Pipeline.run` with the default ``[detectors]`` and ``[rules]``
 (level CUSUM on the standardized innovation z, slope CUSUM on the fast-minus-reference slope
 statistic, sign flip, low variation, the alert policy) and ``[bounds] low = -3.5,
 high = -0.5``, forgetting 0.995; states fresh per run. Target (issue 8): >= 15M obs/s.
@@ -28,12 +28,13 @@ import numpy as np
 from benchmarks.common import Context, Row, median, rate_row, share_note, speed_ratio, timed
 from benchmarks.data import panel
 
+
 LAM = 0.995
 CHANGE_AT, CHANGE_BY, EVERY = 600, -0.8, 10
 
 
 def _config(**sections):
-    from monitor.config import validate
+    from monitor.settings import validate
 
     data = {"estimator": {"forgetting": LAM}, "bounds": {"low": -3.5, "high": -0.5}}
     data.update(sections)
@@ -136,7 +137,7 @@ def _detection_summary(res, p) -> str:
 
 def run(ctx: Context) -> list[Row]:
     from monitor.estimators import ElasticityRLS, run_batch
-    from monitor.pipeline import Pipeline
+    from monitor.pipeline.run import Pipeline
 
     S, T = ctx.size(10_000, 1_000), ctx.size(1_000, 800)
     p = panel(S, T, seed=7, change_every=EVERY, change_at=CHANGE_AT, change_by=CHANGE_BY)

@@ -13,7 +13,7 @@ of every series: one service poll). Each run starts from a new store file (WAL,
   formatted timestamps, into a table and unique index identical to the store's observations, one
   transaction per batch, same pragmas: the floor SQLite itself sets on this machine.
 
-- elmon, end to end: :func:`monitor.service.ingest_file` (what ``elmon ingest`` runs) on the
+- elmon, end to end: :func:`monitor.live.service.ingest_file` (what ``elmon ingest`` runs) on the
   same rows written as a CSV file: read by byte offset, validate, estimate, detect, and commit
   each batch (the default ``[service] batch_rows``, 50,000) with its estimates, checkpoints and
   the file's new offset;
@@ -31,6 +31,7 @@ import pandas as pd
 
 from benchmarks.common import (Context, Row, attempt, has_module, profile_shares, rate_row,
                                shares_text, speed_ratio, timed)
+
 
 BATCH = 10_000
 S = 1_000
@@ -58,9 +59,10 @@ def batches(n_rows: int, with_estimates: bool = False, seed: int = 11):
 
 def _estimates(obs: pd.DataFrame, states: dict) -> tuple[pd.DataFrame, dict]:
     """The estimates and checkpoints the service would write for this batch (real kernel)."""
-    from monitor.estimators import ElasticityRLS, run_batch
-    from monitor.estimators.batch import initial_states
+    from monitor.estimators import ElasticityRLS
     from monitor.estimators import kernel as K
+    from monitor.estimators import run_batch
+    from monitor.estimators.batch import initial_states
 
     est = ElasticityRLS(forgetting=0.99)
     codes, names = pd.factorize(obs["series"], sort=True)
@@ -171,7 +173,7 @@ def run(ctx: Context) -> list[Row]:
     full.target = "report"
     full.check = f"rows/s counts observations; {2 * n:,} rows written in all plus checkpoints"
     rows = [main, ref, full]
-    if has_module("monitor.service"):
+    if has_module("monitor.live.service"):
         rows += attempt("ingest of a CSV file end to end (ingest_file)",
                         lambda: [_ingest_file(ctx, obs, n)], target=">= 100k rows/s")
     for p in ctx.tmp.glob("*.sqlite*"):
@@ -180,7 +182,7 @@ def run(ctx: Context) -> list[Row]:
 
 
 def _ingest_file(ctx: Context, obs: list[pd.DataFrame], n: int) -> Row:
-    from monitor.service import ingest_file
+    from monitor.live.service import ingest_file
 
     frame = pd.concat(obs, ignore_index=True)[["series", "ts", "price", "quantity"]]
     frame["ts"] = frame["ts"].dt.strftime("%Y-%m-%dT%H:%M:%SZ")

@@ -8,7 +8,7 @@
    (issue 8): p99 <= 1 ms.
 2. The estimator alone, ``ElasticityRLS.learn_one`` (no store, no validation of a frame): the
    floor of the in-process path, for comparison.
-3. Row to outbox: a running :class:`monitor.service.Service` tails a CSV at a 1 s poll
+3. Row to outbox: a running :class:`monitor.live.service.Service` tails a CSV at a 1 s poll
    interval; a row that opens an alert is appended (whole line, flushed); the time until that
    alert's row is in the store's ``outbox`` (read-only connection polled every 5 ms). With
    rows landing at random moments the expected figure is about half the poll interval plus the
@@ -29,7 +29,7 @@ def _pct(values_ns: list[int], q: float) -> float:
 
 
 def _observe_latency(ctx: Context) -> list[Row]:
-    from monitor.engine import Monitor
+    from monitor.live.monitor import Monitor
 
     n_series, calls, budget_s = 50, ctx.size(2_000, 300), 8.0
     rng = np.random.default_rng(17)
@@ -116,16 +116,16 @@ def _learn_one_latency(ctx: Context) -> Row:
 def run(ctx: Context) -> list[Row]:
     rows: list[Row] = []
     fig = "live path: Monitor.observe p50/p99"
-    if has_module("monitor.engine"):
+    if has_module("monitor.live.monitor"):
         rows += attempt(fig, lambda: _observe_latency(ctx), target="<= 1 ms")
     else:
-        rows.append(not_measured(fig, "monitor.engine does not exist yet", target="<= 1 ms"))
+        rows.append(not_measured(fig, "monitor.live.monitor does not exist yet", target="<= 1 ms"))
     rows.append(_learn_one_latency(ctx))
     fig = "row in a tailed CSV -> alert in the outbox at a 1 s poll"
-    if has_module("monitor.service") and has_module("benchmarks.live_tail"):
+    if has_module("monitor.live.service") and has_module("benchmarks.live_tail"):
         from benchmarks import live_tail
 
         rows += attempt(fig, lambda: live_tail.run(ctx))
     else:
-        rows.append(not_measured(fig, "monitor.service does not exist yet"))
+        rows.append(not_measured(fig, "monitor.live.service does not exist yet"))
     return rows

@@ -1,12 +1,12 @@
 """From a row landing in a tailed CSV to its alert in the outbox, with the service running.
 
-Set-up: a :class:`monitor.service.Service` in this process (its APScheduler jobs in background
+Set-up: a :class:`monitor.live.service.Service` in this process (its APScheduler jobs in background
 threads) tails ``feed.csv`` at a 1 s poll interval, with bounds ``[-1.0, -0.5]`` on the
 elasticity (true b = -2, so every series leaves the bounds once its estimate is sure enough)
 and a JSON-lines sink (so each alert gets an outbox row; delivery itself is not timed).
 
 Which row opens each series' alert is found first by a dry run of the same rows through a
-:class:`monitor.engine.Monitor` on a scratch store. The feed then gets every series' rows up to
+:class:`monitor.live.monitor.Monitor` on a scratch store. The feed then gets every series' rows up to
 the one before its trigger row; once the service has committed them, for each series in turn
 the benchmark waits until a chosen phase of the poll cycle (phases spread evenly over the
 interval, in shuffled order, timed from the last commit seen), appends
@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 
 from benchmarks.common import Context, Row, median
+
 
 POLL_S = 1.0
 BOUNDS = {"low": -1.0, "high": -0.5}
@@ -43,7 +44,7 @@ def _rows(n_series: int, length: int, seed: int = 23) -> pd.DataFrame:
 
 
 def _config(feed, store, sink):
-    from monitor.config import validate
+    from monitor.settings import validate
 
     return validate({
         "store": {"path": str(store)},
@@ -57,7 +58,7 @@ def _config(feed, store, sink):
 
 def _trigger_steps(ctx: Context, rows: pd.DataFrame, cfg) -> dict[str, int]:
     """Series -> step of the row at which its out_of_bounds alert opens (dry run)."""
-    from monitor.engine import Monitor
+    from monitor.live.monitor import Monitor
 
     scratch = ctx.tmp / "tail-dry.sqlite"
     with Monitor(scratch, cfg) as mon:
@@ -78,7 +79,7 @@ def _line(r) -> str:
 
 
 def run(ctx: Context) -> list[Row]:
-    from monitor.service import Service
+    from monitor.live.service import Service
 
     n_series = ctx.size(8, 3)
     feed, store, sink = ctx.tmp / "feed.csv", ctx.tmp / "tail.sqlite", ctx.tmp / "alerts.jsonl"

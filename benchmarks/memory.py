@@ -4,7 +4,7 @@ Measured in a fresh interpreter (``python -m benchmarks.memory --child N``) so n
 benchmark allocated counts. The child imports elmon, warms the compiled kernel, notes its
 resident set size (RSS, from psutil, else /proc), then builds what a monitor of N series keeps:
 the series names, a name -> index dict, and the pipeline's per-series state arrays; it feeds
-every series 3 observations through :meth:`monitor.pipeline.Pipeline.run` in batches of 1M rows
+every series 3 observations through :meth:`monitor.pipeline.run.Pipeline.run` in batches of 1M rows
 (the batch outputs are freed after each batch, as the service does after committing), and notes
 RSS again and the peak.
 
@@ -24,6 +24,7 @@ import subprocess
 import sys
 
 from benchmarks.common import ROOT, Context, Row, median
+
 
 BATCH = 1_000_000
 
@@ -62,8 +63,8 @@ def _state_arrays(states) -> list:
 def child(n: int) -> dict:
     import numpy as np
 
-    from monitor.config import Config, estimator_from_config
-    from monitor.pipeline import Pipeline
+    from monitor.pipeline.run import Pipeline
+    from monitor.settings import Config, estimator_from_config
 
     cfg = Config()
     est = estimator_from_config(cfg)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from benchmarks.common import Row, fmt, shares_text
 
+
 MEASURES = {
     "estimator": (
         "**Estimator kernel.** `run_batch` (the compiled RLS step: coefficients, sandwich "
@@ -27,7 +28,7 @@ MEASURES = {
         "sign flip, low variation, alert policy), against river's PageHinkley and ADWIN fed "
         "the standardized innovations elmon's own charts see."),
     "replay": (
-        "**Replay.** What `elmon replay LOG --out DIR` runs (`monitor.replay_engine.replay`, "
+        "**Replay.** What `elmon replay LOG --out DIR` runs (`monitor.replay.driver.replay`, "
         "chunks of 1M rows) on a generated CSV of 1,000 series x 10,000 hourly rows: read, "
         "validate every row, run the pipeline, write estimates.csv (one row per observation), "
         "alerts.csv, rejects.csv and summary.json; beside pyarrow's `read_csv` of the same "

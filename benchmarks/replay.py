@@ -6,11 +6,11 @@ Both sides read it from the page cache.
 
 - reference: ``pyarrow.csv.read_csv(path)`` with its defaults (multi-threaded parse and type
   inference into an Arrow table, nothing else);
-- elmon: what ``elmon replay LOG --out DIR`` runs, :func:`monitor.replay_engine.replay` with
+- elmon: what ``elmon replay LOG --out DIR`` runs, :func:`monitor.replay.driver.replay` with
   its defaults (a log this size is read in chunks of 1M rows; every row validated, the compiled
   pipeline over every series, ``estimates.csv`` with one row per observation, ``alerts.csv``,
   ``rejects.csv`` and ``summary.json``), no progress bar; output removed after each run.
-  (:func:`monitor.replay.run_replay`, the whole-file form, where the driver is absent.)
+  (:func:`monitor.replay.driver.run_replay`, the whole-file form, where the driver is absent.)
 
 Target (issue 8): replay <= 2x the parse time. The check: every row accepted, and the final
 estimate of one series in ``summary.json`` equals :func:`monitor.estimators.run_batch` on that
@@ -26,6 +26,7 @@ import numpy as np
 from benchmarks.common import (Context, Row, has_module, median, not_measured, profile_shares,
                                shares_text, timed)
 from benchmarks.data import loglog_frame, write_csv
+
 
 NEED_GB = 4.0     # input ~0.5 GB plus estimates.csv ~2.2 GB, with room
 
@@ -56,13 +57,13 @@ def run(ctx: Context) -> list[Row]:
         del table
         parse.append(t)
 
-    if has_module("monitor.replay_engine"):
-        from monitor.replay_engine import replay as driver
+    if has_module("monitor.replay.driver"):
+        from monitor.replay.driver import replay as driver
 
         how = "replay_engine.replay, as elmon replay"
         go = lambda out, log=path: driver(log, out, progress=False)   # noqa: E731
     else:
-        from monitor.replay import run_replay
+        from monitor.replay.driver import run_replay
 
         how = "run_replay"
         go = lambda out, log=path: run_replay(log, out)               # noqa: E731
@@ -138,7 +139,7 @@ def _split(timing: dict, how: str) -> str:
 
 def _check(summary: dict, series: str, rows, n: int) -> str:
     from monitor.estimators import run_batch
-    from monitor.config import Config, estimator_from_config
+    from monitor.settings import Config, estimator_from_config
 
     est = estimator_from_config(Config())
     lp = np.log(rows["price"].to_numpy())

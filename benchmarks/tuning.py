@@ -14,7 +14,7 @@ Both figures are settings x observations per second of wall time (``tune``'s own
 ``timing.setting_observations_per_s``); median of up to 2 runs per engine (1 when the time
 budget of the whole benchmark is nearly used up; tuning runs last). The check: both engines score every
 setting the same (detection rate, false alarms, delays in ``tuning.csv``), as
-:mod:`monitor.tuning` promises.
+:mod:`monitor.tuning.space` promises.
 """
 
 from __future__ import annotations
@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 
 from benchmarks.common import Context, Row, median, timed
+
 
 SPACE = {"detectors": {"arl0": [2000, 20000], "slope_k": [0.5, 1.0]},
          "estimator": {"forgetting": [0.98, 0.99]}}
@@ -41,7 +42,7 @@ def _data(ctx: Context):
 
 
 def _runs(ctx: Context, log, truth, engine: str, **kw):
-    from monitor.tuning import tune
+    from monitor.tuning.tune import tune
 
     rates, res, t = [], None, 0.0
     for r in range(min(ctx.runs, RUNS)):
@@ -59,9 +60,9 @@ def _runs(ctx: Context, log, truth, engine: str, **kw):
 def _warm() -> float:
     """Design the grid's thresholds once outside the clock (compiles the design kernels; the
     designs are then reused within the process, as in a session that tunes repeatedly)."""
-    from monitor import tuning_run as R
-    from monitor.config import Config
-    from monitor.tuning import grid, space_from_dict
+    from monitor.settings import Config
+    from monitor.tuning import grid as R
+    from monitor.tuning.space import grid, space_from_dict
 
     t, _ = timed(lambda: R.with_thresholds(Config(), [{}] + grid(space_from_dict(SPACE))))
     return t

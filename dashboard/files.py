@@ -17,6 +17,7 @@ import pandas as pd
 
 from monitor.errors import SourceError, ValidationError
 
+
 TRUTH_COLUMNS = ("series", "ts", "kind")
 REPLAY_FILES = ("estimates.csv", "alerts.csv", "rejects.csv", "summary.json")
 
@@ -123,7 +124,7 @@ def detection_summary(detection: pd.DataFrame) -> pd.DataFrame:
     longest detection delay in observations (over the detected ones only).
 
     Reads the replay's ``detection.csv``: a ``status`` column (``detected``, ``missed``,
-    ``no_data``, ``not_scored``, see :mod:`monitor.detection`), or a boolean ``detected`` column.
+    ``no_data``, ``not_scored``, see :mod:`monitor.replay.detection`), or a boolean ``detected`` column.
     """
     cols = ["kind", "change_points", "scored", "detected", "missed", "detection_rate",
             "median_delay_obs", "max_delay_obs"]

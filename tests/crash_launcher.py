@@ -2,7 +2,7 @@
 
 Run as ``python tests/crash_launcher.py CONFIG OUT.json ROUNDS SEED LO HI`` by
 tests/test_crash_resume.py. The launcher imports elmon once and warms the compiled kernels,
-then for each round forks a child process that builds a fresh :class:`monitor.service.Service`
+then for each round forks a child process that builds a fresh :class:`monitor.live.service.Service`
 from the store (nothing but imported modules is inherited: no connection, no thread, no
 state) and runs it; after a random delay in [LO, HI] seconds the child is killed with SIGKILL.
 Forking saves the interpreter start-up (seconds on this machine) that an exec would pay in each
@@ -40,12 +40,10 @@ def warm_up() -> None:
     import numpy as np
     import pandas as pd
 
-    from monitor.config import estimator_from_config, validation_from_config
-    from monitor.pipeline import Pipeline
-    from monitor.replay import prepare_rows
-    from monitor.validate import validate_frame
-
-    from monitor.config import load_config
+    from monitor.pipeline.run import Pipeline
+    from monitor.rows.prepare import prepare_rows
+    from monitor.rows.validate import validate_frame
+    from monitor.settings import estimator_from_config, load_config, validation_from_config
     cfg = load_config(sys.argv[1])
     est = estimator_from_config(cfg)
     frame = pd.DataFrame({"series": ["w"] * 3, "ts": ["2024-01-01", "2024-01-02", "2024-01-03"],
@@ -61,9 +59,9 @@ def warm_up() -> None:
 def main() -> int:
     config_path, out, rounds, seed, lo, hi = sys.argv[1:7]
     rounds, lo, hi = int(rounds), float(lo), float(hi)
-    from monitor import service_config  # noqa: F401
-    from monitor.config import load_config
-    from monitor.service import Service
+    from monitor.live import settings as service_config  # noqa: F401
+    from monitor.live.service import Service
+    from monitor.settings import load_config
 
     warm_up()
     cfg = load_config(config_path)

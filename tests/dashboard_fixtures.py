@@ -16,6 +16,7 @@ import pandas as pd
 
 from monitor import store as mstore
 
+
 START = pd.Timestamp("2024-03-01T00:00:00Z")
 KINDS = ("out_of_bounds", "elasticity_change", "level_shift", "sign_flip", "low_variation",
          "stale")
@@ -133,7 +134,7 @@ def write_replay_folder(folder: Path, facts: dict, n_obs: int = 200) -> Path:
     (folder / "summary.json").write_text(json.dumps(
         {"rows": 801, "accepted": 800, "rejected": 1, "alerts": 2, "detection": detection,
          "settings": {"estimator": {"forgetting": 0.99}}}))
-    # the columns of monitor.detection.DETECTION_COLUMNS (one row per known change point)
+    # the columns of monitor.replay.detection.DETECTION_COLUMNS (one row per known change point)
     pd.DataFrame({"series": [facts["series"][i] for i in (1, 3, 0)],
                   "kind": ["elasticity_change", "elasticity_change", "unit_error"],
                   "ts": ["2024-03-05T04:00:00Z"] * 3, "end_ts": [None] * 3,

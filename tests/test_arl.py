@@ -1,4 +1,4 @@
-"""Tests of the ARL calculator (monitor.arl, monitor.arl_sim) and the ``elmon arl`` command."""
+"""Tests of the ARL calculator (monitor.detectors.arl, monitor.detectors.arl_mc) and the ``elmon arl`` command."""
 
 from __future__ import annotations
 
@@ -16,9 +16,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import norm
 
-from monitor import arl
 from monitor.cli import main
+from monitor.detectors import arl, arl_mc
 from monitor.errors import ConfigError
+
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 
@@ -177,22 +178,22 @@ def test_cusum_monte_carlo_within_a_few_standard_errors():
     # simulation is an independent check of the numerics (and of the two-sided relation)
     for k, h, d, sides in [(0.5, 4.0, 0.0, 2), (0.5, 4.0, 1.0, 2), (0.25, 5.0, 0.25, 2),
                            (0.5, 3.0, 0.0, 1)]:
-        est = arl.cusum_arl_mc(k, h, d, sides, n_runs=4000, seed=11)
+        est = arl_mc.cusum_arl_mc(k, h, d, sides, n_runs=4000, seed=11)
         assert est.n_censored == 0 and est.n_runs == 4000
         assert abs(est.arl - arl.cusum_arl(k, h, d, sides)) < 4.0 * est.se
 
 
 def test_ewma_monte_carlo_within_a_few_standard_errors():
     for lam, L, d in [(0.1, 2.814, 0.0), (0.1, 2.814, 1.0), (0.5, 3.0, 0.5)]:
-        est = arl.ewma_arl_mc(lam, L, d, n_runs=4000, seed=5)
+        est = arl_mc.ewma_arl_mc(lam, L, d, n_runs=4000, seed=5)
         assert abs(est.arl - arl.ewma_arl(lam, L, d)) < 4.0 * est.se
 
 
 def test_monte_carlo_is_seeded_and_reports_censoring():
-    a = arl.cusum_arl_mc(0.5, 4.0, [0.0, 1.0], n_runs=500, seed=3)
-    b = arl.cusum_arl_mc(0.5, 4.0, [0.0, 1.0], n_runs=500, seed=3)
+    a = arl_mc.cusum_arl_mc(0.5, 4.0, [0.0, 1.0], n_runs=500, seed=3)
+    b = arl_mc.cusum_arl_mc(0.5, 4.0, [0.0, 1.0], n_runs=500, seed=3)
     np.testing.assert_array_equal(a.arl, b.arl)
-    cut = arl.cusum_arl_mc(0.5, 4.0, 0.0, n_runs=500, seed=3, max_len=50)
+    cut = arl_mc.cusum_arl_mc(0.5, 4.0, 0.0, n_runs=500, seed=3, max_len=50)
     assert cut.n_censored > 0 and cut.arl <= 50
 
 
@@ -254,7 +255,7 @@ def test_arl0_below_the_h_to_zero_limit_is_rejected():
     (lambda: arl.ewma_arl(0.1, -1.0), r"L = -1.0 is out of range: L must be > 0"),
     (lambda: arl.ewma_L_for_arl0(0.1, 1.0), r"arl0 = 1.0 is out of range: arl0 must be > 1"),
     (lambda: arl.cusum_h_for_arl0("a", 500.0), r"k = 'a' is not a number"),
-    (lambda: arl.cusum_arl_mc(0.5, 4.0, n_runs=1), r"n_runs = 1 is out of range"),
+    (lambda: arl_mc.cusum_arl_mc(0.5, 4.0, n_runs=1), r"n_runs = 1 is out of range"),
     (lambda: arl.cusum_arl(0.0, 700.0), r"needs 3500 quadrature nodes"),
 ])
 def test_bad_arguments_raise_config_error_naming_the_parameter(call, pattern):
@@ -283,7 +284,7 @@ def test_design_by_simulation_recovers_the_exact_cusum_threshold():
     # the exact h for ARL0 = 200 comes from the integral equation; the simulated design must
     # land within 3 of its own standard errors (and within 0.15 sd) of it
     exact = arl.cusum_h_for_arl0(0.5, 200.0)
-    d = arl.design_threshold_by_simulation(_cusum_paths(0.5, 500, 40), 200.0, 1.0, 8.0,
+    d = arl_mc.design_threshold_by_simulation(_cusum_paths(0.5, 500, 40), 200.0, 1.0, 8.0,
                                            n_paths=1000, seed=1)
     assert d.n_censored == 0 and d.n_paths == 1000
     assert abs(d.threshold - exact) < max(3.0 * d.threshold_se, 0.02)
@@ -295,41 +296,44 @@ def test_design_by_simulation_recovers_the_exact_cusum_threshold():
 def test_design_by_simulation_accepts_one_array_and_reports_bad_input():
     def shewhart(n, rng):
         return rng.standard_normal((n, 3000))
-    d = arl.design_threshold_by_simulation(shewhart, 50.0, 0.5, 4.0, n_paths=1000, seed=2)
+    d = arl_mc.design_threshold_by_simulation(shewhart, 50.0, 0.5, 4.0, n_paths=1000, seed=2)
     assert abs(d.threshold - norm.isf(1 / 50.0)) < 0.05  # exact Shewhart h from scipy
     with pytest.raises(ConfigError, match="lower = 3.5 is too high"):
-        arl.design_threshold_by_simulation(shewhart, 50.0, 3.5, 4.0, n_paths=100)
+        arl_mc.design_threshold_by_simulation(shewhart, 50.0, 3.5, 4.0, n_paths=100)
     with pytest.raises(ConfigError, match="upper = 1 is too low"):
-        arl.design_threshold_by_simulation(shewhart, 50.0, 0.0, 1.0, n_paths=100)
+        arl_mc.design_threshold_by_simulation(shewhart, 50.0, 0.0, 1.0, n_paths=100)
     with pytest.raises(ConfigError, match="stopped after max_len = 20 steps"):
-        arl.design_threshold_by_simulation(shewhart, 50.0, 0.0, 4.0, n_paths=100, max_len=20)
+        arl_mc.design_threshold_by_simulation(shewhart, 50.0, 0.0, 4.0, n_paths=100, max_len=20)
 
     def broken(n, rng):
         x = rng.standard_normal((n, 10))
         x[3, 7] = np.nan
         return x
     with pytest.raises(ConfigError, match="chunk 0, path 3, step 7: value nan"):
-        arl.design_threshold_by_simulation(broken, 50.0, 0.0, 4.0, n_paths=10)
+        arl_mc.design_threshold_by_simulation(broken, 50.0, 0.0, 4.0, n_paths=10)
     with pytest.raises(ConfigError, match=r"has shape \(5, 10\): expected \(10, steps\)"):
-        arl.design_threshold_by_simulation(lambda n, rng: np.zeros((5, 10)), 50.0, 0.0, 4.0,
+        arl_mc.design_threshold_by_simulation(lambda n, rng: np.zeros((5, 10)), 50.0, 0.0, 4.0,
                                            n_paths=10)
 
 
 # ----------------------------------------------------------------------------- layering
-def test_arl_modules_import_no_detectors_replay_or_tuning():
-    banned = ("monitor.detectors", "monitor.replay", "monitor.tuning", "monitor.pipeline")
-    for name in ("arl.py", "arl_sim.py"):
-        tree = ast.parse((ROOT / "monitor" / name).read_text())
+def test_arl_modules_import_no_detector_classes_replay_or_tuning():
+    """The ARL numerics stand alone: no detector class, pipeline, replay or tuning module, and
+    the simulation module builds on the calculator, never the other way round."""
+    banned = ("monitor.pipeline", "monitor.replay", "monitor.tuning", "monitor.live")
+    allowed = {"arl.py": set(), "arl_mc.py": {"monitor.detectors.arl"}}
+    for name, ok in allowed.items():
+        tree = ast.parse((ROOT / "monitor" / "detectors" / name).read_text())
         for node in ast.walk(tree):
             mods = [a.name for a in node.names] if isinstance(node, ast.Import) else \
                 [node.module or ""] if isinstance(node, ast.ImportFrom) else []
             assert not any(m.startswith(banned) for m in mods), (name, mods)
-    # importing the simulation module first must work too (it builds on monitor.arl)
-    code = "import monitor.arl_sim, monitor.arl as a; print(a.cusum_arl_mc is " \
-           "monitor.arl_sim.cusum_arl_mc)"
+            assert all(m in ok for m in mods if m.startswith("monitor.detectors")), (name, mods)
+    # importing the simulation module first must work too (it builds on monitor.detectors.arl)
+    code = "import monitor.detectors.arl_mc as m; print(m.cusum_arl_mc.__module__)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          cwd=ROOT, check=True)
-    assert out.stdout.strip() == "True"
+    assert out.stdout.strip() == "monitor.detectors.arl_mc"
 
 
 # ----------------------------------------------------------------------------- CLI

@@ -18,15 +18,16 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from monitor.config import Config
-from monitor.config import validate as validate_config
-from monitor.engine import Monitor
-from monitor.ingest import CsvTail
-from monitor.service import Service, wait_until
+from monitor.ingest.files import CsvTail
+from monitor.live.monitor import Monitor
+from monitor.live.service import Service, wait_until
+from monitor.settings import Config
+from monitor.settings import validate as validate_config
 from simulators import simulate
 from tests.service_helpers import csv_bytes, frame
 
-#: reason text expected for each kind of bad row of simulators.baddata (monitor.validate's wording)
+
+#: reason text expected for each kind of bad row of simulators.baddata (monitor.rows.validate's wording)
 REASONS = {"empty_field": "empty field", "unparsable_number": "not a number",
            "non_positive_price": "price must be > 0", "negative_quantity": "quantity must be >= 0",
            "zero_quantity": "zero quantity cannot be logged", "nan_value": "NaN is not a value",

@@ -23,11 +23,12 @@ from pathlib import Path
 
 import pytest
 
-from monitor.config import load_config
-from monitor.service import Service
+from monitor.live.service import Service
+from monitor.settings import load_config
 from simulators import simulate
 from tests.crash_launcher import committed as committed_rows
 from tests.service_helpers import assert_same_store, csv_bytes, dump
+
 
 ROOT = Path(__file__).resolve().parents[1]
 

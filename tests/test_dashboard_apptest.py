@@ -16,8 +16,9 @@ import pytest
 import streamlit as st
 from streamlit.testing.v1 import AppTest
 
-import dashboard_fixtures as fx
 from monitor import store as mstore
+from tests import dashboard_fixtures as fx
+
 
 APP = Path(__file__).resolve().parents[1] / "dashboard" / "app.py"
 

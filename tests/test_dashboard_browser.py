@@ -21,8 +21,9 @@ from pathlib import Path
 
 import pytest
 
-import dashboard_fixtures as fx
 from monitor import store as mstore
+from tests import dashboard_fixtures as fx
+
 
 ROOT = Path(__file__).resolve().parents[1]
 CHROMIUM = Path("/usr/bin/chromium")

@@ -12,6 +12,7 @@ import pytest
 
 from dashboard import files, legend, loglog, shaping
 
+
 ROOT = Path(__file__).resolve().parents[1]
 
 
@@ -267,7 +268,7 @@ def test_replay_folder_and_detection_summary(tmp_path):
 
 
 def test_detection_summary_reads_status_column():
-    # the layout of monitor.detection.DETECTION_COLUMNS: status detected / missed / no_data /
+    # the layout of monitor.replay.detection.DETECTION_COLUMNS: status detected / missed / no_data /
     # not_scored; only detected and missed are scored, delays only over the detected
     det = pd.DataFrame({"kind": ["elasticity_change"] * 4 + ["flat_price"],
                         "status": ["detected", "missed", "detected", "no_data", "not_scored"],

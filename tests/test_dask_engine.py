@@ -1,6 +1,6 @@
 """The Dask engine on a LocalCluster of 2 workers gives the local engine's results.
 
-Reference: the local engine (monitor.replay_engine.replay, monitor.tuning.tune), itself
+Reference: the local engine (monitor.replay.driver.replay, monitor.tuning.tune), itself
 checked against run_replay in tests/test_replay_scale.py.
 """
 
@@ -12,9 +12,10 @@ import pandas as pd
 import pytest
 
 import simulators
-from monitor.config import load_config
-from monitor.replay_engine import replay
-from monitor.tuning import tune
+from monitor.replay.driver import replay
+from monitor.settings import load_config
+from monitor.tuning.tune import tune
+
 
 pytestmark = pytest.mark.slow
 NOW = pd.Timestamp("2030-01-01", tz="UTC").value

@@ -10,8 +10,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from monitor.detection import Scores, read_truth, score, summarize, truth_frame
 from monitor.errors import SourceError, ValidationError
+from monitor.replay.detection import Scores, read_truth, score, summarize, truth_frame
+
 
 DAY = 86_400 * 10**9
 T0 = pd.Timestamp("2025-03-01", tz="UTC").value

@@ -10,9 +10,9 @@ import math
 import numpy as np
 import pytest
 
-from monitor.arl import cusum_arl, cusum_h_for_arl0, ewma_L_for_arl0
 from monitor.detectors import (CUSUM, BoundsDetector, EWMAChart, FastSlowSlope, PageHinkley,
                                RiverDetector, SlopeChangeDetector)
+from monitor.detectors.arl import cusum_arl, cusum_h_for_arl0, ewma_L_for_arl0
 from monitor.detectors.base import F_ALARM, F_CLEAR
 from monitor.estimators import ElasticityRLS
 
@@ -268,8 +268,8 @@ def test_slope_statistic_is_standardized_in_control_and_moves_with_b():
 def test_river_detectors_run_on_pipeline_signals():
     from monitor.detectors import false_alarm_rate, run_per_series
     from monitor.estimators import kernel as K
-    from monitor.pipeline import Pipeline
-    from monitor.pipeline_settings import DetectorSettings
+    from monitor.pipeline.run import Pipeline
+    from monitor.pipeline.settings import DetectorSettings
     from tests.pipeline_helpers import simulate
 
     sid, X, y, ts = simulate(2, 1500, level_at=1000, level=-0.5, seed=51)
@@ -282,7 +282,7 @@ def test_river_detectors_run_on_pipeline_signals():
     # the same helper runs elmon's own detectors; the batch pipeline's chart matches it
     ours = run_per_series(CUSUM(k=0.5, h=8.0, burn_in=20), sid,
                           np.where(res.out[:, K.O_STATUS] == 0, np.nan, z))
-    from monitor.pipeline_kernel import S_LEVEL_FLAGS
+    from monitor.pipeline.kernel import S_LEVEL_FLAGS
     flags = res.signals[:, S_LEVEL_FLAGS].astype(np.int64)
     np.testing.assert_array_equal(ours, (flags & F_ALARM) != 0)
     # river's PageHinkley at its defaults on iid N(0, 1) values: the issue measured 636 alarms

@@ -1,6 +1,6 @@
 """The engine: one committed transaction per batch, exact resume, the same numbers as replay.
 
-References: the replay (:func:`monitor.replay.run_replay`, the full-speed path over the same
+References: the replay (:func:`monitor.replay.driver.run_replay`, the full-speed path over the same
 compiled core) for the estimates; :func:`monitor.store.thin_estimates` applied to the whole
 estimate history for the retention rule; hand-built logs for the duplicate, zero and
 missing-column cases. Data come from the project's retail simulator (invented series).
@@ -10,8 +10,8 @@ from __future__ import annotations
 
 import re
 import sqlite3
-import tomllib
 import struct
+import tomllib
 
 import numpy as np
 import pandas as pd
@@ -20,13 +20,14 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from monitor.cli import main
-from monitor.config import Config
-from monitor.engine import Monitor
 from monitor.errors import StoreError, ValidationError
-from monitor.replay import run_replay
+from monitor.live.monitor import Monitor
+from monitor.replay.driver import run_replay
+from monitor.settings import Config
 from monitor.store import Store, thin_estimates
 from simulators import simulate
 from tests.service_helpers import assert_same_store, csv_bytes, dump, frame, states
+
 
 CFG_TOML = """
 [estimator]
@@ -298,9 +299,10 @@ def test_the_one_row_path_of_observe_writes_what_the_batch_path_writes(tmp_path)
 @given(ns=st.integers(-8_000_000_000_000_000_000, 7_000_000_000_000_000_000),
        digits=st.integers(0, 9), zone=st.sampled_from(["Z", "", "+02:00", "-05:30", "+00:00"]))
 def test_one_row_timestamps_read_and_print_as_validation_does(ns, digits, zone):
-    # reference: monitor.validate (pandas to_datetime with format="ISO8601", strftime)
-    from monitor.engine_fast import iso_z, plain_ns
-    from monitor.validate import format_ts, parse_timestamps
+    # reference: monitor.rows.validate (pandas to_datetime with format="ISO8601", strftime)
+    from monitor.live.one_row import iso_z, plain_ns
+    from monitor.rows.isotime import format_ts
+    from monitor.rows.validate import parse_timestamps
 
     assert iso_z(ns) == format_ts(np.array([ns]))[0]
     stamp = pd.Timestamp(ns, tz="UTC")
@@ -326,7 +328,7 @@ def test_live_ingest_raises_the_alerts_the_replay_raises(tmp_path):
     path.write_bytes(csv_bytes(log))
     cfg = Config(tomllib.loads(CFG_TOML))
     run_replay(path, tmp_path / "replay", cfg)
-    from monitor.service import ingest_file
+    from monitor.live.service import ingest_file
     ingest_file(path, tmp_path / "s.sqlite", cfg, batch_rows=400)
     replay = pd.read_csv(tmp_path / "replay" / "alerts.csv")
     live = frame(tmp_path / "s.sqlite", "SELECT series, opened_ts AS ts, kind AS rule, beta, "

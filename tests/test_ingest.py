@@ -19,10 +19,13 @@ import pyarrow.parquet as pq
 import pytest
 
 from monitor.errors import ConfigError, SourceError
-from monitor.ingest import CsvTail, FolderSource, SqlSource, file_source, sources_from_config
-from monitor.ingest_csv import parse_lines
-from monitor.config import validate as validate_config
-from monitor import service_config  # noqa: F401 - registers [sources]
+from monitor.ingest.csv_text import parse_lines
+from monitor.ingest.factory import file_source, sources_from_config
+from monitor.ingest.files import CsvTail, FolderSource
+from monitor.ingest.sql import SqlSource
+from monitor.live import settings as service_config  # noqa: F401 - registers [sources]
+from monitor.settings import validate as validate_config
+
 
 HEADER = b"series,ts,price,quantity\n"
 NAMES = ["series", "ts", "price", "quantity"]

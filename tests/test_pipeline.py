@@ -18,10 +18,10 @@ from monitor.detectors.design import pipeline_threshold
 from monitor.errors import ConfigError
 from monitor.estimators import ElasticityRLS
 from monitor.estimators import kernel as K
-from monitor.pipeline import Pipeline
-from monitor.pipeline_kernel import S_D, S_LEVEL_FLAGS, S_SLOPE_FLAGS
-from monitor.pipeline_settings import BoundsSettings, DetectorSettings, RuleSettings
-from monitor.rules import AlertRule
+from monitor.pipeline.kernel import S_D, S_LEVEL_FLAGS, S_SLOPE_FLAGS
+from monitor.pipeline.rules import AlertRule
+from monitor.pipeline.run import Pipeline
+from monitor.pipeline.settings import BoundsSettings, DetectorSettings, RuleSettings
 from tests.pipeline_helpers import simulate
 
 

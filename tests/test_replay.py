@@ -11,7 +11,7 @@ import pytest
 
 from monitor.cli import main
 from monitor.estimators import ElasticityRLS
-from monitor.replay import run_replay
+from monitor.replay.driver import run_replay
 
 
 def _log(rng, n_days=150, series=(("oat-bar@harbor", -1.6), ("trail-mix@millbrook", -2.3))):
@@ -56,7 +56,7 @@ def test_replay_writes_files_and_matches_streaming(tmp_path, rng):
 
 
 def _cfg(**est):
-    from monitor.config import Config
+    from monitor.settings import Config
 
     return Config().with_overrides("estimator", **est)
 
@@ -92,8 +92,8 @@ def test_csv_and_parquet_inputs_agree(tmp_path, rng):
 
 
 def test_typed_and_text_reading_paths_agree(tmp_path, rng):
-    from monitor.logio import read_log
-    from monitor.validate import validate_frame
+    from monitor.ingest.logio import read_log
+    from monitor.rows.validate import validate_frame
 
     df = _log(rng, n_days=40)
     df.to_csv(tmp_path / "log.csv", index=False)

@@ -13,6 +13,7 @@ import pytest
 from monitor.cli import main
 from tests.pipeline_helpers import simulate
 
+
 NAMES = np.array(["quarry-rd/rye-crackers", "elm-cross/rye-crackers", "westgate/cold-brew"])
 
 
@@ -133,7 +134,7 @@ def test_bad_bounds_on_the_command_line_exit_2(regime_log, tmp_path, capsys):
 
 
 def test_replay_first_form_passes_times_and_names(regime_log, tmp_path):
-    from monitor.replay import run_replay
+    from monitor.replay.driver import run_replay
 
     log, change_ts = regime_log
     summary = run_replay(log, tmp_path)

@@ -1,7 +1,7 @@
 """Replay at scale: chunked reading equals the whole-file path, sampled estimates, progress,
 rejects across chunk boundaries, the HTML report and the CLI (--truth, --report).
 
-The reference for every equality is monitor.replay.run_replay, the whole-file path that the
+The reference for every equality is monitor.replay.driver.run_replay, the whole-file path that the
 live engine's tests compare with (tests/test_engine.py).
 """
 
@@ -16,13 +16,13 @@ import pandas as pd
 import pytest
 
 import simulators
-from monitor.chunks import iter_chunks
 from monitor.cli import main
-from monitor.config import Config
-from monitor.logio import read_log
+from monitor.ingest.chunks import iter_chunks
+from monitor.ingest.logio import read_log
 from monitor.progress import Progress
-from monitor.replay import run_replay
-from monitor.replay_engine import replay
+from monitor.replay.driver import replay, run_replay
+from monitor.settings import Config
+
 
 CFG = Config().with_overrides("estimator", controls=["promo", "weekend"])
 NOW = pd.Timestamp("2030-01-01", tz="UTC").value

@@ -9,16 +9,16 @@ import math
 import numpy as np
 import pytest
 
-from monitor.alert_text import (EV_ACTION, EV_BETA, EV_EXTRA, EV_HI, EV_KIND, EV_LO, EV_N,
-                                EV_OLD_B, EV_OLD_HI, EV_OLD_LO, EV_ROW, EV_SIDE, EV_SIZE,
-                                EV_START_N, EV_START_TS, EV_TS, NEV, effect_of_10pct,
-                                events_frame, message, severity)
-from monitor.arl import cusum_h_for_arl0
 from monitor.detectors import PageHinkley
+from monitor.detectors.arl import cusum_h_for_arl0
 from monitor.detectors.base import F_ALARM, F_REST_DN, F_REST_UP, F_USED
 from monitor.detectors.design import PRECOMPUTED, pipeline_threshold
-from monitor.rules import (E_B, E_CNT, E_START_N, E_SUM, EP_SIDE, EP_SIZE, KINDS, AlertRule,
-                           episode_restart, episode_step)
+from monitor.pipeline.messages import (EV_ACTION, EV_BETA, EV_EXTRA, EV_HI, EV_KIND, EV_LO, EV_N,
+                                       EV_OLD_B, EV_OLD_HI, EV_OLD_LO, EV_ROW, EV_SIDE, EV_SIZE,
+                                       EV_START_N, EV_START_TS, EV_TS, NEV, effect_of_10pct,
+                                       events_frame, message, severity)
+from monitor.pipeline.rules import (E_B, E_CNT, E_START_N, E_SUM, EP_SIDE, EP_SIZE, KINDS,
+                                    AlertRule, episode_restart, episode_step)
 
 
 def test_impulse_rule_dedupes_auto_resolves_and_cools_down():
@@ -130,7 +130,7 @@ def test_messages_and_severities_per_kind():
 def test_design_at_forgetting_one_agrees_with_normal_theory():
     # with forgetting 1 the recursive residuals are independent (Brown, Durbin & Evans 1975;
     # from memory) and nearly normal after warm-up, so the simulated design must land on the
-    # exact iid-normal h of monitor.arl within the simulation's error
+    # exact iid-normal h of monitor.detectors.arl within the simulation's error
     d = pipeline_threshold("level", "cusum", 2000.0, forgetting=1.0, n_paths=1000, seed=3, k=0.5)
     exact = cusum_h_for_arl0(0.5, 2000.0)
     assert abs(d.threshold - exact) < 4 * d.threshold_se + 0.05, (d, exact)

@@ -22,11 +22,12 @@ import pandas as pd
 import pytest
 from werkzeug import Response
 
-from monitor.config import validate as validate_config
-from monitor.service import Service, wait_until
+from monitor.live.service import Service, wait_until
+from monitor.settings import validate as validate_config
 from monitor.store import open_store, wall_ts
 from simulators import LiveAppender, simulate
 from tests.service_helpers import assert_same_store, csv_bytes, dump, frame
+
 
 ROOT = Path(__file__).resolve().parents[1]
 #: the thresholds the pipeline designs by simulation for the default ARL0 20000 and forgetting

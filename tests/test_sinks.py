@@ -16,9 +16,10 @@ from aiosmtpd.controller import Controller
 from aiosmtpd.smtp import AuthResult, LoginPassword
 from werkzeug import Response
 
-from monitor import sinks as mk
 from monitor import store as ms
 from monitor.errors import ConfigError
+from monitor.live import sinks as mk
+
 
 NOW = pd.Timestamp("2024-06-01T09:00:00Z")
 SECRET = "s3cret-for-tests-only"

@@ -11,13 +11,14 @@ import pandas as pd
 import pytest
 
 import simulators
-from monitor.calibration import block_length, calibrate
 from monitor.cli import main
-from monitor.config import Config, estimator_from_config, load_config, validate
 from monitor.errors import ConfigError
-from monitor.replay_engine import replay
-from monitor.tuning import (grid, pareto_front, recommend, setting_config, space_from_dict,
-                            to_toml, tune)
+from monitor.replay.driver import replay
+from monitor.settings import Config, estimator_from_config, load_config, validate
+from monitor.tuning.calibrate import block_length, calibrate
+from monitor.tuning.space import grid, setting_config, space_from_dict, to_toml
+from monitor.tuning.tune import pareto_front, recommend, tune
+
 
 NOW = pd.Timestamp("2030-01-01", tz="UTC").value
 CONTROLS = Config().with_overrides("estimator", controls=["promo", "weekend"])
@@ -119,9 +120,9 @@ def _loglog_log(path, rho: float, n_series=6, n=3000, seed=1):
 def _real_level_arl(path, arl0: float) -> float:
     """Observations per level-chart alarm when the pipeline runs over the log itself."""
     from monitor.detectors.base import F_ALARM
-    from monitor.pipeline import Pipeline
-    from monitor.pipeline_kernel import S_LEVEL_FLAGS
-    from monitor.tuning_run import load_rows
+    from monitor.pipeline.kernel import S_LEVEL_FLAGS
+    from monitor.pipeline.run import Pipeline
+    from monitor.tuning.rows import load_rows
 
     cfg = validate({"detectors": {"arl0": arl0}})
     rows = load_rows(path, cfg, now_ns=NOW)

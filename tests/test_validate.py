@@ -8,8 +8,9 @@ import pandas as pd
 import pytest
 
 from monitor.errors import ConfigError, SourceError
-from monitor.logio import read_log
-from monitor.validate import SeriesGate, ValidationSettings, validate_frame
+from monitor.ingest.logio import read_log
+from monitor.rows.validate import SeriesGate, ValidationSettings, validate_frame
+
 
 # reason text expected for each kind listed by the baddata simulator
 REASON = {

@@ -13,6 +13,7 @@ import streamlit as st
 from dashboard import charts, data, files, shaping
 from monitor.errors import ElmonError
 
+
 MAX_DRAWN = 1500
 NONE = "(none)"
 
@@ -46,8 +47,8 @@ def _run_form() -> None:
         truth = st.text_input("Truth file of known change points (optional)", key="rp_truth")
         if st.button("Run replay", key="rp_run", disabled=not (log and out)):
             try:
-                from monitor.config import load_config
-                from monitor.replay import run_replay
+                from monitor.replay.driver import run_replay
+                from monitor.settings import load_config
             except ImportError as exc:
                 st.error(f"Replay is not available in this installation: {exc}")
                 return
@@ -70,7 +71,7 @@ def _run_form() -> None:
 
 
 def _detection_metrics(block: dict) -> None:
-    """Headline numbers of summary.json's ``detection`` block (see monitor.detection)."""
+    """Headline numbers of summary.json's ``detection`` block (see monitor.replay.detection)."""
     rate = block.get("detection_rate")
     cols = st.columns(4)
     cols[0].metric("Detected", f"{block.get('detected', 0)} of {block.get('changes', 0)}",

@@ -14,6 +14,7 @@ import sys
 
 from monitor.errors import ElmonError
 
+
 #: Command modules, in the order their commands are listed in ``elmon --help``.
 COMMAND_MODULES = (
     "monitor.cli.replay_cmd",

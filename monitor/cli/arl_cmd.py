@@ -1,6 +1,6 @@
 """``elmon arl``: average run length (ARL) tables of CUSUM and EWMA charts, and threshold design.
 
-Thin commands over :mod:`monitor.arl`: parse, compute, print a table (or JSON with ``--json``).
+Thin commands over :mod:`monitor.detectors.arl`: parse, compute, print a table (or JSON with ``--json``).
 """
 
 from __future__ import annotations
@@ -9,8 +9,9 @@ import argparse
 import json
 import math
 
-from monitor import arl
 from monitor.cli import HelpFormatter
+from monitor.detectors import arl, arl_mc
+
 
 DEFAULT_SHIFTS = (0.0, 0.5, 1.0, 2.0, 3.0)
 DEFAULT_ARL0 = 20_000.0
@@ -86,7 +87,7 @@ def _cusum(args) -> int:
     h = arl.cusum_h_for_arl0(args.k, _target(args), args.sides) if args.h is None else args.h
     values = arl.cusum_arl(args.k, h, args.shift, args.sides, method=args.method)
     approx = arl.siegmund_arl(args.k, h, args.shift, args.sides)
-    mc = arl.cusum_arl_mc(args.k, h, args.shift, args.sides, n_runs=args.mc,
+    mc = arl_mc.cusum_arl_mc(args.k, h, args.shift, args.sides, n_runs=args.mc,
                           seed=args.seed) if args.mc else None
     side = "two-sided" if args.sides == 2 else "one-sided (upper)"
     head = {"chart": "cusum", "k": args.k, "h": h, "sides": args.sides, "method": args.method}
@@ -98,7 +99,7 @@ def _cusum(args) -> int:
 def _ewma(args) -> int:
     L = arl.ewma_L_for_arl0(args.lam, _target(args)) if args.L is None else args.L
     values = arl.ewma_arl(args.lam, L, args.shift, method=args.method)
-    mc = arl.ewma_arl_mc(args.lam, L, args.shift, n_runs=args.mc,
+    mc = arl_mc.ewma_arl_mc(args.lam, L, args.shift, n_runs=args.mc,
                          seed=args.seed) if args.mc else None
     head = {"chart": "ewma", "lam": args.lam, "L": L,
             "limit": arl.ewma_limit(args.lam, L), "method": args.method}

@@ -6,6 +6,7 @@ from pathlib import Path
 
 from monitor.cli import HelpFormatter
 
+
 EXAMPLE = """example:
   elmon demo                                   # retail price test, dashboard on :8501
   elmon demo --scenario load --speed 7200 --port 8600
@@ -14,7 +15,7 @@ EXAMPLE = """example:
 
 
 def handle(args) -> int:
-    from monitor.demo import DemoSettings, run_demo
+    from monitor.cli.demo import DemoSettings, run_demo
 
     run_demo(DemoSettings(scenario=args.scenario, workdir=Path(args.workdir),
                           db=Path(args.db) if args.db else None, speed=args.speed,

@@ -6,7 +6,8 @@ import argparse
 import json
 
 from monitor.cli import HelpFormatter
-from monitor.config import load_config
+from monitor.settings import load_config
+
 
 EXAMPLE = """example:
   elmon replay sales.csv --out replay-out/ --forgetting 0.98 --control promo
@@ -70,7 +71,7 @@ def add_detector_options(p: argparse.ArgumentParser) -> None:
 
 
 def config_from_args(args) -> "object":
-    import monitor.pipeline_settings  # noqa: F401  (registers [detectors], [bounds], [rules])
+    import monitor.pipeline.settings  # noqa: F401  (registers [detectors], [bounds], [rules])
 
     cfg = load_config(args.config)
     cfg = cfg.with_overrides("estimator", forgetting=args.forgetting, controls=args.control,
@@ -130,7 +131,7 @@ def print_detection(summary: dict) -> None:
 
 def handle(args) -> int:
     from monitor.cli.run_options import engine_kwargs
-    from monitor.replay_engine import replay
+    from monitor.replay.driver import replay
 
     summary = replay(args.log, args.out, config_from_args(args), truth=args.truth,
                      report=args.report, report_series=args.report_series,

@@ -45,6 +45,6 @@ def add_truth_options(p: argparse.ArgumentParser, required: bool = False) -> Non
 
 
 def engine_kwargs(args) -> dict:
-    """The :func:`monitor.replay_engine.replay` keywords of the engine options."""
+    """The :func:`monitor.replay.driver.replay` keywords of the engine options."""
     return {"engine": args.engine, "scheduler": args.scheduler, "npartitions": args.partitions,
             "chunk_rows": args.chunk_rows, "progress": not args.quiet}

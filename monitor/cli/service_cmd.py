@@ -6,8 +6,10 @@ import logging
 import sys
 from pathlib import Path
 
-from monitor import service_config  # noqa: F401 - registers [store], [service], [sources], [sinks]
 from monitor.cli import HelpFormatter
+from monitor.live import \
+    settings as service_config  # noqa: F401 - registers [store], [service], [sources], [sinks]
+
 
 RUN_EPILOG = """example:
   elmon run --config examples/elmon.toml
@@ -26,8 +28,8 @@ again over a file already read and it adds nothing."""
 
 
 def cmd_run(args) -> int:
-    from monitor.config import load_config
-    from monitor.service import Service
+    from monitor.live.service import Service
+    from monitor.settings import load_config
 
     logging.basicConfig(level=getattr(logging, args.log_level.upper()), stream=sys.stderr,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
@@ -59,7 +61,7 @@ def reset_source_position(config, db, base: Path, name: str) -> str:
     """Forget source ``name``'s position in the store (``--reset-source``); returns a message."""
     from monitor.errors import ConfigError
     from monitor.store import Store
-    from monitor.store_service import release_writer_lock, reset_source, take_writer_lock
+    from monitor.store.live import release_writer_lock, reset_source, take_writer_lock
 
     if name not in config.section("sources"):
         raise ConfigError(f"--reset-source {name}: no [sources.{name}] in the config")
@@ -77,7 +79,7 @@ def reset_source_position(config, db, base: Path, name: str) -> str:
 
 def cmd_ingest(args) -> int:
     from monitor.cli.replay_cmd import config_from_args
-    from monitor.service import ingest_file
+    from monitor.live.service import ingest_file
 
     out = ingest_file(args.file, args.db, config_from_args(args), batch_rows=args.batch_rows)
     print(describe_ingest(out, args.file))

@@ -7,6 +7,7 @@ import json
 
 from monitor.cli import HelpFormatter
 
+
 EXAMPLE = """example:
   elmon tune retail.csv --truth retail_truth.csv --space space.toml --max-false-alarms 2 --out tune/
   elmon tune retail.csv --truth retail_truth.csv --space space.toml --engine dask --out tune/
@@ -35,7 +36,7 @@ threshold that meets the target on the data."""
 
 def handle(args) -> int:
     from monitor.cli.replay_cmd import config_from_args
-    from monitor.tuning import tune
+    from monitor.tuning.tune import tune
 
     summary = tune(args.log, args.out, truth=args.truth, space=args.space,
                    config=config_from_args(args), max_false_alarms=args.max_false_alarms,

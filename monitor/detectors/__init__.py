@@ -18,5 +18,6 @@ from monitor.detectors.page_hinkley import PageHinkley
 from monitor.detectors.river_adapter import RiverDetector, false_alarm_rate, run_per_series
 from monitor.detectors.slope import FastSlowSlope, SlopeChangeDetector
 
+
 __all__ = ["BoundsDetector", "CUSUM", "EWMAChart", "PageHinkley", "SlopeChangeDetector",
            "FastSlowSlope", "RiverDetector", "run_per_series", "false_alarm_rate"]

@@ -2,7 +2,7 @@
 
 Every detector in :mod:`monitor.detectors` keeps its learned state in one small float64 vector
 and advances it with a numba-compiled step function; the batch pipeline
-(:mod:`monitor.pipeline_kernel`) calls the very same step functions on slices of each series'
+(:mod:`monitor.pipeline.kernel`) calls the very same step functions on slices of each series'
 state row, so a detector class fed one value at a time raises its alarms at exactly the same
 observations as the compiled pipeline (tests/test_detectors.py checks this).
 
@@ -28,6 +28,7 @@ import math
 from typing import Any, Mapping
 
 import numpy as np
+
 
 F_ALARM, F_DOWN, F_REST_UP, F_REST_DN, F_USED, F_CLEAR, F_BREACH, F_INSIDE = (
     1, 2, 4, 8, 16, 32, 64, 128)

@@ -10,13 +10,13 @@ The last observation at which a side was 0 estimates where a change on that side
 
 Default threshold: ``h`` is chosen so that the in-control ARL (mean observations between false
 alarms) is ``arl0`` for independent N(0, 1) values, solved exactly by
-:func:`monitor.arl.cusum_h_for_arl0` (integral equation). On the estimator's standardized
+:func:`monitor.detectors.arl.cusum_h_for_arl0` (integral equation). On the estimator's standardized
 innovations the pipeline designs h by simulation instead (forgetting makes them slightly
 negatively autocorrelated; see :mod:`monitor.detectors.design`).
 
 >>> import numpy as np
 >>> det = CUSUM(k=0.5, arl0=1000)
->>> round(det.h, 3)                      # monitor.arl.cusum_h_for_arl0(0.5, 1000)
+>>> round(det.h, 3)                      # monitor.detectors.arl.cusum_h_for_arl0(0.5, 1000)
 5.757
 >>> x = np.r_[np.random.default_rng(3).normal(0, 1, 300), np.full(50, 2.0)]  # mean 2 from 300
 >>> alarms = [i for i, v in enumerate(x) if det.update(v).drift_detected]
@@ -29,8 +29,9 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from monitor.detectors.base import F_ALARM, F_DOWN, F_REST_DN, F_REST_UP, F_USED, Detector, \
-    check_number
+from monitor.detectors.base import (F_ALARM, F_DOWN, F_REST_DN, F_REST_UP, F_USED, Detector,
+                                    check_number)
+
 
 #: state slots shared by every chart: statistics, counts, the statistic at the last alarm
 C_UP, C_DN, C_SEEN, C_RUN, C_ALARMS, C_LAST = 0, 1, 2, 3, 4, 5
@@ -104,7 +105,7 @@ class CUSUM(Detector):
         self.arl0 = check_number("arl0", arl0, 2.0, 1e9)
         self.burn_in = int(check_number("burn_in", burn_in, 0, 1e9, integer=True))
         if h is None:
-            from monitor.arl import cusum_h_for_arl0
+            from monitor.detectors.arl import cusum_h_for_arl0
 
             h = cusum_h_for_arl0(self.k, self.arl0)
         self.h = check_number("h", h, 0.0, 1e6, low_open=True)
@@ -131,7 +132,7 @@ class CUSUM(Detector):
         return int(self._state[C_ALARMS])
 
     def expected_arl(self, shift: float = 0.0) -> float:
-        """ARL at a mean shift of ``shift`` sd for iid normal values (:func:`monitor.arl.cusum_arl`)."""
-        from monitor.arl import cusum_arl
+        """ARL at a mean shift of ``shift`` sd for iid normal values (:func:`monitor.detectors.arl.cusum_arl`)."""
+        from monitor.detectors.arl import cusum_arl
 
         return float(cusum_arl(self.k, self.h, shift))

@@ -2,7 +2,7 @@
 
 Why simulation
 --------------
-The normal-theory ARL tables of :mod:`monitor.arl` assume independent N(0, 1) values. Two of
+The normal-theory ARL tables of :mod:`monitor.detectors.arl` assume independent N(0, 1) values. Two of
 the pipeline's signals are not:
 
 - the *standardized innovations* ``z_t`` of a recursive least-squares estimator *with
@@ -36,7 +36,7 @@ exceeds h. Each path is simulated until its running maximum passes ``h_hi`` and 
 values (time, new maximum) are kept, which gives every path's run length at every h <= h_hi
 from one simulation; ``h_hi`` is raised (continuing the same paths) until
 ``ARL(h_hi) >= 1.25 arl0``. ``ARL(h) = arl0`` is then solved on a fine grid with log-linear
-interpolation (the same estimator as :func:`monitor.arl.design_threshold_by_simulation`, which
+interpolation (the same estimator as :func:`monitor.detectors.arl_mc.design_threshold_by_simulation`, which
 works on whole paths; this version stops each path at its own crossing, which costs about
 ``n_paths * ARL`` steps instead of ``n_paths * max run length``). The ARL's relative standard
 error is about ``1 / sqrt(n_paths)``.
@@ -73,6 +73,7 @@ from monitor.detectors.design_table import PRECOMPUTED
 from monitor.detectors.slope import DEFAULT_FAST, DEFAULT_REFERENCE, SLOPE_SIZE, slope_step
 from monitor.estimators import kernel as K
 from monitor.estimators.tquantile import t_table
+
 
 SIGNALS = {"iid": 0, "level": 1, "slope": 2}
 DEFAULT_PATHS = 400
@@ -120,7 +121,7 @@ def _warm(signal, est, sig, lam, lf, lr, tq, n_warm, out):  # pragma: no cover -
 def _advance(signal, kind, p, est, sig, cs, lam, lf, lr, tq, t, runmax, rec_t, rec_v, nrec,
              h_hi, max_len, out):  # pragma: no cover - numba
     """Continue every path until its running maximum exceeds ``h_hi`` (or ``max_len``);
-    compiled without reference counting, as :mod:`monitor.pipeline_kernel`."""
+    compiled without reference counting, as :mod:`monitor.pipeline.kernel`."""
     cap = rec_t.shape[1]
     for i in range(est.shape[0]):
         e = est[i]
@@ -256,7 +257,7 @@ class _Simulation:
 
 def _initial_guess(chart: str, arl0: float, kw: dict) -> float:
     """A normal-theory threshold (statistic units) to start from; the loop raises it."""
-    from monitor.arl import cusum_h_for_arl0, ewma_L_for_arl0, ewma_limit
+    from monitor.detectors.arl import cusum_h_for_arl0, ewma_L_for_arl0, ewma_limit
 
     if chart == "cusum":
         return cusum_h_for_arl0(kw["k"], arl0)

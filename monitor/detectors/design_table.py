@@ -6,7 +6,7 @@ fast_forgetting, reference_forgetting, chart parameters, arl0)``, values ``(thre
 ARL standard error, threshold standard error, paths)``. Thresholds are in the chart's units:
 CUSUM h and Page-Hinkley lambda in standard deviations of the signal, EWMA L in standard
 deviations of Z. For comparison, the iid-normal designs are h = 8.75 (CUSUM k = 0.5) and
-L = 3.93 (EWMA lam = 0.1) at ARL0 = 20,000 (:mod:`monitor.arl`).
+L = 3.93 (EWMA lam = 0.1) at ARL0 = 20,000 (:mod:`monitor.detectors.arl`).
 """
 
 #: (signal, chart, forgetting, fast_forgetting, reference_forgetting, chart params, arl0) ->

@@ -8,7 +8,7 @@ an alarm when ``|Z_t| > L sqrt(lam / (2 - lam))`` (the asymptotic limit, in the 
 which Z restarts at 0. A side is "at rest" while Z is on the other side of 0.
 
 Default limit: ``L`` gives in-control ARL ``arl0`` for iid N(0, 1) values, solved by
-:func:`monitor.arl.ewma_L_for_arl0` (Lucas & Saccucci 1990 tabulate the same ARLs). On the
+:func:`monitor.detectors.arl.ewma_L_for_arl0` (Lucas & Saccucci 1990 tabulate the same ARLs). On the
 estimator's innovations or the slope statistic the pipeline designs L by simulation.
 
 >>> import numpy as np
@@ -28,8 +28,8 @@ import math
 import numpy as np
 from numba import njit
 
-from monitor.detectors.base import F_ALARM, F_DOWN, F_REST_DN, F_REST_UP, F_USED, Detector, \
-    check_number
+from monitor.detectors.base import (F_ALARM, F_DOWN, F_REST_DN, F_REST_UP, F_USED, Detector,
+                                    check_number)
 from monitor.detectors.cusum import (C_ALARMS, C_LAST, C_RUN, C_SEEN, C_UP, CHART_PARAMS,
                                      CHART_SIZE, DEFAULT_ARL0, P_A, P_BURN, P_THRESHOLD)
 
@@ -87,7 +87,7 @@ class EWMAChart(Detector):
         self.arl0 = check_number("arl0", arl0, 2.0, 1e9)
         self.burn_in = int(check_number("burn_in", burn_in, 0, 1e9, integer=True))
         if L is None:
-            from monitor.arl import ewma_L_for_arl0
+            from monitor.detectors.arl import ewma_L_for_arl0
 
             L = ewma_L_for_arl0(self.lam, self.arl0)
         self.L = check_number("L", L, 0.0, 1e6, low_open=True)
@@ -119,7 +119,7 @@ class EWMAChart(Detector):
         return int(self._state[C_ALARMS])
 
     def expected_arl(self, shift: float = 0.0) -> float:
-        """ARL at a mean shift of ``shift`` sd for iid normal values (:func:`monitor.arl.ewma_arl`)."""
-        from monitor.arl import ewma_arl
+        """ARL at a mean shift of ``shift`` sd for iid normal values (:func:`monitor.detectors.arl.ewma_arl`)."""
+        from monitor.detectors.arl import ewma_arl
 
         return float(ewma_arl(self.lam, self.L, shift))

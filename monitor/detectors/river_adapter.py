@@ -7,7 +7,7 @@ detector is a Python object graph (ADWIN's buckets, KSWIN's window), so ``to_sta
 as base64-encoded pickle text inside the JSON; restore it only from checkpoints elmon wrote.
 
 Streaming path only: the compiled pipeline does not run river detectors. Feed them the
-per-row signals of :class:`monitor.pipeline.PipelineResult` (``keep_signals=True``) or the
+per-row signals of :class:`monitor.pipeline.run.PipelineResult` (``keep_signals=True``) or the
 values of a streaming estimator. River's thresholds are not designed from an ARL: at its
 defaults river's PageHinkley raised 636 alarms on 1M in-control values in the issue's
 measurement, so check any river detector's false-alarm rate with
@@ -30,6 +30,7 @@ from typing import Mapping
 import numpy as np
 
 from monitor.detectors.base import check_number
+
 
 SUPPORTED = ("ADWIN", "KSWIN", "PageHinkley")
 

@@ -29,8 +29,10 @@ import numpy as np
 from monitor.errors import ValidationError
 from monitor.estimators import kernel as K
 from monitor.estimators.tquantile import t_table
-from monitor.transform import ControlSpec, check_quantity, design_row, parameter_names, parse_controls
+from monitor.estimators.transform import (ControlSpec, check_quantity, design_row, parameter_names,
+                                          parse_controls)
 from monitor.types import STATUS_LABELS
+
 
 #: documented defaults of the weak prior: N(0, 1000^2) for every coefficient
 DEFAULT_PRIOR_SD = 1000.0

@@ -1,0 +1,186 @@
+"""Reading a large log in chunks with bounded memory (CSV byte blocks, Parquet row batches).
+
+A CSV file is cut into blocks of whole lines (about ``block_bytes`` each; a cut is moved to
+the next line break), and each block is parsed with the header in front of it, exactly as
+:func:`monitor.ingest.logio.read_log` parses a whole file: pyarrow types the columns, and a block
+holding a value that does not fit is parsed again with every column as text, so
+:mod:`monitor.rows.validate` reports each bad field. Blank lines are skipped and not counted, as in
+the whole-file reader, so row numbers (1-based data rows) agree. The block list is computed
+from the file alone, which lets workers of a cluster read their own blocks
+(:mod:`monitor.replay.dask`).
+
+A Parquet file is read a row batch at a time.
+
+Memory: one block's bytes, its arrow table and its pandas frame (a few times the block size).
+"""
+
+from __future__ import annotations
+
+import io
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterator, Mapping
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from monitor.errors import ConfigError, SourceError
+from monitor.ingest.logio import (DEFAULT_COLUMNS, _check_file, _rename, log_format, read_log,
+                                  table_to_frame)
+
+
+#: default CSV block size: about a million rows of a typical log
+DEFAULT_BLOCK_BYTES = 64 << 20
+
+
+@dataclass(frozen=True)
+class Block:
+    """Bytes ``[start, stop)`` of a CSV file (whole lines), or row group range of a Parquet file."""
+
+    index: int
+    start: int
+    stop: int
+
+
+def csv_header(path) -> bytes:
+    """The header line (with its line break) of a CSV file."""
+    with open(path, "rb") as fh:
+        first = fh.readline()
+    if not first.strip():
+        raise SourceError(f"{path}: empty file (no header line)")
+    return first if first.endswith(b"\n") else first + b"\n"
+
+
+def csv_blocks(path, block_bytes: int = DEFAULT_BLOCK_BYTES) -> list[Block]:
+    """Cut a CSV file's data lines into blocks of about ``block_bytes`` at line breaks."""
+    p = _check_file(path)
+    size = p.stat().st_size
+    header = csv_header(p)
+    block_bytes = max(int(block_bytes), 1 << 12)
+    blocks, start = [], len(header)
+    with open(p, "rb") as fh:
+        while start < size:
+            stop = min(start + block_bytes, size)
+            if stop < size:
+                fh.seek(stop)
+                fh.readline()           # move the cut to just after the next line break
+                stop = min(fh.tell(), size)
+            blocks.append(Block(len(blocks), start, stop))
+            start = stop
+    return blocks
+
+
+def _types(header: bytes, text: bool) -> dict:
+    names = [c.strip().strip('"') for c in header.decode("utf-8", errors="replace").strip().split(",")]
+    return {c: pa.string() for c in names} if text else {"series": pa.string()}
+
+
+def parse_csv_bytes(data: bytes, header: bytes, source: str = "log") -> pa.Table:
+    """Parse ``header + data`` typed, or as text where a value does not fit the inferred type."""
+    buf = header + data
+    for text in (False, True):
+        conv = pacsv.ConvertOptions(null_values=[""], strings_can_be_null=True,
+                                    column_types=_types(header, text))
+        try:
+            return pacsv.read_csv(io.BytesIO(buf), convert_options=conv)
+        except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
+            if text:
+                raise SourceError(f"{source}: unreadable csv file: {exc}") from None
+    raise AssertionError("unreachable")  # pragma: no cover
+
+
+def read_csv_block(path, block: Block, header: bytes | None = None,
+                   columns: Mapping[str, str] | None = None) -> pd.DataFrame:
+    """One block as a frame with canonical column names."""
+    header = header if header is not None else csv_header(path)
+    with open(path, "rb") as fh:
+        fh.seek(block.start)
+        data = fh.read(block.stop - block.start)
+    table = parse_csv_bytes(data, header, str(path))
+    return _canonical(table_to_frame(table), columns)
+
+
+def _canonical(frame: pd.DataFrame, columns) -> pd.DataFrame:
+    mapping = {**DEFAULT_COLUMNS, **(columns or {})}
+    return frame.rename(columns=_rename(list(frame.columns), mapping))
+
+
+@dataclass
+class LogChunk:
+    """A chunk of raw rows: the frame, its first row number - 1, and input position reached."""
+
+    frame: pd.DataFrame
+    row_offset: int
+    position: int      # bytes (CSV) or rows (Parquet) of the input consumed after this chunk
+
+
+def input_size(path) -> int:
+    """Bytes of a CSV file or rows of a Parquet file (the unit of :attr:`LogChunk.position`)."""
+    p = _check_file(path)
+    if log_format(p) == "parquet":
+        try:
+            return pq.ParquetFile(p).metadata.num_rows
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise SourceError(f"{p}: unreadable parquet file: {exc}") from None
+    return p.stat().st_size
+
+
+def iter_chunks(path, columns: Mapping[str, str] | None = None, chunk_rows: int = 1_000_000
+                ) -> Iterator[LogChunk]:
+    """Yield the log in chunks of about ``chunk_rows`` rows (row numbers continue across chunks)."""
+    p = _check_file(path)
+    offset = 0
+    if log_format(p) == "parquet":
+        try:
+            pf = pq.ParquetFile(p)
+            for batch in pf.iter_batches(batch_size=max(int(chunk_rows), 1)):
+                frame = _canonical(table_to_frame(pa.Table.from_batches([batch])), columns)
+                yield LogChunk(frame, offset, offset + len(frame))
+                offset += len(frame)
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise SourceError(f"{p}: unreadable parquet file: {exc}") from None
+        return
+    header = csv_header(p)
+    for block in csv_blocks(p, chunk_rows * _mean_line_bytes(p, header)):
+        frame = read_csv_block(p, block, header, columns)
+        yield LogChunk(frame, offset, block.stop)
+        offset += len(frame)
+
+
+def _mean_line_bytes(path: Path, header: bytes, sample: int = 1 << 16) -> int:
+    """Mean bytes per data line over the first ``sample`` bytes (at least 8)."""
+    with open(path, "rb") as fh:
+        fh.seek(len(header))
+        data = fh.read(sample)
+    lines = data.count(b"\n")
+    return max(8, len(data) // lines) if lines else max(8, len(data))
+
+
+def file_bytes(path) -> int:
+    return os.path.getsize(path)
+
+
+#: logs up to this size are read whole (any row order); larger ones in chunks
+WHOLE_BYTES = 64 << 20
+
+
+WHOLE_ROWS = 2_000_000
+
+
+def log_chunks(log, columns, chunk_rows: int | None):
+    """The log as :class:`LogChunk` s: whole when small and ``chunk_rows`` is None, else chunked."""
+    size = input_size(log)
+    if chunk_rows is None:
+        small = size <= (WHOLE_ROWS if log_format(log) == "parquet" else WHOLE_BYTES)
+        if small:
+            return size, iter([LogChunk(read_log(log, columns), 0, size)])
+        chunk_rows = DEFAULT_CHUNK_ROWS
+    if int(chunk_rows) < 1:
+        raise ConfigError(f"chunk_rows = {chunk_rows!r}: must be >= 1")
+    return size, iter_chunks(log, columns, int(chunk_rows))
+
+
+DEFAULT_CHUNK_ROWS = 1_000_000

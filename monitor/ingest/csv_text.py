@@ -1,0 +1,208 @@
+"""Reading CSV text in whole lines from a byte offset: the parsing half of the CSV sources.
+
+A chunk is the bytes from a committed offset up to the last line break (a partial last line
+waits for its newline, unless the file is known to be complete). Each line is one row: fields
+are split by pyarrow (all columns as text, so :mod:`monitor.rows.validate` judges every value), and
+when pyarrow refuses the chunk (bytes that are not UTF-8, for example) each line is split on
+its own by the standard :mod:`csv` module. A line that cannot become a row (too few or too
+many fields, not UTF-8) is returned as a reject naming its row number; blank lines count in
+the numbering but are not rows. Row numbers are 1-based data rows (the header is not counted),
+as in the replay's rejects.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import json
+import os
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.csv as pacsv
+
+from monitor.errors import SourceError
+from monitor.ingest.base import empty_rejects
+from monitor.rows.validate import REJECT_COLUMNS
+
+
+#: bytes of the start of a file whose hash identifies it (replacement check)
+HEAD_BYTES = 4096
+#: bytes read per step while looking for enough line breaks
+READ_STEP = 1 << 22
+
+
+def parse_header(line: bytes, where: str) -> list[str]:
+    """Column names of a header line (UTF-8, comma separated, surrounding spaces removed)."""
+    try:
+        text = line.decode("utf-8-sig").rstrip("\r\n")
+    except UnicodeDecodeError:
+        raise SourceError(f"{where}: the header line is not UTF-8 text") from None
+    names = [n.strip() for n in next(csv.reader([text]), [])]
+    if not names or all(n == "" for n in names):
+        raise SourceError(f"{where}: empty header line")
+    dup = sorted({n for n in names if names.count(n) > 1})
+    if dup:
+        raise SourceError(f"{where}: the header names column(s) {dup} more than once")
+    return names
+
+
+def head_hash(path, length: int) -> str:
+    """SHA-256 (hex) of the first ``length`` bytes of a file."""
+    with open(path, "rb") as fh:
+        return hashlib.sha256(fh.read(length)).hexdigest()
+
+
+def _line_reject(row: int, text: str, why: str) -> dict:
+    shown = text if len(text) <= 200 else text[:200] + "..."
+    return {"row": int(row), "series": "", "ts": "", "field": "line", "value": shown,
+            "reason": f"row {int(row)}: line {shown!r}: {why}", "raw": json.dumps({"line": text})}
+
+
+def parse_lines(names: list[str], canon: list[str], body: bytes, first_row: int,
+                ) -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame, int]:
+    """Split ``body`` (whole lines) into rows of text fields.
+
+    Returns ``(frame, rows, rejects, n_lines)``: the rows that have one field per header
+    column, their data row numbers, the lines that do not, and the number of lines.
+    """
+    if body and not body.endswith(b"\n"):
+        body += b"\n"
+    nl = np.flatnonzero(np.frombuffer(body, dtype=np.uint8) == 10)
+    n_lines = int(nl.size)
+    starts = np.concatenate([[0], nl[:-1] + 1]) if n_lines else np.zeros(0, dtype=np.int64)
+    length = nl - starts
+    last = np.frombuffer(body, dtype=np.uint8)[np.maximum(nl - 1, 0)] if n_lines else nl
+    blank = (length == 0) | ((length == 1) & (last == 13))
+    line_rows = first_row + np.arange(n_lines, dtype=np.int64)
+    if n_lines == 0 or blank.all():
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in canon}), \
+            np.zeros(0, dtype=np.int64), empty_rejects(), n_lines
+    try:
+        body.decode("utf-8")                 # pyarrow's bad-line handler needs UTF-8 text
+        frame, bad_lines = _parse_fast(names, body)
+        if len(frame) + len(bad_lines) != n_lines:   # a lone CR split a line: go line by line
+            raise UnicodeDecodeError("utf-8", b"", 0, 1, "line count differs")
+        bad = np.zeros(n_lines, dtype=bool)
+        bad[bad_lines] = True
+        keep_rows = ~bad
+        rejects = [_line_reject(line_rows[i], _decode(body[starts[i]:nl[i]]),
+                                _count_message(body[starts[i]:nl[i]], len(names)))
+                   for i in bad_lines]
+    except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError):
+        frame, keep_rows, rejects = _parse_slow(names, body, starts, nl, line_rows, blank)
+    frame.columns = canon
+    # every line that is not a reject produced a row (blank lines an all-null one): drop those
+    take = ~blank[keep_rows]
+    frame = frame.loc[take].reset_index(drop=True)
+    rows = line_rows[keep_rows][take]
+    rej = pd.DataFrame(rejects, columns=REJECT_COLUMNS) if rejects else empty_rejects()
+    return frame, rows, rej, n_lines
+
+
+def _decode(line: bytes) -> str:
+    return line.decode("utf-8", errors="replace").rstrip("\r")
+
+
+def _count_message(line: bytes, n_fields: int) -> str:
+    try:
+        got = len(next(csv.reader([_decode(line)]), []))
+    except csv.Error:
+        got = "an unreadable number of"
+    return f"the line has {got} fields, the header has {n_fields}"
+
+
+def _parse_fast(names: list[str], body: bytes) -> tuple[pd.DataFrame, list[int]]:
+    header = (",".join(f'"{n}"' for n in names) + "\n").encode("utf-8")
+    bad: list[int] = []
+
+    def invalid(row) -> str:
+        bad.append(row.number - 2)          # pyarrow numbers lines from 1, the header is line 1
+        return "skip"
+
+    table = pacsv.read_csv(
+        io.BytesIO(header + body),
+        read_options=pacsv.ReadOptions(use_threads=False, block_size=max(1 << 20, len(body) + 64)),
+        parse_options=pacsv.ParseOptions(invalid_row_handler=invalid, ignore_empty_lines=False,
+                                          newlines_in_values=False),
+        convert_options=pacsv.ConvertOptions(column_types={n: pa.string() for n in names},
+                                             null_values=[""], strings_can_be_null=True,
+                                             quoted_strings_can_be_null=True))
+    frame = pd.DataFrame({f"c{j}": table.column(j).to_pandas(types_mapper=None)
+                          for j in range(table.num_columns)})
+    return frame.astype(object).where(frame.notna(), None), sorted(bad)
+
+
+def _parse_slow(names, body, starts, nl, line_rows, blank):
+    """One line at a time with the standard csv module (for chunks pyarrow refuses)."""
+    records, keep, rejects = [], np.zeros(len(nl), dtype=bool), []
+    n = len(names)
+    for i in range(len(nl)):
+        raw = body[starts[i]:nl[i]]
+        if blank[i]:
+            keep[i] = True
+            records.append([None] * n)
+            continue
+        try:
+            text = raw.decode("utf-8").rstrip("\r")
+        except UnicodeDecodeError:
+            rejects.append(_line_reject(line_rows[i], _decode(raw), "not valid UTF-8 text"))
+            continue
+        try:
+            fields = next(csv.reader([text]), [])
+        except csv.Error as exc:
+            rejects.append(_line_reject(line_rows[i], text, f"not a CSV line ({exc})"))
+            continue
+        if len(fields) != n:
+            rejects.append(_line_reject(line_rows[i], text,
+                                        f"the line has {len(fields)} fields, the header has {n}"))
+            continue
+        keep[i] = True
+        records.append([f if f != "" else None for f in fields])
+    frame = pd.DataFrame(records, columns=[f"c{j}" for j in range(n)], dtype=object)
+    return frame, keep, rejects
+
+
+def find_line_ends(fh, offset: int, size: int, max_rows: int) -> tuple[int, int]:
+    """``(end, lines)``: the byte offset just past the ``max_rows``-th line break after
+    ``offset`` (or past the last one before ``size``) and the number of lines up to it."""
+    end, pos, found = offset, offset, 0
+    fh.seek(offset)
+    while pos < size and found < max_rows:
+        block = fh.read(min(READ_STEP, size - pos))
+        if not block:
+            break
+        nl = np.flatnonzero(np.frombuffer(block, dtype=np.uint8) == 10)
+        need = max_rows - found
+        if nl.size >= need:
+            return pos + int(nl[need - 1]) + 1, max_rows
+        if nl.size:
+            end = pos + int(nl[-1]) + 1
+        found += int(nl.size)
+        pos += len(block)
+    return end, found
+
+
+def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_before: int,
+                   max_rows: int, final: bool) -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame,
+                                                        int, int]:
+    """Read up to ``max_rows`` whole lines from ``offset``.
+
+    Returns ``(frame, rows, rejects, n_lines, new_offset)``. With ``final=True`` the end of
+    the file also ends the last line (the file is complete); otherwise a partial last line
+    is left for the next read.
+    """
+    size = os.stat(path).st_size
+    with open(path, "rb") as fh:
+        end, found = find_line_ends(fh, offset, size, max_rows)
+        if final and found < max_rows and end < size:
+            end = size
+        if end <= offset:
+            return (pd.DataFrame({c: pd.Series(dtype=object) for c in canon}),
+                    np.zeros(0, dtype=np.int64), empty_rejects(), 0, offset)
+        fh.seek(offset)
+        body = fh.read(end - offset)
+    frame, rows, rejects, n_lines = parse_lines(names, canon, body, rows_before + 1)
+    return frame, rows, rejects, n_lines, end

@@ -1,0 +1,274 @@
+"""Sources of observations, each remembering its position: a growing CSV, a folder, a SQL table.
+
+Every source has ``name``, ``kind`` and ``read(position, max_rows) -> Chunk | None``: the next
+rows after the committed ``position`` (``None`` when nothing new has arrived). Reading never
+moves the position; the engine commits the chunk's ``position`` in the same transaction as its
+observations (:meth:`monitor.live.monitor.Monitor.process_chunk`), so a process killed at any moment
+repeats nothing and loses nothing. The fourth source is the Python call
+(:meth:`monitor.live.monitor.Monitor.observe` / ``observe_many``).
+
+Positions (JSON in ``source_offsets.position``)
+------------------------------------------------
+- ``csv``: ``{"offset": bytes, "rows": data rows, "inode", "dev", "head", "head_len"}``. The
+  offset is always just past a line break: a partial last line waits for its newline. Before
+  reading, the file is checked against the position: another inode (replaced), a size below
+  the offset (truncated) or another hash of the first ``head_len`` bytes (rewritten) is
+  reported as a ``notice`` (the engine opens a ``source_reset`` alert) and, with
+  ``on_reset = "restart"`` (default), the new file is read from its start (repeated rows are
+  then rejected as duplicates by validation); with ``"stop"`` the source raises
+  :class:`SourceError` at every poll until the position is reset
+  (``elmon run --reset-source NAME``).
+- ``folder``: ``{"done": {file: [size, mtime_ns]}, "current": {...} | null}``: each CSV or
+  Parquet file is processed once, in order of modification time then name, after it has not
+  changed for ``settle_s`` seconds; a large file is read in several batches (``current``
+  holds the offset inside it). Rows are labelled ``NAME/FILE`` in the store. A file that
+  cannot be read, disappears half-read or changes after it was read is reported (a
+  ``source_error`` alert) and skipped, so it never blocks the files after it.
+- ``sql``: ``{"key": last key, "rows": rows read}``: ``SELECT * FROM table WHERE key > ?
+  ORDER BY key LIMIT n``. SQLite files are built in (opened read-only); other databases go
+  through a SQLAlchemy URL. The key must increase in commit order (an ``INTEGER PRIMARY KEY``
+  in SQLite; with other databases a sequence can commit out of order, so poll a view that
+  lags behind the newest rows).
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import os
+import time
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+import pandas as pd
+import pyarrow.parquet as pq
+
+from monitor.errors import ConfigError, SourceError
+from monitor.ingest.base import Chunk, canonical_names, empty_rejects
+from monitor.ingest.csv_text import HEAD_BYTES, head_hash, parse_header, read_csv_chunk
+
+
+__all__ = ["CsvTail", "FolderSource", "ParquetFile"]
+
+
+def _header(path: Path, where: str, final: bool) -> tuple[list[str], int] | None:
+    """Header names and the byte offset after the header line (None: no complete line yet)."""
+    with open(path, "rb") as fh:
+        block = fh.readline(1 << 20)
+    cut = block.find(b"\n")
+    if cut < 0:
+        if not block or not final:
+            return None
+        cut = len(block) - 1
+    return parse_header(block[:cut + 1], where), cut + 1
+
+
+class CsvTail:
+    """An append-only CSV file tailed by byte offset (see the module docstring).
+
+    Parameters
+    ----------
+    name : str
+        Source name in the store.
+    path : path
+        The CSV file (header line first).
+    columns : mapping, optional
+        ``[columns]`` map of the file's column names.
+    final : bool
+        The file is complete: its end also ends the last line (``elmon ingest``).
+    on_reset : ``"restart"`` or ``"stop"``
+        What to do when the file was replaced or truncated.
+    """
+
+    kind = "csv"
+
+    def __init__(self, name: str, path, columns: Mapping[str, str] | None = None,
+                 final: bool = False, on_reset: str = "restart"):
+        if on_reset not in ("restart", "stop"):
+            raise ConfigError(f"on_reset = {on_reset!r}: must be 'restart' or 'stop'")
+        self.name, self.path, self.columns = name, Path(path), dict(columns or {})
+        self.final, self.on_reset = final, on_reset
+
+    def _changed(self, pos: dict, st: os.stat_result) -> str | None:
+        if (st.st_ino, st.st_dev) != (pos.get("inode"), pos.get("dev")):
+            return f"{self.path} was replaced (another file now has its name)"
+        if st.st_size < pos["offset"]:
+            return (f"{self.path} was truncated: {st.st_size} bytes, fewer than the "
+                    f"{pos['offset']} already read")
+        if pos.get("head") and head_hash(self.path, pos["head_len"]) != pos["head"]:
+            return f"{self.path} was rewritten: its first {pos['head_len']} bytes changed"
+        return None
+
+    def read(self, position: dict | None, max_rows: int) -> Chunk | None:
+        try:
+            st = os.stat(self.path)
+        except FileNotFoundError:
+            raise SourceError(f"{self.path}: no such file") from None
+        except OSError as exc:
+            raise SourceError(f"{self.path}: cannot be read: {exc}") from None
+        pos, notice = dict(position or {}), None
+        if pos.get("offset"):
+            notice = self._changed(pos, st)
+            if notice and self.on_reset == "stop":
+                raise SourceError(f"{notice}; on_reset = 'stop': start the service with "
+                                  f"--reset-source {self.name} to read it from its start")
+            if notice:
+                notice += "; reading the new file from its start"
+                pos = {}
+        try:
+            head = _header(self.path, str(self.path), self.final)
+        except OSError as exc:
+            raise SourceError(f"{self.path}: cannot be read: {exc}") from None
+        if head is None:
+            return None
+        names, header_end = head
+        canon = canonical_names(names, self.columns)
+        offset, rows = max(int(pos.get("offset", 0)), header_end), int(pos.get("rows", 0))
+        frame, rownums, rejects, n_lines, end = read_csv_chunk(
+            self.path, names, canon, offset, rows, max_rows, self.final)
+        if end == offset and notice is None and pos.get("offset") == offset:
+            return None
+        head_len = min(HEAD_BYTES, end)
+        new = {"offset": int(end), "rows": rows + n_lines, "inode": st.st_ino, "dev": st.st_dev,
+               "head": head_hash(self.path, head_len), "head_len": head_len}
+        return Chunk(frame, rownums, rejects, new, n_lines, notice=notice)
+
+
+def _read_table(path: Path, columns) -> pd.DataFrame:
+    try:
+        table = pq.read_table(path)
+    except Exception as exc:  # pyarrow raises several types for a damaged file
+        raise SourceError(f"{path}: unreadable parquet file: {exc}") from None
+    frame = table.to_pandas()
+    frame.columns = canonical_names(list(frame.columns), columns)
+    return frame
+
+
+class FolderSource:
+    """A folder receiving CSV or Parquet files, each processed once (module docstring).
+
+    ``patterns`` are shell patterns of the file names read (default ``*.csv``, ``*.parquet``);
+    names starting with ``.`` or ending in ``.tmp`` / ``.part`` are skipped, so a writer can
+    write under such a name and rename the finished file.
+    """
+
+    kind = "folder"
+
+    def __init__(self, name: str, path, columns: Mapping[str, str] | None = None,
+                 patterns=("*.csv", "*.parquet", "*.pq"), settle_s: float = 1.0, clock=time.time):
+        self.name, self.path, self.columns = name, Path(path), dict(columns or {})
+        self.patterns, self.settle_s, self.clock = tuple(patterns), float(settle_s), clock
+        self._cache: tuple[tuple, pd.DataFrame] | None = None
+
+    def _ready(self) -> tuple[list[tuple[int, str, int]], set[str]]:
+        """Files ready to read as ``(mtime_ns, name, size)`` in order, and every name present."""
+        if not self.path.is_dir():
+            raise SourceError(f"{self.path}: no such folder")
+        out, names, now = [], set(), self.clock()
+        for entry in os.scandir(self.path):
+            n = entry.name
+            names.add(n)
+            if n.startswith(".") or n.endswith((".tmp", ".part")) or not entry.is_file():
+                continue
+            if not any(fnmatch.fnmatch(n, p) for p in self.patterns):
+                continue
+            st = entry.stat()
+            if now - st.st_mtime >= self.settle_s:
+                out.append((st.st_mtime_ns, n, st.st_size))
+        return sorted(out), names
+
+    def read(self, position: dict | None, max_rows: int) -> Chunk | None:
+        pos = dict(position or {})
+        done = {k: list(v) for k, v in (pos.get("done") or {}).items()}
+        ready, present = self._ready()
+        notices = [f"{self.path / n} changed after it was processed; it is not read again"
+                   for m, n, s in ready if n in done and done[n] != [s, m]]
+        cur = pos.get("current")
+        if cur is None:
+            todo = [(m, n, s) for m, n, s in ready if n not in done]
+            if not todo:
+                if notices and pos.get("reported") != notices:
+                    return self._empty({**pos, "reported": notices}, "; ".join(notices))
+                return None
+            m, n, s = todo[0]
+            cur = {"name": n, "size": s, "mtime_ns": m, "offset": 0, "rows": 0}
+        path = self.path / cur["name"]
+        if cur["name"] not in present:
+            gone = (f"{path} disappeared after {cur['rows']} of its rows were read; the rest "
+                    f"is lost to elmon")
+            return self._empty({**pos, "current": None}, gone)
+        try:
+            chunk = self._read_file(path, cur, max_rows)
+        except (SourceError, OSError) as exc:   # a damaged file must not block the ones after it
+            done[cur["name"]] = [cur["size"], cur["mtime_ns"]]
+            return self._empty({**pos, "done": done, "current": None},
+                               f"{exc}; the file is skipped (fix it and give it a new name to "
+                               f"have it read)")
+        done_now = chunk.extra.pop("complete")
+        keep = {k: v for k, v in done.items() if k in present or k == cur["name"]}
+        if done_now:
+            keep[cur["name"]] = [cur["size"], cur["mtime_ns"]]
+        chunk.position = {"done": keep, "current": None if done_now else chunk.extra.pop("cur"),
+                          "reported": pos.get("reported")}
+        chunk.label = f"{self.name}/{cur['name']}"
+        if notices and pos.get("reported") != notices:
+            chunk.notice, chunk.notice_kind = "; ".join(notices), "source_error"
+            chunk.position["reported"] = notices
+        return chunk
+
+    def _empty(self, position: dict, notice: str) -> Chunk:
+        return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(), position, 0,
+                     notice=notice, notice_kind="source_error")
+
+    def _read_file(self, path: Path, cur: dict, max_rows: int) -> Chunk:
+        suffix = path.suffix.lower()
+        if suffix in (".parquet", ".pq"):
+            key = (str(path), cur["size"], cur["mtime_ns"])
+            if self._cache is None or self._cache[0] != key:
+                self._cache = (key, _read_table(path, self.columns))
+            table = self._cache[1]
+            lo, hi = cur["rows"], min(cur["rows"] + max_rows, len(table))
+            frame = table.iloc[lo:hi].reset_index(drop=True)
+            rows = np.arange(lo + 1, hi + 1, dtype=np.int64)
+            nxt = {**cur, "rows": hi}
+            return Chunk(frame, rows, empty_rejects(), {}, hi - lo,
+                         extra={"complete": hi >= len(table), "cur": nxt})
+        head = _header(path, str(path), final=True)
+        if head is None:                      # an empty file: nothing to read, done
+            return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(), {}, 0,
+                         extra={"complete": True, "cur": cur})
+        names, header_end = head
+        canon = canonical_names(names, self.columns)
+        offset = max(cur["offset"], header_end)
+        frame, rows, rejects, n_lines, end = read_csv_chunk(path, names, canon, offset,
+                                                            cur["rows"], max_rows, final=True)
+        nxt = {**cur, "offset": end, "rows": cur["rows"] + n_lines}
+        return Chunk(frame, rows, rejects, {}, n_lines,
+                     extra={"complete": end >= cur["size"], "cur": nxt})
+
+
+class ParquetFile:
+    """One Parquet file read by row offset (position ``{"rows", "size", "mtime_ns"}``)."""
+
+    kind = "parquet"
+
+    def __init__(self, name: str, path: Path, columns=None):
+        self.name, self.path, self.columns = name, path, dict(columns or {})
+        self._table: pd.DataFrame | None = None
+
+    def read(self, position: dict | None, max_rows: int) -> Chunk | None:
+        st = os.stat(self.path)
+        pos, notice = dict(position or {}), None
+        if pos and [pos.get("size"), pos.get("mtime_ns")] != [st.st_size, st.st_mtime_ns]:
+            notice = f"{self.path} changed since it was read; reading it from its start"
+            pos = {}
+        if self._table is None:
+            self._table = _read_table(self.path, self.columns)
+        lo = int(pos.get("rows", 0))
+        hi = min(lo + max_rows, len(self._table))
+        if hi <= lo and notice is None:
+            return None
+        rows = np.arange(lo + 1, hi + 1, dtype=np.int64)
+        new = {"rows": hi, "size": st.st_size, "mtime_ns": st.st_mtime_ns}
+        return Chunk(self._table.iloc[lo:hi].reset_index(drop=True), rows, empty_rejects(), new,
+                     hi - lo, notice=notice)

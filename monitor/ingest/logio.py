@@ -1,0 +1,144 @@
+"""Reading observation logs (CSV or Parquet) with pyarrow, and writing result tables.
+
+The fast path lets pyarrow type the columns (float64 numbers, timestamps parsed in C++). When a
+file holds values that do not fit those types (a word in a number column, a malformed
+timestamp), it is read again with every column as text and :mod:`monitor.rows.validate` reports each
+bad field; the two paths give the same validation results.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Iterator, Mapping
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from monitor.errors import SourceError
+
+
+DEFAULT_COLUMNS = {"series": "series", "ts": "ts", "price": "price", "quantity": "quantity"}
+
+
+def log_format(path: str | os.PathLike) -> str:
+    suffix = Path(path).suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        return "parquet"
+    if suffix in (".csv", ".txt", ".gz") or suffix == "":
+        return "csv"
+    raise SourceError(f"{path}: unknown log format '{suffix}' (expected .csv or .parquet)")
+
+
+def _check_file(path) -> Path:
+    p = Path(path)
+    if not p.exists():
+        raise SourceError(f"{p}: no such file")
+    if not p.is_file():
+        raise SourceError(f"{p}: not a file")
+    if not os.access(p, os.R_OK):
+        raise SourceError(f"{p}: cannot be read (permission denied)")
+    return p
+
+
+def _rename(table_cols: list[str], mapping: Mapping[str, str]) -> dict[str, str]:
+    """Map the file's column names onto series/ts/price/quantity."""
+    inv = {}
+    for canon, actual in mapping.items():
+        if actual != canon and actual in table_cols:
+            inv[actual] = canon
+    return inv
+
+
+def _text_types(names: list[str]) -> dict:
+    return {c: pa.string() for c in names}
+
+
+def read_log(path, columns: Mapping[str, str] | None = None,
+             text: bool = False) -> pd.DataFrame:
+    """Read a whole log into a DataFrame with canonical column names (see module docstring)."""
+    p = _check_file(path)
+    mapping = {**DEFAULT_COLUMNS, **(columns or {})}
+    fmt = log_format(p)
+    try:
+        if fmt == "parquet":
+            table = pq.read_table(p)
+        else:
+            table = _read_csv(p, text)
+    except SourceError:
+        raise
+    except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
+        if fmt == "csv" and not text:
+            return read_log(path, columns, text=True)
+        raise SourceError(f"{p}: unreadable {fmt} file: {exc}") from None
+    except OSError as exc:
+        raise SourceError(f"{p}: unreadable {fmt} file: {exc}") from None
+    frame = table_to_frame(table)
+    frame = frame.rename(columns=_rename(list(frame.columns), mapping))
+    return frame
+
+
+def table_to_frame(table: pa.Table) -> pd.DataFrame:
+    """Arrow table to pandas, keeping an empty field distinguishable from a literal NaN.
+
+    pandas turns both a null and a NaN of a float column into NaN; a float column with nulls is
+    therefore converted to objects with None for the empty fields (rare, so the cost is rare).
+    """
+    frame = table.to_pandas()
+    for name, col in zip(table.column_names, table.columns):
+        if pa.types.is_floating(col.type) and col.null_count > 0:
+            frame[name] = pd.Series(col.to_pylist(), dtype=object, index=frame.index)
+    return frame
+
+
+def _read_csv(p: Path, text: bool) -> pa.Table:
+    with open(p, "rb") as fh:
+        first = fh.readline().decode("utf-8", errors="replace").strip()
+    if not first:
+        raise SourceError(f"{p}: empty file (no header line)")
+    names = [c.strip() for c in first.split(",")]
+    conv = pacsv.ConvertOptions(null_values=[""], strings_can_be_null=True,
+                                column_types=_text_types(names) if text else {"series": pa.string()})
+    return pacsv.read_csv(p, convert_options=conv)
+
+
+def iter_log_batches(path, columns: Mapping[str, str] | None = None,
+                     batch_rows: int = 1_000_000) -> Iterator[pd.DataFrame]:
+    """Yield the log in chunks of about ``batch_rows`` rows, every column as text.
+
+    Bounded memory for large logs; the text path makes every chunk's types the same.
+    """
+    p = _check_file(path)
+    mapping = {**DEFAULT_COLUMNS, **(columns or {})}
+    if log_format(p) == "parquet":
+        pf = pq.ParquetFile(p)
+        for batch in pf.iter_batches(batch_size=batch_rows):
+            df = table_to_frame(pa.Table.from_batches([batch]))
+            yield df.rename(columns=_rename(list(df.columns), mapping))
+        return
+    with open(p, "rb") as fh:
+        first = fh.readline().decode("utf-8", errors="replace").strip()
+    names = [c.strip() for c in first.split(",")]
+    conv = pacsv.ConvertOptions(null_values=[""], strings_can_be_null=True,
+                                column_types=_text_types(names))
+    reader = pacsv.open_csv(p, read_options=pacsv.ReadOptions(block_size=1 << 24),
+                            convert_options=conv)
+    for batch in reader:
+        df = batch.to_pandas()
+        yield df.rename(columns=_rename(list(df.columns), mapping))
+
+
+def write_table(frame: pd.DataFrame, path) -> None:
+    """Write a result table as CSV (NaN written as an empty field), or Parquet by suffix."""
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    if str(path).endswith(".parquet"):
+        pq.write_table(table, path)
+    else:
+        pacsv.write_csv(table, path)
+
+
+def nan_to_null(values: np.ndarray) -> pa.Array:
+    return pa.array(values, from_pandas=True)

@@ -1,0 +1,102 @@
+"""What the engine checkpoints per series, and how a restart restores it.
+
+A series' checkpoint (``checkpoints.state``, JSON, written in the same transaction as the
+batch that produced it)::
+
+    {"pipeline": [...],        # Pipeline.state_to_json(vector): estimator + detectors + rules
+     "gate": {"last_ts", "ring", "ring_ts", "count"},   # SeriesGate: duplicates, lateness, units
+     "updates": n,             # estimator updates so far (estimate thinning counts from it)
+     "last_status": "ok",      # status of the last update (thinning keeps status changes)
+     "last_obs_ns": t,         # newest observation time, zero-quantity rows included
+     "zero_skipped": z}        # zero-quantity rows kept out of the estimator
+
+``checkpoints.last_ts`` is the newest observation time as ISO text and ``last_pos`` the source
+and row of the last row processed. Floats are written by Python's shortest round-trip repr
+(NaN as null), so a restored vector equals the saved one bit for bit and a resumed run
+continues exactly as an uninterrupted one. Each source's row count comes back from
+``source_offsets.rows_read``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from monitor.errors import ConfigError, StoreError, ValidationError
+from monitor.estimators.rls import floats_from_json, floats_to_json
+from monitor.live.batch import NAT
+from monitor.rows.isotime import format_ts
+from monitor.rows.validate import SeriesGate
+from monitor.store import load_checkpoints
+
+
+def vector_to_json(pipeline, vec: np.ndarray):
+    if hasattr(pipeline, "state_to_json"):
+        return pipeline.state_to_json(vec)
+    return floats_to_json(vec)
+
+
+def vector_from_json(pipeline, obj) -> np.ndarray:
+    if hasattr(pipeline, "state_from_json"):
+        return np.asarray(pipeline.state_from_json(obj), dtype=np.float64)
+    return floats_from_json(obj)
+
+
+def _changed_model(series: str, what: str) -> StoreError:
+    return StoreError(f"checkpoint of series {series!r}: {what}; the store was written with "
+                      f"another model configuration (use a new store or the old configuration)")
+
+
+def restore(mon) -> None:
+    """Set a Monitor's per-series state from the store's checkpoints and offsets."""
+    mon.gate = SeriesGate()
+    mon._index, mon._names = {}, []
+    mon._width = mon.pipeline.new_states(1).shape[1]
+    vectors = []
+    mon._updates, mon._last_status, mon._last_obs, mon._zero = {}, {}, {}, {}
+    for series, cp in sorted(load_checkpoints(mon.store).items()):
+        st = cp.state
+        try:
+            vec = vector_from_json(mon.pipeline, st["pipeline"])
+        except (ConfigError, ValidationError) as exc:
+            raise _changed_model(series, str(exc)) from None
+        if vec.shape != (mon._width,):
+            raise _changed_model(series, f"a state of length {vec.size}, this configuration "
+                                         f"needs {mon._width}")
+        mon._index[series] = len(mon._names)
+        mon._names.append(series)
+        vectors.append(vec)
+        if st.get("gate") is not None:
+            mon.gate.restore(series, st["gate"])
+        mon._updates[series] = int(st.get("updates", 0))
+        if st.get("last_status") is not None:
+            mon._last_status[series] = st["last_status"]
+        mon._last_obs[series] = int(st.get("last_obs_ns", NAT))
+        mon._zero[series] = int(st.get("zero_skipped", 0))
+    mon._states = np.array(vectors, dtype=np.float64).reshape(len(vectors), mon._width)
+    mon._rows_read = {r["source"]: int(r["rows_read"]) for r in
+                      mon.store.rows("SELECT source, rows_read FROM source_offsets")}
+
+
+def checkpoints(mon, touched: dict[str, dict], source: str) -> dict[str, dict]:
+    """The checkpoint row of every series a batch touched.
+
+    ``touched[series]`` holds ``updates``, ``last_status``, ``row`` (last source row), ``ts``
+    (newest processed time, ns), ``vec`` (new state vector or ``None``) and, for zero rows,
+    ``zero`` and ``zero_ts``; ``last_obs`` is set on each for the commit.
+    """
+    names = list(touched)
+    newest = np.array([max(mon._last_obs.get(s, NAT), touched[s]["ts"],
+                           touched[s].get("zero_ts", NAT)) for s in names], dtype=np.int64)
+    text = format_ts(np.where(newest == NAT, 0, newest)) if len(names) else []
+    out = {}
+    for s, last_obs, iso in zip(names, newest.tolist(), text):
+        t = touched[s]
+        vec = t["vec"] if t["vec"] is not None else mon._states[mon._index[s]]
+        gate = mon.gate.state_of(s) if s in mon.gate.index else None
+        t["last_obs"] = last_obs
+        state = {"pipeline": vector_to_json(mon.pipeline, vec), "gate": gate,
+                 "updates": t["updates"], "last_status": t["last_status"],
+                 "last_obs_ns": last_obs, "zero_skipped": mon._zero.get(s, 0) + t.get("zero", 0)}
+        out[s] = {"state": state, "last_ts": iso if last_obs != NAT else None,
+                  "last_pos": {"source": source, "row": t["row"]}}
+    return out

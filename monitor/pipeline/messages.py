@@ -1,0 +1,173 @@
+"""Messages and severities of alert events, made from the compiled pipeline's event records.
+
+A message names the series, gives the estimate before and now with its interval, when the
+change began, and what a 10% price rise does to quantity now, computed exactly as
+``1.1^b - 1`` (not ``0.1 b``: at b = -2 a 10% rise cuts quantity by 17.4%, not 20%). The
+estimates are statistical evidence to inform a decision, not the decision: elasticities from
+observational prices can be biased, and a randomized price test is the sound confirmation.
+
+Severities: ``critical`` for a confidently positive demand elasticity (sign flip), a confident
+bounds breach (interval mode), an elasticity change whose before and after intervals do not
+overlap, and a level shift of 50% or more; ``warning`` for other openings; ``info`` for low
+price variation and for every clear.
+
+>>> effect_of_10pct(-2.0)
+'-17.4%'
+>>> effect_of_10pct(-1.5)
+'-13.3%'
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+
+from monitor.pipeline.rules import ACTIONS, KINDS
+
+
+# event record columns written by monitor.pipeline.kernel
+(EV_ROW, EV_KIND, EV_ACTION, EV_BETA, EV_LO, EV_HI, EV_OLD_B, EV_OLD_LO, EV_OLD_HI,
+ EV_START_N, EV_START_TS, EV_N, EV_TS, EV_SIDE, EV_SIZE, EV_STAT, EV_COUNT, EV_EXTRA) = range(18)
+NEV = 18
+EVENT_COLUMNS = ["row", "sid", "kind", "action", "severity", "beta", "beta_lo", "beta_hi",
+                 "message", "details"]
+
+
+def effect_of_10pct(b: float) -> str:
+    """Quantity change for a 10% price rise at elasticity b, ``1.1^b - 1``, as a percentage."""
+    if not math.isfinite(b):
+        return "unknown"
+    return f"{100.0 * (1.1 ** b - 1.0):+.1f}%"
+
+
+def _fmt_ts(ts: float, n: float) -> str:
+    if ts is None or not math.isfinite(ts):
+        return f"observation {int(n)}"
+    t = pd.Timestamp(int(round(ts / 1000.0)) * 1000, tz="UTC")
+    return t.strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _band(b: float, lo: float, hi: float) -> str:
+    if not math.isfinite(b):
+        return "b = (not yet estimated)"
+    if math.isfinite(lo) and math.isfinite(hi):
+        return f"b = {b:.2f} [{lo:.2f}, {hi:.2f}]"
+    return f"b = {b:.2f}"
+
+
+def _num(v: float):
+    return None if v is None or not math.isfinite(v) else float(v)
+
+
+def _int(v: float):
+    return None if v is None or not math.isfinite(v) else int(v)
+
+
+def severity(kind: str, action: str, r: np.ndarray, interval_mode: bool = True) -> str:
+    """Severity of one event record (see the module docstring)."""
+    if action == "clear" or kind == "low_variation":
+        return "info"
+    if kind == "sign_flip":
+        return "critical"
+    if kind == "out_of_bounds":
+        return "critical" if interval_mode else "warning"
+    if kind == "elasticity_change":
+        apart = r[EV_LO] > r[EV_OLD_HI] or r[EV_HI] < r[EV_OLD_LO]
+        return "critical" if apart else "warning"
+    if kind == "level_shift":
+        return "critical" if abs(math.expm1(r[EV_SIZE])) >= 0.5 else "warning"
+    return "warning"
+
+
+def details(kind: str, action: str, r: np.ndarray) -> dict:
+    """JSON-able details of one event record."""
+    d = {"observation": _int(r[EV_N]), "started_observation": _int(r[EV_START_N]),
+         "started_ts": _fmt_ts(r[EV_START_TS], r[EV_START_N]) if math.isfinite(r[EV_START_TS]) else None,
+         "beta_before": _num(r[EV_OLD_B]), "beta_before_lo": _num(r[EV_OLD_LO]),
+         "beta_before_hi": _num(r[EV_OLD_HI]),
+         "effect_of_10pct_price_rise": _num(1.1 ** r[EV_BETA] - 1.0) if math.isfinite(r[EV_BETA]) else None}
+    if action == "clear":
+        d.update(opened_observation=_int(r[EV_START_N]), open_for_observations=_int(r[EV_SIZE]),
+                 alarms_while_open=_int(r[EV_COUNT]))
+        return d
+    if kind in ("elasticity_change", "level_shift"):
+        d.update(direction="up" if r[EV_SIDE] > 0 else "down", statistic=_num(r[EV_STAT]))
+    if kind == "elasticity_change":
+        d.update(beta_change=_num(r[EV_SIZE]), slope_statistic=_num(r[EV_EXTRA]))
+    elif kind == "level_shift":
+        d.update(level_shift_log=_num(r[EV_SIZE]),
+                 level_shift_pct=_num(100.0 * math.expm1(r[EV_SIZE])) if math.isfinite(r[EV_SIZE]) else None)
+    elif kind in ("out_of_bounds", "sign_flip"):
+        d.update(side="below" if r[EV_SIDE] < 0 else "above", low=_num(r[EV_SIZE]),
+                 high=_num(r[EV_EXTRA]))
+    elif kind == "low_variation":
+        d.update(log_price_sd=_num(r[EV_SIZE]), min_price_sd=_num(r[EV_EXTRA]))
+    return d
+
+
+def message(kind: str, action: str, series: str, r: np.ndarray) -> str:
+    """The text of one event record, for a person who has to act on it."""
+    now = _band(r[EV_BETA], r[EV_LO], r[EV_HI])
+    before = _band(r[EV_OLD_B], r[EV_OLD_LO], r[EV_OLD_HI])
+    at = _fmt_ts(r[EV_TS], r[EV_N])
+    since = _fmt_ts(r[EV_START_TS], r[EV_START_N])
+    effect = (f"a 10% price rise now changes quantity by {effect_of_10pct(r[EV_BETA])}"
+              if math.isfinite(r[EV_BETA]) else "")
+    if action == "clear":
+        return (f"{series}: {kind.replace('_', ' ')} resolved at {at} after "
+                f"{_int(r[EV_SIZE])} observations; now {now}"
+                + (f", {effect}." if effect else "."))
+    if kind == "elasticity_change":
+        was = effect_of_10pct(r[EV_OLD_B])
+        return (f"{series}: the elasticity changed from {before} to {now} (fast estimate), "
+                f"detected at {at}, change began about {since}. {effect[0].upper() + effect[1:]} "
+                f"(before: {was}). Look for a competitor, assortment, channel or tariff change; "
+                "confirm with a randomized price test before changing prices.")
+    if kind == "level_shift":
+        pct = 100.0 * math.expm1(r[EV_SIZE]) if math.isfinite(r[EV_SIZE]) else math.nan
+        way = "above" if pct > 0 else "below"
+        return (f"{series}: demand is about {abs(pct):.0f}% {way} the model at unchanged prices "
+                f"since about {since} (detected at {at}); the elasticity is not what moved: "
+                f"{now} (before: {before}), {effect}. Check stock-outs, promotions, unit or "
+                "feed changes and seasonality that the controls miss.")
+    if kind == "out_of_bounds":
+        side = "below" if r[EV_SIDE] < 0 else "above"
+        rng = f"[{r[EV_SIZE]:g}, {r[EV_EXTRA]:g}]"
+        return (f"{series}: the elasticity {now} is {side} the allowed range {rng} since "
+                f"{since} (confirmed at {at}; last inside: {before}); {effect}. Review the "
+                "data and the price plan; the estimate is evidence, not a decision.")
+    if kind == "sign_flip":
+        return (f"{series}: the elasticity is confidently positive, {now}, since {since} "
+                f"(last non-positive: {before}): higher prices with higher sales usually mean "
+                "bad data (units, a broken price feed, a mislabelled series) or a broken price "
+                "test; check the data before using this estimate.")
+    if kind == "low_variation":
+        return (f"{series}: prices have barely varied since {since} (sd of log price "
+                f"{100.0 * r[EV_SIZE]:.1f}% < {100.0 * r[EV_EXTRA]:.1f}%); the elasticity "
+                f"{now} cannot be updated reliably and elasticity alerts are paused until "
+                "prices vary again. A planned price test would restore the estimate.")
+    return f"{series}: {kind} {action} at {at}"
+
+
+def events_frame(records: np.ndarray, sid: np.ndarray, names=None,
+                 interval_mode: bool = True) -> pd.DataFrame:
+    """The events DataFrame (columns :data:`EVENT_COLUMNS`) from ``(m, NEV)`` records."""
+    rows = []
+    for r in records:
+        kind = KINDS[int(r[EV_KIND])]
+        action = ACTIONS[int(r[EV_ACTION])]
+        row = int(r[EV_ROW])
+        s = int(sid[row])
+        series = str(names[s]) if names is not None else f"series {s}"
+        rows.append({"row": row, "sid": s, "kind": kind, "action": action,
+                     "severity": severity(kind, action, r, interval_mode),
+                     "beta": float(r[EV_BETA]), "beta_lo": float(r[EV_LO]),
+                     "beta_hi": float(r[EV_HI]), "message": message(kind, action, series, r),
+                     "details": details(kind, action, r)})
+    if not rows:
+        return pd.DataFrame({c: pd.Series(dtype=t) for c, t in zip(
+            EVENT_COLUMNS, ["int64", "int64", "object", "object", "object", "float64",
+                            "float64", "float64", "object", "object"])})
+    return pd.DataFrame(rows, columns=EVENT_COLUMNS)

@@ -1,0 +1,274 @@
+"""One configuration of the core: estimator -> detectors -> rules, over many series at once.
+
+The live service and the replay both call :meth:`Pipeline.run` with the rows of a batch, so they
+produce the same estimates and alerts on the same rows; the whole step is compiled
+(:mod:`monitor.pipeline.kernel`). Calling ``run`` on a batch split in two, with the states
+carried over, gives exactly the result of one call (tests/test_pipeline.py).
+
+Signals and what watches them
+-----------------------------
+- the standardized one-step innovation ``z`` -> the *level* chart (default two-sided CUSUM,
+  k = 0.5) -> ``level_shift``;
+- the fast-minus-reference slope statistic ``d`` (:mod:`monitor.detectors.slope`) -> the
+  *slope* chart (default CUSUM, k = 1) -> ``elasticity_change``;
+- ``(b, lo, hi)`` -> bounds (``out_of_bounds``) and a confident positive elasticity
+  (``sign_flip``); the estimator status -> ``low_variation`` (informational).
+
+Every chart threshold not given explicitly is designed by simulation for the in-control ARL
+``arl0`` of :class:`~monitor.pipeline.settings.DetectorSettings` and the estimator's forgetting
+(:mod:`monitor.detectors.design`).
+
+State row of one series (float64; offsets in :meth:`Pipeline.layout`)
+---------------------------------------------------------------------
+``estimator`` (:func:`monitor.estimators.kernel.state_size`), ``slope`` (20),
+``level_chart`` (10), ``level_episode`` (17), ``slope_chart`` (10), ``slope_episode`` (17),
+``bounds`` (6), ``bounds_run`` (8), ``sign`` (6), ``sign_run`` (8), ``low_variation`` (6),
+``low_variation_run`` (8), ``rules`` (5 x 8, kinds in :data:`monitor.pipeline.rules.KINDS` order).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from monitor.detectors.base import floats_from_json, floats_to_json
+from monitor.detectors.bounds import BOUNDS_SIZE, MODES
+from monitor.detectors.charts import CHART_CODES, CHART_SIZE, pack_chart
+from monitor.detectors.design import DesignedThreshold, pipeline_threshold
+from monitor.detectors.slope import SLOPE_SIZE
+from monitor.errors import ConfigError
+from monitor.estimators import kernel as K
+from monitor.estimators.batch import initial_states
+from monitor.pipeline.kernel import L_SIZE, NSIG, pipeline_run
+from monitor.pipeline.messages import NEV, events_frame
+from monitor.pipeline.rules import EP_SIZE, KINDS, RULE_SIZE, RUN_SIZE, rule_params
+from monitor.pipeline.settings import (BoundsSettings, DetectorSettings, RuleSettings,
+                                       settings_from_config)
+
+
+BLOCKS = (("slope", SLOPE_SIZE), ("level_chart", CHART_SIZE), ("level_episode", EP_SIZE),
+          ("slope_chart", CHART_SIZE), ("slope_episode", EP_SIZE), ("bounds", BOUNDS_SIZE),
+          ("bounds_run", RUN_SIZE), ("sign", BOUNDS_SIZE), ("sign_run", RUN_SIZE),
+          ("low_variation", BOUNDS_SIZE), ("low_variation_run", RUN_SIZE),
+          ("rules", 5 * RULE_SIZE))
+SIGNAL_COLUMNS = ["d", "b_fast", "b_fast_lo", "b_fast_hi", "level_stat", "slope_stat",
+                  "level_flags", "slope_flags"]
+
+
+@dataclass
+class PipelineResult:
+    """Outputs of :meth:`Pipeline.run` for the rows of one batch.
+
+    ``out`` (n, NOUT): estimator outputs (columns of :mod:`monitor.estimators.kernel`; its
+    status column is the estimator's own); ``status`` (n,) int8: the final status after the
+    detectors (3 out_of_bounds, 4 changed); ``states``: the updated state rows; ``records``:
+    raw event records; ``signals`` (n, 8) when ``keep_signals`` (columns
+    :data:`SIGNAL_COLUMNS`).
+    """
+
+    out: np.ndarray
+    status: np.ndarray
+    states: np.ndarray
+    records: np.ndarray
+    sid: np.ndarray
+    ts: np.ndarray | None = None
+    names: list | None = None
+    signals: np.ndarray | None = None
+    interval_mode: bool = True
+    _events: pd.DataFrame | None = field(default=None, repr=False)
+
+    @property
+    def events(self) -> pd.DataFrame:
+        """Alert events: ``row, sid, kind, action, severity, beta, beta_lo, beta_hi, message,
+        details`` (one row per open or clear decision, in row order)."""
+        if self._events is None:
+            self._events = events_frame(self.records, self.sid, self.names, self.interval_mode)
+        return self._events
+
+    def signals_frame(self) -> pd.DataFrame:
+        if self.signals is None:
+            raise ValueError("run the pipeline with keep_signals=True to get the signals")
+        return pd.DataFrame(self.signals, columns=SIGNAL_COLUMNS)
+
+
+class Pipeline:
+    """The estimator prototype plus detectors and alert rules, compiled together.
+
+    Parameters
+    ----------
+    estimator : ElasticityRLS
+        Supplies the estimator's hyperparameters.
+    detectors, bounds, rules : settings objects of :mod:`monitor.pipeline.settings`
+    """
+
+    def __init__(self, estimator, detectors: DetectorSettings | None = None,
+                 bounds: BoundsSettings | None = None, rules: RuleSettings | None = None):
+        self.estimator = estimator
+        self.detectors = detectors or DetectorSettings()
+        self.bounds = bounds or BoundsSettings()
+        self.rules = rules or RuleSettings()
+        self.designs: dict[str, DesignedThreshold | None] = {}
+        self._charts = {s: self._design(s) for s in ("level", "slope")}
+        self._layout = self._make_layout()
+        low, high = self.bounds.limits()
+        b = self.bounds
+        self._bparams = np.array([0.0, low, high, MODES[b.mode], b.persistence, b.clear_after])
+        r = self.rules
+        self._gparams = np.array([0.0, -math.inf, 0.0, 0.0, r.sign_flip_persistence,
+                                  r.sign_flip_clear_after])
+        self._vparams = np.array([r.low_variation_persistence, r.low_variation_clear_after,
+                                  estimator.min_price_sd])
+        on = {"out_of_bounds": r.out_of_bounds, "elasticity_change": r.elasticity_change
+              and self.detectors.slope_chart != "none", "level_shift": r.level_shift
+              and self.detectors.level_chart != "none", "sign_flip": r.sign_flip,
+              "low_variation": r.low_variation}
+        self._rparams = np.vstack([rule_params(kd, r.clear_after, r.cooldown, on[kd])
+                                   for kd in KINDS])
+
+    @classmethod
+    def from_config(cls, config, estimator) -> "Pipeline":
+        return cls(estimator, *settings_from_config(config))
+
+    # ------------------------------------------------------------------ set-up
+    def _design(self, signal: str) -> tuple[int, np.ndarray]:
+        d = self.detectors
+        chart, given, kw = d.chart(signal)
+        burn = d.level_burn_in if signal == "level" else d.slope_burn_in
+        if chart == "none":
+            self.designs[signal] = None
+            return CHART_CODES["none"], pack_chart("none", 0.0, 0)
+        if given is None:
+            try:
+                design = pipeline_threshold(
+                    signal, chart, d.arl0, forgetting=self.estimator.forgetting,
+                    fast_forgetting=d.fast_forgetting, reference_forgetting=d.reference_forgetting,
+                    n_paths=d.design_paths, seed=d.design_seed, **kw)
+            except ValueError as exc:
+                raise ConfigError(f"[detectors] cannot design the {signal} {chart} threshold: "
+                                  f"{exc}") from None
+        else:
+            design = DesignedThreshold(float(given), math.nan, math.nan, math.nan, 0, "given")
+        self.designs[signal] = design
+        return CHART_CODES[chart], pack_chart(chart, design.threshold, burn, **kw)
+
+    def _make_layout(self) -> np.ndarray:
+        offs = [K.state_size(self.estimator._k)]
+        for _, size in BLOCKS:
+            offs.append(offs[-1] + size)
+        lay = np.array(offs, dtype=np.int64)
+        assert lay.size == L_SIZE + 1
+        return lay
+
+    def layout(self) -> dict[str, tuple[int, int]]:
+        """``{block: (start, stop)}`` offsets of one series' state row."""
+        names = ["estimator"] + [n for n, _ in BLOCKS]
+        starts = np.r_[0, self._layout[:-1]]
+        return {n: (int(a), int(b)) for n, a, b in zip(names, starts, self._layout)}
+
+    @property
+    def state_size(self) -> int:
+        return int(self._layout[-1])
+
+    def settings(self) -> dict:
+        """The settings used (for summary.json): each chart with its threshold and design."""
+        out = {"detectors": asdict(self.detectors), "bounds": asdict(self.bounds),
+               "rules": asdict(self.rules), "thresholds": {}}
+        for signal, design in self.designs.items():
+            chart, _, kw = self.detectors.chart(signal)
+            out["thresholds"][signal] = None if design is None else {
+                "chart": chart, **kw, "threshold": design.threshold, "arl0": design.arl0
+                if math.isfinite(design.arl0) else None, "method": design.method,
+                "arl_se": design.arl_se if math.isfinite(design.arl_se) else None,
+                "n_paths": design.n_paths}
+        return out
+
+    # ------------------------------------------------------------------ state
+    def new_states(self, n_series: int) -> np.ndarray:
+        """``(n_series, state_size)`` fresh rows: the estimator's prior, zeros elsewhere."""
+        st = np.zeros((int(n_series), self.state_size))
+        st[:, :self._layout[0]] = initial_states(self.estimator, int(n_series))
+        return st
+
+    def state_to_json(self, vector) -> list:
+        """One series' state row as JSON-able floats (NaN as None; exact round trip)."""
+        return floats_to_json(vector)
+
+    def state_from_json(self, obj) -> np.ndarray:
+        vec = floats_from_json(obj)
+        if vec.shape != (self.state_size,):
+            raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "
+                              f"{self.state_size} (estimator controls or layout changed)")
+        return vec
+
+    # ------------------------------------------------------------------ running
+    def run(self, sid, X, y, n_series: int, states: np.ndarray | None = None, ts=None, *,
+            names=None, low=None, high=None, keep_signals: bool = False) -> PipelineResult:
+        """Run rows ``(sid[j], X[j], y[j])`` in order (each series' rows in time order).
+
+        ``ts``: int64 ns UTC per row (messages and "started at"); ``names``: series names by
+        index (messages); ``low`` / ``high``: per-series bounds overriding ``[bounds]`` (NaN:
+        no bound on that side); ``states`` is updated in place.
+        """
+        X = np.ascontiguousarray(X, dtype=np.float64)
+        y = np.ascontiguousarray(y, dtype=np.float64)
+        sid = np.ascontiguousarray(sid, dtype=np.int64)
+        n = X.shape[0]
+        if X.ndim != 2 or X.shape[1] != self.estimator._k:
+            raise ValueError(f"X has shape {X.shape}; expected (n, {self.estimator._k})")
+        if y.shape != (n,) or sid.shape != (n,):
+            raise ValueError("sid, X and y must have the same number of rows")
+        if n and (sid.min() < 0 or sid.max() >= n_series):
+            raise ValueError(f"sid must be in 0..{n_series - 1}")
+        if states is None:
+            states = self.new_states(n_series)
+        elif states.shape != (n_series, self.state_size) and not (
+                states.shape[0] >= n_series and states.shape[1] == self.state_size):
+            raise ValueError(f"states has shape {states.shape}; expected ({n_series}, "
+                             f"{self.state_size})")
+        tsf = np.full(n, np.nan) if ts is None else np.asarray(ts, dtype=np.int64).astype(np.float64)
+        bparams, bon = self._bounds_arrays(states.shape[0], low, high)
+        out = np.empty((n, K.NOUT))
+        status = np.empty(n, dtype=np.int8)
+        sig = np.empty((n if keep_signals else 1, NSIG))
+        records, start, cap = [], 0, max(256, n // 64)
+        est = self.estimator
+        args = (est.forgetting, est.excitation_guard, est.guard_forgetting, est.min_price_sd,
+                est.min_n_eff, est._tq)
+        d = self.detectors
+        (lkind, lp), (skind, sp) = self._charts["level"], self._charts["slope"]
+        while True:
+            ev = np.empty((cap, NEV))
+            stop, ne = pipeline_run(states, sid, X, y, tsf, start, self._layout, args,
+                                    d.fast_forgetting, d.reference_forgetting, lkind, lp, skind,
+                                    sp, bparams, bon, self._gparams, self._vparams,
+                                    self._rparams, out, ev, status, sig, keep_signals,
+                                    np.empty(X.shape[1]))
+            records.append(ev[:ne])
+            if stop >= n:
+                break
+            start, cap = stop, cap * 2
+        return PipelineResult(out=out, status=status, states=states,
+                              records=np.concatenate(records) if records else np.empty((0, NEV)),
+                              sid=sid, ts=None if ts is None else np.asarray(ts),
+                              names=None if names is None else list(names),
+                              signals=sig if keep_signals else None,
+                              interval_mode=self.bounds.mode == "interval")
+
+    def _bounds_arrays(self, n_series: int, low, high) -> tuple[np.ndarray, np.ndarray]:
+        bp = np.tile(self._bparams, (n_series, 1))
+        if low is not None:
+            v = np.asarray(low, dtype=np.float64)
+            bp[:, 1] = np.where(np.isnan(v), -np.inf, v)
+        if high is not None:
+            v = np.asarray(high, dtype=np.float64)
+            bp[:, 2] = np.where(np.isnan(v), np.inf, v)
+        bad = ~(bp[:, 1] < bp[:, 2])
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise ConfigError(f"bounds of series {i}: low = {bp[i, 1]} must be below high = "
+                              f"{bp[i, 2]}")
+        on = (np.isfinite(bp[:, 1]) | np.isfinite(bp[:, 2])) & bool(self.rules.out_of_bounds)
+        return bp, on

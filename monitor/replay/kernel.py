@@ -1,0 +1,307 @@
+"""The replay's batch kernel: one chunk of raw rows through validation and the pipeline.
+
+:func:`run_chunk` is what every replay engine runs, on one machine chunk by chunk
+(:mod:`monitor.replay.driver`) or on the workers of a Dask cluster, one partition of whole
+series each (:mod:`monitor.replay.dask`). State carried between calls (:class:`CarriedState`)
+is keyed by the gate's series ids: the validation gate (last accepted times, recent prices),
+the pipeline states, and the sampler's per-series counters. :func:`partial_of` turns a chunk's
+result into the output pieces (:class:`Partial`) that the driver writes and adds up.
+
+Sampled estimates (``sample_every = n > 1``): a series' observation is written when its
+position in the series is a multiple of n (the first one included), when its status differs
+from the series' previous one, or when an alert event happened on it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+
+from monitor.estimators import kernel as K
+from monitor.estimators.transform import design_matrix
+from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
+                                 estimates_frame)
+from monitor.rows.isotime import iso_utc
+from monitor.rows.validate import SeriesGate, Validated, renumber, validate_frame
+from monitor.types import STATUS_LABELS
+
+
+#: columns of alerts.csv: those of DESIGN.md, then the severity
+ALERT_OUT_COLUMNS = ALERT_COLUMNS + ["severity"]
+#: per-series final values kept by the driver (the last processed observation)
+FINAL_FIELDS = ("beta", "beta_se", "beta_lo", "beta_hi", "n_eff")
+_FINAL_SLOTS = (K.O_BETA, K.O_SE, K.O_LO, K.O_HI, K.O_NEFF)
+
+
+@dataclass
+class Setup:
+    """What does not change during a run: estimator, pipeline, validation settings, clock."""
+
+    est: object
+    pipe: object
+    vset: object
+    now_ns: int | None
+    sample_every: int = 1
+    report_series: frozenset = frozenset()
+    keep_obs: bool = False        # keep (sid, ts) of every processed row (detection metrics)
+
+
+@dataclass
+class CarriedState:
+    """Per-series state carried from chunk to chunk, indexed by the gate's series ids."""
+
+    gate: SeriesGate = field(default_factory=SeriesGate)
+    states: object = None
+    seen: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    last_status: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int8))
+
+    def grow(self, pipe, n: int) -> None:
+        """Make room for ``n`` series (fresh pipeline states for the new ones)."""
+        have = self.seen.size
+        if n <= have:
+            return
+        self.seen = np.r_[self.seen, np.zeros(n - have, np.int64)]
+        self.last_status = np.r_[self.last_status, np.full(n - have, -1, np.int8)]
+        fresh = pipe.new_states(n - have)
+        self.states = fresh if self.states is None else _concat_states(self.states, fresh)
+
+    def names(self) -> list[str]:
+        """Series ids in gate-id order."""
+        out = [""] * len(self.gate.index)
+        for name, i in self.gate.index.items():
+            out[i] = str(name)
+        return out
+
+
+def _concat_states(a, b):
+    if isinstance(a, np.ndarray):
+        return np.concatenate([a, b], axis=0)
+    if hasattr(a, "concat"):
+        return a.concat(b)
+    raise TypeError(f"cannot grow pipeline states of type {type(a).__name__}")
+
+
+@dataclass
+class ChunkResult:
+    """A validated chunk (``good`` in processing order), its pipeline output and its gate ids."""
+
+    validated: Validated
+    sid: np.ndarray
+    out: np.ndarray
+    status: np.ndarray
+    events: pd.DataFrame
+    n_rows: int
+    alerts: pd.DataFrame       # alerts.csv rows of the alerts opened in this chunk
+
+
+def validate_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offset: int = 0,
+                   rows: np.ndarray | None = None) -> tuple[Validated, np.ndarray]:
+    """Validate ``frame`` (arrival order) with the carried gate; returns it and the gate ids of
+    its good rows (which are in series, then time order).
+
+    ``rows`` (optional) gives each frame row's data row number in the source, for frames whose
+    rows are not contiguous (a Dask partition); else rows are ``row_offset + 1 ...``.
+    """
+    est = setup.est
+    v = validate_frame(frame, controls=est.controls, log_controls=est.log_controls,
+                       settings=setup.vset, gate=carried.gate, now_ns=setup.now_ns,
+                       row_offset=0 if rows is not None else row_offset)
+    if rows is not None:
+        v = renumber(v, np.asarray(rows, dtype=np.int64))
+    if len(v.good):
+        sid = carried.gate.ids(v.good["series"])      # arrow-backed text: no Python strings
+    else:
+        sid = np.zeros(0, np.int64)
+    return v, sid
+
+
+def design_rows(good: pd.DataFrame, est) -> tuple[np.ndarray, np.ndarray]:
+    """Design matrix ``[1, log p, controls]`` and ``log q`` of validated rows."""
+    specs = est._specs
+    X = design_matrix(good["price"].to_numpy(), {c.name: good[c.name].to_numpy() for c in specs},
+                      specs)
+    return X, np.log(good["quantity"].to_numpy(dtype=np.float64))
+
+
+def run_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offset: int = 0,
+              rows: np.ndarray | None = None) -> ChunkResult:
+    """Validate ``frame`` and run the pipeline over its good rows, carrying state (see
+    :func:`validate_chunk` for ``rows``)."""
+    v, sid = validate_chunk(frame, setup, carried, row_offset, rows)
+    good = v.good
+    n_series = len(carried.gate.index)
+    carried.grow(setup.pipe, n_series)
+    events = None
+    if len(good):
+        X, y = design_rows(good, setup.est)
+        names = carried.names()
+        res = setup.pipe.run(sid, X, y, n_series=n_series, states=carried.states,
+                             ts=good["ts"].to_numpy(dtype=np.int64), names=names)
+        carried.states = res.states
+        out, status, events = res.out, np.asarray(res.status, dtype=np.int8), res.events
+        alerts = alerts_frame(res, good, names)
+    else:
+        out, status = np.empty((0, K.NOUT)), np.zeros(0, np.int8)
+        events, alerts = None, None
+    if events is None:
+        events = pd.DataFrame(columns=["row", "sid", "kind", "action", "severity", "beta",
+                                       "beta_lo", "beta_hi", "message", "details"])
+    if alerts is None or not len(alerts):
+        alerts = pd.DataFrame({c: pd.Series(dtype=object) for c in ALERT_OUT_COLUMNS})
+    return ChunkResult(v, sid, out, status, events, len(frame), alerts)
+
+
+@dataclass
+class Partial:
+    """Output pieces of one chunk or partition, ready for the driver to write and add up."""
+
+    estimates: pa.Table           # estimates.csv rows (sampled)
+    alerts: pd.DataFrame
+    opened: pd.DataFrame          # series, ts (int64 ns), rule: alerts opened (detection)
+    rejects: pd.DataFrame
+    final: pd.DataFrame           # index series: ts (ns), FINAL_FIELDS, status, n
+    rows: int
+    accepted: int
+    rejected: int
+    zero_skipped: int
+    report: pd.DataFrame          # full estimates of the report's series
+    obs_sid: np.ndarray | None = None
+    obs_ts: np.ndarray | None = None
+    scores: object = None         # detection Scores of whole series (Dask partitions)
+
+
+_LABELS = pa.array(STATUS_LABELS, pa.string())
+_EST_FLOATS = (("beta", K.O_BETA), ("beta_se", K.O_SE), ("beta_lo", K.O_LO), ("beta_hi", K.O_HI),
+               ("n_eff", K.O_NEFF))
+_EST_TAIL = (("intercept", K.O_INTERCEPT), ("resid_sd", K.O_RESID_SD), ("innovation", K.O_E),
+             ("z", K.O_Z))
+
+
+def estimates_table(good: pd.DataFrame, out: np.ndarray, status: np.ndarray,
+                    idx: np.ndarray | None = None) -> pa.Table:
+    """estimates.csv rows (:data:`ESTIMATE_COLUMNS`) as an Arrow table, built without pandas;
+    the same values and text as :func:`monitor.rows.frames.estimates_frame` (NaN as empty)."""
+    sel = slice(None) if idx is None else idx
+    series = pa.array(good["series"].to_numpy(dtype=object) if good["series"].dtype == object
+                      else good["series"].array, pa.string())
+    if idx is not None:
+        series = series.take(pa.array(idx))
+    cols = {"series": series, "ts": iso_utc(good["ts"].to_numpy(dtype=np.int64)[sel])}
+    o = out[sel]
+    for name, j in _EST_FLOATS:
+        cols[name] = pa.array(o[:, j], pa.float64(), from_pandas=True)
+    cols["status"] = _LABELS.take(pa.array(np.asarray(status[sel], dtype=np.int64)))
+    for name, j in _EST_TAIL:
+        cols[name] = pa.array(o[:, j], pa.float64(), from_pandas=True)
+    return pa.table(cols)
+
+
+def sample_mask(sid: np.ndarray, status: np.ndarray, event_rows: np.ndarray, every: int,
+                carried: CarriedState) -> np.ndarray:
+    """Rows to write under ``sample_every = every``; updates the carried counters."""
+    n = sid.size
+    if n == 0:
+        return np.zeros(0, bool)
+    first = np.r_[True, sid[1:] != sid[:-1]]
+    starts = np.flatnonzero(first)
+    lengths = np.diff(np.r_[starts, n])
+    pos = np.arange(n) - np.repeat(starts, lengths) + np.repeat(carried.seen[sid[starts]], lengths)
+    prev = np.r_[np.int8(-1), status[:-1]]
+    prev[starts] = carried.last_status[sid[starts]]
+    last = np.r_[starts[1:] - 1, n - 1]
+    carried.seen[sid[starts]] += lengths
+    carried.last_status[sid[last]] = status[last]
+    if every <= 1:
+        return np.ones(n, bool)
+    keep = (pos % every == 0) | (status != prev)
+    keep[event_rows] = True
+    return keep
+
+
+def partial_of(res: ChunkResult, setup: Setup, carried: CarriedState) -> Partial:
+    """The output pieces of a chunk (estimates sampled with the carried counters)."""
+    v, good = res.validated, res.validated.good
+    ev_rows = res.events["row"].to_numpy(dtype=np.int64) if len(res.events) else np.zeros(0, np.int64)
+    keep = sample_mask(res.sid, res.status, ev_rows, setup.sample_every, carried)
+    estimates = estimates_table(good, res.out, res.status, None if keep.all() else np.flatnonzero(keep))
+    alerts = res.alerts
+    opened = pd.DataFrame({"series": alerts["series"].to_numpy(dtype=object),
+                           "ts": _ts_of_events(good, res.events),
+                           "rule": alerts["rule"].to_numpy(dtype=object)})
+    rejects = v.rejects[REJECT_OUT_COLUMNS] if len(v.rejects) else \
+        pd.DataFrame({c: pd.Series(dtype=object) for c in REJECT_OUT_COLUMNS})
+    final = _final(good, res)
+    report = pd.DataFrame(columns=ESTIMATE_COLUMNS)
+    if setup.report_series and len(good):
+        m = good["series"].isin(setup.report_series).to_numpy()
+        if m.any():
+            report = estimates_frame(good[m], res.out[m], res.status[m]).assign(
+                ts_ns=good["ts"].to_numpy(dtype=np.int64)[m])
+    p = Partial(estimates, alerts, opened, rejects, final, res.n_rows, len(good), len(v.rejects),
+                len(v.zero_skipped), report)
+    if setup.keep_obs:
+        p.obs_sid = res.sid.astype(np.int32 if len(carried.gate.index) < 2**31 else np.int64)
+        p.obs_ts = good["ts"].to_numpy(dtype=np.int64)
+    return p
+
+
+def _ts_of_events(good, events) -> np.ndarray:
+    if events is None or not len(events):
+        return np.zeros(0, np.int64)
+    ev = events[events["action"] == "open"] if "action" in events.columns else events
+    return good["ts"].to_numpy(dtype=np.int64)[ev["row"].to_numpy(dtype=np.int64)]
+
+
+def _final(good: pd.DataFrame, res: ChunkResult) -> pd.DataFrame:
+    """Last processed observation of each series in the chunk, and its row count."""
+    sid = res.sid
+    if sid.size == 0:
+        return pd.DataFrame(columns=["ts", *FINAL_FIELDS, "status", "n"],
+                            index=pd.Index([], name="series", dtype=object))
+    last = np.flatnonzero(np.r_[sid[1:] != sid[:-1], True])
+    counts = np.diff(np.r_[-1, last])
+    f = pd.DataFrame({name: res.out[last, slot] for name, slot in zip(FINAL_FIELDS, _FINAL_SLOTS)},
+                     index=pd.Index(good["series"].iloc[last].to_numpy(dtype=object), name="series"))
+    f.insert(0, "ts", good["ts"].to_numpy(dtype=np.int64)[last])
+    f["status"] = np.array(STATUS_LABELS, dtype=object)[res.status[last]]
+    f["n"] = counts.astype(np.int64)
+    return f
+
+
+def combine(parts: list[Partial]) -> Partial:
+    """One :class:`Partial` from consecutive ones (chunks of the same series set, in order)."""
+    def cat(name):
+        frames = [getattr(p, name) for p in parts if len(getattr(p, name))]
+        if not frames:
+            return getattr(parts[0], name)
+        if isinstance(frames[0], pa.Table):
+            return pa.concat_tables(frames)
+        return pd.concat(frames, ignore_index=True)
+
+    final = parts[0].final
+    for p in parts[1:]:
+        final = merge_final(final, p.final)
+    out = Partial(cat("estimates"), cat("alerts"), cat("opened"), cat("rejects"),
+                  final,
+                  sum(p.rows for p in parts), sum(p.accepted for p in parts),
+                  sum(p.rejected for p in parts), sum(p.zero_skipped for p in parts), cat("report"))
+    if parts[0].obs_sid is not None:
+        out.obs_sid = np.concatenate([p.obs_sid for p in parts])
+        out.obs_ts = np.concatenate([p.obs_ts for p in parts])
+    return out
+
+
+def merge_final(old: pd.DataFrame | None, new: pd.DataFrame) -> pd.DataFrame:
+    """Per-series finals: the later chunk's last observation wins, row counts add up."""
+    if old is None or not len(old):
+        return new
+    if not len(new):
+        return old
+    common = old.index.intersection(new.index)
+    new = new.copy()
+    if len(common):
+        new.loc[common, "n"] += old.loc[common, "n"].to_numpy()
+    return pd.concat([old.drop(common), new])

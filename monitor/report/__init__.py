@@ -1,0 +1,1 @@
+"""Static HTML reports (``html``) and their SVG charts (``svg``)."""

@@ -1,0 +1,54 @@
+"""Result frames of a pipeline run over validated rows: the estimates and alerts tables that
+replay writes (``estimates.csv``, ``alerts.csv``) and the live engine stores, with their column
+lists; times are ISO 8601 UTC text (:func:`monitor.rows.isotime.format_ts`)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from monitor.estimators import kernel as K
+from monitor.pipeline.messages import events_frame
+from monitor.rows.isotime import format_ts
+from monitor.types import STATUS_LABELS
+
+
+ESTIMATE_COLUMNS = ["series", "ts", "beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "status",
+                    "intercept", "resid_sd", "innovation", "z"]
+
+
+ALERT_COLUMNS = ["series", "ts", "rule", "beta", "beta_lo", "beta_hi", "message"]
+
+
+REJECT_OUT_COLUMNS = ["row", "series", "ts", "field", "value", "reason"]
+
+
+def estimates_frame(good: pd.DataFrame, out: np.ndarray, status: np.ndarray) -> pd.DataFrame:
+    labels = np.array(STATUS_LABELS, dtype=object)[status]
+    return pd.DataFrame({
+        "series": good["series"].to_numpy(), "ts": format_ts(good["ts"].to_numpy()),
+        "beta": out[:, K.O_BETA], "beta_se": out[:, K.O_SE], "beta_lo": out[:, K.O_LO],
+        "beta_hi": out[:, K.O_HI], "n_eff": out[:, K.O_NEFF], "status": labels,
+        "intercept": out[:, K.O_INTERCEPT], "resid_sd": out[:, K.O_RESID_SD],
+        "innovation": out[:, K.O_E], "z": out[:, K.O_Z]})
+
+
+def alerts_frame(result, good: pd.DataFrame, names: list[str]) -> pd.DataFrame:
+    """The opened alerts of a :class:`~monitor.pipeline.run.PipelineResult` as replay
+    ``alerts.csv`` rows: ``series, ts, rule, beta, beta_lo, beta_hi, message`` plus ``severity``
+    (rule = kind); ``good`` are the rows the pipeline ran over, ``names`` the series names."""
+    if result.names is None and names is not None:
+        ev = events_frame(result.records, result.sid, list(names), result.interval_mode)
+    else:
+        ev = result.events
+    ev = ev[ev["action"] == "open"]
+    cols = ["series", "ts", "rule", "beta", "beta_lo", "beta_hi", "message", "severity"]
+    if not len(ev):
+        return pd.DataFrame(columns=cols)
+    rows = ev["row"].to_numpy()
+    return pd.DataFrame({
+        "series": good["series"].to_numpy()[rows],
+        "ts": format_ts(good["ts"].to_numpy()[rows]), "rule": ev["kind"].to_numpy(),
+        "beta": ev["beta"].to_numpy(), "beta_lo": ev["beta_lo"].to_numpy(),
+        "beta_hi": ev["beta_hi"].to_numpy(), "message": ev["message"].to_numpy(),
+        "severity": ev["severity"].to_numpy()}, columns=cols)

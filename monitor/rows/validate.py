@@ -1,0 +1,404 @@
+"""Row validation with quarantine: every rejected row keeps its row number and a reason.
+
+Used by every input path (replay, ``elmon ingest``, the service's sources, ``Monitor.observe``).
+Checks, in order, each giving one reason per row (the first that fails):
+
+- ``series``: empty field;
+- ``ts``: empty, unparsable (ISO 8601 with offset or Z, naive = UTC, or epoch seconds), or in
+  the future beyond ``max_future_s`` (only when a reference time ``now`` is given);
+- ``price``, ``quantity`` and each named control: empty, not a number, NaN, infinity;
+  price <= 0; quantity < 0; quantity == 0 (zero policy: ``reject`` quarantines it, ``skip``
+  counts it and keeps it out of the estimator); a logged control <= 0;
+- per series, in time order, against state carried across batches (:class:`SeriesGate`):
+  a duplicate (same series and timestamp as the latest or one of the last 15 accepted rows;
+  ``keep_first`` keeps the first and quarantines later copies); a row older than the series' last accepted time by more than ``allowed_lateness_s``;
+  a suspected unit error: a price ``unit_ratio`` (50) times or more away from the median of the
+  series' last accepted prices (for example cents logged against dollars).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from numba import njit
+
+from monitor.errors import ConfigError, SourceError
+
+
+REQUIRED = ("series", "ts", "price", "quantity")
+WINDOW = 15          # recent accepted prices kept per series for the unit check
+MIN_HISTORY = 2      # accepted prices needed before the unit check uses the series' history
+MIN_BATCH = 5        # time-ordered batches: rows of a new series that give a batch median
+
+
+@dataclass(frozen=True)
+class ValidationSettings:
+    """Validation rules; see the module docstring."""
+
+    zero_policy: str = "reject"            # reject | skip
+    duplicate_policy: str = "keep_first"   # keep_first | reject_all
+    allowed_lateness_s: float = 0.0
+    max_future_s: float = 3600.0
+    unit_ratio: float = 50.0
+
+    def __post_init__(self):
+        if self.zero_policy not in ("reject", "skip"):
+            raise ConfigError(f"zero_policy = {self.zero_policy!r}: must be 'reject' or 'skip'")
+        if self.duplicate_policy not in ("keep_first", "reject_all"):
+            raise ConfigError(f"duplicate_policy = {self.duplicate_policy!r}: must be 'keep_first' or 'reject_all'")
+        for name in ("allowed_lateness_s", "max_future_s"):
+            if not getattr(self, name) >= 0:
+                raise ConfigError(f"{name} = {getattr(self, name)!r}: must be >= 0")
+        if not self.unit_ratio > 1:
+            raise ConfigError(f"unit_ratio = {self.unit_ratio!r}: must be > 1")
+
+
+@dataclass
+class Validated:
+    """Good rows (sorted by series then ts; ``ts`` as int64 ns UTC) and quarantined rows."""
+
+    good: pd.DataFrame
+    rejects: pd.DataFrame
+    zero_skipped: pd.DataFrame = field(default_factory=pd.DataFrame)
+
+
+REJECT_COLUMNS = ["row", "series", "ts", "field", "value", "reason", "raw"]
+
+
+def _is_blank(col: pd.Series) -> np.ndarray:
+    """Empty fields. Float columns hold no empties (:func:`monitor.ingest.logio.table_to_frame` turns a
+    float column with nulls into objects with None), so a NaN there is a literal NaN."""
+    if col.dtype == object:
+        none = np.fromiter((v is None or v is pd.NA or (isinstance(v, str) and not v.strip())
+                            for v in col), dtype=bool, count=len(col))
+        return none
+    if pd.api.types.is_string_dtype(col):
+        s = col.astype("string")
+        return (s.isna() | (s.str.strip() == "")).to_numpy(dtype=bool)
+    if pd.api.types.is_float_dtype(col):
+        return np.zeros(len(col), dtype=bool)
+    return col.isna().to_numpy(dtype=bool)
+
+
+def parse_numbers(col: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Float values and a mask of fields that are present but do not parse as numbers."""
+    if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
+        return col.to_numpy(dtype=np.float64, na_value=np.nan), np.zeros(len(col), dtype=bool)
+    s = col.astype("string").str.strip()
+    v = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    low = s.str.lower()
+    nan_words = low.isin(["nan", "+nan", "-nan"]).to_numpy(dtype=bool, na_value=False).copy()
+    if col.dtype == object:   # literal NaN floats kept beside None (empty) by table_to_frame
+        nan_words |= np.fromiter((isinstance(v, float) and v != v for v in col), dtype=bool,
+                                 count=len(col))
+    v[nan_words] = np.nan
+    bad = np.isnan(v) & ~nan_words & ~_is_blank(col)
+    return v, bad
+
+
+def parse_timestamps(col: pd.Series) -> np.ndarray:
+    """int64 ns since the epoch, UTC; ``INT64_MIN`` where unparsable or empty."""
+    nat = np.iinfo(np.int64).min
+    if isinstance(col.dtype, pd.DatetimeTZDtype) or pd.api.types.is_datetime64_dtype(col):
+        t = pd.to_datetime(col, utc=True)
+        return t.to_numpy(dtype="datetime64[ns]").view(np.int64).copy()
+    if pd.api.types.is_numeric_dtype(col):
+        v = col.to_numpy(dtype=np.float64, na_value=np.nan)
+        out = np.full(len(v), nat, dtype=np.int64)
+        ok = np.isfinite(v) & (np.abs(v) < 1e11)
+        out[ok] = np.round(v[ok] * 1e9).astype(np.int64)
+        return out
+    s = col.astype("string").str.strip()
+    num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    out = np.full(len(s), nat, dtype=np.int64)
+    is_num = np.isfinite(num) & (np.abs(num) < 1e11)
+    out[is_num] = np.round(num[is_num] * 1e9).astype(np.int64)
+    rest = ~is_num & ~_is_blank(col)
+    if rest.any():
+        t = pd.to_datetime(s[rest], utc=True, errors="coerce", format="ISO8601")
+        vals = t.to_numpy(dtype="datetime64[ns]").view(np.int64)
+        out[np.flatnonzero(rest)] = vals
+    return out
+
+
+class SeriesGate:
+    """Per-series state of the ordered checks (last accepted time, recent prices).
+
+    Kept across batches and in checkpoints (:meth:`to_state` / :meth:`from_state`).
+    """
+
+    def __init__(self):
+        self.index: dict[str, int] = {}
+        self.last_ts = np.zeros(0, dtype=np.int64)
+        self.ring = np.zeros((0, WINDOW))
+        self.ring_ts = np.zeros((0, WINDOW), dtype=np.int64)
+        self.count = np.zeros(0, dtype=np.int64)
+
+    def ids(self, series: np.ndarray) -> np.ndarray:
+        codes, uniques = pd.factorize(series)
+        mapping = np.empty(len(uniques), dtype=np.int64)
+        for j, name in enumerate(uniques):
+            i = self.index.get(name)
+            if i is None:
+                i = len(self.index)
+                self.index[name] = i
+            mapping[j] = i
+        n = len(self.index)
+        if n > self.last_ts.size:
+            grow = n - self.last_ts.size
+            self.last_ts = np.concatenate([self.last_ts, np.full(grow, np.iinfo(np.int64).min)])
+            self.ring = np.vstack([self.ring, np.zeros((grow, WINDOW))])
+            self.ring_ts = np.vstack([self.ring_ts, np.zeros((grow, WINDOW), dtype=np.int64)])
+            self.count = np.concatenate([self.count, np.zeros(grow, dtype=np.int64)])
+        return mapping[codes]
+
+    def state_of(self, series: str) -> dict:
+        i = self.index[series]
+        return {"last_ts": int(self.last_ts[i]), "ring": self.ring[i].tolist(),
+                "ring_ts": self.ring_ts[i].tolist(), "count": int(self.count[i])}
+
+    def restore(self, series: str, state: dict) -> None:
+        i = self.ids(np.array([series], dtype=object))[0]
+        self.last_ts[i] = int(state["last_ts"])
+        self.ring[i] = np.asarray(state["ring"], dtype=np.float64)
+        self.ring_ts[i] = np.asarray(state["ring_ts"], dtype=np.int64)
+        self.count[i] = int(state["count"])
+
+
+@njit(cache=True)
+def _ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_ratio,
+                    reject_all, code, batch_median):
+    """Walk rows sorted by (sid, ts, arrival); set code 1 duplicate, 2 late, 3 unit error.
+
+    The unit check compares log price with the median of the series' last accepted prices (once
+    2 are known), or else with ``batch_median`` (NaN: no check).
+    """
+    n = sid.shape[0]
+    w = ring.shape[1]
+    tmp = np.empty(w)
+    for j in range(n):
+        s = sid[j]
+        if count[s] > 0 or last_ts[s] != np.iinfo(np.int64).min:
+            dup = ts[j] == last_ts[s]
+            for i in range(min(count[s], w)):
+                if ring_ts[s, i] == ts[j]:
+                    dup = True
+            if dup:
+                code[j] = 1
+                continue
+            if ts[j] < last_ts[s] - lateness_ns:
+                code[j] = 2
+                continue
+        c = min(count[s], w)
+        if c >= 2:
+            for i in range(c):
+                tmp[i] = ring[s, i]
+            med = np.median(tmp[:c])
+        else:
+            med = batch_median[s]
+        if med == med and abs(lp[j] - med) >= log_ratio:
+            code[j] = 3
+            continue
+        ring[s, count[s] % w] = lp[j]
+        ring_ts[s, count[s] % w] = ts[j]
+        count[s] += 1
+        if ts[j] > last_ts[s]:
+            last_ts[s] = ts[j]
+    if reject_all:
+        # every copy of a duplicated (series, ts) inside this batch
+        for j in range(1, n):
+            if code[j] == 1 and sid[j] == sid[j - 1] and ts[j] == ts[j - 1]:
+                k = j - 1
+                while k >= 0 and sid[k] == sid[j] and ts[k] == ts[j]:
+                    code[k] = 1
+                    k -= 1
+
+
+_ORDER_REASONS = {1: ("ts", "duplicate row: same series and timestamp as an earlier row"),
+                  2: ("ts", "late row: older than the series' last accepted time beyond the allowed lateness"),
+                  3: ("price", "suspected unit error: price is {ratio:.0f}x or more away from the series' recent median")}
+
+
+def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
+                   settings: ValidationSettings | None = None, gate: SeriesGate | None = None,
+                   now_ns: int | None = None, row_offset: int = 0,
+                   order_by: str = "time") -> Validated:
+    """Validate a frame of raw rows in arrival order.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        Raw columns ``series, ts, price, quantity`` and any controls (already renamed).
+    controls, log_controls : names of the controls used (entered as given / in logs).
+    gate : SeriesGate
+        Ordered-check state carried across batches; a new one if omitted.
+    now_ns : int, optional
+        Reference time (ns UTC) for the future-timestamp check; no check when omitted.
+    row_offset : int
+        Number of data rows before this frame in its source (row numbers are 1-based data rows).
+    order_by : "time" or "arrival"
+        ``time`` (replay): each series' rows are checked and returned in timestamp order; a new
+        series' unit check may use the median of its prices in this batch. ``arrival`` (live
+        service): rows are checked in arrival order and returned in it, so the result does not
+        depend on how rows were split into batches (needed for exact resume); a row older than
+        the series' latest accepted time by more than the allowed lateness is late.
+
+    Returns
+    -------
+    Validated
+        ``good`` in processing order (see ``order_by``) with column ``row``; ``rejects`` with
+        ``row, series, ts, field, value, reason, raw``; ``zero_skipped`` rows (zero policy skip).
+    """
+    if order_by not in ("time", "arrival"):
+        raise ValueError(f"order_by = {order_by!r}: must be 'time' or 'arrival'")
+    settings = settings or ValidationSettings()
+    gate = gate if gate is not None else SeriesGate()
+    names = list(REQUIRED) + list(controls) + list(log_controls)
+    missing = [c for c in names if c not in frame.columns]
+    if missing:
+        raise SourceError(f"missing column(s) {missing}; the log has columns {list(frame.columns)}")
+    n = len(frame)
+    rows = np.arange(row_offset + 1, row_offset + n + 1, dtype=np.int64)
+    reason = np.full(n, None, dtype=object)
+    bad_field = np.full(n, None, dtype=object)
+    flagged = np.zeros(n, dtype=bool)          # reason is set (cheaper than reason == None)
+
+    def flag(mask, fld, text):
+        m = mask & ~flagged
+        reason[m] = text
+        bad_field[m] = fld
+        flagged[m] = True
+
+    series = frame["series"]
+    flag(_is_blank(series), "series", "empty field")
+    ts = parse_timestamps(frame["ts"])
+    nat = np.iinfo(np.int64).min
+    flag(_is_blank(frame["ts"]), "ts", "empty field")
+    flag(ts == nat, "ts", "unparsable timestamp (expected ISO 8601 or epoch seconds)")
+    if now_ns is not None:
+        flag((ts != nat) & (ts > now_ns + int(settings.max_future_s * 1e9)), "ts",
+             f"timestamp in the future by more than {settings.max_future_s:g} s")
+    values = {}
+    for c in ["price", "quantity"] + list(controls) + list(log_controls):
+        v, unparsable = parse_numbers(frame[c])
+        flag(_is_blank(frame[c]), c, "empty field")
+        flag(unparsable, c, "not a number")
+        flag(np.isnan(v), c, "NaN is not a value")
+        flag(np.isinf(v), c, "infinity is not a value")
+        values[c] = v
+    flag(values["price"] <= 0, "price", "price must be > 0")
+    flag(values["quantity"] < 0, "quantity", "quantity must be >= 0")
+    for c in log_controls:
+        flag(values[c] <= 0, c, "a control entered in logs must be > 0")
+    zero = (values["quantity"] == 0) & ~flagged
+    if settings.zero_policy == "reject":
+        flag(zero, "quantity", "zero quantity cannot be logged (zero_policy = reject)")
+        zero[:] = False
+
+    # ordered checks on the remaining rows, per series in time order
+    ok = ~flagged & ~zero
+    idx = np.flatnonzero(ok)
+    sid_all = np.full(n, -1, dtype=np.int64)
+    if idx.size:
+        # a text column (arrow-backed) is factorized by arrow without making Python strings
+        arrow_text = pd.api.types.is_string_dtype(series) and series.dtype != object
+        sid_all[idx] = gate.ids(series.iloc[idx] if arrow_text else series.to_numpy(dtype=object)[idx])
+        if order_by == "time":
+            order = idx[np.lexsort((idx, ts[idx], sid_all[idx]))]
+        else:
+            order = idx[np.argsort(sid_all[idx], kind="stable")]
+        code = np.zeros(order.size, dtype=np.int8)
+        lp = np.log(values["price"][order])
+        grouped = pd.Series(lp).groupby(sid_all[order])
+        batch_median = np.full(gate.last_ts.size, np.nan)
+        if order_by == "time":
+            med = grouped.median().where(grouped.size() >= MIN_BATCH)
+            batch_median[med.index.to_numpy()] = med.to_numpy(dtype=np.float64)
+        _ordered_checks(sid_all[order], ts[order], lp, gate.last_ts,
+                        gate.ring, gate.ring_ts, gate.count, np.int64(settings.allowed_lateness_s * 1e9),
+                        math.log(settings.unit_ratio), settings.duplicate_policy == "reject_all", code,
+                        batch_median)
+        for c, (fld, text) in _ORDER_REASONS.items():
+            m = np.zeros(n, dtype=bool)
+            m[order[code == c]] = True
+            flag(m, fld, text.format(ratio=settings.unit_ratio))
+        good_idx = order[code == 0]
+        if order_by == "arrival":
+            good_idx = np.sort(good_idx)
+    else:
+        good_idx = idx
+
+    if pd.api.types.is_string_dtype(series) and series.dtype != object:
+        good_series = series.iloc[good_idx].astype("str").reset_index(drop=True)   # same values
+    else:
+        good_series = series.to_numpy(dtype=object)[good_idx].astype(str)
+    good = pd.DataFrame({"row": rows[good_idx], "series": good_series, "ts": ts[good_idx]})
+    for c, v in values.items():
+        good[c] = v[good_idx]
+    bad = np.flatnonzero(flagged)
+    rejects = _reject_frame(frame, rows, bad, bad_field, reason)
+    zi = np.flatnonzero(zero)
+    zero_frame = pd.DataFrame({"row": rows[zi], "series": series.iloc[zi].to_numpy(dtype=object),
+                               "ts": ts[zi]})
+    return Validated(good=good.reset_index(drop=True), rejects=rejects, zero_skipped=zero_frame)
+
+
+def _cell(v) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, float) and math.isnan(v):
+        return "nan"
+    if v is pd.NA or v is pd.NaT:
+        return ""
+    if isinstance(v, pd.Timestamp):   # format_ts's text, without its per-call array set-up
+        u = v.tz_convert("UTC") if v.tzinfo else v
+        return u.strftime("%Y-%m-%dT%H:%M:%S.%fZ" if u.value % 1_000_000_000 else "%Y-%m-%dT%H:%M:%SZ")
+    return str(v)
+
+
+def _reject_frame(frame, rows, bad, bad_field, reason) -> pd.DataFrame:
+    if bad.size == 0:
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in REJECT_COLUMNS})
+    sub = frame.iloc[bad]
+    records = sub.to_dict(orient="records")
+    # in text columns a missing value is an empty field; in float columns NaN is a literal NaN
+    text_cols = {c for c in frame.columns
+                 if frame[c].dtype != object and pd.api.types.is_string_dtype(frame[c])}
+    out = []
+    for j, rec in zip(bad, records):
+        fld = bad_field[j]
+        raw = {k: ("" if k in text_cols and isinstance(v, float) and math.isnan(v) else _cell(v))
+               for k, v in rec.items()}
+        val = raw.get(fld, "")
+        out.append({"row": int(rows[j]), "series": raw.get("series", ""), "ts": raw.get("ts", ""),
+                    "field": fld, "value": val,
+                    "reason": f"row {int(rows[j])}: field '{fld}' = {val!r}: {reason[j]}",
+                    "raw": json.dumps(raw, sort_keys=True)})
+    return pd.DataFrame(out, columns=REJECT_COLUMNS)
+
+
+def renumber(v: Validated, rows: np.ndarray) -> Validated:
+    """Map validation's row numbers (1..n within the frame) onto the source's row numbers.
+
+    ``zero_skipped`` gains a column ``local``: each skipped row's position within the frame.
+    """
+    good = v.good.assign(row=rows[v.good["row"].to_numpy(dtype=np.int64) - 1])
+    rej = v.rejects
+    if len(rej):
+        local = rej["row"].to_numpy(dtype=np.int64)
+        real = rows[local - 1]
+        reasons = [f"row {b}:" + text[len(f"row {a}:"):] if text.startswith(f"row {a}:") else text
+                   for a, b, text in zip(local.tolist(), real.tolist(), rej["reason"].tolist())]
+        rej = rej.assign(row=real, reason=reasons)
+    zero = v.zero_skipped
+    if len(zero):
+        zero = zero.assign(local=zero["row"].to_numpy(dtype=np.int64) - 1,
+                           row=rows[zero["row"].to_numpy(dtype=np.int64) - 1])
+    else:
+        zero = zero.assign(local=np.zeros(0, dtype=np.int64)) if len(zero.columns) else \
+            pd.DataFrame({"row": [], "series": [], "ts": [], "local": []})
+    return Validated(good=good, rejects=rej, zero_skipped=zero)

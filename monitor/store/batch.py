@@ -1,0 +1,289 @@
+"""Atomic batch writes, checkpoints, source offsets and estimate thinning.
+
+Everything public here is re-exported by :mod:`monitor.store`, which documents the whole store.
+Rows are written with ``executemany`` inside one ``BEGIN IMMEDIATE`` transaction (sqlite-utils'
+``insert_all`` commits per chunk and is about five times slower for this use).
+"""
+
+from __future__ import annotations
+
+import json
+from typing import Any, Iterable, Mapping, NamedTuple
+
+import numpy as np
+import pandas as pd
+
+from monitor.errors import ConfigError, StoreError
+from monitor.store.alerts import apply_alert_change
+from monitor.store.codec import format_ts_array, from_json, wall_ts
+from monitor.store.core import Store, accepts_path
+from monitor.store.rows import (ESTIMATE_COLUMNS, OBSERVATION_COLUMNS, as_frame, checkpoint_rows,
+                                estimate_rows, newest_per_series, observation_rows,
+                                offset_statements, reject_rows, series_counts, settings_sql)
+from monitor.store.schema import SPARK_KEEP, beta_text, spark_text
+
+
+_UPSERT_SPARK = ("INSERT INTO sparklines (series, n, ts, beta) VALUES (?, ?, ?, ?) ON CONFLICT "
+                 "(series) DO UPDATE SET n = excluded.n, ts = excluded.ts, beta = excluded.beta")
+
+
+def _spark_updates(store: Store, est_df: pd.DataFrame, est_rows: list[tuple]) -> list[tuple]:
+    """New sparkline cache rows: each series' cached points plus this batch's, last SPARK_KEEP.
+
+    Rows of a batch normally come after the cached ones; a late estimate (older ``ts``) is
+    merged in time order.
+    """
+    order = pd.DataFrame({"series": est_df["series"].to_numpy(object),
+                          "ts": est_df["ts"].to_numpy(object)})
+    order = order.sort_values(["series", "ts"], kind="stable")
+    order = order.groupby("series", sort=False).tail(SPARK_KEEP)
+    idx = order.index.to_numpy()
+    names = order["series"].to_numpy(object)
+    cuts = np.flatnonzero(names[1:] != names[:-1]) + 1
+    starts, ends = np.r_[0, cuts], np.r_[cuts, len(names)]
+    cached = {r[0]: r[1:] for r in store.conn.execute(
+        "SELECT series, ts, beta FROM sparklines WHERE series IN (SELECT value FROM json_each(?))",
+        (json.dumps(names[starts].tolist()),))}
+    ts_all = order["ts"].tolist()
+    beta_all = [beta_text(est_rows[i][2]) for i in idx]
+    out = []
+    for lo, hi in zip(starts.tolist(), ends.tolist()):
+        name = names[lo]
+        new = list(zip(ts_all[lo:hi], beta_all[lo:hi]))
+        if name in cached:
+            old = list(zip(cached[name][0].split(","), cached[name][1].split(",")))
+            new = old + new if old[-1][0] < new[0][0] else sorted(old + new)
+        out.append((name, *spark_text(new[-SPARK_KEEP:])))
+    return out
+
+
+class Checkpoint(NamedTuple):
+    """A series' saved state: ``(state, last_ts, last_pos)``."""
+
+    state: Any
+    last_ts: str | None
+    last_pos: Any
+
+
+_INSERT_OBS = ("INSERT INTO observations (series, ts, price, quantity, controls, source, "
+               "source_row) VALUES (?, ?, ?, ?, ?, ?, ?)")
+_INSERT_EST = f"INSERT INTO estimates ({', '.join(ESTIMATE_COLUMNS)}) VALUES " \
+              f"({', '.join('?' * len(ESTIMATE_COLUMNS))})"
+_UPSERT_LATEST = (f"INSERT INTO latest_estimates ({', '.join(ESTIMATE_COLUMNS)}) VALUES "
+                  f"({', '.join('?' * len(ESTIMATE_COLUMNS))}) ON CONFLICT (series) DO UPDATE SET "
+                  + ", ".join(f"{c} = excluded.{c}" for c in ESTIMATE_COLUMNS[1:])
+                  + " WHERE excluded.ts >= latest_estimates.ts")
+_UPSERT_SERIES_COUNTS = (
+    "INSERT INTO series (series, first_ts, last_ts, n_obs, n_estimates, updated_at) "
+    "VALUES (?, ?, ?, ?, ?, ?) ON CONFLICT (series) DO UPDATE SET "
+    "first_ts = min(coalesce(first_ts, excluded.first_ts), coalesce(excluded.first_ts, first_ts)),"
+    " last_ts = max(coalesce(last_ts, excluded.last_ts), coalesce(excluded.last_ts, last_ts)),"
+    " n_obs = n_obs + excluded.n_obs, n_estimates = n_estimates + excluded.n_estimates,"
+    " updated_at = excluded.updated_at")
+
+
+_UPSERT_OFFSET = (
+    "INSERT INTO source_offsets (source, kind, position, rows_read, rows_rejected, last_run_at,"
+    " last_error) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7) ON CONFLICT (source) DO UPDATE SET"
+    " kind = coalesce(excluded.kind, kind),"
+    " position = CASE WHEN ?8 THEN excluded.position ELSE position END,"
+    " rows_read = rows_read + excluded.rows_read,"
+    " rows_rejected = rows_rejected + excluded.rows_rejected,"
+    " last_run_at = excluded.last_run_at, last_error = excluded.last_error")
+
+
+@accepts_path(readonly=False)
+def write_batch(store: Store, *, observations: Any = None, estimates: Any = None,
+                alert_changes: Iterable[Any] | None = None, checkpoints: Any = None,
+                offsets: Any = None, rejects: Any = None, series: Any = None,
+                latest_estimates: Any = None, now: Any = None) -> dict:
+    """Write one processed batch in ONE transaction: all of it, or (on any error) none of it.
+
+    Parameters
+    ----------
+    observations : DataFrame or list of dict, optional
+        Columns ``series, ts, price, quantity`` and optionally ``controls`` (dict or JSON
+        text), ``source``, ``source_row``. Any other columns are packed into ``controls``.
+        A ``(series, ts)`` already stored or repeated in the batch raises :class:`StoreError`
+        (duplicates are decided by validation upstream; see :func:`existing_observation_keys`).
+        Each series' ``first_ts``, ``last_ts`` and ``n_obs`` are updated from these rows.
+    estimates : DataFrame or list of dict, optional
+        The estimate rows to keep in the history (columns of :data:`ESTIMATE_COLUMNS`; missing
+        numeric columns are NULL). NaN becomes NULL; a NaN ``beta`` is only allowed with
+        status ``warming_up`` or ``low_variation``; infinities are refused.
+    latest_estimates : DataFrame or list of dict, optional
+        Rows from which the newest per series updates ``latest_estimates``; defaults to
+        ``estimates``. Pass the unthinned frame when ``estimates`` went through
+        :func:`thin_estimates`.
+    alert_changes : iterable, optional
+        Applied in order by :func:`monitor.store.alerts.apply_alert_change`: dicts with
+        ``action`` ``'open'`` (default) / ``'resolve'`` / ``'remind'``, or
+        :class:`monitor.types.Alert` values (opened, with ``kind = rule``).
+    checkpoints : mapping series -> {state, last_ts, last_pos} or list of dict, optional
+        Upserted; ``state`` and ``last_pos`` are stored as JSON (NaN kept exactly).
+    offsets : mapping source -> {kind, position, rows_read, rows_rejected, last_error}, optional
+        Upserted. ``rows_read`` / ``rows_rejected`` are this batch's counts, ADDED to the
+        stored totals; a missing ``position`` keeps the stored one; ``last_error`` missing
+        clears it. ``last_run_at`` is set to ``now``.
+    rejects : DataFrame or list of dict, optional
+        ``source, row, series, ts, field, value, raw, reason``; ``reason`` required.
+    series : mapping or list of dict, optional
+        Settings per series: any of ``low``, ``high`` (elasticity bounds), ``forgetting``,
+        ``settings`` (JSON-able); keys not given are left unchanged.
+    now : optional
+        Wall time for ``*_at`` columns (default: the clock).
+
+    Returns
+    -------
+    dict
+        Counts per table and the alert ids ``alerts_opened``, ``alerts_resolved``,
+        ``alerts_reminded`` and ``alerts_unchanged`` (deduplicated or nothing to resolve).
+    """
+    now = wall_ts(now)
+    summary: dict[str, Any] = {"observations": 0, "estimates": 0, "rejects": 0,
+                               "checkpoints": 0, "offsets": 0, "series": 0,
+                               "alerts_opened": [], "alerts_resolved": [],
+                               "alerts_reminded": [], "alerts_unchanged": []}
+    obs_df = obs_rows = est_df = est_rows = latest_rows = None
+    if observations is not None:
+        obs_df, obs_rows = observation_rows(observations)
+    if estimates is not None:
+        est_df, est_rows = estimate_rows(estimates)
+    if latest_estimates is not None:
+        latest_rows = newest_per_series(*estimate_rows(latest_estimates))
+    elif est_rows:
+        latest_rows = newest_per_series(est_df, est_rows)
+    settings_stmts = settings_sql(as_frame(series, key="series"), now) if series is not None else []
+    reject_params = reject_rows(rejects, now) if rejects is not None else []
+    ckpt_params = checkpoint_rows(checkpoints, now) if checkpoints is not None else []
+    offset_params = offset_statements(offsets, now) if offsets is not None else []
+    changes = list(alert_changes or [])
+    with store.atomic():
+        for sql, params in settings_stmts:
+            store.conn.execute(sql, params)
+        summary["series"] = len(settings_stmts)
+        counts = series_counts(obs_df, est_df, now)
+        if counts:
+            store.conn.executemany(_UPSERT_SERIES_COUNTS, counts)
+        if obs_rows:
+            try:
+                store.conn.executemany(_INSERT_OBS, obs_rows)
+            except Exception as exc:
+                if "UNIQUE" not in str(exc):
+                    raise
+                raise StoreError(_duplicate_message(store, obs_df)) from None
+            summary["observations"] = len(obs_rows)
+        if est_rows:
+            try:
+                store.conn.executemany(_INSERT_EST, est_rows)
+            except Exception as exc:
+                if "UNIQUE" not in str(exc):
+                    raise
+                raise StoreError("an estimate for the same (series, ts) is already stored: "
+                                 f"{exc}") from None
+            summary["estimates"] = len(est_rows)
+        if latest_rows:
+            store.conn.executemany(_UPSERT_LATEST, latest_rows)
+        if est_rows:
+            store.conn.executemany(_UPSERT_SPARK, _spark_updates(store, est_df, est_rows))
+        if reject_params:
+            store.conn.executemany(
+                "INSERT INTO rejects (source, row, series, ts, field, value, raw, reason, "
+                "rejected_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)", reject_params)
+            summary["rejects"] = len(reject_params)
+        if ckpt_params:
+            store.conn.executemany(
+                "INSERT INTO checkpoints (series, state, last_ts, last_pos, updated_at) VALUES "
+                "(?, ?, ?, ?, ?) ON CONFLICT (series) DO UPDATE SET state = excluded.state, "
+                "last_ts = excluded.last_ts, last_pos = excluded.last_pos, "
+                "updated_at = excluded.updated_at", ckpt_params)
+            summary["checkpoints"] = len(ckpt_params)
+        if offset_params:
+            store.conn.executemany(_UPSERT_OFFSET, offset_params)
+            summary["offsets"] = len(offset_params)
+        for change in changes:
+            outcome, alert_id = apply_alert_change(store, change, now=now)
+            if alert_id is not None:
+                summary[f"alerts_{outcome}"].append(alert_id)
+    return summary
+
+
+def _duplicate_message(store: Store, df: pd.DataFrame) -> str:
+    keys = existing_observation_keys(store, df)
+    if keys:
+        s, t = sorted(keys)[0]
+        return (f"observation (series {s!r}, ts {t!r}) is already stored; {len(keys)} row(s) "
+                f"of the batch repeat stored observations, the batch was not written")
+    return "the batch repeats a stored observation; the batch was not written"
+
+
+@accepts_path(readonly=True)
+def existing_observation_keys(store: Store, frame: Any) -> set[tuple[str, str]]:
+    """The ``(series, ts)`` pairs of ``frame`` (columns series, ts) already in the store.
+
+    One indexed range query per distinct series; ``ts`` is normalized with
+    :func:`format_ts_array` first.
+    """
+    df = as_frame(frame)
+    if not len(df):
+        return set()
+    df = pd.DataFrame({"series": df["series"].astype(str), "ts": format_ts_array(df["ts"])})
+    found: set[tuple[str, str]] = set()
+    for s, grp in df.groupby("series"):
+        wanted = set(grp["ts"])
+        stored = store.rows("SELECT ts FROM observations WHERE series = ? AND ts BETWEEN ? AND ?",
+                            (s, min(wanted), max(wanted)))
+        found.update((s, r["ts"]) for r in stored if r["ts"] in wanted)
+    return found
+
+
+@accepts_path(readonly=True)
+def load_checkpoints(store: Store) -> dict[str, Checkpoint]:
+    """Every series' checkpoint: ``series -> Checkpoint(state, last_ts, last_pos)``."""
+    return {r["series"]: Checkpoint(from_json(r["state"]), r["last_ts"], from_json(r["last_pos"]))
+            for r in store.rows("SELECT series, state, last_ts, last_pos FROM checkpoints")}
+
+
+@accepts_path(readonly=True)
+def get_offset(store: Store, source: str) -> dict | None:
+    """A source's saved offset (``position`` parsed from JSON), or ``None`` if never run."""
+    rows = store.rows("SELECT * FROM source_offsets WHERE source = ?", (source,))
+    if not rows:
+        return None
+    row = rows[0]
+    row["position"] = from_json(row["position"])
+    return row
+
+
+def thin_estimates(frame: pd.DataFrame, every_n: int,
+                   previous_status: Mapping[str, str] | None = None,
+                   start_count: Mapping[str, int] | None = None) -> pd.DataFrame:
+    """Keep every ``every_n``-th update of each series plus every change of status.
+
+    Row ``k`` of a series (``k = start_count[series] + position in frame``, counted from 1)
+    is kept when ``k % every_n == 0`` or its ``status`` differs from the update before it
+    (``previous_status[series]`` for the series' first row in ``frame``; none known counts as
+    a change). The choice depends only on each row's global update number and status, never
+    on where batches start, so a resumed run keeps exactly the rows an uninterrupted one does.
+
+    >>> f = pd.DataFrame({"series": ["a"] * 6, "ts": range(6),
+    ...                   "status": ["warming_up", "ok", "ok", "ok", "changed", "changed"]})
+    >>> kept = thin_estimates(f, 4, previous_status={"a": "warming_up"}, start_count={"a": 10})
+    >>> kept["ts"].tolist()   # updates 12 and 16 (every 4th), and the changes at ts 1 and 4
+    [1, 4, 5]
+    """
+    if isinstance(every_n, bool) or not isinstance(every_n, (int, np.integer)) or every_n < 1:
+        raise ConfigError(f"every_n = {every_n!r}: the estimate retention must be an integer "
+                          f">= 1 (1 keeps every update)")
+    if every_n == 1 or not len(frame):
+        return frame.copy()
+    series = frame["series"].astype(str)
+    count = frame.groupby(series, sort=False).cumcount().to_numpy() + 1
+    if start_count:
+        count = count + series.map(start_count).fillna(0).to_numpy(dtype=np.int64)
+    prev = frame.groupby(series, sort=False)["status"].shift(1)
+    first = prev.isna()
+    if previous_status:
+        prev = prev.where(~first, series.map(previous_status))
+    changed = (frame["status"] != prev) | prev.isna()
+    return frame[(count % every_n == 0) | changed.to_numpy()].copy()

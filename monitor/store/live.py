@@ -1,0 +1,192 @@
+"""Store functions the live service needs beyond :mod:`monitor.store`: source errors,
+staleness, per-series bounds and the single-observation writer.
+
+Kept apart from the store modules (they belong to the store's owner); everything here goes
+through :meth:`Store.atomic` / :meth:`Store.rows` with parameterized SQL.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import json
+import os
+import sqlite3
+from typing import Any
+
+import pandas as pd
+
+from monitor.errors import StoreError
+from monitor.store import Store, from_json, parse_ts, wall_ts
+from monitor.store.alerts import apply_alert_change
+# the store's own statements, so the single-row writer cannot drift from write_batch's SQL
+from monitor.store.batch import (_INSERT_EST, _INSERT_OBS, _UPSERT_LATEST, _UPSERT_OFFSET,
+                                 _UPSERT_SERIES_COUNTS, _UPSERT_SPARK)
+from monitor.store.schema import SPARK_KEEP, beta_text, spark_text
+
+
+_UPSERT_CHECKPOINT = (
+    "INSERT INTO checkpoints (series, state, last_ts, last_pos, updated_at) VALUES "
+    "(?, ?, ?, ?, ?) ON CONFLICT (series) DO UPDATE SET state = excluded.state, "
+    "last_ts = excluded.last_ts, last_pos = excluded.last_pos, updated_at = excluded.updated_at")
+
+#: prefix of the alert ``series`` used for alerts about a source rather than a series
+SOURCE_PREFIX = "source:"
+
+
+def take_writer_lock(store_path):
+    """Hold ``<store>.writer.lock`` exclusively (``flock``) so one process writes live state;
+    the kernel releases it when the process ends, even by SIGKILL. Returns the open file."""
+    fh = open(str(store_path) + ".writer.lock", "a+")
+    try:
+        fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        fh.seek(0)
+        holder = fh.read().strip() or "unknown"
+        fh.close()
+        raise StoreError(f"store {str(store_path)!r} is being processed by another elmon "
+                         f"process (pid {holder}); stop it first") from None
+    fh.seek(0)
+    fh.truncate()
+    fh.write(str(os.getpid()))
+    fh.flush()
+    return fh
+
+
+def release_writer_lock(fh) -> None:
+    fcntl.flock(fh, fcntl.LOCK_UN)
+    fh.close()
+
+
+def reset_source(store: Store, source: str) -> bool:
+    """Forget a source's position (its counts stay), so it is read again from its start; the
+    caller holds the writer lock. Returns whether the source was known."""
+    with store.atomic():
+        cur = store.execute("UPDATE source_offsets SET position = NULL, last_error = NULL "
+                            "WHERE source = ?", (source,))
+    return cur.rowcount > 0
+
+
+def record_source_error(store: Store, source: str, kind: str, message: str | None) -> None:
+    """Set (or clear, with ``None``) a source's ``last_error`` without touching its position,
+    counts or ``last_run_at`` (which keeps meaning "last committed batch")."""
+    with store.atomic():
+        store.execute("INSERT INTO source_offsets (source, kind, last_error) VALUES (?, ?, ?) "
+                      "ON CONFLICT (source) DO UPDATE SET last_error = excluded.last_error, "
+                      "kind = coalesce(source_offsets.kind, excluded.kind)",
+                      (source, kind, None if message is None else str(message)[:2000]))
+
+
+def series_bounds(store: Store, names: list[str]) -> dict[str, tuple]:
+    """``series -> (low, high)`` for the series among ``names`` that have their own elasticity
+    bounds in the ``series`` table (either side may be ``None``)."""
+    if not names:
+        return {}
+    rows = store.rows("SELECT series, low, high FROM series WHERE (low IS NOT NULL OR high IS "
+                      "NOT NULL) AND series IN (SELECT value FROM json_each(?))",
+                      (json.dumps([str(n) for n in names]),))
+    return {r["series"]: (r["low"], r["high"]) for r in rows}
+
+
+def source_rows_at(store: Store) -> dict[str, pd.Timestamp]:
+    """Wall time of each source's last committed batch (``last_run_at``)."""
+    return {r["source"]: parse_ts(r["last_run_at"]) for r in
+            store.rows("SELECT source, last_run_at FROM source_offsets WHERE last_run_at IS NOT NULL")}
+
+
+def series_activity(store: Store) -> pd.DataFrame:
+    """Every series with its newest data time, the wall time of its last write and its own
+    ``stale_after_s`` setting (from ``series.settings``, NaN when not set)."""
+    rows = store.rows("SELECT series, last_ts, updated_at, settings FROM series ORDER BY series")
+    df = pd.DataFrame(rows, columns=["series", "last_ts", "updated_at", "settings"])
+    df["stale_after_s"] = [float((from_json(s) or {}).get("stale_after_s", float("nan")))
+                           if s else float("nan") for s in df["settings"]]
+    df["updated_at"] = pd.to_datetime(df["updated_at"], utc=True, format="ISO8601")
+    return df.drop(columns=["settings"])
+
+
+def active_stale(store: Store) -> dict[str, int]:
+    """``series -> alert id`` of every ``stale`` alert not resolved (sources included)."""
+    return {r["series"]: r["id"] for r in
+            store.rows("SELECT id, series FROM alerts WHERE kind = 'stale' AND state != 'resolved'")}
+
+
+def stale_changes(store: Store, now: Any, source_limits: dict[str, float],
+                  source_last: dict[str, Any], series_after: float) -> list[dict]:
+    """Alert changes that open ``stale`` alerts for silent sources and series and resolve the
+    ones whose source or series has sent rows again.
+
+    ``source_limits``: source -> seconds (0 = not watched); ``source_last``: source -> wall
+    time of its last rows; ``series_after``: default seconds for series (0 = off; a series'
+    own ``stale_after_s`` setting wins).
+    """
+    now_ts = parse_ts(wall_ts(now))
+    active = active_stale(store)
+    changes: list[dict] = []
+
+    def decide(key: str, age: float, limit: float, ts, what: str, details: dict) -> None:
+        if limit > 0 and age > limit and key not in active:
+            changes.append({"action": "open", "series": key, "kind": "stale", "ts": ts,
+                            "beta": None, "beta_lo": None, "beta_hi": None,
+                            "severity": "warning", "details": details, "cooldown": limit,
+                            "message": f"{what} has sent nothing for {age:.0f} s (expected "
+                                       f"within {limit:g} s)"})
+        elif key in active and (limit <= 0 or age <= limit):
+            changes.append({"action": "resolve", "series": key, "kind": "stale", "ts": ts,
+                            "note": f"{what} is sending again"})
+
+    for name, limit in source_limits.items():
+        last = source_last.get(name)
+        if last is None:
+            continue
+        age = (now_ts - parse_ts(last)).total_seconds()
+        decide(SOURCE_PREFIX + name, age, float(limit), wall_ts(now_ts), f"source {name}",
+               {"age_s": age, "stale_after_s": limit})
+    series = series_activity(store)
+    for r in series.itertuples(index=False):
+        limit = r.stale_after_s if r.stale_after_s == r.stale_after_s else series_after
+        age = (now_ts - r.updated_at).total_seconds()
+        if r.last_ts is None:
+            continue
+        decide(r.series, age, float(limit), r.last_ts, f"series {r.series}",
+               {"age_s": age, "stale_after_s": limit, "last_ts": r.last_ts})
+    return changes
+
+
+def write_one(store: Store, *, observation: tuple, estimate: tuple, keep: bool,
+              checkpoint: tuple, offset: tuple, changes: list, now: str) -> dict:
+    """One observation's batch in one transaction, without building frames (``Monitor.observe``).
+
+    Writes exactly the rows :func:`monitor.store.write_batch` writes for a batch of one
+    accepted observation, with the same SQL statements: the series' counts, the observation,
+    the estimate (history only when ``keep``; ``latest_estimates`` always), the sparkline cache,
+    the checkpoint, the source offset and the alert changes. Parameters are the rows in the
+    statements' column order (``estimate`` with NULL for NaN). tests/test_engine.py holds the two
+    writers equal over every table.
+    """
+    series, ts = observation[0], observation[1]
+    summary = {"alerts_opened": [], "alerts_resolved": [], "alerts_reminded": [],
+               "alerts_unchanged": []}
+    with store.atomic():
+        store.conn.execute(_UPSERT_SERIES_COUNTS, (series, ts, ts, 1, int(keep), now))
+        try:
+            store.conn.execute(_INSERT_OBS, observation)
+        except sqlite3.IntegrityError:
+            raise StoreError(f"observation (series {series!r}, ts {ts!r}) is already stored; "
+                             f"the batch was not written") from None
+        if keep:
+            store.conn.execute(_INSERT_EST, estimate)
+        store.conn.execute(_UPSERT_LATEST, estimate)
+        if keep:
+            row = store.conn.execute("SELECT ts, beta FROM sparklines WHERE series = ?",
+                                     (series,)).fetchone()
+            pairs = list(zip(row[0].split(","), row[1].split(","))) if row else []
+            new = (ts, beta_text(estimate[2]))
+            pairs = pairs + [new] if not pairs or pairs[-1][0] < ts else sorted(pairs + [new])
+            store.conn.execute(_UPSERT_SPARK, (series, *spark_text(pairs[-SPARK_KEEP:])))
+        store.conn.execute(_UPSERT_CHECKPOINT, checkpoint)
+        store.conn.execute(_UPSERT_OFFSET, offset)
+        for change in changes:
+            outcome, alert_id = apply_alert_change(store, change, now=now)
+            if alert_id is not None:
+                summary[f"alerts_{outcome}"].append(alert_id)
+    return summary

@@ -1,0 +1,65 @@
+"""The validated design rows that every setting of a tuning grid shares (read and validated
+once per log)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from monitor.replay.kernel import CarriedState, Setup, design_rows, validate_chunk
+from monitor.settings import Config, estimator_from_config
+
+
+@dataclass
+class Rows:
+    """Validated rows of a log, series by series in time order (gate ids in ``sid``)."""
+
+    sid: np.ndarray
+    X: np.ndarray
+    y: np.ndarray
+    ts: np.ndarray
+    names: list[str]
+    rejected: int = 0
+
+    @property
+    def n(self) -> int:
+        return int(self.sid.size)
+
+
+def validation_setup(config: Config, now_ns: int | None) -> Setup:
+    import time
+
+    from monitor.settings import validation_from_config
+
+    return Setup(est=estimator_from_config(config), pipe=None, vset=validation_from_config(config),
+                 now_ns=time.time_ns() if now_ns is None else int(now_ns))
+
+
+def rows_from_frames(frames, setup: Setup) -> Rows:
+    """Validate ``(frame, row_offset, rows)`` triples in order with one carried gate."""
+    carried = CarriedState()
+    parts, rejected = [], 0
+    for frame, offset, rows in frames:
+        v, sid = validate_chunk(frame, setup, carried, offset, rows)
+        rejected += len(v.rejects)
+        if len(v.good):
+            X, y = design_rows(v.good, setup.est)
+            parts.append((sid, X, y, v.good["ts"].to_numpy(dtype=np.int64)))
+    k = len(setup.est.parameter_names)
+    if parts:
+        sid, X, y, ts = (np.concatenate([p[i] for p in parts]) for i in range(4))
+        order = np.argsort(sid, kind="stable")     # chunks in order: each series stays in time order
+        sid, X, y, ts = sid[order], np.ascontiguousarray(X[order]), y[order], ts[order]
+    else:
+        sid, X, y, ts = np.zeros(0, np.int64), np.zeros((0, k)), np.zeros(0), np.zeros(0, np.int64)
+    return Rows(sid, X, y, ts, carried.names(), rejected)
+
+
+def load_rows(log, config: Config, chunk_rows: int | None = None, now_ns: int | None = None) -> Rows:
+    """Read and validate a log once for tuning (chunked like the replay when large)."""
+    from monitor.ingest.chunks import log_chunks
+
+    setup = validation_setup(config, now_ns)
+    _, chunks = log_chunks(log, config.section("columns"), chunk_rows)
+    return rows_from_frames(((c.frame, c.row_offset, None) for c in chunks), setup)
