@@ -44,7 +44,7 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
-from monitor.estimators.iv_kernel import chol, chol_inv, meat, packed_index
+from monitor.estimators.iv_moments import chol, chol_inv, meat, packed_index
 
 # state slots
 (F_PREV_LP, F_PREV_E, F_HAVE_PREV, F_W, F_W2, F_N, F_VERDICT, F_EW, F_EE, F_EL, F_LL,
