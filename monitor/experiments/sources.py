@@ -5,7 +5,11 @@
   unpacks the controls column and calls :func:`~monitor.experiments.status.evaluate`.
 - :func:`statuses_from_config` does it for every ``[experiments.NAME]`` of a config, with the
   controls of ``[estimator]``.
-- :func:`experiments_json` gives the JSON document replay writes as ``experiments.json``.
+- :func:`experiments_json` gives the JSON document replay writes as ``experiments.json``;
+  :func:`write_experiments_for_log` is replay's one call: it reads the log's rows of the
+  experiments' series again and validates them through the shared row path
+  (:func:`monitor.rows.validate.validate_frame`, the same settings as the replay), so the
+  chunked replay keeps no rows in memory for it.
 """
 
 from __future__ import annotations
@@ -72,3 +76,31 @@ def write_experiments_json(frame: pd.DataFrame, cfg: Any, out_dir: str | Path) -
     doc = experiments_json(statuses_from_frame(frame, cfg))
     path.write_text(json.dumps(doc, indent=2, allow_nan=False) + "\n", encoding="utf-8")
     return path
+
+
+def write_experiments_for_log(log: str | Path, cfg: Any, out_dir: str | Path,
+                              now_ns: int | None = None) -> Path | None:
+    """Replay's hook: ``out_dir/experiments.json`` for the log ``log`` when ``[experiments]`` is
+    configured (None, and nothing read or written, when it is not).
+
+    Only the rows of series that some experiment matches are validated (validation is per
+    series, so their verdicts are those of the whole log).
+    """
+    import time
+
+    from monitor.ingest.logio import read_log
+    from monitor.rows.validate import validate_frame
+    from monitor.settings import validation_from_config
+
+    plans = plans_from_config(cfg)
+    if not plans:
+        return None
+    frame = read_log(log, cfg.section("columns"))
+    names = pd.unique(frame["series"].astype(str))
+    keep = {n for n in names if any(p.matches(n) for p in plans.values())}
+    frame = frame[frame["series"].astype(str).isin(keep)].reset_index(drop=True)
+    controls, log_controls = controls_from_config(cfg)
+    v = validate_frame(frame, controls=controls, log_controls=log_controls,
+                       settings=validation_from_config(cfg),
+                       now_ns=time.time_ns() if now_ns is None else now_ns)
+    return write_experiments_json(v.good, cfg, out_dir)
