@@ -258,3 +258,19 @@ def test_prices_that_follow_demand_compromise_the_test():
     clean = experiment(seed=1)
     ok = evaluate(clean.log, plan_from_config("t", clean.meta["experiment"]), controls=["weekend"])
     assert ok.health["price_feedback"]["ok"] and ok.health["price_feedback"]["max_abs_t"] < 4
+
+
+def test_details_json_has_no_nan_and_one_series_has_no_spread():
+    import json
+
+    sim = experiment(seed=5, n_series=1, length=30)
+    st = evaluate(sim.log, plan_from_config("e", {"series": ["*"],
+                                                  "start": sim.meta["test_start"]}))
+    doc = st.to_json(details=True)
+    json.dumps(doc, allow_nan=False)       # raises on NaN / inf
+    assert doc["heterogeneity"]["tau"] is None and "fewer than 2" in doc["heterogeneity"]["note"]
+    # prices held at the base price only (the baseline days): nothing identifies b
+    flat = evaluate(sim.log, plan_from_config("e", {"series": ["*"], "start": "2024-02-01",
+                                                    "end": "2024-02-20"}))
+    assert flat.summary["verdict"] == "stalled" and flat.summary["b"] is None
+    json.dumps(flat.to_json(details=True), allow_nan=False)
