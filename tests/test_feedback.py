@@ -106,3 +106,23 @@ def test_streaming_class_message_and_checks():
     with pytest.raises(ValueError, match="t_off"):
         F.PriceFeedback(t_on=2.0, t_off=3.0)
     assert "unit_error" in CHANGE_KINDS
+
+
+def test_verdict_events_open_once_and_resume_across_batches():
+    sim = observational(seed=9, n_series=5)
+    sid, lp, e, use = naive_innovations(sim, ["weekend"])
+    whole = F.run_feedback(sid, lp, e, use)
+    ev = F.verdict_events(whole.out, sid, np.zeros(5))
+    opens = [x for x in ev if x[2] == "open"]
+    assert sorted({x[1] for x in opens}) == list(range(5))       # every series opens
+    # in two batches with the states carried over: the same rows and the same events
+    cut = len(sid) // 2
+    a = F.run_feedback(sid[:cut], lp[:cut], e[:cut], use[:cut])
+    before = a.states[:, F.F_VERDICT].copy()
+    b = F.run_feedback(sid[cut:], lp[cut:], e[cut:], use[cut:], states=a.states)
+    np.testing.assert_array_equal(np.vstack([a.out, b.out]), whole.out)
+    ev2 = F.verdict_events(a.out, sid[:cut], np.zeros(5)) + [
+        (j + cut, *rest) for j, *rest in F.verdict_events(b.out, sid[cut:], before)]
+    assert ev2 == ev
+    assert "1. prices that follow demand" in F.sign_flip_causes(F.V_FEEDBACK, 1)
+    assert F.sign_flip_causes(F.V_NONE, 0).startswith("likely causes, most likely first: 1. bad data")

@@ -206,6 +206,44 @@ def feedback_message(series: str, t: float, coef: float, direction: int) -> str:
             "assignment: --instrument NAME) so elmon estimates through it.")
 
 
+def sign_flip_causes(verdict: int, direction: int) -> str:
+    """Likely causes of a confidently positive elasticity, most likely first, given the
+    series' price-feedback verdict (code) and bias direction on the alert's row."""
+    data = "bad data (units, a broken price feed, a mislabelled series)"
+    test = "a broken price test"
+    if int(verdict) == V_FEEDBACK:
+        lead = ("prices that follow demand (the price-feedback check fired: the estimate is "
+                f"likely {bias_text(direction)}; give an instrument or randomize prices)")
+        return f"likely causes, most likely first: 1. {lead}; 2. {data}; 3. {test}"
+    return (f"likely causes, most likely first: 1. {data}; 2. {test}; 3. prices that follow "
+            "demand (not detected by the price-feedback check so far)")
+
+
+def verdict_events(out: np.ndarray, sid: np.ndarray, before: np.ndarray) -> list[tuple]:
+    """Openings and clearings of the ``price_feedback`` finding from per-row outputs.
+
+    ``out`` are :func:`run_feedback` rows, ``sid`` their series, ``before`` each series'
+    verdict code before these rows. Returns ``(row, series index, action, t, coef, direction)``
+    tuples in row order, action ``"open"`` when a series' verdict becomes ``feedback`` and
+    ``"clear"`` when it leaves it.
+    """
+    v = out[:, FB_VERDICT]
+    prev = np.asarray(before, dtype=np.float64)[sid].copy()
+    # previous verdict of each row within its series: shift by series
+    order = np.argsort(sid, kind="stable")
+    vs, ss = v[order], sid[order]
+    shifted = np.r_[np.nan, vs[:-1]]
+    first = np.r_[True, ss[1:] != ss[:-1]]
+    shifted[first] = prev[order][first]
+    p = np.empty_like(v)
+    p[order] = shifted
+    on = (v == V_FEEDBACK) & (p != V_FEEDBACK)
+    off = (v != V_FEEDBACK) & (p == V_FEEDBACK)
+    rows = np.flatnonzero(on | off)
+    return [(int(j), int(sid[j]), "open" if on[j] else "clear", float(out[j, FB_T]),
+             float(out[j, FB_COEF]), int(out[j, FB_DIRECTION])) for j in rows]
+
+
 class PriceFeedback:
     """Streaming price-feedback diagnostic for one series (see the module docstring).
 
