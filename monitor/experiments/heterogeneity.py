@@ -14,6 +14,9 @@ per-series elasticities around the pooled one.
   below the quantile).
 - ``I^2 = max(0, (Q - (k - 1)) / Q)``: the share of the spread not explained by sampling error
   (Higgins & Thompson 2002).
+
+The interval is a fixed-sample one (valid at a single look), unlike the confidence sequences
+of the pooled and per-series b.
 """
 
 from __future__ import annotations
