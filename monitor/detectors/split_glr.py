@@ -1,0 +1,664 @@
+"""Split GLR: compiled detector of a change in the regression's slope or level at an unknown time.
+
+What it tests
+-------------
+Model (after the controls, whose effects the pipeline's estimator removes: ``y* = log q -
+c' z``): ``y*_i = a + b x_i + e_i`` with ``x_i = log p_i``. For a candidate change time
+``tau`` the data split into a *before* sample B (everything up to ``tau``) and an *after*
+sample A (``tau < i <= t``); each is fitted by least squares in its own centred coordinates
+(``b_S = Sxy_S / Sxx_S``, level ``ybar_S`` at its mean price ``xbar_S``). Two likelihood
+ratios (Chow 1960 two-sample tests; Kim, Mahmoud & Woodall 2003 and Zou, Zhang & Wang 2006
+monitor a regression line's intercept and slope separately in the same way) are formed, with a
+known error variance:
+
+    slope:  2 G_s(tau) = (b_A - b_B)^2 / (sigma_s^2 (1/Sxx_A + 1/Sxx_B))
+            (the level may change at tau as well: it is a nuisance here, so a pure level shift
+            at tau does not move G_s)
+    level:  2 G_l(tau) = d^2 / (sigma_l^2 (1/n_A + 1/n_B + (xbar_A - xbar_B)^2 / (Sxx_A + Sxx_B)))
+            d = ybar_A - ybar_B - b_w (xbar_A - xbar_B),  b_w = (Sxy_A + Sxy_B) / (Sxx_A + Sxx_B)
+            (a change of the level with a common slope)
+
+``G_s`` is exactly the full two-coefficient GLR minus the level-only GLR (the F-test of the
+slope dummy when the level dummy is in the model), so an ``elasticity_change`` alarm means a
+change of the slope beats a level-only change by the likelihood by at least the threshold.
+Each is maximized over candidate times; the *slope chart* alarms when ``max G_s > h_s`` and
+the *level chart* when ``max G_l > h_l``; the argmax is the estimated change time (the
+generalized likelihood ratio of Willsky & Jones 1976 and Lai 1998, window-limited).
+
+Bounded state: candidate times at log-spaced checkpoints
+--------------------------------------------------------
+A candidate ``tau`` needs only the cumulative sums ``(n, Sx, Sxx, Sy, Sxy)`` at ``tau`` (the
+sample A is the current sums minus those). ``NSLOT`` checkpoints are kept in a cascade: at every
+observation slot 0 takes the current sums, and slot ``j`` takes slot ``j - 1``'s value every
+``2^j`` observations, so the checkpoint ages are roughly 1, 2, 4, ..., with neighbouring ages
+within a factor of about 2 (at most 2.6). Using the best checkpoint instead of the exact change
+time keeps at least ``1/sqrt(2)`` and on average about 90% of the statistic's drift (a split
+``tau < tau0`` dilutes the after sample, ``tau > tau0`` drops some of it), which is why a
+ratio of 2 and not more. The oldest slot is the window start: data older than it (ages above
+``2^(NSLOT-1)`` to ``2^NSLOT``) move into the *reference* sums R, which are part of every before
+sample. R is capped at ``ref_cap`` observations (its sums are scaled down when above: the
+estimate is unchanged, its variance treated as that of ``ref_cap`` observations, which is
+conservative), so a slow drift is absorbed while a change within the window is not.
+
+The before sample of checkpoint ``j`` is ``R + C_j``, the after sample ``C_t - C_j``: the test
+uses all data, and its calibration does not depend on how much reference there is (the
+variance has both samples' terms), which is what makes the design hold after a re-anchoring.
+
+Scale, autocorrelation and heteroskedasticity
+---------------------------------------------
+``sigma^2`` is an exponentially weighted (``lam_s``, default 0.995) mean of the squared
+one-step innovations of the pipeline's estimator, winsorized at 2.5 sigma and divided by
+0.97756 = E[min(Z^2, 2.5^2)] (Huber 1981 style; consistency constant checked against scipy in
+the tests), so a level shift or an outlier moves it little. The score of the level test is
+``e_t``, that of the slope test ``u_t = (x_t - xbar) e_t``; an EW lag-1 autocorrelation ``r`` of
+each score inflates its variance by the AR(1) long-run factor ``(1 + r) / (1 - r)`` (r clipped
+to [0, 0.9]; Newey & West 1987 in spirit). The slope score's variance is also compared with
+``sigma^2 Var(x)`` (White 1980 sandwich factor ``kappa = E[u^2] / (sigma^2 E[(x - xbar)^2])``,
+clipped to >= 1), so errors whose variance grows with the price do not inflate the false-alarm
+rate: ``sigma_s^2 = sigma^2 kappa (1 + r_s) / (1 - r_s)``, ``sigma_l^2 = sigma^2 (1 + r_l) / (1 -
+r_l)``.
+
+Start rule and re-anchoring
+---------------------------
+Rows are fed only once the estimator has left ``warming_up``. The level chart starts when
+``min_rows`` (30) rows have been fed (the scale then rests on 30 innovations); the slope chart
+starts when in addition the slope of all data so far has standard error ``sigma_s /
+sqrt(Sxx) <= se_start`` (0.25: half the change of 0.5 the delays are quoted for). At the start
+of a chart all sums so far become the reference and the checkpoints restart, so the
+statistic starts at 0 (no burst at start). A level candidate needs ``n_B >= min_rows`` rows
+with their own level in its before sample.
+
+After a *slope* alarm (argmax checkpoint ``j``) the data before ``tau`` are dropped: the
+after sample becomes the reference (:func:`reanchor_slope`), the slope chart restarts under
+the start rule, and a further change is looked for from there. After a *level* alarm the data
+before ``tau`` keep their slope information but lose their level (:func:`reanchor_level`: their
+centred sums move into the level-free part L), so a slope change that arrived together with a
+level change is still measured against the old slope.
+
+Bits of the returned flags: ``SG_SLOPE`` and ``SG_LEVEL`` (alarms at this row), ``SG_FED``.
+
+>>> import numpy as np
+>>> rng = np.random.default_rng(1)
+>>> st, p = np.zeros(state_size()), params(h_slope=11.0, h_level=11.0)
+>>> alarms = []
+>>> for t in range(1200):
+...     x = rng.normal(0.0, 0.15)
+...     b = -1.0 if t < 800 else -1.8              # the slope changes at t = 800, level held
+...     y = 2.0 + b * x + rng.normal(0.0, 0.15)
+...     e = y - 2.0 - (-1.0 if t < 800 else -1.8) * x   # stand-in for the estimator's innovation
+...     f = split_step(st, 0, x, y, e, float(t), float(t), p)
+...     if f & SG_SLOPE:
+...         alarms.append(t)
+...         reanchor_slope(st, 0, p)
+>>> len(alarms), 800 < alarms[0] < 900
+(1, True)
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+from monitor.estimators import kernel as K
+
+
+# ---------------------------------------------------------------- state layout (floats)
+(D_ON_L, D_ON_S, D_T, D_NF, D_X0, D_W, D_S2, D_E1, D_UU, D_U1, D_XX, D_MX, D_PE, D_PU,
+ D_GS, D_GL, D_JS, D_JL, D_HOT, D_HX) = range(20)
+# reference sums (with their level), level-free reference sums, current window sums
+R0 = 20          # R_N, R_SX, R_SXX, R_SY, R_SXY
+L0 = 25          # L_N, L_XX, L_XY (centred sums of data whose level was retired)
+C0 = 28          # C_N, C_SX, C_SXX, C_SY, C_SXY
+SLOT0 = 33       # NSLOT slots of (n, sx, sxx, sy, sxy, ts)
+SLOT_W = 6
+#: checkpoints; the oldest is the window start (ages up to 2^(NSLOT-1) .. 2^NSLOT - 1)
+NSLOT = 11
+SPLIT_SIZE = SLOT0 + SLOT_W * NSLOT
+
+# ---------------------------------------------------------------- parameters
+(Q_HS, Q_HL, Q_CAP, Q_MINROWS, Q_LAMS, Q_SESTART, Q_LEVEL_ON, Q_SLOPE_ON, Q_HOTS,
+ Q_HOTL) = range(10)
+SPLIT_PARAMS = 10
+DEFAULT_REF_CAP = 2000.0
+DEFAULT_MIN_ROWS = 30.0
+DEFAULT_LAM_SCALE = 0.995
+DEFAULT_SE_START = 0.25
+#: E[min(Z^2, c^2)] for Z ~ N(0, 1), c = 4 (winsorized variance consistency constant)
+WINSOR_C = 4.0
+WINSOR_K = 0.99988
+R_MAX = 0.9
+#: chi-square(1) 0.99 quantile / 2: the likelihood margin of a slope change over a level-only one
+MARGIN = 3.3174
+#: fewest rows after a candidate change time for the slope test: with fewer, a slope rests on
+#: a handful of residuals and heavy tails or price-dependent noise decide it (the smallest
+#: slope change the issue asks about needs far more rows than this anyway)
+MIN_AFTER = 10.0
+#: rows after an alarm during which the scale is not updated (the estimator re-converges)
+HOLD = 50.0
+
+# flags
+SG_SLOPE, SG_LEVEL, SG_FED = 1, 2, 4
+
+# report vector (split_report)
+(RP_TS, RP_NA, RP_BB, RP_BB_SE, RP_BA, RP_BA_SE, RP_LEVEL, RP_LEVEL_SE, RP_STAT,
+ RP_DFB, RP_DFA) = range(11)
+REPORT_SIZE = 11
+
+
+def state_size() -> int:
+    """Floats of one series' split-GLR state: 33 + 6 x NSLOT (99 with 11 checkpoints)."""
+    return SPLIT_SIZE
+
+
+def params(h_slope: float, h_level: float, *, ref_cap: float = DEFAULT_REF_CAP,
+           min_rows: float = DEFAULT_MIN_ROWS, lam_scale: float = DEFAULT_LAM_SCALE,
+           se_start: float = DEFAULT_SE_START, level_on: bool = True,
+           slope_on: bool = True) -> np.ndarray:
+    """Parameter vector of :func:`split_step` (thresholds in units of G = log-likelihood
+    ratio, i.e. half the chi-square(1) statistic)."""
+    p = np.zeros(SPLIT_PARAMS)
+    p[Q_HS], p[Q_HL], p[Q_CAP], p[Q_MINROWS] = h_slope, h_level, ref_cap, min_rows
+    p[Q_LAMS], p[Q_SESTART] = lam_scale, se_start
+    p[Q_LEVEL_ON], p[Q_SLOPE_ON] = float(level_on), float(slope_on)
+    p[Q_HOTS], p[Q_HOTL] = 0.5 * h_slope, 0.5 * h_level
+    return p
+
+
+# ---------------------------------------------------------------- helpers
+@njit(cache=True, inline="always")
+def _scales(st, at):
+    """``(sigma^2, sigma_s^2, sigma_l^2)``: the winsorized scale and the score variances
+    inflated for autocorrelation (and, for the slope, heteroskedasticity)."""
+    m2 = st[at + D_S2]
+    if not (m2 > 0.0):
+        return np.nan, np.nan, np.nan
+    s2 = m2 / WINSOR_K
+    rl = min(max(st[at + D_E1] / m2, 0.0), R_MAX)
+    uu = st[at + D_UU]
+    rs = 0.0
+    kap = 1.0
+    if uu > 0.0:
+        rs = min(max(st[at + D_U1] / uu, 0.0), R_MAX)
+        xx = st[at + D_XX]
+        if xx > 0.0:
+            kap = max(uu / (m2 * xx), 1.0)
+    return s2, s2 * kap * (1.0 + rs) / (1.0 - rs), s2 * (1.0 + rl) / (1.0 - rl)
+
+
+@njit(cache=True, inline="always")
+def _var_at(st, at, s2, mx):
+    """The error variance at mean log price ``mx`` (centred coordinates): ``sigma^2 + g (mx -
+    xbar)`` with ``g = E[(x - xbar) e^2] / E[(x - xbar)^2]`` (a linear variance function, so
+    the level test of a few rows at high or low prices uses their own variance), kept within
+    [sigma^2 / 4, 4 sigma^2]."""
+    xx = st[at + D_XX]
+    if not (xx > 0.0):
+        return s2
+    v = s2 + st[at + D_HX] / (WINSOR_K * xx) * (mx - st[at + D_MX])
+    return min(max(v, 0.25 * s2), 4.0 * s2)
+
+
+@njit(cache=True, inline="always")
+def _moments(n, sx, sxx, sy, sxy):
+    """Mean price, mean response, centred Sxx and Sxy of a sample given by its raw sums."""
+    if n <= 0.0:
+        return 0.0, 0.0, 0.0, 0.0
+    mx = sx / n
+    my = sy / n
+    cxx = sxx - sx * mx
+    if cxx < 0.0:
+        cxx = 0.0
+    return mx, my, cxx, sxy - sx * my
+
+
+@njit(cache=True, inline="always")
+def _candidate(st, at, j, s2s, s2l, minrows):
+    """``(G_s, G_l)`` of checkpoint ``j`` (-1 where undefined)."""
+    o = at + SLOT0 + SLOT_W * j
+    na = st[at + C0] - st[o]
+    gs = -1.0
+    gl = -1.0
+    if na < 1.0:
+        return gs, gl
+    mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
+                                  st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
+    nb = st[at + R0] + st[o]
+    mxb, myb, cxb, cyb = _moments(nb, st[at + R0 + 1] + st[o + 1], st[at + R0 + 2] + st[o + 2],
+                                  st[at + R0 + 3] + st[o + 3], st[at + R0 + 4] + st[o + 4])
+    cxb += st[at + L0 + 1]
+    cyb += st[at + L0 + 2]
+    tiny = 1e-12
+    if na >= MIN_AFTER and cxa > tiny * na and cxb > tiny and s2s > 0.0:
+        db = cya / cxa - cyb / cxb
+        gs = 0.5 * db * db / (s2s * (1.0 / cxa + 1.0 / cxb))
+    if nb >= minrows and s2l > 0.0:
+        cx = cxa + cxb
+        dx = mxa - mxb
+        bw = (cya + cyb) / cx if cx > tiny else 0.0
+        if cx > tiny or dx == 0.0:
+            s2 = st[at + D_S2] / WINSOR_K
+            fl = s2l / s2
+            v = (_var_at(st, at, s2, mxa) / na + _var_at(st, at, s2, mxb) / nb
+                 + (s2 * dx * dx / cx if cx > tiny else 0.0))
+            d = mya - myb - bw * dx
+            gl = 0.5 * d * d / (fl * v)
+    return gs, gl
+
+
+@njit(cache=True, inline="always")
+def _add_ref(st, at, n, sx, sxx, sy, sxy, cap):
+    """Move a block of sums into the reference R, then cap R (with the level-free part L)."""
+    st[at + R0] += n
+    st[at + R0 + 1] += sx
+    st[at + R0 + 2] += sxx
+    st[at + R0 + 3] += sy
+    st[at + R0 + 4] += sxy
+    tot = st[at + R0] + st[at + L0]
+    if tot > cap:
+        f = cap / tot
+        for i in range(5):
+            st[at + R0 + i] *= f
+        for i in range(3):
+            st[at + L0 + i] *= f
+
+
+@njit(cache=True, inline="always")
+def _rebase(st, at, j):
+    """Make checkpoint ``j`` the window start: its sums move into R (the caller decides what
+    R is), later checkpoints and the current sums are re-expressed from it, older slots
+    collapse onto it."""
+    o = at + SLOT0 + SLOT_W * j
+    n, sx, sxx, sy, sxy = st[o], st[o + 1], st[o + 2], st[o + 3], st[o + 4]
+    ts = st[o + 5]
+    for i in range(NSLOT):
+        q = at + SLOT0 + SLOT_W * i
+        if i >= j:
+            st[q] = 0.0
+            st[q + 1] = 0.0
+            st[q + 2] = 0.0
+            st[q + 3] = 0.0
+            st[q + 4] = 0.0
+            st[q + 5] = ts
+        else:
+            st[q] -= n
+            st[q + 1] -= sx
+            st[q + 2] -= sxx
+            st[q + 3] -= sy
+            st[q + 4] -= sxy
+    st[at + C0] -= n
+    st[at + C0 + 1] -= sx
+    st[at + C0 + 2] -= sxx
+    st[at + C0 + 3] -= sy
+    st[at + C0 + 4] -= sxy
+    return n, sx, sxx, sy, sxy
+
+
+@njit(cache=True, inline="always")
+def _restart(st, at, ts, cap):
+    """All data so far become the reference; every checkpoint at the current time."""
+    n, sx, sxx, sy, sxy = st[at + C0], st[at + C0 + 1], st[at + C0 + 2], st[at + C0 + 3], \
+        st[at + C0 + 4]
+    for i in range(5):
+        st[at + C0 + i] = 0.0
+    for i in range(NSLOT):
+        q = at + SLOT0 + SLOT_W * i
+        for m in range(5):
+            st[q + m] = 0.0
+        st[q + 5] = ts
+    st[at + D_T] = 0.0
+    _add_ref(st, at, n, sx, sxx, sy, sxy, cap)
+
+
+# ---------------------------------------------------------------- the step
+@njit(cache=True, inline="always")
+def split_step(st, at, x, y, e, n_obs, ts, p):
+    """Feed one row (state ``st[at:]``): ``x = log p``, ``y = y*`` (controls removed), ``e`` the
+    estimator's one-step innovation (for the scale), ``n_obs`` the series' observation number,
+    ``ts`` its time. Returns the flags (``SG_*``); the caller re-anchors after an alarm
+    (:func:`reanchor_slope` / :func:`reanchor_level`). A NaN ``x``, ``y`` or ``e`` is skipped."""
+    if not (x == x) or not (y == y) or not (e == e):
+        return 0
+    if st[at + D_NF] == 0.0:
+        st[at + D_X0] = x
+        for i in range(NSLOT):
+            st[at + SLOT0 + SLOT_W * i + 5] = ts
+    x = x - st[at + D_X0]
+    y = y
+    lam = p[Q_LAMS]
+    cap = p[Q_CAP]
+    # --- scale, autocorrelation and sandwich statistics (EW, weight D_W); frozen while a
+    # chart's statistic is above half its threshold (a change building up would inflate it);
+    # no winsorizing before min_rows rows (the scale is not yet known)
+    if st[at + D_HOT] > 0.0:
+        st[at + D_HOT] -= 1.0
+    else:
+        w = lam * st[at + D_W] + 1.0
+        iw = 1.0 / w
+        st[at + D_W] = w
+        mx = st[at + D_MX] + (x - st[at + D_MX]) * iw
+        st[at + D_MX] = mx
+        xc = x - mx
+        s2 = st[at + D_S2]
+        ec = e
+        if s2 > 0.0 and st[at + D_NF] >= p[Q_MINROWS]:
+            lim = WINSOR_C * np.sqrt(s2 / WINSOR_K)
+            if ec > lim:
+                ec = lim
+            elif ec < -lim:
+                ec = -lim
+        u = xc * ec
+        st[at + D_S2] = s2 + (ec * ec - s2) * iw
+        if st[at + D_NF] > 0.0:
+            st[at + D_E1] += (ec * st[at + D_PE] - st[at + D_E1]) * iw
+            st[at + D_U1] += (u * st[at + D_PU] - st[at + D_U1]) * iw
+        st[at + D_UU] += (u * u - st[at + D_UU]) * iw
+        st[at + D_XX] += (xc * xc - st[at + D_XX]) * iw
+        st[at + D_HX] += (xc * ec * ec - st[at + D_HX]) * iw
+        st[at + D_PE] = ec
+        st[at + D_PU] = u
+    st[at + D_NF] += 1.0
+    # --- checkpoints (cascade), then the row enters the current sums
+    t = st[at + D_T] + 1.0
+    st[at + D_T] = t
+    ti = int(t)
+    moved = False
+    for j in range(NSLOT - 1, 0, -1):
+        if ti % (1 << j) == 0:
+            q = at + SLOT0 + SLOT_W * j
+            r = q - SLOT_W
+            for m in range(SLOT_W):
+                st[q + m] = st[r + m]
+            if j == NSLOT - 1:
+                moved = True
+    q = at + SLOT0
+    for m in range(5):
+        st[q + m] = st[at + C0 + m]
+    st[q + 5] = ts
+    if moved:  # data older than the new window start join the reference
+        n, sx, sxx, sy, sxy = _rebase(st, at, NSLOT - 1)
+        _add_ref(st, at, n, sx, sxx, sy, sxy, cap)
+    st[at + C0] += 1.0
+    st[at + C0 + 1] += x
+    st[at + C0 + 2] += x * x
+    st[at + C0 + 3] += y
+    st[at + C0 + 4] += x * y
+    # --- start rules
+    s2, s2s, s2l = _scales(st, at)
+    flags = SG_FED
+    if st[at + D_NF] < p[Q_MINROWS] or not (s2 > 0.0):
+        return flags
+    if st[at + D_ON_L] == 0.0 and p[Q_LEVEL_ON] != 0.0:
+        st[at + D_ON_L] = 1.0
+        _restart(st, at, ts, cap)
+        return flags
+    if st[at + D_ON_S] == 0.0 and p[Q_SLOPE_ON] != 0.0:
+        tn = st[at + R0] + st[at + C0]
+        _, _, cxx, _ = _moments(tn, st[at + R0 + 1] + st[at + C0 + 1],
+                                st[at + R0 + 2] + st[at + C0 + 2],
+                                st[at + R0 + 3] + st[at + C0 + 3],
+                                st[at + R0 + 4] + st[at + C0 + 4])
+        cxx += st[at + L0 + 1]
+        if cxx > 0.0 and s2s / cxx <= p[Q_SESTART] * p[Q_SESTART]:
+            st[at + D_ON_S] = 1.0
+            _restart(st, at, ts, cap)
+            return flags
+    # --- the statistics
+    gs_max = 0.0
+    gl_max = 0.0
+    gl_js = 0.0
+    js = -1.0
+    jl = -1.0
+    prev_n = -1.0
+    for j in range(NSLOT):
+        nj = st[at + SLOT0 + SLOT_W * j]
+        if nj == prev_n:
+            continue
+        prev_n = nj
+        gs, gl = _candidate(st, at, j, s2s, s2l, p[Q_MINROWS])
+        if gs > gs_max:
+            gs_max = gs
+            js = j
+            gl_js = max(gl, 0.0)
+        if gl > gl_max:
+            gl_max = gl
+            jl = j
+    if st[at + D_ON_S] == 0.0:
+        gs_max = 0.0
+        js = -1.0
+    if st[at + D_ON_L] == 0.0:
+        gl_max = 0.0
+        jl = -1.0
+    # a slope alarm needs the full (level + slope) GLR at its change time to beat the best
+    # level-only GLR at any change time by MARGIN; else a level step inside the after sample
+    # (which biases its slope) is the better explanation, and the level chart decides first.
+    # D_GS holds the statistic compared with h_s: G_s where the margin holds, else 0.
+    hot = gs_max > p[Q_HOTS] or gl_max > p[Q_HOTL]
+    if gs_max + gl_js - gl_max < MARGIN:
+        gs_max = 0.0
+    st[at + D_GS] = gs_max
+    st[at + D_GL] = gl_max
+    st[at + D_JS] = js
+    st[at + D_JL] = jl
+    level = gl_max > p[Q_HL]
+    if gs_max > p[Q_HS] and not level:
+        flags |= SG_SLOPE
+    if level:
+        flags |= SG_LEVEL
+    # while a change is building up, its residuals would inflate the scale: freeze it
+    if hot:
+        st[at + D_HOT] = max(st[at + D_HOT], 1.0)
+    return flags
+
+
+@njit(cache=True, inline="always")
+def split_report(st, at, slope, n_obs, out):
+    """Fill ``out`` (:data:`REPORT_SIZE`) for the last alarm of the slope (``slope`` True) or
+    level chart: the change time, b before / after with standard errors (sigma_s scale) and
+    degrees of freedom, the level change ``d`` (log scale) with its se, and the statistic."""
+    j = int(st[at + (D_JS if slope else D_JL)])
+    for i in range(REPORT_SIZE):
+        out[i] = np.nan
+    if j < 0:
+        return
+    o = at + SLOT0 + SLOT_W * j
+    _, s2s, s2l = _scales(st, at)
+    na = st[at + C0] - st[o]
+    mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
+                                  st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
+    nb = st[at + R0] + st[o]
+    mxb, myb, cxb, cyb = _moments(nb, st[at + R0 + 1] + st[o + 1], st[at + R0 + 2] + st[o + 2],
+                                  st[at + R0 + 3] + st[o + 3], st[at + R0 + 4] + st[o + 4])
+    cxb += st[at + L0 + 1]
+    cyb += st[at + L0 + 2]
+    out[RP_TS] = st[o + 5]
+    out[RP_NA] = na
+    s = np.sqrt(s2s)
+    if cxb > 0.0:
+        out[RP_BB] = cyb / cxb
+        out[RP_BB_SE] = s / np.sqrt(cxb)
+    if cxa > 0.0 and na >= 2.0:
+        out[RP_BA] = cya / cxa
+        out[RP_BA_SE] = s / np.sqrt(cxa)
+    cx = cxa + cxb
+    dx = mxa - mxb
+    bw = (cya + cyb) / cx if cx > 0.0 else 0.0
+    if nb > 0.0 and na > 0.0:
+        out[RP_LEVEL] = mya - myb - bw * dx
+        out[RP_LEVEL_SE] = np.sqrt(s2l * (1.0 / na + 1.0 / nb + (dx * dx / cx if cx > 0.0 else 0.0)))
+    out[RP_STAT] = st[at + (D_GS if slope else D_GL)]
+    out[RP_DFB] = nb + st[at + L0] - 2.0
+    out[RP_DFA] = na - 2.0
+
+
+@njit(cache=True, inline="always")
+def after_fit(st, at, slope):
+    """``(n_A, a, b)`` of the after sample of the last alarm's checkpoint in raw ``log p``
+    coordinates (``y* = a + b log p``), before re-anchoring; NaN where undefined."""
+    j = int(st[at + (D_JS if slope else D_JL)])
+    if j < 0:
+        return 0.0, np.nan, np.nan
+    o = at + SLOT0 + SLOT_W * j
+    na = st[at + C0] - st[o]
+    mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
+                                  st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
+    if na < 2.0 or not (cxa > 0.0):
+        return na, np.nan, np.nan
+    b = cya / cxa
+    return na, mya - b * (mxa + st[at + D_X0]), b
+
+
+@njit(cache=True, inline="always")
+def _clear_window(st, at):
+    """Empty the current sums and every checkpoint (their time: the latest checkpoint's)."""
+    ts = st[at + SLOT0 + 5]
+    for i in range(5):
+        st[at + C0 + i] = 0.0
+    for i in range(NSLOT):
+        q = at + SLOT0 + SLOT_W * i
+        for m in range(5):
+            st[q + m] = 0.0
+        st[q + 5] = ts
+    st[at + D_T] = 0.0
+
+
+@njit(cache=True, inline="always")
+def _retire_level(st, at, n, sx, sxx, sy, sxy):
+    """Add a sample's centred sums to the level-free part L (it keeps its slope information
+    under its own intercept)."""
+    if n <= 0.0:
+        return
+    _, _, cxx, cxy = _moments(n, sx, sxx, sy, sxy)
+    st[at + L0] += n
+    st[at + L0 + 1] += cxx
+    st[at + L0 + 2] += cxy
+
+
+@njit(cache=True, inline="always")
+def reanchor_slope(st, at, p):
+    """After a slope alarm: every sum is dropped and the slope chart waits for the start rule
+    on new data; the level chart's candidates need ``min_rows`` new rows.
+
+    The after sample is *not* kept as the new reference: it is the sample that looked most
+    extreme (selected by the maximum), so its slope overshoots the new regime, and a
+    reference built on it would raise a second alarm as later data regress to the truth
+    (measured: a follow-on alarm within a few hundred rows after most alarms)."""
+    _clear_window(st, at)
+    for i in range(5):
+        st[at + R0 + i] = 0.0
+    for i in range(3):
+        st[at + L0 + i] = 0.0
+    st[at + D_ON_S] = 0.0
+    st[at + D_GS] = 0.0
+    st[at + D_GL] = 0.0
+    st[at + D_HOT] = HOLD
+
+
+@njit(cache=True, inline="always")
+def reanchor_level(st, at, p):
+    """After a level alarm at checkpoint ``j``: the data before and after the change time keep
+    their slope information, each under its own intercept (centred sums into L), but not their
+    level (the after sample's level is selected, as in :func:`reanchor_slope`); the level chart
+    needs ``min_rows`` new rows, the slope chart continues against the old slope."""
+    j = int(st[at + D_JL])
+    if j < 0:
+        return
+    o = at + SLOT0 + SLOT_W * j
+    _retire_level(st, at, st[at + R0] + st[o], st[at + R0 + 1] + st[o + 1],
+                  st[at + R0 + 2] + st[o + 2], st[at + R0 + 3] + st[o + 3],
+                  st[at + R0 + 4] + st[o + 4])
+    _retire_level(st, at, st[at + C0] - st[o], st[at + C0 + 1] - st[o + 1],
+                  st[at + C0 + 2] - st[o + 2], st[at + C0 + 3] - st[o + 3],
+                  st[at + C0 + 4] - st[o + 4])
+    _clear_window(st, at)
+    for i in range(5):
+        st[at + R0 + i] = 0.0
+    st[at + D_GL] = 0.0
+    st[at + D_GS] = 0.0
+    st[at + D_HOT] = HOLD
+
+
+@njit(cache=True, inline="always")
+def info_per_obs(st, at, db):
+    """Information per observation about a slope change ``db``: ``db^2 Var(x) / (2 sigma_s^2)``
+    (Kullback-Leibler, normal errors; Var(x) the EW variance of log price). NaN before any
+    scale."""
+    _, s2s, _ = _scales(st, at)
+    vx = st[at + D_XX]
+    if not (s2s > 0.0) or not (vx >= 0.0):
+        return np.nan
+    return db * db * vx / (2.0 * s2s)
+
+
+@njit(cache=True, inline="always")
+def anchor_estimator(est, k, st, at, slope):
+    """Put the estimator on the data since the last alarm's change time (call before
+    re-anchoring the detector).
+
+    After a slope alarm, the intercept and slope become the least-squares fit of the after
+    sample, ``P``'s and ``S``'s (intercept, log price) block its ``M^-1`` and ``M`` (raw
+    coordinates, ``M = [[n, Sx], [Sx, Sxx]]``), their cross terms with the controls 0: the
+    reported b steps to the new regime at once, with the after sample's variance
+    ``sigma^2 M^-1``. After a level alarm only the intercept moves, to the after sample's mean
+    level at the current slope. The estimator's weights, residual sum and controls are kept.
+    (Local fallback for a reset-to-window method of :mod:`monitor.estimators.kernel`.)"""
+    j = int(st[at + (D_JS if slope else D_JL)])
+    if j < 0:
+        return
+    o = at + SLOT0 + SLOT_W * j
+    na = st[at + C0] - st[o]
+    mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
+                                  st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
+    if na < 1.0:
+        return
+    mxr = mxa + st[at + D_X0]
+    th = K.NS
+    p0 = K.NS + k
+    s0 = K.NS + k + k * k
+    if not slope or na < 3.0 or not (cxa > 0.0):
+        # level: a = level - b mxr with Var(level) = sigma^2 / n_A, Var(b) kept, no covariance
+        b = est[th + 1]
+        est[th] = mya - b * mxr
+        pbb = est[p0 + k + 1]
+        for i in range(2):
+            for jj in range(k):
+                if jj >= 2:
+                    est[p0 + i * k + jj] = 0.0
+                    est[p0 + jj * k + i] = 0.0
+                    est[s0 + i * k + jj] = 0.0
+                    est[s0 + jj * k + i] = 0.0
+        p00 = 1.0 / na + mxr * mxr * pbb
+        p01 = -mxr * pbb
+        est[p0] = p00
+        est[p0 + 1] = p01
+        est[p0 + k] = p01
+        est[p0 + k + 1] = pbb
+        det = p00 * pbb - p01 * p01
+        if det > 0.0:
+            est[s0] = pbb / det
+            est[s0 + 1] = -p01 / det
+            est[s0 + k] = -p01 / det
+            est[s0 + k + 1] = p00 / det
+        return
+    b = cya / cxa
+    est[th] = mya - b * mxr
+    est[th + 1] = b
+    m01 = na * mxr
+    m11 = cxa + na * mxr * mxr
+    det = na * cxa
+    for i in range(2):
+        for jj in range(k):
+            if jj >= 2:
+                est[p0 + i * k + jj] = 0.0
+                est[p0 + jj * k + i] = 0.0
+                est[s0 + i * k + jj] = 0.0
+                est[s0 + jj * k + i] = 0.0
+    est[p0] = m11 / det
+    est[p0 + 1] = -m01 / det
+    est[p0 + k] = -m01 / det
+    est[p0 + k + 1] = na / det
+    est[s0] = na
+    est[s0 + 1] = m01
+    est[s0 + k] = m01
+    est[s0 + k + 1] = m11
