@@ -1,7 +1,8 @@
 """Batch path: many series (or one long series) through the compiled RLS step at full speed.
 
 :func:`run_batch` gives the same numbers as calling :meth:`ElasticityRLS.learn_one` row by row,
-to the bit, because both run :func:`monitor.estimators.kernel.rls_step`.
+to the bit, because both run the same compiled step (:mod:`monitor.estimators.dispatch`). It
+serves both models (:class:`ElasticityRLS`, :class:`ElasticityPoisson`).
 
 >>> import numpy as np
 >>> from monitor.estimators import ElasticityRLS, run_batch
@@ -21,6 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from monitor.estimators import kernel as K
+from monitor.estimators.dispatch import estimator_run, model_code, work_size
 from monitor.types import STATUS_LABELS
 
 
@@ -64,13 +66,13 @@ class BatchResult:
 
 
 def initial_states(est, n_series: int) -> np.ndarray:
-    """``(n_series, state_size)`` array of fresh states with the estimator's prior."""
-    st = K.init_state(*est.prior())
-    return np.tile(st, (n_series, 1))
+    """``(n_series, state_size)`` array of fresh states for the estimator's settings."""
+    return np.tile(est.initial_state(), (n_series, 1))
 
 
 def run_batch(est, sid: np.ndarray, X: np.ndarray, y: np.ndarray,
-              states: np.ndarray | None = None, out: np.ndarray | None = None) -> BatchResult:
+              states: np.ndarray | None = None, out: np.ndarray | None = None,
+              offset: np.ndarray | None = None) -> BatchResult:
     """Run the estimator's settings over rows ``(sid[j], X[j], y[j])`` in order.
 
     Parameters
@@ -80,9 +82,11 @@ def run_batch(est, sid: np.ndarray, X: np.ndarray, y: np.ndarray,
     sid : int array (n,)
         Series index of each row, in ``0 .. n_series - 1``; rows of one series in time order.
     X : float array (n, k)
-        Design rows from :func:`monitor.transform.design_matrix`.
+        Design rows from :func:`monitor.estimators.transform.design_matrix`.
     y : float array (n,)
-        ``log q``.
+        ``log q`` (log-log model) or ``q`` (Poisson model, zeros allowed).
+    offset : float array (n,), optional
+        ``log exposure`` per row (Poisson model only).
     states : float array (n_series, state_size), optional
         Starting states (e.g. restored checkpoints); updated in place. Fresh priors if omitted.
     """
@@ -96,9 +100,15 @@ def run_batch(est, sid: np.ndarray, X: np.ndarray, y: np.ndarray,
     n_series = int(sid.max()) + 1 if sid.size else 0
     if states is None:
         states = initial_states(est, n_series)
-    elif states.shape[0] < n_series or states.shape[1] != K.state_size(est._k):
-        raise ValueError(f"states has shape {states.shape}; expected ({n_series}, {K.state_size(est._k)})")
+    elif states.shape[0] < n_series or states.shape[1] != est.state_size:
+        raise ValueError(f"states has shape {states.shape}; expected ({n_series}, {est.state_size})")
     if out is None:
         out = np.empty((X.shape[0], K.NOUT))
-    K.rls_run(states, sid, X, y, *est.kernel_args, out)
+    off = np.empty(0) if offset is None else np.ascontiguousarray(offset, dtype=np.float64)
+    if off.size and off.shape[0] != X.shape[0]:
+        raise ValueError("offset must have one value per row")
+    if off.size and est.model != "poisson":
+        raise ValueError("offset (exposure) is used by the Poisson model only")
+    estimator_run(model_code(est.model), states, sid, X, y, off, *est.kernel_args, out,
+                  np.empty(work_size(est.model, est._k)))
     return BatchResult(out=out, states=states)

@@ -1,34 +1,59 @@
-"""Compiled recursive-least-squares step with exponential forgetting, shared by every path.
+"""Compiled log-log estimator step (weighted least squares with exponential forgetting),
+shared by every path.
 
-One series' state is one flat float64 vector (see :data:`NS` and :func:`state_size`), so a
-batch of series is a 2-D array and a checkpoint is a list of floats. The same compiled
-:func:`rls_step` runs inside :meth:`monitor.ElasticityRLS.learn_one` and inside the batch loop
-:func:`rls_run`, so streaming and batch results are identical to the bit.
+One series' state is one flat float64 vector (layout below, size :func:`state_size`), so a
+batch of series is a 2-D array and a checkpoint is a list of floats. The same compiled step
+runs inside :meth:`monitor.estimators.ElasticityRLS.learn_one`, the batch loop :func:`rls_run`
+and the pipeline (through :func:`monitor.estimators.dispatch.estimator_step`), so streaming and
+batch results are identical to the bit.
 
-The update, for design row ``x`` (length k), response ``y = log q`` and forgetting factor
-``lam`` (Ljung & Soderstrom 1983, ch. 2; symmetric covariance form):
+The update, for design row ``x`` (length k), response ``y = log q`` and forgetting ``lam``:
 
-    e   = y - x' theta                     one-step-ahead prediction error (log scale)
-    u   = P x,  r = x' u,  d = lam + r
-    theta <- theta + u e / d
-    P   <- (P - u u' / d) / lam            computed on the upper triangle and mirrored
-    S   <- lam^2 S + x x'                  for the sandwich variance
-    V   <- lam V + lam e^2 / d             weighted residual sum of squares
+    e   = y - x' theta_{t-1}              one-step-ahead prediction error (log scale)
+    A   <- lam A + x x'                   information matrix (exponentially weighted X'X)
+    c   <- lam c + x y,  Y2 <- lam Y2 + y^2
+    theta = A^- c                         exact weighted least squares at every step
+    V   = Y2 - theta' c                   weighted residual sum of squares
     W   <- lam W + 1,   W2 <- lam^2 W2 + 1 sum of weights and of squared weights
 
-Derived quantities: ``sigma^2 = V / (W - k)``, ``Var(theta) = sigma^2 P S P`` (the weighted
-least-squares sandwich; with forgetting, ``sigma^2 P`` alone overstates the variance by about
-``(1 + lam)``), ``n_eff = W^2 / W2`` (Kish 1965), confidence limits from Student-t with
-``n_eff - k`` degrees of freedom.
+The information form is recursive least squares written on ``A`` instead of ``P = A^{-1}``
+(Ljung & Soderstrom 1983, ch. 2, give both). It starts exactly diffuse: no prior unless the
+user gives one (then ``A_0 = diag(1 / prior variance)``, ``c_0 = A_0 theta_0``), a singular
+``A`` leaves the unidentified columns out (:mod:`monitor.estimators.solve`), so forgetting 1
+is ordinary least squares from the first identified observation on, with no error carried
+from step to step.
 
-Excitation guard: the exponentially weighted sd of log price (same ``lam``) is tracked; while it
-is below ``min_price_sd`` the status is ``low_variation``. With flat prices the covariance winds
-up as ``lam^-n`` along the unexcited direction and the first price change afterwards throws b
-around. The guard tracks the same sd over a short window (``guard_lam``, default 0.8, about 9
-observations) and, while that is below ``min_price_sd``, pauses forgetting (``lam`` is replaced by
-1 in the step): observations are then forgotten only as fast as informative ones replace them,
-and P stops growing within a few observations of the prices going flat. This is the "conditional updating" remedy for
-estimator windup (Astrom & Wittenmark 1995, Adaptive Control, sec. 11.x; from memory).
+Bands (``band``): ``classic`` ``Var(theta) = sigma^2 P S P``, ``S = sum w^2 x x'``,
+``sigma^2 = V / (W - rank)``; ``hc`` the White (1980) sandwich ``c P Omega P`` with
+``Omega = sum w^2 e^2 x x'`` at the current theta and the small-sample factor
+``c = W2 / (W2 - rank W3 / W)`` (``W3 = sum w^3``): with leverages ``h_s ~ rank w_s / W`` the meat
+is biased by ``sum w_s^2 h_s``, and ``c`` removes that; at forgetting 1 it is ``n / (n - k)``,
+MacKinnon & White's (1985) HC1; ``hac`` Newey & West (1987) with a Bartlett
+kernel over ``lags`` lags, same factor (:mod:`monitor.estimators.sandwich`). Limits: Student-t
+with ``n_eff - rank`` degrees of freedom, ``n_eff = W^2 / W2`` (Kish 1965). The standardized
+innovation ``z = e / (sigma sqrt(1 + x' P S P x))`` uses the previous state and the classic
+form for every band (the detectors' thresholds are designed for it).
+
+Identification: ``x_sd = sqrt(s_b / W)``, the weighted sd of log price left after the
+intercept and the controls (``s_b = 1 / (A^{-1})_bb``, :mod:`monitor.estimators.solve`). The
+status is ``low_variation`` while ``x_sd`` or the exponentially weighted sd of the raw log price
+(same ``lam``) is below ``min_price_sd``, and the elasticity is not reported (NaN) while the
+log price column is dependent on the others.
+
+Excitation guard: the sd of log price over a short window (``guard_lam``, default 0.8, about 9
+observations) is tracked; while it is below ``min_price_sd`` forgetting is paused (``lam``
+replaced by 1), so information along the unexcited direction is not forgotten while prices are
+flat: the "conditional updating" remedy for estimator windup (Astrom & Wittenmark 1995,
+Adaptive Control, sec. 11.x; from memory).
+
+Retransformation diagnostics: exponentially weighted sums of the a-posteriori residual
+``r = y - x' theta_t`` to the powers 2, 3, 4 and of ``exp(r)`` (Duan 1983 smearing).
+
+State layout (float64): ``NS`` scalars, ``theta`` (k), ``A`` (k x k), ``c`` (k), the centring
+reference (first observation's ``x_1..x_{k-1}, y``: k), the meat
+tensor (classic: ``k(k+1)/2``; hc: ``k(k+1)/2 (k+1)(k+2)/2``), and for hac per lag its tensor
+plus the lagged row ``(x, y, weight)``. Bytes per series (8 per float) at k = 2: classic 264,
+hc 400, hac with 4 lags 1,168 (the previous RLS state: 200).
 """
 
 from __future__ import annotations
@@ -36,32 +61,70 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from monitor.estimators.sandwich import (centre_theta, centre_vector, meat_form, s_form,
+                                        update_q, update_t)
+from monitor.estimators.solve import DROP_TOL, factor, price_column, solve
 from monitor.estimators.tquantile import t_lookup
+
 
 # layout of the scalar part of a state vector
 (I_W, I_W2, I_V, I_N, I_LPW, I_LPMEAN, I_LPM2, I_E, I_ZSD, I_Z, I_PAUSED, I_NPAUSED,
- I_GW, I_GMEAN, I_GM2) = range(15)
-NS = 15
+ I_GW, I_GMEAN, I_GM2, I_YY, I_XSD, I_R2, I_R3, I_R4, I_SMEAR, I_W3) = range(22)
+NS = 22
 
 # columns of the per-observation output row
-O_BETA, O_SE, O_LO, O_HI, O_NEFF, O_STATUS, O_E, O_Z, O_INTERCEPT, O_RESID_SD = range(10)
-NOUT = 10
+# O_BAND: band code of the estimate; O_YLOG: the log-scale response the detectors use (y itself
+# here; the Poisson model's working response)
+(O_BETA, O_SE, O_LO, O_HI, O_NEFF, O_STATUS, O_E, O_Z, O_INTERCEPT, O_RESID_SD,
+ O_BAND, O_YLOG) = range(12)
+NOUT = 12
 
 ST_WARMING_UP, ST_OK, ST_LOW_VARIATION = 0, 1, 2
 
+#: band codes (recorded per estimate in column ``O_BAND``)
+BAND_CLASSIC, BAND_HC, BAND_HAC = 0, 1, 2
+BANDS = {"classic": BAND_CLASSIC, "hc": BAND_HC, "hac": BAND_HAC}
+BAND_NAMES = {v: k for k, v in BANDS.items()}
 
-def state_size(k: int) -> int:
-    """Length of one series' state vector for ``k`` parameters."""
-    return NS + k + 2 * k * k
+
+def n_ab(k: int) -> int:
+    return k * (k + 1) // 2
 
 
-def init_state(prior_mean: np.ndarray, prior_var: np.ndarray) -> np.ndarray:
-    """Fresh state with prior mean ``theta0`` and diagonal prior covariance ``P0``."""
-    k = prior_mean.shape[0]
-    st = np.zeros(state_size(k))
-    st[NS:NS + k] = prior_mean
-    P = np.diag(np.asarray(prior_var, dtype=np.float64))
-    st[NS + k:NS + k + k * k] = P.ravel()
+def n_cd(k: int, band: int) -> int:
+    return 1 if band == BAND_CLASSIC else (k + 1) * (k + 2) // 2
+
+
+def state_size(k: int, band: int = BAND_CLASSIC, lags: int = 0) -> int:
+    """Length of one series' state vector for ``k`` parameters, band code and HAC lags."""
+    base = NS + 3 * k + k * k + n_ab(k) * n_cd(k, band)
+    if band == BAND_HAC:
+        base += lags * (n_ab(k) * n_cd(k, band) + k + 2)
+    return base
+
+
+def work_size(k: int) -> int:
+    """Length of the scratch vector the general step needs."""
+    return k * k + 8 * k
+
+
+def init_state(prior_mean: np.ndarray, prior_var: np.ndarray, band: int = BAND_CLASSIC,
+               lags: int = 0) -> np.ndarray:
+    """Fresh state; ``prior_var`` entries that are ``inf`` are diffuse (no prior information).
+
+    A finite prior variance ``v_i`` on coefficient i enters as information ``1 / v_i`` with
+    ``c_i = theta0_i / v_i`` and ``Y2 = sum theta0_i^2 / v_i`` (it then decays with ``lam`` like
+    any observation).
+    """
+    mean = np.asarray(prior_mean, dtype=np.float64)
+    var = np.asarray(prior_var, dtype=np.float64)
+    k = mean.shape[0]
+    st = np.zeros(state_size(k, band, lags))
+    info = np.where(np.isfinite(var), 1.0 / var, 0.0)
+    st[NS:NS + k] = np.where(info > 0, mean, 0.0)
+    st[NS + k:NS + k + k * k] = np.diag(info).ravel()
+    st[NS + k + k * k:NS + 2 * k + k * k] = info * mean
+    st[I_YY] = float(np.sum(info * mean * mean))
     return st
 
 
@@ -82,12 +145,11 @@ def ew_variance(st, i, v, lam):
 
 @njit(cache=True, inline="always")
 def excitation(st, lp, lam, guard, guard_lam, min_price_sd):
-    """Update both price-variation statistics; return (low_variation, lambda for this step).
+    """Update both raw price-variation statistics; return (raw low variation, lambda now).
 
-    ``low_variation``: the EW sd of log price over the estimator's own window (``lam``) is below
-    ``min_price_sd``. The guard pauses forgetting when the sd over a short window
-    (``guard_lam``, about (1 + g) / (1 - g) observations) is below it, so a flat stretch is
-    caught within a few observations and P grows by at most a few factors of 1/lam.
+    Raw low variation: the EW sd of log price over the estimator's own window (``lam``) is
+    below ``min_price_sd``. The guard pauses forgetting when the sd over a short window
+    (``guard_lam``, about (1 + g) / (1 - g) observations) is below it.
     """
     thr = min_price_sd * min_price_sd
     lowvar = ew_variance(st, I_LPW, lp, lam) < thr
@@ -101,217 +163,356 @@ def excitation(st, lp, lam, guard, guard_lam, min_price_sd):
 
 
 @njit(cache=True, inline="always")
-def step_general(st, x, y, k, lam, guard, guard_lam, min_price_sd, min_neff, tq, out, u):
-    """The update for any k (controls present); see the module docstring for the formulas."""
-    th = NS
-    p0 = NS + k
-    s0 = NS + k + k * k
-    lowvar, lt = excitation(st, x[1], lam, guard, guard_lam, min_price_sd)
+def diagnostics(st, r, lt):
+    """Exponentially weighted sums of the a-posteriori residual's powers and of ``exp(r)``."""
+    r2 = r * r
+    st[I_R2] = lt * st[I_R2] + r2
+    st[I_R3] = lt * st[I_R3] + r2 * r
+    st[I_R4] = lt * st[I_R4] + r2 * r2
+    st[I_SMEAR] = lt * st[I_SMEAR] + np.exp(r)
 
-    # prediction from the previous state
-    yhat = 0.0
-    for i in range(k):
-        yhat += st[th + i] * x[i]
-    e = y - yhat
-    # u = P x, r = x' P x, q = x' P S P x (predictive variance factor, sandwich form)
-    r = 0.0
-    q = 0.0
-    for i in range(k):
-        acc = 0.0
-        for j in range(k):
-            acc += st[p0 + i * k + j] * x[j]
-        u[i] = acc
-        r += x[i] * acc
-    for i in range(k):
-        acc = 0.0
-        for j in range(k):
-            acc += st[s0 + i * k + j] * u[j]
-        q += u[i] * acc
+
+@njit(cache=True, inline="always")
+def hc_factor(W, W2, W3, rank):
+    """Small-sample factor of the robust bands, ``W2 / (W2 - rank W3 / W)`` (NaN if <= 0)."""
+    d = W2 - rank * W3 / W
+    return W2 / d if d > 0.0 else np.nan
+
+
+@njit(cache=True, inline="always")
+def finish(st, out, beta, intercept, identified, vb, V, rank, k, neff, lowvar, band, e, z,
+           min_neff, tq, ylog):
+    """Write the output row from the updated quantities (shared by both step forms)."""
     W = st[I_W]
-    V = st[I_V]
-    dof = W - k
-    if dof > 0.0 and V > 0.0:
-        zsd = np.sqrt(V / dof * (1.0 + q))
-        z = e / zsd
-    else:
-        zsd = np.nan
-        z = np.nan
-    st[I_E] = e
-    st[I_ZSD] = zsd
-    st[I_Z] = z
-
-    # update
-    inv_d = 1.0 / (lt + r)
-    g = e * inv_d
-    inv_l = 1.0 / lt
-    l2 = lt * lt
-    for i in range(k):
-        st[th + i] += u[i] * g
-    for i in range(k):
-        for j in range(i, k):
-            pij = (st[p0 + i * k + j] - u[i] * u[j] * inv_d) * inv_l
-            st[p0 + i * k + j] = pij
-            st[p0 + j * k + i] = pij
-            sij = l2 * st[s0 + i * k + j] + x[i] * x[j]
-            st[s0 + i * k + j] = sij
-            st[s0 + j * k + i] = sij
-    V = lt * V + lt * e * g
-    W = lt * W + 1.0
-    W2 = l2 * st[I_W2] + 1.0
-    st[I_V] = V
-    st[I_W] = W
-    st[I_W2] = W2
-    st[I_N] += 1.0
-
-    # outputs: Var(b) = sigma^2 (P S P)_bb
-    neff = W * W / W2
-    dof = W - k
-    beta = st[th + 1]
-    out[O_BETA] = beta
+    dof = W - rank
     out[O_NEFF] = neff
     out[O_E] = e
     out[O_Z] = z
-    out[O_INTERCEPT] = st[th]
-    vb = 0.0
-    for i in range(k):
-        acc = 0.0
-        for j in range(k):
-            acc += st[s0 + i * k + j] * st[p0 + j * k + 1]
-        vb += st[p0 + k + i] * acc
-    if dof > 0.0 and V > 0.0 and vb >= 0.0:
-        s2 = V / dof
-        se = np.sqrt(s2 * vb)
-        tq_ = t_lookup(tq, neff - k)
+    out[O_INTERCEPT] = intercept
+    out[O_BAND] = band
+    out[O_YLOG] = ylog
+    warm = neff < min_neff or neff < k + 2.0
+    if dof > 0.0 and V > 0.0:
+        out[O_RESID_SD] = np.sqrt(V / dof)
+    else:
+        out[O_RESID_SD] = np.nan
+    if identified and dof > 0.0 and V > 0.0 and vb >= 0.0:
+        se = np.sqrt(vb)
+        tq_ = t_lookup(tq, neff - rank)
+        out[O_BETA] = beta
         out[O_SE] = se
         out[O_LO] = beta - tq_ * se
         out[O_HI] = beta + tq_ * se
-        out[O_RESID_SD] = np.sqrt(s2)
-        if neff < min_neff or neff < k + 2.0:
+        if warm or not (tq_ == tq_):
             out[O_STATUS] = ST_WARMING_UP
         elif lowvar:
             out[O_STATUS] = ST_LOW_VARIATION
         else:
             out[O_STATUS] = ST_OK
     else:
+        out[O_BETA] = beta if identified else np.nan
         out[O_SE] = np.nan
         out[O_LO] = np.nan
         out[O_HI] = np.nan
-        out[O_RESID_SD] = np.nan
-        out[O_STATUS] = ST_WARMING_UP
+        if identified or warm:
+            out[O_STATUS] = ST_WARMING_UP
+        else:
+            out[O_STATUS] = ST_LOW_VARIATION
+
+
+@njit(cache=True, inline="always")
+def step_two_band(st, x1, y, band, lam, guard, guard_lam, min_price_sd, min_neff, tq, out):
+    """The update written out for k = 2 (intercept and log price), bands classic and hc.
+
+    Equal to :func:`linear_step` to rounding (tests/test_estimator_bands.py checks 1e-10).
+    """
+    raw_low, lt = excitation(st, x1, lam, guard, guard_lam, min_price_sd)
+    ncd = 1 if band == BAND_CLASSIC else 6
+    a = st[NS]
+    b = st[NS + 1]
+    A00 = st[NS + 2]
+    A01 = st[NS + 3]
+    A11 = st[NS + 5]
+    t0 = NS + 10
+    if st[I_N] == 0.0:
+        st[NS + 8] = x1
+        st[NS + 9] = y
+    mu = st[NS + 8]
+    nu = st[NS + 9]
+    xc = x1 - mu
+    yc = y - nu
+    e = y - a - b * x1
+    # classic predictive variance x' P S P x from the previous state
+    W = st[I_W]
+    V = st[I_V]
+    z = np.nan
+    zsd = np.nan
+    if A00 > 0.0 and A11 > 0.0:
+        sb = A11 - A01 * A01 / A00
+        if sb > DROP_TOL * A11:
+            p11 = 1.0 / sb
+            p01 = -A01 / A00 * p11
+            p00 = 1.0 / A00 - A01 / A00 * p01
+            u1 = p01 + p11 * x1
+            u0 = p00 + p01 * x1 + mu * u1
+            s00 = st[t0]
+            s01 = st[t0 + ncd]
+            s11 = st[t0 + 2 * ncd]
+            q = u0 * (s00 * u0 + s01 * u1) + u1 * (s01 * u0 + s11 * u1)
+            dof = W - 2.0
+            if dof > 0.0 and V > 0.0:
+                zsd = np.sqrt(V / dof * (1.0 + q))
+                z = e / zsd
+    st[I_E] = e
+    st[I_ZSD] = zsd
+    st[I_Z] = z
+    # update the sums
+    A00 = lt * A00 + 1.0
+    A01 = lt * A01 + x1
+    A11 = lt * A11 + x1 * x1
+    c0 = lt * st[NS + 6] + y
+    c1 = lt * st[NS + 7] + x1 * y
+    YY = lt * st[I_YY] + y * y
+    W = lt * W + 1.0
+    l2 = lt * lt
+    W2 = l2 * st[I_W2] + 1.0
+    W3 = l2 * lt * st[I_W3] + 1.0
+    st[I_W3] = W3
+    st[NS + 2] = A00
+    st[NS + 3] = A01
+    st[NS + 4] = A01
+    st[NS + 5] = A11
+    st[NS + 6] = c0
+    st[NS + 7] = c1
+    st[I_YY] = YY
+    st[I_W] = W
+    st[I_W2] = W2
+    st[I_N] += 1.0
+    # solve (log price last: Frisch-Waugh form)
+    sb = A11 - A01 * A01 / A00
+    identified = A11 > 0.0 and sb > DROP_TOL * A11
+    if identified:
+        b = (c1 - A01 / A00 * c0) / sb
+        a = (c0 - A01 * b) / A00
+        rank = 2.0
+    else:
+        b = 0.0
+        a = c0 / A00
+        rank = 1.0
+    st[NS] = a
+    st[NS + 1] = b
+    V = YY - a * c0 - b * c1
+    if V < 0.0:
+        V = 0.0
+    st[I_V] = V
+    xsd = np.sqrt(sb / W) if sb > 0.0 else 0.0
+    st[I_XSD] = xsd
+    diagnostics(st, y - a - b * x1, lt)
+    # meat sums
+    if band == BAND_CLASSIC:
+        st[t0] = l2 * st[t0] + 1.0
+        st[t0 + 1] = l2 * st[t0 + 1] + xc
+        st[t0 + 2] = l2 * st[t0 + 2] + xc * xc
+    else:
+        x2 = xc * xc
+        xy = xc * yc
+        y2 = yc * yc
+        for ia in range(3):
+            xa = 1.0 if ia == 0 else (xc if ia == 1 else x2)
+            i = t0 + 6 * ia
+            st[i] = l2 * st[i] + xa
+            st[i + 1] = l2 * st[i + 1] + xa * xc
+            st[i + 2] = l2 * st[i + 2] + xa * yc
+            st[i + 3] = l2 * st[i + 3] + xa * x2
+            st[i + 4] = l2 * st[i + 4] + xa * xy
+            st[i + 5] = l2 * st[i + 5] + xa * y2
+    neff = W * W / W2
+    vb = np.nan
+    if identified:
+        p11 = 1.0 / sb
+        p01 = -A01 / A00 * p11 + mu * p11
+        if band == BAND_CLASSIC:
+            s00 = st[t0]
+            s01 = st[t0 + 1]
+            s11 = st[t0 + 2]
+            vb = p01 * (s00 * p01 + s01 * p11) + p11 * (s01 * p01 + s11 * p11)
+            if W > rank:
+                vb *= V / (W - rank)
+        else:
+            ac = a + mu * b - nu
+            g0 = ac * ac
+            g1 = 2.0 * ac * b
+            g2 = -2.0 * ac
+            g3 = b * b
+            g4 = -2.0 * b
+            m00 = g0 * st[t0] + g1 * st[t0 + 1] + g2 * st[t0 + 2] + g3 * st[t0 + 3] + \
+                g4 * st[t0 + 4] + st[t0 + 5]
+            m01 = g0 * st[t0 + 6] + g1 * st[t0 + 7] + g2 * st[t0 + 8] + g3 * st[t0 + 9] + \
+                g4 * st[t0 + 10] + st[t0 + 11]
+            m11 = g0 * st[t0 + 12] + g1 * st[t0 + 13] + g2 * st[t0 + 14] + g3 * st[t0 + 15] + \
+                g4 * st[t0 + 16] + st[t0 + 17]
+            vb = p01 * p01 * m00 + 2.0 * p01 * p11 * m01 + p11 * p11 * m11
+            vb *= hc_factor(W, W2, W3, rank)
+    finish(st, out, b, a, identified, vb, V, rank, 2, neff, raw_low or xsd < min_price_sd,
+           band, e, z, min_neff, tq, y)
 
 
 @njit(cache=True, inline="always")
 def step_two(st, x1, y, lam, guard, guard_lam, min_price_sd, min_neff, tq, out):
-    """The same update written out for k = 2 (intercept and log price), about 4x faster.
-
-    Equal to :func:`step_general` to rounding (tests/test_estimator_kernel.py checks 1e-9).
-    """
-    lowvar, lt = excitation(st, x1, lam, guard, guard_lam, min_price_sd)
-    a = st[NS]
-    b = st[NS + 1]
-    p00 = st[NS + 2]
-    p01 = st[NS + 3]
-    p11 = st[NS + 5]
-    s00 = st[NS + 6]
-    s01 = st[NS + 7]
-    s11 = st[NS + 9]
-    e = y - a - b * x1
-    u0 = p00 + p01 * x1
-    u1 = p01 + p11 * x1
-    r = u0 + u1 * x1
-    q = u0 * (s00 * u0 + s01 * u1) + u1 * (s01 * u0 + s11 * u1)
-    W = st[I_W]
-    V = st[I_V]
-    dof = W - 2.0
-    if dof > 0.0 and V > 0.0:
-        zsd = np.sqrt(V / dof * (1.0 + q))
-        z = e / zsd
-    else:
-        zsd = np.nan
-        z = np.nan
-    st[I_E] = e
-    st[I_ZSD] = zsd
-    st[I_Z] = z
-    inv_d = 1.0 / (lt + r)
-    g = e * inv_d
-    a += u0 * g
-    b += u1 * g
-    inv_l = 1.0 / lt
-    p00 = (p00 - u0 * u0 * inv_d) * inv_l
-    p01 = (p01 - u0 * u1 * inv_d) * inv_l
-    p11 = (p11 - u1 * u1 * inv_d) * inv_l
-    l2 = lt * lt
-    s00 = l2 * s00 + 1.0
-    s01 = l2 * s01 + x1
-    s11 = l2 * s11 + x1 * x1
-    V = lt * V + lt * e * g
-    W = lt * W + 1.0
-    W2 = l2 * st[I_W2] + 1.0
-    st[NS] = a
-    st[NS + 1] = b
-    st[NS + 2] = p00
-    st[NS + 3] = p01
-    st[NS + 4] = p01
-    st[NS + 5] = p11
-    st[NS + 6] = s00
-    st[NS + 7] = s01
-    st[NS + 8] = s01
-    st[NS + 9] = s11
-    st[I_W] = W
-    st[I_W2] = W2
-    st[I_V] = V
-    st[I_N] += 1.0
-    neff = W * W / W2
-    dof = W - 2.0
-    out[O_BETA] = b
-    out[O_NEFF] = neff
-    out[O_E] = e
-    out[O_Z] = z
-    out[O_INTERCEPT] = a
-    vb = p01 * (s00 * p01 + s01 * p11) + p11 * (s01 * p01 + s11 * p11)
-    if dof > 0.0 and V > 0.0 and vb >= 0.0:
-        s2 = V / dof
-        se = np.sqrt(s2 * vb)
-        tq_ = t_lookup(tq, neff - 2.0)
-        out[O_SE] = se
-        out[O_LO] = b - tq_ * se
-        out[O_HI] = b + tq_ * se
-        out[O_RESID_SD] = np.sqrt(s2)
-        if neff < min_neff or neff < 4.0:
-            out[O_STATUS] = ST_WARMING_UP
-        elif lowvar:
-            out[O_STATUS] = ST_LOW_VARIATION
-        else:
-            out[O_STATUS] = ST_OK
-    else:
-        out[O_SE] = np.nan
-        out[O_LO] = np.nan
-        out[O_HI] = np.nan
-        out[O_RESID_SD] = np.nan
-        out[O_STATUS] = ST_WARMING_UP
+    """k = 2, classic band (the form the detector threshold design simulates)."""
+    step_two_band(st, x1, y, BAND_CLASSIC, lam, guard, guard_lam, min_price_sd, min_neff, tq,
+                  out)
 
 
 @njit(cache=True, inline="always")
-def rls_step(st, x, y, k, lam, guard, guard_lam, min_price_sd, min_neff, tq, out, u):
+def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq,
+                out, w):
+    """The update for any k and band; ``w`` is scratch of length :func:`work_size`."""
+    raw_low, lt = excitation(st, x[1], lam, guard, guard_lam, min_price_sd)
+    th = NS
+    a0 = NS + k
+    c0 = a0 + k * k
+    r0 = c0 + k
+    t0 = r0 + k
+    nab = k * (k + 1) // 2
+    ncd = 1 if band == BAND_CLASSIC else (k + 1) * (k + 2) // 2
+    L = w
+    drop = w[k * k:k * k + k]
+    tmp = w[k * k + k:k * k + 2 * k]
+    u = w[k * k + 2 * k:k * k + 3 * k]
+    pc = w[k * k + 3 * k:k * k + 4 * k]
+    xc = w[k * k + 4 * k:k * k + 5 * k]
+    thc = w[k * k + 5 * k:k * k + 6 * k]
+    pt = w[k * k + 6 * k:k * k + 7 * k]
+    if st[I_N] == 0.0:
+        for j in range(1, k):
+            st[r0 + j - 1] = x[j]
+        st[r0 + k - 1] = y
+    xc[0] = x[0]
+    for j in range(1, k):
+        xc[j] = x[j] - st[r0 + j - 1]
+    yc = y - st[r0 + k - 1]
+    yhat = 0.0
+    for i in range(k):
+        yhat += st[th + i] * x[i]
+    e = y - yhat
+    # classic predictive variance from the previous state
+    W = st[I_W]
+    V = st[I_V]
+    _, rank0 = factor(st, a0, k, L, drop)
+    z = np.nan
+    zsd = np.nan
+    if rank0 == k:
+        solve(L, drop, k, x, 0, u, 0, tmp)
+        centre_vector(u, 0, st, r0, k, pt)
+        q = s_form(st, t0, k, ncd, pt, 0)
+        dof = W - k
+        if dof > 0.0 and V > 0.0:
+            zsd = np.sqrt(V / dof * (1.0 + q))
+            z = e / zsd
+    st[I_E] = e
+    st[I_ZSD] = zsd
+    st[I_Z] = z
+    # update the sums
+    for i in range(k):
+        for j in range(i, k):
+            v = lt * st[a0 + i * k + j] + x[i] * x[j]
+            st[a0 + i * k + j] = v
+            st[a0 + j * k + i] = v
+        st[c0 + i] = lt * st[c0 + i] + x[i] * y
+    YY = lt * st[I_YY] + y * y
+    st[I_YY] = YY
+    W = lt * W + 1.0
+    l2 = lt * lt
+    W2 = l2 * st[I_W2] + 1.0
+    W3 = l2 * lt * st[I_W3] + 1.0
+    st[I_W] = W
+    st[I_W2] = W2
+    st[I_W3] = W3
+    st[I_N] += 1.0
+    sb, rank = factor(st, a0, k, L, drop)
+    solve(L, drop, k, st, c0, st, th, tmp)
+    V = YY
+    r = y
+    for i in range(k):
+        V -= st[th + i] * st[c0 + i]
+        r -= st[th + i] * x[i]
+    if V < 0.0:
+        V = 0.0
+    st[I_V] = V
+    xsd = np.sqrt(sb / W) if sb > 0.0 else 0.0
+    st[I_XSD] = xsd
+    diagnostics(st, r, lt)
+    # meat sums
+    update_t(st, t0, xc, yc, k, ncd, l2)
+    if band == BAND_HAC:
+        size = nab * ncd
+        q0 = t0 + size
+        g0 = q0 + lags * size
+        rw = k + 2
+        for l in range(lags):
+            ro = g0 + l * rw
+            wl = st[ro + k + 1] * lt
+            st[ro + k + 1] = wl
+            update_q(st, q0 + l * size, xc, yc, st[ro:ro + k], st[ro + k], wl, k, ncd, l2)
+        for l in range(lags - 1, 0, -1):
+            ro = g0 + l * rw
+            for i in range(rw):
+                st[ro + i] = st[ro - rw + i]
+        if lags > 0:
+            for i in range(k):
+                st[g0 + i] = xc[i]
+            st[g0 + k] = yc
+            st[g0 + k + 1] = 1.0
+    neff = W * W / W2
+    identified = drop[k - 1] == 0.0
+    vb = np.nan
+    if identified:
+        price_column(L, drop, k, pc, 0)
+        centre_vector(pc, 0, st, r0, k, pt)
+        if band == BAND_CLASSIC:
+            vb = s_form(st, t0, k, ncd, pt, 0)
+            if W > rank:
+                vb *= V / (W - rank)
+        else:
+            centre_theta(st, th, st, r0, k, thc)
+            vb = meat_form(st, t0, thc, k, pt, 0, 1.0)
+            if band == BAND_HAC:
+                size = nab * ncd
+                for l in range(lags):
+                    vb += meat_form(st, t0 + (l + 1) * size, thc, k, pt, 0,
+                                    1.0 - (l + 1.0) / (lags + 1.0))
+            vb *= hc_factor(W, W2, W3, rank)
+    finish(st, out, st[th + 1], st[th], identified, vb, V, float(rank), k, neff,
+           raw_low or xsd < min_price_sd, band, e, z, min_neff, tq, y)
+
+
+@njit(cache=True, inline="always")
+def rls_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq, out,
+             w):
     """One update of one series' state ``st`` in place; writes the output row ``out``.
 
-    ``x`` is the design row, ``y = log q``; ``u`` is a scratch vector of length k (no
-    allocation in the hot loop). Dispatches to the written-out k = 2 form when it applies.
+    ``x`` is the design row, ``y = log q``; ``w`` is scratch of length :func:`work_size` (no
+    allocation in the hot loop). Uses the written-out k = 2 form when it applies.
     """
-    if k == 2:
-        step_two(st, x[1], y, lam, guard, guard_lam, min_price_sd, min_neff, tq, out)
+    if k == 2 and band != BAND_HAC:
+        step_two_band(st, x[1], y, band, lam, guard, guard_lam, min_price_sd, min_neff, tq, out)
     else:
-        step_general(st, x, y, k, lam, guard, guard_lam, min_price_sd, min_neff, tq, out, u)
+        linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq,
+                    out, w)
 
 
 @njit(cache=True)
-def rls_run(state, sid, X, y, lam, guard, guard_lam, min_price_sd, min_neff, tq, out):
+def rls_run(state, sid, X, y, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq,
+            out):
     """Run :func:`rls_step` over rows in order; row j updates series ``sid[j]``.
 
-    ``state`` is ``(n_series, state_size(k))``, updated in place; ``out`` is ``(n, NOUT)``.
-    Rows of different series may be interleaved; each series' rows must be in time order.
+    ``state`` is ``(n_series, state_size(k, band, lags))``, updated in place; ``out`` is
+    ``(n, NOUT)``. Rows of different series may be interleaved; each series' rows must be in
+    time order.
     """
     k = X.shape[1]
-    u = np.empty(k)
+    w = np.empty(k * k + 8 * k)
     for j in range(X.shape[0]):
-        rls_step(state[sid[j]], X[j], y[j], k, lam, guard, guard_lam, min_price_sd, min_neff, tq, out[j], u)
+        rls_step(state[sid[j]], X[j], y[j], k, band, lags, lam, guard, guard_lam, min_price_sd,
+                 min_neff, tq, out[j], w)

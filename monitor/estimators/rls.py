@@ -1,9 +1,10 @@
 """``ElasticityRLS``: the streaming elasticity estimator (river-style verbs).
 
 Model, per series: ``log q_t = a + b log p_t + c' z_t + e_t``; ``b`` is the elasticity. The
-update is recursive least squares with exponential forgetting, covariance in symmetric form, and
-the exponentially weighted least-squares sandwich for the variance; the compiled step and every
-formula live in :mod:`monitor.estimators.kernel`, shared with the batch path.
+update is recursive least squares with exponential forgetting in information form (exact
+weighted least squares at every step, diffuse start: forgetting 1 is ordinary least squares),
+with a heteroskedasticity-robust band by default; the compiled step and every formula live in
+:mod:`monitor.estimators.kernel`, shared with the batch path.
 
 >>> import numpy as np
 >>> rng = np.random.default_rng(7)
@@ -28,14 +29,14 @@ import numpy as np
 
 from monitor.errors import ValidationError
 from monitor.estimators import kernel as K
-from monitor.estimators.tquantile import t_table
+from monitor.estimators.tquantile import t_lookup, t_table
 from monitor.estimators.transform import (ControlSpec, check_quantity, design_row, parameter_names,
                                           parse_controls)
 from monitor.types import STATUS_LABELS
 
 
-#: documented defaults of the weak prior: N(0, 1000^2) for every coefficient
-DEFAULT_PRIOR_SD = 1000.0
+#: Jarque-Bera statistic above which predict_one uses Duan's smearing (chi-square(2) 0.99)
+SMEARING_JB = 9.21
 
 
 def _check_range(name: str, value: float, lo: float, hi: float, lo_open: bool, hi_open: bool) -> float:
@@ -71,53 +72,80 @@ class ElasticityRLS:
     controls, log_controls : sequence of str
         Names of control features entered as given, and in logs.
     prior_mean, prior_sd : float
-        Prior for the elasticity b (default 0 and 1000: a weak prior). The intercept and the
-        controls get N(0, 1000^2). ``prior_mean=-1.5, prior_sd=1.0`` encodes "b near -1.5 +/- 1".
+        Prior for the elasticity b, N(prior_mean, prior_sd^2); ``prior_sd=None`` (default): no
+        prior, the start is exactly diffuse. The intercept and the controls never get one.
+        ``prior_mean=-1.5, prior_sd=1.0`` encodes "b near -1.5 +/- 1".
     level : float in (0, 1)
         Confidence level of the reported interval (Student-t with n_eff - k degrees of freedom).
     min_n_eff : float
         Status is ``warming_up`` until n_eff reaches this (and at least k + 2).
     min_price_sd : float
-        Status is ``low_variation`` while the exponentially weighted sd of log price is below this
-        (default 0.02: prices vary by less than about 2%)..
+        Status is ``low_variation`` while the exponentially weighted sd of log price, raw or
+        left after the intercept and the controls, is below this (default 0.02: about 2%).
     excitation_guard : bool
-        Pause forgetting while prices are flat over a short window, so the covariance cannot wind
-        up (see :mod:`monitor.estimators.kernel`).
+        Pause forgetting while prices are flat over a short window, so the information along
+        the unexcited direction is not forgotten (see :mod:`monitor.estimators.kernel`).
     guard_forgetting : float in (0, 1)
         Forgetting factor of the guard's short window (0.8: about 9 observations).
+    band : {"hc", "hac", "classic"}
+        Variance of the estimate: White (1980) heteroskedasticity-robust (default), Newey & West
+        (1987) autocorrelation-robust with a Bartlett kernel, or classic (constant error
+        variance, no autocorrelation).
+    hac_lags : int
+        Lags of the Newey-West band (used with ``band="hac"``).
     """
+
+    model = "loglinear"
 
     def __init__(self, forgetting: float = 0.99, controls: Sequence[str] = (),
                  log_controls: Sequence[str] = (), prior_mean: float = 0.0,
-                 prior_sd: float = DEFAULT_PRIOR_SD, level: float = 0.95, min_n_eff: float = 10.0,
+                 prior_sd: float | None = None, level: float = 0.95, min_n_eff: float = 10.0,
                  min_price_sd: float = 0.02, excitation_guard: bool = True,
-                 guard_forgetting: float = 0.8):
+                 guard_forgetting: float = 0.8, band: str = "hc", hac_lags: int = 4):
         self.forgetting = _check_range("forgetting", forgetting, 0.0, 1.0, True, False)
         self.controls = tuple(controls)
         self.log_controls = tuple(log_controls)
         self.prior_mean = _check_range("prior_mean", prior_mean, -math.inf, math.inf, True, True)
-        self.prior_sd = _check_range("prior_sd", prior_sd, 0.0, math.inf, True, True)
+        self.prior_sd = None if prior_sd is None else _check_range(
+            "prior_sd", prior_sd, 0.0, math.inf, True, True)
         self.level = _check_range("level", level, 0.0, 1.0, True, True)
         self.min_n_eff = _check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
         self.min_price_sd = _check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
         self.excitation_guard = bool(excitation_guard)
         self.guard_forgetting = _check_range("guard_forgetting", guard_forgetting, 0.0, 1.0, True, True)
+        if band not in K.BANDS:
+            raise ValueError(f"band = {band!r}: must be one of {', '.join(K.BANDS)}")
+        self.band = band
+        self.hac_lags = int(_check_range("hac_lags", hac_lags, 1, 52, False, False))
+        if self.hac_lags != hac_lags:
+            raise ValueError(f"hac_lags = {hac_lags!r}: must be an integer in [1, 52]")
         self._specs: tuple[ControlSpec, ...] = parse_controls(self.controls, self.log_controls)
         self._k = 2 + len(self._specs)
-        self._state = K.init_state(*self.prior())
+        self._band = K.BANDS[band]
+        self._lags = self.hac_lags if self._band == K.BAND_HAC else 0
+        self._state = self.initial_state()
         self._out = np.full(K.NOUT, np.nan)
         self._out[K.O_STATUS] = K.ST_WARMING_UP
-        self._u = np.empty(self._k)
+        self._work = np.empty(K.work_size(self._k))
         self._tq = t_table(self.level)
 
     # ------------------------------------------------------------------ set-up
     def prior(self) -> tuple[np.ndarray, np.ndarray]:
-        """Prior mean vector and diagonal prior variances, in design-row order."""
+        """Prior mean vector and diagonal prior variances (``inf``: diffuse), design-row order."""
         mean = np.zeros(self._k)
         mean[1] = self.prior_mean
-        var = np.full(self._k, DEFAULT_PRIOR_SD ** 2)
-        var[1] = self.prior_sd ** 2
+        var = np.full(self._k, math.inf)
+        if self.prior_sd is not None:
+            var[1] = self.prior_sd ** 2
         return mean, var
+
+    def initial_state(self) -> np.ndarray:
+        """A fresh state vector for these settings."""
+        return K.init_state(*self.prior(), self._band, self._lags)
+
+    @property
+    def state_size(self) -> int:
+        return K.state_size(self._k, self._band, self._lags)
 
     @property
     def parameter_names(self) -> list[str]:
@@ -126,28 +154,62 @@ class ElasticityRLS:
     @property
     def kernel_args(self) -> tuple:
         """Arguments after the data in :func:`monitor.estimators.kernel.rls_run`."""
-        return (self.forgetting, self.excitation_guard, self.guard_forgetting, self.min_price_sd,
-                self.min_n_eff, self._tq)
+        return (self._band, self._lags, self.forgetting, self.excitation_guard,
+                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
 
     # ------------------------------------------------------------------ learning
     def learn_one(self, x: Mapping[str, object], y: float) -> "ElasticityRLS":
         """Update with one observation: ``x`` holds ``price`` and the controls, ``y`` the quantity."""
         row = design_row(x, self._specs)
         q = check_quantity(y)
-        K.rls_step(self._state, row, math.log(q), self._k, *self.kernel_args, self._out, self._u)
+        K.rls_step(self._state, row, math.log(q), self._k, *self.kernel_args, self._out,
+                   self._work)
         return self
 
-    def predict_one(self, x: Mapping[str, object]) -> float:
-        """Expected quantity on the original scale, ``exp(x' theta) * exp(s^2 / 2)``.
+    @property
+    def residual_shape(self) -> dict[str, float]:
+        """Skewness, excess kurtosis and the Jarque-Bera statistic of the a-posteriori log
+        residuals (exponentially weighted; ``JB = n_eff / 6 (skew^2 + kurt^2 / 4)``, Jarque &
+        Bera 1980, with n_eff for n)."""
+        st = self._state
+        w = st[K.I_W]
+        m2 = st[K.I_R2] / w if w > 0 else math.nan
+        if not m2 > 0:
+            return {"skew": math.nan, "excess_kurtosis": math.nan, "jarque_bera": math.nan}
+        skew = st[K.I_R3] / w / m2 ** 1.5
+        kurt = st[K.I_R4] / w / (m2 * m2) - 3.0
+        jb = self.n_eff / 6.0 * (skew * skew + kurt * kurt / 4.0)
+        return {"skew": float(skew), "excess_kurtosis": float(kurt), "jarque_bera": float(jb)}
 
-        The factor ``exp(s^2/2)`` is the retransformation for normal log errors (the log-normal
-        mean); without it the prediction is the median and is biased low by that factor (1.13x
-        at s = 0.5). Before the residual sd is known the factor is 1.
+    @property
+    def retransformation(self) -> str:
+        """``"normal"`` (factor ``exp(s^2/2)``) or ``"smearing"`` (Duan 1983), chosen by the
+        residuals: smearing when their Jarque-Bera statistic exceeds :data:`SMEARING_JB`."""
+        jb = self.residual_shape["jarque_bera"]
+        return "smearing" if jb > SMEARING_JB else "normal"
+
+    def retransformation_factor(self) -> float:
+        """The factor that turns ``exp(x' theta)`` (a median) into a mean (1 while unknown).
+
+        ``normal``: ``exp(s^2 / 2)``, the log-normal mean; ``smearing``: the weighted mean of
+        ``exp(r)`` over the a-posteriori log residuals r (Duan 1983), which needs no
+        distributional assumption.
+        """
+        s = self.residual_sd
+        if not math.isfinite(s):
+            return 1.0
+        if self.retransformation == "smearing":
+            return float(self._state[K.I_SMEAR] / self._state[K.I_W])
+        return math.exp(0.5 * s * s)
+
+    def predict_one(self, x: Mapping[str, object]) -> float:
+        """Expected quantity on the original scale, ``exp(x' theta) * factor``.
+
+        The factor is chosen by :attr:`retransformation` (normal ``exp(s^2/2)`` or Duan's
+        smearing); without it the prediction is the median and biased low (1.13x at s = 0.5).
         """
         row = design_row(x, self._specs)
-        s = self.residual_sd
-        factor = math.exp(0.5 * s * s) if math.isfinite(s) else 1.0
-        return math.exp(float(row @ self._theta)) * factor
+        return math.exp(float(row @ self._theta)) * self.retransformation_factor()
 
     # ------------------------------------------------------------------ results
     @property
@@ -155,19 +217,26 @@ class ElasticityRLS:
         return self._state[K.NS:K.NS + self._k]
 
     @property
-    def _P(self) -> np.ndarray:
+    def _A(self) -> np.ndarray:
+        """Information matrix ``sum w x x'`` (plus any prior information)."""
         k = self._k
         return self._state[K.NS + k:K.NS + k + k * k].reshape(k, k)
 
     @property
-    def _S(self) -> np.ndarray:
-        k = self._k
-        return self._state[K.NS + k + k * k:].reshape(k, k)
+    def _P(self) -> np.ndarray:
+        """``A^{-1}`` (inf on the diagonal of unidentified columns)."""
+        try:
+            return np.linalg.inv(self._A)
+        except np.linalg.LinAlgError:
+            return np.full((self._k, self._k), math.inf)
 
     @property
     def elasticity(self) -> float:
-        """Current estimate of b (d log q / d log p)."""
-        return float(self._theta[1])
+        """Current estimate of b (d log q / d log p); NaN while the log price is unidentified
+        (before any data: the prior mean if a prior is given)."""
+        if self.n_obs == 0:
+            return self.prior_mean if self.prior_sd is not None else math.nan
+        return float(self._out[K.O_BETA])
 
     @property
     def intercept(self) -> float:
@@ -194,15 +263,45 @@ class ElasticityRLS:
         v = self._state[K.I_V]
         return float(math.sqrt(v / dof)) if dof > 0 and v > 0 else math.nan
 
+    @property
+    def price_sd_after_controls(self) -> float:
+        """Weighted sd of log price left after the intercept and the controls."""
+        return float(self._state[K.I_XSD])
+
+    def collinear_controls(self, tol: float = 0.05) -> list[str]:
+        """Controls that explain the log price: in the weighted regression of log price on the
+        intercept and the controls (from the information matrix), those whose term moves log
+        price by more than ``tol`` (in sd units of log price). For the low-variation message."""
+        A = self._A
+        k = self._k
+        if k <= 2 or not A[0, 0] > 0:
+            return []
+        others = [0] + list(range(2, k))
+        Aoo = A[np.ix_(others, others)]
+        coef = np.linalg.lstsq(Aoo, A[others, 1], rcond=None)[0]
+        w = A[0, 0]
+        names = []
+        for j, c in zip(range(2, k), coef[1:]):
+            mean_j = A[0, j] / w
+            sd_j = math.sqrt(max(A[j, j] / w - mean_j * mean_j, 0.0))
+            mean_p = A[0, 1] / w
+            sd_p = math.sqrt(max(A[1, 1] / w - mean_p * mean_p, 0.0))
+            if sd_p > 0 and abs(c) * sd_j > tol * sd_p:
+                names.append(self.parameter_names[j])
+        return names
+
     def covariance(self) -> np.ndarray:
-        """Sandwich covariance ``sigma^2 P S P`` of the coefficients (NaN while warming up)."""
-        s = self.residual_sd
-        P = self._P
-        return (s * s) * (P @ self._S @ P)
+        """Covariance of the coefficients under the chosen band (NaN while warming up).
+
+        Computed from the state in Python (the kernel reports only the elasticity's variance).
+        """
+        from monitor.estimators.bands import coefficient_covariance
+
+        return coefficient_covariance(self._state, self._k, self._band, self._lags)
 
     @property
     def stderr(self) -> float:
-        """Standard error of b (sandwich form)."""
+        """Standard error of b under the chosen band."""
         return float(self._out[K.O_SE])
 
     def interval(self, level: float | None = None) -> tuple[float, float]:
@@ -210,8 +309,6 @@ class ElasticityRLS:
         if level is None or level == self.level:
             return float(self._out[K.O_LO]), float(self._out[K.O_HI])
         level = _check_range("level", level, 0.0, 1.0, True, True)
-        from monitor.estimators.tquantile import t_lookup
-
         q = t_lookup(t_table(level), self.n_eff - self._k)
         b, se = self.elasticity, self.stderr
         return b - q * se, b + q * se
@@ -243,7 +340,7 @@ class ElasticityRLS:
         return {"beta": o[K.O_BETA], "beta_se": o[K.O_SE], "beta_lo": o[K.O_LO],
                 "beta_hi": o[K.O_HI], "n_eff": o[K.O_NEFF], "status": self.status,
                 "innovation": o[K.O_E], "z": o[K.O_Z], "intercept": o[K.O_INTERCEPT],
-                "resid_sd": o[K.O_RESID_SD]}
+                "resid_sd": o[K.O_RESID_SD], "band": self.band}
 
     # ------------------------------------------------------------------ state
     def to_state(self) -> dict:
@@ -256,7 +353,8 @@ class ElasticityRLS:
                 "log_controls": list(self.log_controls), "prior_mean": self.prior_mean,
                 "prior_sd": self.prior_sd, "level": self.level, "min_n_eff": self.min_n_eff,
                 "min_price_sd": self.min_price_sd, "excitation_guard": self.excitation_guard,
-                "guard_forgetting": self.guard_forgetting}
+                "guard_forgetting": self.guard_forgetting, "band": self.band,
+                "hac_lags": self.hac_lags}
 
     @classmethod
     def from_state(cls, state: Mapping) -> "ElasticityRLS":
@@ -274,4 +372,5 @@ class ElasticityRLS:
         return type(self)(**self._params())
 
     def __repr__(self) -> str:
-        return f"ElasticityRLS(forgetting={self.forgetting}, controls={self.controls}, log_controls={self.log_controls})"
+        return (f"ElasticityRLS(forgetting={self.forgetting}, controls={self.controls}, "
+                f"log_controls={self.log_controls}, band={self.band!r})")

@@ -1,0 +1,100 @@
+"""One estimator step for every model: what the pipeline, replay and service call.
+
+``estimator_step(model, st, x, y, off, k, band, lags, lam, guard, guard_lam, min_price_sd,
+min_neff, tq, out, w)`` updates one series' state ``st`` in place and writes the output row
+``out`` (columns of :mod:`monitor.estimators.kernel`, identical for every model):
+
+- ``MODEL_LOGLINEAR`` (0): ``y = log q``; least squares with forgetting
+  (:mod:`monitor.estimators.kernel`; written-out k = 2 form for the classic and hc bands);
+- ``MODEL_POISSON`` (1): ``y = q`` (zeros allowed), ``off = log exposure``; Poisson
+  pseudo-maximum likelihood (:mod:`monitor.estimators.poisson_kernel`).
+
+``w`` is scratch of length :func:`work_size`; nothing is allocated. :func:`state_size` gives
+the state length per model, k, band and HAC lags.
+"""
+
+from __future__ import annotations
+
+from numba import njit
+
+from monitor.estimators import kernel as K
+from monitor.estimators.poisson_kernel import poisson_state_size, poisson_step, poisson_work_size
+
+MODEL_LOGLINEAR, MODEL_POISSON = 0, 1
+MODELS = {"loglinear": MODEL_LOGLINEAR, "poisson": MODEL_POISSON}
+MODEL_NAMES = {v: k for k, v in MODELS.items()}
+
+
+def model_code(model) -> int:
+    """Code of a model name (or code); ValueError naming the allowed names otherwise."""
+    if isinstance(model, str):
+        if model not in MODELS:
+            raise ValueError(f"model = {model!r}: must be one of {', '.join(MODELS)}")
+        return MODELS[model]
+    if int(model) not in MODEL_NAMES:
+        raise ValueError(f"model = {model!r}: must be one of {', '.join(MODELS)}")
+    return int(model)
+
+
+def band_code(band) -> int:
+    if isinstance(band, str):
+        if band not in K.BANDS:
+            raise ValueError(f"band = {band!r}: must be one of {', '.join(K.BANDS)}")
+        return K.BANDS[band]
+    return int(band)
+
+
+def state_size(model, k: int, band="hc", lags: int = 4) -> int:
+    """Floats in one series' estimator state (8 bytes each)."""
+    m, b = model_code(model), band_code(band)
+    if m == MODEL_POISSON:
+        return poisson_state_size(k)
+    return K.state_size(k, b, lags if b == K.BAND_HAC else 0)
+
+
+def work_size(model, k: int) -> int:
+    return max(K.work_size(k), poisson_work_size(k))
+
+
+@njit(cache=True, inline="always")
+def estimator_step(model, st, x, y, off, k, band, lags, lam, guard, guard_lam, min_price_sd,
+                   min_neff, tq, out, w):
+    """One observation of one series, for any model (see the module docstring)."""
+    if model == MODEL_POISSON:
+        poisson_step(st, x, y, off, k, band, lam, guard, guard_lam, min_price_sd, min_neff, tq,
+                     out, w)
+    else:
+        K.rls_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq,
+                   out, w)
+
+
+@njit(cache=True)
+def estimator_run(model, state, sid, X, y, off, band, lags, lam, guard, guard_lam,
+                  min_price_sd, min_neff, tq, out, w):
+    """:func:`estimator_step` over rows in order (``off`` of length n, or 0 for none)."""
+    k = X.shape[1]
+    has_off = off.shape[0] > 0
+    for j in range(X.shape[0]):
+        o = off[j] if has_off else 0.0
+        estimator_step(model, state[sid[j]], X[j], y[j], o, k, band, lags, lam, guard,
+                       guard_lam, min_price_sd, min_neff, tq, out[j], w)
+
+
+def make_estimator(model: str = "loglinear", **params):
+    """The streaming estimator of ``model`` with ``params`` (its constructor's arguments).
+
+    ``hac_lags`` and ``prior_mean``/``prior_sd`` apply to the log-log model only; the Poisson
+    model refuses ``band="hac"`` with a message.
+    """
+    code = model_code(model)
+    if code == MODEL_POISSON:
+        from monitor.estimators.poisson import ElasticityPoisson
+
+        for key in ("prior_mean", "prior_sd", "hac_lags"):
+            if params.get(key) is not None and key != "hac_lags":
+                raise ValueError(f"{key} is not available for the Poisson model")
+            params.pop(key, None)
+        return ElasticityPoisson(**params)
+    from monitor.estimators.rls import ElasticityRLS
+
+    return ElasticityRLS(**params)
