@@ -66,13 +66,6 @@ def parse_instruments(linear: Sequence[str] = (), logged: Sequence[str] = (),
     return specs
 
 
-def instrument_values(x: Mapping[str, object], specs: Sequence[ControlSpec]) -> np.ndarray:
-    """The instrument part of the widened design row (validated like controls)."""
-    # design_row checks presence, finiteness and, for logged values, positivity
-    row = design_row({"price": 1.0, **{s.name: x[s.name] for s in specs if s.name in x}}, specs)
-    return row[2:]
-
-
 class ElasticityIV:
     """Online log-log elasticity through instruments (recursive 2SLS, exponential forgetting).
 
@@ -112,19 +105,38 @@ class ElasticityIV:
         self.min_n_eff = _check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
         self.min_price_sd = _check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
         self.f_min = _check_range("f_min", f_min, 0.0, math.inf, False, True)
-        self._specs = parse_controls(self.controls, self.log_controls)
-        self._ispecs = parse_instruments(self.instruments, self.log_instruments, self._specs)
-        self._k = 2 + len(self._specs)
+        self._cspecs = parse_controls(self.controls, self.log_controls)
+        self._ispecs = parse_instruments(self.instruments, self.log_instruments, self._cspecs)
+        self._kp = 2 + len(self._cspecs)
         self._nq = len(self._ispecs)
-        self._state = IK.init_state(self._k, self._nq)
+        # what the row path and the pipeline see: the design row is widened by the
+        # instruments, (1, log p, controls, instruments), so the shared design_matrix builds it
+        self._specs = self._cspecs + self._ispecs
+        self._k = self._kp + self._nq
+        self._band = K.BAND_HC
+        self._lags = self._nq       # the dispatch's ``lags`` argument carries the instrument count
+        self.excitation_guard = False
+        self.guard_forgetting = 0.8
+        self._state = self.initial_state()
         self._out = np.full(IK.NOUT_IV, np.nan)
         self._out[K.O_STATUS] = K.ST_WARMING_UP
-        self._work = np.empty(IK.work_size(self._k, self._nq))
+        self._work = np.empty(IK.work_size(self._kp, self._nq))
         self._tq = t_table(self.level)
+
+    #: model name in the estimator dispatch (:mod:`monitor.estimators.dispatch`)
+    model = "iv"
+
+    def initial_state(self) -> np.ndarray:
+        """A fresh state vector (no data; 2SLS has no prior)."""
+        return IK.init_state(self._kp, self._nq)
+
+    @property
+    def state_size(self) -> int:
+        return IK.state_size(self._kp, self._nq)
 
     @property
     def parameter_names(self) -> list[str]:
-        return parameter_names(self._specs)
+        return parameter_names(self._cspecs)
 
     @property
     def n_instruments(self) -> int:
@@ -133,23 +145,22 @@ class ElasticityIV:
     @property
     def kernel_args(self) -> tuple:
         """Arguments after ``(state, sid, R, y)`` of :func:`iv_kernel.iv_run`, up to ``tq``."""
-        return (self._k, self._nq, self.forgetting, self.min_price_sd, self.min_n_eff,
+        return (self._kp, self._nq, self.forgetting, self.min_price_sd, self.min_n_eff,
                 self.f_min, self._tq)
 
     def design(self, x: Mapping[str, object]) -> np.ndarray:
         """The widened row ``(1, log p, controls, instruments)`` for one observation."""
-        row = design_row(x, self._specs)
         missing = [s.name for s in self._ispecs if s.name not in x]
         if missing:
             raise ValidationError(f"instrument '{missing[0]}' is missing", field=missing[0],
                                   rule="missing")
-        return np.concatenate([row, instrument_values(x, self._ispecs)])
+        return design_row(x, self._specs)
 
     def learn_one(self, x: Mapping[str, object], y: float) -> "ElasticityIV":
         """Update with one observation: ``x`` holds price, controls and instruments."""
         r = self.design(x)
         q = check_quantity(y)
-        IK.iv_step(self._state, r, math.log(q), self._k, self._nq, self.forgetting,
+        IK.iv_step(self._state, r, math.log(q), self._kp, self._nq, self.forgetting,
                    self.min_price_sd, self.min_n_eff, self.f_min, self._tq, self._out,
                    self._work)
         return self
@@ -161,12 +172,13 @@ class ElasticityIV:
 
     @property
     def coefficients(self) -> dict[str, float]:
-        return dict(zip(self.parameter_names, map(float, self._state[K.NS:K.NS + self._k])))
+        return dict(zip(self.parameter_names, map(float, self._state[K.NS:K.NS + self._kp])))
 
     def covariance(self) -> np.ndarray:
         """HC1 robust sandwich covariance of the coefficients (NaN until the first solve)."""
-        o = IK.offsets(self._k, self._nq)[0]
-        return self._state[o:o + self._k * self._k].reshape(self._k, self._k).copy()
+        k = self._kp
+        o = IK.offsets(k, self._nq)[0]
+        return self._state[o:o + k * k].reshape(k, k).copy()
 
     @property
     def stderr(self) -> float:
@@ -272,7 +284,7 @@ def run_iv(est: ElasticityIV, sid: np.ndarray, R: np.ndarray, y: np.ndarray,
     R = np.ascontiguousarray(R, dtype=np.float64)
     y = np.ascontiguousarray(y, dtype=np.float64)
     sid = np.ascontiguousarray(sid, dtype=np.int64)
-    width = est._k + est._nq
+    width = est._k
     if R.ndim != 2 or R.shape[1] != width:
         raise ValueError(f"R has shape {R.shape}; expected (n, {width}): design columns "
                          f"{est.parameter_names} then {est._nq} instrument(s)")
@@ -280,7 +292,7 @@ def run_iv(est: ElasticityIV, sid: np.ndarray, R: np.ndarray, y: np.ndarray,
         raise ValueError("sid, R and y must have the same number of rows")
     n_series = int(sid.max()) + 1 if sid.size else 0
     if states is None:
-        states = np.tile(IK.init_state(est._k, est._nq), (n_series, 1))
+        states = np.tile(est.initial_state(), (n_series, 1))
     out = np.empty((R.shape[0], IK.NOUT_IV))
-    IK.iv_run(states, sid, R, y, *est.kernel_args, out, np.empty(IK.work_size(est._k, est._nq)))
+    IK.iv_run(states, sid, R, y, *est.kernel_args, out, np.empty(IK.work_size(est._kp, est._nq)))
     return IVBatchResult(out=out, states=states)

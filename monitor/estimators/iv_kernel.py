@@ -61,9 +61,6 @@ NOUT_IV = K.NOUT + 1
 ST_WEAK_INSTRUMENT = 5
 #: default threshold of the first stage's effective F
 DEFAULT_F_MIN = 10.0
-#: the shared band-code column, when the least-squares kernel has one (IV bands are robust, HC)
-_O_BAND = getattr(K, "O_BAND", -1)
-_BAND_HC = getattr(K, "BAND_HC", 1)
 
 
 def sizes(k: int, n_instruments: int) -> tuple[int, int, int]:
@@ -97,6 +94,11 @@ def work_size(k: int, n_instruments: int) -> int:
     m, ng, nz2 = sizes(k, n_instruments)
     q = n_instruments
     return 3 * ng + nz2 + ng * ng + 7 * m * m + 2 * m * k + 5 * k * k + 2 * k + m + 3 * q * q
+
+
+def work_size_bound(width: int) -> int:
+    """Scratch enough for any split of a design row of ``width`` = k + instruments columns."""
+    return max([work_size(width - q, q) for q in range(1, max(2, width - 1))])
 
 
 def init_state(k: int, n_instruments: int) -> np.ndarray:
@@ -208,8 +210,8 @@ def iv_step(st, r, y, k, nq, lam, min_price_sd, min_neff, f_min, tq, out, w):
     neff = W * W / W2
 
     out[K.O_NEFF] = neff
-    if _O_BAND >= 0:
-        out[_O_BAND] = _BAND_HC
+    out[K.O_BAND] = K.BAND_HC          # the IV band is always the robust one
+    out[K.O_YLOG] = y
     out[K.O_E] = e
     out[K.O_Z] = st[K.I_Z]
     ok = _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M, V, T, Pi,
