@@ -16,9 +16,10 @@ Measured (per cell): median detection delay / bound (a series not detected withi
 horizon counts as infinitely late), share detected within 5x the bound, label accuracy (the
 first change alert after the change is ``elasticity_change``), median |estimated change time
 - true| against the median delay, alerts opened per 10,000 in-control observations of each
-kind against 10,000 / ARL0, alerts in the first 200 observations after the estimator leaves
-warm-up, ``elasticity_change`` raised after a pure level shift, and the delay of a second
-change while the first alert is open against the same change in a fresh series.
+kind against 10,000 / ARL0 (observations from the first one with status ``ok``), alerts
+in the first 200 observations from there (where the charts start), ``elasticity_change``
+raised after a pure level shift, and the delay of a second change while the first alert is
+open against the same change in a fresh series.
 
 Runs on the tree before issue 11's layout as well (``monitor.config`` / ``monitor.pipeline``),
 which is how the "before" numbers were measured.
@@ -34,12 +35,13 @@ import numpy as np
 
 from simulators.change_grid import Scenario, Simulation, simulate
 
+
 ARLS = (2000.0, 20000.0)
 #: observations after a pure level shift in which an ``elasticity_change`` counts against it
 LEVEL_WINDOW = 500
 #: observations after a change that are always simulated (at least 6 bounds)
 HORIZON_MIN = 1000
-#: observations after the estimator leaves warm-up that count as the chart's start
+#: observations from the first usable estimate (status ``ok``) that count as the charts' start
 START_WINDOW = 200
 KINDS = ("elasticity_change", "level_shift")
 
@@ -116,7 +118,7 @@ class Outcome:
     change_err: np.ndarray | None = None            # (S,) |tau_hat - tau| of the first ec alert
     counts: dict = field(default_factory=dict)      # kind -> alerts opened (whole series)
     start_counts: dict = field(default_factory=dict)  # kind -> alerts in the start window
-    obs: int = 0                                    # observations counted (after warm-up)
+    obs: int = 0                                    # observations counted (from the first ok)
     start_obs: int = 0
     window_counts: dict = field(default_factory=dict)  # kind -> alerts in [tau, tau + W)
 
@@ -142,7 +144,7 @@ class Runner:
 
     def run(self, sim: Simulation, arl0: float, at: int) -> tuple[Outcome, np.ndarray, np.ndarray]:
         """elmon's outcome on ``sim`` (change to detect at observation ``at``), the innovations
-        z per row and the first observation after warm-up per series."""
+        z per row and the first observation with status ``ok`` per series."""
         from monitor.estimators import kernel as K
 
         est, pipe = self.pipeline(arl0, sim.scenario.controls)
@@ -155,7 +157,7 @@ class Runner:
                         dtype=float)
         status = res.out[:, K.O_STATUS]
         z = np.where(status == K.ST_WARMING_UP, np.nan, res.out[:, K.O_Z])
-        start = _starts(sim, status != K.ST_WARMING_UP)
+        start = _starts(sim, status == K.ST_OK)       # first usable estimate: charts can start
         out = outcome(sim, rows, kinds, cobs, at, start)
         return out, z, start
 
@@ -346,6 +348,8 @@ def measure(n_slope: int = 200, n_control: int = 500, n_level: int = 500, n_rive
                 rec[name] = {k: per10k(o.counts[k], o.obs) for k in KINDS}
                 rec[name]["start"] = {k: per10k(o.start_counts[k], o.start_obs) for k in KINDS}
                 rec[name]["n"] = {k: o.counts[k] for k in KINDS}
+                rec[name]["start_n"] = dict(o.start_counts)
+                rec[name]["start_obs"] = o.start_obs
                 rec[name]["obs"] = o.obs
             for which in ("ph", "adwin"):
                 o = river_outcome(sim, z, arl0, sc.n_obs, n_river, which)

@@ -109,61 +109,83 @@ def _reanchor(g):
     g[G_BFS] = g[G_BFF]
 
 
+@njit(cache=True, inline="always")
+def _after_step(st, g, o, xj, yj, k, h, kk, burn, clear_after, cooldown):
+    """The old chart and alert policy after the estimator's step on one row; returns 1 when an
+    ``elasticity_change`` alert opens."""
+    stat = o[K.O_STATUS]
+    ys = yj
+    for i in range(2, k):
+        ys -= st[K.NS + i] * xj[i]
+    paused = st[K.I_PAUSED]
+    d = _slope_step(g, xj[1], ys, o[K.O_RESID_SD], paused, FAST, REFERENCE)
+    inf = stat == K.ST_OK and paused == 0.0
+    alarm = False
+    c = SLOPE_SIZE
+    if inf and d == d:
+        g[c + C_SEEN] += 1.0
+        if g[c + C_SEEN] > burn:
+            up = max(g[c + C_UP] + d - kk, 0.0)
+            dn = max(g[c + C_DN] - d - kk, 0.0)
+            if up > h or dn > h:
+                alarm = True
+                up = 0.0
+                dn = 0.0
+            g[c + C_UP] = up
+            g[c + C_DN] = dn
+    r = SLOPE_SIZE + 3
+    n = st[K.I_N]
+    opened = 0
+    if g[r + R_OPEN] != 0.0:
+        if alarm:
+            g[r + R_QUIET] = 0.0
+        elif inf:
+            g[r + R_QUIET] += 1.0
+        if g[r + R_QUIET] >= clear_after:
+            g[r + R_OPEN] = 0.0
+            g[r + R_LAST_CLEAR] = n
+            g[r + R_CLEARS] += 1.0
+    elif alarm and inf and not (g[r + R_CLEARS] > 0.0 and n - g[r + R_LAST_CLEAR] <= cooldown):
+        g[r + R_OPEN] = 1.0
+        g[r + R_QUIET] = 0.0
+        opened = 1
+    if alarm:
+        _reanchor(g)
+    return opened
+
+
 @njit(cache=True)
-def _run(est, old, sid, X, y, lam, guard, guard_lam, mps, mneff, tq, h, kk, burn, clear_after,
-         cooldown, opened, z):
-    """Rows in order; ``opened[j] = 1`` where an ``elasticity_change`` alert opened, ``z[j]``
-    the estimator's standardized innovation (NaN while warming up)."""
+def _run_v1(est, old, sid, X, y, lam, guard, guard_lam, mps, mneff, tq, h, kk, burn,
+            clear_after, cooldown, opened, z):
+    """Rows in order with the estimator step of 4b04b35 (``step_two`` / ``step_general``);
+    ``opened[j] = 1`` where an alert opened, ``z[j]`` the standardized innovation."""
     k = X.shape[1]
     o = np.empty(K.NOUT)
     u = np.empty(k)
     for j in range(X.shape[0]):
-        s = sid[j]
-        st = est[s]
+        st = est[sid[j]]
         if k == 2:
             K.step_two(st, X[j, 1], y[j], lam, guard, guard_lam, mps, mneff, tq, o)
         else:
             K.step_general(st, X[j], y[j], k, lam, guard, guard_lam, mps, mneff, tq, o, u)
-        stat = o[K.O_STATUS]
-        z[j] = o[K.O_Z] if stat != K.ST_WARMING_UP else np.nan
-        g = old[s]
-        ys = y[j]
-        for i in range(2, k):
-            ys -= st[K.NS + i] * X[j, i]
-        paused = st[K.I_PAUSED]
-        d = _slope_step(g, X[j, 1], ys, o[K.O_RESID_SD], paused, FAST, REFERENCE)
-        inf = stat == K.ST_OK and paused == 0.0
-        alarm = False
-        c = SLOPE_SIZE
-        if inf and d == d:
-            g[c + C_SEEN] += 1.0
-            if g[c + C_SEEN] > burn:
-                up = max(g[c + C_UP] + d - kk, 0.0)
-                dn = max(g[c + C_DN] - d - kk, 0.0)
-                if up > h or dn > h:
-                    alarm = True
-                    up = 0.0
-                    dn = 0.0
-                g[c + C_UP] = up
-                g[c + C_DN] = dn
-        r = SLOPE_SIZE + 3
-        n = st[K.I_N]
-        opened[j] = 0
-        if g[r + R_OPEN] != 0.0:
-            if alarm:
-                g[r + R_QUIET] = 0.0
-            elif inf:
-                g[r + R_QUIET] += 1.0
-            if g[r + R_QUIET] >= clear_after:
-                g[r + R_OPEN] = 0.0
-                g[r + R_LAST_CLEAR] = n
-                g[r + R_CLEARS] += 1.0
-        elif alarm and inf and not (g[r + R_CLEARS] > 0.0 and n - g[r + R_LAST_CLEAR] <= cooldown):
-            g[r + R_OPEN] = 1.0
-            g[r + R_QUIET] = 0.0
-            opened[j] = 1
-        if alarm:
-            _reanchor(g)
+        z[j] = o[K.O_Z] if o[K.O_STATUS] != K.ST_WARMING_UP else np.nan
+        opened[j] = _after_step(st, old[sid[j]], o, X[j], y[j], k, h, kk, burn, clear_after,
+                                cooldown)
+
+
+@njit(cache=True)
+def _run_v2(est, old, sid, X, y, band, lags, lam, guard, guard_lam, mps, mneff, tq, h, kk,
+            burn, clear_after, cooldown, opened, z):
+    """The same with the estimator step of later commits (``rls_step`` with bands)."""
+    k = X.shape[1]
+    o = np.empty(K.NOUT)
+    w = np.empty(k * k + 8 * k + 64)
+    for j in range(X.shape[0]):
+        st = est[sid[j]]
+        K.rls_step(st, X[j], y[j], k, band, lags, lam, guard, guard_lam, mps, mneff, tq, o, w)
+        z[j] = o[K.O_Z] if o[K.O_STATUS] != K.ST_WARMING_UP else np.nan
+        opened[j] = _after_step(st, old[sid[j]], o, X[j], y[j], k, h, kk, burn, clear_after,
+                                cooldown)
 
 
 def run_old_slope(est, sid, X, y, n_series: int, arl0: float) -> tuple[np.ndarray, np.ndarray]:
@@ -183,9 +205,13 @@ def run_old_slope(est, sid, X, y, n_series: int, arl0: float) -> tuple[np.ndarra
     old = np.zeros((n_series, OLD_SIZE))
     opened = np.zeros(X.shape[0], dtype=np.int8)
     z = np.empty(X.shape[0])
-    _run(st, old, np.ascontiguousarray(sid, dtype=np.int64), X,
-         np.ascontiguousarray(y, dtype=np.float64), *est.kernel_args, OLD_H[float(arl0)], OLD_K,
-         float(OLD_BURN), float(CLEAR_AFTER), float(COOLDOWN), opened, z)
+    args = tuple(est.kernel_args)
+    # the estimator's kernel arguments grew (band, lags) after 4b04b35; the old chart sits on
+    # whichever estimator step the tree has (classic band: the one it was designed with)
+    run = _run_v1 if len(args) == 6 else _run_v2
+    run(st, old, np.ascontiguousarray(sid, dtype=np.int64), X,
+        np.ascontiguousarray(y, dtype=np.float64), *args, OLD_H[float(arl0)], OLD_K,
+        float(OLD_BURN), float(CLEAR_AFTER), float(COOLDOWN), opened, z)
     return opened, z
 
 
