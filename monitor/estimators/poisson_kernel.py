@@ -12,12 +12,17 @@ Harrison & Migon 1985; one Fisher-scoring step per observation), with ``mu = exp
 
     A     <- lam A + mu x x'                       information, exponentially weighted
     theta <- theta + A^- x (q - mu)                (columns not yet identified are left out)
-    H     <- lam^2 H + r^2 x x',  r = q - exp(x' theta_t + o)     sandwich meat
+    H     <- lam^2 H + max(e r, 0) x x'             sandwich meat
     V     <- lam V + r^2 / mu_t                     Pearson sum (dispersion phi = V / (W - k))
 
-Variance of b: ``hc`` (default) the sandwich ``c (A^-1 H A^-1)_bb`` with the same small-sample
-factor as the log-log bands (``c = W2 / (W2 - k W3 / W)``; HC1 at forgetting 1); ``classic``
-the quasi-Poisson ``phi (A^-1)_bb``. Limits: Student-t with ``n_eff - k`` degrees of freedom.
+with ``e = q - mu`` (before the step) and ``r = q - exp(x' theta_t + o)`` (after it). The
+product ``e r`` estimates the variance of ``q`` without the leverage bias of either factor
+alone: ``r ~ e (1 - h)`` and ``E[e^2] ~ Var(q) (1 + h')`` with ``h, h'`` the leverages after and
+before the step (equal to first order), so no small-sample factor is applied. (Measured:
+with ``r^2`` and the HC1-type factor the band covered 93% at mean 10; with ``e r`` 94-96%.)
+
+Variance of b: ``hc`` (default) the sandwich ``(A^-1 H A^-1)_bb``; ``classic`` the
+quasi-Poisson ``phi (A^-1)_bb``. Limits: Student-t with ``n_eff - k`` degrees of freedom.
 
 The filter is one pass: at forgetting 1 it is not the maximum-likelihood estimate itself but
 converges to it (each step is a Newton step of the weighted likelihood from the previous
@@ -45,7 +50,7 @@ import numpy as np
 from numba import njit
 
 from monitor.estimators.kernel import (BAND_CLASSIC, I_E, I_N, I_V, I_W, I_W2, I_W3, I_XSD,
-                                       I_Z, I_ZSD, NS, O_YLOG, excitation, finish, hc_factor)
+                                       I_Z, I_ZSD, NS, O_YLOG, excitation, finish)
 from monitor.estimators.solve import factor, price_column, solve
 
 #: largest change of the linear predictor at the current row (and of b) in one step
@@ -142,9 +147,12 @@ def poisson_step(st, x, y, off, k, band, lam, guard, guard_lam, min_price_sd, mi
     r1 = y - mu1
     l2 = lt * lt
     i = h0
+    ee = e * r1
+    if ee < 0.0:
+        ee = 0.0
     for a in range(k):
         for b in range(a, k):
-            st[i] = l2 * st[i] + r1 * r1 * x[a] * x[b]
+            st[i] = l2 * st[i] + ee * x[a] * x[b]
             i += 1
     V = lt * V + r1 * r1 / mu1
     W = lt * W + 1.0
@@ -173,7 +181,6 @@ def poisson_step(st, x, y, off, k, band, lam, guard, guard_lam, min_price_sd, mi
                     t = pc[a] * pc[b] * st[i]
                     vb += t if a == b else 2.0 * t
                     i += 1
-            vb *= hc_factor(W, W2, W3, rank)
     finish(st, out, st[th + 1], st[th], identified, vb, V, float(rank), k, neff,
            raw_low or xsd < min_price_sd, band, e, z, min_neff, tq, ylog)
     out[O_YLOG] = ylog
