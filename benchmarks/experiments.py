@@ -14,6 +14,8 @@ forgetting 1 and is looked at after every observation up to 2,000:
   of the 2,000 looks. Target <= 5%.
 - *fixed band excludes b at some look*: the same for the fixed 95% t band (Armitage, McPherson
   & Rowe 1969: repeated looks inflate its error rate).
+- *a series' own CS excludes its b at some look*: the same for each series' own fit (its rows
+  only, own intercept), 500 looks per series. Target <= 5%.
 - *CS / fixed width at n = 2,000*: target <= 2.
 - *forecast within +-25%*: target half-width 0.12; the forecast made at a quarter of the
   observations the CS needed (the realized number) is within 25% of it. Target >= 80%.
@@ -40,7 +42,7 @@ PHI = 1.0
 def coverage(n_experiments: int, n_obs: int = 2000, seed: int = 18) -> dict:
     """Crossing rates of the CS and the fixed band over looks after every observation."""
     rng = np.random.default_rng(seed)
-    cs_out = fixed_out = 0
+    cs_out = fixed_out = series_out = series_n = 0
     ratios = []
     for chunk in range(0, n_experiments, 100):
         m = min(100, n_experiments - chunk)
@@ -54,7 +56,17 @@ def coverage(n_experiments: int, n_obs: int = 2000, seed: int = 18) -> dict:
                 cs_out += bool(np.any(err > r_cs * p.se))
                 fixed_out += bool(np.any(err > r_fx * p.se))
             ratios.append(r_cs[-1] / r_fx[-1])
+            # each series' own confidence sequence (own intercept), at every look of that series
+            s_codes = codes[codes == 0]
+            for s in range(codes.max() + 1):
+                rows = codes == s
+                ps = pooled_path(s_codes, design_matrix(lp[e, rows], None, lq[e, rows]))
+                with np.errstate(invalid="ignore"):
+                    series_out += bool(np.any(np.abs(ps.b - B_TRUE) >
+                                              cs_radius(ps.info, ps.df, ALPHA, PHI) * ps.se))
+                series_n += 1
     return {"cs_rate": cs_out / n_experiments, "fixed_rate": fixed_out / n_experiments,
+            "series_rate": series_out / series_n, "series_n": series_n,
             "width_ratio_median": float(np.median(ratios)), "width_ratio_max": float(max(ratios)),
             "n": n_experiments}
 
@@ -97,6 +109,10 @@ def run(ctx: Context) -> list[Row]:
         Row("experiments: fixed 95% band excludes true b at some look", 100 * cov["fixed_rate"],
             "%", [100 * cov["fixed_rate"]], reference=True, better="lower",
             ratio=f"CS {100 * cov['cs_rate']:.1f}% vs fixed {100 * cov['fixed_rate']:.1f}%"),
+        Row("experiments: a series' own CS excludes its b at some look",
+            100 * cov["series_rate"], "%", [100 * cov["series_rate"]], "<= 5%",
+            cov["series_rate"] <= 0.05, better="lower",
+            check=f"{cov['series_n']} series, 500 looks each"),
         Row("experiments: CS / fixed band width at n = 2,000 (median)",
             cov["width_ratio_median"], "x", [cov["width_ratio_median"]], "<= 2",
             cov["width_ratio_max"] <= 2.0, better="lower",
