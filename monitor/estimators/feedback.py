@@ -244,6 +244,75 @@ def verdict_events(out: np.ndarray, sid: np.ndarray, before: np.ndarray) -> list
              float(out[j, FB_COEF]), int(out[j, FB_DIRECTION])) for j in rows]
 
 
+def pipeline_pass(fb_states: np.ndarray, sid: np.ndarray, log_price: np.ndarray,
+                  out: np.ndarray, forgetting: float, instrumented: bool = False
+                  ) -> tuple[np.ndarray, list[tuple]]:
+    """The diagnostic over one batch of pipeline rows, after the compiled pipeline ran.
+
+    ``fb_states`` are the series' feedback states (``(n_series, STATE_SIZE)``, updated in
+    place, so batches chain and checkpoints carry them), ``out`` the estimator's output rows
+    (innovation ``O_E``, status ``O_STATUS``, band ``O_BETA/O_LO/O_HI``). Returns the per-row
+    outputs (columns ``FB_*``) and the ``price_feedback`` openings and clearings as
+    ``(row, sid, action, t, coef, direction, beta, lo, hi, instrumented)``; ``instrumented``:
+    the estimates go through instruments (the message then says so).
+    """
+    from monitor.estimators import kernel as K
+
+    before = fb_states[:, F_VERDICT].copy()
+    use = (out[:, K.O_STATUS] != K.ST_WARMING_UP) & np.isfinite(out[:, K.O_E])
+    res = np.empty((len(sid), FB_NOUT))
+    feedback_run(fb_states, np.ascontiguousarray(sid, dtype=np.int64),
+                 np.ascontiguousarray(log_price, dtype=np.float64),
+                 np.ascontiguousarray(out[:, K.O_E]), use, float(forgetting), DEFAULT_T_ON,
+                 DEFAULT_T_OFF, DEFAULT_MIN_N_EFF, res, np.empty(WORK_SIZE))
+    events = [ev + (float(out[ev[0], K.O_BETA]), float(out[ev[0], K.O_LO]),
+                    float(out[ev[0], K.O_HI]), bool(instrumented))
+              for ev in verdict_events(res, sid, before)]
+    return res, events
+
+
+def _num(v: float):
+    return float(v) if math.isfinite(v) else None
+
+
+def event_rows(events: list[tuple], names=None) -> list[dict]:
+    """``price_feedback`` events (from :func:`pipeline_pass`) as rows of the alert events
+    table (``row, sid, kind, action, severity, beta, beta_lo, beta_hi, message, details``);
+    informational."""
+    rows = []
+    for j, s, action, t, coef, direction, b, lo, hi, instrumented in events:
+        series = str(names[s]) if names is not None else f"series {s}"
+        if action == "open" and instrumented:
+            msg = (f"{series}: prices follow demand (yesterday's demand surprise predicts "
+                   f"today's price move, t = {t:.1f}). The estimates here go through the "
+                   "instruments, which removes that bias if the instruments move the price "
+                   "and not demand; watch the first-stage F (weak_instrument below 10).")
+        elif action == "open":
+            msg = feedback_message(series, t, coef, direction)
+        else:
+            msg = (f"{series}: price feedback no longer detected (t = {t:.1f}); elasticity "
+                   "estimates from these prices are less exposed to it now.")
+        rows.append({"row": j, "sid": s, "kind": "price_feedback", "action": action,
+                     "severity": "info", "beta": b, "beta_lo": lo, "beta_hi": hi,
+                     "message": msg,
+                     "details": {"t": _num(t), "coefficient": _num(coef),
+                                 "bias_direction": DIRECTIONS[direction],
+                                 "test": "log-price change on lagged demand surprise "
+                                         "(Granger 1969)"}})
+    return rows
+
+
+def feedback_summary(alerts) -> dict:
+    """summary.json block from the alerts table (``rule == "price_feedback"`` rows): the
+    number of series flagged and, per flagged series, the first flag's time and message."""
+    if alerts is None or not len(alerts):
+        return {"series_flagged": 0, "series": {}}
+    pf = alerts[alerts["rule"] == "price_feedback"].drop_duplicates("series", keep="first")
+    return {"series_flagged": int(len(pf)),
+            "series": {str(r.series): {"verdict": "feedback", "first_ts": str(r.ts),
+                                       "message": str(r.message)} for r in pf.itertuples()}}
+
+
 class PriceFeedback:
     """Streaming price-feedback diagnostic for one series (see the module docstring).
 

@@ -125,6 +125,8 @@ class ElasticityIV:
 
     #: model name in the estimator dispatch (:mod:`monitor.estimators.dispatch`)
     model = "iv"
+    #: width of the output rows: the shared columns plus ``first_stage_f``
+    nout = IK.NOUT_IV
 
     def initial_state(self) -> np.ndarray:
         """A fresh state vector (no data; 2SLS has no prior)."""
@@ -168,7 +170,8 @@ class ElasticityIV:
     # ------------------------------------------------------------------ results
     @property
     def elasticity(self) -> float:
-        return float(self._state[K.NS + 1])
+        """Current b (NaN until the moments can be solved)."""
+        return float(self._out[K.O_BETA])
 
     @property
     def coefficients(self) -> dict[str, float]:
@@ -240,6 +243,28 @@ class ElasticityIV:
     def __repr__(self) -> str:
         return (f"ElasticityIV(instruments={self.instruments + self.log_instruments}, "
                 f"forgetting={self.forgetting}, controls={self.controls + self.log_controls})")
+
+
+def est_instruments(est, logged: bool = False) -> tuple[str, ...]:
+    """Instrument columns of any estimator (empty for the estimators without instruments):
+    the row path validates them like controls."""
+    return tuple(getattr(est, "log_instruments" if logged else "instruments", ()))
+
+
+#: ``[estimator]`` keys an IV estimator takes from a config section
+IV_KEYS = ("instruments", "log_instruments", "forgetting", "controls", "log_controls", "level",
+           "min_price_sd")
+
+
+def iv_from_settings(params: Mapping) -> ElasticityIV:
+    """The IV estimator from ``[estimator]`` settings that name instruments. Keys of the
+    least-squares estimator without meaning here (prior, excitation guard) are not used;
+    ``min_n_eff`` applies when it is set above the IV default of 30."""
+    kw = {k: params[k] for k in IV_KEYS if k in params and params[k] is not None}
+    est = ElasticityIV(**kw)
+    if params.get("min_n_eff") is not None and float(params["min_n_eff"]) > est.min_n_eff:
+        est = ElasticityIV(**kw, min_n_eff=float(params["min_n_eff"]))
+    return est
 
 
 @dataclass

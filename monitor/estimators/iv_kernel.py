@@ -224,8 +224,9 @@ def iv_step(st, r, y, k, nq, lam, min_price_sd, min_neff, f_min, tq, out, w):
     fstat = st[o_sc + J_FSTAT]
     if out.shape[0] > O_FSTAT:
         out[O_FSTAT] = fstat
-    out[K.O_BETA] = st[K.NS + 1]
-    out[K.O_INTERCEPT] = st[K.NS]
+    solved = st[o_sc + J_PIVOT] != 0.0
+    out[K.O_BETA] = st[K.NS + 1] if solved else np.nan
+    out[K.O_INTERCEPT] = st[K.NS] if solved else np.nan
     dof = W - k
     vb = st[o_cov + k + 1]
     RSS = st[K.I_V]
