@@ -8,6 +8,7 @@ import math
 
 import numpy as np
 import pytest
+import statsmodels.api as sm
 from hypothesis import given, settings
 from hypothesis import strategies as hst
 from numba import njit
@@ -15,6 +16,7 @@ from numba import njit
 from monitor.errors import ValidationError
 from monitor.estimators import ElasticityRLS, run_batch
 from monitor.estimators import kernel as K
+from monitor.estimators.dispatch import estimator_discount
 from tests.conftest import simulate_loglog
 
 
@@ -232,3 +234,50 @@ def test_predict_one_retransforms_to_the_mean(rng):
     assert pred == pytest.approx(true_mean, rel=0.02)
     naive = math.exp(est.intercept + est.elasticity * math.log(10.0))
     assert pred / naive == pytest.approx(math.exp(0.5 * est.residual_sd ** 2), rel=1e-12)
+
+
+# ----------------------------------------------------------------------------- discount
+@njit
+def _discount(model, st, k, band, lags, f):
+    estimator_discount(model, st, k, band, lags, f)
+
+
+@pytest.mark.parametrize("model, band", [("loglinear", "classic"), ("loglinear", "hc"),
+                                         ("loglinear", "hac"), ("poisson", "hc")])
+def test_discount_keeps_theta_and_neff_and_equals_forgetting_the_past(rng, model, band):
+    # reference: a discount by f at row m equals running the rows with weights f lam^(t-s)
+    # for s <= m, i.e. the same weighted least squares / likelihood (common practice:
+    # exponential forgetting is a product of step factors)
+    from monitor.estimators import make_estimator
+    from monitor.estimators.dispatch import model_code
+
+    n, m, f = 400, 250, 0.05
+    lp = np.log(4.0) + rng.normal(0, 0.15, n)
+    if model == "poisson":
+        y = rng.poisson(3.0 * np.exp(-1.5 * (lp - np.log(4.0)))).astype(float)
+    else:
+        y = 2.0 - 1.5 * lp + rng.normal(0, 0.2, n)
+    X = np.column_stack([np.ones(n), lp])
+    kw = {"hac_lags": 3} if model == "loglinear" else {}
+    est = make_estimator(model, forgetting=0.99, band=band, excitation_guard=False, **kw)
+    sid = np.zeros(n, dtype=np.int64)
+    first = run_batch(est, sid[:m], X[:m], y[:m])
+    st = first.states[0].copy()
+    theta = st[K.NS:K.NS + 2].copy()
+    neff = st[K.I_W] ** 2 / st[K.I_W2]
+    _discount(model_code(model), st, 2, K.BANDS[band], est._lags, f)
+    np.testing.assert_array_equal(st[K.NS:K.NS + 2], theta)
+    assert st[K.I_W] ** 2 / st[K.I_W2] == pytest.approx(neff, rel=1e-12)
+    rest = run_batch(est, sid[m:], X[m:], y[m:], states=st[None, :].copy())
+    if model == "loglinear":
+        # after the discount the fit is weighted least squares with the old rows down-weighted
+        t = n - 1
+        w = 0.99 ** (t - np.arange(n)) * np.where(np.arange(n) < m, f, 1.0)
+        ref = sm.WLS(y, X, weights=w).fit()
+        np.testing.assert_allclose(rest.beta[-1], ref.params[1], rtol=1e-9)
+    else:
+        from monitor.estimators import poisson_fit
+
+        w = 0.99 ** (n - 1 - np.arange(n)) * np.where(np.arange(n) < m, f, 1.0)
+        ref = poisson_fit(X, y, weights=w)
+        assert abs(rest.beta[-1] - ref.params[1]) < 0.05 * ref.bse_hc1[1]

@@ -18,7 +18,8 @@ from __future__ import annotations
 from numba import njit
 
 from monitor.estimators import kernel as K
-from monitor.estimators.poisson_kernel import poisson_state_size, poisson_step, poisson_work_size
+from monitor.estimators.poisson_kernel import (poisson_discount, poisson_state_size, poisson_step,
+                                               poisson_work_size)
 
 MODEL_LOGLINEAR, MODEL_POISSON = 0, 1
 MODELS = {"loglinear": MODEL_LOGLINEAR, "poisson": MODEL_POISSON}
@@ -68,6 +69,16 @@ def estimator_step(model, st, x, y, off, k, band, lags, lam, guard, guard_lam, m
                    out, w)
 
 
+@njit(cache=True, inline="always")
+def estimator_discount(model, st, k, band, lags, f):
+    """Discount everything a series' estimator has accumulated by ``f`` (any model; see
+    :func:`monitor.estimators.kernel.discount`)."""
+    if model == MODEL_POISSON:
+        poisson_discount(st, k, f)
+    else:
+        K.discount(st, k, band, lags, f)
+
+
 @njit(cache=True)
 def estimator_run(model, state, sid, X, y, off, band, lags, lam, guard, guard_lam,
                   min_price_sd, min_neff, tq, out, w):
@@ -83,16 +94,16 @@ def estimator_run(model, state, sid, X, y, off, band, lags, lam, guard, guard_la
 def make_estimator(model: str = "loglinear", **params):
     """The streaming estimator of ``model`` with ``params`` (its constructor's arguments).
 
-    ``hac_lags`` and ``prior_mean``/``prior_sd`` apply to the log-log model only; the Poisson
-    model refuses ``band="hac"`` with a message.
+    ``hac_lags`` and ``prior_mean``/``prior_sd`` apply to the log-log model only (the Poisson
+    model ignores them, and refuses a given ``prior_sd`` and ``band="hac"`` with a message).
     """
     code = model_code(model)
     if code == MODEL_POISSON:
         from monitor.estimators.poisson import ElasticityPoisson
 
+        if params.get("prior_sd") is not None:
+            raise ValueError("prior_sd: a prior is not available for the Poisson model")
         for key in ("prior_mean", "prior_sd", "hac_lags"):
-            if params.get(key) is not None and key != "hac_lags":
-                raise ValueError(f"{key} is not available for the Poisson model")
             params.pop(key, None)
         return ElasticityPoisson(**params)
     from monitor.estimators.rls import ElasticityRLS

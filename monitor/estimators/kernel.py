@@ -516,3 +516,34 @@ def rls_run(state, sid, X, y, band, lags, lam, guard, guard_lam, min_price_sd, m
     for j in range(X.shape[0]):
         rls_step(state[sid[j]], X[j], y[j], k, band, lags, lam, guard, guard_lam, min_price_sd,
                  min_neff, tq, out[j], w)
+
+
+@njit(cache=True, inline="always")
+def discount(st, k, band, lags, f):
+    """One extra forgetting step of factor ``f`` in (0, 1] on everything accumulated so far.
+
+    Every weighted sum scales like its weights: ``A, c, Y2, V, W``, the residual-power sums and
+    the raw log-price window by ``f``; ``W2`` and the meat tensors (squared weights) by ``f^2``;
+    ``W3`` by ``f^3``; the HAC lagged rows' weights by ``f``. ``theta`` (the solution of
+    ``A theta = c``) and ``n_eff = W^2 / W2`` are unchanged at that moment; the rows after it
+    dominate the fit. The pipeline calls it after an elasticity-change alarm.
+    """
+    f2 = f * f
+    for i in (I_W, I_V, I_YY, I_R2, I_R3, I_R4, I_SMEAR, I_LPW, I_LPM2):
+        st[i] *= f
+    st[I_W2] *= f2
+    st[I_W3] *= f2 * f
+    a0 = NS + k
+    for i in range(a0, a0 + k * k + k):
+        st[i] *= f
+    t0 = a0 + k * k + 2 * k
+    nab = k * (k + 1) // 2
+    ncd = 1 if band == BAND_CLASSIC else (k + 1) * (k + 2) // 2
+    size = nab * ncd
+    nq = lags if band == BAND_HAC else 0
+    for i in range(t0, t0 + size * (1 + nq)):
+        st[i] *= f2
+    if nq > 0:
+        g0 = t0 + size * (1 + nq)
+        for l in range(nq):
+            st[g0 + l * (k + 2) + k + 1] *= f

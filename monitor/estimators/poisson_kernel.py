@@ -49,8 +49,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from monitor.estimators.kernel import (BAND_CLASSIC, I_E, I_N, I_V, I_W, I_W2, I_W3, I_XSD,
-                                       I_Z, I_ZSD, NS, O_YLOG, excitation, finish)
+from monitor.estimators.kernel import (BAND_CLASSIC, I_E, I_LPM2, I_LPW, I_N, I_V, I_W, I_W2,
+                                       I_W3, I_XSD, I_Z, I_ZSD, NS, O_YLOG, excitation, finish)
 from monitor.estimators.solve import factor, price_column, solve
 
 #: largest change of the linear predictor at the current row (and of b) in one step
@@ -184,3 +184,20 @@ def poisson_step(st, x, y, off, k, band, lam, guard, guard_lam, min_price_sd, mi
     finish(st, out, st[th + 1], st[th], identified, vb, V, float(rank), k, neff,
            raw_low or xsd < min_price_sd, band, e, z, min_neff, tq, ylog)
     out[O_YLOG] = ylog
+
+
+@njit(cache=True, inline="always")
+def poisson_discount(st, k, f):
+    """One extra forgetting step of factor ``f`` (as :func:`monitor.estimators.kernel.discount`):
+    ``A, V, W`` and the raw log-price window by ``f``, ``H`` and ``W2`` by ``f^2``, ``W3`` by
+    ``f^3``; ``theta`` and ``n_eff`` unchanged."""
+    f2 = f * f
+    for i in (I_W, I_V, I_LPW, I_LPM2):
+        st[i] *= f
+    st[I_W2] *= f2
+    st[I_W3] *= f2 * f
+    a0 = NS + k
+    for i in range(a0, a0 + k * k):
+        st[i] *= f
+    for i in range(a0 + k * k, a0 + k * k + k * (k + 1) // 2):
+        st[i] *= f2

@@ -1,0 +1,38 @@
+"""The ``[estimator]`` section: its keys (the schema :mod:`monitor.settings` composes) and the
+estimator prototype built from it.
+
+Keys (defaults in brackets): model ["loglinear"] or "poisson"; band ["hc"], "hac" or
+"classic"; hac_lags [4]; exposure [""]: name of the exposure column (opening hours, customers,
+connected meters; Poisson model); forgetting [0.99], controls [[]], log_controls [[]],
+level [0.95], prior_mean [0.0], prior_sd [none: no prior], min_n_eff [10.0],
+min_price_sd [0.02], excitation_guard [true], guard_forgetting [0.8].
+"""
+
+from __future__ import annotations
+
+from monitor.errors import ConfigError
+from monitor.estimators.dispatch import make_estimator
+
+
+ESTIMATOR_KEYS = {"model": (str, "loglinear"), "band": (str, "hc"), "hac_lags": (int, 4),
+                  "exposure": (str, ""), "forgetting": ((int, float), 0.99),
+                  "controls": (list, []),
+                  "log_controls": (list, []), "level": ((int, float), 0.95),
+                  "prior_mean": ((int, float), 0.0), "prior_sd": ((int, float), None),
+                  "min_n_eff": ((int, float), 10.0), "min_price_sd": ((int, float), 0.02),
+                  "excitation_guard": (bool, True), "guard_forgetting": ((int, float), 0.8)}
+#: the sections this module owns, for monitor.settings to compose
+SECTIONS = {"estimator": ESTIMATOR_KEYS}
+
+
+def estimator_from_config(cfg):
+    """The estimator prototype of ``[estimator] model`` (ElasticityRLS or ElasticityPoisson)
+    from the section of a :class:`monitor.sections.Config` (the class's defaults for keys not
+    given), mapping ValueError to ConfigError. ``exposure`` names a data column and is read by
+    the row path, not by the estimator."""
+    params = {k: v for k, v in cfg.section("estimator").items() if k != "exposure"}
+    model = params.pop("model", "loglinear")
+    try:
+        return make_estimator(model, **params)
+    except ValueError as exc:
+        raise ConfigError(f"[estimator] {exc}") from None
