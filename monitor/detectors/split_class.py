@@ -3,8 +3,8 @@
 Feed it, after each :meth:`~monitor.estimators.ElasticityRLS.learn_one`, the log price, the
 response with the controls' effects removed and the estimator's innovation
 (:meth:`SplitGLR.observe` does this from the estimator). It calls the same compiled step as the
-pipeline, re-anchors itself after an alarm and, in :meth:`observe`, puts the estimator on the
-data since the estimated change time.
+pipeline and re-anchors itself after an alarm (the estimator is left to its own forgetting
+here; see :mod:`monitor.pipeline.kernel` for what the pipeline does to it).
 
 >>> import numpy as np
 >>> from monitor.estimators import ElasticityRLS
@@ -108,12 +108,10 @@ class SplitGLR:
             self._fire(False)
         return self
 
-    def _fire(self, slope: bool, est=None, k: int = 2) -> None:
+    def _fire(self, slope: bool) -> None:
         S.split_report(self._state, 0, slope, 0.0, self._rep)
         self.alarm = "elasticity_change" if slope else "level_shift"
         self.report = report_dict(self._rep)
-        if est is not None:
-            S.anchor_estimator(est, k, self._state, 0, slope)
         if slope:
             S.reanchor_slope(self._state, 0, self._p)
         else:
@@ -123,8 +121,7 @@ class SplitGLR:
                 ts: float = math.nan) -> "SplitGLR":
         """Update from an :class:`~monitor.estimators.ElasticityRLS` right after its
         ``learn_one`` (``row``: the design row, needed only with controls). Rows while the
-        estimator is warming up are skipped. On an alarm the estimator's state is put on the
-        data since the change time (:func:`~monitor.detectors.split_glr.anchor_estimator`)."""
+        estimator is warming up are skipped."""
         st = est._state
         k = est._k
         self.alarm, self.report = None, None
@@ -138,9 +135,9 @@ class SplitGLR:
         f = S.split_step(self._state, 0, float(log_price), y, float(st[K.I_E]),
                          float(st[K.I_N]), float(ts), self._p)
         if f & S.SG_SLOPE:
-            self._fire(True, st, k)
+            self._fire(True)
         elif f & S.SG_LEVEL:
-            self._fire(False, st, k)
+            self._fire(False)
         return self
 
     # ------------------------------------------------------------------ reading

@@ -101,8 +101,6 @@ import math
 import numpy as np
 from numba import njit
 
-from monitor.estimators import kernel as K
-
 
 # ---------------------------------------------------------------- state layout (floats)
 (D_ON_L, D_ON_S, D_T, D_NF, D_X0, D_W, D_S2, D_E1, D_UU, D_U1, D_XX, D_MX, D_PE, D_PU,
@@ -135,6 +133,9 @@ MARGIN = 3.3174
 #: a handful of residuals and heavy tails or price-dependent noise decide it (the smallest
 #: slope change the issue asks about needs far more rows than this anyway)
 MIN_AFTER = 10.0
+#: fewest rows after a candidate change time for the level test (one or two rows would make
+#: the test a judgement on single residuals: their tails, not the level, would decide it)
+MIN_AFTER_LEVEL = 3.0
 #: rows after an alarm during which the scale is not updated (the estimator re-converges)
 HOLD = 50.0
 
@@ -169,11 +170,11 @@ def params(h_slope: float, h_level: float, *, ref_cap: float = DEFAULT_REF_CAP,
 # ---------------------------------------------------------------- helpers
 @njit(cache=True, inline="always")
 def _scales(st, at):
-    """``(sigma^2, sigma_s^2, sigma_l^2)``: the winsorized scale and the score variances
-    inflated for autocorrelation (and, for the slope, heteroskedasticity)."""
+    """``(sigma^2, kappa, r_s, r_l)``: the winsorized scale, the slope score's sandwich factor
+    and the lag-1 autocorrelations of the slope and level scores (clipped to [0, R_MAX])."""
     m2 = st[at + D_S2]
     if not (m2 > 0.0):
-        return np.nan, np.nan, np.nan
+        return np.nan, np.nan, 0.0, 0.0
     s2 = m2 / WINSOR_K
     rl = min(max(st[at + D_E1] / m2, 0.0), R_MAX)
     uu = st[at + D_UU]
@@ -184,7 +185,18 @@ def _scales(st, at):
         xx = st[at + D_XX]
         if xx > 0.0:
             kap = max(uu / (m2 * xx), 1.0)
-    return s2, s2 * kap * (1.0 + rs) / (1.0 - rs), s2 * (1.0 + rl) / (1.0 - rl)
+    return s2, kap, rs, rl
+
+
+@njit(cache=True, inline="always")
+def _lrf(r, n):
+    """Variance factor of a sum of ``n`` AR(1) terms with lag-1 autocorrelation ``r`` over the
+    independent case: ``1 + 2 sum_{k<n} (1 - k/n) r^k = (1 + r)/(1 - r) - 2 r (1 - r^n) /
+    (n (1 - r)^2)`` (the long-run factor ``(1 + r)/(1 - r)`` as n grows)."""
+    if r <= 0.0 or n <= 1.0:
+        return 1.0
+    q = 1.0 - r
+    return (1.0 + r) / q - 2.0 * r * (1.0 - r ** n) / (n * q * q)
 
 
 @njit(cache=True, inline="always")
@@ -214,13 +226,13 @@ def _moments(n, sx, sxx, sy, sxy):
 
 
 @njit(cache=True, inline="always")
-def _candidate(st, at, j, s2s, s2l, minrows):
+def _candidate(st, at, j, s2, kap, rs, rl, minrows):
     """``(G_s, G_l)`` of checkpoint ``j`` (-1 where undefined)."""
     o = at + SLOT0 + SLOT_W * j
     na = st[at + C0] - st[o]
     gs = -1.0
     gl = -1.0
-    if na < 1.0:
+    if na < 1.0 or not (s2 > 0.0):
         return gs, gl
     mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
                                   st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
@@ -229,21 +241,21 @@ def _candidate(st, at, j, s2s, s2l, minrows):
                                   st[at + R0 + 3] + st[o + 3], st[at + R0 + 4] + st[o + 4])
     cxb += st[at + L0 + 1]
     cyb += st[at + L0 + 2]
+    nbs = nb + st[at + L0]
     tiny = 1e-12
-    if na >= MIN_AFTER and cxa > tiny * na and cxb > tiny and s2s > 0.0:
+    if na >= MIN_AFTER and cxa > tiny * na and cxb > tiny:
         db = cya / cxa - cyb / cxb
-        gs = 0.5 * db * db / (s2s * (1.0 / cxa + 1.0 / cxb))
-    if nb >= minrows and s2l > 0.0:
+        gs = 0.5 * db * db / (s2 * kap * (_lrf(rs, na) / cxa + _lrf(rs, nbs) / cxb))
+    if nb >= minrows and na >= MIN_AFTER_LEVEL:
         cx = cxa + cxb
         dx = mxa - mxb
         bw = (cya + cyb) / cx if cx > tiny else 0.0
         if cx > tiny or dx == 0.0:
-            s2 = st[at + D_S2] / WINSOR_K
-            fl = s2l / s2
-            v = (_var_at(st, at, s2, mxa) / na + _var_at(st, at, s2, mxb) / nb
-                 + (s2 * dx * dx / cx if cx > tiny else 0.0))
+            v = (_lrf(rl, na) * _var_at(st, at, s2, mxa) / na
+                 + _lrf(rl, nb) * _var_at(st, at, s2, mxb) / nb
+                 + (s2 * kap * _lrf(rs, na + nbs) * dx * dx / cx if cx > tiny else 0.0))
             d = mya - myb - bw * dx
-            gl = 0.5 * d * d / (fl * v)
+            gl = 0.5 * d * d / v
     return gs, gl
 
 
@@ -385,7 +397,7 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
     st[at + C0 + 3] += y
     st[at + C0 + 4] += x * y
     # --- start rules
-    s2, s2s, s2l = _scales(st, at)
+    s2, kap, rs, rl = _scales(st, at)
     flags = SG_FED
     if st[at + D_NF] < p[Q_MINROWS] or not (s2 > 0.0):
         return flags
@@ -400,7 +412,7 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
                                 st[at + R0 + 3] + st[at + C0 + 3],
                                 st[at + R0 + 4] + st[at + C0 + 4])
         cxx += st[at + L0 + 1]
-        if cxx > 0.0 and s2s / cxx <= p[Q_SESTART] * p[Q_SESTART]:
+        if cxx > 0.0 and s2 * kap * _lrf(rs, tn) / cxx <= p[Q_SESTART] * p[Q_SESTART]:
             st[at + D_ON_S] = 1.0
             _restart(st, at, ts, cap)
             return flags
@@ -416,7 +428,7 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
         if nj == prev_n:
             continue
         prev_n = nj
-        gs, gl = _candidate(st, at, j, s2s, s2l, p[Q_MINROWS])
+        gs, gl = _candidate(st, at, j, s2, kap, rs, rl, p[Q_MINROWS])
         if gs > gs_max:
             gs_max = gs
             js = j
@@ -463,7 +475,7 @@ def split_report(st, at, slope, n_obs, out):
     if j < 0:
         return
     o = at + SLOT0 + SLOT_W * j
-    _, s2s, s2l = _scales(st, at)
+    s2, kap, rs, rl = _scales(st, at)
     na = st[at + C0] - st[o]
     mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
                                   st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
@@ -474,19 +486,20 @@ def split_report(st, at, slope, n_obs, out):
     cyb += st[at + L0 + 2]
     out[RP_TS] = st[o + 5]
     out[RP_NA] = na
-    s = np.sqrt(s2s)
+    nbs = nb + st[at + L0]
     if cxb > 0.0:
         out[RP_BB] = cyb / cxb
-        out[RP_BB_SE] = s / np.sqrt(cxb)
+        out[RP_BB_SE] = np.sqrt(s2 * kap * _lrf(rs, nbs) / cxb)
     if cxa > 0.0 and na >= 2.0:
         out[RP_BA] = cya / cxa
-        out[RP_BA_SE] = s / np.sqrt(cxa)
+        out[RP_BA_SE] = np.sqrt(s2 * kap * _lrf(rs, na) / cxa)
     cx = cxa + cxb
     dx = mxa - mxb
     bw = (cya + cyb) / cx if cx > 0.0 else 0.0
     if nb > 0.0 and na > 0.0:
         out[RP_LEVEL] = mya - myb - bw * dx
-        out[RP_LEVEL_SE] = np.sqrt(s2l * (1.0 / na + 1.0 / nb + (dx * dx / cx if cx > 0.0 else 0.0)))
+        out[RP_LEVEL_SE] = np.sqrt(s2 * (_lrf(rl, na) / na + _lrf(rl, nb) / nb)
+                                   + s2 * kap * (dx * dx / cx if cx > 0.0 else 0.0))
     out[RP_STAT] = st[at + (D_GS if slope else D_GL)]
     out[RP_DFB] = nb + st[at + L0] - 2.0
     out[RP_DFA] = na - 2.0
@@ -584,81 +597,9 @@ def info_per_obs(st, at, db):
     """Information per observation about a slope change ``db``: ``db^2 Var(x) / (2 sigma_s^2)``
     (Kullback-Leibler, normal errors; Var(x) the EW variance of log price). NaN before any
     scale."""
-    _, s2s, _ = _scales(st, at)
+    s2, kap, rs, _ = _scales(st, at)
     vx = st[at + D_XX]
-    if not (s2s > 0.0) or not (vx >= 0.0):
+    if not (s2 > 0.0) or not (vx >= 0.0):
         return np.nan
-    return db * db * vx / (2.0 * s2s)
+    return db * db * vx / (2.0 * s2 * kap * (1.0 + rs) / (1.0 - rs))
 
-
-@njit(cache=True, inline="always")
-def anchor_estimator(est, k, st, at, slope):
-    """Put the estimator on the data since the last alarm's change time (call before
-    re-anchoring the detector).
-
-    After a slope alarm, the intercept and slope become the least-squares fit of the after
-    sample, ``P``'s and ``S``'s (intercept, log price) block its ``M^-1`` and ``M`` (raw
-    coordinates, ``M = [[n, Sx], [Sx, Sxx]]``), their cross terms with the controls 0: the
-    reported b steps to the new regime at once, with the after sample's variance
-    ``sigma^2 M^-1``. After a level alarm only the intercept moves, to the after sample's mean
-    level at the current slope. The estimator's weights, residual sum and controls are kept.
-    (Local fallback for a reset-to-window method of :mod:`monitor.estimators.kernel`.)"""
-    j = int(st[at + (D_JS if slope else D_JL)])
-    if j < 0:
-        return
-    o = at + SLOT0 + SLOT_W * j
-    na = st[at + C0] - st[o]
-    mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
-                                  st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
-    if na < 1.0:
-        return
-    mxr = mxa + st[at + D_X0]
-    th = K.NS
-    p0 = K.NS + k
-    s0 = K.NS + k + k * k
-    if not slope or na < 3.0 or not (cxa > 0.0):
-        # level: a = level - b mxr with Var(level) = sigma^2 / n_A, Var(b) kept, no covariance
-        b = est[th + 1]
-        est[th] = mya - b * mxr
-        pbb = est[p0 + k + 1]
-        for i in range(2):
-            for jj in range(k):
-                if jj >= 2:
-                    est[p0 + i * k + jj] = 0.0
-                    est[p0 + jj * k + i] = 0.0
-                    est[s0 + i * k + jj] = 0.0
-                    est[s0 + jj * k + i] = 0.0
-        p00 = 1.0 / na + mxr * mxr * pbb
-        p01 = -mxr * pbb
-        est[p0] = p00
-        est[p0 + 1] = p01
-        est[p0 + k] = p01
-        est[p0 + k + 1] = pbb
-        det = p00 * pbb - p01 * p01
-        if det > 0.0:
-            est[s0] = pbb / det
-            est[s0 + 1] = -p01 / det
-            est[s0 + k] = -p01 / det
-            est[s0 + k + 1] = p00 / det
-        return
-    b = cya / cxa
-    est[th] = mya - b * mxr
-    est[th + 1] = b
-    m01 = na * mxr
-    m11 = cxa + na * mxr * mxr
-    det = na * cxa
-    for i in range(2):
-        for jj in range(k):
-            if jj >= 2:
-                est[p0 + i * k + jj] = 0.0
-                est[p0 + jj * k + i] = 0.0
-                est[s0 + i * k + jj] = 0.0
-                est[s0 + jj * k + i] = 0.0
-    est[p0] = m11 / det
-    est[p0 + 1] = -m01 / det
-    est[p0 + k] = -m01 / det
-    est[p0 + k + 1] = na / det
-    est[s0] = na
-    est[s0 + 1] = m01
-    est[s0 + k] = m01
-    est[s0 + k + 1] = m11
