@@ -180,3 +180,28 @@ def test_bad_input_names_the_field():
         ElasticityIV(instruments=["cost"], controls=["cost"])
     with pytest.raises(Exception, match="at least one instrument"):
         ElasticityIV()
+
+
+def test_discount_keeps_the_estimate_and_n_eff_and_equals_weighted_2sls():
+    # after discounting by f, the state is the 2SLS of the rows with the earlier ones
+    # down-weighted by f: checked against linearmodels' weighted IV2SLS on MROZ
+    d, exog, endog, inst = load("mroz_parents")
+    k, nq = 2 + len(exog), len(inst)
+    R = np.column_stack([np.ones(len(d)), d[endog], d[exog].to_numpy(float),
+                         d[inst].to_numpy(float)])
+    y = d["lwage"].to_numpy(float)
+    st = IK.init_state(k, nq)
+    out = np.full(IK.NOUT_IV, np.nan)
+    w = np.empty(IK.work_size(k, nq))
+    args = (k, nq, 1.0, 0.0, 10.0, 10.0, t_table(0.95))
+    cut, f = 300, 0.2
+    for j in range(cut):
+        IK.iv_step(st, R[j], y[j], *args, out, w)
+    b0, n0 = st[K.NS + 1], st[K.I_W] ** 2 / st[K.I_W2]
+    IK.iv_discount(st, k, nq, f)
+    assert st[K.NS + 1] == b0 and st[K.I_W] ** 2 / st[K.I_W2] == pytest.approx(n0, rel=1e-12)
+    for j in range(cut, len(d)):
+        IK.iv_step(st, R[j], y[j], *args, out, w)
+    wts = np.where(np.arange(len(d)) < cut, f, 1.0)
+    ref = reference(d, exog, endog, inst, weights=wts, debiased=False)
+    np.testing.assert_allclose(st[K.NS:K.NS + k], ref.params[names(exog, endog)], rtol=1e-8)

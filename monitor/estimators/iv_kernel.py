@@ -388,6 +388,27 @@ def _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M,
     return True
 
 
+@njit(cache=True, inline="always")
+def iv_discount(st, k, nq, f):
+    """One extra forgetting step of factor ``f`` in (0, 1] on everything accumulated so far
+    (for the detectors' re-anchoring after an elasticity change): ``G``, ``W``, the residual sum
+    and the log-price window by ``f``; ``Q`` and ``W2`` (squared weights) by ``f^2``. The 2SLS
+    solution and ``n_eff`` are unchanged at that moment; the rows after it dominate."""
+    m = k - 1 + nq
+    ng = m + 2
+    nz2 = m * (m + 1) // 2
+    f2 = f * f
+    for i in (K.I_W, K.I_V, K.I_LPW, K.I_LPM2):
+        st[i] *= f
+    st[K.I_W2] *= f2
+    o_g = K.NS + k + k * k + 2
+    o_q = o_g + ng * (ng + 1) // 2
+    for i in range(o_g, o_q):
+        st[i] *= f
+    for i in range(o_q, o_q + (ng * (ng + 1) // 2) * nz2):
+        st[i] *= f2
+
+
 @njit(cache=True)
 def iv_run(state, sid, R, y, k, nq, lam, min_price_sd, min_neff, f_min, tq, out, w):
     """Run :func:`iv_step` over rows in order; row j updates series ``sid[j]``.
