@@ -64,8 +64,13 @@ def _agree(diff: float, tol: float) -> str:
     return "agrees" if diff <= tol else "**DIFFERS**"
 
 
+#: the references start from N(0, 1e6 I) (they need a proper start); elmon starts exactly
+#: diffuse, so paths differ by the prior's pull, about 1e-6 x Var(theta_t) x |theta| / 1e6
+REF_PRIOR_VAR = 1e6
+
+
 def _prior_var(est) -> list[float]:
-    return list(est.prior()[1])
+    return [REF_PRIOR_VAR] * est._k
 
 
 def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: str,
@@ -94,8 +99,16 @@ def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: 
     d = float(np.max(np.abs(path - eb)))
     row = rate_row(f"plain Python RLS loop {on}", n, times, reference=True)
     row.ratio = speed_ratio(elmon_rate, row.value)
-    row.check = (f"path of b, max abs diff vs elmon over all {n:,} steps = {d:.1e} "
-                 f"(tolerance 1e-10): {_agree(d, 1e-10)}{note}")
+    late = np.ones(n, dtype=bool)
+    seen: dict[int, int] = {}
+    for j, s in enumerate(sid.tolist()):
+        late[j] = seen.get(s, 0) >= 50
+        seen[s] = seen.get(s, 0) + 1
+    d = float(np.max(np.abs(path - eb)[late]))
+    row.check = (f"path of b from each series' 50th step, max abs diff vs elmon = {d:.1e} "
+                 f"(tolerance 1e-4: the loop starts from N(0, 1e6), elmon exactly diffuse; "
+                 f"that prior pulls b by ~1e-6 x |a| x |P_ab|, up to 3e-5 here)"
+                 f": {_agree(d, 1e-4)}{note}")
     out.append(row)
 
     if X.shape[1] == 2:
@@ -103,15 +116,14 @@ def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: 
         bt = [R.bare_compiled(p.sid, p.X, p.y, LAM, _prior_var(est))[0] for _ in range(ctx.runs)]
         _, bpath = R.bare_compiled(sid, X, y, LAM, _prior_var(est))
         eg = run_batch(_est(excitation_guard=False), sid, X, y).beta
-        d = float(np.max(np.abs(bpath - eg)))
+        d = float(np.max(np.abs(bpath - eg)[late]))
         row = rate_row(f"bare compiled RLS update, theta and P only (numba, "
                        f"benchmarks/references.py) on all {p.n:,} rows", p.n, bt, reference=True)
         row.ratio = speed_ratio(elmon_rate, row.value)
         row.check = (f"the floor of any RLS kernel here (no variance, interval, n_eff, status or "
                      f"output row); path of b vs elmon (guard off) on the {n:,} reference rows: "
-                     f"max abs diff {d:.1e} (tolerance 1e-9: another compiled instruction order, "
-                     f"rounding that is largest in the first steps from the 1e6 prior): "
-                     f"{_agree(d, 1e-9)}")
+                     f"max abs diff {d:.1e} from each series' 50th step (tolerance 1e-4: the "
+                     f"floor starts from N(0, 1e6), elmon exactly diffuse): {_agree(d, 1e-4)}")
         out.append(row)
 
     # statsmodels RecursiveLS (filter only), lambda = 1 on both sides for the check
@@ -124,15 +136,17 @@ def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: 
     theta = r1.states[:, K.NS:K.NS + k]
     d_final = max(float(np.max(np.abs(theta[s] - withprior[s][:, -1]))) for s in withprior)
     d_raw = max(float(np.max(np.abs(theta[s] - raw[s][:, -1]))) for s in raw)
-    d_path = max(float(np.max(np.abs(r1.beta[sid == s] - withprior[s][1]))) for s in withprior)
+    d_path = max(float(np.nanmax(np.abs(r1.beta[sid == s] - withprior[s][1])))
+                 for s in withprior)
     row = rate_row(f"statsmodels RecursiveLS, filter only {on}", n, times, reference=True)
     row.ratio = speed_ratio(elmon_rate, row.value)
-    row.check = (f"elmon forgetting=1 vs RecursiveLS given elmon's prior N(0, 1000^2 I) as {k} "
-                 f"leading pseudo-rows: final coefficients of {len(raw)} series max abs diff "
-                 f"{d_final:.1e}, whole path of b {d_path:.1e} (tolerance 1e-7: the first updates "
-                 f"from a 1e6 prior variance cost either algorithm about 6 of 16 digits): "
-                 f"{_agree(max(d_final, d_path), 1e-7)}; against the plain diffuse start the "
-                 f"final coefficients differ by {d_raw:.1e}, the prior's pull")
+    d_rawpath = max(float(np.nanmax(np.abs(r1.beta[sid == s][k:] - raw[s][1][k:])))
+                    for s in raw)
+    row.check = (f"elmon forgetting=1 vs RecursiveLS, both exactly diffuse: final coefficients "
+                 f"of {len(raw)} series max abs diff {d_raw:.1e}, path of b from step {k} "
+                 f"{d_rawpath:.1e} (tolerance 1e-8): {_agree(max(d_raw, d_rawpath), 1e-8)}; "
+                 f"RecursiveLS given a N(0, 1e6 I) prior differs from elmon by {d_final:.1e} "
+                 f"(final) and {d_path:.1e} (path), that prior's pull")
     out.append(row)
 
     if not blr:
@@ -146,7 +160,7 @@ def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: 
                    reference=True)
     row.ratio = speed_ratio(elmon_rate, row.value)
     m = min(n, ctx.size(20_000, 5_000))
-    pv = est.prior_sd ** 2
+    pv = REF_PRIOR_VAR
     _, bpath = R.river_blr(sid[:m], X[:m], y[:m], smoothing=LAM,
                            alpha=R.blr_matched_alpha(pv, LAM), path=True)
     eg = _est(excitation_guard=False)
@@ -156,14 +170,14 @@ def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: 
     for j, s in enumerate(sid[:m].tolist()):
         step[j] = seen.get(s, 0)
         seen[s] = step[j] + 1
-    late = step >= 10
+    late = step >= 50
     d_all = float(np.nanmax(np.abs(bpath - epath)))
     d_late = float(np.nanmax(np.abs(bpath[late] - epath[late])))
     row.check = (f"posterior mean of b (river, alpha = 1000^2/(1-s) so its prior equals elmon's) vs "
-                 f"elmon's b, guard off, first {m:,} rows: max abs diff {d_late:.1e} from each "
-                 f"series' 10th step on ({d_all:.1e} including the first steps, where river's "
-                 f"matrix inverse of a nearly flat prior loses digits) (tolerance 1e-6): "
-                 f"{_agree(d_late, 1e-6)}")
+                 f"elmon's b (exactly diffuse), guard off, first {m:,} rows: max abs diff "
+                 f"{d_late:.1e} from each series' 50th step on ({d_all:.1e} including the first "
+                 f"steps) (tolerance 1e-3: river's N(0, 1e6) prior pulls b, most in the first "
+                 f"steps): {_agree(d_late, 1e-3)}")
     out.append(row)
 
     # river LinearRegression (SGD)
@@ -245,6 +259,52 @@ def run(ctx: Context) -> list[Row]:
     sub = np.flatnonzero(p.sid < ctx.size(20, 5))
     rows += _refs(ctx, p, sub, est6, main.value, res,
                   f"the first {ctx.size(20, 5)} series", blr=False)
+    del p, res
+
+    # ---- band kinds and the Poisson model beside the log-log model (issue 13)
+    S, T = ctx.size(10_000, 1_000), ctx.size(1_000, 200)
+    p = panel(S, T, seed=1)
+    for band in ("classic", "hac"):
+        times, res = elmon_times(_est(band=band), p, ctx.runs)
+        r = rate_row(f"estimator kernel, 2 parameters, band {band}, {S:,} series x {T:,} "
+                     f"steps", p.n, times)
+        r.target = "report"
+        r.check = (f"beside the default hc band above; state "
+                   f"{_est(band=band).state_size * 8} bytes per series (hc: "
+                   f"{_est().state_size * 8}); {share_note(elmon_times.shares, p.n, times)}")
+        rows.append(r)
+    rows.append(_poisson_row(ctx, p))
     for r in rows:
         r.group = "estimator"
     return rows
+def _poisson_row(ctx: Context, p) -> Row:
+    """Poisson pseudo-ML filter on counts drawn around the panel's log-log means."""
+    from monitor.estimators import ElasticityPoisson, poisson_fit, run_batch
+    from monitor.estimators import kernel as K
+
+    rng = np.random.default_rng(5)
+    mean = np.exp(p.y - np.log(np.exp(p.y).mean()) + np.log(2.0))   # mean 2 counts
+    q = rng.poisson(mean).astype(float)
+    est = ElasticityPoisson(forgetting=LAM)
+    out = np.empty((p.n, K.NOUT))
+    m = min(p.n, 2000)
+    run_batch(est, p.sid[:m], p.X[:m], q[:m])
+    times, shares = [], []
+    res = None
+    for _ in range(ctx.runs):
+        states = np.tile(est.initial_state(), (p.n_series, 1))
+        t, res = timed(lambda: run_batch(est, p.sid, p.X, q, states=states, out=out))
+        times.append(t)
+        shares.append(timed.cpu_share)
+    row = rate_row(f"Poisson pseudo-ML filter, 2 parameters, {p.n_series:,} series x "
+                   f"{p.n // p.n_series:,} steps (counts, mean 2, "
+                   f"{(q == 0).mean():.0%} zeros)", p.n, times)
+    row.target = "report"
+    s0 = np.flatnonzero(p.sid == 0)
+    fit = poisson_fit(p.X[s0], q[s0], weights=LAM ** (s0.size - 1 - np.arange(s0.size)))
+    d = abs(res.beta[s0[-1]] - fit.params[1]) / fit.bse_hc1[1]
+    row.check = (f"beside the log-log kernel above (same rows); series 0: filter b "
+                 f"{res.beta[s0[-1]]:.3f} vs the exact weighted MLE {fit.params[1]:.3f} "
+                 f"({d:.2f} se apart), true {p.beta[0]:.3f}; state {est.state_size * 8} bytes "
+                 f"per series; {share_note(shares, p.n, times)}")
+    return row
