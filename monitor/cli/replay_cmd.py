@@ -6,6 +6,7 @@ import argparse
 import json
 
 from monitor.cli import HelpFormatter
+from monitor.detectors.spec import CHART_CHOICES
 from monitor.settings import load_config
 
 
@@ -27,6 +28,15 @@ def add_common_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--log-control", action="append", default=None, metavar="NAME",
                    help="a control column entered in logs (repeatable)")
     p.add_argument("--level", type=float, help="confidence level of the band (default 0.95)")
+    p.add_argument("--model", choices=["loglinear", "poisson"],
+                   help="estimator: log-log least squares (default) or Poisson pseudo-maximum "
+                        "likelihood (counts, zeros kept as data)")
+    p.add_argument("--band", choices=["hc", "hac", "classic"],
+                   help="confidence band: hc heteroskedasticity-robust (default), hac also "
+                        "autocorrelation-robust, classic constant-variance")
+    p.add_argument("--exposure-col", dest="exposure_col", metavar="NAME",
+                   help="column of the exposure behind each quantity (opening hours, customers, "
+                        "meters); Poisson model")
     p.add_argument("--zero-policy", choices=["reject", "skip"], help="what to do with zero quantities")
     for col in ("series", "ts", "price", "quantity"):
         p.add_argument(f"--{col}-col", dest=f"{col}_col", metavar="NAME",
@@ -48,9 +58,9 @@ def add_detector_options(p: argparse.ArgumentParser) -> None:
                    help="consecutive breaching updates before a bounds alert (default 3)")
     g.add_argument("--clear-after", type=int, metavar="N",
                    help="consecutive updates back inside before it clears (default 5)")
-    g.add_argument("--level-chart", choices=["cusum", "ewma", "page_hinkley", "none"],
+    g.add_argument("--level-chart", choices=CHART_CHOICES,
                    help="chart on the standardized innovations -> level_shift (default cusum)")
-    g.add_argument("--slope-chart", choices=["cusum", "ewma", "page_hinkley", "none"],
+    g.add_argument("--slope-chart", choices=CHART_CHOICES,
                    help="chart on the fast-minus-reference slope statistic -> elasticity_change "
                         "(default cusum)")
     g.add_argument("--cusum-k", type=float, metavar="K",
@@ -71,11 +81,11 @@ def add_detector_options(p: argparse.ArgumentParser) -> None:
 
 
 def config_from_args(args) -> "object":
-    import monitor.pipeline.settings  # noqa: F401  (registers [detectors], [bounds], [rules])
-
     cfg = load_config(args.config)
     cfg = cfg.with_overrides("estimator", forgetting=args.forgetting, controls=args.control,
-                             log_controls=args.log_control, level=args.level)
+                             log_controls=args.log_control, level=args.level,
+                             model=getattr(args, "model", None), band=getattr(args, "band", None),
+                             exposure=getattr(args, "exposure_col", None))
     cfg = cfg.with_overrides("validation", zero_policy=args.zero_policy)
     cfg = cfg.with_overrides("columns", series=args.series_col, ts=args.ts_col,
                              price=args.price_col, quantity=args.quantity_col)
