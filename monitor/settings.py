@@ -1,104 +1,65 @@
-"""TOML configuration, validated with messages that name the key.
+"""The whole configuration: every owner's section schema composed in one place, checked with
+messages that name the key.
 
-Sections and keys (all optional; defaults in brackets)::
+Sections and their owners (each owner exports its schema; nothing registers itself on import)::
 
-    [columns]        series, ts, price, quantity: column names in the log ["series", ...]
-    [estimator]      forgetting [0.99], controls [[]], log_controls [[]], level [0.95],
-                     prior_mean [0.0], prior_sd [1000.0], min_n_eff [10.0],
-                     min_price_sd [0.02], excitation_guard [true], guard_forgetting [0.8]
-    [validation]     zero_policy ["reject"], duplicate_policy ["keep_first"],
-                     allowed_lateness_s [0.0], max_future_s [3600.0], unit_ratio [50.0]
+    [columns]                 monitor.ingest.logio         the log's column names
+    [estimator]               monitor.estimators.settings  forgetting, controls, prior, ...
+    [validation]              monitor.rows.validate        zero, duplicate and lateness rules
+    [detectors] [bounds] [rules]  monitor.pipeline.settings  charts, thresholds, alert policy
+    [store] [service] [sinks] monitor.live.settings        the live service and alert delivery
+    [sources]                 monitor.ingest.factory       where rows come from
+    [series]                  monitor.groups.settings      composite keys, groups, pooling
+    [experiments]             monitor.experiments.plan     randomized price tests
 
-Other modules register their own sections with :func:`register_section` (detectors, rules,
-store, service, sinks, sources), so one file configures everything and every key is checked.
+:func:`validate` checks a parsed TOML table against :data:`SCHEMA` (fixed keys with types and
+defaults) and :data:`FREE_SECTIONS` (free-form tables with their validators) and returns a
+:class:`~monitor.sections.Config` carrying the schema, so ``cfg.section(name)`` has every
+default filled; :func:`load_config` reads a file; :func:`default_config` is the empty file.
+
+>>> cfg = validate({"estimator": {"forgetting": 0.98}})
+>>> cfg.section("estimator")["forgetting"], cfg.section("detectors")["level_chart"]
+(0.98, 'cusum')
+>>> validate({"estimator": {"forget": 0.98}})
+Traceback (most recent call last):
+...
+monitor.errors.ConfigError: config: [estimator] forget: unknown key (known: forgetting, ...)
 """
 
 from __future__ import annotations
 
-import tomllib
-from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Mapping
+from typing import Mapping
 
 from monitor.errors import ConfigError
+from monitor.estimators import settings as estimator_settings
+from monitor.estimators.settings import estimator_from_config
+from monitor.experiments.plan import EXPERIMENTS_SECTION
+from monitor.groups.settings import SERIES_SECTION
+from monitor.ingest import factory as ingest_factory
+from monitor.ingest import logio
+from monitor.live import settings as live_settings
+from monitor.pipeline import settings as pipeline_settings
+from monitor.rows import validate as row_validation
+from monitor.rows.validate import validation_from_config
+from monitor.sections import Config, Keys, Validator, check_value, read_toml
 
 
-#: section name -> {key: (type or tuple of types, default)}
-SECTIONS: dict[str, dict[str, tuple[Any, Any]]] = {
-    "columns": {"series": (str, "series"), "ts": (str, "ts"), "price": (str, "price"),
-                "quantity": (str, "quantity")},
-    "estimator": {"forgetting": ((int, float), 0.99), "controls": (list, []),
-                  "log_controls": (list, []), "level": ((int, float), 0.95),
-                  "prior_mean": ((int, float), 0.0), "prior_sd": ((int, float), 1000.0),
-                  "min_n_eff": ((int, float), 10.0), "min_price_sd": ((int, float), 0.02),
-                  "excitation_guard": (bool, True), "guard_forgetting": ((int, float), 0.8)},
-    "validation": {"zero_policy": (str, "reject"), "duplicate_policy": (str, "keep_first"),
-                   "allowed_lateness_s": ((int, float), 0.0), "max_future_s": ((int, float), 3600.0),
-                   "unit_ratio": ((int, float), 50.0)},
-}
-#: sections whose content is a free-form table or list validated by their owner
-FREE_SECTIONS: dict[str, Callable[[Any], None] | None] = {}
+__all__ = ["SCHEMA", "FREE_SECTIONS", "Config", "validate", "load_config", "default_config",
+           "read_toml", "estimator_from_config", "validation_from_config"]
 
-
-def register_section(name: str, keys: Mapping[str, tuple[Any, Any]] | None = None,
-                     validator: Callable[[Any], None] | None = None) -> None:
-    """Declare a config section: fixed keys with (type, default), or a free-form validator."""
-    if keys is not None:
-        SECTIONS[name] = dict(keys)
-    else:
-        FREE_SECTIONS[name] = validator
-
-
-def _check_value(section: str, key: str, value: Any, types: Any) -> Any:
-    if types in ((int, float),) or types == (int, float):
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise ConfigError(f"[{section}] {key} = {value!r}: must be a number")
-        return float(value)
-    if types is list and not isinstance(value, list):
-        raise ConfigError(f"[{section}] {key} = {value!r}: must be a list")
-    if types is bool and not isinstance(value, bool):
-        raise ConfigError(f"[{section}] {key} = {value!r}: must be true or false")
-    if types is str and not isinstance(value, str):
-        raise ConfigError(f"[{section}] {key} = {value!r}: must be a string")
-    if types is int and (isinstance(value, bool) or not isinstance(value, int)):
-        raise ConfigError(f"[{section}] {key} = {value!r}: must be a whole number")
-    return value
-
-
-@dataclass
-class Config:
-    """A validated configuration: ``cfg.section('estimator')`` gives keys with defaults filled."""
-
-    data: dict = field(default_factory=dict)
-    path: str | None = None
-
-    def section(self, name: str) -> dict:
-        if name in SECTIONS:
-            out = {k: (list(d) if isinstance(d, list) else d) for k, (_, d) in SECTIONS[name].items()}
-            out.update(self.data.get(name, {}))
-            return out
-        return self.data.get(name, {})
-
-    def with_overrides(self, section: str, **values) -> "Config":
-        data = {k: dict(v) if isinstance(v, dict) else v for k, v in self.data.items()}
-        sec = data.setdefault(section, {})
-        for k, v in values.items():
-            if v is not None:
-                if k not in SECTIONS.get(section, {k: None}):
-                    raise ConfigError(f"[{section}] {k}: unknown key")
-                sec[k] = _check_value(section, k, v, SECTIONS[section][k][0]) if section in SECTIONS else v
-        return Config(data, self.path)
-
-
-def _register_all() -> None:
-    """Import the modules that declare their sections, so every file is checked the same way
-    whichever command reads it (imported here, lazily, to keep the core free of cycles)."""
-    import monitor.live.settings  # noqa: F401  [store], [service], [sources], [sinks]
-    import monitor.pipeline.settings  # noqa: F401  [detectors], [bounds], [rules]
+#: section -> fixed keys {key: (type, default)}, composed from the owners' schemas
+SCHEMA: dict[str, Keys] = {
+    **logio.SECTIONS, **estimator_settings.SECTIONS, **row_validation.SECTIONS,
+    **pipeline_settings.SECTIONS, **live_settings.SECTIONS, "series": SERIES_SECTION}
+#: section -> validator of a free-form table (or None: accepted as given)
+FREE_SECTIONS: dict[str, Validator | None] = {
+    **ingest_factory.FREE_SECTIONS, **live_settings.FREE_SECTIONS,
+    EXPERIMENTS_SECTION[0]: EXPERIMENTS_SECTION[2]}
 
 
 def validate(data: Mapping, source: str = "config") -> Config:
-    _register_all()
+    """Check a parsed TOML table: every section known, every key known and of its type."""
     out: dict = {}
     for name, content in data.items():
         if name in FREE_SECTIONS:
@@ -107,50 +68,28 @@ def validate(data: Mapping, source: str = "config") -> Config:
                 check(content)
             out[name] = content
             continue
-        if name not in SECTIONS:
-            known = ", ".join(sorted(list(SECTIONS) + list(FREE_SECTIONS)))
+        if name not in SCHEMA:
+            known = ", ".join(sorted(list(SCHEMA) + list(FREE_SECTIONS)))
             raise ConfigError(f"{source}: unknown section [{name}] (known: {known})")
         if not isinstance(content, Mapping):
             raise ConfigError(f"{source}: [{name}] must be a table")
         sec = {}
         for key, value in content.items():
-            if key not in SECTIONS[name]:
-                known = ", ".join(SECTIONS[name])
+            if key not in SCHEMA[name]:
+                known = ", ".join(SCHEMA[name])
                 raise ConfigError(f"{source}: [{name}] {key}: unknown key (known: {known})")
-            sec[key] = _check_value(name, key, value, SECTIONS[name][key][0])
+            sec[key] = check_value(name, key, value, SCHEMA[name][key][0])
         out[name] = sec
-    return Config(out, source)
+    return Config(out, source, SCHEMA)
 
 
-def read_toml(path: str | Path, what: str = "config file") -> dict:
-    """Parse a TOML file, mapping a missing or malformed file to ConfigError naming it."""
-    p = Path(path)
-    if not p.is_file():
-        raise ConfigError(f"{p}: {what} not found")
-    try:
-        return tomllib.loads(p.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"{p}: not valid TOML: {exc}") from None
+def default_config() -> Config:
+    """The configuration of an empty file: every default, nothing else."""
+    return Config({}, None, SCHEMA)
 
 
 def load_config(path: str | Path | None) -> Config:
-    """Read and validate a TOML file (an empty config when ``path`` is None)."""
+    """Read and validate a TOML file (the defaults when ``path`` is None)."""
     if path is None:
-        return Config()
+        return default_config()
     return validate(read_toml(path), str(Path(path)))
-
-
-def estimator_from_config(cfg: Config):
-    """Build the ElasticityRLS prototype from ``[estimator]``, mapping ValueError to ConfigError."""
-    from monitor.estimators import ElasticityRLS
-
-    try:
-        return ElasticityRLS(**cfg.section("estimator"))
-    except ValueError as exc:
-        raise ConfigError(f"[estimator] {exc}") from None
-
-
-def validation_from_config(cfg: Config):
-    from monitor.rows.validate import ValidationSettings
-
-    return ValidationSettings(**cfg.section("validation"))

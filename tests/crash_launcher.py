@@ -59,7 +59,6 @@ def warm_up() -> None:
 def main() -> int:
     config_path, out, rounds, seed, lo, hi = sys.argv[1:7]
     rounds, lo, hi = int(rounds), float(lo), float(hi)
-    from monitor.live import settings as service_config  # noqa: F401
     from monitor.live.service import Service
     from monitor.settings import load_config
 

@@ -13,7 +13,7 @@ import pytest
 from monitor.detectors import (CUSUM, BoundsDetector, EWMAChart, FastSlowSlope, PageHinkley,
                                RiverDetector, SlopeChangeDetector)
 from monitor.detectors.arl import cusum_arl, cusum_h_for_arl0, ewma_L_for_arl0
-from monitor.detectors.base import F_ALARM, F_CLEAR
+from monitor.detectors.kernels import F_ALARM, F_CLEAR
 from monitor.estimators import ElasticityRLS
 
 

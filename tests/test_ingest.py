@@ -23,7 +23,6 @@ from monitor.ingest.csv_text import parse_lines
 from monitor.ingest.factory import file_source, sources_from_config
 from monitor.ingest.files import CsvTail, FolderSource
 from monitor.ingest.sql import SqlSource
-from monitor.live import settings as service_config  # noqa: F401 - registers [sources]
 from monitor.settings import validate as validate_config
 
 

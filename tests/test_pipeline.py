@@ -12,8 +12,8 @@ import pandas as pd
 import pytest
 
 from monitor.detectors import CUSUM, BoundsDetector, EWMAChart, FastSlowSlope, PageHinkley
-from monitor.detectors.base import F_ALARM
-from monitor.detectors.cusum import C_ALARMS
+from monitor.detectors.kernels import F_ALARM
+from monitor.detectors.kernels import C_ALARMS
 from monitor.detectors.design import pipeline_threshold
 from monitor.errors import ConfigError
 from monitor.estimators import ElasticityRLS

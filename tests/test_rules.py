@@ -11,7 +11,7 @@ import pytest
 
 from monitor.detectors import PageHinkley
 from monitor.detectors.arl import cusum_h_for_arl0
-from monitor.detectors.base import F_ALARM, F_REST_DN, F_REST_UP, F_USED
+from monitor.detectors.kernels import F_ALARM, F_REST_DN, F_REST_UP, F_USED
 from monitor.detectors.design import PRECOMPUTED, pipeline_threshold
 from monitor.pipeline.messages import (EV_ACTION, EV_BETA, EV_EXTRA, EV_HI, EV_KIND, EV_LO, EV_N,
                                        EV_OLD_B, EV_OLD_HI, EV_OLD_LO, EV_ROW, EV_SIDE, EV_SIZE,

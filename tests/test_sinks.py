@@ -19,6 +19,7 @@ from werkzeug import Response
 from monitor import store as ms
 from monitor.errors import ConfigError
 from monitor.live import sinks as mk
+from monitor.store.outbox import requeue_failed
 
 
 NOW = pd.Timestamp("2024-06-01T09:00:00Z")
@@ -108,7 +109,7 @@ def test_webhook_that_stays_down_is_kept_as_failed(store, httpserver):
     assert "HTTP 503" in row["last_error"]
     assert len(httpserver.log) == 3                        # no tries after the last attempt
     assert ms.store_summary(store)["outbox"]["failed"] == 1
-    assert mk.requeue_failed(store, now=at(50_000)) == 1
+    assert requeue_failed(store, now=at(50_000)) == 1
     assert ms.list_outbox(store, status="pending").iloc[0]["attempts"] == 0
 
 

@@ -119,7 +119,7 @@ def _loglog_log(path, rho: float, n_series=6, n=3000, seed=1):
 
 def _real_level_arl(path, arl0: float) -> float:
     """Observations per level-chart alarm when the pipeline runs over the log itself."""
-    from monitor.detectors.base import F_ALARM
+    from monitor.detectors.kernels import F_ALARM
     from monitor.pipeline.kernel import S_LEVEL_FLAGS
     from monitor.pipeline.run import Pipeline
     from monitor.tuning.rows import load_rows

@@ -15,11 +15,8 @@ Verbs (river's drift-detector shape):
 - ``to_state()`` / ``from_state()`` give plain JSON-able data (NaN as None) and continue bit
   for bit; ``clone()`` gives a fresh detector with the same hyperparameters.
 
-Step flags returned by every compiled step (bit field):
-``F_ALARM`` an alarm at this update; ``F_DOWN`` the alarm (or breach) is on the low side;
-``F_REST_UP`` / ``F_REST_DN`` the upper / lower statistic is at rest (a change on that side
-would start after this observation); ``F_USED`` the value entered the statistic (not NaN, not
-burn-in); ``F_CLEAR`` a level-type detector (bounds) returned to normal.
+The step flags every compiled step returns (``F_ALARM``, ``F_DOWN``, ...) and the charts'
+state layout are in :mod:`monitor.detectors.kernels`.
 """
 
 from __future__ import annotations
@@ -29,9 +26,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
-
-F_ALARM, F_DOWN, F_REST_UP, F_REST_DN, F_USED, F_CLEAR, F_BREACH, F_INSIDE = (
-    1, 2, 4, 8, 16, 32, 64, 128)
+from monitor.detectors.kernels import F_ALARM, chart_run
 
 
 def check_number(name: str, value: Any, low: float = -math.inf, high: float = math.inf, *,
@@ -134,9 +129,7 @@ class Detector:
         raise NotImplementedError
 
     def _many(self, values) -> np.ndarray:
-        """Chart detectors: the compiled loop of :func:`monitor.detectors.charts.chart_run`."""
-        from monitor.detectors.charts import chart_run
-
+        """Chart detectors: the compiled loop of :func:`monitor.detectors.kernels.chart_run`."""
         v = np.array(values, dtype=np.float64).ravel()
         out = np.empty(v.size, dtype=np.int64)
         chart_run(self._KIND, self._state, v, self._p, out)

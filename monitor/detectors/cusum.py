@@ -27,58 +27,11 @@ negatively autocorrelated; see :mod:`monitor.detectors.design`).
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
 
-from monitor.detectors.base import (F_ALARM, F_DOWN, F_REST_DN, F_REST_UP, F_USED, Detector,
-                                    check_number)
-
-
-#: state slots shared by every chart: statistics, counts, the statistic at the last alarm
-C_UP, C_DN, C_SEEN, C_RUN, C_ALARMS, C_LAST = 0, 1, 2, 3, 4, 5
-CHART_SIZE = 10
-#: parameter slots shared by every chart
-P_BURN, P_THRESHOLD, P_A, P_B, P_C = 0, 1, 2, 3, 4
-CHART_PARAMS = 6
-DEFAULT_ARL0 = 20_000.0
-
-
-@njit(cache=True, inline="always")
-def cusum_step(s, at, x, p):
-    """One update of the tabular CUSUM state ``s[at:at + CHART_SIZE]`` with value ``x``;
-    params ``p = [burn_in, h, k]``. Returns the bit flags of :mod:`monitor.detectors.base`."""
-    if not (x == x):
-        return 0
-    s[at + C_SEEN] += 1.0
-    if s[at + C_SEEN] <= p[P_BURN]:
-        return 0
-    k = p[P_A]
-    h = p[P_THRESHOLD]
-    up = s[at + C_UP] + x - k
-    if up < 0.0:
-        up = 0.0
-    dn = s[at + C_DN] - x - k
-    if dn < 0.0:
-        dn = 0.0
-    s[at + C_RUN] += 1.0
-    flags = F_USED
-    if up > h or dn > h:
-        flags |= F_ALARM
-        if dn > up:
-            flags |= F_DOWN
-            s[at + C_LAST] = -dn
-        else:
-            s[at + C_LAST] = up
-        s[at + C_ALARMS] += 1.0
-        s[at + C_RUN] = 0.0
-        up = 0.0
-        dn = 0.0
-    s[at + C_UP] = up
-    s[at + C_DN] = dn
-    if up == 0.0:
-        flags |= F_REST_UP
-    if dn == 0.0:
-        flags |= F_REST_DN
-    return flags
+from monitor.detectors.base import Detector, check_number
+from monitor.detectors.kernels import (C_ALARMS, C_DN, C_UP, CHART_CUSUM, CHART_PARAMS, CHART_SIZE,
+                                       P_A, P_BURN, P_THRESHOLD, cusum_step)
+from monitor.detectors.spec import DEFAULT_ARL0
 
 
 class CUSUM(Detector):
@@ -97,7 +50,7 @@ class CUSUM(Detector):
     """
 
     _SIZE = CHART_SIZE
-    _KIND = 1  # code in monitor.detectors.charts
+    _KIND = CHART_CUSUM
 
     def __init__(self, k: float = 0.5, h: float | None = None, arl0: float = DEFAULT_ARL0,
                  burn_in: int = 0):

@@ -31,7 +31,7 @@ The burn-in at a series' start is outside this budget.
 Method
 ------
 With the threshold set to +inf, a chart never resets, and its first passage above any h is the
-first time the running maximum of its statistic (:func:`~monitor.detectors.charts.chart_stat`)
+first time the running maximum of its statistic (:func:`~monitor.detectors.kernels.chart_stat`)
 exceeds h. Each path is simulated until its running maximum passes ``h_hi`` and its record
 values (time, new maximum) are kept, which gives every path's run length at every h <= h_hi
 from one simulation; ``h_hi`` is raised (continuing the same paths) until
@@ -66,11 +66,11 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit
 
-from monitor.detectors.base import F_USED, check_number
-from monitor.detectors.charts import CHART_CODES, chart_stat, chart_step, pack_chart
-from monitor.detectors.cusum import CHART_SIZE, P_THRESHOLD
+from monitor.detectors.base import check_number
 from monitor.detectors.design_table import PRECOMPUTED
-from monitor.detectors.slope import DEFAULT_FAST, DEFAULT_REFERENCE, SLOPE_SIZE, slope_step
+from monitor.detectors.kernels import CHART_SIZE, F_USED, P_THRESHOLD, chart_stat, chart_step
+from monitor.detectors.slope_kernel import DEFAULT_FAST, DEFAULT_REFERENCE, SLOPE_SIZE, slope_step
+from monitor.detectors.spec import CHART_CODES, chart_spec, design_inputs, pack_chart
 from monitor.estimators import kernel as K
 from monitor.estimators.tquantile import t_table
 
@@ -171,7 +171,7 @@ class _Simulation:
         p = pack_chart(chart, 1.0, 0.0, **chart_kw)
         p[P_THRESHOLD] = np.inf
         self.p = p
-        self.scale = 1.0 if chart != "ewma" else math.sqrt(chart_kw["lam"] / (2.0 - chart_kw["lam"]))
+        self.scale = chart_spec(chart).statistic_scale(chart_kw)
         n = n_paths
         self.n = n
         self.tq = t_table(0.95)
@@ -220,7 +220,7 @@ class _Simulation:
     def solve(self, arl0: float) -> DesignedThreshold:
         """Threshold (chart units) with simulated ARL ``arl0``, extending the paths as needed."""
         max_len = int(100 * arl0)
-        h_hi = self.h_hi if self.h_hi > -np.inf else _initial_guess(self.chart, arl0, self.kw)
+        h_hi = self.h_hi if self.h_hi > -np.inf else chart_spec(self.chart).initial_guess(self.kw, arl0)
         for _ in range(40):
             self.advance(h_hi, max_len)
             a = self.arl(self.h_hi)
@@ -253,28 +253,6 @@ class _Simulation:
         h_se = arl_se / arl0 / slope if slope > 0 else math.inf
         return DesignedThreshold(h / self.scale, float(arl0), arl_se, h_se / self.scale, self.n,
                                  "simulation")
-
-
-def _initial_guess(chart: str, arl0: float, kw: dict) -> float:
-    """A normal-theory threshold (statistic units) to start from; the loop raises it."""
-    from monitor.detectors.arl import cusum_h_for_arl0, ewma_L_for_arl0, ewma_limit
-
-    if chart == "cusum":
-        return cusum_h_for_arl0(kw["k"], arl0)
-    if chart == "ewma":
-        return ewma_limit(kw["lam"], ewma_L_for_arl0(kw["lam"], arl0))
-    return cusum_h_for_arl0(kw["delta"], arl0)
-
-
-def _chart_kw(chart: str, kw: dict) -> tuple:
-    if chart == "cusum":
-        return (("k", float(kw.get("k", 0.5))),)
-    if chart == "ewma":
-        return (("lam", float(kw.get("lam", 0.1))),)
-    if chart == "page_hinkley":
-        return (("delta", float(kw.get("delta", 0.5))), ("alpha", float(kw.get("alpha", 1.0))),
-                ("min_instances", float(kw.get("min_instances", 30))))
-    raise ValueError(f"chart = {chart!r}: must be cusum, ewma or page_hinkley")
 
 
 @lru_cache(maxsize=64)
@@ -312,7 +290,7 @@ def pipeline_threshold(signal: str, chart: str, arl0: float, *, forgetting: floa
     if signal == "iid":
         forgetting = 1.0
     n_paths = int(check_number("n_paths", n_paths, 20, 1e6, integer=True))
-    kw = _chart_kw(chart, chart_kw)
+    kw = design_inputs(chart, chart_kw)
     key = (signal, chart, forgetting, fast_forgetting, reference_forgetting, kw, arl0)
     if n_paths == DEFAULT_PATHS and seed == 0 and key in PRECOMPUTED:
         h, arl_se, h_se, paths = PRECOMPUTED[key]
@@ -339,10 +317,10 @@ def _precompute(n_paths: int = 2000) -> dict:  # pragma: no cover - offline gene
              ("slope", "page_hinkley", 0.99, DEFAULT_FAST, DEFAULT_REFERENCE, {"delta": 1.0}),
              ("iid", "page_hinkley", 1.0, 0.0, 0.0, {"delta": 0.5})]
     for signal, chart, lam, lf, lr, kw in specs:
-        sim = _Simulation(signal, chart, lam, lf, lr, n_paths, 12345, dict(_chart_kw(chart, kw)))
+        sim = _Simulation(signal, chart, lam, lf, lr, n_paths, 12345, dict(design_inputs(chart, kw)))
         for a in sorted(targets, reverse=True):
             d = sim.solve(a)
-            table[(signal, chart, lam, lf, lr, _chart_kw(chart, kw), a)] = (
+            table[(signal, chart, lam, lf, lr, design_inputs(chart, kw), a)] = (
                 round(d.threshold, 4), round(d.arl_se, 1), round(d.threshold_se, 4), n_paths)
     return table
 

@@ -26,41 +26,11 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
 
-from monitor.detectors.base import (F_ALARM, F_DOWN, F_REST_DN, F_REST_UP, F_USED, Detector,
-                                    check_number)
-from monitor.detectors.cusum import (C_ALARMS, C_LAST, C_RUN, C_SEEN, C_UP, CHART_PARAMS,
-                                     CHART_SIZE, DEFAULT_ARL0, P_A, P_BURN, P_THRESHOLD)
-
-
-@njit(cache=True, inline="always")
-def ewma_step(s, at, x, p):
-    """One EWMA update of ``s[at:]``; params ``p = [burn_in, limit c = L sqrt(lam/(2-lam)),
-    lam]``."""
-    if not (x == x):
-        return 0
-    s[at + C_SEEN] += 1.0
-    if s[at + C_SEEN] <= p[P_BURN]:
-        return 0
-    lam = p[P_A]
-    z = (1.0 - lam) * s[at + C_UP] + lam * x
-    s[at + C_RUN] += 1.0
-    flags = F_USED
-    if z > p[P_THRESHOLD] or z < -p[P_THRESHOLD]:
-        flags |= F_ALARM
-        if z < 0.0:
-            flags |= F_DOWN
-        s[at + C_LAST] = z
-        s[at + C_ALARMS] += 1.0
-        s[at + C_RUN] = 0.0
-        z = 0.0
-    s[at + C_UP] = z
-    if z <= 0.0:
-        flags |= F_REST_UP
-    if z >= 0.0:
-        flags |= F_REST_DN
-    return flags
+from monitor.detectors.base import Detector, check_number
+from monitor.detectors.kernels import (C_ALARMS, C_UP, CHART_EWMA, CHART_PARAMS, CHART_SIZE, P_A,
+                                       P_BURN, P_THRESHOLD, ewma_step)
+from monitor.detectors.spec import DEFAULT_ARL0
 
 
 class EWMAChart(Detector):
@@ -79,7 +49,7 @@ class EWMAChart(Detector):
     """
 
     _SIZE = CHART_SIZE
-    _KIND = 2  # code in monitor.detectors.charts
+    _KIND = CHART_EWMA
 
     def __init__(self, lam: float = 0.1, L: float | None = None, arl0: float = DEFAULT_ARL0,
                  burn_in: int = 0):

@@ -27,68 +27,12 @@ inputs are standardized and ``delta`` is in standard deviations.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
 
-from monitor.detectors.base import F_ALARM, F_DOWN, F_REST_DN, F_REST_UP, F_USED, Detector, \
-    check_number
-from monitor.detectors.cusum import (C_ALARMS, C_DN, C_LAST, C_RUN, C_SEEN, C_UP, CHART_PARAMS,
-                                     CHART_SIZE, DEFAULT_ARL0, P_A, P_B, P_BURN, P_C,
-                                     P_THRESHOLD)
-
-C_MEAN, C_MIN_UP, C_MAX_DN = 6, 7, 8
-
-
-@njit(cache=True, inline="always")
-def ph_update(s, at, x, p):
-    """Advance the Page-Hinkley sums in ``s[at:]`` without testing; returns (test_up,
-    test_down)."""
-    s[at + C_RUN] += 1.0
-    n = s[at + C_RUN]
-    mean = s[at + C_MEAN] + (1.0 / n) * (x - s[at + C_MEAN])
-    s[at + C_MEAN] = mean
-    dev = x - mean
-    alpha = p[P_B]
-    up = alpha * s[at + C_UP] + dev - p[P_A]
-    dn = alpha * s[at + C_DN] + dev + p[P_A]
-    s[at + C_UP] = up
-    s[at + C_DN] = dn
-    if n == 1.0 or up < s[at + C_MIN_UP]:
-        s[at + C_MIN_UP] = up
-    if n == 1.0 or dn > s[at + C_MAX_DN]:
-        s[at + C_MAX_DN] = dn
-    return up - s[at + C_MIN_UP], s[at + C_MAX_DN] - dn
-
-
-@njit(cache=True, inline="always")
-def ph_step(s, at, x, p):
-    """One update; params ``p = [burn_in, lambda, delta, alpha, min_instances]``."""
-    if not (x == x):
-        return 0
-    s[at + C_SEEN] += 1.0
-    if s[at + C_SEEN] <= p[P_BURN]:
-        return 0
-    t_up, t_dn = ph_update(s, at, x, p)
-    flags = F_USED
-    if s[at + C_RUN] >= p[P_C] and (t_up > p[P_THRESHOLD] or t_dn > p[P_THRESHOLD]):
-        flags |= F_ALARM | F_REST_UP | F_REST_DN
-        if t_dn > t_up:
-            flags |= F_DOWN
-            s[at + C_LAST] = -t_dn
-        else:
-            s[at + C_LAST] = t_up
-        s[at + C_ALARMS] += 1.0
-        s[at + C_UP] = 0.0
-        s[at + C_DN] = 0.0
-        s[at + C_RUN] = 0.0
-        s[at + C_MEAN] = 0.0
-        s[at + C_MIN_UP] = 0.0
-        s[at + C_MAX_DN] = 0.0
-        return flags
-    if t_up == 0.0:
-        flags |= F_REST_UP
-    if t_dn == 0.0:
-        flags |= F_REST_DN
-    return flags
+from monitor.detectors.base import Detector, check_number
+from monitor.detectors.kernels import (C_ALARMS, C_DN, C_MAX_DN, C_MIN_UP, C_RUN, C_UP,
+                                       CHART_PARAMS, CHART_PH, CHART_SIZE, P_A, P_B, P_BURN, P_C,
+                                       P_THRESHOLD, ph_step)
+from monitor.detectors.spec import DEFAULT_ARL0
 
 
 class PageHinkley(Detector):
@@ -111,7 +55,7 @@ class PageHinkley(Detector):
     """
 
     _SIZE = CHART_SIZE
-    _KIND = 3  # code in monitor.detectors.charts
+    _KIND = CHART_PH
 
     def __init__(self, delta: float = 0.5, threshold: float | None = None, alpha: float = 1.0,
                  min_instances: int = 30, arl0: float = DEFAULT_ARL0, burn_in: int = 0):

@@ -90,7 +90,7 @@ def write_experiments_for_log(log: str | Path, cfg: Any, out_dir: str | Path,
 
     from monitor.ingest.logio import read_log
     from monitor.rows.validate import validate_frame
-    from monitor.settings import validation_from_config
+    from monitor.rows.validate import validation_from_config
 
     plans = plans_from_config(cfg)
     if not plans:

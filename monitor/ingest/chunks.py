@@ -28,7 +28,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError, SourceError
-from monitor.ingest.logio import (DEFAULT_COLUMNS, _check_file, _rename, log_format, read_log,
+from monitor.ingest.logio import (DEFAULT_COLUMNS, check_file, column_renames, log_format, read_log,
                                   table_to_frame)
 
 
@@ -56,7 +56,7 @@ def csv_header(path) -> bytes:
 
 def csv_blocks(path, block_bytes: int = DEFAULT_BLOCK_BYTES) -> list[Block]:
     """Cut a CSV file's data lines into blocks of about ``block_bytes`` at line breaks."""
-    p = _check_file(path)
+    p = check_file(path)
     size = p.stat().st_size
     header = csv_header(p)
     block_bytes = max(int(block_bytes), 1 << 12)
@@ -100,12 +100,12 @@ def read_csv_block(path, block: Block, header: bytes | None = None,
         fh.seek(block.start)
         data = fh.read(block.stop - block.start)
     table = parse_csv_bytes(data, header, str(path))
-    return _canonical(table_to_frame(table), columns)
+    return canonical_frame(table_to_frame(table), columns)
 
 
-def _canonical(frame: pd.DataFrame, columns) -> pd.DataFrame:
+def canonical_frame(frame: pd.DataFrame, columns) -> pd.DataFrame:
     mapping = {**DEFAULT_COLUMNS, **(columns or {})}
-    return frame.rename(columns=_rename(list(frame.columns), mapping))
+    return frame.rename(columns=column_renames(list(frame.columns), mapping))
 
 
 @dataclass
@@ -119,7 +119,7 @@ class LogChunk:
 
 def input_size(path) -> int:
     """Bytes of a CSV file or rows of a Parquet file (the unit of :attr:`LogChunk.position`)."""
-    p = _check_file(path)
+    p = check_file(path)
     if log_format(p) == "parquet":
         try:
             return pq.ParquetFile(p).metadata.num_rows
@@ -131,26 +131,26 @@ def input_size(path) -> int:
 def iter_chunks(path, columns: Mapping[str, str] | None = None, chunk_rows: int = 1_000_000
                 ) -> Iterator[LogChunk]:
     """Yield the log in chunks of about ``chunk_rows`` rows (row numbers continue across chunks)."""
-    p = _check_file(path)
+    p = check_file(path)
     offset = 0
     if log_format(p) == "parquet":
         try:
             pf = pq.ParquetFile(p)
             for batch in pf.iter_batches(batch_size=max(int(chunk_rows), 1)):
-                frame = _canonical(table_to_frame(pa.Table.from_batches([batch])), columns)
+                frame = canonical_frame(table_to_frame(pa.Table.from_batches([batch])), columns)
                 yield LogChunk(frame, offset, offset + len(frame))
                 offset += len(frame)
         except (pa.ArrowInvalid, OSError) as exc:
             raise SourceError(f"{p}: unreadable parquet file: {exc}") from None
         return
     header = csv_header(p)
-    for block in csv_blocks(p, chunk_rows * _mean_line_bytes(p, header)):
+    for block in csv_blocks(p, chunk_rows * mean_line_bytes(p, header)):
         frame = read_csv_block(p, block, header, columns)
         yield LogChunk(frame, offset, block.stop)
         offset += len(frame)
 
 
-def _mean_line_bytes(path: Path, header: bytes, sample: int = 1 << 16) -> int:
+def mean_line_bytes(path: Path, header: bytes, sample: int = 1 << 16) -> int:
     """Mean bytes per data line over the first ``sample`` bytes (at least 8)."""
     with open(path, "rb") as fh:
         fh.seek(len(header))

@@ -8,6 +8,7 @@ from typing import Any, Mapping
 
 from monitor.errors import ConfigError, SourceError
 from monitor.ingest.files import CsvTail, FolderSource, ParquetFile
+from monitor.ingest.logio import column_names
 from monitor.ingest.sql import SqlSource
 
 
@@ -36,7 +37,7 @@ def source_from_config(name: str, spec: Mapping[str, Any], columns=None, base: P
 
 def sources_from_config(config, base: Path | None = None) -> dict:
     """Every ``[sources.NAME]`` as a source object, in file order."""
-    columns = config.section("columns")
+    columns = column_names(config)
     return {name: source_from_config(name, spec, columns, base)
             for name, spec in config.section("sources").items()}
 
@@ -53,3 +54,60 @@ def file_source(path, columns=None) -> tuple[str, Any]:
     if p.suffix.lower() in (".parquet", ".pq"):
         return str(p), ParquetFile(str(p), p, columns)
     return str(p), CsvTail(str(p), p, columns, final=True)
+
+
+_COMMON = {"type": str, "poll_interval_s": (int, float), "stale_after_s": (int, float)}
+
+
+#: keys allowed per source type (besides ``type``, ``poll_interval_s``, ``stale_after_s``)
+SOURCE_KEYS: dict[str, dict[str, Any]] = {
+    "csv": {"path": str, "on_reset": str},
+    "folder": {"path": str, "patterns": list, "settle_s": (int, float)},
+    "sql": {"path": str, "url": str, "table": str, "key": str},
+}
+
+
+REQUIRED_SOURCE_KEYS = {"csv": ("path",), "folder": ("path",), "sql": ("table",)}
+
+
+def _type_ok(value: Any, types: Any) -> bool:
+    if types == (int, float):
+        return isinstance(value, (int, float)) and not isinstance(value, bool)
+    return isinstance(value, types)
+
+
+def check_sources(content: Any) -> None:
+    """Validate ``[sources.NAME]`` tables; the message names ``sources.NAME.KEY``."""
+    if not isinstance(content, Mapping):
+        raise ConfigError("[sources] must be a table of named sources, e.g. [sources.feed]")
+    for name, spec in content.items():
+        where = f"[sources.{name}]"
+        if not isinstance(spec, Mapping):
+            raise ConfigError(f"{where}: expected a table of settings, got {spec!r}")
+        kind = spec.get("type")
+        if kind not in SOURCE_KEYS:
+            raise ConfigError(f"{where} type = {kind!r}: must be one of {', '.join(SOURCE_KEYS)}")
+        allowed = {**_COMMON, **SOURCE_KEYS[kind]}
+        for key, value in spec.items():
+            if key not in allowed:
+                raise ConfigError(f"{where} {key}: unknown key for a {kind} source "
+                                  f"(known: {', '.join(sorted(allowed))})")
+            if not _type_ok(value, allowed[key]):
+                raise ConfigError(f"{where} {key} = {value!r}: wrong type")
+        for key in REQUIRED_SOURCE_KEYS[kind]:
+            if key not in spec:
+                raise ConfigError(f"{where} {key}: required for a {kind} source")
+        if kind == "sql" and ("path" in spec) == ("url" in spec):
+            raise ConfigError(f"{where}: give either path (a SQLite file) or url (SQLAlchemy)")
+        if spec.get("on_reset", "restart") not in ("restart", "stop"):
+            raise ConfigError(f"{where} on_reset = {spec['on_reset']!r}: must be 'restart' or "
+                              f"'stop'")
+        if "poll_interval_s" in spec and not spec["poll_interval_s"] > 0:
+            raise ConfigError(f"{where} poll_interval_s = {spec['poll_interval_s']!r}: must be > 0")
+        for key in ("stale_after_s", "settle_s"):
+            if key in spec and spec[key] < 0:
+                raise ConfigError(f"{where} {key} = {spec[key]!r}: must be >= 0")
+
+
+#: the free-form ``[sources]`` table and its validator, for monitor.settings to compose
+FREE_SECTIONS = {"sources": check_sources}

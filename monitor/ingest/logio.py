@@ -22,6 +22,14 @@ from monitor.errors import SourceError
 
 
 DEFAULT_COLUMNS = {"series": "series", "ts": "ts", "price": "price", "quantity": "quantity"}
+#: ``[columns]``: the log's column name of each field (the schema :mod:`monitor.settings` composes)
+COLUMNS_KEYS = {name: (str, column) for name, column in DEFAULT_COLUMNS.items()}
+SECTIONS = {"columns": COLUMNS_KEYS}
+
+
+def column_names(config) -> dict[str, str]:
+    """``[columns]`` of a :class:`monitor.sections.Config` with the defaults filled."""
+    return {**DEFAULT_COLUMNS, **config.section("columns")}
 
 
 def log_format(path: str | os.PathLike) -> str:
@@ -33,7 +41,7 @@ def log_format(path: str | os.PathLike) -> str:
     raise SourceError(f"{path}: unknown log format '{suffix}' (expected .csv or .parquet)")
 
 
-def _check_file(path) -> Path:
+def check_file(path) -> Path:
     p = Path(path)
     if not p.exists():
         raise SourceError(f"{p}: no such file")
@@ -44,7 +52,7 @@ def _check_file(path) -> Path:
     return p
 
 
-def _rename(table_cols: list[str], mapping: Mapping[str, str]) -> dict[str, str]:
+def column_renames(table_cols: list[str], mapping: Mapping[str, str]) -> dict[str, str]:
     """Map the file's column names onto series/ts/price/quantity."""
     inv = {}
     for canon, actual in mapping.items():
@@ -60,7 +68,7 @@ def _text_types(names: list[str]) -> dict:
 def read_log(path, columns: Mapping[str, str] | None = None,
              text: bool = False) -> pd.DataFrame:
     """Read a whole log into a DataFrame with canonical column names (see module docstring)."""
-    p = _check_file(path)
+    p = check_file(path)
     mapping = {**DEFAULT_COLUMNS, **(columns or {})}
     fmt = log_format(p)
     try:
@@ -77,7 +85,7 @@ def read_log(path, columns: Mapping[str, str] | None = None,
     except OSError as exc:
         raise SourceError(f"{p}: unreadable {fmt} file: {exc}") from None
     frame = table_to_frame(table)
-    frame = frame.rename(columns=_rename(list(frame.columns), mapping))
+    frame = frame.rename(columns=column_renames(list(frame.columns), mapping))
     return frame
 
 
@@ -111,13 +119,13 @@ def iter_log_batches(path, columns: Mapping[str, str] | None = None,
 
     Bounded memory for large logs; the text path makes every chunk's types the same.
     """
-    p = _check_file(path)
+    p = check_file(path)
     mapping = {**DEFAULT_COLUMNS, **(columns or {})}
     if log_format(p) == "parquet":
         pf = pq.ParquetFile(p)
         for batch in pf.iter_batches(batch_size=batch_rows):
             df = table_to_frame(pa.Table.from_batches([batch]))
-            yield df.rename(columns=_rename(list(df.columns), mapping))
+            yield df.rename(columns=column_renames(list(df.columns), mapping))
         return
     with open(p, "rb") as fh:
         first = fh.readline().decode("utf-8", errors="replace").strip()
@@ -128,7 +136,7 @@ def iter_log_batches(path, columns: Mapping[str, str] | None = None,
                             convert_options=conv)
     for batch in reader:
         df = batch.to_pandas()
-        yield df.rename(columns=_rename(list(df.columns), mapping))
+        yield df.rename(columns=column_renames(list(df.columns), mapping))
 
 
 def write_table(frame: pd.DataFrame, path) -> None:

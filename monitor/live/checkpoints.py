@@ -27,6 +27,7 @@ from monitor.live.batch import NAT
 from monitor.rows.isotime import format_ts
 from monitor.rows.validate import SeriesGate
 from monitor.store import load_checkpoints
+from monitor.store.live import rows_read_by_source
 
 
 def vector_to_json(pipeline, vec: np.ndarray):
@@ -73,8 +74,7 @@ def restore(mon) -> None:
         mon._last_obs[series] = int(st.get("last_obs_ns", NAT))
         mon._zero[series] = int(st.get("zero_skipped", 0))
     mon._states = np.array(vectors, dtype=np.float64).reshape(len(vectors), mon._width)
-    mon._rows_read = {r["source"]: int(r["rows_read"]) for r in
-                      mon.store.rows("SELECT source, rows_read FROM source_offsets")}
+    mon._rows_read = rows_read_by_source(mon.store)
 
 
 def checkpoints(mon, touched: dict[str, dict], source: str) -> dict[str, dict]:

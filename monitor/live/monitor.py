@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.errors import ValidationError
+from monitor.estimators.settings import estimator_from_config
 from monitor.live import settings as service_config
 from monitor.live.batch import (DUPLICATE, LATE, NAT, BatchReport, alert_changes,
                                 duplicates_against_store, extra_rejects, missing_column_rejects,
@@ -37,8 +38,8 @@ from monitor.live.one_row import NOT_PLAIN, observe_plain
 from monitor.pipeline.run import Pipeline
 from monitor.rows.frames import estimates_frame
 from monitor.rows.prepare import prepare_rows
-from monitor.rows.validate import renumber, validate_frame
-from monitor.settings import Config, estimator_from_config, validation_from_config
+from monitor.rows.validate import renumber, validate_frame, validation_from_config
+from monitor.sections import Config
 from monitor.store import Store, thin_estimates, wall_ts, write_batch
 from monitor.store.live import release_writer_lock, series_bounds, take_writer_lock
 from monitor.types import Estimate

@@ -21,7 +21,7 @@ import pandas as pd
 from monitor.estimators import kernel as K
 from monitor.estimators.transform import design_matrix
 from monitor.live.batch import NAT, alert_changes
-from monitor.rows.validate import _ordered_checks
+from monitor.rows.validate import ordered_checks
 from monitor.store import to_json, wall_ts
 from monitor.store.live import write_one
 from monitor.types import STATUS_LABELS, Estimate
@@ -111,7 +111,7 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
         mon._nan_median = np.full(gate.last_ts.size, np.nan)
     code = np.zeros(1, dtype=np.int8)
     price_arr = np.array([p])
-    _ordered_checks(np.array([gi], dtype=np.int64), np.array([ns], dtype=np.int64),
+    ordered_checks(np.array([gi], dtype=np.int64), np.array([ns], dtype=np.int64),
                     np.log(price_arr), gate.last_ts, gate.ring, gate.ring_ts, gate.count,
                     np.int64(mon.validation.allowed_lateness_s * 1e9),
                     math.log(mon.validation.unit_ratio),

@@ -38,10 +38,11 @@ import time
 from pathlib import Path
 
 from monitor.ingest.factory import sources_from_config
+from monitor.ingest.logio import column_names
 from monitor.live import settings as service_config
 from monitor.live.monitor import Monitor
 from monitor.live.sinks import deliver_due, sinks_from_config
-from monitor.settings import Config
+from monitor.sections import Config
 from monitor.store import get_offset, send_reminders, wall_ts, write_batch
 from monitor.store.live import record_source_error, source_rows_at, stale_changes
 
@@ -269,7 +270,7 @@ def ingest_file(path, store, config: Config | None = None, batch_rows: int | Non
     if rows_per_batch < 1:
         from monitor.errors import ConfigError
         raise ConfigError(f"batch_rows = {rows_per_batch}: must be >= 1")
-    name, src = file_source(path, config.section("columns"))
+    name, src = file_source(path, column_names(config))
     sinks = configured_sinks(config, config_folder(config)) if deliver else {}
     t0 = time.perf_counter()
     out = {"source": name, "batches": 0, "rows": 0, "accepted": 0, "rejected": 0,

@@ -65,6 +65,7 @@ import pandas as pd
 from monitor.errors import ConfigError, ElmonError
 from monitor.store.codec import parse_ts, wall_ts
 from monitor.store.core import Store, accepts_path
+from monitor.store.outbox import due_deliveries, record_delivered, record_failure
 
 
 CAUTION = ("Elasticity estimates are statistical evidence to inform decisions, not decisions. "
@@ -235,7 +236,7 @@ class EmailSink:
         return f"EmailSink({self.host!r}, {self.port})"
 
 
-_KEYS = {"log": ({"path"}, set()),
+SINK_KEYS = {"log": ({"path"}, set()),
          "webhook": ({"url"}, {"timeout", "secret_env", "headers"}),
          "email": ({"host", "port", "sender", "recipients"},
                    {"starttls", "user_env", "password_env", "timeout"})}
@@ -257,10 +258,10 @@ def sinks_from_config(mapping: Mapping[str, Mapping[str, Any]]) -> dict[str, Sin
         if not isinstance(spec, Mapping):
             raise ConfigError(f"{where}: expected a table of settings, got {spec!r}")
         spec = dict(spec)
-        kind = spec.pop("type", name if name in _KEYS else None)
-        if kind not in _KEYS:
-            raise ConfigError(f"{where}.type = {kind!r}: must be one of {', '.join(_KEYS)}")
-        required, optional = _KEYS[kind]
+        kind = spec.pop("type", name if name in SINK_KEYS else None)
+        if kind not in SINK_KEYS:
+            raise ConfigError(f"{where}.type = {kind!r}: must be one of {', '.join(SINK_KEYS)}")
+        required, optional = SINK_KEYS[kind]
         for key in spec:
             if key not in required | optional:
                 hint = (" (secrets never go in the config file: put it in an environment "
@@ -295,7 +296,7 @@ def deliver_due(store: Store, sinks: Mapping[str, Sink], now: Any = None, max_at
     ``delivered``; failure (an exception from the sink, or no sink of that name in ``sinks``)
     adds an attempt, stores the error and schedules the next try after
     ``min(max_backoff, backoff * 2**(attempts - 1))`` seconds; the ``max_attempts``-th failure
-    sets ``failed`` (kept, shown by ``elmon status``, retried by :func:`requeue_failed`).
+    sets ``failed`` (kept, shown by ``elmon status``, retried by :func:`monitor.store.outbox.requeue_failed`).
     Each outcome commits on its own, outside any network call.
 
     Returns
@@ -304,9 +305,7 @@ def deliver_due(store: Store, sinks: Mapping[str, Sink], now: Any = None, max_at
         Counts ``delivered``, ``retrying``, ``failed``.
     """
     now_s = wall_ts(now)
-    due = store.rows("SELECT id, alert_id, event, sink, payload, attempts FROM outbox WHERE "
-                     "status = 'pending' AND next_attempt_at <= ? ORDER BY id LIMIT ?",
-                     (now_s, int(limit)))
+    due = due_deliveries(store, now_s, limit)
     counts = {"delivered": 0, "retrying": 0, "failed": 0}
     for row in due:
         message = {**json.loads(row["payload"]), "delivery_id": row["id"], "sent_at": now_s}
@@ -321,23 +320,9 @@ def deliver_due(store: Store, sinks: Mapping[str, Sink], now: Any = None, max_at
             status = "failed" if attempts >= max_attempts else "pending"
             later = wall_ts(parse_ts(now_s) + pd.Timedelta(
                 seconds=_retry_delay(attempts, backoff, max_backoff)))
-            with store.atomic():
-                store.execute("UPDATE outbox SET attempts = ?, status = ?, next_attempt_at = ?,"
-                              " last_error = ? WHERE id = ?",
-                              (attempts, status, later, error, row["id"]))
+            record_failure(store, row["id"], attempts, status, later, error)
             counts["failed" if status == "failed" else "retrying"] += 1
             continue
-        with store.atomic():
-            store.execute("UPDATE outbox SET attempts = attempts + 1, status = 'delivered', "
-                          "delivered_at = ?, last_error = NULL WHERE id = ?", (now_s, row["id"]))
+        record_delivered(store, row["id"], now_s)
         counts["delivered"] += 1
     return counts
-
-
-@accepts_path(readonly=False)
-def requeue_failed(store: Store, now: Any = None) -> int:
-    """Put every ``failed`` outbox row back to ``pending`` (attempts reset); returns how many."""
-    with store.atomic():
-        cur = store.execute("UPDATE outbox SET status = 'pending', attempts = 0, "
-                            "next_attempt_at = ? WHERE status = 'failed'", (wall_ts(now),))
-    return cur.rowcount

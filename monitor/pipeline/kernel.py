@@ -31,12 +31,12 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from monitor.detectors.base import F_ALARM, F_DOWN
-from monitor.detectors.bounds import B_ACTIVE, B_SIDE, bounds_step, hysteresis_step
-from monitor.detectors.charts import chart_stat, chart_step
-from monitor.detectors.cusum import C_LAST
-from monitor.detectors.slope import G_BF, adjusted_response, fast_interval, reanchor, slope_step
+from monitor.detectors.bounds_kernel import B_ACTIVE, B_SIDE, bounds_step, hysteresis_step
+from monitor.detectors.kernels import C_LAST, F_ALARM, F_DOWN, chart_stat, chart_step
+from monitor.detectors.slope_kernel import (G_BF, adjusted_response, fast_interval, reanchor,
+                                            slope_step)
 from monitor.estimators import kernel as K
+from monitor.estimators.dispatch import estimator_step
 from monitor.pipeline.messages import (EV_ACTION, EV_BETA, EV_COUNT, EV_EXTRA, EV_HI, EV_KIND,
                                        EV_LO, EV_N, EV_OLD_B, EV_OLD_HI, EV_OLD_LO, EV_ROW, EV_SIDE,
                                        EV_SIZE, EV_START_N, EV_START_TS, EV_STAT, EV_TS)
@@ -249,12 +249,17 @@ def pipeline_run(states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind, lp,
 
     Stops early (``stop_row < n``) when the event buffer ``ev`` might overflow; the caller
     grows it and calls again from ``stop_row`` (the states are consistent at row boundaries).
-    ``est_args = (lam, guard, guard_lam, min_price_sd, min_neff, tq)``; ``bparams`` is
+    ``est_args = (model, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq, off)``
+    (:func:`monitor.estimators.dispatch.estimator_step`; ``off``: log exposure per row, or
+    empty); ``bparams`` is
     ``(n_series, BOUNDS_PARAMS)``, ``bon`` per-series bounds switches; ``rparams`` is
-    ``(5, RULE_PARAMS)``; ``vparams = [persistence, clear_after, min_price_sd]``; ``u`` is a
-    scratch vector of length k (the kernel allocates nothing).
+    ``(5, RULE_PARAMS)``; ``vparams = [persistence, clear_after, min_price_sd]``; ``u`` is the
+    estimator's scratch vector (``dispatch.work_size``; the kernel allocates nothing). The
+    detectors get the estimator's log-scale response ``out[O_YLOG]`` (``y`` itself for the
+    log-log model).
     """
-    lam, guard, guard_lam, mps, mneff, tq = est_args
+    model, band, lags, lam, guard, guard_lam, mps, mneff, tq, off = est_args
+    has_off = off.shape[0] > 0
     k = X.shape[1]
     ne = 0
     cap = ev.shape[0]
@@ -264,10 +269,8 @@ def pipeline_run(states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind, lp,
         sj = sid[j]
         st = states[sj]
         o = out[j]
-        if k == 2:
-            K.step_two(st, X[j, 1], y[j], lam, guard, guard_lam, mps, mneff, tq, o)
-        else:
-            K.step_general(st, X[j], y[j], k, lam, guard, guard_lam, mps, mneff, tq, o, u)
-        ne = _row(st, o, X[j], y[j], j, sj, k, ts[j], lay, tq, lf, lr, lkind, lp, skind, sp,
+        estimator_step(model, st, X[j], y[j], off[j] if has_off else 0.0, k, band, lags, lam,
+                       guard, guard_lam, mps, mneff, tq, o, u)
+        ne = _row(st, o, X[j], o[K.O_YLOG], j, sj, k, ts[j], lay, tq, lf, lr, lkind, lp, skind, sp,
                   bparams, bon, gparams, vparams, rparams, ev, ne, status, sig, keep)
     return X.shape[0], ne

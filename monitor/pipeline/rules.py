@@ -34,8 +34,8 @@ from typing import Mapping
 import numpy as np
 from numba import njit
 
-from monitor.detectors.base import (F_ALARM, F_BREACH, F_INSIDE, F_REST_DN, F_REST_UP, F_USED,
-                                    check_number, floats_from_json, floats_to_json)
+from monitor.detectors.base import check_number, floats_from_json, floats_to_json
+from monitor.detectors.kernels import F_ALARM, F_BREACH, F_INSIDE, F_REST_DN, F_REST_UP, F_USED
 
 
 KINDS = ("out_of_bounds", "elasticity_change", "level_shift", "sign_flip", "low_variation")

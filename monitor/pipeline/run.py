@@ -35,13 +35,15 @@ import numpy as np
 import pandas as pd
 
 from monitor.detectors.base import floats_from_json, floats_to_json
-from monitor.detectors.bounds import BOUNDS_SIZE, MODES
-from monitor.detectors.charts import CHART_CODES, CHART_SIZE, pack_chart
+from monitor.detectors.bounds_kernel import BOUNDS_SIZE, MODES
 from monitor.detectors.design import DesignedThreshold, pipeline_threshold
-from monitor.detectors.slope import SLOPE_SIZE
+from monitor.detectors.kernels import CHART_SIZE
+from monitor.detectors.slope_kernel import SLOPE_SIZE
+from monitor.detectors.spec import CHART_CODES, pack_chart
 from monitor.errors import ConfigError
 from monitor.estimators import kernel as K
 from monitor.estimators.batch import initial_states
+from monitor.estimators.dispatch import model_code, work_size
 from monitor.pipeline.kernel import L_SIZE, NSIG, pipeline_run
 from monitor.pipeline.messages import NEV, events_frame
 from monitor.pipeline.rules import EP_SIZE, KINDS, RULE_SIZE, RUN_SIZE, rule_params
@@ -155,7 +157,7 @@ class Pipeline:
         return CHART_CODES[chart], pack_chart(chart, design.threshold, burn, **kw)
 
     def _make_layout(self) -> np.ndarray:
-        offs = [K.state_size(self.estimator._k)]
+        offs = [self.estimator.state_size]
         for _, size in BLOCKS:
             offs.append(offs[-1] + size)
         lay = np.array(offs, dtype=np.int64)
@@ -205,12 +207,14 @@ class Pipeline:
 
     # ------------------------------------------------------------------ running
     def run(self, sid, X, y, n_series: int, states: np.ndarray | None = None, ts=None, *,
-            names=None, low=None, high=None, keep_signals: bool = False) -> PipelineResult:
+            names=None, low=None, high=None, keep_signals: bool = False,
+            offset=None) -> PipelineResult:
         """Run rows ``(sid[j], X[j], y[j])`` in order (each series' rows in time order).
 
         ``ts``: int64 ns UTC per row (messages and "started at"); ``names``: series names by
         index (messages); ``low`` / ``high``: per-series bounds overriding ``[bounds]`` (NaN:
-        no bound on that side); ``states`` is updated in place.
+        no bound on that side); ``states`` is updated in place; ``offset``: log exposure per
+        row (Poisson model; ``y`` is then the quantity itself, zeros allowed).
         """
         X = np.ascontiguousarray(X, dtype=np.float64)
         y = np.ascontiguousarray(y, dtype=np.float64)
@@ -235,8 +239,12 @@ class Pipeline:
         sig = np.empty((n if keep_signals else 1, NSIG))
         records, start, cap = [], 0, max(256, n // 64)
         est = self.estimator
-        args = (est.forgetting, est.excitation_guard, est.guard_forgetting, est.min_price_sd,
-                est.min_n_eff, est._tq)
+        off = np.empty(0) if offset is None else np.ascontiguousarray(offset, dtype=np.float64)
+        if off.size and off.shape != (n,):
+            raise ValueError("offset must have one value per row")
+        args = (model_code(est.model), est._band, est._lags, est.forgetting,
+                est.excitation_guard, est.guard_forgetting, est.min_price_sd, est.min_n_eff,
+                est._tq, off)
         d = self.detectors
         (lkind, lp), (skind, sp) = self._charts["level"], self._charts["slope"]
         while True:
@@ -245,7 +253,7 @@ class Pipeline:
                                     d.fast_forgetting, d.reference_forgetting, lkind, lp, skind,
                                     sp, bparams, bon, self._gparams, self._vparams,
                                     self._rparams, out, ev, status, sig, keep_signals,
-                                    np.empty(X.shape[1]))
+                                    np.empty(work_size(est.model, X.shape[1])))
             records.append(ev[:ne])
             if stop >= n:
                 break

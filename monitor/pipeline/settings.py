@@ -30,21 +30,23 @@ import math
 from dataclasses import dataclass
 
 from monitor.detectors.base import check_number
-from monitor.detectors.charts import CHART_CODES
+from monitor.detectors.spec import CHART_CODES, CHARTS, SIGNALS, Key, chart_inputs, detector_keys
 from monitor.errors import ConfigError
-from monitor.settings import register_section
 
 
 NUM = (int, float)
-DETECTOR_KEYS = {
-    "arl0": (NUM, 20000.0), "level_chart": (str, "cusum"), "slope_chart": (str, "cusum"),
-    "cusum_k": (NUM, 0.5), "cusum_h": (NUM, None), "slope_k": (NUM, 1.0), "slope_h": (NUM, None),
-    "ewma_lambda": (NUM, 0.1), "ewma_L": (NUM, None), "slope_ewma_lambda": (NUM, 0.1),
-    "slope_ewma_L": (NUM, None), "ph_delta": (NUM, 0.5), "ph_threshold": (NUM, None),
-    "slope_ph_delta": (NUM, 1.0), "slope_ph_threshold": (NUM, None), "ph_alpha": (NUM, 1.0),
-    "ph_min_instances": (NUM, 30), "fast_forgetting": (NUM, 0.95),
-    "reference_forgetting": (NUM, 0.998), "level_burn_in": (NUM, 20), "slope_burn_in": (NUM, 50),
-    "design_paths": (NUM, 400), "design_seed": (NUM, 0)}
+#: every numeric [detectors] key with default and range: arl0, each chart's own keys from the
+#: chart table (monitor.detectors.spec), then the keys all charts share
+DETECTOR_RANGES: dict[str, Key] = {
+    "arl0": Key(20000.0, 20.0, 1e6), **detector_keys(),
+    "fast_forgetting": Key(0.95, 0.0, 1.0, low_open=True, high_open=True),
+    "reference_forgetting": Key(0.998, 0.5, 1.0),
+    "level_burn_in": Key(20, 0, 1e6, integer=True), "slope_burn_in": Key(50, 0, 1e6, integer=True),
+    "design_paths": Key(400, 20, 1e6, integer=True),
+    "design_seed": Key(0, 0, 2**32 - 1, integer=True)}
+DETECTOR_KEYS = {"arl0": (NUM, 20000.0), "level_chart": (str, "cusum"),
+                 "slope_chart": (str, "cusum"),
+                 **{k: (NUM, r.default) for k, r in DETECTOR_RANGES.items() if k != "arl0"}}
 BOUNDS_KEYS = {"low": (NUM, None), "high": (NUM, None), "mode": (str, "interval"),
                "persistence": (NUM, 3), "clear_after": (NUM, 5)}
 RULE_KEYS = {"cooldown": (NUM, 50), "clear_after": (NUM, 200), "out_of_bounds": (bool, True),
@@ -52,42 +54,30 @@ RULE_KEYS = {"cooldown": (NUM, 50), "clear_after": (NUM, 200), "out_of_bounds": 
              "sign_flip": (bool, True), "low_variation": (bool, True),
              "sign_flip_persistence": (NUM, 5), "sign_flip_clear_after": (NUM, 5),
              "low_variation_persistence": (NUM, 5), "low_variation_clear_after": (NUM, 20)}
-register_section("detectors", DETECTOR_KEYS)
-register_section("bounds", BOUNDS_KEYS)
-register_section("rules", RULE_KEYS)
+#: the sections this module owns, for monitor.settings to compose
+SECTIONS = {"detectors": DETECTOR_KEYS, "bounds": BOUNDS_KEYS, "rules": RULE_KEYS}
 
-_INT = {"ph_min_instances", "level_burn_in", "slope_burn_in", "design_paths", "design_seed",
-        "persistence", "clear_after", "cooldown", "sign_flip_persistence",
-        "sign_flip_clear_after", "low_variation_persistence", "low_variation_clear_after"}
-# (low, high, low_open, high_open) per numeric key
-_RANGES = {
-    "arl0": (20.0, 1e6, False, False), "cusum_k": (0.0, 10.0, False, False),
-    "cusum_h": (0.0, 1e6, True, False), "slope_k": (0.0, 10.0, False, False),
-    "slope_h": (0.0, 1e6, True, False), "ewma_lambda": (0.0, 1.0, True, False),
-    "ewma_L": (0.0, 1e3, True, False), "slope_ewma_lambda": (0.0, 1.0, True, False),
-    "slope_ewma_L": (0.0, 1e3, True, False), "ph_delta": (0.0, 10.0, False, False),
-    "ph_threshold": (0.0, 1e6, True, False), "slope_ph_delta": (0.0, 10.0, False, False),
-    "slope_ph_threshold": (0.0, 1e6, True, False), "ph_alpha": (0.0, 1.0, True, False),
-    "ph_min_instances": (1, 1e6, False, False), "fast_forgetting": (0.0, 1.0, True, True),
-    "reference_forgetting": (0.5, 1.0, False, False), "level_burn_in": (0, 1e6, False, False),
-    "slope_burn_in": (0, 1e6, False, False), "design_paths": (20, 1e6, False, False),
-    "design_seed": (0, 2**32 - 1, False, False), "persistence": (1, 1e6, False, False),
-    "clear_after": (1, 1e6, False, False), "cooldown": (0, 1e9, False, False),
-    "sign_flip_persistence": (1, 1e6, False, False), "sign_flip_clear_after": (1, 1e6, False, False),
-    "low_variation_persistence": (1, 1e6, False, False),
-    "low_variation_clear_after": (1, 1e6, False, False)}
+_RULE_RANGES = {
+    "persistence": Key(3, 1, 1e6, integer=True), "clear_after": Key(5, 1, 1e6, integer=True),
+    "cooldown": Key(50, 0, 1e9, integer=True),
+    "sign_flip_persistence": Key(5, 1, 1e6, integer=True),
+    "sign_flip_clear_after": Key(5, 1, 1e6, integer=True),
+    "low_variation_persistence": Key(5, 1, 1e6, integer=True),
+    "low_variation_clear_after": Key(20, 1, 1e6, integer=True)}
+# the rules' clear_after shares its range with the bounds' one (1 .. 1e6, whole)
+_RANGES = {**DETECTOR_RANGES, **_RULE_RANGES}
 
 
 def _checked(section: str, key: str, value):
     if value is None or isinstance(value, (str, bool)):
         return value
-    lo, hi, lo_open, hi_open = _RANGES[key]
+    r = _RANGES[key]
     try:
-        v = check_number(f"[{section}] {key}", value, lo, hi, low_open=lo_open, high_open=hi_open,
-                         integer=key in _INT)
+        v = check_number(f"[{section}] {key}", value, r.low, r.high, low_open=r.low_open,
+                         high_open=r.high_open, integer=r.integer)
     except ValueError as exc:
         raise ConfigError(str(exc)) from None
-    return int(v) if key in _INT else v
+    return int(v) if r.integer else v
 
 
 def _validate(obj, section: str) -> None:
@@ -95,61 +85,40 @@ def _validate(obj, section: str) -> None:
         object.__setattr__(obj, f.name, _checked(section, f.name, getattr(obj, f.name)))
 
 
-@dataclass(frozen=True)
-class DetectorSettings:
-    """``[detectors]``: which chart watches each signal, its parameters and the ARL budget."""
+def _detector_post_init(self):
+    _validate(self, "detectors")
+    for key in ("level_chart", "slope_chart"):
+        if getattr(self, key) not in CHART_CODES:
+            raise ConfigError(f"[detectors] {key} = {getattr(self, key)!r}: must be one of "
+                              f"{', '.join(CHART_CODES)}")
+    if not self.fast_forgetting < self.reference_forgetting:
+        raise ConfigError(f"[detectors] fast_forgetting = {self.fast_forgetting!r}: must be "
+                          f"below reference_forgetting = {self.reference_forgetting!r}")
 
-    arl0: float = 20000.0
-    level_chart: str = "cusum"
-    slope_chart: str = "cusum"
-    cusum_k: float = 0.5
-    cusum_h: float | None = None
-    slope_k: float = 1.0
-    slope_h: float | None = None
-    ewma_lambda: float = 0.1
-    ewma_L: float | None = None
-    slope_ewma_lambda: float = 0.1
-    slope_ewma_L: float | None = None
-    ph_delta: float = 0.5
-    ph_threshold: float | None = None
-    slope_ph_delta: float = 1.0
-    slope_ph_threshold: float | None = None
-    ph_alpha: float = 1.0
-    ph_min_instances: int = 30
-    fast_forgetting: float = 0.95
-    reference_forgetting: float = 0.998
-    level_burn_in: int = 20
-    slope_burn_in: int = 50
-    design_paths: int = 400
-    design_seed: int = 0
 
-    def __post_init__(self):
-        _validate(self, "detectors")
-        for key in ("level_chart", "slope_chart"):
-            if getattr(self, key) not in CHART_CODES:
-                raise ConfigError(f"[detectors] {key} = {getattr(self, key)!r}: must be one of "
-                                  f"{', '.join(CHART_CODES)}")
-        if not self.fast_forgetting < self.reference_forgetting:
-            raise ConfigError(f"[detectors] fast_forgetting = {self.fast_forgetting!r}: must be "
-                              f"below reference_forgetting = {self.reference_forgetting!r}")
+def _detector_chart(self, signal: str) -> tuple[str, float | None, dict]:
+    """``(chart, given threshold or None, chart parameters)`` of ``signal`` (level/slope)."""
+    if signal not in SIGNALS:
+        raise ValueError(f"signal = {signal!r}: must be one of {', '.join(SIGNALS)}")
+    chart = getattr(self, f"{signal}_chart")
+    if chart not in CHARTS:
+        return chart, None, {}
+    values = dataclasses.asdict(self)
+    return chart, values[CHARTS[chart].threshold_keys[signal]], chart_inputs(chart, signal, values)
 
-    def chart(self, signal: str) -> tuple[str, float | None, dict]:
-        """``(chart, given threshold or None, chart parameters)`` of ``signal`` (level/slope)."""
-        if signal == "level":
-            c = self.level_chart
-            given = {"cusum": self.cusum_h, "ewma": self.ewma_L,
-                     "page_hinkley": self.ph_threshold}.get(c)
-            kw = {"cusum": {"k": self.cusum_k}, "ewma": {"lam": self.ewma_lambda},
-                  "page_hinkley": {"delta": self.ph_delta}}.get(c, {})
-        else:
-            c = self.slope_chart
-            given = {"cusum": self.slope_h, "ewma": self.slope_ewma_L,
-                     "page_hinkley": self.slope_ph_threshold}.get(c)
-            kw = {"cusum": {"k": self.slope_k}, "ewma": {"lam": self.slope_ewma_lambda},
-                  "page_hinkley": {"delta": self.slope_ph_delta}}.get(c, {})
-        if c == "page_hinkley":
-            kw = {**kw, "alpha": self.ph_alpha, "min_instances": self.ph_min_instances}
-        return c, given, kw
+
+#: ``[detectors]``: which chart watches each signal, its parameters and the ARL budget; one
+#: field per key of :data:`DETECTOR_KEYS` (the charts' own keys come from the chart table)
+DetectorSettings = dataclasses.make_dataclass(
+    "DetectorSettings",
+    [(k, (float | None) if d is None else type(d) if isinstance(d, str) else
+      (int if DETECTOR_RANGES.get(k, Key(0, 0, 0)).integer else float), dataclasses.field(default=d))
+     for k, (_, d) in DETECTOR_KEYS.items()],
+    namespace={"__post_init__": _detector_post_init, "chart": _detector_chart,
+               "__doc__": "``[detectors]``: which chart watches each signal, its parameters "
+                          "and the ARL budget (fields: the keys of ``DETECTOR_KEYS``)."},
+    frozen=True)
+DetectorSettings.__module__ = __name__
 
 
 @dataclass(frozen=True)

@@ -33,9 +33,9 @@ import pandas as pd
 import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError
-from monitor.ingest.chunks import (DEFAULT_BLOCK_BYTES, Block, _canonical, _mean_line_bytes,
-                                   csv_blocks, csv_header, read_csv_block)
-from monitor.ingest.logio import _check_file, log_format, table_to_frame
+from monitor.ingest.chunks import (DEFAULT_BLOCK_BYTES, Block, canonical_frame, csv_blocks,
+                                   csv_header, mean_line_bytes, read_csv_block)
+from monitor.ingest.logio import check_file, column_names, log_format, table_to_frame
 from monitor.progress import Progress
 
 
@@ -79,13 +79,13 @@ def partition_of(series: pd.Series, npartitions: int) -> np.ndarray:
 
 def log_blocks(log, chunk_rows: int | None, whole: bool) -> list:
     """The blocks the local engine would read: one block when read whole."""
-    p = _check_file(log)
+    p = check_file(log)
     if log_format(p) == "parquet":
         n = pq.ParquetFile(p).metadata.num_row_groups
         return [("parquet", i) for i in range(n)] if not whole else [("parquet", None)]
     if whole:
         return [("csv", Block(0, len(csv_header(p)), p.stat().st_size))]
-    size = _mean_line_bytes(p, csv_header(p)) * int(chunk_rows) if chunk_rows else DEFAULT_BLOCK_BYTES
+    size = mean_line_bytes(p, csv_header(p)) * int(chunk_rows) if chunk_rows else DEFAULT_BLOCK_BYTES
     return [("csv", b) for b in csv_blocks(p, size)]
 
 
@@ -99,7 +99,7 @@ def read_split(log: str, block, columns: dict, npartitions: int):
     if kind == "parquet":
         pf = pq.ParquetFile(log)
         table = pf.read() if b is None else pf.read_row_group(b)
-        frame = _canonical(table_to_frame(table), columns)
+        frame = canonical_frame(table_to_frame(table), columns)
     else:
         frame = read_csv_block(log, b, None, columns)
     n = len(frame)
@@ -115,11 +115,11 @@ def read_split(log: str, block, columns: dict, npartitions: int):
     return n, pieces
 
 
-def _pick(split, p):
+def split_part(split, p):
     return split[1][p]
 
 
-def _count(split):
+def split_rows(split):
     return split[0]
 
 
@@ -148,17 +148,17 @@ def replay_partitions(log, config, setup, acc, truth, horizon, scheduler, progre
     """Run a replay on a Dask cluster into the driver's accumulator; returns (names, info)."""
     from monitor.ingest.chunks import WHOLE_BYTES, WHOLE_ROWS, input_size
 
-    log = str(_check_file(log).resolve())
+    log = str(check_file(log).resolve())
     if whole is None:
         small = input_size(log) <= (WHOLE_ROWS if log_format(log) == "parquet" else WHOLE_BYTES)
         whole = chunk_rows is None and small
     blocks = log_blocks(log, chunk_rows, whole)
-    columns = dict(config.section("columns"))
+    columns = dict(column_names(config))
     t0 = time.perf_counter()
     with dask_client(scheduler) as client:
         nparts = int(npartitions or 2 * max(1, len(client.nthreads())))
         splits = [client.submit(read_split, log, b, columns, nparts, pure=False) for b in blocks]
-        counts = client.gather([client.submit(_count, s) for s in splits])
+        counts = client.gather([client.submit(split_rows, s) for s in splits])
         offsets = np.r_[0, np.cumsum(counts)[:-1]].astype(int).tolist()
         bar = progress if isinstance(progress, Progress) else \
             Progress(int(sum(counts)), "replay (dask)", enabled=bool(progress))
@@ -166,7 +166,7 @@ def replay_partitions(log, config, setup, acc, truth, horizon, scheduler, progre
         truth_f = client.scatter(truth, broadcast=True) if truth is not None else None
         parts = []
         for p in range(nparts):
-            pieces = [client.submit(_pick, s, p) for s in splits]
+            pieces = [client.submit(split_part, s, p) for s in splits]
             parts.append(client.submit(run_partition, pieces, offsets, setup_f, truth_f, horizon,
                                        pure=False))
         del splits

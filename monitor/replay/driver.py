@@ -39,7 +39,7 @@ import pyarrow.csv as pacsv
 from monitor.errors import ConfigError, SourceError
 from monitor.estimators import kernel as K
 from monitor.ingest.chunks import iter_chunks, log_chunks
-from monitor.ingest.logio import read_log, write_table
+from monitor.ingest.logio import column_names, read_log, write_table
 from monitor.pipeline.run import Pipeline
 from monitor.progress import Progress
 from monitor.replay.detection import DEFAULT_HORIZON, Scores, read_truth, score
@@ -49,7 +49,7 @@ from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COL
                                  estimates_frame)
 from monitor.rows.prepare import prepare_rows
 from monitor.rows.validate import validate_frame
-from monitor.settings import Config, estimator_from_config, validation_from_config
+from monitor.settings import Config, default_config, estimator_from_config, validation_from_config
 from monitor.types import STATUS_LABELS
 
 
@@ -208,13 +208,13 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
         Reference time for the future-timestamp check (default: the wall clock at the start).
     """
     t0 = time.perf_counter()
-    config = config or Config()
+    config = config or default_config()
     if engine not in ("local", "dask"):
         raise ConfigError(f"engine = {engine!r}: must be 'local' or 'dask'")
     truth_df = read_truth(truth) if truth is not None else None
     chosen = choose_report_series(truth_df, report_series) if report else []
     if report and not chosen:
-        chosen = first_series(log, config.section("columns"))
+        chosen = first_series(log, column_names(config))
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     setup = make_setup(config, sample_every, now_ns, chosen, keep_obs=truth_df is not None)
@@ -268,7 +268,7 @@ def prefetch(chunks):
 
 def _replay_local(log, config, setup, acc, chunk_rows, progress):
     carried = CarriedState()
-    total, chunks = log_chunks(log, config.section("columns"), chunk_rows)
+    total, chunks = log_chunks(log, column_names(config), chunk_rows)
     chunks = prefetch(chunks)
     bar = progress if isinstance(progress, Progress) else Progress(total, "replay", enabled=bool(progress))
     n_chunks, t_read = 0, 0.0
@@ -310,7 +310,7 @@ def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info
         "status_counts": {s: statuses.count(s) for s in dict.fromkeys(statuses)},
         "final": final,
         "settings": {"estimator": setup.est._params(), "validation": setup.vset.__dict__,
-                     "columns": config.section("columns"), **setup.pipe.settings(),
+                     "columns": column_names(config), **setup.pipe.settings(),
                      "replay": {"engine": engine, "sample_every": setup.sample_every}},
         "estimates_written": acc.est_w.rows,
         "timing": {"wall_s": wall, "read_s": info.get("read_s"), "core_s": t_core - t0,
@@ -332,11 +332,11 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
     more than ``max_future_s`` after ``now_ns`` (default: the wall clock at the start) are rejected.
     """
     t0 = time.perf_counter()
-    config = config or Config()
+    config = config or default_config()
     est = estimator_from_config(config)
     vset = validation_from_config(config)
     pipe = Pipeline.from_config(config, est)
-    frame = read_log(log_path, config.section("columns"))
+    frame = read_log(log_path, column_names(config))
     t_read = time.perf_counter()
     # future timestamps are judged against the wall clock when the replay starts
     v = validate_frame(frame, controls=est.controls, log_controls=est.log_controls, settings=vset,
@@ -379,7 +379,7 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
         "status_counts": {s["status"]: sum(1 for f in final.values() if f["status"] == s["status"]) for s in final.values()},
         "final": final,
         "settings": {"estimator": est._params(), "validation": vset.__dict__,
-                     "columns": config.section("columns"), **pipe.settings()},
+                     "columns": column_names(config), **pipe.settings()},
         "timing": {"wall_s": wall, "read_s": t_read - t0, "core_s": t_core - t_read,
                    "rows_per_s": len(frame) / wall if wall > 0 else None},
     }

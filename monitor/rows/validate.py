@@ -57,6 +57,19 @@ class ValidationSettings:
             raise ConfigError(f"unit_ratio = {self.unit_ratio!r}: must be > 1")
 
 
+#: ``[validation]`` keys: (type, default), the schema :mod:`monitor.settings` composes
+VALIDATION_KEYS = {"zero_policy": (str, "reject"), "duplicate_policy": (str, "keep_first"),
+                   "allowed_lateness_s": ((int, float), 0.0),
+                   "max_future_s": ((int, float), 3600.0), "unit_ratio": ((int, float), 50.0)}
+SECTIONS = {"validation": VALIDATION_KEYS}
+
+
+def validation_from_config(cfg) -> ValidationSettings:
+    """The validation settings of ``[validation]`` (the dataclass's defaults for keys not
+    given)."""
+    return ValidationSettings(**cfg.section("validation"))
+
+
 @dataclass
 class Validated:
     """Good rows (sorted by series then ts; ``ts`` as int64 ns UTC) and quarantined rows."""
@@ -170,7 +183,7 @@ class SeriesGate:
 
 
 @njit(cache=True)
-def _ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_ratio,
+def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_ratio,
                     reject_all, code, batch_median):
     """Walk rows sorted by (sid, ts, arrival); set code 1 duplicate, 2 late, 3 unit error.
 
@@ -318,7 +331,7 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         if order_by == "time":
             med = grouped.median().where(grouped.size() >= MIN_BATCH)
             batch_median[med.index.to_numpy()] = med.to_numpy(dtype=np.float64)
-        _ordered_checks(sid_all[order], ts[order], lp, gate.last_ts,
+        ordered_checks(sid_all[order], ts[order], lp, gate.last_ts,
                         gate.ring, gate.ring_ts, gate.count, np.int64(settings.allowed_lateness_s * 1e9),
                         math.log(settings.unit_ratio), settings.duplicate_policy == "reject_all", code,
                         batch_median)

@@ -23,7 +23,7 @@ from monitor.store.rows import (ESTIMATE_COLUMNS, OBSERVATION_COLUMNS, as_frame,
 from monitor.store.schema import SPARK_KEEP, beta_text, spark_text
 
 
-_UPSERT_SPARK = ("INSERT INTO sparklines (series, n, ts, beta) VALUES (?, ?, ?, ?) ON CONFLICT "
+UPSERT_SPARK = ("INSERT INTO sparklines (series, n, ts, beta) VALUES (?, ?, ?, ?) ON CONFLICT "
                  "(series) DO UPDATE SET n = excluded.n, ts = excluded.ts, beta = excluded.beta")
 
 
@@ -65,15 +65,15 @@ class Checkpoint(NamedTuple):
     last_pos: Any
 
 
-_INSERT_OBS = ("INSERT INTO observations (series, ts, price, quantity, controls, source, "
+INSERT_OBS = ("INSERT INTO observations (series, ts, price, quantity, controls, source, "
                "source_row) VALUES (?, ?, ?, ?, ?, ?, ?)")
-_INSERT_EST = f"INSERT INTO estimates ({', '.join(ESTIMATE_COLUMNS)}) VALUES " \
+INSERT_EST = f"INSERT INTO estimates ({', '.join(ESTIMATE_COLUMNS)}) VALUES " \
               f"({', '.join('?' * len(ESTIMATE_COLUMNS))})"
-_UPSERT_LATEST = (f"INSERT INTO latest_estimates ({', '.join(ESTIMATE_COLUMNS)}) VALUES "
+UPSERT_LATEST = (f"INSERT INTO latest_estimates ({', '.join(ESTIMATE_COLUMNS)}) VALUES "
                   f"({', '.join('?' * len(ESTIMATE_COLUMNS))}) ON CONFLICT (series) DO UPDATE SET "
                   + ", ".join(f"{c} = excluded.{c}" for c in ESTIMATE_COLUMNS[1:])
                   + " WHERE excluded.ts >= latest_estimates.ts")
-_UPSERT_SERIES_COUNTS = (
+UPSERT_SERIES_COUNTS = (
     "INSERT INTO series (series, first_ts, last_ts, n_obs, n_estimates, updated_at) "
     "VALUES (?, ?, ?, ?, ?, ?) ON CONFLICT (series) DO UPDATE SET "
     "first_ts = min(coalesce(first_ts, excluded.first_ts), coalesce(excluded.first_ts, first_ts)),"
@@ -82,7 +82,7 @@ _UPSERT_SERIES_COUNTS = (
     " updated_at = excluded.updated_at")
 
 
-_UPSERT_OFFSET = (
+UPSERT_OFFSET = (
     "INSERT INTO source_offsets (source, kind, position, rows_read, rows_rejected, last_run_at,"
     " last_error) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7) ON CONFLICT (source) DO UPDATE SET"
     " kind = coalesce(excluded.kind, kind),"
@@ -164,10 +164,10 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
         summary["series"] = len(settings_stmts)
         counts = series_counts(obs_df, est_df, now)
         if counts:
-            store.conn.executemany(_UPSERT_SERIES_COUNTS, counts)
+            store.conn.executemany(UPSERT_SERIES_COUNTS, counts)
         if obs_rows:
             try:
-                store.conn.executemany(_INSERT_OBS, obs_rows)
+                store.conn.executemany(INSERT_OBS, obs_rows)
             except Exception as exc:
                 if "UNIQUE" not in str(exc):
                     raise
@@ -175,7 +175,7 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
             summary["observations"] = len(obs_rows)
         if est_rows:
             try:
-                store.conn.executemany(_INSERT_EST, est_rows)
+                store.conn.executemany(INSERT_EST, est_rows)
             except Exception as exc:
                 if "UNIQUE" not in str(exc):
                     raise
@@ -183,9 +183,9 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
                                  f"{exc}") from None
             summary["estimates"] = len(est_rows)
         if latest_rows:
-            store.conn.executemany(_UPSERT_LATEST, latest_rows)
+            store.conn.executemany(UPSERT_LATEST, latest_rows)
         if est_rows:
-            store.conn.executemany(_UPSERT_SPARK, _spark_updates(store, est_df, est_rows))
+            store.conn.executemany(UPSERT_SPARK, _spark_updates(store, est_df, est_rows))
         if reject_params:
             store.conn.executemany(
                 "INSERT INTO rejects (source, row, series, ts, field, value, raw, reason, "
@@ -199,7 +199,7 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
                 "updated_at = excluded.updated_at", ckpt_params)
             summary["checkpoints"] = len(ckpt_params)
         if offset_params:
-            store.conn.executemany(_UPSERT_OFFSET, offset_params)
+            store.conn.executemany(UPSERT_OFFSET, offset_params)
             summary["offsets"] = len(offset_params)
         for change in changes:
             outcome, alert_id = apply_alert_change(store, change, now=now)

@@ -19,8 +19,8 @@ from monitor.errors import StoreError
 from monitor.store import Store, from_json, parse_ts, wall_ts
 from monitor.store.alerts import apply_alert_change
 # the store's own statements, so the single-row writer cannot drift from write_batch's SQL
-from monitor.store.batch import (_INSERT_EST, _INSERT_OBS, _UPSERT_LATEST, _UPSERT_OFFSET,
-                                 _UPSERT_SERIES_COUNTS, _UPSERT_SPARK)
+from monitor.store.batch import (INSERT_EST, INSERT_OBS, UPSERT_LATEST, UPSERT_OFFSET,
+                                 UPSERT_SERIES_COUNTS, UPSERT_SPARK)
 from monitor.store.schema import SPARK_KEEP, beta_text, spark_text
 
 
@@ -167,26 +167,32 @@ def write_one(store: Store, *, observation: tuple, estimate: tuple, keep: bool,
     summary = {"alerts_opened": [], "alerts_resolved": [], "alerts_reminded": [],
                "alerts_unchanged": []}
     with store.atomic():
-        store.conn.execute(_UPSERT_SERIES_COUNTS, (series, ts, ts, 1, int(keep), now))
+        store.conn.execute(UPSERT_SERIES_COUNTS, (series, ts, ts, 1, int(keep), now))
         try:
-            store.conn.execute(_INSERT_OBS, observation)
+            store.conn.execute(INSERT_OBS, observation)
         except sqlite3.IntegrityError:
             raise StoreError(f"observation (series {series!r}, ts {ts!r}) is already stored; "
                              f"the batch was not written") from None
         if keep:
-            store.conn.execute(_INSERT_EST, estimate)
-        store.conn.execute(_UPSERT_LATEST, estimate)
+            store.conn.execute(INSERT_EST, estimate)
+        store.conn.execute(UPSERT_LATEST, estimate)
         if keep:
             row = store.conn.execute("SELECT ts, beta FROM sparklines WHERE series = ?",
                                      (series,)).fetchone()
             pairs = list(zip(row[0].split(","), row[1].split(","))) if row else []
             new = (ts, beta_text(estimate[2]))
             pairs = pairs + [new] if not pairs or pairs[-1][0] < ts else sorted(pairs + [new])
-            store.conn.execute(_UPSERT_SPARK, (series, *spark_text(pairs[-SPARK_KEEP:])))
+            store.conn.execute(UPSERT_SPARK, (series, *spark_text(pairs[-SPARK_KEEP:])))
         store.conn.execute(_UPSERT_CHECKPOINT, checkpoint)
-        store.conn.execute(_UPSERT_OFFSET, offset)
+        store.conn.execute(UPSERT_OFFSET, offset)
         for change in changes:
             outcome, alert_id = apply_alert_change(store, change, now=now)
             if alert_id is not None:
                 summary[f"alerts_{outcome}"].append(alert_id)
     return summary
+
+
+def rows_read_by_source(store: Store) -> dict[str, int]:
+    """``{source: rows read}`` of every committed source position."""
+    return {r["source"]: int(r["rows_read"])
+            for r in store.rows("SELECT source, rows_read FROM source_offsets")}

@@ -38,16 +38,15 @@ from pathlib import Path
 
 import numpy as np
 
-import monitor.pipeline.settings  # noqa: F401  (registers [detectors], [bounds], [rules])
+from monitor.detectors.spec import CHARTS, chart_spec, threshold_key
 from monitor.errors import ConfigError
 from monitor.estimators import kernel as K
-from monitor.settings import Config, estimator_from_config, validate
+from monitor.settings import Config, default_config, estimator_from_config, validate
 
 
 FLAG_RATIO = 0.20
-SIGNALS = {"level": ("cusum_h", "ewma_L", "ph_threshold"), "slope": ("slope_h", "slope_ewma_L",
-                                                                     "slope_ph_threshold")}
-_OUT_OF_REACH = {"cusum": 1e6, "ewma": 1e3, "page_hinkley": 1e6}
+#: threshold set out of reach per chart, so that no chart resets on a bootstrap path
+_OUT_OF_REACH = {name: spec.out_of_reach for name, spec in CHARTS.items()}
 
 
 def block_length(z: np.ndarray) -> int:
@@ -112,7 +111,7 @@ def _paths_config(config: Config, charts: dict, warm: int) -> Config:
     data = {s: dict(v) if isinstance(v, dict) else v for s, v in config.data.items()}
     det = data.setdefault("detectors", {})
     for signal, (chart, _) in charts.items():
-        key = dict(zip(("cusum", "ewma", "page_hinkley"), SIGNALS[signal]))[chart]
+        key = threshold_key(signal, chart)
         det[key] = _OUT_OF_REACH[chart]
         det[f"{signal}_burn_in"] = warm
     return validate(data, "bootstrap config")
@@ -192,14 +191,10 @@ def solve_threshold(h_grid: np.ndarray, arl: np.ndarray, arl0: float) -> float |
 
 
 def normal_theory(chart: str, kw: dict, arl0: float) -> float | None:
-    """The ARL calculator's threshold for iid N(0, 1) inputs (None for Page-Hinkley)."""
-    from monitor.detectors.arl import cusum_h_for_arl0, ewma_L_for_arl0
-
-    if chart == "cusum":
-        return float(cusum_h_for_arl0(kw["k"], arl0))
-    if chart == "ewma":
-        return float(ewma_L_for_arl0(kw["lam"], arl0))
-    return None
+    """The ARL calculator's threshold for iid N(0, 1) inputs (None where the chart has none,
+    as Page-Hinkley)."""
+    theory = chart_spec(chart).normal_theory
+    return None if theory is None else theory(kw, arl0)
 
 
 def calibrate(log, out_dir, *, config: Config | None = None, arl0: float = 20000.0,
@@ -217,7 +212,7 @@ def calibrate(log, out_dir, *, config: Config | None = None, arl0: float = 20000
     arl0 = float(arl0)
     if not 20 <= arl0 <= 1e6:
         raise ConfigError(f"--arl0 {arl0:g}: must be in [20, 1e6] observations")
-    base = config or Config()
+    base = config or default_config()
     data = {s: dict(v) if isinstance(v, dict) else v for s, v in base.data.items()}
     data.setdefault("detectors", {})["arl0"] = arl0
     cfg = validate(data, "config with --arl0")
@@ -255,7 +250,7 @@ def calibrate(log, out_dir, *, config: Config | None = None, arl0: float = 20000
             if np.isfinite(arl[j]) and np.isfinite(arl_ref[j]) else math.inf
         h_data = solve_threshold(h_grid, arl, float(arl_ref[j]))
         flagged = bool(abs(ratio - 1.0) > FLAG_RATIO)
-        name = dict(zip(("cusum", "ewma", "page_hinkley"), SIGNALS[signal]))[chart]
+        name = threshold_key(signal, chart)
         checks[signal] = {
             "chart": chart, **kw, "design_threshold": h_design, "threshold_key": f"[detectors] {name}",
             "normal_theory_threshold": normal_theory(chart, kw, arl0) if signal == "level" else None,

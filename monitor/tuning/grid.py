@@ -19,7 +19,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from monitor.detectors.spec import CHARTS, SIGNALS
 from monitor.errors import ConfigError
+from monitor.ingest.logio import column_names
 from monitor.progress import Progress
 from monitor.replay.detection import Scores, score
 from monitor.settings import Config, estimator_from_config
@@ -57,9 +59,9 @@ def evaluate(rows: Rows, truth: pd.DataFrame, base: Config, setting: dict, horiz
 
 
 #: config key of each chart's threshold, per signal
-THRESHOLD_KEYS = {"level": {"cusum": "cusum_h", "ewma": "ewma_L", "page_hinkley": "ph_threshold"},
-                  "slope": {"cusum": "slope_h", "ewma": "slope_ewma_L",
-                            "page_hinkley": "slope_ph_threshold"}}
+#: [detectors] key of each chart's threshold per signal (from the chart table)
+THRESHOLD_KEYS = {signal: {name: spec.threshold_keys[signal] for name, spec in CHARTS.items()}
+                  for signal in SIGNALS}
 
 
 def with_thresholds(base: Config, settings: list[dict]) -> list[dict]:
@@ -164,21 +166,21 @@ def evaluate_dask(log, base: Config, truth, settings: list[dict], horizon: int,
     import time
 
     from monitor.ingest.chunks import WHOLE_BYTES, WHOLE_ROWS, input_size
-    from monitor.ingest.logio import _check_file, log_format
-    from monitor.replay.dask import _count, _pick, dask_client, log_blocks, read_split
+    from monitor.ingest.logio import check_file, log_format
+    from monitor.replay.dask import dask_client, log_blocks, read_split, split_part, split_rows
 
-    log = str(_check_file(log).resolve())
+    log = str(check_file(log).resolve())
     small = input_size(log) <= (WHOLE_ROWS if log_format(log) == "parquet" else WHOLE_BYTES)
     blocks = log_blocks(log, chunk_rows, chunk_rows is None and small)
     now_ns = time.time_ns() if now_ns is None else int(now_ns)
-    columns = dict(base.section("columns"))
+    columns = dict(column_names(base))
     with dask_client(scheduler) as client:
         nparts = int(npartitions or 2 * max(1, len(client.nthreads())))
         splits = [client.submit(read_split, log, b, columns, nparts, pure=False) for b in blocks]
-        counts = client.gather([client.submit(_count, s) for s in splits])
+        counts = client.gather([client.submit(split_rows, s) for s in splits])
         offsets = np.r_[0, np.cumsum(counts)[:-1]].astype(int).tolist()
         truth_f = client.scatter(truth, broadcast=True)
-        futs = [client.submit(tune_partition, [client.submit(_pick, s, p) for s in splits], offsets,
+        futs = [client.submit(tune_partition, [client.submit(split_part, s, p) for s in splits], offsets,
                               base.data, truth_f, settings, horizon, now_ns, pure=False)
                 for p in range(nparts)]
         del splits

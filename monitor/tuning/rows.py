@@ -7,6 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from monitor.ingest.logio import column_names
 from monitor.replay.kernel import CarriedState, Setup, design_rows, validate_chunk
 from monitor.settings import Config, estimator_from_config
 
@@ -61,5 +62,5 @@ def load_rows(log, config: Config, chunk_rows: int | None = None, now_ns: int | 
     from monitor.ingest.chunks import log_chunks
 
     setup = validation_setup(config, now_ns)
-    _, chunks = log_chunks(log, config.section("columns"), chunk_rows)
+    _, chunks = log_chunks(log, column_names(config), chunk_rows)
     return rows_from_frames(((c.frame, c.row_offset, None) for c in chunks), setup)

@@ -38,7 +38,6 @@ from pathlib import Path
 
 import numpy as np
 
-import monitor.pipeline.settings  # noqa: F401  (registers [detectors], [bounds], [rules])
 from monitor.errors import ConfigError
 from monitor.settings import Config, read_toml, validate
 

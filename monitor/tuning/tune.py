@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.errors import ConfigError
-from monitor.settings import Config
+from monitor.settings import Config, default_config
 from monitor.tuning.space import (grid, read_space, recommended_config, setting_config,
                                   setting_label, space_from_dict, to_toml)
 
@@ -95,7 +95,7 @@ def tune(log, out_dir, *, truth=None, space=None, config: Config | None = None,
     from monitor.replay.detection import read_truth
 
     t0 = time.perf_counter()
-    config = config or Config()
+    config = config or default_config()
     out = Path(out_dir)
     if engine not in ("local", "dask"):
         raise ConfigError(f"engine = {engine!r}: must be 'local' or 'dask'")

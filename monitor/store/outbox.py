@@ -1,0 +1,46 @@
+"""The alert-delivery outbox: the SQL behind :func:`monitor.live.sinks.deliver_due`.
+
+Rows are enqueued in the same transaction as the alert event they deliver
+(:mod:`monitor.store.alerts`); here they are read when due and their outcome recorded, each
+outcome in its own transaction, outside any network call.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from monitor.store.codec import wall_ts
+from monitor.store.core import Store, accepts_path
+
+
+def due_deliveries(store: Store, now_s: str, limit: int) -> list:
+    """Outbox rows with ``status = 'pending'`` and ``next_attempt_at <= now_s``, oldest first:
+    ``id, alert_id, event, sink, payload, attempts``."""
+    return store.rows("SELECT id, alert_id, event, sink, payload, attempts FROM outbox WHERE "
+                      "status = 'pending' AND next_attempt_at <= ? ORDER BY id LIMIT ?",
+                      (now_s, int(limit)))
+
+
+def record_failure(store: Store, delivery_id: int, attempts: int, status: str, next_at: str,
+                   error: str) -> None:
+    """A failed try: the attempt count, ``pending`` (retry at ``next_at``) or ``failed``, and
+    the error text."""
+    with store.atomic():
+        store.execute("UPDATE outbox SET attempts = ?, status = ?, next_attempt_at = ?,"
+                      " last_error = ? WHERE id = ?", (attempts, status, next_at, error, delivery_id))
+
+
+def record_delivered(store: Store, delivery_id: int, now_s: str) -> None:
+    """A delivered row: one more attempt, ``delivered`` at ``now_s``, no error."""
+    with store.atomic():
+        store.execute("UPDATE outbox SET attempts = attempts + 1, status = 'delivered', "
+                      "delivered_at = ?, last_error = NULL WHERE id = ?", (now_s, delivery_id))
+
+
+@accepts_path(readonly=False)
+def requeue_failed(store: Store, now: Any = None) -> int:
+    """Put every ``failed`` outbox row back to ``pending`` (attempts reset); returns how many."""
+    with store.atomic():
+        cur = store.execute("UPDATE outbox SET status = 'pending', attempts = 0, "
+                            "next_attempt_at = ? WHERE status = 'failed'", (wall_ts(now),))
+    return cur.rowcount
