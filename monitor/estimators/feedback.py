@@ -13,8 +13,9 @@ estimator's one-step prediction error (log scale) on the previous row. The stati
 same exact moment form as :mod:`monitor.estimators.iv_kernel`. Under randomized prices ``g = 0``.
 
 Verdict: ``feedback`` once ``|t| >= t_on`` (default 4: a two-sided p of 6e-5 at one look, so
-a year of daily looks rarely crosses it by chance) with ``n_eff >= min_n_eff``; back to
-``none`` when ``|t| < t_off`` (2). ``warming_up`` before enough rows.
+a year of daily looks rarely crosses it by chance) with ``n_eff >= min_n_eff`` (default 60:
+the surprises' autocorrelation, which gives the direction below, is still noisy at 30 while
+the estimator settles); back to ``none`` when ``|t| < t_off`` (2). ``warming_up`` before.
 
 Direction of the likely bias of the least-squares elasticity: the bias is
 ``cov(lp_t, u_t) / var(lp)`` with ``u`` the demand shock, and through the feedback
@@ -65,7 +66,7 @@ DIRECTIONS = {-1: "down", 0: "unclear", 1: "up"}
 
 DEFAULT_T_ON = 4.0
 DEFAULT_T_OFF = 2.0
-DEFAULT_MIN_N_EFF = 30.0
+DEFAULT_MIN_N_EFF = 60.0
 
 
 @njit(cache=True)
