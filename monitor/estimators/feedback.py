@@ -195,7 +195,7 @@ def bias_text(direction: int) -> str:
     """Plain words for the direction code (+1 up, -1 down, 0 unclear)."""
     return {1: "biased toward zero (demand looks less price-sensitive than it is)",
             -1: "biased away from zero (demand looks more price-sensitive than it is)",
-            0: "possibly biased (direction unclear)"}[int(direction)]
+            0: "biased (direction unclear so far)"}[int(direction)]
 
 
 def feedback_message(series: str, t: float, coef: float, direction: int) -> str:
