@@ -82,6 +82,9 @@ class ElasticityPoisson:
     band : {"hc", "classic"}
         ``hc``: the robust sandwich (default; valid under any variance); ``classic``: the
         quasi-Poisson variance ``phi A^-1`` (variance proportional to the mean).
+    exposure : str
+        Name of the exposure column in a log (``""``: none); the row path passes
+        ``log(exposure)`` as the offset. :meth:`learn_one` takes the exposure value itself.
     """
 
     model = "poisson"
@@ -89,7 +92,7 @@ class ElasticityPoisson:
     def __init__(self, forgetting: float = 0.99, controls: Sequence[str] = (),
                  log_controls: Sequence[str] = (), level: float = 0.95, min_n_eff: float = 10.0,
                  min_price_sd: float = 0.02, excitation_guard: bool = True,
-                 guard_forgetting: float = 0.8, band: str = "hc"):
+                 guard_forgetting: float = 0.8, band: str = "hc", exposure: str = ""):
         self.forgetting = _check_range("forgetting", forgetting, 0.0, 1.0, True, False)
         self.controls = tuple(controls)
         self.log_controls = tuple(log_controls)
@@ -103,6 +106,7 @@ class ElasticityPoisson:
             raise ValueError(f"band = {band!r}: must be one of hc, classic for the Poisson "
                              f"model (hac is not available for it)")
         self.band = band
+        self.exposure = str(exposure or "")
         self._band = K.BANDS[band]
         self._lags = 0
         self._specs: tuple[ControlSpec, ...] = parse_controls(self.controls, self.log_controls)
@@ -210,7 +214,8 @@ class ElasticityPoisson:
                 "log_controls": list(self.log_controls), "level": self.level,
                 "min_n_eff": self.min_n_eff, "min_price_sd": self.min_price_sd,
                 "excitation_guard": self.excitation_guard,
-                "guard_forgetting": self.guard_forgetting, "band": self.band}
+                "guard_forgetting": self.guard_forgetting, "band": self.band,
+                "exposure": self.exposure}
 
     def to_state(self) -> dict:
         return {"params": self._params(), "state": floats_to_json(self._state),

@@ -28,10 +28,16 @@ SECTIONS = {"estimator": ESTIMATOR_KEYS}
 def estimator_from_config(cfg):
     """The estimator prototype of ``[estimator] model`` (ElasticityRLS or ElasticityPoisson)
     from the section of a :class:`monitor.sections.Config` (the class's defaults for keys not
-    given), mapping ValueError to ConfigError. ``exposure`` names a data column and is read by
-    the row path, not by the estimator."""
-    params = {k: v for k, v in cfg.section("estimator").items() if k != "exposure"}
+    given), mapping ValueError to ConfigError. ``exposure`` (a column name) is kept on the
+    Poisson estimator for the row path."""
+    params = dict(cfg.section("estimator"))
     model = params.pop("model", "loglinear")
+    exposure = params.pop("exposure", "")
+    if model == "poisson":
+        params["exposure"] = exposure
+    elif exposure:
+        raise ConfigError(f"[estimator] exposure = {exposure!r}: an exposure column is used by "
+                          f"the Poisson model only (set model = \"poisson\")")
     try:
         return make_estimator(model, **params)
     except ValueError as exc:
