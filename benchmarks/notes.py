@@ -24,9 +24,14 @@ MEASURES = {
         "references compute less per observation than elmon (no interval, no status)."),
     "detection": (
         "**Estimator + detectors + rules.** `Pipeline.from_config(Config(), est).run(...)` over "
-        "the same kind of rows (estimate, slope statistic, level and slope charts, bounds, "
-        "sign flip, low variation, alert policy), against river's PageHinkley and ADWIN fed "
-        "the standardized innovations elmon's own charts see."),
+        "the same kind of rows (estimate, level and slope charts, bounds, sign flip, low "
+        "variation, alert policy), against river's PageHinkley and ADWIN fed the standardized "
+        "innovations elmon's own charts see. **Detection against the information bound** "
+        "(rows starting `detection:` and the section of that name): the change grid of "
+        "`simulators/change_grid.py` at ARL0 2,000 and 20,000 through the default pipeline, "
+        "beside Lorden's (1971) bound, the slope chart as it was before issue 12 "
+        "(`benchmarks/detection_old_slope.py`) and river's PageHinkley and ADWIN on the same "
+        "rows; each row shows the worst cell of its check."),
     "replay": (
         "**Replay.** What `elmon replay LOG --out DIR` runs (`monitor.replay.driver.replay`, "
         "chunks of 1M rows) on a generated CSV of 1,000 series x 10,000 hourly rows: read, "
@@ -60,6 +65,10 @@ MEASURES = {
 
 #: causes of misses seen when profiling, keyed by the start of the figure's name
 CAUSES = {
+    "detection:": (
+        "the cell named beside the figure is the worst of its check; the section 'Detection "
+        "against the information bound' has every cell side by side with the old slope chart "
+        "and river's detectors"),
     "estimator kernel, 2 parameters": (
         "the step computes far more than the RLS update: compare the bare compiled update of "
         "theta and P on the same rows (a reference row of this figure); the cost is in the "

@@ -92,10 +92,13 @@ def main(argv: list[str] | None = None) -> int:
     elapsed = time.perf_counter() - t_all
     info["load_end"] = os.getloadavg() if hasattr(os, "getloadavg") else None
     body = table(rows)
+    sections = getattr(ctx, "sections", [])     # whole tables a group adds (detection)
     doc = "\n".join([INTRO, "## Machine", "", machine_text(info, elapsed), "", "## Figures", "",
-                     body, "", _notes(rows), ""])
+                     body, "", *sections, _notes(rows), ""])
     print()
     print(body)
+    for sec in sections:
+        print("\n" + sec)
     if out is not None:
         out.write_text(doc)
         print(f"\nwrote {out}")

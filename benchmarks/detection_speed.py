@@ -1,0 +1,222 @@
+"""Speed of the pipeline (estimator + detectors + rules), against river's PageHinkley and ADWIN.
+
+Part of the ``detection`` group of ``make bench`` (:mod:`benchmarks.detection`; the detection
+quality grid is :mod:`benchmarks.detection_grid`).
+
+Rows: 10,000 invented series x 1,000 hourly steps in arrival order; every 10th series has its
+elasticity moved by -0.8 from step 600 (a step change pivoting at the base price). The pipeline
+is :meth:`monitor.pipeline.run.Pipeline.run` with the default ``[detectors]`` and ``[rules]``
+(the level and slope charts, sign flip, low variation, the alert policy) and ``[bounds] low =
+-3.5, high = -0.5``, forgetting 0.995; states fresh per run. Target (issue 8): >= 15M obs/s.
+
+References, on the first 20 series (20,000 rows, two of them changed), one detector per
+series, fed the standardized innovations z of elmon's own timed run (NaN while warming up
+skipped):
+
+- river ``PageHinkley(min_instances=30, delta=0.5, threshold=h, alpha=1, mode="both")`` with h
+  elmon's designed Page-Hinkley threshold; the check: elmon's streaming
+  :class:`monitor.detectors.PageHinkley` with the same parameters on the same values raises
+  alarms at the same indices;
+- river ``ADWIN()`` (defaults): a different test (adaptive windows on the mean); its alarm counts
+  on the changed and unchanged series are shown, not expected to match anything of elmon's.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from benchmarks.common import Context, Row, median, rate_row, share_note, speed_ratio, timed
+from benchmarks.data import panel
+
+
+LAM = 0.995
+CHANGE_AT, CHANGE_BY, EVERY = 600, -0.8, 10
+
+
+def _config(**sections):
+    from monitor.settings import validate
+
+    data = {"estimator": {"forgetting": LAM}, "bounds": {"low": -3.5, "high": -0.5}}
+    data.update(sections)
+    return validate(data, source="benchmark")
+
+
+#: every chart and rule switched off: what the pipeline step costs beyond the estimator anyway
+ALL_OFF = {"detectors": {"level_chart": "none", "slope_chart": "none"},
+           "rules": {"out_of_bounds": False, "sign_flip": False, "low_variation": False}}
+
+
+def _cpu_rate(pipe, p, ts, S) -> float:
+    """Observations per CPU-second of one pipeline pass (a warm-up pass first)."""
+    import time as _t
+
+    m = min(p.n, 5000)
+    pipe.run(p.sid[:m] % 5, p.X[:m], p.y[:m], n_series=5, ts=ts[:m])
+    st = pipe.new_states(S)
+    c = _t.process_time()
+    pipe.run(p.sid, p.X, p.y, n_series=S, states=st, ts=ts)
+    return p.n / max(_t.process_time() - c, 1e-9)
+
+
+def _z_streams(res, p, rows: np.ndarray) -> dict[int, np.ndarray]:
+    from monitor.estimators import kernel as K
+
+    z = res.out[rows, K.O_Z]
+    sid = p.sid[rows]
+    out = {}
+    for s in np.unique(sid):
+        v = z[sid == s]
+        out[int(s)] = v[np.isfinite(v)]
+    return out
+
+
+def _river_ph(streams, threshold: float):
+    from river.drift import PageHinkley
+
+    dets = {s: PageHinkley(min_instances=30, delta=0.5, threshold=threshold, alpha=1.0,
+                           mode="both") for s in streams}
+    lists = {s: v.tolist() for s, v in streams.items()}
+    alarms = {s: [] for s in streams}
+    t0 = time.perf_counter()
+    for s, vals in lists.items():
+        d = dets[s]
+        a = alarms[s]
+        for i, x in enumerate(vals):
+            d.update(x)
+            if d.drift_detected:
+                a.append(i)
+    return time.perf_counter() - t0, alarms
+
+
+def _elmon_ph(streams, threshold: float):
+    from monitor.detectors import PageHinkley
+
+    alarms = {s: [] for s in streams}
+    t0 = time.perf_counter()
+    for s, vals in streams.items():
+        d = PageHinkley(delta=0.5, threshold=threshold, alpha=1.0, min_instances=30)
+        a = alarms[s]
+        for i, x in enumerate(vals.tolist()):
+            if d.update(x).drift_detected:
+                a.append(i)
+    return time.perf_counter() - t0, alarms
+
+
+def _river_adwin(streams):
+    from river.drift import ADWIN
+
+    dets = {s: ADWIN() for s in streams}
+    lists = {s: v.tolist() for s, v in streams.items()}
+    counts = {s: 0 for s in streams}
+    t0 = time.perf_counter()
+    for s, vals in lists.items():
+        d = dets[s]
+        for x in vals:
+            d.update(x)
+            if d.drift_detected:
+                counts[s] += 1
+    return time.perf_counter() - t0, counts
+
+
+def _detection_summary(res, p) -> str:
+    ev = res.events
+    opened = ev[ev["action"] == "open"]
+    step = p.step[opened["row"].to_numpy()]
+    s = p.sid[opened["row"].to_numpy()]
+    kinds = opened["kind"].to_numpy()
+    ch = p.changed
+    ec = kinds == "elasticity_change"
+    hit = np.unique(s[ec & ch[s] & (step >= CHANGE_AT)])
+    false = np.unique(s[ec & ~ch[s]])
+    n_ch = int(ch.sum())
+    by_kind = {k: int((kinds == k).sum()) for k in np.unique(kinds)}
+    return (f"alerts opened {len(opened):,} ({', '.join(f'{k} {v:,}' for k, v in by_kind.items())}); "
+            f"elasticity_change opened after the change in {hit.size:,} of {n_ch:,} changed "
+            f"series, in {false.size:,} of {p.n_series - n_ch:,} unchanged ones (invented data)")
+
+
+def run(ctx: Context) -> list[Row]:
+    from monitor.estimators import ElasticityRLS, run_batch
+    from monitor.pipeline.run import Pipeline
+
+    S, T = ctx.size(10_000, 1_000), ctx.size(1_000, 800)
+    p = panel(S, T, seed=7, change_every=EVERY, change_at=CHANGE_AT, change_by=CHANGE_BY)
+    cfg = _config()
+    est = ElasticityRLS(forgetting=LAM)
+    pipe = Pipeline.from_config(cfg, est)
+    ts = (np.datetime64("2024-01-01T00:00:00", "ns").astype(np.int64)
+          + p.step * 3_600_000_000_000)
+    m = min(p.n, 5000)
+    pipe.run(p.sid[:m] % 5, p.X[:m], p.y[:m], n_series=5, ts=ts[:m])   # warm-up
+
+    times, shares, res = [], [], None
+    for _ in range(ctx.runs):
+        states = pipe.new_states(S)
+        t, res = timed(lambda: pipe.run(p.sid, p.X, p.y, n_series=S, states=states, ts=ts))
+        times.append(t)
+        shares.append(timed.cpu_share)
+    main = rate_row(f"estimator + detectors + rules (Pipeline.run), {S:,} series x {T:,} steps",
+                    p.n, times, target=15e6)
+    # the estimator alone on the same rows, for the detectors' share of the time
+    out = np.empty((p.n, 10))
+    run_batch(est, p.sid[:m] % 5, p.X[:m], p.y[:m])        # warm-up: load the compiled kernel
+    et = []
+    for _ in range(ctx.runs):
+        from monitor.estimators.batch import initial_states
+
+        st = initial_states(est, S)
+        t, _ = timed(lambda: run_batch(est, p.sid, p.X, p.y, states=st, out=out))
+        et.append(t)
+    est_rate = p.n / median(et)
+    # where the step's time goes: the same step with every chart and rule off, on 1M rows
+    q = panel(ctx.size(2_000, 500), 500, seed=9, change_every=EVERY, change_at=300,
+              change_by=CHANGE_BY)
+    qts = (np.datetime64("2024-01-01T00:00:00", "ns").astype(np.int64)
+           + q.step * 3_600_000_000_000)
+    on_rate = _cpu_rate(pipe, q, qts, q.n_series)
+    off_rate = _cpu_rate(Pipeline.from_config(_config(**ALL_OFF), est), q, qts, q.n_series)
+    main.check = (f"{_detection_summary(res, p)}; the estimator alone on the same rows: "
+                  f"{est_rate / 1e6:.1f}M obs/s; {share_note(shares, p.n, times)}; "
+                  f"state row {pipe.state_size} floats; on {q.n:,} rows, per CPU-second: "
+                  f"{on_rate / 1e6:.2f}M obs with the default detectors and rules, "
+                  f"{off_rate / 1e6:.2f}M with every chart and rule switched off")
+    rows = [main]
+
+    sub = np.flatnonzero(p.sid < 20)
+    streams = _z_streams(res, p, sub)
+    nz = sum(v.size for v in streams.values())
+    from monitor.detectors import PageHinkley as ElmonPH
+
+    h = ElmonPH(delta=0.5).threshold
+    rt, ra = [], None
+    for _ in range(ctx.runs):
+        t, ra = _river_ph(streams, h)
+        rt.append(t)
+    et_, ea = _elmon_ph(streams, h)
+    same = all(ra[s] == ea[s] for s in streams)
+    n_al = sum(len(v) for v in ra.values())
+    ref = rate_row(f"river PageHinkley(delta=0.5, threshold={h:.2f}, mode='both') on z of the "
+                   f"first 20 series ({nz:,} values)", nz, rt, reference=True)
+    ref.ratio = speed_ratio(main.value, ref.value)
+    ref.check = (f"elmon's streaming PageHinkley, same parameters and values: alarm indices "
+                 f"{'identical' if same else '**DIFFER**'} ({n_al} alarms in river, "
+                 f"{sum(len(v) for v in ea.values())} in elmon); elmon's streaming class "
+                 f"{nz / et_ / 1e3:.0f}k values/s; the ratio compares elmon's whole pipeline "
+                 f"with river's detector alone")
+    rows.append(ref)
+
+    at, counts = [], None
+    for _ in range(ctx.runs):
+        t, counts = _river_adwin(streams)
+        at.append(t)
+    ch = [s for s in streams if p.changed[s]]
+    un = [s for s in streams if not p.changed[s]]
+    ref = rate_row(f"river ADWIN() on the same {nz:,} values", nz, at, reference=True)
+    ref.ratio = speed_ratio(main.value, ref.value)
+    ref.check = (f"a different test, not expected to agree: {sum(counts[s] for s in ch)} alarms "
+                 f"on the {len(ch)} changed series, {sum(counts[s] for s in un)} on the "
+                 f"{len(un)} unchanged")
+    rows.append(ref)
+    return rows
