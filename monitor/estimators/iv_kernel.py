@@ -122,7 +122,7 @@ def _xg(i):
     return i + 1
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def iv_step(st, r, y, k, nq, lam, min_price_sd, min_neff, f_min, tq, out, w):
     """One IV update of state ``st`` in place; writes the output row ``out`` (>= K.NOUT).
 
@@ -254,7 +254,7 @@ def iv_step(st, r, y, k, nq, lam, min_price_sd, min_neff, f_min, tq, out, w):
         out[K.O_STATUS] = K.ST_WARMING_UP
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _solve(st, k, nq, m, ng, nz2, o_cov, o_sc, o_g, o_q, g, Gf, Szz, L, Sinv, M, V, T, Pi, MPi,
            A, LA, Ainv, B, C, h, c, d, pif, Sx, Lx, Sxt):
     """2SLS estimate, its HC0 covariance (before the HC1 factor) and the effective F from the moments in ``st``.
@@ -409,7 +409,7 @@ def iv_discount(st, k, nq, f):
         st[i] *= f2
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def iv_run(state, sid, R, y, k, nq, lam, min_price_sd, min_neff, f_min, tq, out, w):
     """Run :func:`iv_step` over rows in order; row j updates series ``sid[j]``.
 
