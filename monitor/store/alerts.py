@@ -34,7 +34,7 @@ from monitor.store.core import Store, accepts_path
 
 #: Alert kinds the rules raise (other lower-case names are accepted for new rules).
 ALERT_KINDS = ("out_of_bounds", "elasticity_change", "level_shift", "sign_flip",
-               "low_variation", "stale")
+               "low_variation", "stale", "group_change")
 SEVERITIES = ("info", "warning", "critical")
 ALERT_STATES = ("open", "acknowledged", "resolved")
 #: The name written in ``who`` for actions the service takes by itself.
@@ -98,9 +98,11 @@ def _notify(store: Store, alert: dict, event: str, now: str, ts: str | None = No
                if isinstance(alert["details"], str) else alert["details"],
                "who": who, "note": note}
     body = to_json(payload, finite=True)
+    hold = store.notify_hold(alert, event) if store.notify_hold is not None else 0.0
+    due = wall_ts(parse_ts(now) + pd.Timedelta(seconds=float(hold))) if hold else now
     store.conn.executemany(
         "INSERT INTO outbox (alert_id, event, sink, payload, next_attempt_at, created_at) "
-        "VALUES (?, ?, ?, ?, ?, ?)", [(alert["id"], event, s, body, now, now) for s in store.sinks])
+        "VALUES (?, ?, ?, ?, ?, ?)", [(alert["id"], event, s, body, due, now) for s in store.sinks])
     return len(store.sinks)
 
 

@@ -70,6 +70,9 @@ class Store:
         self.db = sqlite_utils.Database(conn, execute_plugins=False, recursive_triggers=False)
         self.sinks: tuple[str, ...] = ()
         self.notify_events: tuple[str, ...] = ("opened", "acknowledged", "resolved", "reminded")
+        #: optional ``(alert, event) -> seconds``: delay of that event's outbox rows (group
+        #: alerts hold member notifications, :func:`monitor.store.groups.member_hold`)
+        self.notify_hold = None
         self.applied_on_open: list[int] = []
         self._lock = threading.RLock()
 

@@ -138,11 +138,33 @@ _SPARKLINES = [
     _backfill_sparklines,
 ]
 
+_GROUPS = [
+    # issue 19: attributes of series (key parts of composite ids, or an attributes file)
+    """CREATE TABLE series_attributes (
+        series TEXT NOT NULL, name TEXT NOT NULL, value TEXT NOT NULL,
+        source TEXT NOT NULL CHECK (source IN ('key', 'file')),
+        updated_at TEXT NOT NULL,
+        PRIMARY KEY (series, name)) WITHOUT ROWID""",
+    "CREATE INDEX series_attributes_name ON series_attributes (name, value)",
+    # a member alert folded under a group_change alert (one notification for the group)
+    """CREATE TABLE alert_members (
+        alert_id INTEGER PRIMARY KEY REFERENCES alerts (id),
+        group_alert_id INTEGER NOT NULL REFERENCES alerts (id))""",
+    "CREATE INDEX alert_members_group ON alert_members (group_alert_id)",
+    # the pooled (partially pooled) newest estimate and the series' group, kept by
+    # monitor.store.groups.update_pooled after each batch; NULL without groups
+    "ALTER TABLE latest_estimates ADD COLUMN beta_pooled REAL",
+    "ALTER TABLE latest_estimates ADD COLUMN beta_pooled_se REAL",
+    'ALTER TABLE latest_estimates ADD COLUMN "group" TEXT',
+]
+
+
 #: Ordered migrations: (id, name, steps). A step is SQL text or a callable taking the sqlite3
 #: connection (run inside the migration's transaction). Append only.
 MIGRATIONS: list[tuple[int, str, list]] = [
     (1, "initial schema", _INITIAL),
     (2, "sparkline cache", _SPARKLINES),
+    (3, "series groups", _GROUPS),
 ]
 
 #: The schema version this code expects (the id of the last migration).
@@ -152,4 +174,4 @@ SCHEMA_VERSION = MIGRATIONS[-1][0]
 #: latest_estimates and sparklines).
 TABLES = ("series", "observations", "rejects", "estimates", "latest_estimates", "sparklines",
           "alerts", "alert_events", "checkpoints", "source_offsets", "outbox", "silences",
-          "migrations")
+          "series_attributes", "alert_members", "migrations")
