@@ -1,7 +1,8 @@
 """elmon dashboard entry point: ``elmon dashboard --db PATH`` runs
 ``streamlit run dashboard/app.py -- --db PATH``.
 
-Pages (one module each under ``dashboard/views/``): Overview, Series detail, Alerts, Replay.
+Pages (one module each under ``dashboard/views/``): Overview, Series detail, Alerts, Replay,
+Groups.
 Every page shows the caution line first; the sidebar holds the live-refresh controls.
 """
 
@@ -25,6 +26,8 @@ pages = [
             url_path="alerts"),
     st.Page(HERE / "views" / "replay.py", title="Replay", icon=":material/history:",
             url_path="replay"),
+    st.Page(HERE / "views" / "groups.py", title="Groups", icon=":material/workspaces:",
+            url_path="groups"),
 ]
 page = st.navigation(pages)
 ui.sidebar()

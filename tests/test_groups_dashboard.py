@@ -53,3 +53,60 @@ def test_charts_carry_both_estimates_and_the_group_mean():
     dist = group_shaping.distribution_chart(m, summary)
     assert dist is not None
     assert group_shaping.distribution_chart(m.assign(beta=np.nan), summary) is None
+
+
+APP = Path(__file__).resolve().parents[1] / "dashboard" / "app.py"
+
+
+@pytest.fixture()
+def grouped_store(tmp_path, monkeypatch):
+    """A store with 24 composite-key series in 3 stores (invented names), attributes and
+    latest estimates written through the store API."""
+    from monitor import store as mstore
+    from monitor.groups.keys import key_attributes
+    from monitor.store import groups as sgroups
+
+    rng = np.random.default_rng(5)
+    names = [f"biscuit-{i}/{s}" for s in ("elm-cross", "north-quay", "mill-lane")
+             for i in range(8)]
+    ts = pd.Timestamp("2024-03-01T00:00:00Z")
+    beta = np.array([-1.0 - 0.5 * (k // 8) for k in range(24)]) + rng.normal(0, 0.2, 24)
+    beta[5] = 1.5                                     # one series far from its group
+    se = rng.uniform(0.1, 0.3, 24)
+    est = pd.DataFrame({"series": names, "ts": ts, "beta": beta, "beta_se": se,
+                        "beta_lo": beta - 2 * se, "beta_hi": beta + 2 * se, "n_eff": 50.0,
+                        "status": "ok", "intercept": 3.0, "resid_sd": 0.1, "innovation": 0.0,
+                        "z": 0.0})
+    obs = pd.DataFrame({"series": names, "ts": ts, "price": 3.0, "quantity": 10.0})
+    path = tmp_path / "g.sqlite"
+    with mstore.Store.open(path) as st:
+        mstore.write_batch(st, observations=obs, estimates=est, latest_estimates=est)
+        sgroups.write_attributes(st, key_attributes(names, ["product", "store"]))
+        sgroups.update_pooled(st, ["store"])
+    monkeypatch.setenv("ELMON_DB", str(path))
+    monkeypatch.delenv("ELMON_TRUTH", raising=False)
+    return names
+
+
+def test_groups_page_under_apptest(grouped_store):
+    from streamlit.testing.v1 import AppTest
+
+    at = AppTest.from_file(str(APP), default_timeout=30)
+    at.run()
+    at.switch_page("views/groups.py")
+    at.run()
+    assert not at.exception, [e.value for e in at.exception]
+    assert not at.error, [e.value for e in at.error]
+    assert at.title[0].value == "Groups"
+    at.multiselect(key="gr_by").set_value(["store"]).run()
+    groups = at.dataframe[0].value
+    assert sorted(groups["group"]) == ["elm-cross", "mill-lane", "north-quay"]
+    assert groups["n_series"].tolist() == [8, 8, 8]
+    at.selectbox(key="gr_group").set_value("elm-cross").run()
+    members = at.dataframe[1].value
+    assert len(members) == 8 and members["beta"].is_monotonic_increasing
+    assert bool(members.set_index("series").loc["biscuit-5/elm-cross", "differs"])
+    specs = [json.loads(c.proto.spec) for c in at.get("vega_lite_chart")]
+    assert len(specs) == 2
+    assert any("pooled estimate" in json.dumps(s) for s in specs)
+    assert any("Pooled b" in c.value for c in at.caption)
