@@ -26,6 +26,8 @@ pages = [
             url_path="alerts"),
     st.Page(HERE / "views" / "replay.py", title="Replay", icon=":material/history:",
             url_path="replay"),
+    st.Page(HERE / "views" / "experiments.py", title="Experiments", icon=":material/science:",
+            url_path="experiments"),
     st.Page(HERE / "views" / "groups.py", title="Groups", icon=":material/workspaces:",
             url_path="groups"),
 ]

@@ -23,6 +23,7 @@ from simulators.baddata import BAD_KINDS, baddata
 from simulators.base import (BAD_COLUMNS, CHANGE_COLUMNS, CHANGE_KINDS, PATH_COLUMNS,
                              Simulation, truth_companions, write_outputs, write_truth)
 from simulators.flat import flat
+from simulators.experiment import experiment, experiment_offladder
 from simulators.live import LiveAppender
 from simulators.load import load
 from simulators.observational import observational
@@ -43,11 +44,17 @@ SCENARIOS: dict[str, tuple[Callable[..., Simulation], str]] = {
                    "one, 2 series x 365 days"),
     "baddata": (baddata, "a clean daily log mixed with every kind of bad row, each listed in "
                          "TRUTH_bad.csv (ingest tests); CSV only"),
+    "experiment": (experiment, "randomized price-ladder test with known b (-1.6, constant), 6 "
+                               "series x 28 baseline + 150 test days; meta holds its "
+                               "[experiments] table"),
+    "experiment_offladder": (experiment_offladder, "the same test with prices drifting off the "
+                                                   "ladder from 40% of the way in (compromised)"),
 }
 
 __all__ = ["SCENARIOS", "Simulation", "LiveAppender", "simulate", "write_outputs", "write_truth",
            "truth_companions", "CHANGE_KINDS", "CHANGE_COLUMNS", "PATH_COLUMNS", "BAD_COLUMNS",
-           "BAD_KINDS", "retail", "load", "observational", "flat", "baddata"]
+           "BAD_KINDS", "retail", "load", "observational", "flat", "baddata",
+           "experiment", "experiment_offladder"]
 
 
 def simulate(name: str, seed: int = 0, n_series: int | None = None, length: int | None = None,

@@ -25,6 +25,7 @@ COMMAND_MODULES = (
     "monitor.cli.tune_cmd",
     "monitor.cli.dashboard_cmd",
     "monitor.cli.demo_cmd",
+    "monitor.cli.experiment_cmd",
 )
 
 

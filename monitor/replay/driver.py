@@ -244,6 +244,10 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
         frames = pd.concat(acc.report, ignore_index=True) if acc.report else None
         write_replay_report(report, summary, frames, alerts, opened, truth_df, scores, truth)
         summary["report"] = str(report)
+    # issue 18: experiments.json when [experiments] is configured (nothing done otherwise)
+    from monitor.experiments.sources import write_experiments_for_log
+
+    write_experiments_for_log(log, config, out_dir, setup.now_ns)
     summary["timing"]["wall_s"] = time.perf_counter() - t0
     summary["timing"]["rows_per_s"] = summary["rows"] / summary["timing"]["wall_s"]
     (out_dir / "summary.json").write_text(json.dumps(summary, indent=2, sort_keys=True))

@@ -76,7 +76,7 @@ from monitor.store.core import (DEFAULT_BUSY_TIMEOUT, Store, applied_migrations,
 from monitor.store.queries import (alert_events, latest_estimates, list_alerts, list_outbox,
                                    list_rejects, list_silences, open_alerts, series_history,
                                    series_observations, source_status, sparkline_data,
-                                   store_summary)
+                                   store_summary, experiment_observations)
 from monitor.store.schema import MIGRATIONS, SCHEMA_VERSION, SPARK_KEEP, TABLES
 
 
@@ -93,6 +93,6 @@ __all__ = [
     "active_silence", "due_reminders", "record_reminder", "send_reminders", "last_resolved",
     "get_alert", "apply_alert_change",
     "latest_estimates", "series_history", "series_observations", "list_alerts", "open_alerts",
-    "alert_events", "source_status", "store_summary", "list_rejects", "sparkline_data",
+    "alert_events", "source_status", "store_summary", "experiment_observations", "list_rejects", "sparkline_data",
     "list_silences", "list_outbox",
 ]

@@ -254,3 +254,25 @@ def list_outbox(store: Store, status: str | None = None, limit: int | None = Non
         params.append(int(limit))
     return _parse(store.frame(sql, params, ts_columns=("next_attempt_at", "delivered_at",
                                                        "created_at")), "payload")
+
+
+@accepts_path(readonly=True)
+def experiment_observations(store: Store, patterns: Iterable[str], start: Any = None,
+                            end: Any = None) -> pd.DataFrame:
+    """Observations of the series whose id matches any glob pattern (SQLite ``GLOB``: ``*``,
+    ``?``, ``[...]``), ``start`` / ``end`` inclusive, ordered by ``ts`` then ``series``.
+
+    Columns: ``series, ts, price, quantity, controls`` (controls parsed). The matching series
+    come from the ``series`` table; their rows are read on the ``(series, ts)`` index, so an
+    experiment's window costs its own rows, not the whole history (issue 18).
+    """
+    pats = [str(p) for p in patterns]
+    if not pats:
+        return pd.DataFrame(columns=["series", "ts", "price", "quantity", "controls"])
+    lo, hi = _bounds(start, end)
+    match = " OR ".join("series GLOB ?" for _ in pats)
+    df = store.frame("SELECT series, ts, price, quantity, controls FROM observations"
+                     f" WHERE series IN (SELECT series FROM series WHERE {match})"
+                     " AND ts >= ? AND ts <= ? ORDER BY ts, series",
+                     (*pats, lo, hi), ts_columns=("ts",))
+    return _parse(df, "controls")
