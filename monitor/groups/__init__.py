@@ -11,16 +11,6 @@
 - :mod:`monitor.groups.settings`: the ``[series]`` configuration section.
 
 Pure computations: no SQL, files only in :func:`~monitor.groups.attributes.read_attributes`.
+Import from the defining modules (this file imports nothing, so the row path's use of
+:mod:`monitor.groups.keys` does not load scipy).
 """
-
-from monitor.groups.attributes import group_labels, merge_attributes, read_attributes
-from monitor.groups.grouped import GROUP_KIND, GroupAlertSettings, plan_group_alerts
-from monitor.groups.keys import SEPARATOR, compose_series, join_key, key_attributes, split_key
-from monitor.groups.pooling import bh_reject, dl_tau2, pool_group, pool_snapshot
-from monitor.groups.settings import SERIES_SECTION, GroupSettings, group_settings
-from monitor.groups.stream import pooled_columns
-
-__all__ = ["GROUP_KIND", "SEPARATOR", "SERIES_SECTION", "GroupAlertSettings", "GroupSettings",
-           "bh_reject", "compose_series", "dl_tau2", "group_labels", "group_settings",
-           "join_key", "key_attributes", "merge_attributes", "plan_group_alerts",
-           "pool_group", "pool_snapshot", "pooled_columns", "read_attributes", "split_key"]

@@ -27,6 +27,7 @@ import pandas as pd
 from numba import njit
 
 from monitor.errors import ConfigError, SourceError
+from monitor.groups.keys import EMPTY_PART_RULE, compose_series
 
 
 REQUIRED = ("series", "ts", "price", "quantity")
@@ -44,6 +45,7 @@ class ValidationSettings:
     allowed_lateness_s: float = 0.0
     max_future_s: float = 3600.0
     unit_ratio: float = 50.0
+    key: tuple = ()                        # [series] key: 2+ columns make a composite id
 
     def __post_init__(self):
         if self.zero_policy not in ("reject", "skip"):
@@ -67,7 +69,8 @@ SECTIONS = {"validation": VALIDATION_KEYS}
 def validation_from_config(cfg) -> ValidationSettings:
     """The validation settings of ``[validation]`` (the dataclass's defaults for keys not
     given)."""
-    return ValidationSettings(**cfg.section("validation"))
+    key = tuple(cfg.section("series").get("key") or ())
+    return ValidationSettings(**cfg.section("validation"), key=key)
 
 
 @dataclass
@@ -270,6 +273,10 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         raise ValueError(f"order_by = {order_by!r}: must be 'time' or 'arrival'")
     settings = settings or ValidationSettings()
     gate = gate if gate is not None else SeriesGate()
+    keys = None
+    if len(settings.key) > 1:     # composite series id (monitor.groups.keys), blank parts flagged
+        keys = compose_series(frame, settings.key)
+        frame = frame.assign(series=keys.series.to_numpy(dtype=object))
     names = list(REQUIRED) + list(controls) + list(log_controls)
     missing = [c for c in names if c not in frame.columns]
     if missing:
@@ -287,6 +294,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         flagged[m] = True
 
     series = frame["series"]
+    for col in (settings.key if keys is not None else ()):
+        flag(keys.blank[col], col, EMPTY_PART_RULE)
     flag(_is_blank(series), "series", "empty field")
     ts = parse_timestamps(frame["ts"])
     nat = np.iinfo(np.int64).min
