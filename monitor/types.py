@@ -28,6 +28,7 @@ class Status(IntEnum):
     LOW_VARIATION = 2
     OUT_OF_BOUNDS = 3
     CHANGED = 4
+    WEAK_INSTRUMENT = 5
 
     @property
     def label(self) -> str:
@@ -38,7 +39,8 @@ class Status(IntEnum):
         return cls(STATUS_LABELS.index(label))
 
 
-STATUS_LABELS = ("warming_up", "ok", "low_variation", "out_of_bounds", "changed")
+STATUS_LABELS = ("warming_up", "ok", "low_variation", "out_of_bounds", "changed",
+                 "weak_instrument")
 
 
 @dataclass(frozen=True)

@@ -18,11 +18,12 @@ from __future__ import annotations
 from numba import njit
 
 from monitor.estimators import kernel as K
+from monitor.estimators.iv_kernel import DEFAULT_F_MIN, iv_discount, iv_step, work_size_bound
 from monitor.estimators.poisson_kernel import (poisson_discount, poisson_state_size, poisson_step,
                                                poisson_work_size)
 
-MODEL_LOGLINEAR, MODEL_POISSON = 0, 1
-MODELS = {"loglinear": MODEL_LOGLINEAR, "poisson": MODEL_POISSON}
+MODEL_LOGLINEAR, MODEL_POISSON, MODEL_IV = 0, 1, 2
+MODELS = {"loglinear": MODEL_LOGLINEAR, "poisson": MODEL_POISSON, "iv": MODEL_IV}
 MODEL_NAMES = {v: k for k, v in MODELS.items()}
 
 
@@ -54,7 +55,7 @@ def state_size(model, k: int, band="hc", lags: int = 4) -> int:
 
 
 def work_size(model, k: int) -> int:
-    return max(K.work_size(k), poisson_work_size(k))
+    return max(K.work_size(k), poisson_work_size(k), work_size_bound(k))
 
 
 @njit(cache=True, inline="always")
@@ -64,6 +65,9 @@ def estimator_step(model, st, x, y, off, k, band, lags, lam, guard, guard_lam, m
     if model == MODEL_POISSON:
         poisson_step(st, x, y, off, k, band, lam, guard, guard_lam, min_price_sd, min_neff, tq,
                      out, w)
+    elif model == MODEL_IV:
+        # instruments (monitor.estimators.iv): k is the widened row's width, lags the count
+        iv_step(st, x, y, k - lags, lags, lam, min_price_sd, min_neff, DEFAULT_F_MIN, tq, out, w)
     else:
         K.rls_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq,
                    out, w)
@@ -75,6 +79,8 @@ def estimator_discount(model, st, k, band, lags, f):
     :func:`monitor.estimators.kernel.discount`)."""
     if model == MODEL_POISSON:
         poisson_discount(st, k, f)
+    elif model == MODEL_IV:
+        iv_discount(st, k - lags, lags, f)
     else:
         K.discount(st, k, band, lags, f)
 

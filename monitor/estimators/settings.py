@@ -5,12 +5,14 @@ Keys (defaults in brackets): model ["loglinear"] or "poisson"; band ["hc"], "hac
 "classic"; hac_lags [4]; exposure [""]: name of the exposure column (opening hours, customers,
 connected meters; Poisson model); forgetting [0.99], controls [[]], log_controls [[]],
 level [0.95], prior_mean [0.0], prior_sd [none: no prior], min_n_eff [10.0],
-min_price_sd [0.02], excitation_guard [true], guard_forgetting [0.8].
+min_price_sd [0.02], excitation_guard [true], guard_forgetting [0.8]; instruments [[]] and
+log_instruments [[]]: instrument columns, entered as given / in logs (recursive 2SLS,
+:mod:`monitor.estimators.iv`; the prior and excitation-guard keys do not apply to it).
 """
 
 from __future__ import annotations
 
-from monitor.errors import ConfigError
+from monitor.errors import ConfigError, ValidationError
 from monitor.estimators.dispatch import make_estimator
 
 
@@ -20,7 +22,8 @@ ESTIMATOR_KEYS = {"model": (str, "loglinear"), "band": (str, "hc"), "hac_lags": 
                   "log_controls": (list, []), "level": ((int, float), 0.95),
                   "prior_mean": ((int, float), 0.0), "prior_sd": ((int, float), None),
                   "min_n_eff": ((int, float), 10.0), "min_price_sd": ((int, float), 0.02),
-                  "excitation_guard": (bool, True), "guard_forgetting": ((int, float), 0.8)}
+                  "excitation_guard": (bool, True), "guard_forgetting": ((int, float), 0.8),
+                  "instruments": (list, []), "log_instruments": (list, [])}
 #: the sections this module owns, for monitor.settings to compose
 SECTIONS = {"estimator": ESTIMATOR_KEYS}
 
@@ -32,6 +35,19 @@ def estimator_from_config(cfg):
     Poisson estimator for the row path."""
     params = dict(cfg.section("estimator"))
     model = params.pop("model", "loglinear")
+    instruments = params.pop("instruments", None) or []
+    log_instruments = params.pop("log_instruments", None) or []
+    if instruments or log_instruments:          # recursive 2SLS (issue 17)
+        from monitor.estimators.iv import iv_from_settings
+
+        if model != "loglinear":
+            raise ConfigError(f"[estimator] instruments need model = 'loglinear' (2SLS on "
+                              f"log q), not {model!r}")
+        try:
+            return iv_from_settings({**params, "instruments": instruments,
+                                     "log_instruments": log_instruments})
+        except (ValueError, ValidationError) as exc:
+            raise ConfigError(f"[estimator] {exc}") from None
     exposure = params.pop("exposure", "")
     if model == "poisson":
         params["exposure"] = exposure

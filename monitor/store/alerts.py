@@ -34,7 +34,7 @@ from monitor.store.core import Store, accepts_path
 
 #: Alert kinds the rules raise (other lower-case names are accepted for new rules).
 ALERT_KINDS = ("out_of_bounds", "elasticity_change", "level_shift", "sign_flip",
-               "low_variation", "stale", "group_change")
+               "low_variation", "stale", "group_change", "price_feedback")
 SEVERITIES = ("info", "warning", "critical")
 ALERT_STATES = ("open", "acknowledged", "resolved")
 #: The name written in ``who`` for actions the service takes by itself.
