@@ -147,11 +147,18 @@ def _open(store: Store, series: str, kind: str, ts: Any, beta: Any, beta_lo: Any
             return "unchanged", int(existing)
         if _in_cooldown(store, series, kind, ts, now, cooldown):
             return "unchanged", None
+        d = details if isinstance(details, dict) else {}
+        size = d.get("beta_change", d.get("level_shift_log"))
         cur = store.conn.execute(
             "INSERT INTO alerts (series, kind, severity, state, opened_ts, opened_at, updated_at,"
-            " beta, beta_lo, beta_hi, message, details) VALUES (?, ?, ?, 'open', ?, ?, ?, ?, ?, ?,"
-            " ?, ?)", (series, kind, severity, ts, now, now, _num(beta), _num(beta_lo),
-                       _num(beta_hi), str(message), to_json(details, finite=True)))
+            " beta, beta_lo, beta_hi, message, details, change_ts, beta_before, beta_before_lo,"
+            " beta_before_hi, beta_after, beta_after_lo, beta_after_hi, size) VALUES (?, ?, ?,"
+            " 'open', ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (series, kind, severity, ts, now, now, _num(beta), _num(beta_lo), _num(beta_hi),
+             str(message), to_json(details, finite=True), d.get("change_ts"),
+             *[_num(d.get(c)) for c in ("beta_before", "beta_before_lo", "beta_before_hi",
+                                        "beta_after", "beta_after_lo", "beta_after_hi")],
+             _num(size)))
         alert_id = int(cur.lastrowid)
         _event(store, alert_id, "opened", now, ts=ts, who=SYSTEM_WHO)
         quiet = active_silence(store, series, kind, now)

@@ -159,12 +159,23 @@ _GROUPS = [
 ]
 
 
+_CHANGE_COLUMNS = [
+    # issue 12: a change alert's estimated change time, b before and after it with intervals,
+    # the size of the change; the expected delay of the newest estimate of each series
+    "ALTER TABLE alerts ADD COLUMN change_ts TEXT",
+    *[f"ALTER TABLE alerts ADD COLUMN {c} REAL" for c in (
+        "beta_before", "beta_before_lo", "beta_before_hi", "beta_after", "beta_after_lo",
+        "beta_after_hi", "size")],
+    "ALTER TABLE latest_estimates ADD COLUMN delay50_obs REAL",
+]
+
 #: Ordered migrations: (id, name, steps). A step is SQL text or a callable taking the sqlite3
 #: connection (run inside the migration's transaction). Append only.
 MIGRATIONS: list[tuple[int, str, list]] = [
     (1, "initial schema", _INITIAL),
     (2, "sparkline cache", _SPARKLINES),
     (3, "series groups", _GROUPS),
+    (4, "change alert columns", _CHANGE_COLUMNS),
 ]
 
 #: The schema version this code expects (the id of the last migration).
