@@ -274,3 +274,13 @@ def test_details_json_has_no_nan_and_one_series_has_no_spread():
                                                     "end": "2024-02-20"}))
     assert flat.summary["verdict"] == "stalled" and flat.summary["b"] is None
     json.dumps(flat.to_json(details=True), allow_nan=False)
+
+
+def test_missing_control_is_named_and_empty_window_needs_none():
+    sim = experiment(seed=0, n_series=2, length=20)
+    plan = plan_from_config("t", sim.meta["experiment"])
+    with pytest.raises(ConfigError, match="control 'promo': not a column"):
+        evaluate(sim.log, plan, controls=["promo"])
+    later = plan_from_config("t", {"series": ["*"], "start": "2030-01-01"})
+    assert evaluate(sim.log[["series", "ts", "price", "quantity"]], later,
+                    controls=["weekend"]).summary["verdict"] == "collecting"

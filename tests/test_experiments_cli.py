@@ -145,3 +145,16 @@ def test_dashboard_page_shows_verdict_bands_and_health(clean, monkeypatch):
     assert metrics["Half-width / target"].endswith("/ 0.1")
     assert len(at.get("vega_lite_chart")) == 2
     assert "Randomize" in at.warning[0].value
+
+
+def test_experiments_page_is_in_the_dashboard_navigation(clean, monkeypatch):
+    from streamlit.testing.v1 import AppTest
+
+    monkeypatch.setenv("ELMON_DB", clean["db"])
+    monkeypatch.setenv("ELMON_CONFIG", clean["config"])
+    at = AppTest.from_file(str(ROOT / "dashboard" / "app.py"), default_timeout=60).run()
+    at.switch_page("views/experiments.py").run()
+    assert not at.exception, [e.value for e in at.exception]
+    assert at.title[0].value == "Price experiments"
+    # the dashboard's own caution line sits above the page's experiment cautions
+    assert any("not decisions" in i.value for i in at.info)

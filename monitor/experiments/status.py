@@ -25,6 +25,7 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
+from monitor.errors import ConfigError
 from monitor.experiments import health as mhealth
 from monitor.experiments.heterogeneity import heterogeneity
 from monitor.experiments.plan import ExperimentPlan
@@ -164,13 +165,14 @@ def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] 
     notes: list[str] = []
     alpha = 1.0 - plan.level
     rows = select_rows(frame, plan)
-    for name in list(controls) + list(log_controls):
-        if name not in rows.columns:
-            from monitor.errors import ConfigError
-            raise ConfigError(f"control {name!r}: not a column of the observations "
-                              f"(columns: {', '.join(map(str, rows.columns))})")
     base = rows[rows["ts"] < plan.start]
     test = rows[rows["ts"] >= plan.start].reset_index(drop=True)
+    if not len(test):
+        controls, log_controls = (), ()     # nothing to check yet
+    for name in list(controls) + list(log_controls):
+        if name not in test.columns:
+            raise ConfigError(f"control {name!r}: not a column of the observations "
+                              f"(columns: {', '.join(map(str, test.columns))})")
     z = _controls(test, controls, log_controls)
     with np.errstate(invalid="ignore", divide="ignore"):
         logp = np.log(test["price"].to_numpy(np.float64))
