@@ -14,6 +14,7 @@ EXAMPLE = """example:
   elmon replay sales.csv --out replay-out/ --forgetting 0.98 --control promo
   elmon replay sales.csv --out out/ --bounds -4 -0.3 --arl0 50000
   elmon replay load.parquet --out out/ --log-control temperature --config elmon.toml
+  elmon replay shop.csv --out out/ --control weekend --instrument unit_cost
   elmon replay retail.csv --out out/ --truth retail_truth.csv --report out/report.html
   elmon replay big.parquet --out out/ --sample-every 24 --engine dask --scheduler tcp://10.0.0.5:8786
 """
@@ -28,6 +29,9 @@ def add_common_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--log-control", action="append", default=None, metavar="NAME",
                    help="a control column entered in logs (repeatable)")
     p.add_argument("--level", type=float, help="confidence level of the band (default 0.95)")
+    p.add_argument("--instrument", action="append", metavar="NAME",
+                   help="instrument column: moves the price, not demand (a cost, a tax, a "
+                        "randomized price assignment); repeatable; estimates by recursive 2SLS")
     p.add_argument("--model", choices=["loglinear", "poisson"],
                    help="estimator: log-log least squares (default) or Poisson pseudo-maximum "
                         "likelihood (counts, zeros kept as data)")
@@ -85,7 +89,8 @@ def config_from_args(args) -> "object":
     cfg = cfg.with_overrides("estimator", forgetting=args.forgetting, controls=args.control,
                              log_controls=args.log_control, level=args.level,
                              model=getattr(args, "model", None), band=getattr(args, "band", None),
-                             exposure=getattr(args, "exposure_col", None))
+                             exposure=getattr(args, "exposure_col", None),
+                             instruments=getattr(args, "instrument", None))
     cfg = cfg.with_overrides("validation", zero_policy=args.zero_policy)
     cfg = cfg.with_overrides("columns", series=args.series_col, ts=args.ts_col,
                              price=args.price_col, quantity=args.quantity_col)

@@ -107,7 +107,7 @@ def details(kind: str, action: str, r: np.ndarray) -> dict:
     return d
 
 
-def message(kind: str, action: str, series: str, r: np.ndarray) -> str:
+def message(kind: str, action: str, series: str, r: np.ndarray, causes: str = "") -> str:
     """The text of one event record, for a person who has to act on it."""
     now = _band(r[EV_BETA], r[EV_LO], r[EV_HI])
     before = _band(r[EV_OLD_B], r[EV_OLD_LO], r[EV_OLD_HI])
@@ -141,8 +141,8 @@ def message(kind: str, action: str, series: str, r: np.ndarray) -> str:
     if kind == "sign_flip":
         return (f"{series}: the elasticity is confidently positive, {now}, since {since} "
                 f"(last non-positive: {before}): higher prices with higher sales usually mean "
-                "bad data (units, a broken price feed, a mislabelled series) or a broken price "
-                "test; check the data before using this estimate.")
+                + (causes or "bad data (units, a broken price feed, a mislabelled series) or a "
+                   "broken price test") + "; check the data before using this estimate.")
     if kind == "low_variation":
         return (f"{series}: prices have barely varied since {since} (sd of log price "
                 f"{100.0 * r[EV_SIZE]:.1f}% < {100.0 * r[EV_EXTRA]:.1f}%); the elasticity "
@@ -152,8 +152,12 @@ def message(kind: str, action: str, series: str, r: np.ndarray) -> str:
 
 
 def events_frame(records: np.ndarray, sid: np.ndarray, names=None,
-                 interval_mode: bool = True) -> pd.DataFrame:
-    """The events DataFrame (columns :data:`EVENT_COLUMNS`) from ``(m, NEV)`` records."""
+                 interval_mode: bool = True, feedback=None, feedback_events=()) -> pd.DataFrame:
+    """The events DataFrame (columns :data:`EVENT_COLUMNS`) from ``(m, NEV)`` records, plus
+    the informational ``price_feedback`` events and, for ``sign_flip``, the likely causes in
+    order from the row's price-feedback verdict (``feedback``: per-row ``FB_*`` outputs)."""
+    from monitor.estimators import feedback as FB
+
     rows = []
     for r in records:
         kind = KINDS[int(r[EV_KIND])]
@@ -164,8 +168,14 @@ def events_frame(records: np.ndarray, sid: np.ndarray, names=None,
         rows.append({"row": row, "sid": s, "kind": kind, "action": action,
                      "severity": severity(kind, action, r, interval_mode),
                      "beta": float(r[EV_BETA]), "beta_lo": float(r[EV_LO]),
-                     "beta_hi": float(r[EV_HI]), "message": message(kind, action, series, r),
+                     "beta_hi": float(r[EV_HI]),
+                     "message": message(kind, action, series, r, "" if feedback is None
+                                        or kind != "sign_flip" else FB.sign_flip_causes(
+                                            feedback[row, FB.FB_VERDICT],
+                                            feedback[row, FB.FB_DIRECTION])),
                      "details": details(kind, action, r)})
+    if len(feedback_events):
+        rows = sorted(rows + FB.event_rows(feedback_events, names), key=lambda e: e["row"])
     if not rows:
         return pd.DataFrame({c: pd.Series(dtype=t) for c, t in zip(
             EVENT_COLUMNS, ["int64", "int64", "object", "object", "object", "float64",

@@ -41,6 +41,7 @@ from monitor.detectors.kernels import CHART_SIZE
 from monitor.detectors.slope_kernel import SLOPE_SIZE
 from monitor.detectors.spec import CHART_CODES, pack_chart
 from monitor.errors import ConfigError
+from monitor.estimators import feedback as FB
 from monitor.estimators import kernel as K
 from monitor.estimators.batch import initial_states
 from monitor.estimators.dispatch import model_code, work_size
@@ -80,6 +81,8 @@ class PipelineResult:
     names: list | None = None
     signals: np.ndarray | None = None
     interval_mode: bool = True
+    feedback: np.ndarray | None = None          # per-row price-feedback outputs (FB_* columns)
+    feedback_events: list = field(default_factory=list)
     _events: pd.DataFrame | None = field(default=None, repr=False)
 
     @property
@@ -87,7 +90,8 @@ class PipelineResult:
         """Alert events: ``row, sid, kind, action, severity, beta, beta_lo, beta_hi, message,
         details`` (one row per open or clear decision, in row order)."""
         if self._events is None:
-            self._events = events_frame(self.records, self.sid, self.names, self.interval_mode)
+            self._events = events_frame(self.records, self.sid, self.names, self.interval_mode,
+                                        self.feedback, self.feedback_events)
         return self._events
 
     def signals_frame(self) -> pd.DataFrame:
@@ -172,7 +176,12 @@ class Pipeline:
 
     @property
     def state_size(self) -> int:
-        return int(self._layout[-1])
+        """The layout's blocks, then the price-feedback diagnostic's state (issue 17)."""
+        return int(self._layout[-1]) + FB.STATE_SIZE
+
+    def feedback_states(self, states: np.ndarray) -> np.ndarray:
+        """The price-feedback part of state rows (a view)."""
+        return states[:, int(self._layout[-1]):]
 
     def settings(self) -> dict:
         """The settings used (for summary.json): each chart with its threshold and design."""
@@ -234,7 +243,7 @@ class Pipeline:
                              f"{self.state_size})")
         tsf = np.full(n, np.nan) if ts is None else np.asarray(ts, dtype=np.int64).astype(np.float64)
         bparams, bon = self._bounds_arrays(states.shape[0], low, high)
-        out = np.empty((n, K.NOUT))
+        out = np.empty((n, getattr(self.estimator, "nout", K.NOUT)))
         status = np.empty(n, dtype=np.int8)
         sig = np.empty((n if keep_signals else 1, NSIG))
         records, start, cap = [], 0, max(256, n // 64)
@@ -258,7 +267,10 @@ class Pipeline:
             if stop >= n:
                 break
             start, cap = stop, cap * 2
-        return PipelineResult(out=out, status=status, states=states,
+        fb, fb_events = FB.pipeline_pass(self.feedback_states(states), sid, X[:, 1], out,
+                                         est.forgetting, getattr(est, "model", "") == "iv")
+        return PipelineResult(feedback=fb, feedback_events=fb_events,
+                              out=out, status=status, states=states,
                               records=np.concatenate(records) if records else np.empty((0, NEV)),
                               sid=sid, ts=None if ts is None else np.asarray(ts),
                               names=None if names is None else list(names),

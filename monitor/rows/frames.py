@@ -24,7 +24,17 @@ REJECT_OUT_COLUMNS = ["row", "series", "ts", "field", "value", "reason"]
 
 
 def estimates_frame(good: pd.DataFrame, out: np.ndarray, status: np.ndarray) -> pd.DataFrame:
+    """Estimates table; with instruments (an IV estimator's wider rows) it gains
+    ``first_stage_f``, the effective first-stage F of each estimate."""
     labels = np.array(STATUS_LABELS, dtype=object)[status]
+    if out.shape[1] > K.NOUT:
+        from monitor.estimators.iv_kernel import O_FSTAT
+
+        return _estimates(good, out, labels).assign(first_stage_f=out[:, O_FSTAT])
+    return _estimates(good, out, labels)
+
+
+def _estimates(good: pd.DataFrame, out: np.ndarray, labels: np.ndarray) -> pd.DataFrame:
     return pd.DataFrame({
         "series": good["series"].to_numpy(), "ts": format_ts(good["ts"].to_numpy()),
         "beta": out[:, K.O_BETA], "beta_se": out[:, K.O_SE], "beta_lo": out[:, K.O_LO],
@@ -38,7 +48,8 @@ def alerts_frame(result, good: pd.DataFrame, names: list[str]) -> pd.DataFrame:
     ``alerts.csv`` rows: ``series, ts, rule, beta, beta_lo, beta_hi, message`` plus ``severity``
     (rule = kind); ``good`` are the rows the pipeline ran over, ``names`` the series names."""
     if result.names is None and names is not None:
-        ev = events_frame(result.records, result.sid, list(names), result.interval_mode)
+        ev = events_frame(result.records, result.sid, list(names), result.interval_mode,
+                          result.feedback, result.feedback_events)
     else:
         ev = result.events
     ev = ev[ev["action"] == "open"]
