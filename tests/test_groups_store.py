@@ -131,3 +131,22 @@ def test_group_change_is_one_alert_and_one_notification_per_sink(store, tmp_path
     assert last["resolved"] == [gid]
     assert mstore.get_alert(store, gid)["state"] == "resolved"
     assert lone not in done["folded"]
+
+
+def test_status_group_by_lists_every_group(store, capsys):
+    from monitor.cli import main
+
+    series = names()
+    seed_latest(store, series)
+    sgroups.write_attributes(store, key_attributes(series, ["item", "depot"]), now=NOW)
+    path = str(store.path)
+    store.close()
+    assert main(["status", "--db", path, "--group-by", "depot"]) == 0
+    out = capsys.readouterr().out
+    assert "groups by depot (4;" in out
+    for g in range(4):
+        assert f"depot{g}" in out
+    ref = sgroups.pool_latest(path, ["depot"])[1].set_index("group")
+    assert f"{ref.loc['depot2', 'mean']:.2f}" in out
+    assert main(["status", "--db", path, "--group-by", "region"]) == 2
+    assert "no such attribute" in capsys.readouterr().err

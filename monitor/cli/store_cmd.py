@@ -16,6 +16,7 @@ import pandas as pd
 
 from monitor import store as mstore
 from monitor.cli import HelpFormatter
+from monitor.errors import ConfigError
 
 
 def _who(name: str | None) -> str:
@@ -98,6 +99,13 @@ def render_status(store: mstore.Store, now: Any = None, stale_after: float = 360
 def cmd_status(args) -> int:
     with mstore.open_store(args.db, readonly=True) as store:
         print(render_status(store, stale_after=args.stale_after))
+        if args.group_by:
+            from monitor.cli.group_text import render_groups
+
+            try:
+                print("\n" + render_groups(store, args.group_by))
+            except ValueError as exc:
+                raise ConfigError(f"--group-by: {exc}") from None
     return 0
 
 
@@ -176,12 +184,15 @@ def register(subparsers) -> None:
             "Create the SQLite store (WAL mode) or apply pending schema migrations. "
             "Safe to run again: an up-to-date store is left as it is.")
     p = _parser(subparsers, "status", "sources, offsets, counts, open alerts and outbox backlog",
-                "elmon status --db elmon.sqlite", cmd_status,
+                "elmon status --db elmon.sqlite --group-by category", cmd_status,
                 "Print each source's offset, rows read and rejected, last run and lag; the "
                 "counts of series, observations and rejects; open alerts; the delivery "
                 "backlog. Reads the store read-only, so it is safe beside a running service.")
     p.add_argument("--stale-after", type=float, default=3600.0, metavar="SECONDS",
                    help="count a source as stale after this long without a run (default 3600)")
+    p.add_argument("--group-by", action="append", metavar="NAME",
+                   help="also list the groups of this series attribute (repeatable): series, "
+                        "group mean b with its band, spread, series that differ")
 
     alerts = subparsers.add_parser(
         "alerts", help="list, show, acknowledge, resolve, annotate or silence alerts",
