@@ -46,7 +46,7 @@ def band_code(band) -> int:
     return int(band)
 
 
-def state_size(model, k: int, band="hc", lags: int = 4) -> int:
+def state_size(model, k: int, band="hc", lags: int = 8) -> int:
     """Floats in one series' estimator state (8 bytes each)."""
     m, b = model_code(model), band_code(band)
     if m == MODEL_POISSON:

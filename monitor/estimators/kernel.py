@@ -29,8 +29,9 @@ Bands (``band``): ``classic`` ``Var(theta) = sigma^2 P S P``, ``S = sum w^2 x x'
 ``c = W2 / (W2 - rank W3 / W)`` (``W3 = sum w^3``): with leverages ``h_s ~ rank w_s / W`` the meat
 is biased by ``sum w_s^2 h_s``, and ``c`` removes that; at forgetting 1 it is ``n / (n - k)``,
 MacKinnon & White's (1985) HC1; ``hac`` Newey & West (1987) with a Bartlett
-kernel over ``lags`` lags, same factor (:mod:`monitor.estimators.sandwich`). Limits: Student-t
-with ``n_eff - rank`` degrees of freedom, ``n_eff = W^2 / W2`` (Kish 1965). The standardized
+kernel over ``lags`` lags, same factor (:mod:`monitor.estimators.sandwich`), its limits widened
+by the fixed-b critical value of Kiefer & Vogelsang (2005) (:func:`fixed_b_factor`). Limits:
+Student-t with ``n_eff - rank`` degrees of freedom, ``n_eff = W^2 / W2`` (Kish 1965). The standardized
 innovation ``z = e / (sigma sqrt(1 + x' P S P x))`` uses the previous state and the classic
 form for every band (the detectors' thresholds are designed for it).
 
@@ -52,8 +53,8 @@ Retransformation diagnostics: exponentially weighted sums of the a-posteriori re
 State layout (float64): ``NS`` scalars, ``theta`` (k), ``A`` (k x k), ``c`` (k), the centring
 reference (first observation's ``x_1..x_{k-1}, y``: k), the meat
 tensor (classic: ``k(k+1)/2``; hc: ``k(k+1)/2 (k+1)(k+2)/2``), and for hac per lag its tensor
-plus the lagged row ``(x, y, weight)``. Bytes per series (8 per float) at k = 2: classic 264,
-hc 400, hac with 4 lags 1,168 (the previous RLS state: 200).
+plus the lagged row ``(x, y, weight)``. Bytes per series (8 per float) at k = 2: classic 288,
+hc 408, hac with 8 lags 1,816 (the previous RLS state: 200).
 """
 
 from __future__ import annotations
@@ -69,8 +70,8 @@ from monitor.estimators.tquantile import t_lookup
 
 # layout of the scalar part of a state vector
 (I_W, I_W2, I_V, I_N, I_LPW, I_LPMEAN, I_LPM2, I_E, I_ZSD, I_Z, I_PAUSED, I_NPAUSED,
- I_GW, I_GMEAN, I_GM2, I_YY, I_XSD, I_R2, I_R3, I_R4, I_SMEAR, I_W3) = range(22)
-NS = 22
+ I_GW, I_GMEAN, I_GM2, I_YY, I_XSD, I_R2, I_R3, I_R4, I_SMEAR, I_W3, I_W4) = range(23)
+NS = 23
 
 # columns of the per-observation output row
 # O_BAND: band code of the estimate; O_YLOG: the log-scale response the detectors use (y itself
@@ -173,6 +174,19 @@ def diagnostics(st, r, lt):
 
 
 @njit(cache=True, inline="always")
+def fixed_b_factor(lags, n_meat):
+    """Widening of the hac band for the variability of the Newey-West variance: the ratio of
+    the fixed-b 97.5% critical value of the Bartlett kernel, ``1.9600 + 2.9694 b + 0.4160 b^2
+    - 0.5324 b^3`` (Kiefer & Vogelsang 2005; coefficients from memory), to 1.96, with
+    ``b = (lags + 1) / n_meat`` and ``n_meat = W2^2 / W4`` the effective number of rows of the
+    meat (n at forgetting 1). Applied at every level (exact for 95%, an approximation else)."""
+    b = (lags + 1.0) / n_meat if n_meat > 0.0 else 1.0
+    if b > 1.0:
+        b = 1.0
+    return (1.96 + b * (2.9694 + b * (0.4160 - 0.5324 * b))) / 1.96
+
+
+@njit(cache=True, inline="always")
 def hc_factor(W, W2, W3, rank):
     """Small-sample factor of the robust bands, ``W2 / (W2 - rank W3 / W)`` (NaN if <= 0)."""
     d = W2 - rank * W3 / W
@@ -181,7 +195,7 @@ def hc_factor(W, W2, W3, rank):
 
 @njit(cache=True, inline="always")
 def finish(st, out, beta, intercept, identified, vb, V, rank, k, neff, lowvar, band, e, z,
-           min_neff, tq, ylog):
+           min_neff, tq, ylog, qmult=1.0):
     """Write the output row from the updated quantities (shared by both step forms)."""
     W = st[I_W]
     dof = W - rank
@@ -198,7 +212,7 @@ def finish(st, out, beta, intercept, identified, vb, V, rank, k, neff, lowvar, b
         out[O_RESID_SD] = np.nan
     if identified and dof > 0.0 and V > 0.0 and vb >= 0.0:
         se = np.sqrt(vb)
-        tq_ = t_lookup(tq, neff - rank)
+        tq_ = t_lookup(tq, neff - rank) * qmult
         out[O_BETA] = beta
         out[O_SE] = se
         out[O_LO] = beta - tq_ * se
@@ -426,9 +440,11 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
     l2 = lt * lt
     W2 = l2 * st[I_W2] + 1.0
     W3 = l2 * lt * st[I_W3] + 1.0
+    W4 = l2 * l2 * st[I_W4] + 1.0
     st[I_W] = W
     st[I_W2] = W2
     st[I_W3] = W3
+    st[I_W4] = W4
     st[I_N] += 1.0
     sb, rank = factor(st, a0, k, L, drop)
     solve(L, drop, k, st, c0, st, th, tmp)
@@ -483,8 +499,11 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
                     vb += meat_form(st, t0 + (l + 1) * size, thc, k, pt, 0,
                                     1.0 - (l + 1.0) / (lags + 1.0))
             vb *= hc_factor(W, W2, W3, rank)
+    qmult = 1.0
+    if band == BAND_HAC:
+        qmult = fixed_b_factor(lags, W2 * W2 / W4)
     finish(st, out, st[th + 1], st[th], identified, vb, V, float(rank), k, neff,
-           raw_low or xsd < min_price_sd, band, e, z, min_neff, tq, y)
+           raw_low or xsd < min_price_sd, band, e, z, min_neff, tq, y, qmult)
 
 
 @njit(cache=True, inline="always")
@@ -533,6 +552,7 @@ def discount(st, k, band, lags, f):
         st[i] *= f
     st[I_W2] *= f2
     st[I_W3] *= f2 * f
+    st[I_W4] *= f2 * f2
     a0 = NS + k
     for i in range(a0, a0 + k * k + k):
         st[i] *= f

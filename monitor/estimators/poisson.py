@@ -88,6 +88,8 @@ class ElasticityPoisson:
     """
 
     model = "poisson"
+    #: the row path keeps zero quantities for this model and passes ``q`` itself as response
+    zero_quantity_ok = True
 
     def __init__(self, forgetting: float = 0.99, controls: Sequence[str] = (),
                  log_controls: Sequence[str] = (), level: float = 0.95, min_n_eff: float = 10.0,

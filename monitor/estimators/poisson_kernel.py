@@ -41,7 +41,7 @@ for the detectors' slope statistic. Low variation: the information-weighted sd o
 left after the intercept and the controls, ``sqrt(s_b / A_00)``.
 
 State (float64): the :data:`~monitor.estimators.kernel.NS` shared scalars, ``theta`` (k),
-``A`` (k x k), ``H`` packed (k(k+1)/2). Bytes per series at k = 2: 248.
+``A`` (k x k), ``H`` packed (k(k+1)/2). Bytes per series at k = 2: 256.
 """
 
 from __future__ import annotations

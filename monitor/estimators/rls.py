@@ -92,16 +92,19 @@ class ElasticityRLS:
         (1987) autocorrelation-robust with a Bartlett kernel, or classic (constant error
         variance, no autocorrelation).
     hac_lags : int
-        Lags of the Newey-West band (used with ``band="hac"``).
+        Lags of the Newey-West band (used with ``band="hac"``; default 8, which held the 95%
+        band at 94-96% at forgetting 0.995 on AR(1) 0.5 errors and prices; 4 gave 93.4%).
     """
 
     model = "loglinear"
+    #: zero quantities cannot be logged: the row path applies ``[validation] zero_policy``
+    zero_quantity_ok = False
 
     def __init__(self, forgetting: float = 0.99, controls: Sequence[str] = (),
                  log_controls: Sequence[str] = (), prior_mean: float = 0.0,
                  prior_sd: float | None = None, level: float = 0.95, min_n_eff: float = 10.0,
                  min_price_sd: float = 0.02, excitation_guard: bool = True,
-                 guard_forgetting: float = 0.8, band: str = "hc", hac_lags: int = 4):
+                 guard_forgetting: float = 0.8, band: str = "hc", hac_lags: int = 8):
         self.forgetting = _check_range("forgetting", forgetting, 0.0, 1.0, True, False)
         self.controls = tuple(controls)
         self.log_controls = tuple(log_controls)

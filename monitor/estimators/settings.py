@@ -2,7 +2,7 @@
 estimator prototype built from it.
 
 Keys (defaults in brackets): model ["loglinear"] or "poisson"; band ["hc"], "hac" or
-"classic"; hac_lags [4]; exposure [""]: name of the exposure column (opening hours, customers,
+"classic"; hac_lags [8]; exposure [""]: name of the exposure column (opening hours, customers,
 connected meters; Poisson model); forgetting [0.99], controls [[]], log_controls [[]],
 level [0.95], prior_mean [0.0], prior_sd [none: no prior], min_n_eff [10.0],
 min_price_sd [0.02], excitation_guard [true], guard_forgetting [0.8]; instruments [[]] and
@@ -16,7 +16,7 @@ from monitor.errors import ConfigError, ValidationError
 from monitor.estimators.dispatch import make_estimator
 
 
-ESTIMATOR_KEYS = {"model": (str, "loglinear"), "band": (str, "hc"), "hac_lags": (int, 4),
+ESTIMATOR_KEYS = {"model": (str, "loglinear"), "band": (str, "hc"), "hac_lags": (int, 8),
                   "exposure": (str, ""), "forgetting": ((int, float), 0.99),
                   "controls": (list, []),
                   "log_controls": (list, []), "level": ((int, float), 0.95),
