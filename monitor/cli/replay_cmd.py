@@ -16,6 +16,7 @@ EXAMPLE = """example:
   elmon replay load.parquet --out out/ --log-control temperature --config elmon.toml
   elmon replay shop.csv --out out/ --control weekend --instrument unit_cost
   elmon replay retail.csv --out out/ --truth retail_truth.csv --report out/report.html
+  elmon replay sales.csv --out out/ --series-col sku --series-col store --group-col store
   elmon replay big.parquet --out out/ --sample-every 24 --engine dask --scheduler tcp://10.0.0.5:8786
 """
 
@@ -42,9 +43,16 @@ def add_common_options(p: argparse.ArgumentParser) -> None:
                    help="column of the exposure behind each quantity (opening hours, customers, "
                         "meters); Poisson model")
     p.add_argument("--zero-policy", choices=["reject", "skip"], help="what to do with zero quantities")
-    for col in ("series", "ts", "price", "quantity"):
+    p.add_argument("--series-col", dest="series_col", action="append", metavar="NAME",
+                   help="name of the series column in the log (default 'series'); repeat it for "
+                        "a composite id: --series-col sku --series-col store makes ids "
+                        "'sku/store' in that order ('/' inside a part is written '\\/')")
+    for col in ("ts", "price", "quantity"):
         p.add_argument(f"--{col}-col", dest=f"{col}_col", metavar="NAME",
                        help=f"name of the {col} column in the log (default '{col}')")
+    p.add_argument("--group-col", dest="group_col", action="append", metavar="NAME",
+                   help="attribute whose values group the series (repeatable): a key column or "
+                        "a column of [series] attributes; adds pooled estimates and group alerts")
     add_detector_options(p)
 
 
@@ -92,8 +100,11 @@ def config_from_args(args) -> "object":
                              exposure=getattr(args, "exposure_col", None),
                              instruments=getattr(args, "instrument", None))
     cfg = cfg.with_overrides("validation", zero_policy=args.zero_policy)
-    cfg = cfg.with_overrides("columns", series=args.series_col, ts=args.ts_col,
-                             price=args.price_col, quantity=args.quantity_col)
+    series_cols = list(args.series_col or [])
+    cfg = cfg.with_overrides("columns", series=series_cols[0] if len(series_cols) == 1 else None,
+                             ts=args.ts_col, price=args.price_col, quantity=args.quantity_col)
+    cfg = cfg.with_overrides("series", key=series_cols if len(series_cols) > 1 else None,
+                             groups=getattr(args, "group_col", None))
     get = lambda name: getattr(args, name, None)  # noqa: E731  (commands without the group)
     cfg = cfg.with_overrides("detectors", arl0=get("arl0"), level_chart=get("level_chart"),
                              slope_chart=get("slope_chart"), cusum_k=get("cusum_k"),

@@ -38,6 +38,10 @@ def cmd_run(args) -> int:
     # poll still draining a backlog); the service logs its own problems
     logging.getLogger("apscheduler.scheduler").setLevel(logging.ERROR)
     config = load_config(args.config)
+    cols = list(args.series_col or [])
+    config = config.with_overrides("columns", series=cols[0] if len(cols) == 1 else None)
+    config = config.with_overrides("series", key=cols if len(cols) > 1 else None,
+                                   groups=args.group_col)
     base = Path(args.config).resolve().parent
     for name in args.reset_source or []:
         print(reset_source_position(config, args.db, base, name), file=sys.stderr)
@@ -126,6 +130,11 @@ def register(sub) -> None:
                         "on_reset = 'stop'; rows already stored are rejected as duplicates)")
     p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"],
                    help="logging detail on stderr (default info)")
+    p.add_argument("--series-col", action="append", metavar="NAME",
+                   help="series column (overrides [columns] series); repeat for a composite id "
+                        "(overrides [series] key)")
+    p.add_argument("--group-col", action="append", metavar="NAME",
+                   help="attribute that groups the series (repeatable; overrides [series] groups)")
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("ingest", help="load a CSV or Parquet file into a store, resumably",

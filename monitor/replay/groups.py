@@ -62,6 +62,8 @@ def apply_groups(out_dir, settings: GroupSettings, names) -> dict:
     names : sequence of str
         Every series the replay saw.
     """
+    if not (settings.active or len(settings.key) > 1 or settings.attributes):
+        return {}
     out = Path(out_dir)
     attrs = series_attribute_table(list(names), settings)
     attrs.to_csv(out / "attributes.csv", index=False)
