@@ -24,7 +24,7 @@ ESTIMATE_COLUMNS = ("series", "ts", "beta", "beta_se", "beta_lo", "beta_hi", "n_
                     "intercept", "resid_sd", "innovation", "z")
 _EST_FLOATS = ("beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "intercept", "resid_sd",
                "innovation", "z")
-_SERIES_SETTINGS = ("low", "high", "forgetting", "settings")
+_SERIES_SETTINGS = ("low", "high", "forgetting", "settings", "bound_low", "bound_high")
 
 
 def as_frame(data: Any, key: str | None = None) -> pd.DataFrame:

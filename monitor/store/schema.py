@@ -169,6 +169,14 @@ _CHANGE_COLUMNS = [
     "ALTER TABLE latest_estimates ADD COLUMN delay50_obs REAL",
 ]
 
+_BOUNDS_IN_EFFECT = [
+    # issue 16: the bounds the engine applied to a series at its last write ([bounds] or the
+    # series' own), so readers can draw them; ``low`` / ``high`` stay the series' OWN bounds
+    # (what the engine reads back), these two are only a record and are never read back
+    "ALTER TABLE series ADD COLUMN bound_low REAL",
+    "ALTER TABLE series ADD COLUMN bound_high REAL",
+]
+
 #: Ordered migrations: (id, name, steps). A step is SQL text or a callable taking the sqlite3
 #: connection (run inside the migration's transaction). Append only.
 MIGRATIONS: list[tuple[int, str, list]] = [
@@ -176,6 +184,7 @@ MIGRATIONS: list[tuple[int, str, list]] = [
     (2, "sparkline cache", _SPARKLINES),
     (3, "series groups", _GROUPS),
     (4, "change alert columns", _CHANGE_COLUMNS),
+    (5, "bounds in effect", _BOUNDS_IN_EFFECT),
 ]
 
 #: The schema version this code expects (the id of the last migration).
