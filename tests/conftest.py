@@ -11,6 +11,16 @@ os.environ.setdefault("ELMON_TEST", "1")
 
 
 @pytest.fixture
+def store(tmp_path):
+    """A new store (SQLite file on disk, the writer connection), closed after the test."""
+    from monitor import store as ms
+
+    s = ms.Store.open(tmp_path / "elmon.sqlite")
+    yield s
+    s.close()
+
+
+@pytest.fixture
 def rng():
     return np.random.default_rng(20261201)
 
@@ -20,3 +30,21 @@ def simulate_loglog(rng, n, beta=-1.5, intercept=5.0, price_sd=0.1, noise_sd=0.2
     lp = np.log(base) + rng.normal(0.0, price_sd, n)
     y = intercept + beta * lp + rng.normal(0.0, noise_sd, n)
     return lp, y
+
+
+def designed_thresholds(forgetting: float = 0.99, arl0: float = 20000.0) -> dict[str, float]:
+    """``{"cusum_h", "slope_h"}``: the level and slope CUSUM thresholds the pipeline designs
+    for the default charts (read from the design table, :mod:`monitor.detectors.design`), for
+    tests that give them explicitly so that no process pays the design time."""
+    from monitor.detectors.design import pipeline_threshold
+    from monitor.detectors.slope_kernel import DEFAULT_FAST, DEFAULT_REFERENCE
+
+    level = pipeline_threshold("level", "cusum", arl0, forgetting=forgetting, k=0.5)
+    slope = pipeline_threshold("slope", "cusum", arl0, forgetting=forgetting, k=1.0,
+                               fast_forgetting=DEFAULT_FAST,
+                               reference_forgetting=DEFAULT_REFERENCE)
+    return {"cusum_h": round(level.threshold, 6), "slope_h": round(slope.threshold, 6)}
+
+
+#: the designed thresholds of the default settings (ARL0 20000, forgetting 0.99)
+DESIGNED = designed_thresholds()

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import sqlite3
 import struct
+import time
 
 import numpy as np
 import pandas as pd
@@ -79,3 +80,14 @@ def states(path) -> dict[str, dict]:
 
 def equal_bits(a: np.ndarray, b: np.ndarray) -> bool:
     return np.asarray(a, dtype=np.float64).tobytes() == np.asarray(b, dtype=np.float64).tobytes()
+
+
+def wait_until(predicate, timeout: float, step: float = 0.05) -> bool:
+    """Poll ``predicate`` until true or ``timeout`` seconds pass (a hang guard: callers give a
+    timeout far above the expected wait and assert on the state polled)."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if predicate():
+            return True
+        time.sleep(step)
+    return bool(predicate())

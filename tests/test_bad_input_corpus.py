@@ -20,11 +20,13 @@ from hypothesis import strategies as st
 
 from monitor.ingest.files import CsvTail
 from monitor.live.monitor import Monitor
-from monitor.live.service import Service, wait_until
+from monitor.live.service import Service
+from tests.service_helpers import wait_until
 from monitor.settings import Config
 from monitor.settings import validate as validate_config
 from simulators import simulate
 from tests.service_helpers import csv_bytes, frame
+from tests.conftest import DESIGNED as DESIGNED_H
 
 
 #: reason text expected for each kind of bad row of simulators.baddata (monitor.rows.validate's wording)
@@ -35,7 +37,7 @@ REASONS = {"empty_field": "empty field", "unparsable_number": "not a number",
            "future_timestamp": "in the future", "duplicate_key": "duplicate row",
            "late_row": "late row", "unit_error": "suspected unit error"}
 #: the thresholds the pipeline designs for the default settings, given to skip the design time
-DESIGNED = Config({"detectors": {"cusum_h": 8.09, "slope_h": 84.4}})
+DESIGNED = Config({"detectors": dict(DESIGNED_H)})
 MALFORMED = [b"only,three,fields\n", b"a,b,c,d,e,f,g,h,i\n", b"\xff\xfe\xfd,not,utf8,at,all,x\n"]
 
 
@@ -46,7 +48,7 @@ def corpus_service(tmp_path, zero_policy):
     cfg = validate_config({
         "store": {"path": "s.sqlite"},
         "estimator": {"controls": ["promo"]},
-        "detectors": {"cusum_h": 8.09, "slope_h": 84.4},   # designed values, given (no design time)
+        "detectors": dict(DESIGNED_H),    # designed values, given (no design time)
         "validation": {"zero_policy": zero_policy},
         "service": {"poll_interval_s": 0.05, "batch_rows": 64, "stale_check_s": 3600},
         "sources": {"feed": {"type": "csv", "path": "feed.csv"},

@@ -28,6 +28,7 @@ from monitor.settings import load_config
 from simulators import simulate
 from tests.crash_launcher import committed as committed_rows
 from tests.service_helpers import assert_same_store, csv_bytes, dump
+from tests.conftest import DESIGNED
 
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -45,8 +46,8 @@ controls = ["promo"]
 zero_policy = "skip"
 
 [detectors]     # the thresholds the pipeline designs by simulation for these settings
-cusum_h = 8.09  # (ARL0 20000, forgetting 0.99), given so no process pays the design time
-slope_h = 84.4
+cusum_h = {cusum_h}  # (ARL0 20000, forgetting 0.99), given so no process pays the design time
+slope_h = {slope_h}
 
 [service]
 poll_interval_s = 0.05
@@ -105,8 +106,8 @@ def write_feed(path: Path, lines: list[bytes], seconds: float, seed: int,
 def test_sigkill_at_random_moments_then_restart_ends_exactly_as_an_uninterrupted_run(tmp_path):
     seed = 20240607
     lines = feed_lines(seed)
-    (tmp_path / "crash.toml").write_text(CONFIG.format(db="crash.sqlite", batch_rows=40))
-    (tmp_path / "ref.toml").write_text(CONFIG.format(db="ref.sqlite", batch_rows=100000))
+    (tmp_path / "crash.toml").write_text(CONFIG.format(db="crash.sqlite", batch_rows=40, **DESIGNED))
+    (tmp_path / "ref.toml").write_text(CONFIG.format(db="ref.sqlite", batch_rows=100000, **DESIGNED))
     feed = tmp_path / "feed.csv"
     done = threading.Event()
     writer = threading.Thread(target=write_feed, args=(feed, lines, 14.0, seed, done),

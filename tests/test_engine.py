@@ -27,6 +27,7 @@ from monitor.settings import Config
 from monitor.store import Store, thin_estimates
 from simulators import simulate
 from tests.service_helpers import assert_same_store, csv_bytes, dump, frame, states
+from tests.conftest import DESIGNED
 
 
 CFG_TOML = """
@@ -36,9 +37,9 @@ controls = ["promo"]
 [validation]
 zero_policy = "skip"
 [detectors]     # the thresholds the pipeline designs by simulation for ARL0 20000 and
-cusum_h = 8.09  # forgetting 0.99 (monitor.detectors.design), given to skip the design time
-slope_h = 84.4
-"""
+cusum_h = {cusum_h}  # forgetting 0.99 (monitor.detectors.design), given to skip the design time
+slope_h = {slope_h}
+""".format(**DESIGNED)
 CFG = Config({**tomllib.loads(CFG_TOML), "store": {"estimates_every": 3}})
 
 

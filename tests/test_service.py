@@ -22,17 +22,19 @@ import pandas as pd
 import pytest
 from werkzeug import Response
 
-from monitor.live.service import Service, wait_until
+from monitor.live.service import Service
+from tests.service_helpers import wait_until
 from monitor.settings import validate as validate_config
 from monitor.store import open_store, wall_ts
 from simulators import LiveAppender, simulate
 from tests.service_helpers import assert_same_store, csv_bytes, dump, frame
+from tests.conftest import DESIGNED as DESIGNED_H
 
 
 ROOT = Path(__file__).resolve().parents[1]
 #: the thresholds the pipeline designs by simulation for the default ARL0 20000 and forgetting
 #: 0.99 (monitor.detectors.design), given so that each process skips the design time
-DESIGNED = {"cusum_h": 8.09, "slope_h": 84.4}
+DESIGNED = dict(DESIGNED_H)
 
 
 def config(**sections):
@@ -118,12 +120,12 @@ def test_sigterm_finishes_the_batch_commits_and_exits_zero(tmp_path, log):
         [estimator]
         controls = ["promo"]
         [detectors]
-        cusum_h = 8.09
-        slope_h = 84.4
+        cusum_h = {cusum_h}
+        slope_h = {slope_h}
         [sources.feed]
         type = "csv"
         path = "feed.csv"
-    """))
+    """).format(**DESIGNED))
     proc = subprocess.Popen([sys.executable, "-m", "monitor", "run", "--config", "elmon.toml"],
                             cwd=tmp_path, stderr=subprocess.PIPE, text=True,
                             env={**os.environ, "PYTHONPATH": str(ROOT)})
@@ -307,13 +309,13 @@ def test_on_reset_stop_waits_until_the_source_is_reset(tmp_path, log, capsys):
         [estimator]
         controls = ["promo"]
         [detectors]
-        cusum_h = 8.09
-        slope_h = 84.4
+        cusum_h = {cusum_h}
+        slope_h = {slope_h}
         [sources.feed]
         type = "csv"
         path = "feed.csv"
         on_reset = "stop"
-    """))
+    """).format(**DESIGNED))
     args = ["run", "--config", str(tmp_path / "elmon.toml"), "--once", "--log-level", "error"]
     assert main(args) == 0
     other = tmp_path / "other.csv"

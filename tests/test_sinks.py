@@ -30,13 +30,6 @@ def at(seconds: float) -> str:
     return ms.wall_ts(NOW + pd.Timedelta(seconds=seconds))
 
 
-@pytest.fixture
-def store(tmp_path):
-    s = ms.Store.open(tmp_path / "sinks.sqlite")
-    yield s
-    s.close()
-
-
 def alert(store, sinks, series="depot01/item00042"):
     store.sinks = tuple(sinks)
     return ms.open_alert(store, series, "elasticity_change", "2024-06-01T06:00:00Z", -0.61,

@@ -44,13 +44,6 @@ def frames(series=("a", "b", "c"), n=50, start=0, rng=None):
     return pd.concat(obs, ignore_index=True), pd.concat(est, ignore_index=True)
 
 
-@pytest.fixture
-def store(tmp_path):
-    s = ms.Store.open(tmp_path / "elmon.sqlite")
-    yield s
-    s.close()
-
-
 def counts(store):
     return {t: store.scalar(f"SELECT count(*) FROM {t}") for t in ms.TABLES}
 
@@ -271,18 +264,17 @@ def test_thin_estimates_does_not_depend_on_batch_boundaries(rng):
         ms.thin_estimates(frame, 0)
 
 
-def test_throughput_100k_observations_in_one_transaction(store):
+def test_100k_observations_in_one_transaction(store):
     n = 100_000
     ts = T0 + pd.to_timedelta(np.repeat(np.arange(n // 500), 500), unit="h")
     obs = pd.DataFrame({"series": np.tile([f"sku{i:04d}" for i in range(500)], n // 500),
                         "ts": ts, "price": 9.5, "quantity": 3.0, "source": "feed.csv",
                         "source_row": np.arange(n)})
-    t = time.perf_counter()
     ms.write_batch(store, observations=obs)
-    elapsed = time.perf_counter() - t
+    # all of them, in one transaction; the speed (about 130k rows/s) is measured by
+    # benchmarks/ingest.py (make bench), not asserted here
     assert store.scalar("SELECT count(*) FROM observations") == n
-    # measured 0.6-0.8 s here (about 130k rows/s); the bound is loose for a busy 2-core machine
-    assert elapsed < 2.0, f"100k observations took {elapsed:.2f} s"
+    assert store.scalar("SELECT count(DISTINCT series) FROM observations") == 500
 
 
 def test_bytes_per_row_stay_near_the_documented_size(tmp_path):

@@ -21,11 +21,10 @@ def at(minutes: float) -> str:
 
 
 @pytest.fixture
-def store(tmp_path):
-    s = ms.Store.open(tmp_path / "alerts.sqlite")
-    s.sinks = ("log", "ops")
-    yield s
-    s.close()
+def store(store):
+    """The shared store fixture (tests/conftest.py) with two sinks configured."""
+    store.sinks = ("log", "ops")
+    return store
 
 
 def open_one(store, series="p1", kind="out_of_bounds", minutes=0, **kw):

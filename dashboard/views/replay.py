@@ -3,7 +3,6 @@ alerts, rejects and, where a truth file was used, detection delay and false alar
 
 from __future__ import annotations
 
-import inspect
 import os
 from pathlib import Path
 
@@ -47,22 +46,16 @@ def _run_form() -> None:
         truth = st.text_input("Truth file of known change points (optional)", key="rp_truth")
         if st.button("Run replay", key="rp_run", disabled=not (log and out)):
             try:
-                from monitor.replay.driver import run_replay
+                from monitor.replay.driver import replay
                 from monitor.settings import load_config
             except ImportError as exc:
                 st.error(f"Replay is not available in this installation: {exc}")
                 return
-            kwargs = {}
-            if truth:
-                if "truth" not in inspect.signature(run_replay).parameters:
-                    st.error("This version of the replay takes no truth file; run it without.")
-                    return
-                kwargs["truth"] = truth
             try:
                 cfg = load_config(cfg_path or None).with_overrides("estimator",
                                                                   forgetting=float(lam))
-                with st.spinner("Replaying…"):
-                    run_replay(log, out, config=cfg, **kwargs)
+                with st.spinner("Replaying…"):      # the driver of `elmon replay`
+                    replay(log, out, cfg, truth=truth or None, progress=False)
             except (ElmonError, OSError, ValueError) as exc:
                 st.error(f"Replay failed: {exc}")
             else:

@@ -22,12 +22,15 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterator, Mapping
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError, SourceError
+from monitor.ingest.base import canonical_names
+from monitor.ingest.csv_text import read_csv_chunk, read_header
 from monitor.ingest.logio import (DEFAULT_COLUMNS, check_file, column_renames, log_format, read_log,
                                   table_to_frame)
 
@@ -110,11 +113,39 @@ def canonical_frame(frame: pd.DataFrame, columns) -> pd.DataFrame:
 
 @dataclass
 class LogChunk:
-    """A chunk of raw rows: the frame, its first row number - 1, and input position reached."""
+    """A chunk of raw rows: the frame, its first row number - 1, the input position reached,
+    and for CSV text each row's file row number (blank lines counted) and the lines that could
+    not be split into fields (rejects with row, field, value, reason)."""
 
     frame: pd.DataFrame
     row_offset: int
     position: int      # bytes (CSV) or rows (Parquet) of the input consumed after this chunk
+    rows: np.ndarray | None = None
+    rejects: pd.DataFrame | None = None
+
+
+def csv_text_chunks(path, columns: Mapping[str, str] | None = None,
+                    chunk_rows: int = 1_000_000) -> Iterator[LogChunk]:
+    """A CSV log in chunks of at most ``chunk_rows`` lines, read by the same line reader as
+    ``elmon ingest`` and the live sources (:func:`monitor.ingest.csv_text.read_csv_chunk`):
+    every field is text (a value keeps the file's spelling in a reject), every line is a row,
+    a reject or blank, and row numbers are those of the file."""
+    p = check_file(path)
+    head = read_header(p, str(p), final=True)
+    if head is None:
+        return
+    names, offset = head
+    canon = canonical_names(names, dict(columns or {}))
+    size = p.stat().st_size
+    before = 0
+    while offset < size:
+        frame, rows, rejects, n_lines, end = read_csv_chunk(p, names, canon, offset, before,
+                                                            max(int(chunk_rows), 1), final=True)
+        if end <= offset:
+            break
+        yield LogChunk(frame, before, end, rows=rows, rejects=rejects)
+        before += n_lines
+        offset = end
 
 
 def input_size(path) -> int:
@@ -143,11 +174,7 @@ def iter_chunks(path, columns: Mapping[str, str] | None = None, chunk_rows: int 
         except (pa.ArrowInvalid, OSError) as exc:
             raise SourceError(f"{p}: unreadable parquet file: {exc}") from None
         return
-    header = csv_header(p)
-    for block in csv_blocks(p, chunk_rows * mean_line_bytes(p, header)):
-        frame = read_csv_block(p, block, header, columns)
-        yield LogChunk(frame, offset, block.stop)
-        offset += len(frame)
+    yield from csv_text_chunks(p, columns, chunk_rows)
 
 
 def mean_line_bytes(path: Path, header: bytes, sample: int = 1 << 16) -> int:
@@ -168,6 +195,20 @@ WHOLE_BYTES = 64 << 20
 
 
 WHOLE_ROWS = 2_000_000
+#: a CSV log read whole is one chunk of at most this many lines (64 MB holds far fewer)
+WHOLE_ROWS_CSV = 1 << 40
+
+
+def read_whole(log, columns) -> LogChunk:
+    """The whole log as one :class:`LogChunk` (CSV through the line reader, Parquet typed)."""
+    if log_format(log) == "parquet":
+        frame = read_log(log, columns)
+        return LogChunk(frame, 0, len(frame))
+    parts = list(csv_text_chunks(log, columns, WHOLE_ROWS_CSV))
+    if not parts:
+        return LogChunk(read_log(log, columns, text=True), 0, 0,
+                        rows=np.zeros(0, np.int64), rejects=None)
+    return parts[0]
 
 
 def log_chunks(log, columns, chunk_rows: int | None):
@@ -176,7 +217,7 @@ def log_chunks(log, columns, chunk_rows: int | None):
     if chunk_rows is None:
         small = size <= (WHOLE_ROWS if log_format(log) == "parquet" else WHOLE_BYTES)
         if small:
-            return size, iter([LogChunk(read_log(log, columns), 0, size)])
+            return size, iter([read_whole(log, columns)])
         chunk_rows = DEFAULT_CHUNK_ROWS
     if int(chunk_rows) < 1:
         raise ConfigError(f"chunk_rows = {chunk_rows!r}: must be >= 1")

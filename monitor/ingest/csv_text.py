@@ -206,3 +206,15 @@ def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_b
         body = fh.read(end - offset)
     frame, rows, rejects, n_lines = parse_lines(names, canon, body, rows_before + 1)
     return frame, rows, rejects, n_lines, end
+
+
+def read_header(path, where: str, final: bool) -> tuple[list[str], int] | None:
+    """Header names and the byte offset after the header line (None: no complete line yet)."""
+    with open(path, "rb") as fh:
+        block = fh.readline(1 << 20)
+    cut = block.find(b"\n")
+    if cut < 0:
+        if not block or not final:
+            return None
+        cut = len(block) - 1
+    return parse_header(block[:cut + 1], where), cut + 1

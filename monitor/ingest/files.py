@@ -45,22 +45,10 @@ import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError, SourceError
 from monitor.ingest.base import Chunk, canonical_names, empty_rejects
-from monitor.ingest.csv_text import HEAD_BYTES, head_hash, parse_header, read_csv_chunk
+from monitor.ingest.csv_text import HEAD_BYTES, head_hash, read_csv_chunk, read_header
 
 
 __all__ = ["CsvTail", "FolderSource", "ParquetFile"]
-
-
-def _header(path: Path, where: str, final: bool) -> tuple[list[str], int] | None:
-    """Header names and the byte offset after the header line (None: no complete line yet)."""
-    with open(path, "rb") as fh:
-        block = fh.readline(1 << 20)
-    cut = block.find(b"\n")
-    if cut < 0:
-        if not block or not final:
-            return None
-        cut = len(block) - 1
-    return parse_header(block[:cut + 1], where), cut + 1
 
 
 class CsvTail:
@@ -116,7 +104,7 @@ class CsvTail:
                 notice += "; reading the new file from its start"
                 pos = {}
         try:
-            head = _header(self.path, str(self.path), self.final)
+            head = read_header(self.path, str(self.path), self.final)
         except OSError as exc:
             raise SourceError(f"{self.path}: cannot be read: {exc}") from None
         if head is None:
@@ -233,7 +221,7 @@ class FolderSource:
             nxt = {**cur, "rows": hi}
             return Chunk(frame, rows, empty_rejects(), {}, hi - lo,
                          extra={"complete": hi >= len(table), "cur": nxt})
-        head = _header(path, str(path), final=True)
+        head = read_header(path, str(path), final=True)
         if head is None:                      # an empty file: nothing to read, done
             return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(), {}, 0,
                          extra={"complete": True, "cur": cur})

@@ -2,9 +2,10 @@
 
 :class:`Monitor` owns the live state of every series (estimator, detector and rule state in one
 vector per series, and the validation gate's per-series state) and a writer connection to the
-store. Each batch goes through the replay's steps (validate_frame -> prepare_rows ->
-Pipeline.run -> estimates_frame). Validation runs in arrival order (``order_by="arrival"``), so
-the outcome never depends on where batches were cut: with no lateness allowed every accepted
+store. Each batch goes through the one row path (:mod:`monitor.rows.prepare`: check_rows ->
+prepare_rows), then Pipeline.run -> estimates_frame. Validation runs in arrival order unless
+``[validation] order = "time"`` (:func:`monitor.rows.prepare.order_of`), so the outcome never
+depends on where batches were cut: with no lateness allowed every accepted
 row of a series is newer than the one before, i.e. each series is processed in timestamp
 order, and an in-order log gives the replay's estimates to the bit. Then
 its observations, estimates (thinned per ``[store] estimates_every``), alert changes, rejects,
@@ -37,8 +38,8 @@ from monitor.live.checkpoints import checkpoints, restore, vector_to_json
 from monitor.live.one_row import NOT_PLAIN, observe_plain
 from monitor.pipeline.run import Pipeline
 from monitor.rows.frames import estimates_frame
-from monitor.rows.prepare import prepare_rows
-from monitor.rows.validate import renumber, validate_frame, validation_from_config
+from monitor.rows.prepare import check_rows, order_of, prepare_rows
+from monitor.rows.validate import validation_from_config
 from monitor.sections import Config
 from monitor.store import Store, thin_estimates, wall_ts, write_batch
 from monitor.store.live import release_writer_lock, series_bounds, take_writer_lock
@@ -227,11 +228,9 @@ class Monitor:
         missing = [c for c in self._required if c not in frame.columns]
         if missing:
             return {**empty, "rejects": [missing_column_rejects(frame, rows, missing)]}
-        v = renumber(validate_frame(frame, controls=self.estimator.controls,
-                                    log_controls=self.estimator.log_controls,
-                                    settings=self.validation, gate=self.gate,
-                                    now_ns=int(self.clock_ns()), row_offset=0,
-                                    order_by="arrival"), rows)
+        v = check_rows(frame, self.estimator, settings=self.validation, gate=self.gate,
+                       now_ns=int(self.clock_ns()), rows=rows,
+                       order=order_of(self.validation, "arrival"))
         good = v.good
         zeros = zero_rows(frame, v.zero_skipped, self._controls) if len(v.zero_skipped) else None
 

@@ -306,11 +306,3 @@ def _expected(exc: Exception) -> bool:
     return isinstance(exc, ElmonError)
 
 
-def wait_until(predicate, timeout: float, step: float = 0.05) -> bool:
-    """Poll ``predicate`` until true or ``timeout`` seconds pass (for callers and tests)."""
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if predicate():
-            return True
-        time.sleep(step)
-    return bool(predicate())

@@ -38,8 +38,8 @@ import pyarrow.csv as pacsv
 
 from monitor.errors import ConfigError, SourceError
 from monitor.estimators import kernel as K
-from monitor.ingest.chunks import iter_chunks, log_chunks
-from monitor.ingest.logio import column_names, read_log, write_table
+from monitor.ingest.chunks import iter_chunks, log_chunks, read_whole
+from monitor.ingest.logio import column_names, write_table
 from monitor.pipeline.run import Pipeline
 from monitor.progress import Progress
 from monitor.replay.detection import DEFAULT_HORIZON, Scores, read_truth, score
@@ -47,8 +47,7 @@ from monitor.replay.kernel import (ALERT_OUT_COLUMNS, FINAL_FIELDS, CarriedState
                                    merge_final, partial_of, run_chunk)
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
                                  estimates_frame)
-from monitor.rows.prepare import prepare_rows
-from monitor.rows.validate import validate_frame
+from monitor.rows.prepare import check_rows, order_of, prepare_rows
 from monitor.settings import Config, default_config, estimator_from_config, validation_from_config
 from monitor.types import STATUS_LABELS
 
@@ -279,7 +278,8 @@ def _replay_local(log, config, setup, acc, chunk_rows, progress):
     t = time.perf_counter()
     for chunk in chunks:
         t_read += time.perf_counter() - t
-        res = run_chunk(chunk.frame, setup, carried, row_offset=chunk.row_offset)
+        res = run_chunk(chunk.frame, setup, carried, row_offset=chunk.row_offset, rows=chunk.rows,
+                        line_rejects=chunk.rejects)
         acc.add(partial_of(res, setup, carried))
         n_chunks += 1
         bar.update(rows=len(chunk.frame), done=chunk.position)
@@ -340,11 +340,12 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
     est = estimator_from_config(config)
     vset = validation_from_config(config)
     pipe = Pipeline.from_config(config, est)
-    frame = read_log(log_path, column_names(config))
+    chunk = read_whole(log_path, column_names(config))
+    frame = chunk.frame
     t_read = time.perf_counter()
     # future timestamps are judged against the wall clock when the replay starts
-    v = validate_frame(frame, controls=est.controls, log_controls=est.log_controls, settings=vset,
-                       now_ns=time.time_ns() if now_ns is None else now_ns)
+    v = check_rows(frame, est, settings=vset, now_ns=time.time_ns() if now_ns is None else now_ns,
+                   rows=chunk.rows, line_rejects=chunk.rejects, order=order_of(vset, "time"))
     good = v.good
     sid, X, y, names = prepare_rows(good, est)
     result = pipe.run(sid, X, y, n_series=len(names), ts=good["ts"].to_numpy(dtype=np.int64),
@@ -376,7 +377,8 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
     wall = time.perf_counter() - t0
     summary = {
         "log": str(log_path),
-        "rows": int(len(frame)), "accepted": int(len(good)), "rejected": int(len(v.rejects)),
+        "rows": int(len(frame)) + (0 if chunk.rejects is None else len(chunk.rejects)),
+        "accepted": int(len(good)), "rejected": int(len(v.rejects)),
         "zero_skipped": int(len(v.zero_skipped)), "series": len(names),
         "alerts": int(len(alerts)),
         "alerts_by_rule": {str(k): int(c) for k, c in alerts["rule"].value_counts().items()} if len(alerts) else {},

@@ -21,11 +21,11 @@ import pandas as pd
 import pyarrow as pa
 
 from monitor.estimators import kernel as K
-from monitor.estimators.transform import design_matrix
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
                                  estimates_frame)
 from monitor.rows.isotime import iso_utc
-from monitor.rows.validate import SeriesGate, Validated, renumber, validate_frame
+from monitor.rows.prepare import check_rows, design_rows, order_of
+from monitor.rows.validate import SeriesGate, Validated
 from monitor.types import STATUS_LABELS
 
 
@@ -98,19 +98,18 @@ class ChunkResult:
 
 
 def validate_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offset: int = 0,
-                   rows: np.ndarray | None = None) -> tuple[Validated, np.ndarray]:
-    """Validate ``frame`` (arrival order) with the carried gate; returns it and the gate ids of
-    its good rows (which are in series, then time order).
+                   rows: np.ndarray | None = None, line_rejects: pd.DataFrame | None = None
+                   ) -> tuple[Validated, np.ndarray]:
+    """Validate ``frame`` (arrival order) with the carried gate through the one row path
+    (:func:`monitor.rows.prepare.check_rows`); returns it and the gate ids of its good rows.
 
-    ``rows`` (optional) gives each frame row's data row number in the source, for frames whose
-    rows are not contiguous (a Dask partition); else rows are ``row_offset + 1 ...``.
+    ``rows`` (optional) gives each frame row's row number in the source (file row numbers of
+    the CSV line reader, or a Dask partition's rows); else rows are ``row_offset + 1 ...``;
+    ``line_rejects`` are the reader's rejects of the same lines.
     """
-    est = setup.est
-    v = validate_frame(frame, controls=est.controls, log_controls=est.log_controls,
-                       settings=setup.vset, gate=carried.gate, now_ns=setup.now_ns,
-                       row_offset=0 if rows is not None else row_offset)
-    if rows is not None:
-        v = renumber(v, np.asarray(rows, dtype=np.int64))
+    v = check_rows(frame, setup.est, settings=setup.vset, gate=carried.gate, now_ns=setup.now_ns,
+                   rows=rows, row_offset=row_offset, line_rejects=line_rejects,
+                   order=order_of(setup.vset, "time"))
     if len(v.good):
         sid = carried.gate.ids(v.good["series"])      # arrow-backed text: no Python strings
     else:
@@ -118,19 +117,12 @@ def validate_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row
     return v, sid
 
 
-def design_rows(good: pd.DataFrame, est) -> tuple[np.ndarray, np.ndarray]:
-    """Design matrix ``[1, log p, controls]`` and ``log q`` of validated rows."""
-    specs = est._specs
-    X = design_matrix(good["price"].to_numpy(), {c.name: good[c.name].to_numpy() for c in specs},
-                      specs)
-    return X, np.log(good["quantity"].to_numpy(dtype=np.float64))
-
-
 def run_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offset: int = 0,
-              rows: np.ndarray | None = None) -> ChunkResult:
+              rows: np.ndarray | None = None, line_rejects: pd.DataFrame | None = None
+              ) -> ChunkResult:
     """Validate ``frame`` and run the pipeline over its good rows, carrying state (see
-    :func:`validate_chunk` for ``rows``)."""
-    v, sid = validate_chunk(frame, setup, carried, row_offset, rows)
+    :func:`validate_chunk` for ``rows`` and ``line_rejects``)."""
+    v, sid = validate_chunk(frame, setup, carried, row_offset, rows, line_rejects)
     good = v.good
     n_series = len(carried.gate.index)
     carried.grow(setup.pipe, n_series)
@@ -151,7 +143,8 @@ def run_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offs
                                        "beta_lo", "beta_hi", "message", "details"])
     if alerts is None or not len(alerts):
         alerts = pd.DataFrame({c: pd.Series(dtype=object) for c in ALERT_OUT_COLUMNS})
-    return ChunkResult(v, sid, out, status, events, len(frame), alerts)
+    n_lines = len(frame) + (0 if line_rejects is None else len(line_rejects))
+    return ChunkResult(v, sid, out, status, events, n_lines, alerts)
 
 
 @dataclass
@@ -261,8 +254,12 @@ def _final(good: pd.DataFrame, res: ChunkResult) -> pd.DataFrame:
     if sid.size == 0:
         return pd.DataFrame(columns=["ts", *FINAL_FIELDS, "status", "n"],
                             index=pd.Index([], name="series", dtype=object))
-    last = np.flatnonzero(np.r_[sid[1:] != sid[:-1], True])
-    counts = np.diff(np.r_[-1, last])
+    # each series' last row in processing order (rows need not be grouped by series: with
+    # [validation] order = "arrival" they stay in arrival order), and its row count
+    last_of = np.full(int(sid.max()) + 1, -1, dtype=np.int64)
+    np.maximum.at(last_of, sid, np.arange(sid.size, dtype=np.int64))
+    last = np.sort(last_of[last_of >= 0])
+    counts = np.bincount(sid)[sid[last]]
     f = pd.DataFrame({name: res.out[last, slot] for name, slot in zip(FINAL_FIELDS, _FINAL_SLOTS)},
                      index=pd.Index(good["series"].iloc[last].to_numpy(dtype=object), name="series"))
     f.insert(0, "ts", good["ts"].to_numpy(dtype=np.int64)[last])

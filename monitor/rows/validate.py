@@ -8,7 +8,8 @@ Checks, in order, each giving one reason per row (the first that fails):
   the future beyond ``max_future_s`` (only when a reference time ``now`` is given);
 - ``price``, ``quantity`` and each named control: empty, not a number, NaN, infinity;
   price <= 0; quantity < 0; quantity == 0 (zero policy: ``reject`` quarantines it, ``skip``
-  counts it and keeps it out of the estimator); a logged control <= 0;
+  counts it and keeps it out of the estimator, ``keep`` passes it on for a model that takes
+  zero quantities as data); a logged control <= 0;
 - per series, in time order, against state carried across batches (:class:`SeriesGate`):
   a duplicate (same series and timestamp as the latest or one of the last 15 accepted rows;
   ``keep_first`` keeps the first and quarantines later copies); a row older than the series' last accepted time by more than ``allowed_lateness_s``;
@@ -40,16 +41,20 @@ MIN_BATCH = 5        # time-ordered batches: rows of a new series that give a ba
 class ValidationSettings:
     """Validation rules; see the module docstring."""
 
-    zero_policy: str = "reject"            # reject | skip
+    zero_policy: str = "reject"            # reject | skip | keep (a model that takes q itself)
     duplicate_policy: str = "keep_first"   # keep_first | reject_all
     allowed_lateness_s: float = 0.0
     max_future_s: float = 3600.0
     unit_ratio: float = 50.0
     key: tuple = ()                        # [series] key: 2+ columns make a composite id
+    order: str = "auto"                    # auto | time | arrival (see monitor.rows.prepare)
 
     def __post_init__(self):
-        if self.zero_policy not in ("reject", "skip"):
-            raise ConfigError(f"zero_policy = {self.zero_policy!r}: must be 'reject' or 'skip'")
+        if self.zero_policy not in ("reject", "skip", "keep"):
+            raise ConfigError(f"zero_policy = {self.zero_policy!r}: must be 'reject', 'skip' or "
+                              f"'keep'")
+        if self.order not in ("auto", "time", "arrival"):
+            raise ConfigError(f"order = {self.order!r}: must be 'auto', 'time' or 'arrival'")
         if self.duplicate_policy not in ("keep_first", "reject_all"):
             raise ConfigError(f"duplicate_policy = {self.duplicate_policy!r}: must be 'keep_first' or 'reject_all'")
         for name in ("allowed_lateness_s", "max_future_s"):
@@ -62,7 +67,8 @@ class ValidationSettings:
 #: ``[validation]`` keys: (type, default), the schema :mod:`monitor.settings` composes
 VALIDATION_KEYS = {"zero_policy": (str, "reject"), "duplicate_policy": (str, "keep_first"),
                    "allowed_lateness_s": ((int, float), 0.0),
-                   "max_future_s": ((int, float), 3600.0), "unit_ratio": ((int, float), 50.0)}
+                   "max_future_s": ((int, float), 3600.0), "unit_ratio": ((int, float), 50.0),
+                   "order": (str, "auto")}
 SECTIONS = {"validation": VALIDATION_KEYS}
 
 
@@ -319,6 +325,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     zero = (values["quantity"] == 0) & ~flagged
     if settings.zero_policy == "reject":
         flag(zero, "quantity", "zero quantity cannot be logged (zero_policy = reject)")
+        zero[:] = False
+    elif settings.zero_policy == "keep":      # the model takes zero quantities as data
         zero[:] = False
 
     # ordered checks on the remaining rows, per series in time order

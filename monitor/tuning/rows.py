@@ -8,7 +8,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from monitor.ingest.logio import column_names
-from monitor.replay.kernel import CarriedState, Setup, design_rows, validate_chunk
+from monitor.replay.kernel import CarriedState, Setup, validate_chunk
+from monitor.rows.prepare import design_rows
 from monitor.settings import Config, estimator_from_config
 
 
@@ -38,11 +39,11 @@ def validation_setup(config: Config, now_ns: int | None) -> Setup:
 
 
 def rows_from_frames(frames, setup: Setup) -> Rows:
-    """Validate ``(frame, row_offset, rows)`` triples in order with one carried gate."""
+    """Validate ``(frame, row_offset, rows[, line_rejects])`` in order with one carried gate."""
     carried = CarriedState()
     parts, rejected = [], 0
-    for frame, offset, rows in frames:
-        v, sid = validate_chunk(frame, setup, carried, offset, rows)
+    for frame, offset, rows, *more in frames:
+        v, sid = validate_chunk(frame, setup, carried, offset, rows, more[0] if more else None)
         rejected += len(v.rejects)
         if len(v.good):
             X, y = design_rows(v.good, setup.est)
@@ -63,4 +64,4 @@ def load_rows(log, config: Config, chunk_rows: int | None = None, now_ns: int | 
 
     setup = validation_setup(config, now_ns)
     _, chunks = log_chunks(log, column_names(config), chunk_rows)
-    return rows_from_frames(((c.frame, c.row_offset, None) for c in chunks), setup)
+    return rows_from_frames(((c.frame, c.row_offset, c.rows, c.rejects) for c in chunks), setup)
