@@ -21,6 +21,7 @@ Only one process may write a store's live state: the Monitor holds an exclusive 
 
 from __future__ import annotations
 
+import math
 import inspect
 import threading
 import time
@@ -88,6 +89,7 @@ class Monitor:
             self._controls = list(self.estimator.controls) + list(self.estimator.log_controls)
             self._required = required_columns(self.estimator)
             self._run_params = set(inspect.signature(self.pipeline.run).parameters)
+            self._recorded: dict[str, dict] = {}   # series -> last written _in_effect record
             self._fast = True                 # Monitor.observe tries monitor.live.one_row first
             self.plain_calls = 0              # observe calls that took the one-row path
             self._nan_median = np.zeros(0)
@@ -199,16 +201,18 @@ class Monitor:
                 offset = {"kind": kind, "position": new_position, "rows_read": consumed,
                           "rows_rejected": len(rejects), "last_error": notice}
                 kept, est = plan["kept"], plan["estimates"]
+                record = self._in_effect(list(plan["checkpoints"]))
                 summary = write_batch(
                     self.store, observations=plan["observations"],
                     estimates=kept if kept is not None and len(kept) else None,
                     latest_estimates=est if len(est) else None, alert_changes=changes,
                     checkpoints=plan["checkpoints"] or None, offsets={source: offset},
-                    rejects=rejects if len(rejects) else None)
+                    rejects=rejects if len(rejects) else None, series=record or None)
             except BaseException:
                 (self.gate.index, self.gate.last_ts, self.gate.ring, self.gate.count) = snap
                 raise
             self._commit(plan)
+            self._recorded.update({r["series"]: r for r in record})
             self._rows_read[source] = self._rows_read.get(source, 0) + consumed
         return BatchReport(source=source, rows=consumed, accepted=plan["accepted"],
                            rejected=len(rejects), zero_skipped=plan["zero_count"],
@@ -308,6 +312,29 @@ class Monitor:
         plan["touched"] = touched
         plan["checkpoints"] = checkpoints(self, touched, source)
         return plan
+
+    def _in_effect(self, names: list[str]) -> list[dict]:
+        """Forgetting factor and elasticity bounds in effect for ``names`` (the series' own
+        bounds, else ``[bounds]``; NULL for an unset side), for the ``series`` table's record
+        columns ``forgetting``, ``bound_low``, ``bound_high`` (issue 16: the dashboard draws
+        them). Only series whose record changed since the last committed write are returned."""
+        if not names:
+            return []
+        lam = getattr(self.estimator, "forgetting", None)
+        low, high = (self.pipeline.bounds.limits() if hasattr(self.pipeline, "bounds")
+                     else (-math.inf, math.inf))
+        own = series_bounds(self.store, names)
+        out = []
+        for n in names:
+            o = own.get(n, (None, None))
+            lo = o[0] if o[0] is not None else low
+            hi = o[1] if o[1] is not None else high
+            rec = {"series": n, "forgetting": None if lam is None else float(lam),
+                   "bound_low": float(lo) if math.isfinite(lo) else None,
+                   "bound_high": float(hi) if math.isfinite(hi) else None}
+            if self._recorded.get(n) != rec:
+                out.append(rec)
+        return out
 
     def _run_extras(self, ts: np.ndarray, names: list[str]) -> dict:
         """Optional arguments of ``Pipeline.run``: row times, series names (for messages) and
