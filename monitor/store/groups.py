@@ -200,6 +200,14 @@ def fold_group_alerts(store: Store, group_by: Sequence[str], resolve: Callable[[
                     int(k) for k in plan.member_keys]
                 store.conn.execute("UPDATE alerts SET details = ?, updated_at = ? WHERE id = ?",
                                    (to_json(det, finite=True), now, gid))
+                # a notification not sent yet goes out with every member known by then
+                for oid, body in store.conn.execute(
+                        "SELECT id, payload FROM outbox WHERE alert_id = ? AND status = "
+                        "'pending' AND attempts = 0", (gid,)).fetchall():
+                    msg = json.loads(body)
+                    msg["details"] = det
+                    store.conn.execute("UPDATE outbox SET payload = ? WHERE id = ?",
+                                       (to_json(msg, finite=True), oid))
                 out["extended"].append(gid)
             for key in plan.member_keys:
                 _fold(store, int(key), gid, now)
