@@ -38,6 +38,7 @@ import pyarrow.csv as pacsv
 
 from monitor.errors import ConfigError, SourceError
 from monitor.estimators import kernel as K
+from monitor.estimators.feedback import feedback_summary
 from monitor.ingest.chunks import iter_chunks, log_chunks, read_whole
 from monitor.ingest.logio import column_names, write_table
 from monitor.pipeline.run import Pipeline
@@ -218,6 +219,9 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
     out_dir.mkdir(parents=True, exist_ok=True)
     setup = make_setup(config, sample_every, now_ns, chosen, keep_obs=truth_df is not None)
     acc = Accumulator(out_dir, keep_report=bool(report))
+    if getattr(setup.est, "nout", 0) > K.NOUT:      # instruments: estimates gain first_stage_f
+        acc.est_w = TableWriter(out_dir / "estimates.csv",
+                                SCHEMAS["estimates"].append(pa.field("first_stage_f", _F)))
     if engine == "dask":
         from monitor.replay.dask import replay_partitions
 
@@ -324,6 +328,7 @@ def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info
     }
     if scores is not None:
         summary["detection"] = scores.summary()
+    summary["price_feedback"] = feedback_summary(alerts)
     return summary
 
 

@@ -189,6 +189,8 @@ def estimates_table(good: pd.DataFrame, out: np.ndarray, status: np.ndarray,
     cols["status"] = _LABELS.take(pa.array(np.asarray(status[sel], dtype=np.int64)))
     for name, j in _EST_TAIL:
         cols[name] = pa.array(o[:, j], pa.float64(), from_pandas=True)
+    if o.shape[1] > K.NOUT:      # instruments: the effective first-stage F (issue 17)
+        cols["first_stage_f"] = pa.array(o[:, K.NOUT], pa.float64(), from_pandas=True)
     return pa.table(cols)
 
 
