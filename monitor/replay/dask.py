@@ -33,8 +33,10 @@ import pandas as pd
 import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError
+from monitor.ingest.base import canonical_names
 from monitor.ingest.chunks import (DEFAULT_BLOCK_BYTES, Block, canonical_frame, csv_blocks,
-                                   csv_header, mean_line_bytes, read_csv_block)
+                                   csv_header, mean_line_bytes)
+from monitor.ingest.csv_text import parse_lines, read_header
 from monitor.ingest.logio import check_file, column_names, log_format, table_to_frame
 from monitor.progress import Progress
 
@@ -92,27 +94,51 @@ def log_blocks(log, chunk_rows: int | None, whole: bool) -> list:
 def read_split(log: str, block, columns: dict, npartitions: int):
     """Worker task: read one block and split it by series partition.
 
-    Returns ``(n_rows, pieces)``; piece p holds the block's rows of partition p, in file order,
-    with their position in the block in column ``_pos``.
+    Returns ``(n_rows, pieces, line_rejects)``; piece p holds the block's rows of partition p,
+    in file order, with their row number within the block - 1 in column ``_pos``. A CSV block
+    is split by the one line reader (:func:`monitor.ingest.csv_text.parse_lines`): ``n_rows``
+    counts its lines (blank ones too, as row numbers do) and ``line_rejects`` are the lines
+    it could not split, numbered within the block.
     """
     kind, b = block
+    line_rejects = None
     if kind == "parquet":
         pf = pq.ParquetFile(log)
         table = pf.read() if b is None else pf.read_row_group(b)
         frame = canonical_frame(table_to_frame(table), columns)
+        n = len(frame)
+        pos = np.arange(n, dtype=np.int64)
     else:
-        frame = read_csv_block(log, b, None, columns)
-    n = len(frame)
+        names, _ = read_header(log, str(log), final=True)
+        with open(log, "rb") as fh:
+            fh.seek(b.start)
+            body = fh.read(b.stop - b.start)
+        frame, rows, line_rejects, n = parse_lines(names, canonical_names(names, columns), body, 1)
+        pos = rows - 1
     if "series" in frame.columns:
         part = partition_of(frame["series"], npartitions)
     else:                      # the kernel reports the missing column; keep the rows together
         part = np.zeros(n, np.int64)
-    frame = frame.assign(_pos=np.arange(n, dtype=np.int64))
+    frame = frame.assign(_pos=pos)
     order = np.argsort(part, kind="stable")
     bounds = np.searchsorted(part[order], np.arange(npartitions + 1))
     pieces = [frame.iloc[order[bounds[p]:bounds[p + 1]]].reset_index(drop=True)
               for p in range(npartitions)]
-    return n, pieces
+    return n, pieces, line_rejects
+
+
+def split_line_rejects(split):
+    return split[2]
+
+
+def shift_rejects(rejects, offset: int):
+    """Line rejects numbered within a block, renumbered by the rows before the block."""
+    if rejects is None or not len(rejects) or not offset:
+        return rejects
+    old = rejects["row"].to_numpy(dtype=np.int64)
+    reasons = [f"row {a + offset}:" + text[len(f"row {a}:"):] for a, text in
+               zip(old.tolist(), rejects["reason"].tolist())]
+    return rejects.assign(row=old + offset, reason=reasons)
 
 
 def split_part(split, p):
@@ -123,16 +149,19 @@ def split_rows(split):
     return split[0]
 
 
-def run_partition(pieces: list, offsets: list[int], setup, truth, horizon: int):
-    """Worker task: the kernel over one partition's pieces (block order), with carried state."""
+def run_partition(pieces: list, offsets: list[int], setup, truth, horizon: int,
+                  line_rejects: list | None = None):
+    """Worker task: the kernel over one partition's pieces (block order), with carried state;
+    ``line_rejects`` (one entry per block, partition 0 only) are the reader's rejects."""
     from monitor.replay.detection import score
     from monitor.replay.kernel import CarriedState, combine, partial_of, run_chunk
 
     carried = CarriedState()
     parts = []
-    for piece, off in zip(pieces, offsets):
+    for i, (piece, off) in enumerate(zip(pieces, offsets)):
         rows = off + 1 + piece["_pos"].to_numpy(dtype=np.int64)
-        res = run_chunk(piece.drop(columns="_pos"), setup, carried, rows=rows)
+        lines = shift_rejects(line_rejects[i], off) if line_rejects else None
+        res = run_chunk(piece.drop(columns="_pos"), setup, carried, rows=rows, line_rejects=lines)
         parts.append(partial_of(res, setup, carried))
     out = combine(parts)
     if truth is not None:
@@ -165,10 +194,11 @@ def replay_partitions(log, config, setup, acc, truth, horizon, scheduler, progre
         setup_f = client.scatter(setup, broadcast=True)
         truth_f = client.scatter(truth, broadcast=True) if truth is not None else None
         parts = []
+        lines = [client.submit(split_line_rejects, s) for s in splits]
         for p in range(nparts):
             pieces = [client.submit(split_part, s, p) for s in splits]
             parts.append(client.submit(run_partition, pieces, offsets, setup_f, truth_f, horizon,
-                                       pure=False))
+                                       lines if p == 0 else None, pure=False))
         del splits
         rejects = []
         for fut in parts:        # in partition order: the output files do not depend on timing

@@ -117,13 +117,14 @@ def tune(log, out_dir, *, truth=None, space=None, config: Config | None = None,
     for s in settings:
         setting_config(config, s, str(space))          # refuse bad keys before any work
     from monitor.tuning import grid as R
+    from monitor.tuning.rows import load_rows
 
     full = R.with_thresholds(config, settings)
     if engine == "dask":
         summaries, n_rows = R.evaluate_dask(log, config, truth_df, full, horizon, scheduler,
                                             npartitions, chunk_rows, now_ns, progress)
     else:
-        rows = R.load_rows(log, config, chunk_rows, now_ns)
+        rows = load_rows(log, config, chunk_rows, now_ns)
         n_rows = rows.n
         summaries = R.evaluate_local(rows, truth_df, config, full, horizon, workers, progress)
     res = results_frame(settings, summaries)
