@@ -44,6 +44,8 @@ from monitor.ingest.logio import column_names, write_table
 from monitor.pipeline.run import Pipeline
 from monitor.progress import Progress
 from monitor.replay.detection import DEFAULT_HORIZON, Scores, read_truth, score
+from monitor.replay.groups import apply_groups
+from monitor.live.groups import settings_from_config as group_settings_of
 from monitor.replay.kernel import (ALERT_OUT_COLUMNS, FINAL_FIELDS, CarriedState, Partial, Setup,
                                    merge_final, partial_of, run_chunk)
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
@@ -231,6 +233,7 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
         names, info = _replay_local(log, config, setup, acc, chunk_rows, progress)
     t_core = time.perf_counter()
     alerts, opened = acc.close()
+    groups = apply_groups(out_dir, group_settings_of(config), names)   # [series] groups
     scores = None
     if truth_df is not None:
         if acc.scores:
@@ -241,6 +244,8 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
             scores = score(sid, ts, names, opened, truth_df, horizon)
         scores.changes.to_csv(out_dir / "detection.csv", index=False)
     summary = build_summary(log, acc, alerts, setup, config, t0, t_core, info, engine, scores)
+    if groups:
+        summary["groups"] = groups
     if report:
         from monitor.report.html import write_replay_report
 
