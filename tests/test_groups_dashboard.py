@@ -110,3 +110,31 @@ def test_groups_page_under_apptest(grouped_store):
     assert len(specs) == 2
     assert any("pooled estimate" in json.dumps(s) for s in specs)
     assert any("Pooled b" in c.value for c in at.caption)
+
+
+def test_composite_ids_round_trip_through_overview_and_series_detail(grouped_store, tmp_path):
+    """An id holding an escaped '/' (a key part '1/2 litre') is listed and opens its detail."""
+    from streamlit.testing.v1 import AppTest
+
+    from monitor import store as mstore
+    from monitor.groups.keys import join_key
+
+    sid = join_key(["1/2 litre", "elm-cross"])
+    import os
+    db = os.environ["ELMON_DB"]
+    ts = pd.date_range("2024-03-01", periods=40, freq="D", tz="UTC")
+    est = pd.DataFrame({"series": sid, "ts": ts, "beta": -1.2, "beta_se": 0.2, "beta_lo": -1.6,
+                        "beta_hi": -0.8, "n_eff": 30.0, "status": "ok", "intercept": 3.0,
+                        "resid_sd": 0.1, "innovation": 0.0, "z": 0.0})
+    obs = pd.DataFrame({"series": sid, "ts": ts, "price": 3.0, "quantity": 10.0})
+    with mstore.Store.open(db) as st:
+        mstore.write_batch(st, observations=obs, estimates=est, latest_estimates=est)
+    at = AppTest.from_file(str(APP), default_timeout=30)
+    at.run()
+    assert not at.exception, [e.value for e in at.exception]
+    assert sid in at.dataframe[0].value["series"].tolist()
+    at.switch_page("views/series.py")
+    at.query_params["series"] = sid
+    at.run()
+    assert not at.exception, [e.value for e in at.exception]
+    assert at.selectbox(key="sd_series").value == sid
