@@ -49,14 +49,19 @@ def _kind_words(kinds) -> list[str]:
 
 def elasticity_chart(band: pd.DataFrame, low: float | None = None, high: float | None = None,
                      alerts: pd.DataFrame | None = None, truth: pd.DataFrame | None = None,
-                     height: int = 340, title: str | None = None) -> alt.LayerChart:
+                     height: int = 340, title: str | None = None,
+                     y_domain: tuple[float, float] | None = None) -> alt.LayerChart:
     """Elasticity line with its confidence band, the bounds as horizontal rules, alert markers
     (shape = alert kind) and known change points as dotted vertical rules.
 
     ``band`` needs ``ts, beta, beta_lo, beta_hi, status, drawable`` (see
     :func:`dashboard.shaping.band_frame`); ``alerts`` needs ``ts, beta, kind``; ``truth`` needs
-    ``ts, kind``.
+    ``ts, kind``. ``y_domain`` fixes the vertical range (marks beyond it are clipped at the
+    edge; see :func:`dashboard.shaping.beta_domain`).
     """
+    yscale = (alt.Scale(domain=list(y_domain), zero=False) if y_domain is not None
+              else alt.Scale(zero=False))
+    clip = y_domain is not None
     names = list(ELASTICITY_ELEMENTS)
     colour = alt.Color("element:N", scale=_element_scale(names),
                        legend=alt.Legend(title=None, orient="top", symbolOpacity=1.0,
@@ -68,10 +73,11 @@ def elasticity_chart(band: pd.DataFrame, low: float | None = None, high: float |
            alt.Tooltip("beta_lo:Q", title="low end", format=".3f"),
            alt.Tooltip("beta_hi:Q", title="high end", format=".3f"),
            alt.Tooltip("status:N")]
-    area = alt.Chart(data.assign(element="confidence band")).mark_area(opacity=0.45).encode(
-        x=x, y=alt.Y("beta_lo:Q", title="elasticity b (d log q / d log p)"),
+    area = alt.Chart(data.assign(element="confidence band")).mark_area(
+        opacity=0.45, clip=clip).encode(
+        x=x, y=alt.Y("beta_lo:Q", title="elasticity b (d log q / d log p)", scale=yscale),
         y2="beta_hi:Q", color=colour)
-    line = alt.Chart(data).mark_line(strokeWidth=2).encode(
+    line = alt.Chart(data).mark_line(strokeWidth=2, clip=clip).encode(
         x=x, y="beta:Q", color=colour, tooltip=tip)
     layers = [area, line]
     rules = [{"y": v, "element": "bounds (low / high)", "which": w}

@@ -75,9 +75,23 @@ def find_replay_folders(root, max_depth: int = 2) -> list[str]:
     return sorted(set(found))
 
 
+#: Columns of replay files that hold the text as read from the input: a bad value such as
+#: ``n/a`` or ``NA`` must be shown as written, not turned into a missing value (issue 16).
+TEXT_COLUMNS = ("value", "raw", "reason", "field", "series", "message")
+
+#: The words pandas' ``read_csv`` reads as missing by default (its documentation, na_values),
+#: still applied to the numeric columns.
+NA_WORDS = ("", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND",
+            "1.#QNAN", "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null")
+
+
 def _read_csv(path: Path, name: str) -> pd.DataFrame:
     try:
-        return pd.read_csv(path)
+        head = pd.read_csv(path, nrows=0)
+        # text columns: only an empty field is missing; other columns: pandas' usual NA words
+        na = {c: ([""] if c in TEXT_COLUMNS else list(NA_WORDS)) for c in head.columns}
+        return pd.read_csv(path, keep_default_na=False, na_values=na,
+                           dtype={c: str for c in head.columns if c in TEXT_COLUMNS})
     except pd.errors.EmptyDataError:
         return pd.DataFrame()
     except (OSError, pd.errors.ParserError) as exc:

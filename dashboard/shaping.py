@@ -373,3 +373,71 @@ def latest_per_series(estimates: pd.DataFrame) -> pd.DataFrame:
     order = estimates.assign(_t=to_utc(estimates["ts"]).to_numpy()).sort_values(
         ["series", "_t"], kind="stable")
     return order.groupby("series", sort=True).tail(1).drop(columns="_t").reset_index(drop=True)
+
+
+# ----------------------------------------------------------------------------- issue 16
+def bounds_in_effect(row) -> tuple[float | None, float | None]:
+    """The elasticity bounds to draw for a series row of ``latest_estimates``: its own
+    ``low`` / ``high`` where set, else ``bound_low`` / ``bound_high`` (the bounds the engine
+    recorded as in effect: ``[bounds]`` or ``--bounds``); ``None`` for a side without one."""
+    out = []
+    for own, rec in (("low", "bound_low"), ("high", "bound_high")):
+        v = row.get(own)
+        if v is None or pd.isna(v):
+            v = row.get(rec)
+        out.append(None if v is None or pd.isna(v) else float(v))
+    return out[0], out[1]
+
+
+def truth_in_span(truth: pd.DataFrame, ts) -> tuple[pd.DataFrame, int]:
+    """Known change points inside the time span of ``ts`` and the count of those outside, so a
+    change point in the future does not stretch the time axis and squash the data."""
+    if truth is None or not len(truth) or not len(ts):
+        return truth, 0
+    t = to_utc(truth["ts"])
+    s = to_utc(pd.Series(ts))
+    keep = ((t >= s.min()) & (t <= s.max())).to_numpy()
+    return truth.loc[keep], int((~keep).sum())
+
+
+def beta_domain(band: pd.DataFrame, low=None, high=None, lo_q: float = 0.02,
+                hi_q: float = 0.98) -> tuple[float, float] | None:
+    """Vertical range of the elasticity chart: the ``lo_q`` to ``hi_q`` quantiles of the band
+    (``beta_lo``, ``beta``, ``beta_hi``) over rows past warm-up, widened to include the bounds and
+    padded by 5 % of the span. Early estimates of a young series (b of -12 or +15 from a
+    handful of rows) then no longer flatten a real change from -1.3 to -2.3. ``None`` without
+    values."""
+    if band is None or not len(band):
+        return None
+    rows = band
+    if "status" in band.columns:
+        rows = band.loc[band["status"].astype(str) != "warming_up"]
+    vals = np.concatenate([pd.to_numeric(rows[c], errors="coerce").to_numpy(dtype="float64")
+                           for c in ("beta_lo", "beta", "beta_hi") if c in rows.columns])
+    vals = vals[np.isfinite(vals)]
+    if not vals.size:
+        return None
+    lo, hi = (float(v) for v in np.quantile(vals, [lo_q, hi_q]))
+    for b in (low, high):
+        if b is not None and np.isfinite(b):
+            lo, hi = min(lo, float(b)), max(hi, float(b))
+    pad = 0.05 * (hi - lo) if hi > lo else 0.5
+    return lo - pad, hi + pad
+
+
+def per_row_trends(trends) -> tuple[list[list[float]], list[str]]:
+    """Each sparkline mapped onto [0, 1] of ITS OWN range (min to max), with a text giving that
+    range, so every row shows its own movement instead of a flat line on a shared scale."""
+    out, spans = [], []
+    for t in trends:
+        a = np.asarray(t, dtype="float64")
+        fin = a[np.isfinite(a)]
+        if not fin.size:
+            out.append(list(a))
+            spans.append("—")
+            continue
+        lo, hi = float(fin.min()), float(fin.max())
+        span = hi - lo
+        out.append(((a - lo) / span).tolist() if span > 1e-12 else [0.5] * len(a))
+        spans.append(f"{fmt_num(lo)} to {fmt_num(hi)}")
+    return out, spans

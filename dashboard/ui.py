@@ -35,6 +35,13 @@ def sidebar() -> None:
             st.caption(f"Known change points: `{Path(s['truth']).name}`", help=s["truth"])
 
 
+def download_csv(table: pd.DataFrame, name: str, key: str) -> None:
+    """A button that downloads ``table`` as CSV (UTF-8, no index), as the table shows it."""
+    st.download_button(f"Download {name}", table.to_csv(index=False).encode("utf-8"),
+                       file_name=name, mime="text/csv", key=key,
+                       icon=":material/download:")
+
+
 def run_every() -> float | None:
     """Seconds between fragment reruns, or ``None`` while paused."""
     if st.session_state.get("refresh_paused", False):

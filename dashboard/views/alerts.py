@@ -6,13 +6,13 @@ from __future__ import annotations
 import pandas as pd
 import streamlit as st
 
-from dashboard import data, shaping, ui
+from dashboard import charts, data, shaping, ui
 from dashboard.legend import ALERT_SHAPES, STATE_SYMBOLS
 from monitor.errors import ElmonError
 
 STATES = ("open", "acknowledged", "resolved")
-TABLE_COLUMNS = ["id", "series", "kind", "state", "severity", "opened_ts", "beta", "beta_lo",
-                 "beta_hi", "message"]
+TABLE_COLUMNS = ["id", "series", "kind", "state", "severity", "opened_ts", "change_ts", "size",
+                 "beta_before", "beta_after", "beta", "beta_lo", "beta_hi", "message"]
 
 
 def _table(view: pd.DataFrame) -> pd.DataFrame:
@@ -20,6 +20,7 @@ def _table(view: pd.DataFrame) -> pd.DataFrame:
     t["state"] = [STATE_SYMBOLS.get(s, s) for s in t["state"].astype(str)]
     t["kind"] = t["kind"].astype(str).str.replace("_", " ")
     t["opened_ts"] = shaping.to_utc(t["opened_ts"]).to_numpy()
+    t["change_ts"] = shaping.to_utc(t["change_ts"]).to_numpy()
     return t
 
 
@@ -28,6 +29,14 @@ def _column_config() -> dict:
     return {"id": cc.NumberColumn("alert", format="%d"),
             "opened_ts": cc.DatetimeColumn("opened (data time, UTC)", format="YYYY-MM-DD HH:mm",
                                            timezone="UTC"),
+            "change_ts": cc.DatetimeColumn("change began (estimate, UTC)",
+                                           format="YYYY-MM-DD HH:mm", timezone="UTC",
+                                           help="— where the detector gives no change time"),
+            "size": cc.NumberColumn("size of change", format="%.2f",
+                                    help="b after − b before for an elasticity change; the "
+                                         "log level shift for a level shift"),
+            "beta_before": cc.NumberColumn("b before", format="%.2f"),
+            "beta_after": cc.NumberColumn("b after", format="%.2f"),
             "beta": cc.NumberColumn("elasticity b", format="%.2f"),
             "beta_lo": cc.NumberColumn("interval low", format="%.2f"),
             "beta_hi": cc.NumberColumn("interval high", format="%.2f")}
@@ -45,9 +54,11 @@ def _detail(db: str, alert_id: int) -> None:
     st.write(a.get("message", ""))
     st.page_link("views/series.py", label=f"Open series detail: {a['series']}",
                  icon=":material/show_chart:", query_params={"series": str(a["series"])})
-    st.markdown("**Event history**")
     ev = data.events(db, alert_id)
     cc = st.column_config
+    _explain(db, a)
+    st.markdown("**Event history**")
+    ui.download_csv(ev, f"alert{alert_id}_events.csv", key="al_events_csv")
     st.dataframe(ev, hide_index=True, placeholder="—", key="al_events",
                  column_order=["event", "at", "ts", "who", "note"],
                  column_config={"at": cc.DatetimeColumn("when (clock, UTC)",
@@ -76,6 +87,52 @@ def _detail(db: str, alert_id: int) -> None:
             st.rerun()
 
 
+def _explain(db: str, a: dict) -> None:
+    """Why this alert fired: the detector's statistic at the alarm against its threshold (where
+    the alert records them), the estimated change time, b before and after with intervals, and
+    how quickly a change of this series can be seen (median delay, where recorded)."""
+    d = a.get("details") or {}
+    st.markdown("**Explain this alert**")
+    pick = lambda k: a.get(k) if a.get(k) is not None and not pd.isna(a.get(k)) else d.get(k)  # noqa: E731
+    cols = st.columns(4)
+    cols[0].metric("Statistic at the alarm", shaping.fmt_num(d.get("statistic")),
+                   help="the detector's statistic when the alarm was raised")
+    thr = d.get("threshold")
+    cols[1].metric("Threshold", shaping.fmt_num(thr) if thr is not None else "not recorded")
+    cols[2].metric("b before", shaping.fmt_num(pick("beta_before")),
+                   help=f"interval [{shaping.fmt_num(pick('beta_before_lo'))}, "
+                        f"{shaping.fmt_num(pick('beta_before_hi'))}]")
+    cols[3].metric("b after", shaping.fmt_num(pick("beta_after")),
+                   help=f"interval [{shaping.fmt_num(pick('beta_after_lo'))}, "
+                        f"{shaping.fmt_num(pick('beta_after_hi'))}]")
+    change = pick("change_ts") or d.get("started_ts")
+    latest = data.latest(db)
+    row = latest.loc[latest["series"].astype(str) == str(a["series"])]
+    delay = (row["delay50_obs"].iloc[0] if "delay50_obs" in row.columns and len(row)
+             else None)
+    st.caption(
+        "Estimated change began: " + (f"{pd.Timestamp(change):%Y-%m-%d %H:%M} UTC" if change
+                                      else "— (this detector gives no change time)")
+        + ". Detectability of this series: " + (
+            f"a change like this is seen after about {shaping.fmt_num(delay, 0)} observations "
+            "(median delay)" if delay is not None and not pd.isna(delay)
+            else "— (no median delay recorded for this series)") + ".")
+    hist = data.history(db, str(a["series"]))
+    band = shaping.band_frame(hist)
+    if len(band.loc[band["drawable"]]):
+        mine = data.alerts(db, series=str(a["series"]))
+        markers = shaping.alert_markers(mine.loc[mine["id"] == a["id"]], band)
+        truth = (pd.DataFrame({"ts": [pd.Timestamp(change)], "kind": ["estimated change"]})
+                 if change else None)
+        drawn = band.loc[band["drawable"]]
+        low, high = shaping.bounds_in_effect(row.iloc[0]) if len(row) else (None, None)
+        st.altair_chart(charts.elasticity_chart(
+            drawn, low, high, markers, truth, height=260,
+            y_domain=shaping.beta_domain(drawn, low, high),
+            title="Elasticity with this alert and its estimated change time (dotted)"),
+            width="stretch")
+
+
 def render() -> None:
     db = ui.require_db()
     st.title("Alerts")
@@ -96,8 +153,10 @@ def render() -> None:
     if not len(view):
         st.info("No alerts match these filters.")
         return
-    st.dataframe(_table(view), column_config=_column_config(), hide_index=True,
+    table = _table(view)
+    st.dataframe(table, column_config=_column_config(), hide_index=True,
                  placeholder="—", key="al_table", height=360)
+    ui.download_csv(table, "alerts.csv", key="al_csv")
     ids = [int(i) for i in view["id"]]
     labels = {int(r.id): f"#{int(r.id)} · {r.series} · {str(r.kind).replace('_', ' ')} · {r.state}"
               for r in view.itertuples()}

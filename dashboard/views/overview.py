@@ -12,11 +12,10 @@ TABLE_COLUMNS = ["series", "status", "elasticity", "lo", "hi", "trend", "open_al
                  "last_observation", "n_obs", "n_eff"]
 
 
-def _column_config(y_range=None) -> dict:
+def _column_config() -> dict:
     cc = st.column_config
-    scale = (f"All rows share one scale, from {shaping.fmt_num(y_range[0])} (bottom) to "
-             f"{shaping.fmt_num(y_range[1])} (top), the 1st to 99th percentile of the values "
-             "shown; values beyond are drawn at the edge." if y_range else "")
+    scale = ("Each row on its own scale, from its lowest (bottom) to its highest (top) value: "
+             "see the next column for that range.")
     return {
         "series": cc.TextColumn("series", pinned=True),
         "status": cc.TextColumn("status", help="Symbols are explained under the table."),
@@ -28,6 +27,7 @@ def _column_config(y_range=None) -> dict:
         "trend": cc.LineChartColumn("trend (recent b)", width="medium", y_min=0.0, y_max=1.0,
                                     color=COLOURS["estimate"],
                                     help="The last stored elasticities. " + scale),
+        "trend_range": cc.TextColumn("trend range", help="Lowest to highest b of the trend."),
         "open_alerts": cc.NumberColumn("open alerts", format="%d"),
         "last_observation": cc.DatetimeColumn("last observation (UTC)",
                                               format="YYYY-MM-DD HH:mm", timezone="UTC"),
@@ -45,9 +45,11 @@ def _counts(summ: dict) -> None:
     cols[2].metric("Open alerts", f"{al['active']:,}",
                    help=f"Not yet resolved: {al['open']:,} open, {al['acknowledged']:,} "
                         "acknowledged.")
-    cols[3].metric("Stale sources", f"{int(summ.get('stale_sources') or 0):,}",
-                   help=f"of {int(summ.get('sources') or 0):,} sources: no committed run "
-                        "for over an hour")
+    # one definition of stale: the open 'stale' alerts the service raises for a source or a
+    # series past its stale_after limit (the same number as "stale" in the line below)
+    cols[3].metric("Stale", f"{int(al['by_kind'].get('stale', 0)):,}",
+                   help=f"Open stale alerts: sources (of {int(summ.get('sources') or 0):,}) "
+                        "or series that sent nothing for longer than their stale_after limit.")
     cols[4].metric("Rejected rows", f"{int(summ.get('rejects') or 0):,}")
     if al["by_kind"]:
         st.caption("Open alerts by kind: " + " · ".join(
@@ -78,11 +80,13 @@ def render() -> None:
             view = shaping.sort_overview(
                 shaping.filter_overview(table, statuses, text, only_open), sort)
             st.caption(f"{len(view):,} of {len(table):,} series shown")
-            y_range = shaping.trend_range(view["trend"])
-            shown = view[TABLE_COLUMNS].assign(trend=shaping.scale_trends(view["trend"], y_range))
-            event = st.dataframe(shown, column_config=_column_config(y_range),
+            trends, spans = shaping.per_row_trends(view["trend"])
+            shown = view[TABLE_COLUMNS].assign(trend=trends, trend_range=spans)
+            shown = shown[TABLE_COLUMNS[:6] + ["trend_range"] + TABLE_COLUMNS[6:]]
+            event = st.dataframe(shown, column_config=_column_config(),
                                  hide_index=True, placeholder="—", key="ov_table",
                                  on_select="rerun", selection_mode="single-row", height=520)
+            ui.download_csv(shown.drop(columns=["trend"]), "series.csv", key="ov_csv")
             st.caption("Status: " + legend_markdown() + ". Trend: the last elasticities of the "
                        "series; select a row to open its detail.")
             rows = event.selection.rows if event is not None else []

@@ -9,7 +9,7 @@ from pathlib import Path
 import pandas as pd
 import streamlit as st
 
-from dashboard import charts, data, files, shaping
+from dashboard import charts, data, files, shaping, ui
 from monitor.errors import ElmonError
 
 
@@ -109,6 +109,7 @@ def _detection(rep: dict) -> None:
                "missed change points do not enter the delays.")
     st.markdown("**Per change point**")
     st.dataframe(det, hide_index=True, placeholder="—", key="rp_det")
+    ui.download_csv(det, "detection.csv", key="rp_det_csv")
 
 
 def render() -> None:
@@ -143,6 +144,7 @@ def render() -> None:
     st.subheader("Final estimate per series")
     final = shaping.latest_per_series(est)
     st.dataframe(final, hide_index=True, placeholder="—", key="rp_final")
+    ui.download_csv(final, "final_estimates.csv", key="rp_final_csv")
     if len(est):
         ids = sorted(est["series"].astype(str).unique())
         s = st.selectbox("Series to draw", ids, key="rp_series")
@@ -156,16 +158,20 @@ def render() -> None:
         thin, total = shaping.downsample(
             drawn, max_points=MAX_DRAWN, keep=shaping.nearest_keep_mask(drawn["ts"], markers["ts"]))
         st.altair_chart(charts.elasticity_chart(thin, alerts=markers,
-                                                title=f"Replay: elasticity of {s}"),
+                                                title=f"Replay: elasticity of {s}",
+                                                y_domain=shaping.beta_domain(drawn)),
                         width="stretch")
         st.caption(f"Showing {len(thin):,} of {total:,} points"
                    + (f"; {len(band) - len(drawn):,} without a value (warming up) not drawn"
                       if len(band) > len(drawn) else "") + ".")
     st.subheader("Alerts")
     st.dataframe(alerts, hide_index=True, placeholder="—", key="rp_alerts")
+    if len(alerts):
+        ui.download_csv(alerts, "alerts.csv", key="rp_alerts_csv")
     st.subheader("Rejected rows")
     if len(rejects):
         st.dataframe(rejects, hide_index=True, placeholder="—", key="rp_rejects")
+        ui.download_csv(rejects, "rejects.csv", key="rp_rejects_csv")
     else:
         st.caption("None.")
     with st.expander("Settings and counts (summary.json)"):

@@ -29,10 +29,11 @@ def _pick_series(latest: pd.DataFrame) -> str:
 
 def _headline(row: pd.Series) -> None:
     status = str(row["status"])
-    cols = st.columns(4)
+    # the status column is the widest, so its text ("out of bounds") is not cut
+    cols = st.columns([2, 3, 4, 2])
     cols[0].metric("Elasticity b", fmt_num(row["beta"]), help=f"status: {status}")
     cols[1].metric("Interval", f"[{fmt_num(row['beta_lo'])}, {fmt_num(row['beta_hi'])}]")
-    cols[2].metric("Status", status_label(status))
+    cols[2].metric("Status", status_label(status), help=status_label(status))
     cols[3].metric("Effective n", fmt_num(row.get("n_eff"), 0))
     if pd.isna(row["beta"]):
         st.caption(f"— means no estimate yet: status {status_label(status)}.")
@@ -47,8 +48,11 @@ def _elasticity(db: str, series: str, hist: pd.DataFrame, row: pd.Series) -> Non
     drawn = band.loc[band["drawable"]]
     keep = shaping.nearest_keep_mask(drawn["ts"], markers["ts"])
     thin, total = shaping.downsample(drawn, max_points=MAX_DRAWN, keep=keep)
-    low, high = row.get("low"), row.get("high")
-    st.altair_chart(charts.elasticity_chart(thin, low, high, markers, known), width="stretch")
+    low, high = shaping.bounds_in_effect(row)
+    inside, later = shaping.truth_in_span(known, drawn["ts"])
+    st.altair_chart(charts.elasticity_chart(thin, low, high, markers, inside,
+                                            y_domain=shaping.beta_domain(drawn, low, high)),
+                    width="stretch")
     not_drawn = len(band) - len(drawn)
     msg = f"Showing {len(thin):,} of {total:,} points"
     if len(thin) < total:
@@ -56,12 +60,18 @@ def _elasticity(db: str, series: str, hist: pd.DataFrame, row: pd.Series) -> Non
         msg += "and every alert time is kept)"
     if not_drawn:
         msg += f"; {not_drawn:,} estimates without a value (warming up) are not drawn"
-    st.caption(msg + f". Alerts: {len(markers)}; known change points: {len(known)}.")
+    if later:
+        msg += (f"; {later} known change point(s) lie outside the data's time span and are "
+                "not drawn")
+    st.caption(msg + f". Alerts: {len(markers)}; known change points: {len(known)}. The "
+               "vertical axis spans the 2nd to 98th percentile of the band (early estimates "
+               "beyond it are clipped at the edge).")
     if truth_err:
         st.warning(f"Truth file not used: {truth_err}")
     elif truth_bad is not None and len(truth_bad):
         st.warning(f"{len(truth_bad)} row(s) of the truth file could not be read:")
         st.dataframe(truth_bad, hide_index=True)
+        ui.download_csv(truth_bad, "truth_rejects.csv", key="sd_truth_bad_csv")
 
 
 def _windows(hist: pd.DataFrame, anchors: list, series: str) -> None:
