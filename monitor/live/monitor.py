@@ -39,7 +39,7 @@ from monitor.live.checkpoints import checkpoints, restore, vector_to_json
 from monitor.live.one_row import NOT_PLAIN, observe_plain
 from monitor.pipeline.run import Pipeline
 from monitor.rows.frames import estimates_frame
-from monitor.rows.prepare import check_rows, order_of, prepare_rows
+from monitor.rows.prepare import check_rows, offset_of, order_of, prepare_rows
 from monitor.rows.validate import validation_from_config
 from monitor.sections import Config
 from monitor.store import Store, thin_estimates, wall_ts, write_batch
@@ -278,7 +278,8 @@ class Monitor:
             glob = self._ensure(names)
             states = self._states[glob].copy()
             kw = self._run_extras(good["ts"].to_numpy(dtype=np.int64), names)
-            res = self.pipeline.run(sid, X, y, n_series=len(names), states=states, **kw)
+            res = self.pipeline.run(sid, X, y, n_series=len(names), states=states,
+                                    offset=offset_of(good, self.estimator), **kw)
             est = estimates_frame(good, res.out, res.status)
             plan["estimates"] = est
             plan["kept"] = thin_estimates(

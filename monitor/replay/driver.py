@@ -50,7 +50,7 @@ from monitor.replay.kernel import (ALERT_OUT_COLUMNS, FINAL_FIELDS, CarriedState
                                    merge_final, partial_of, run_chunk)
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
                                  estimates_frame)
-from monitor.rows.prepare import check_rows, order_of, prepare_rows
+from monitor.rows.prepare import check_rows, offset_of, order_of, prepare_rows
 from monitor.settings import Config, default_config, estimator_from_config, validation_from_config
 from monitor.types import STATUS_LABELS
 
@@ -359,6 +359,7 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
     good = v.good
     sid, X, y, names = prepare_rows(good, est)
     result = pipe.run(sid, X, y, n_series=len(names), ts=good["ts"].to_numpy(dtype=np.int64),
+                      offset=offset_of(good, est),
                       names=names)
     t_core = time.perf_counter()
 

@@ -24,7 +24,7 @@ from monitor.estimators import kernel as K
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
                                  estimates_frame)
 from monitor.rows.isotime import iso_utc
-from monitor.rows.prepare import check_rows, design_rows, order_of
+from monitor.rows.prepare import check_rows, design_rows, offset_of, order_of
 from monitor.rows.validate import SeriesGate, Validated
 from monitor.types import STATUS_LABELS
 
@@ -131,6 +131,7 @@ def run_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offs
         X, y = design_rows(good, setup.est)
         names = carried.names()
         res = setup.pipe.run(sid, X, y, n_series=n_series, states=carried.states,
+                             offset=offset_of(good, setup.est),
                              ts=good["ts"].to_numpy(dtype=np.int64), names=names)
         carried.states = res.states
         out, status, events = res.out, np.asarray(res.status, dtype=np.int8), res.events

@@ -91,7 +91,8 @@ def check_rows(frame: pd.DataFrame, est, *, settings: ValidationSettings | None 
     # instruments (issue 17) are checked like controls: a number, finite (> 0 when logged)
     controls += list(est_instruments(est))
     v = validate_frame(frame, controls=controls,
-                       log_controls=list(est.log_controls) + list(est_instruments(est, True)),
+                       log_controls=list(est.log_controls) + list(est_instruments(est, True))
+                       + ([est.exposure] if getattr(est, "exposure", "") else []),
                        settings=settings, gate=gate, now_ns=now_ns,
                        row_offset=0 if rows is not None else row_offset, order_by=order)
     if rows is not None:
@@ -102,6 +103,13 @@ def check_rows(frame: pd.DataFrame, est, *, settings: ValidationSettings | None 
         both = both.sort_values("row", kind="stable").reset_index(drop=True)
         v = Validated(good=v.good, rejects=both, zero_skipped=v.zero_skipped)
     return v
+
+
+def offset_of(good: pd.DataFrame, est) -> np.ndarray | None:
+    """``log(exposure)`` per good row for an estimator with an exposure column (the Poisson
+    model's ``est.exposure``), else None (validated > 0 by :func:`check_rows`)."""
+    col = getattr(est, "exposure", "")
+    return np.log(good[col].to_numpy(dtype=np.float64)) if col else None
 
 
 def response(good: pd.DataFrame, est) -> np.ndarray:

@@ -76,7 +76,10 @@ def validation_from_config(cfg) -> ValidationSettings:
     """The validation settings of ``[validation]`` (the dataclass's defaults for keys not
     given)."""
     key = tuple(cfg.section("series").get("key") or ())
-    return ValidationSettings(**cfg.section("validation"), key=key)
+    sec = dict(cfg.section("validation"))
+    if cfg.section("estimator").get("model") == "poisson":
+        sec["zero_policy"] = "keep"           # zero quantities are data for the Poisson model
+    return ValidationSettings(**sec, key=key)
 
 
 @dataclass
