@@ -27,9 +27,12 @@ browser-deps:
 	  (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null) \
 	  || echo "==> WARNING: chromium could not be installed; the browser test will fail and say so"; fi
 
+# dashboard port of the demo: make demo PORT=8600 (a port in use is replaced by a free one)
+PORT ?= 8501
+
 demo: install
 	@echo "==> running the elmon demo"
-	$(BIN)/elmon demo
+	$(BIN)/elmon demo --port $(PORT)
 
 test: install browser-deps
 	@echo "==> running the test suite"

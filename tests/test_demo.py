@@ -8,6 +8,7 @@ import signal
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import pandas as pd
 import pytest
@@ -72,3 +73,34 @@ def test_demo_with_dashboard_stops_every_process_on_sigterm(tmp_path):
     time.sleep(1)
     with pytest.raises(OSError):
         urllib.request.urlopen(f"http://127.0.0.1:{port}/_stcore/health", timeout=1)
+
+
+def test_pick_port_replaces_a_port_in_use_and_keeps_a_free_one():
+    """Issue 16: with the dashboard port taken, the demo must not print it as its own."""
+    import socket
+
+    from monitor.cli.demo import pick_port
+
+    with socket.socket() as busy:
+        busy.bind(("127.0.0.1", 0))
+        busy.listen(1)
+        taken = busy.getsockname()[1]
+        got = pick_port(taken)
+        assert got != taken and got > 0
+        with socket.socket() as check:                # the port given back is really free
+            check.bind(("127.0.0.1", got))
+    assert pick_port(taken) == taken                  # released: kept as asked
+
+
+def test_make_demo_passes_the_port():
+    import shutil
+
+    if shutil.which("make") is None:
+        pytest.fail("make is not installed: the Makefile's demo target cannot be checked")
+    root = Path(__file__).resolve().parents[1]
+    for args, port in (([], "8501"), (["PORT=8600"], "8600")):
+        out = subprocess.run(["make", "-n", "demo", *args], cwd=root, capture_output=True,
+                             text=True, timeout=60)
+        assert out.returncode == 0, out.stderr
+        line = next(x for x in out.stdout.splitlines() if "bin/elmon demo" in x)
+        assert line.endswith(f"--port {port}")

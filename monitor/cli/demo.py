@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import logging
 import signal
+import socket
 import subprocess
 import sys
 import threading
@@ -87,6 +88,21 @@ path = "{(s.workdir / 'alerts.jsonl').resolve()}"
 """
 
 
+def pick_port(wanted: int, host: str = "127.0.0.1") -> int:
+    """``wanted`` when nothing listens on it at ``host``, else a free port the system chooses
+    (issue 16: with 8501 taken the demo printed 8501 while the browser showed another
+    process's page). A port can still be taken between this check and the dashboard's start;
+    the health check after the start then reports it."""
+    for port in (wanted, 0):
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
+            try:
+                sock.bind((host, port))
+            except OSError:
+                continue
+            return int(sock.getsockname()[1])
+    raise ConfigError(f"no free port for the dashboard on {host} (asked for {wanted})")
+
+
 def _wait_healthy(port: int, timeout: float = 30.0) -> bool:
     url = f"http://127.0.0.1:{port}/_stcore/health"
     t0 = time.monotonic()
@@ -146,12 +162,17 @@ def run_demo(s: DemoSettings, out=print) -> dict:
             deadline = time.monotonic() + 20
             while not db.exists() and time.monotonic() < deadline:
                 time.sleep(0.2)
-            dash = subprocess.Popen(streamlit_command(str(db.resolve()), s.port, "127.0.0.1",
+            port = pick_port(s.port)
+            if port != s.port:
+                out(f"  port {s.port} is in use by another program: the dashboard uses port "
+                    f"{port} instead (choose one with --port, or make demo PORT=...)")
+            dash = subprocess.Popen(streamlit_command(str(db.resolve()), port, "127.0.0.1",
                                                       str((wd / "truth.csv").resolve())),
                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-            url = f"http://127.0.0.1:{s.port}/"
+            url = f"http://127.0.0.1:{port}/"
             summary["url"] = url
-            healthy = _wait_healthy(s.port)
+            summary["port"] = port
+            healthy = _wait_healthy(port)
             out(f"  dashboard: {url}" + ("" if healthy else "  (not answering yet)"))
         out("  Ctrl-C stops everything. Estimates are statistical evidence, not decisions.")
         t0 = time.monotonic()
