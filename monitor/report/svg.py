@@ -59,13 +59,38 @@ def nice_ticks(lo: float, hi: float, n: int = 5) -> list[float]:
 
 
 def time_ticks(lo_ns: float, hi_ns: float, n: int = 6) -> tuple[list[float], str]:
-    """Tick positions (ns) on calendar-ish steps and the strftime format to label them."""
+    """Tick positions (ns) on calendar steps and the strftime format to label them.
+
+    Every tick sits exactly at the time its label names: steps of a month or more are calendar
+    months (1, 3 or 12) starting on the 1st at 00:00 UTC, labelled ``%Y-%m``; day steps start
+    at 00:00 UTC, labelled ``%Y-%m-%d``; steps under a day are labelled with the time (and the
+    date when the span is longer than a day). Before issue 16, month labels sat at multiples of
+    30 days since 1970 (2023-01-26 labelled 2023-01), so events read four weeks early.
+    """
     span_s = (hi_ns - lo_ns) / 1e9
     step = next((s for s in _TIME_STEPS_S if span_s / s <= n), _TIME_STEPS_S[-1])
+    if hi_ns <= lo_ns:
+        return [lo_ns], "%Y-%m-%d %H:%M"
+    if step >= 30 * 86400:
+        months = {30 * 86400: 1, 91 * 86400: 3}.get(step, 12)
+        lo, hi = pd.Timestamp(int(lo_ns), tz="UTC"), pd.Timestamp(int(hi_ns), tz="UTC")
+        start = pd.Timestamp(year=lo.year, month=1, day=1, tz="UTC")
+        while start + pd.DateOffset(months=months) <= lo:
+            start += pd.DateOffset(months=months)
+        ticks = []
+        t = start
+        while t <= hi:
+            if t >= lo:
+                ticks.append(float(t.value))
+            t += pd.DateOffset(months=months)
+        return ticks, ("%Y" if months == 12 else "%Y-%m")
     step_ns = step * 1e9
     first = math.ceil(lo_ns / step_ns) * step_ns
-    ticks = list(np.arange(first, hi_ns + 1, step_ns)) if hi_ns > lo_ns else [lo_ns]
-    fmt = "%H:%M" if step < 86400 and span_s <= 86400 else ("%Y-%m-%d" if step < 30 * 86400 else "%Y-%m")
+    ticks = list(np.arange(first, hi_ns + 1, step_ns))
+    if step >= 86400:
+        fmt = "%Y-%m-%d"
+    else:
+        fmt = "%H:%M" if span_s <= 86400 else "%m-%d %H:%M"
     return ticks, fmt
 
 
