@@ -104,3 +104,28 @@ def test_make_demo_passes_the_port():
         assert out.returncode == 0, out.stderr
         line = next(x for x in out.stdout.splitlines() if "bin/elmon demo" in x)
         assert line.endswith(f"--port {port}")
+
+
+def test_dashboard_help_names_the_store_the_demo_writes():
+    from monitor.cli.demo import DEMO_DB_NAME, DemoSettings
+
+    out = subprocess.run([sys.executable, "-m", "monitor", "dashboard", "--help"],
+                         capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert f"--db {(DemoSettings().workdir / DEMO_DB_NAME).as_posix()}" in out.stdout
+
+
+def test_demo_config_comment_names_no_wrong_series_count():
+    from monitor.cli.demo import DemoSettings, demo_config_text
+
+    text = demo_config_text(DemoSettings(), Path("x.sqlite"))
+    assert "12-series" not in text and "arl0 = 2000" in text
+
+
+def test_example_config_effective_window_is_kish():
+    """(1 + λ) / (1 − λ) at λ = 0.98 is 99 (Kish's effective n, the dashboard's definition)."""
+    root = Path(__file__).resolve().parents[1]
+    text = (root / "examples" / "elmon.toml").read_text(encoding="utf-8")
+    line = next(x for x in text.splitlines() if x.startswith("forgetting"))
+    lam = float(line.split("=")[1].split("#")[0])
+    assert round((1 + lam) / (1 - lam)) == 99 and "= 99 observations" in line

@@ -89,7 +89,7 @@ def register(sub) -> None:
         description="Serve the Streamlit dashboard (overview, series detail, alerts, replay) "
                     "over an elmon store, read-only except for acknowledging and resolving "
                     "alerts. Binds 127.0.0.1 unless --address says otherwise.",
-        epilog="example:\n  elmon dashboard --db demo-work/store.sqlite --port 8501\n"
+        epilog="example:\n  elmon dashboard --db demo-work/elmon-demo.sqlite --port 8501\n"
                "  elmon dashboard --db store.sqlite --truth truth.csv",
         formatter_class=HelpFormatter)
     p.add_argument("--db", required=True, metavar="PATH", help="the store (SQLite file)")

@@ -39,6 +39,11 @@ SCENARIO_SETTINGS = {
 }
 
 
+#: File name of the store the demo writes in its work folder (``elmon dashboard --help``
+#: names it in its example).
+DEMO_DB_NAME = "elmon-demo.sqlite"
+
+
 @dataclass
 class DemoSettings:
     scenario: str = "retail"
@@ -68,8 +73,9 @@ controls = [{controls}]
 zero_policy = "skip"
 
 [detectors]
-# in-control ARL 2,000 observations per chart: for a 12-series demo that is quick to react;
-# the production default is 20,000 (see "Choosing thresholds for a false-alarm budget")
+# in-control ARL 2,000 observations per chart, so that the demo reacts within its few
+# simulated weeks; the production default is 20,000 (see "Choosing thresholds for a
+# false-alarm budget")
 arl0 = 2000
 
 [service]
@@ -128,7 +134,7 @@ def run_demo(s: DemoSettings, out=print) -> dict:
         raise ConfigError(f"--scenario {s.scenario!r}: must be one of {', '.join(SCENARIO_SETTINGS)}")
     wd = Path(s.workdir)
     wd.mkdir(parents=True, exist_ok=True)
-    db = Path(s.db) if s.db else wd / "elmon-demo.sqlite"
+    db = Path(s.db) if s.db else wd / DEMO_DB_NAME
     for stale in (db, Path(f"{db}-wal"), Path(f"{db}-shm"), wd / "feed.csv", wd / "alerts.jsonl"):
         if stale.exists():
             stale.unlink()                      # a new store and feed every time
