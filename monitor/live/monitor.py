@@ -39,12 +39,10 @@ from monitor.live.checkpoints import checkpoints, restore, vector_to_json
 from monitor.live.one_row import NOT_PLAIN, observe_plain
 from monitor.pipeline.run import Pipeline
 from monitor.rows.frames import estimates_frame
-from monitor.rows.prepare import check_rows, offset_of, order_of, prepare_rows
+from monitor.rows.prepare import check_rows, order_of, prepare_rows
 from monitor.rows.validate import validation_from_config
 from monitor.sections import Config
 from monitor.store import Store, thin_estimates, wall_ts, write_batch
-from monitor.groups.keys import split_key
-from monitor.live.groups import GroupUpkeep, settings_from_config as group_settings_of
 from monitor.store.live import release_writer_lock, series_bounds, take_writer_lock
 from monitor.types import Estimate
 
@@ -90,13 +88,9 @@ class Monitor:
             self._lock = threading.RLock()
             self._controls = list(self.estimator.controls) + list(self.estimator.log_controls)
             self._required = required_columns(self.estimator)
-            key = list(self.validation.key)
-            if len(key) > 1:             # composite ids are built from the key columns
-                self._required = key + [c for c in self._required if c != "series"]
-            self.groups = GroupUpkeep(self.store, group_settings_of(self.config))
             self._run_params = set(inspect.signature(self.pipeline.run).parameters)
             self._recorded: dict[str, dict] = {}   # series -> last written _in_effect record
-            self._fast = not self.groups.enabled   # observe tries monitor.live.one_row first
+            self._fast = True                 # Monitor.observe tries monitor.live.one_row first
             self.plain_calls = 0              # observe calls that took the one-row path
             self._nan_median = np.zeros(0)
             self._restore()
@@ -147,10 +141,6 @@ class Monitor:
                 return done
         frame = pd.DataFrame({"series": [series], "ts": [ts], "price": [price],
                               "quantity": [quantity], **{k: [v] for k, v in controls.items()}})
-        key = self.validation.key
-        if len(key) > 1:                    # a composite id given whole: its parts as columns
-            parts = split_key(series, len(key))
-            frame = frame.assign(**{c: [p] for c, p in zip(key, parts)})
         rep = self.observe_many(frame)
         if rep.rejected:
             r = rep.rejects.iloc[0]
@@ -197,8 +187,7 @@ class Monitor:
             rows = np.asarray(rows, dtype=np.int64)
             consumed = len(frame) + n_pre if consumed is None else int(consumed)
             label = label or source
-            snap = (dict(self.gate.index), self.gate.last_ts.copy(), self.gate.ring.copy(),
-                    self.gate.count.copy())
+            snap = self._snapshot()
             try:
                 plan = self._plan(frame, rows, label, source)
                 rejects = reject_frame([pre_rejects, *plan["rejects"]], label)
@@ -219,12 +208,11 @@ class Monitor:
                     checkpoints=plan["checkpoints"] or None, offsets={source: offset},
                     rejects=rejects if len(rejects) else None, series=record or None)
             except BaseException:
-                (self.gate.index, self.gate.last_ts, self.gate.ring, self.gate.count) = snap
+                self._rollback(snap)     # a failed commit leaves memory as it was before
                 raise
             self._commit(plan)
             self._recorded.update({r["series"]: r for r in record})
             self._rows_read[source] = self._rows_read.get(source, 0) + consumed
-            self.groups.after_batch(plan["checkpoints"])   # pooled latest, group alerts
         return BatchReport(source=source, rows=consumed, accepted=plan["accepted"],
                            rejected=len(rejects), zero_skipped=plan["zero_count"],
                            series=len(plan["checkpoints"]),
@@ -278,8 +266,7 @@ class Monitor:
             glob = self._ensure(names)
             states = self._states[glob].copy()
             kw = self._run_extras(good["ts"].to_numpy(dtype=np.int64), names)
-            res = self.pipeline.run(sid, X, y, n_series=len(names), states=states,
-                                    offset=offset_of(good, self.estimator), **kw)
+            res = self.pipeline.run(sid, X, y, n_series=len(names), states=states, **kw)
             est = estimates_frame(good, res.out, res.status)
             plan["estimates"] = est
             plan["kept"] = thin_estimates(
@@ -367,6 +354,34 @@ class Monitor:
                 kw["high"] = np.array([pick(n, 1, high) for n in names], dtype=np.float64)
         return kw
 
+
+    def _snapshot(self) -> dict:
+        """Copies of everything ``_plan`` may change in memory before the commit.
+
+        The validation gate (every attribute: its series index and each per-series array,
+        the recent-timestamp ring included) and the engine's series index, names and state
+        matrix. A batch whose transaction fails (store locked past the busy timeout, disk
+        full, an I/O error) is rolled back to this, so its retry sees exactly the state an
+        untouched monitor has: no row of it is then taken for a repeat of itself, and no new
+        series keeps a gate slot filled by the failed attempt.
+
+        The gate's arrays are changed in place by the ordered checks, so they are copied;
+        the state matrix is only replaced (``_ensure`` stacks a new one, ``_commit`` writes
+        after the transaction), so keeping the reference is enough.
+        """
+        gate = {k: (v.copy() if hasattr(v, "copy") else v) for k, v in vars(self.gate).items()}
+        return {"gate": gate, "index": dict(self._index), "names": list(self._names),
+                "states": self._states}
+
+    def _rollback(self, snap: dict) -> None:
+        """Put back the in-memory state saved by :meth:`_snapshot`."""
+        for k in list(vars(self.gate)):
+            if k not in snap["gate"]:
+                delattr(self.gate, k)
+        for k, v in snap["gate"].items():
+            setattr(self.gate, k, v)
+        self._index, self._names = snap["index"], snap["names"]
+        self._states = snap["states"]
 
     def _commit(self, plan: dict) -> None:
         """Move the committed batch's state into memory (only after the transaction)."""
