@@ -39,10 +39,12 @@ from monitor.live.checkpoints import checkpoints, restore, vector_to_json
 from monitor.live.one_row import NOT_PLAIN, observe_plain
 from monitor.pipeline.run import Pipeline
 from monitor.rows.frames import estimates_frame
-from monitor.rows.prepare import check_rows, order_of, prepare_rows
+from monitor.rows.prepare import check_rows, offset_of, order_of, prepare_rows
 from monitor.rows.validate import validation_from_config
 from monitor.sections import Config
 from monitor.store import Store, thin_estimates, wall_ts, write_batch
+from monitor.groups.keys import split_key
+from monitor.live.groups import GroupUpkeep, settings_from_config as group_settings_of
 from monitor.store.live import release_writer_lock, series_bounds, take_writer_lock
 from monitor.types import Estimate
 
@@ -88,9 +90,13 @@ class Monitor:
             self._lock = threading.RLock()
             self._controls = list(self.estimator.controls) + list(self.estimator.log_controls)
             self._required = required_columns(self.estimator)
+            key = list(self.validation.key)
+            if len(key) > 1:             # composite ids are built from the key columns
+                self._required = key + [c for c in self._required if c != "series"]
+            self.groups = GroupUpkeep(self.store, group_settings_of(self.config))
             self._run_params = set(inspect.signature(self.pipeline.run).parameters)
             self._recorded: dict[str, dict] = {}   # series -> last written _in_effect record
-            self._fast = True                 # Monitor.observe tries monitor.live.one_row first
+            self._fast = not self.groups.enabled   # observe tries monitor.live.one_row first
             self.plain_calls = 0              # observe calls that took the one-row path
             self._nan_median = np.zeros(0)
             self._restore()
@@ -141,6 +147,10 @@ class Monitor:
                 return done
         frame = pd.DataFrame({"series": [series], "ts": [ts], "price": [price],
                               "quantity": [quantity], **{k: [v] for k, v in controls.items()}})
+        key = self.validation.key
+        if len(key) > 1:                    # a composite id given whole: its parts as columns
+            parts = split_key(series, len(key))
+            frame = frame.assign(**{c: [p] for c, p in zip(key, parts)})
         rep = self.observe_many(frame)
         if rep.rejected:
             r = rep.rejects.iloc[0]
@@ -213,6 +223,7 @@ class Monitor:
             self._commit(plan)
             self._recorded.update({r["series"]: r for r in record})
             self._rows_read[source] = self._rows_read.get(source, 0) + consumed
+            self.groups.after_batch(plan["checkpoints"])   # pooled latest, group alerts
         return BatchReport(source=source, rows=consumed, accepted=plan["accepted"],
                            rejected=len(rejects), zero_skipped=plan["zero_count"],
                            series=len(plan["checkpoints"]),
@@ -266,7 +277,8 @@ class Monitor:
             glob = self._ensure(names)
             states = self._states[glob].copy()
             kw = self._run_extras(good["ts"].to_numpy(dtype=np.int64), names)
-            res = self.pipeline.run(sid, X, y, n_series=len(names), states=states, **kw)
+            res = self.pipeline.run(sid, X, y, n_series=len(names), states=states,
+                                    offset=offset_of(good, self.estimator), **kw)
             est = estimates_frame(good, res.out, res.status)
             plan["estimates"] = est
             plan["kept"] = thin_estimates(
