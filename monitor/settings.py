@@ -23,7 +23,7 @@ default filled; :func:`load_config` reads a file; :func:`default_config` is the 
 >>> validate({"estimator": {"forget": 0.98}})
 Traceback (most recent call last):
 ...
-monitor.errors.ConfigError: config: [estimator] forget: unknown key (known: forgetting, ...)
+monitor.errors.ConfigError: config: [estimator] forget: unknown key (known: ...)
 """
 
 from __future__ import annotations
