@@ -55,6 +55,7 @@ import os
 import smtplib
 import ssl
 import urllib.error
+import urllib.parse
 import urllib.request
 from email.message import EmailMessage
 from pathlib import Path
@@ -174,18 +175,45 @@ class WebhookSink:
         if secret is not None:
             headers["X-Elmon-Signature"] = sign(body, secret)
         request = urllib.request.Request(self.url, data=body, headers=headers, method="POST")
+        where = shown_url(self.url)
         try:
-            with urllib.request.urlopen(request, timeout=self.timeout) as answer:
+            with _NO_REDIRECTS.open(request, timeout=self.timeout) as answer:
                 status = answer.status
         except urllib.error.HTTPError as exc:
-            raise DeliveryError(f"webhook {self.url}: HTTP {exc.code} {exc.reason}") from None
+            more = " (redirects are not followed)" if 300 <= exc.code < 400 else ""
+            raise DeliveryError(f"webhook {where}: HTTP {exc.code} {exc.reason}{more}") from None
         except (urllib.error.URLError, OSError) as exc:
-            raise DeliveryError(f"webhook {self.url}: {getattr(exc, 'reason', exc)}") from None
+            raise DeliveryError(f"webhook {where}: {getattr(exc, 'reason', exc)}") from None
         if not 200 <= status < 300:
-            raise DeliveryError(f"webhook {self.url}: HTTP {status}")
+            raise DeliveryError(f"webhook {where}: HTTP {status}")
 
     def __repr__(self) -> str:
-        return f"WebhookSink({self.url!r})"
+        return f"WebhookSink({shown_url(self.url)!r})"
+
+
+class _RefuseRedirects(urllib.request.HTTPRedirectHandler):
+    """A 3xx answer is returned as an error, never followed: following it would resend the
+    body, the configured headers (e.g. Authorization) and the signature to another host."""
+
+    def redirect_request(self, req, fp, code, msg, headers, newurl):
+        return None
+
+
+_NO_REDIRECTS = urllib.request.build_opener(_RefuseRedirects)
+
+
+def shown_url(url: str) -> str:
+    """``url`` without user, password, query and fragment (which may carry tokens), for
+    messages and the outbox's last error.
+
+    >>> shown_url("https://bot:pw@hooks.example/t/abc?token=s3cret#x")
+    'https://hooks.example/t/abc'
+    """
+    parts = urllib.parse.urlsplit(url)
+    host = parts.hostname or ""
+    if parts.port:
+        host = f"{host}:{parts.port}"
+    return urllib.parse.urlunsplit((parts.scheme, host, parts.path, "", ""))
 
 
 class EmailSink:
