@@ -50,6 +50,10 @@ SERVICE_KEYS = {
     "delivery_backoff_s": ((int, float), 30.0), "delivery_max_backoff_s": ((int, float), 3600.0),
 }
 
+#: the longest interval, delay or grace accepted in [service] (366 days, in seconds)
+MAX_SECONDS = 366 * 86400
+
+
 def check_sinks(content: Any) -> None:
     """Validate ``[sinks.NAME]`` tables by key (environment variables are checked at start)."""
     if not isinstance(content, Mapping):
@@ -97,8 +101,12 @@ def service_settings(config: Config) -> dict:
         if sec[key] < 1:
             raise ConfigError(f"[service] {key} = {sec[key]!r}: must be >= 1")
     for key in ("series_stale_after_s", "reminder_every_s"):
-        if sec[key] < 0:
+        if not sec[key] >= 0:
             raise ConfigError(f"[service] {key} = {sec[key]!r}: must be >= 0 (0 = off)")
+    for key, value in sec.items():      # inf and 1e300 pass '> 0' but stall the scheduler
+        if key.endswith("_s") and not value <= MAX_SECONDS:
+            raise ConfigError(f"[service] {key} = {value!r}: must be a finite number of "
+                              f"seconds, at most {MAX_SECONDS} (366 days)")
     return sec
 
 
