@@ -11,6 +11,8 @@ import math
 
 from monitor.cli import HelpFormatter
 from monitor.detectors import arl, arl_mc
+from monitor.detectors.split_design import (expected_delay, information, information_bound,
+                                            split_thresholds)
 
 
 DEFAULT_SHIFTS = (0.0, 0.5, 1.0, 2.0, 3.0)
@@ -29,7 +31,8 @@ hourly, ARL0 = 20,000 means about 1,000 * 24 / 20,000 = 1.2 false alarms a day i
 
 def register(subparsers) -> None:
     p = subparsers.add_parser(
-        "arl", help="average run length of CUSUM and EWMA charts; design thresholds",
+        "arl", help="average run length of CUSUM and EWMA charts and the split detector; design "
+        "thresholds",
         description=_ABOUT, formatter_class=HelpFormatter,
         epilog="examples:\n  elmon arl cusum --k 0.5 --h 4 --shift 0 1 2\n"
                "  elmon arl ewma --lam 0.1 --arl0 500 --json")
@@ -73,6 +76,26 @@ def register(subparsers) -> None:
     _common(e)
     e.set_defaults(func=_ewma)
 
+    sp = charts.add_parser(
+        "split", help="the split likelihood-ratio detector of a change in b or the level",
+        description="The default change detector (monitor.detectors.split_glr): its slope and "
+        "level thresholds\ndesigned for an in-control ARL by simulation, and for a change db of "
+        "b at a given\nlog-price sd and noise sd the information per observation I = db^2 "
+        "sd_p^2 / (2 sd_e^2),\nLorden's (1971) bound ln(ARL0) / I on any detector's delay, and "
+        "this detector's\nexpected delay.", formatter_class=HelpFormatter,
+        epilog="examples:\n  elmon arl split --arl0 20000 --db 0.5 --price-sd 0.15 "
+               "--noise-sd 0.15\n  elmon arl split --arl0 2000 --db 0.3 0.5 0.8 --json")
+    sp.add_argument("--arl0", type=float, default=DEFAULT_ARL0,
+                    help="in-control ARL per chart and series (default 20000)")
+    sp.add_argument("--db", type=float, nargs="+", default=[0.3, 0.5, 0.8], metavar="DB",
+                    help="changes of b (default: 0.3 0.5 0.8)")
+    sp.add_argument("--price-sd", type=float, default=0.15,
+                    help="sd of log price after the controls (default 0.15)")
+    sp.add_argument("--noise-sd", type=float, default=0.15,
+                    help="sd of the log-quantity errors (default 0.15)")
+    sp.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    sp.set_defaults(func=_split)
+
 
 def _common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--shift", type=float, nargs="+", default=list(DEFAULT_SHIFTS),
@@ -105,6 +128,29 @@ def _ewma(args) -> int:
             "limit": arl.ewma_limit(args.lam, L), "method": args.method}
     title = f"EWMA, two-sided, lam = {args.lam:g}, L = {L:.6g}"
     _emit(args, head, title, values, None, mc)
+    return 0
+
+
+def _split(args) -> int:
+    t = split_thresholds(args.arl0)
+    rows = []
+    for db in args.db:
+        info = information(db, args.price_sd, args.noise_sd)
+        rows.append({"db": db, "information": info,
+                     "bound": information_bound(db, args.price_sd, args.noise_sd, args.arl0),
+                     "expected_delay": expected_delay(t.slope, info)})
+    head = {"chart": "split", "arl0": t.arl0, "h_slope": t.slope, "h_level": t.level,
+            "method": t.method, "price_sd": args.price_sd, "noise_sd": args.noise_sd}
+    if args.json:
+        print(json.dumps({**head, "delays": rows}, indent=2))
+        return 0
+    print(f"split GLR, ARL0 = {t.arl0:g} per chart: slope threshold {t.slope:.4g}, level "
+          f"threshold {t.level:.4g} ({t.method})")
+    print(f"log-price sd {args.price_sd:g}, noise sd {args.noise_sd:g}")
+    print(f"{'db':>6}  {'I per obs':>10}  {'bound':>8}  {'expected delay':>14}")
+    for r in rows:
+        print(f"{r['db']:>6g}  {r['information']:>10.4g}  {r['bound']:>8.1f}  "
+              f"{r['expected_delay']:>14.1f}")
     return 0
 
 

@@ -35,29 +35,35 @@ from monitor.detectors.bounds_kernel import B_ACTIVE, B_SIDE, bounds_step, hyste
 from monitor.detectors.kernels import C_LAST, F_ALARM, F_DOWN, chart_stat, chart_step
 from monitor.detectors.slope_kernel import (G_BF, adjusted_response, fast_interval, reanchor,
                                             slope_step)
+from monitor.detectors import split_glr as SG
 from monitor.estimators import kernel as K
-from monitor.estimators.dispatch import estimator_step
-from monitor.pipeline.messages import (EV_ACTION, EV_BETA, EV_COUNT, EV_EXTRA, EV_HI, EV_KIND,
+from monitor.estimators.dispatch import estimator_discount, estimator_step
+from monitor.pipeline.split_events import change_start, split_open, split_reanchor, split_row
+from monitor.pipeline.messages import (EV_AFTER_B, EV_AFTER_HI, EV_AFTER_LO, EV_DELAY,
+                                       EV_SUPERSEDED,
+                                       EV_ACTION, EV_BETA, EV_COUNT, EV_EXTRA, EV_HI, EV_KIND,
                                        EV_LO, EV_N, EV_OLD_B, EV_OLD_HI, EV_OLD_LO, EV_ROW, EV_SIDE,
                                        EV_SIZE, EV_START_N, EV_START_TS, EV_STAT, EV_TS)
 from monitor.pipeline.rules import (A_B, A_HI, A_LO, A_N_IN, A_START_N, A_START_TS, ACTION_CLEAR,
                                     ACTION_OPEN, E_B, E_CNT, E_HI, E_LO, E_START_N, E_START_TS,
                                     E_SUM, EP_SIDE, KIND_ELASTICITY_CHANGE, KIND_LEVEL_SHIFT,
                                     KIND_LOW_VARIATION, KIND_OUT_OF_BOUNDS, KIND_SIGN_FLIP,
-                                    R_ALARMS, R_OPEN, R_OPENED_N, R_OPENED_TS, RULE_SIZE,
+                                    R_ALARMS, R_OPEN, R_OPENED_N, R_OPENED_TS, RULE_SIZE, rule_reopen,
                                     U_CLEAR_AFTER, U_COOLDOWN, U_ENABLED, U_MODE, episode_restart,
                                     episode_step, rule_step, run_track)
 
 
 # offsets in the layout vector
 (L_SLOPE, L_LCHART, L_LEP, L_SCHART, L_SEP, L_BOUNDS, L_BRUN, L_SIGN, L_SRUN, L_LOWVAR,
- L_VRUN, L_RULES, L_SIZE) = range(13)
+ L_VRUN, L_RULES, L_SPLIT, L_SIZE) = range(14)
 # signal columns (PipelineResult.signals)
 (S_D, S_BFAST, S_LOFAST, S_HIFAST, S_LEVEL_STAT, S_SLOPE_STAT, S_LEVEL_FLAGS,
  S_SLOPE_FLAGS) = range(8)
 NSIG = 8
 #: most events one observation can produce (one per kind)
-MAX_EVENTS_PER_ROW = 5
+#: weight left on the estimator's past after an elasticity change (one extra forgetting step)
+DISCOUNT = 0.05
+MAX_EVENTS_PER_ROW = 7  # one per kind, plus a superseding clear for each change kind
 
 
 @njit(cache=True, _nrt=False)
@@ -82,6 +88,11 @@ def _event(ev, ne, j, kind, action, n, ts, b, lo, hi, ob, olo, ohi, sn, sts, sid
     ev[ne, EV_STAT] = stat
     ev[ne, EV_COUNT] = count
     ev[ne, EV_EXTRA] = extra
+    ev[ne, EV_AFTER_B] = np.nan
+    ev[ne, EV_AFTER_LO] = np.nan
+    ev[ne, EV_AFTER_HI] = np.nan
+    ev[ne, EV_DELAY] = np.nan
+    ev[ne, EV_SUPERSEDED] = 0.0
     return ne + 1
 
 
@@ -119,8 +130,11 @@ def _open_run(ev, ne, j, kind, st, det, run, n, ts, b, lo, hi, size, extra):
 
 @njit(cache=True, _nrt=False)
 def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, bparams, gparams,
-          vparams):
+          vparams, split, gp, rep):
     """The event record of an opening (rare: not inlined)."""
+    if split and (kind == KIND_ELASTICITY_CHANGE or kind == KIND_LEVEL_SHIFT):
+        return split_open(ev, ne, j, kind, st, lay[L_SPLIT], rep, n, t, b, lo, hi, tq,
+                          gp[SG.Q_HS])
     if kind == KIND_ELASTICITY_CHANGE:
         ga = lay[L_SLOPE]
         _, flo, fhi = fast_interval(st, ga, sd, tq)
@@ -142,7 +156,7 @@ def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, b
 
 @njit(cache=True, inline="always")
 def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bparams, bon,
-         gparams, vparams, rparams, ev, ne, status, sig, keep):
+         gparams, vparams, rparams, ev, ne, status, sig, keep, split, gp, rep, est_args):
     """Everything after the estimator's step for row ``j`` of series ``sj``; returns ``ne``.
     All state is addressed as ``st[offset + slot]``: no array views are made per row."""
     stat = o[K.O_STATUS]
@@ -157,15 +171,24 @@ def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bpar
     # paused, b and the slope statistic are frozen; feeding them again is not new evidence)
     inf = ok and st[K.I_PAUSED] == 0.0
     ga = lay[L_SLOPE]
-    d = slope_step(st, ga, xj[1], adjusted_response(st, xj, yj, k), sd, st[K.I_PAUSED], lf, lr)
-    # level chart on the standardized innovation
     la, le_ = lay[L_LCHART], lay[L_LEP]
-    fl = chart_step(lkind, st, la, np.nan if warm else o[K.O_Z], lp)
-    episode_step(st, le_, fl, n, t, b, lo, hi, o[K.O_E])
-    # slope chart on d
     sa, se_ = lay[L_SCHART], lay[L_SEP]
-    fs = chart_step(skind, st, sa, d if inf else np.nan, sp)
-    episode_step(st, se_, fs, n, t, b, lo, hi, d)
+    d = np.nan
+    fl = 0
+    fs = 0
+    if split:
+        # the split GLR (slope and level charts from the same sums) on every row past warm-up
+        if not warm:
+            fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp)
+    else:
+        d = slope_step(st, ga, xj[1], adjusted_response(st, xj, yj, k), sd, st[K.I_PAUSED],
+                       lf, lr)
+        # level chart on the standardized innovation
+        fl = chart_step(lkind, st, la, np.nan if warm else o[K.O_Z], lp)
+        episode_step(st, le_, fl, n, t, b, lo, hi, o[K.O_E])
+        # slope chart on d
+        fs = chart_step(skind, st, sa, d if inf else np.nan, sp)
+        episode_step(st, se_, fs, n, t, b, lo, hi, d)
     # bounds, sign flip, low variation
     ba, bra = lay[L_BOUNDS], lay[L_BRUN]
     if inf and bon[sj]:
@@ -192,7 +215,8 @@ def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bpar
             allowed = inf
         elif kind == KIND_ELASTICITY_CHANGE:
             fire = (fs & F_ALARM) != 0
-            allowed = inf
+            # the split GLR handles flat prices itself (no slope information, no alarm)
+            allowed = not warm if split else inf
         elif kind == KIND_LEVEL_SHIFT:
             fire = (fl & F_ALARM) != 0
             allowed = not warm
@@ -203,18 +227,39 @@ def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bpar
             fire = st[va + B_ACTIVE] != 0.0
             allowed = True
         r = r0 + kind * RULE_SIZE
+        if split and fire and st[r + R_OPEN] != 0.0 and (kind == KIND_ELASTICITY_CHANGE or
+                                                         kind == KIND_LEVEL_SHIFT):
+            # a further change while the alert is open: when it began after the open alert's
+            # detection, the open alert is closed as superseded and the new one opened
+            if change_start(st, lay[L_SPLIT], kind == KIND_ELASTICITY_CHANGE, n) > \
+                    st[r + R_OPENED_N]:
+                ne = _clear(ev, ne, j, kind, st, r, n, t, b, lo, hi)
+                ev[ne - 1, EV_SUPERSEDED] = 1.0
+                rule_reopen(st, r, n, t)
+                ne = _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d,
+                           o[K.O_Z], bparams, gparams, vparams, split, gp, rep)
+                continue
         a = rule_step(st, r, fire, not fire, allowed, n, t, rparams[kind, U_MODE],
                       rparams[kind, U_CLEAR_AFTER], rparams[kind, U_COOLDOWN])
         if a == ACTION_CLEAR:
             ne = _clear(ev, ne, j, kind, st, r, n, t, b, lo, hi)
         elif a == ACTION_OPEN:
             ne = _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d,
-                       o[K.O_Z], bparams, gparams, vparams)
-    if fs & F_ALARM:
-        reanchor(st, ga)
-        episode_restart(st, se_, b, lo, hi)
-    if fl & F_ALARM:
-        episode_restart(st, le_, b, lo, hi)
+                       o[K.O_Z], bparams, gparams, vparams, split, gp, rep)
+    if split:
+        split_reanchor(st, lay[L_SPLIT], fl, fs, gp)
+        if fs & F_ALARM:
+            # the estimator's past before the change is down-weighted at once (one extra
+            # forgetting step), so the reported b follows the new regime within a few dozen
+            # rows (after a level shift too it doubled the level chart's false alarms on AR(1)
+            # errors: measured, so not done there)
+            estimator_discount(est_args[0], st, k, est_args[1], est_args[2], DISCOUNT)
+    else:
+        if fs & F_ALARM:
+            reanchor(st, ga)
+            episode_restart(st, se_, b, lo, hi)
+        if fl & F_ALARM:
+            episode_restart(st, le_, b, lo, hi)
     # final status of the row
     code = stat
     if ok:
@@ -226,12 +271,23 @@ def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bpar
             code = 4.0
     status[j] = np.int8(code)
     if keep:
-        _keep(sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp)
+        _keep(sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp, split)
     return ne
 
 
 @njit(cache=True, _nrt=False)
-def _keep(sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp):
+def _keep(sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp, split):
+    if split:
+        at = lay[L_SPLIT]
+        sig[j, S_D] = np.nan
+        sig[j, S_BFAST] = np.nan
+        sig[j, S_LOFAST] = np.nan
+        sig[j, S_HIFAST] = np.nan
+        sig[j, S_LEVEL_STAT] = st[at + SG.D_GL]
+        sig[j, S_SLOPE_STAT] = st[at + SG.D_GS]
+        sig[j, S_LEVEL_FLAGS] = fl
+        sig[j, S_SLOPE_FLAGS] = fs
+        return
     ga = lay[L_SLOPE]
     sig[j, S_D] = d
     sig[j, S_BFAST] = st[ga + G_BF]
@@ -244,7 +300,8 @@ def _keep(sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp):
 
 @njit(cache=True, _nrt=False)
 def pipeline_run(states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind, lp, skind, sp,
-                 bparams, bon, gparams, vparams, rparams, out, ev, status, sig, keep, u):
+                 bparams, bon, gparams, vparams, rparams, out, ev, status, sig, keep, u, split,
+                 gp, rep):
     """Process rows ``start..`` in order; returns ``(stop_row, n_events)``.
 
     Stops early (``stop_row < n``) when the event buffer ``ev`` might overflow; the caller
@@ -272,5 +329,6 @@ def pipeline_run(states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind, lp,
         estimator_step(model, st, X[j], y[j], off[j] if has_off else 0.0, k, band, lags, lam,
                        guard, guard_lam, mps, mneff, tq, o, u)
         ne = _row(st, o, X[j], o[K.O_YLOG], j, sj, k, ts[j], lay, tq, lf, lr, lkind, lp, skind, sp,
-                  bparams, bon, gparams, vparams, rparams, ev, ne, status, sig, keep)
+                  bparams, bon, gparams, vparams, rparams, ev, ne, status, sig, keep, split, gp,
+                  rep, est_args)
     return X.shape[0], ne

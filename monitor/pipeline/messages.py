@@ -29,8 +29,12 @@ from monitor.pipeline.rules import ACTIONS, KINDS
 
 # event record columns written by monitor.pipeline.kernel
 (EV_ROW, EV_KIND, EV_ACTION, EV_BETA, EV_LO, EV_HI, EV_OLD_B, EV_OLD_LO, EV_OLD_HI,
- EV_START_N, EV_START_TS, EV_N, EV_TS, EV_SIDE, EV_SIZE, EV_STAT, EV_COUNT, EV_EXTRA) = range(18)
-NEV = 18
+ EV_START_N, EV_START_TS, EV_N, EV_TS, EV_SIDE, EV_SIZE, EV_STAT, EV_COUNT, EV_EXTRA,
+ EV_AFTER_B, EV_AFTER_LO, EV_AFTER_HI, EV_DELAY, EV_SUPERSEDED) = range(23)
+NEV = 23
+#: alert columns a change alert adds (alerts.csv, the store's alerts table)
+CHANGE_COLUMNS = ["change_ts", "beta_before", "beta_before_lo", "beta_before_hi", "beta_after",
+                  "beta_after_lo", "beta_after_hi", "size"]
 EVENT_COLUMNS = ["row", "sid", "kind", "action", "severity", "beta", "beta_lo", "beta_hi",
                  "message", "details"]
 
@@ -73,6 +77,9 @@ def severity(kind: str, action: str, r: np.ndarray, interval_mode: bool = True) 
         return "critical"
     if kind == "out_of_bounds":
         return "critical" if interval_mode else "warning"
+    if kind == "elasticity_change" and math.isfinite(r[EV_AFTER_B]):
+        apart = r[EV_AFTER_LO] > r[EV_OLD_HI] or r[EV_AFTER_HI] < r[EV_OLD_LO]
+        return "critical" if apart else "warning"
     if kind == "elasticity_change":
         apart = r[EV_LO] > r[EV_OLD_HI] or r[EV_HI] < r[EV_OLD_LO]
         return "critical" if apart else "warning"
@@ -90,12 +97,23 @@ def details(kind: str, action: str, r: np.ndarray) -> dict:
          "effect_of_10pct_price_rise": _num(1.1 ** r[EV_BETA] - 1.0) if math.isfinite(r[EV_BETA]) else None}
     if action == "clear":
         d.update(opened_observation=_int(r[EV_START_N]), open_for_observations=_int(r[EV_SIZE]),
-                 alarms_while_open=_int(r[EV_COUNT]))
+                 alarms_while_open=_int(r[EV_COUNT]), superseded=bool(r[EV_SUPERSEDED] == 1.0))
         return d
     if kind in ("elasticity_change", "level_shift"):
         d.update(direction="up" if r[EV_SIDE] > 0 else "down", statistic=_num(r[EV_STAT]))
+        if math.isfinite(r[EV_AFTER_B]) or math.isfinite(r[EV_DELAY]):  # split detector
+            d.update(change_observation=_int(r[EV_START_N]), change_ts=d["started_ts"],
+                     beta_after=_num(r[EV_AFTER_B]), beta_after_lo=_num(r[EV_AFTER_LO]),
+                     beta_after_hi=_num(r[EV_AFTER_HI]), delay50_obs=_num(r[EV_DELAY]))
     if kind == "elasticity_change":
         d.update(beta_change=_num(r[EV_SIZE]), slope_statistic=_num(r[EV_EXTRA]))
+    elif kind == "level_shift" and math.isfinite(r[EV_DELAY]) and math.isfinite(r[EV_EXTRA]):
+        # split detector: the size rests on the rows since the change; 95% normal interval
+        lo, hi = r[EV_SIZE] - 1.96 * r[EV_EXTRA], r[EV_SIZE] + 1.96 * r[EV_EXTRA]
+        d.update(level_shift_log=_num(r[EV_SIZE]),
+                 level_shift_pct=_num(100.0 * math.expm1(r[EV_SIZE])),
+                 level_shift_lo_pct=_num(100.0 * math.expm1(lo)),
+                 level_shift_hi_pct=_num(100.0 * math.expm1(hi)))
     elif kind == "level_shift":
         d.update(level_shift_log=_num(r[EV_SIZE]),
                  level_shift_pct=_num(100.0 * math.expm1(r[EV_SIZE])) if math.isfinite(r[EV_SIZE]) else None)
@@ -107,6 +125,35 @@ def details(kind: str, action: str, r: np.ndarray) -> dict:
     return d
 
 
+def delay_text(delay: float) -> str:
+    """"at this price variation a change of 0.5 in b takes about N observations to detect"."""
+    if delay is None or not math.isfinite(delay):
+        return ("at this price variation a change of 0.5 in b cannot be detected (no price "
+                "variation or no noise estimate yet)")
+    n = int(round(delay, -1)) if delay >= 100 else max(int(round(delay)), 1)
+    return (f"at this price variation a change of 0.5 in b takes about {n:,} observations to "
+            "detect")
+
+
+def _split_change_text(series: str, r: np.ndarray, at: str, since: str, now: str) -> str:
+    before = _band(r[EV_OLD_B], r[EV_OLD_LO], r[EV_OLD_HI])
+    after = _band(r[EV_AFTER_B], r[EV_AFTER_LO], r[EV_AFTER_HI])
+    db = r[EV_SIZE]
+    if db < 0:
+        way = (f"b fell by {abs(db):.2f}: demand became more sensitive to price"
+               if r[EV_OLD_B] <= 0 else f"b fell by {abs(db):.2f}")
+    else:
+        way = (f"b rose by {db:.2f}: demand became less sensitive to price"
+               if r[EV_AFTER_B] <= 0 else f"b rose by {db:.2f}")
+    return (f"{series}: the elasticity changed from {before} before to {after} since (the data "
+            f"on each side of the change), {way}; detected at {at}, change began about {since}. "
+            f"A 10% price rise now changes quantity by {effect_of_10pct(r[EV_AFTER_B])} "
+            f"(before: {effect_of_10pct(r[EV_OLD_B])}); the running estimate is {now}. "
+            f"{delay_text(r[EV_DELAY])[0].upper() + delay_text(r[EV_DELAY])[1:]}. Look for a "
+            "competitor, assortment, channel or tariff change; confirm with a randomized price "
+            "test before changing prices.")
+
+
 def message(kind: str, action: str, series: str, r: np.ndarray, causes: str = "") -> str:
     """The text of one event record, for a person who has to act on it."""
     now = _band(r[EV_BETA], r[EV_LO], r[EV_HI])
@@ -115,10 +162,15 @@ def message(kind: str, action: str, series: str, r: np.ndarray, causes: str = ""
     since = _fmt_ts(r[EV_START_TS], r[EV_START_N])
     effect = (f"a 10% price rise now changes quantity by {effect_of_10pct(r[EV_BETA])}"
               if math.isfinite(r[EV_BETA]) else "")
+    if action == "clear" and r[EV_SUPERSEDED] == 1.0:
+        return (f"{series}: {kind.replace('_', ' ')} superseded at {at} by a further change "
+                f"(open for {_int(r[EV_SIZE])} observations); now {now}.")
     if action == "clear":
         return (f"{series}: {kind.replace('_', ' ')} resolved at {at} after "
                 f"{_int(r[EV_SIZE])} observations; now {now}"
                 + (f", {effect}." if effect else "."))
+    if kind == "elasticity_change" and math.isfinite(r[EV_AFTER_B]):
+        return _split_change_text(series, r, at, since, now)
     if kind == "elasticity_change":
         was = effect_of_10pct(r[EV_OLD_B])
         return (f"{series}: the elasticity changed from {before} to {now} (fast estimate), "

@@ -100,6 +100,22 @@ def rule_step(r, at, fire, release, allowed, n, ts, mode, clear_after, cooldown)
 
 
 @njit(cache=True, inline="always")
+def rule_reopen(r, at, n, ts):
+    """An open impulse-kind alert is superseded by a further change (the split detector's
+    estimated change time is after the open alert's detection): the caller has written the
+    clear; the policy counts that clear and opens the new alert at once (no cooldown: the
+    change is a new one, not a flap of the old)."""
+    r[at + R_CLEARS] += 1.0
+    r[at + R_LAST_CLEAR] = n
+    r[at + R_OPEN] = 1.0
+    r[at + R_QUIET] = 0.0
+    r[at + R_OPENED_N] = n
+    r[at + R_OPENED_TS] = ts
+    r[at + R_ALARMS] = 1.0
+    r[at + R_OPENS] += 1.0
+
+
+@njit(cache=True, inline="always")
 def episode_step(e, at, flags, n, ts, b, lo, hi, value):
     """Track, per side of a chart (tracker ``e[at:]``), where the current excursion began and
     the estimate before it.

@@ -45,7 +45,10 @@ from monitor.estimators import feedback as FB
 from monitor.estimators import kernel as K
 from monitor.estimators.batch import initial_states
 from monitor.estimators.dispatch import model_code, work_size
-from monitor.pipeline.kernel import L_SIZE, NSIG, pipeline_run
+from monitor.detectors import split_glr as SG
+from monitor.detectors.split_design import split_thresholds
+from monitor.pipeline.kernel import L_SIZE, L_SPLIT, NSIG, pipeline_run
+from monitor.pipeline.split_events import delay50_all
 from monitor.pipeline.messages import NEV, events_frame
 from monitor.pipeline.rules import EP_SIZE, KINDS, RULE_SIZE, RUN_SIZE, rule_params
 from monitor.pipeline.settings import (BoundsSettings, DetectorSettings, RuleSettings,
@@ -56,7 +59,9 @@ BLOCKS = (("slope", SLOPE_SIZE), ("level_chart", CHART_SIZE), ("level_episode", 
           ("slope_chart", CHART_SIZE), ("slope_episode", EP_SIZE), ("bounds", BOUNDS_SIZE),
           ("bounds_run", RUN_SIZE), ("sign", BOUNDS_SIZE), ("sign_run", RUN_SIZE),
           ("low_variation", BOUNDS_SIZE), ("low_variation_run", RUN_SIZE),
-          ("rules", 5 * RULE_SIZE))
+          ("rules", 5 * RULE_SIZE), ("split", SG.SPLIT_SIZE))
+#: blocks of the previous charts, empty (size 0) with the split detector, and vice versa
+CHART_BLOCKS = ("slope", "level_chart", "level_episode", "slope_chart", "slope_episode")
 SIGNAL_COLUMNS = ["d", "b_fast", "b_fast_lo", "b_fast_hi", "level_stat", "slope_stat",
                   "level_flags", "slope_flags"]
 
@@ -117,7 +122,14 @@ class Pipeline:
         self.bounds = bounds or BoundsSettings()
         self.rules = rules or RuleSettings()
         self.designs: dict[str, DesignedThreshold | None] = {}
-        self._charts = {s: self._design(s) for s in ("level", "slope")}
+        self.split = self.detectors.change_detector == "split_glr"
+        if self.split:
+            self._charts = {s: (CHART_CODES["none"], pack_chart("none", 0.0, 0))
+                            for s in ("level", "slope")}
+            self._gp = self._design_split()
+        else:
+            self._charts = {s: self._design(s) for s in ("level", "slope")}
+            self._gp = SG.params(math.inf, math.inf)
         self._layout = self._make_layout()
         low, high = self.bounds.limits()
         b = self.bounds
@@ -128,8 +140,9 @@ class Pipeline:
         self._vparams = np.array([r.low_variation_persistence, r.low_variation_clear_after,
                                   estimator.min_price_sd])
         on = {"out_of_bounds": r.out_of_bounds, "elasticity_change": r.elasticity_change
-              and self.detectors.slope_chart != "none", "level_shift": r.level_shift
-              and self.detectors.level_chart != "none", "sign_flip": r.sign_flip,
+              and (self.split or self.detectors.slope_chart != "none"),
+              "level_shift": r.level_shift and (self.split or self.detectors.level_chart != "none"),
+              "sign_flip": r.sign_flip,
               "low_variation": r.low_variation}
         self._rparams = np.vstack([rule_params(kd, r.clear_after, r.cooldown, on[kd])
                                    for kd in KINDS])
@@ -160,9 +173,34 @@ class Pipeline:
         self.designs[signal] = design
         return CHART_CODES[chart], pack_chart(chart, design.threshold, burn, **kw)
 
+    def _design_split(self) -> np.ndarray:
+        """Both split-GLR thresholds for ``arl0`` (:mod:`monitor.detectors.split_design`)."""
+        d = self.detectors
+        try:
+            t = split_thresholds(d.arl0, forgetting=self.estimator.forgetting,
+                                 n_paths=d.design_paths, seed=d.design_seed)
+        except ValueError as exc:
+            raise ConfigError(f"[detectors] cannot design the split GLR thresholds: {exc}") from None
+        for signal, h in (("level", t.level), ("slope", t.slope)):
+            self.designs[signal] = DesignedThreshold(h, t.arl0, math.nan, math.nan, t.n_paths,
+                                                     t.method)
+        return SG.params(t.slope, t.level)
+
+    def delay50_obs(self, states: np.ndarray) -> np.ndarray:
+        """Per series: expected observations to detect a change of 0.5 in b at its price
+        variation and noise and the configured ARL0 (NaN where b is not identified yet or with
+        the previous charts)."""
+        out = np.full(states.shape[0], np.nan)
+        if self.split and states.shape[0]:
+            delay50_all(np.ascontiguousarray(states), int(self._layout[L_SPLIT]),
+                        float(self._gp[SG.Q_HS]), out)
+        return out
+
     def _make_layout(self) -> np.ndarray:
         offs = [self.estimator.state_size]
-        for _, size in BLOCKS:
+        for name, size in BLOCKS:
+            if (name == "split") != self.split and (name == "split" or name in CHART_BLOCKS):
+                size = 0  # the other detector's blocks are empty
             offs.append(offs[-1] + size)
         lay = np.array(offs, dtype=np.int64)
         assert lay.size == L_SIZE + 1
@@ -188,7 +226,7 @@ class Pipeline:
         out = {"detectors": asdict(self.detectors), "bounds": asdict(self.bounds),
                "rules": asdict(self.rules), "thresholds": {}}
         for signal, design in self.designs.items():
-            chart, _, kw = self.detectors.chart(signal)
+            chart, _, kw = ("split_glr", None, {}) if self.split else self.detectors.chart(signal)
             out["thresholds"][signal] = None if design is None else {
                 "chart": chart, **kw, "threshold": design.threshold, "arl0": design.arl0
                 if math.isfinite(design.arl0) else None, "method": design.method,
@@ -262,7 +300,8 @@ class Pipeline:
                                     d.fast_forgetting, d.reference_forgetting, lkind, lp, skind,
                                     sp, bparams, bon, self._gparams, self._vparams,
                                     self._rparams, out, ev, status, sig, keep_signals,
-                                    np.empty(work_size(est.model, X.shape[1])))
+                                    np.empty(work_size(est.model, X.shape[1])), self.split,
+                                    self._gp, np.empty(SG.REPORT_SIZE))
             records.append(ev[:ne])
             if stop >= n:
                 break

@@ -3,7 +3,9 @@
 Config sections (all keys optional; defaults in brackets)::
 
     [detectors]  arl0 [20000]: in-control ARL, observations per series, of every designed
-                 threshold; level_chart ["cusum"] and slope_chart ["cusum"]: "cusum", "ewma",
+                 threshold; change_detector ["charts"]: "split_glr" = the split likelihood-ratio detector
+                 of a change in b or the level (monitor.detectors.split_glr), or "charts": the
+                 previous charts below on the innovations and the fast-minus-reference slope; level_chart ["cusum"] and slope_chart ["cusum"]: "cusum", "ewma",
                  "page_hinkley" or "none"; cusum_k [0.5], cusum_h [designed] (level CUSUM);
                  slope_k [1.0], slope_h [designed] (slope CUSUM); ewma_lambda [0.1],
                  ewma_L [designed]; slope_ewma_lambda [0.1], slope_ewma_L [designed];
@@ -44,7 +46,8 @@ DETECTOR_RANGES: dict[str, Key] = {
     "level_burn_in": Key(20, 0, 1e6, integer=True), "slope_burn_in": Key(50, 0, 1e6, integer=True),
     "design_paths": Key(400, 20, 1e6, integer=True),
     "design_seed": Key(0, 0, 2**32 - 1, integer=True)}
-DETECTOR_KEYS = {"arl0": (NUM, 20000.0), "level_chart": (str, "cusum"),
+DETECTOR_KEYS = {"arl0": (NUM, 20000.0), "change_detector": (str, "charts"),
+                 "level_chart": (str, "cusum"),
                  "slope_chart": (str, "cusum"),
                  **{k: (NUM, r.default) for k, r in DETECTOR_RANGES.items() if k != "arl0"}}
 BOUNDS_KEYS = {"low": (NUM, None), "high": (NUM, None), "mode": (str, "interval"),
@@ -85,8 +88,15 @@ def _validate(obj, section: str) -> None:
         object.__setattr__(obj, f.name, _checked(section, f.name, getattr(obj, f.name)))
 
 
+#: ``[detectors] change_detector``: the split GLR (default) or the previous charts
+CHANGE_DETECTORS = ("split_glr", "charts")
+
+
 def _detector_post_init(self):
     _validate(self, "detectors")
+    if self.change_detector not in CHANGE_DETECTORS:
+        raise ConfigError(f"[detectors] change_detector = {self.change_detector!r}: must be "
+                          f"one of {', '.join(CHANGE_DETECTORS)}")
     for key in ("level_chart", "slope_chart"):
         if getattr(self, key) not in CHART_CODES:
             raise ConfigError(f"[detectors] {key} = {getattr(self, key)!r}: must be one of "

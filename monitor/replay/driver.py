@@ -64,7 +64,8 @@ SCHEMAS = {
                            + [(c, _F) for c in ESTIMATE_COLUMNS[8:]]),
     "alerts": pa.schema([("series", pa.string()), ("ts", pa.string()), ("rule", pa.string()),
                          ("beta", _F), ("beta_lo", _F), ("beta_hi", _F), ("message", pa.string()),
-                         ("severity", pa.string())]),
+                         ("change_ts", pa.string())] + [(c, _F) for c in ALERT_COLUMNS[8:]]
+                        + [("severity", pa.string())]),
     "rejects": pa.schema([("row", pa.int64())] + [(c, pa.string()) for c in REJECT_OUT_COLUMNS[1:]]),
 }
 
@@ -313,7 +314,8 @@ def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info
         for name, t_txt, row in zip(f.index, ts_text, f.itertuples(index=False)):
             d = row._asdict()
             final[str(name)] = {"ts": str(t_txt), **{k: _json_float(d[k]) for k in FINAL_FIELDS},
-                                "status": d["status"], "n_obs": int(d["n"])}
+                                "status": d["status"], "n_obs": int(d["n"]),
+                                "delay50_obs": _json_float(d.get("delay50_obs", float("nan")))}
     by_rule = {str(k): int(c) for k, c in alerts["rule"].value_counts().items()} if len(alerts) else {}
     statuses = [v["status"] for v in final.values()]
     wall = time.perf_counter() - t0
@@ -377,6 +379,7 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
     final = {}
     if len(good):
         last = np.flatnonzero(np.r_[sid[1:] != sid[:-1], True])
+        d50 = pipe.delay50_obs(result.states)
         for j in last:
             o = result.out[j]
             final[names[sid[j]]] = {
@@ -384,7 +387,8 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
                 "beta_se": _json_float(o[K.O_SE]), "beta_lo": _json_float(o[K.O_LO]),
                 "beta_hi": _json_float(o[K.O_HI]), "n_eff": _json_float(o[K.O_NEFF]),
                 "status": STATUS_LABELS[int(result.status[j])],
-                "n_obs": int(np.count_nonzero(sid == sid[j]))}
+                "n_obs": int(np.count_nonzero(sid == sid[j])),
+                "delay50_obs": _json_float(d50[sid[j]])}
     wall = time.perf_counter() - t0
     summary = {
         "log": str(log_path),

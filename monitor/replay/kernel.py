@@ -229,7 +229,8 @@ def partial_of(res: ChunkResult, setup: Setup, carried: CarriedState) -> Partial
                            "rule": alerts["rule"].to_numpy(dtype=object)})
     rejects = v.rejects[REJECT_OUT_COLUMNS] if len(v.rejects) else \
         pd.DataFrame({c: pd.Series(dtype=object) for c in REJECT_OUT_COLUMNS})
-    final = _final(good, res)
+    final = _final(good, res, None if carried.states is None else
+                   setup.pipe.delay50_obs(carried.states))
     report = pd.DataFrame(columns=ESTIMATE_COLUMNS)
     if setup.report_series and len(good):
         m = good["series"].isin(setup.report_series).to_numpy()
@@ -251,11 +252,12 @@ def _ts_of_events(good, events) -> np.ndarray:
     return good["ts"].to_numpy(dtype=np.int64)[ev["row"].to_numpy(dtype=np.int64)]
 
 
-def _final(good: pd.DataFrame, res: ChunkResult) -> pd.DataFrame:
-    """Last processed observation of each series in the chunk, and its row count."""
+def _final(good: pd.DataFrame, res: ChunkResult, delay50=None) -> pd.DataFrame:
+    """Last processed observation of each series in the chunk, its row count and, from the
+    pipeline states after the chunk, ``delay50_obs`` (issue 12)."""
     sid = res.sid
     if sid.size == 0:
-        return pd.DataFrame(columns=["ts", *FINAL_FIELDS, "status", "n"],
+        return pd.DataFrame(columns=["ts", *FINAL_FIELDS, "status", "n", "delay50_obs"],
                             index=pd.Index([], name="series", dtype=object))
     # each series' last row in processing order (rows need not be grouped by series: with
     # [validation] order = "arrival" they stay in arrival order), and its row count
@@ -268,6 +270,7 @@ def _final(good: pd.DataFrame, res: ChunkResult) -> pd.DataFrame:
     f.insert(0, "ts", good["ts"].to_numpy(dtype=np.int64)[last])
     f["status"] = np.array(STATUS_LABELS, dtype=object)[res.status[last]]
     f["n"] = counts.astype(np.int64)
+    f["delay50_obs"] = np.nan if delay50 is None else np.asarray(delay50)[sid[last]]
     return f
 
 

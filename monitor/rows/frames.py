@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.estimators import kernel as K
-from monitor.pipeline.messages import events_frame
+from monitor.pipeline.messages import CHANGE_COLUMNS, events_frame
 from monitor.rows.isotime import format_ts
 from monitor.types import STATUS_LABELS
 
@@ -17,7 +17,9 @@ ESTIMATE_COLUMNS = ["series", "ts", "beta", "beta_se", "beta_lo", "beta_hi", "n_
                     "intercept", "resid_sd", "innovation", "z"]
 
 
-ALERT_COLUMNS = ["series", "ts", "rule", "beta", "beta_lo", "beta_hi", "message"]
+#: a change alert (elasticity_change, level_shift) also carries CHANGE_COLUMNS: the
+#: estimated change time, b before and after it with intervals, and the size of the change
+ALERT_COLUMNS = ["series", "ts", "rule", "beta", "beta_lo", "beta_hi", "message"] + CHANGE_COLUMNS
 
 
 REJECT_OUT_COLUMNS = ["row", "series", "ts", "field", "value", "reason"]
@@ -43,6 +45,18 @@ def _estimates(good: pd.DataFrame, out: np.ndarray, labels: np.ndarray) -> pd.Da
         "innovation": out[:, K.O_E], "z": out[:, K.O_Z]})
 
 
+def _change_columns(ev: pd.DataFrame) -> dict:
+    """CHANGE_COLUMNS from the events' details (None / NaN where an alert has none)."""
+    det = ev["details"].tolist()
+    size = [d.get("beta_change", d.get("level_shift_log")) for d in det]
+    out = {"change_ts": [d.get("change_ts") for d in det],
+           "size": np.array([np.nan if v is None else v for v in size], dtype=np.float64)}
+    for c in CHANGE_COLUMNS:
+        if c not in out:
+            out[c] = np.array([np.nan if d.get(c) is None else d[c] for d in det], dtype=np.float64)
+    return out
+
+
 def alerts_frame(result, good: pd.DataFrame, names: list[str]) -> pd.DataFrame:
     """The opened alerts of a :class:`~monitor.pipeline.run.PipelineResult` as replay
     ``alerts.csv`` rows: ``series, ts, rule, beta, beta_lo, beta_hi, message`` plus ``severity``
@@ -53,11 +67,12 @@ def alerts_frame(result, good: pd.DataFrame, names: list[str]) -> pd.DataFrame:
     else:
         ev = result.events
     ev = ev[ev["action"] == "open"]
-    cols = ["series", "ts", "rule", "beta", "beta_lo", "beta_hi", "message", "severity"]
+    cols = ALERT_COLUMNS + ["severity"]
     if not len(ev):
         return pd.DataFrame(columns=cols)
     rows = ev["row"].to_numpy()
-    return pd.DataFrame({
+    change = _change_columns(ev)
+    return pd.DataFrame({**change,
         "series": good["series"].to_numpy()[rows],
         "ts": format_ts(good["ts"].to_numpy()[rows]), "rule": ev["kind"].to_numpy(),
         "beta": ev["beta"].to_numpy(), "beta_lo": ev["beta_lo"].to_numpy(),

@@ -1,0 +1,118 @@
+"""The split GLR inside the compiled pipeline: its step on one row and its event records.
+
+:func:`split_row` feeds the detector of :mod:`monitor.detectors.split_glr` with the row's log
+price, the response with the controls' effects removed (the estimator's current control
+coefficients) and the estimator's innovation; it returns the pipeline's chart flags (bit
+``F_ALARM``) for the level and slope kinds. :func:`split_open` writes the event record of an
+opening: the change time and observation (the likelihood's argmax), b before and after with
+Student-t intervals from the data on each side (degrees of freedom: each side's rows - 2), the
+size (``b_after - b_before``, or the log level change), the statistic and the series' expected
+delay for a change of 0.5 in b (:func:`delay50`). :func:`split_reanchor` re-anchors the
+detector after the rule has seen the alarm, and, after an elasticity change, discounts the
+estimator's past (when the estimator offers ``discount``; see the module docstring of
+:mod:`monitor.pipeline.kernel`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+from monitor.detectors import split_glr as SG
+from monitor.detectors.kernels import F_ALARM
+from monitor.detectors.split_table import DELAY_FACTOR
+from monitor.estimators import kernel as K
+from monitor.estimators.tquantile import t_lookup
+from monitor.pipeline.messages import (EV_ACTION, EV_AFTER_B, EV_AFTER_HI, EV_AFTER_LO, EV_BETA,
+                                       EV_COUNT, EV_DELAY, EV_EXTRA, EV_HI, EV_KIND, EV_LO, EV_N,
+                                       EV_OLD_B, EV_OLD_HI, EV_OLD_LO, EV_ROW, EV_SIDE, EV_SIZE,
+                                       EV_START_N, EV_START_TS, EV_STAT, EV_TS)
+from monitor.pipeline.rules import ACTION_OPEN, KIND_ELASTICITY_CHANGE
+
+#: change of b the per-series delay is quoted for
+DB_QUOTED = 0.5
+
+
+@njit(cache=True, inline="always")
+def split_row(st, at, xj, yj, k, e, n, t, gp):
+    """One row of the split GLR; returns ``(level_flags, slope_flags)`` (``F_ALARM`` bits)."""
+    ys = yj
+    for i in range(2, k):
+        ys -= st[K.NS + i] * xj[i]
+    f = SG.split_step(st, at, xj[1], ys, e, n, t, gp)
+    fl = F_ALARM if f & SG.SG_LEVEL else 0
+    fs = F_ALARM if f & SG.SG_SLOPE else 0
+    return fl, fs
+
+
+@njit(cache=True, inline="always")
+def delay50(st, at, h):
+    """Expected rows to detect a change of 0.5 in b at this series' price variation and noise:
+    ``DELAY_FACTOR * h / I`` with ``I = 0.25 Var(log p) / (2 sigma_s^2)`` (NaN when there is
+    no scale yet or no price variation)."""
+    info = SG.info_per_obs(st, at, DB_QUOTED)
+    if not (info > 0.0):
+        return np.nan
+    return DELAY_FACTOR * h / info
+
+
+@njit(cache=True)
+def delay50_all(states, at, h, out):
+    """:func:`delay50` of every state row into ``out``."""
+    for i in range(states.shape[0]):
+        out[i] = delay50(states[i], at, h)
+
+
+@njit(cache=True, _nrt=False)
+def split_open(ev, ne, j, kind, st, at, rep, n, t, b, lo, hi, tq, h):
+    """Write the opening record of an elasticity change (slope chart) or level shift (level
+    chart) from the detector's report; returns the new event count."""
+    slope = kind == KIND_ELASTICITY_CHANGE
+    SG.split_report(st, at, slope, n, rep)
+    bb, bse, ba, ase = rep[SG.RP_BB], rep[SG.RP_BB_SE], rep[SG.RP_BA], rep[SG.RP_BA_SE]
+    qb = t_lookup(tq, max(rep[SG.RP_DFB], 1.0))
+    qa = t_lookup(tq, max(rep[SG.RP_DFA], 1.0))
+    size = ba - bb if slope else rep[SG.RP_LEVEL]
+    ev[ne, EV_ROW] = j
+    ev[ne, EV_KIND] = kind
+    ev[ne, EV_ACTION] = ACTION_OPEN
+    ev[ne, EV_BETA] = b
+    ev[ne, EV_LO] = lo
+    ev[ne, EV_HI] = hi
+    ev[ne, EV_OLD_B] = bb
+    ev[ne, EV_OLD_LO] = bb - qb * bse
+    ev[ne, EV_OLD_HI] = bb + qb * bse
+    ev[ne, EV_AFTER_B] = ba
+    ev[ne, EV_AFTER_LO] = ba - qa * ase
+    ev[ne, EV_AFTER_HI] = ba + qa * ase
+    ev[ne, EV_START_N] = n - rep[SG.RP_NA] + 1.0
+    ev[ne, EV_START_TS] = rep[SG.RP_TS]
+    ev[ne, EV_N] = n
+    ev[ne, EV_TS] = t
+    ev[ne, EV_SIDE] = 1.0 if size > 0.0 else -1.0
+    ev[ne, EV_SIZE] = size
+    ev[ne, EV_STAT] = rep[SG.RP_STAT]
+    ev[ne, EV_COUNT] = 1.0
+    ev[ne, EV_EXTRA] = rep[SG.RP_LEVEL_SE] if not slope else np.sqrt(ase * ase + bse * bse)
+    ev[ne, EV_DELAY] = delay50(st, at, h)
+    return ne + 1
+
+
+@njit(cache=True, inline="always")
+def change_start(st, at, slope, n):
+    """Observation number at which the change of the last alarm began (argmax checkpoint)."""
+    j = int(st[at + (SG.D_JS if slope else SG.D_JL)])
+    if j < 0:
+        return n
+    o = at + SG.SLOT0 + SG.SLOT_W * j
+    return n - (st[at + SG.C0] - st[o]) + 1.0
+
+
+@njit(cache=True, inline="always")
+def split_reanchor(st, at, fl, fs, gp):
+    """Re-anchor after the row's alarms (slope first: it drops everything)."""
+    if fs & F_ALARM:
+        SG.reanchor_slope(st, at, gp)
+    elif fl & F_ALARM:
+        SG.reanchor_level(st, at, gp)
+
