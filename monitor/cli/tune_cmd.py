@@ -34,11 +34,23 @@ false-alarm rate more than 20% away from the design's is flagged, with the
 threshold that meets the target on the data."""
 
 
+#: Search space used when ``--truth`` is given without ``--space`` (issue 16): the
+#: forgetting factor (effective windows (1 + λ)/(1 − λ) of 66, 99, 199 and 399 observations)
+#: against the in-control ARL per chart, 2 x 4 = 8 settings plus the defaults.
+DEFAULT_SPACE = {"estimator": {"forgetting": [0.97, 0.98, 0.99, 0.995]},
+                 "detectors": {"arl0": [2000, 20000]}}
+
+
 def handle(args) -> int:
     from monitor.cli.replay_cmd import config_from_args
     from monitor.tuning.tune import tune
 
-    summary = tune(args.log, args.out, truth=args.truth, space=args.space,
+    space = args.space
+    if args.truth and space is None:
+        space = DEFAULT_SPACE
+        if not args.quiet:
+            print("no --space given: trying the default grid " + json.dumps(DEFAULT_SPACE))
+    summary = tune(args.log, args.out, truth=args.truth, space=space,
                    config=config_from_args(args), max_false_alarms=args.max_false_alarms,
                    arl0=args.arl0, horizon=args.horizon, engine=args.engine,
                    scheduler=args.scheduler, npartitions=args.partitions,
@@ -97,7 +109,9 @@ def register(sub) -> None:
     p.add_argument("--out", required=True, help="output folder")
     add_truth_options(p)
     p.add_argument("--space", metavar="SPACE.toml", help="search space: config keys with lists of "
-                                                           "values to try (with --truth)")
+                                                           "values to try (with --truth; default: "
+                                                           "forgetting 0.97-0.995 x arl0 2,000 "
+                                                           "and 20,000)")
     p.add_argument("--max-false-alarms", type=float, default=1.0, metavar="X",
                    help="false-alarm budget: alarms per 10,000 observations without a known "
                         "change (default 1)")

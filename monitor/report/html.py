@@ -284,10 +284,14 @@ def write_tuning_report(path, summary: dict, res: pd.DataFrame) -> Path:
     order = res.assign(_d=res["median_delay_all_obs"].fillna(np.inf)).sort_values(
         ["recommended", "within_budget", "_d"], ascending=[False, False, True], kind="stable")
     cols = [c for c in res.columns if c not in ("_d", "median_delay_s")]
-    sections = ["<h2>Recommendation</h2>" + kv_table(items)
-                + '<p class="note">recommended.toml beside this report is the base config with the '
-                  "recommended values: pass it to elmon replay or elmon run with --config. The rates "
-                  "are measured on this log; check them on held-out data before relying on them.</p>",
+    note = ('<p class="note">recommended.toml beside this report is the base config with the '
+            "recommended values: pass it to elmon replay or elmon run with --config. The rates "
+            "are measured on this log; check them on held-out data before relying on them.</p>"
+            if rec else
+            '<p class="note">No setting met the false-alarm budget, so nothing is recommended and '
+            "no recommended.toml was written: widen the search space, allow more false alarms "
+            "(--max-false-alarms) or check the truth file.</p>")
+    sections = ["<h2>Recommendation</h2>" + kv_table(items) + note,
                 "<h2>Trade-off</h2>" + _tradeoff_chart(summary, res),
                 "<h2>Every setting</h2>" + table_html(order[cols], floats="{:.4g}")]
     path = Path(path)

@@ -134,10 +134,12 @@ def tune(log, out_dir, *, truth=None, space=None, config: Config | None = None,
     res["pareto"] = pareto_front(res["false_alarms_per_10k"], res["median_delay_all_obs"])
     res["within_budget"] = res["false_alarms_per_10k"].fillna(np.inf) <= max_false_alarms
     best, why = recommend(res, max_false_alarms)
-    res["recommended"] = res.index == best if best is not None else False
+    meets = best is not None and bool(res.loc[best, "within_budget"])
+    # one answer in every file: a setting outside the budget is never marked recommended
+    # (tuning.csv, tuning.json, report.html and recommended.toml agree; issue 16)
+    res["recommended"] = (res.index == best) & meets
     out.mkdir(parents=True, exist_ok=True)
     res.to_csv(out / "tuning.csv", index=False)
-    meets = best is not None and bool(res.loc[best, "within_budget"])
     rec = settings[best] if meets else None
     if rec is not None:
         used = ", ".join(f"{k} = {v:.6g}" for (s_, k), v in full[best].items() if (s_, k) not in rec)
