@@ -129,3 +129,19 @@ def test_example_config_effective_window_is_kish():
     line = next(x for x in text.splitlines() if x.startswith("forgetting"))
     lam = float(line.split("=")[1].split("#")[0])
     assert round((1 + lam) / (1 - lam)) == 99 and "= 99 observations" in line
+
+
+def test_files_the_example_service_writes_are_ignored_by_git():
+    """Issue 16: running the README's service example left an untracked examples/alerts.jsonl."""
+    import shutil
+    import tomllib
+
+    root = Path(__file__).resolve().parents[1]
+    if shutil.which("git") is None or not (root / ".git").exists():
+        pytest.fail("git or the repository is missing: the ignore rules cannot be checked")
+    cfg = tomllib.loads((root / "examples" / "elmon.toml").read_text(encoding="utf-8"))
+    written = [cfg["store"]["path"], cfg["sinks"]["log"]["path"]]
+    for rel in written:
+        out = subprocess.run(["git", "check-ignore", "-q", f"examples/{rel}"], cwd=root,
+                             timeout=30)
+        assert out.returncode == 0, f"examples/{rel} is not ignored by git"
