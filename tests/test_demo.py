@@ -30,9 +30,13 @@ def test_demo_catches_the_scenario_change_point(tmp_path):
     store = open_store(wd / "elmon-demo.sqlite", readonly=True)
     try:
         alerts = list_alerts(store, series=change.series, kind="elasticity_change")
+        source_errors = list_alerts(store, kind="source_error")
     finally:
         store.close()
     assert len(alerts) >= 1, proc.stdout[-3000:]
+    # issue 16: the service starts once the feed exists, so no "no such file" at start
+    assert len(source_errors) == 0, source_errors["message"].tolist()
+    assert "no such file" not in (proc.stdout + proc.stderr).lower()
     opened = pd.to_datetime(alerts["opened_ts"], utc=True).min()
     t_change = pd.Timestamp(change.ts)
     # raised after the change, within 60 days of it (daily data)

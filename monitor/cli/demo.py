@@ -159,6 +159,12 @@ def run_demo(s: DemoSettings, out=print) -> dict:
         out(f"elmon demo: scenario '{s.scenario}' ({len(sim.log)} rows, truth in {wd / 'truth.csv'}), "
             f"{speed / 86400:.2f} simulated days per second")
         appender.start()
+        # the service starts only once the feed exists: before, its first poll could come
+        # before the appender's thread had created feed.csv ("no such file" at start; issue 16)
+        feed_deadline = time.monotonic() + 30
+        while not (wd / "feed.csv").exists() and appender.error is None \
+                and time.monotonic() < feed_deadline:
+            time.sleep(0.05)
         service.start()
         out(f"  feed:    {wd / 'feed.csv'} (appended live)")
         out(f"  store:   {db}")
