@@ -47,12 +47,15 @@ def build_parser() -> argparse.ArgumentParser:
             # tests/test_cli.py fails while any listed module is absent
             continue
         importlib.import_module(name).register(sub)
+    parser.commands = sub.choices     # main() reports a command's bad options with its usage
     return parser
 
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args, extra = parser.parse_known_args(argv)
+    if extra:   # an unknown option: show the command's own usage, not the top-level one
+        parser.commands[args.command].error(f"unrecognized arguments: {' '.join(extra)}")
     try:
         rc = args.func(args)
     except ElmonError as exc:

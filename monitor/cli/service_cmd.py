@@ -86,7 +86,8 @@ def cmd_ingest(args) -> int:
     from monitor.live.service import ingest_file
 
     out = ingest_file(args.file, args.db, config_from_args(args), batch_rows=args.batch_rows)
-    print(describe_ingest(out, args.file))
+    if not args.quiet:
+        print(describe_ingest(out, args.file))
     return 0
 
 
@@ -147,4 +148,5 @@ def register(sub) -> None:
     p.add_argument("--batch-rows", type=int, metavar="N",
                    help="rows per committed batch (default [service] batch_rows, 50000)")
     add_common_options(p)
+    p.add_argument("--quiet", action="store_true", help="print nothing on success")
     p.set_defaults(func=cmd_ingest)
