@@ -3,7 +3,9 @@ Debian's chromium through Python Playwright (never a browser download step).
 
 The test installs chromium with ``apt-get install -y chromium`` when ``/usr/bin/chromium`` is
 missing (``make test`` runs ``make browser-deps`` first); if that fails the test FAILS and says
-so. Screenshots go to ``test-artifacts/`` and, for the README, ``docs/screenshots/``.
+so. Screenshots go to ``test-artifacts/`` and, for the README, ``docs/screenshots/``
+(only with ELMON_UPDATE_SCREENSHOTS=1, so a test run
+leaves the checkout clean).
 """
 
 from __future__ import annotations
@@ -138,7 +140,7 @@ def _open(browser, url: str, title: str, ready: str):
 def _shot(page, name: str, readme: bool = False) -> None:
     ARTIFACTS.mkdir(exist_ok=True)
     page.screenshot(path=str(ARTIFACTS / f"{name}.png"))
-    if readme:
+    if readme and os.environ.get("ELMON_UPDATE_SCREENSHOTS") == "1":   # refresh README images
         SCREENSHOTS.mkdir(parents=True, exist_ok=True)
         page.screenshot(path=str(SCREENSHOTS / f"{name}.png"))
 
