@@ -126,3 +126,10 @@ def test_verdict_events_open_once_and_resume_across_batches():
     assert ev2 == ev
     assert "1. prices that follow demand" in F.sign_flip_causes(F.V_FEEDBACK, 1)
     assert F.sign_flip_causes(F.V_NONE, 0).startswith("likely causes, most likely first: 1. bad data")
+
+
+def test_an_empty_batch_opens_nothing():
+    """A batch whose rows were all rejected reaches the diagnostic with no rows (the crash
+    test's warm-up did): no event, no error."""
+    res = np.empty((0, F.FB_NOUT))
+    assert F.verdict_events(res, np.zeros(0, dtype=np.int64), np.zeros(3)) == []

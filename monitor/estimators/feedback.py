@@ -229,6 +229,8 @@ def verdict_events(out: np.ndarray, sid: np.ndarray, before: np.ndarray) -> list
     ``"clear"`` when it leaves it.
     """
     v = out[:, FB_VERDICT]
+    if len(v) == 0:                       # an empty batch opens and clears nothing
+        return []
     prev = np.asarray(before, dtype=np.float64)[sid].copy()
     # previous verdict of each row within its series: shift by series
     order = np.argsort(sid, kind="stable")
