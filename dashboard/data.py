@@ -9,6 +9,13 @@
 Where the store lives: ``--db PATH`` after ``--`` on the ``streamlit run`` command line (what
 ``elmon dashboard`` passes), else the ``ELMON_DB`` environment variable. A truth file of known
 change points likewise comes from ``--truth`` or ``ELMON_TRUTH``.
+
+Security settings (issue 14), fixed when the server starts, never from the page:
+
+- ``--allow-actions`` (or ``ELMON_DASHBOARD_ACTIONS=1``): acknowledge / resolve are offered;
+  without it the dashboard changes nothing in the store.
+- ``--replay-root DIR`` (or ``ELMON_REPLAY_ROOT``): the only folder tree the Replay page reads
+  and writes; default the store's folder.
 """
 
 from __future__ import annotations
@@ -16,6 +23,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+from pathlib import Path
 
 import pandas as pd
 import streamlit as st
@@ -27,13 +35,23 @@ QUERY_TTL = 5
 
 
 def app_settings() -> dict:
-    """``{'db': path or None, 'truth': path or None}`` from the command line or environment."""
+    """``{'db', 'truth', 'actions', 'replay_root'}`` from the command line or environment:
+    paths or ``None``; ``actions`` is ``True`` only when explicitly enabled."""
     parser = argparse.ArgumentParser(add_help=False, allow_abbrev=False)
     parser.add_argument("--db")
     parser.add_argument("--truth")
+    parser.add_argument("--allow-actions", action="store_true")
+    parser.add_argument("--replay-root")
     args, _ = parser.parse_known_args(sys.argv[1:])
-    return {"db": args.db or os.environ.get("ELMON_DB") or None,
-            "truth": args.truth or os.environ.get("ELMON_TRUTH") or None}
+    db = args.db or os.environ.get("ELMON_DB") or None
+    root = args.replay_root or os.environ.get("ELMON_REPLAY_ROOT") or None
+    if root is None and db:
+        root = str(Path(db).resolve().parent)
+    env_actions = os.environ.get("ELMON_DASHBOARD_ACTIONS", "").strip().lower()
+    return {"db": db,
+            "truth": args.truth or os.environ.get("ELMON_TRUTH") or None,
+            "actions": bool(args.allow_actions or env_actions in ("1", "true", "yes")),
+            "replay_root": root}
 
 
 @st.cache_resource(show_spinner=False)
@@ -89,9 +107,18 @@ def clear_queries() -> None:
 
 
 def change_alert(db: str, alert_id: int, action: str, note: str | None, who: str | None) -> None:
-    """Acknowledge or resolve an alert through the store (its own writable connection)."""
+    """Acknowledge or resolve an alert through the store (its own writable connection).
+
+    Refused unless the dashboard was started with actions enabled, and without a name: the
+    store records who acted.
+    """
+    if not app_settings()["actions"]:
+        raise PermissionError("this dashboard is read-only: start it with "
+                              "'elmon dashboard --allow-actions' to acknowledge or resolve")
     if action not in ("acknowledge", "resolve"):
         raise ValueError(f"action {action!r}: must be 'acknowledge' or 'resolve'")
+    if not (who or "").strip():
+        raise ValueError("give your name: the store records who acknowledged or resolved")
     fn = mstore.acknowledge_alert if action == "acknowledge" else mstore.resolve_alert
     store = mstore.open_store(db, readonly=False)
     try:

@@ -60,6 +60,37 @@ def load_truth(path) -> tuple[pd.DataFrame, pd.DataFrame]:
     return good, rejects.sort_values("row", kind="stable").reset_index(drop=True)
 
 
+def under_root(path, root, what: str = "path") -> Path:
+    """``path`` resolved (relative paths taken from ``root``, symbolic links followed), or a
+    :class:`SourceError` when it lies outside ``root`` or no root is configured.
+
+    The Replay page reads and writes only below the root given when the dashboard started
+    (``--replay-root``, default the store's folder), so a visitor cannot make the server read
+    ``/etc/passwd`` or write elsewhere. The message names the typed path and the root, never
+    the content of any file.
+
+    >>> import tempfile, os
+    >>> root = tempfile.mkdtemp()
+    >>> under_root("out", root) == Path(root).resolve() / "out"
+    True
+    >>> under_root("../../etc/passwd", root)
+    Traceback (most recent call last):
+    ...
+    monitor.errors.SourceError: path '../../etc/passwd' is outside the replay root; ...
+    """
+    if not root:
+        raise SourceError(f"{what} {str(path)!r}: no replay root is configured (start the "
+                          "dashboard with --replay-root DIR)")
+    base = Path(root).resolve()
+    p = Path(str(path).strip()).expanduser()
+    full = (p if p.is_absolute() else base / p).resolve()
+    if full != base and base not in full.parents:
+        raise SourceError(f"{what} {str(path)!r} is outside the replay root; this dashboard "
+                          f"reads and writes replay files only under {str(base)!r} (set with "
+                          "elmon dashboard --replay-root DIR)")
+    return full
+
+
 def find_replay_folders(root, max_depth: int = 2) -> list[str]:
     """Folders under ``root`` (itself included, up to ``max_depth`` levels) holding replay output
     (an ``estimates.csv`` next to a ``summary.json``), sorted by path."""

@@ -11,6 +11,7 @@ import streamlit as st
 
 from dashboard import data, files
 from dashboard.legend import CAUTION
+from dashboard.safe_text import plain
 from monitor.errors import ElmonError
 
 #: Refresh intervals offered in the sidebar (seconds).
@@ -29,10 +30,14 @@ def sidebar() -> None:
         st.toggle("Pause live refresh", value=False, key="refresh_paused")
         if st.button("Refresh now", key="refresh_now"):
             data.clear_queries()
-        st.caption(f"Store: `{Path(s['db']).name if s['db'] else 'none given'}`",
-                   help=s["db"] or "Start with elmon dashboard --db PATH.")
+        st.caption(f"Store: {plain(Path(s['db']).name) if s['db'] else 'none given'}",
+                   help=plain(s["db"]) if s["db"] else "Start with elmon dashboard --db PATH.")
         if s["truth"]:
-            st.caption(f"Known change points: `{Path(s['truth']).name}`", help=s["truth"])
+            st.caption(f"Known change points: {plain(Path(s['truth']).name)}",
+                       help=plain(s["truth"]))
+        st.caption("Read-only" if not s["actions"] else
+                   "Actions enabled: acknowledge and resolve change the store",
+                   help="Set when the dashboard starts (elmon dashboard --allow-actions).")
 
 
 def download_csv(table: pd.DataFrame, name: str, key: str) -> None:
@@ -61,13 +66,13 @@ def require_db() -> str:
         st.error("No store given. Start the dashboard with `elmon dashboard --db PATH`.")
         st.stop()
     if not Path(db).is_file():
-        st.error(f"Store `{db}` not found. Create it with the service or `elmon demo`, "
+        st.error(f"Store {plain(db)} not found. Create it with the service or `elmon demo`, "
                  "then start the dashboard with `elmon dashboard --db PATH`.")
         st.stop()
     try:
         data.get_store(db)
     except ElmonError as exc:
-        st.error(f"The store cannot be opened: {exc}")
+        st.error(f"The store cannot be opened: {plain(exc)}")
         st.stop()
     return db
 
@@ -79,7 +84,7 @@ def store_guard():
     try:
         yield
     except ElmonError as exc:
-        st.error(f"The store could not be read: {exc}")
+        st.error(f"The store could not be read: {plain(exc)}")
 
 
 @st.cache_data(ttl=60, show_spinner=False)

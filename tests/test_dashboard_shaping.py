@@ -304,6 +304,9 @@ def test_dashboard_command_line_and_errors(tmp_path, capsys):
     from monitor.cli.dashboard_cmd import streamlit_command
 
     cmd = streamlit_command("s.sqlite", 8765, truth="t.csv")
+    # the Host/Origin guard runs first, then streamlit's own command line (issue 14)
+    assert cmd[1:5] == ["-m", "dashboard.serve", "--address", "127.0.0.1"]
+    cmd = [cmd[0], "-m", "streamlit"] + cmd[cmd.index("--") + 1:]
     flags = dict(zip(cmd[5:-5:2], cmd[6:-5:2]))
     assert cmd[1:4] == ["-m", "streamlit", "run"] and cmd[4].endswith("dashboard/app.py")
     assert flags["--server.address"] == "127.0.0.1" and flags["--server.port"] == "8765"

@@ -1,5 +1,7 @@
-"""Alerts page: open, acknowledged and resolved alerts with filters; acknowledge or resolve one
-with a note (through the store functions the CLI uses); the event history of an alert."""
+"""Alerts page: open, acknowledged and resolved alerts with filters; the event history of an
+alert; acknowledge or resolve one with a note and a name (through the store functions the CLI
+uses) only when the dashboard was started with ``--allow-actions``. Ids and messages are shown
+as text (:func:`dashboard.safe_text.plain`)."""
 
 from __future__ import annotations
 
@@ -8,6 +10,7 @@ import streamlit as st
 
 from dashboard import charts, data, shaping, ui
 from dashboard.legend import ALERT_SHAPES, STATE_SYMBOLS
+from dashboard.safe_text import plain
 from monitor.errors import ElmonError
 
 STATES = ("open", "acknowledged", "resolved")
@@ -44,15 +47,16 @@ def _column_config() -> dict:
 
 def _detail(db: str, alert_id: int) -> None:
     a = data.alert(db, alert_id)
-    st.subheader(f"Alert {alert_id}: {a['series']} · {str(a['kind']).replace('_', ' ')}")
+    st.subheader(f"Alert {alert_id}: {plain(a['series'])} · "
+                 f"{plain(str(a['kind']).replace('_', ' '))}")
     cols = st.columns(4)
-    cols[0].metric("State", STATE_SYMBOLS.get(a["state"], a["state"]))
-    cols[1].metric("Severity", str(a.get("severity", "—")))
+    cols[0].metric("State", plain(STATE_SYMBOLS.get(a["state"], a["state"])))
+    cols[1].metric("Severity", plain(a.get("severity", "—")))
     cols[2].metric("Elasticity b", shaping.fmt_num(a.get("beta")))
     cols[3].metric("Interval", f"[{shaping.fmt_num(a.get('beta_lo'))}, "
                                f"{shaping.fmt_num(a.get('beta_hi'))}]")
-    st.write(a.get("message", ""))
-    st.page_link("views/series.py", label=f"Open series detail: {a['series']}",
+    st.markdown(plain(a.get("message") or ""))
+    st.page_link("views/series.py", label=f"Open series detail: {plain(a['series'])}",
                  icon=":material/show_chart:", query_params={"series": str(a["series"])})
     ev = data.events(db, alert_id)
     cc = st.column_config
@@ -70,8 +74,20 @@ def _detail(db: str, alert_id: int) -> None:
                                                         help="— for actions by people"),
                                 "note": cc.TextColumn("note", width="large")})
 
+    _actions(db, alert_id, a)
+
+
+def _actions(db: str, alert_id: int, a: dict) -> None:
+    """Acknowledge / resolve, offered only when the dashboard was started with
+    ``--allow-actions``; the name of who acts is required (the store records it)."""
+    if not data.app_settings()["actions"]:
+        st.caption("This dashboard is read-only. To acknowledge or resolve alerts here, start it "
+                   "with `elmon dashboard --allow-actions`, or use `elmon alerts ack` / "
+                   "`elmon alerts resolve`.")
+        return
     note = st.text_area("Note", key="al_note", placeholder="what was checked, what was decided")
-    who = st.text_input("Your name", key="al_who")
+    who = st.text_input("Your name (required)", key="al_who",
+                        help="Recorded with the action in the alert's history.")
     c1, c2 = st.columns(2)
     ack = c1.button("Acknowledge", key="al_ack", disabled=a["state"] != "open",
                     help="Mark as seen; it stays active until resolved.")
@@ -80,8 +96,8 @@ def _detail(db: str, alert_id: int) -> None:
         action = "acknowledge" if ack else "resolve"
         try:
             data.change_alert(db, alert_id, action, note, who)
-        except (ElmonError, ValueError) as exc:
-            st.error(f"Could not {action} alert {alert_id}: {exc}")
+        except (ElmonError, ValueError, PermissionError) as exc:
+            st.error(f"Could not {action} alert {alert_id}: {plain(exc)}")
         else:
             st.session_state["al_flash"] = f"Alert {alert_id}: {action}d."
             st.rerun()

@@ -17,7 +17,8 @@ import altair as alt
 import pandas as pd
 import streamlit as st
 
-from dashboard import data
+from dashboard import data, files
+from dashboard.safe_text import plain
 from dashboard.legend import COLOURS
 from monitor.errors import ElmonError
 from monitor.experiments.report import (CS_COLOUR, EXPERIMENT_CAUTIONS, path_for_display,
@@ -127,20 +128,23 @@ def main() -> None:
         st.info("No experiments: give a config file with `[experiments.NAME]` tables.")
         return
     try:
+        if config != _config_path():    # typed here: only under the replay root (issue 14)
+            config = str(files.under_root(config, data.app_settings()["replay_root"],
+                                          "config file"))
         mtime = os.path.getmtime(config)
         plans, _ = _plans(config, mtime)
     except (OSError, ElmonError) as exc:
-        st.error(f"The config cannot be read: {exc}")
+        st.error(f"The config cannot be read: {plain(exc)}")
         return
     if not plans:
-        st.info(f"`{config}` defines no `[experiments.NAME]` table.")
+        st.info(f"{plain(config)} defines no `[experiments.NAME]` table.")
         return
     name = st.selectbox("Experiment", sorted(plans), key="ex_name")
     st_ = _status(db, config, mtime, name)
     s = st_.summary
     st.subheader(VERDICT_WORDS[s["verdict"]])
     for r in s["reasons"]:
-        st.markdown(f"- {r}")
+        st.markdown(f"- {plain(r)}")
     level = f"{100 * st_.plan.level:g}%"
     cols = st.columns(4)
     cols[0].metric("Pooled b", _fmt(s["b"]))
@@ -166,13 +170,13 @@ def main() -> None:
                    f"({level} interval {het['tau_lo']:.3f} to {het['tau_hi']:.3f}), "
                    f"I² = {100 * het['i2']:.0f}%, {het['k']} series.")
     elif het.get("note"):
-        st.caption(het["note"])
+        st.caption(plain(het["note"]))
     if len(st_.series):
         st.dataframe(st_.series, hide_index=True, width="stretch")
     st.subheader("Health")
     st.dataframe(_health_table(st_.health), hide_index=True, width="stretch")
     for note in st_.notes:
-        st.caption(note)
+        st.caption(plain(note))
 
 
 main()

@@ -7,6 +7,7 @@ from __future__ import annotations
 import streamlit as st
 
 from dashboard import data, group_shaping, ui
+from dashboard.safe_text import plain
 from monitor.store import groups as sgroups
 
 
@@ -74,7 +75,7 @@ def render() -> None:
             chosen = st.selectbox("Group", options=table["group"].tolist(), key="gr_group")
             summary = per_group.set_index("group").loc[chosen].to_dict()
             members = group_shaping.members_table(per_series, chosen)
-            st.caption(f"{len(members):,} series in {chosen}; {int(summary['n_differ'])} "
+            st.caption(f"{len(members):,} series in {plain(chosen)}; {int(summary['n_differ'])} "
                        f"differ from the group at FDR {fdr:g}.")
             st.altair_chart(group_shaping.comparison_chart(members, summary),
                             use_container_width=True)

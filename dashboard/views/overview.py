@@ -7,6 +7,7 @@ import streamlit as st
 
 from dashboard import data, shaping, ui
 from dashboard.legend import ALERT_SHAPES, COLOURS, STATUS_STYLE, legend_markdown
+from dashboard.safe_text import plain
 
 TABLE_COLUMNS = ["series", "status", "elasticity", "lo", "hi", "trend", "open_alerts",
                  "last_observation", "n_obs", "n_eff"]
@@ -93,7 +94,7 @@ def render() -> None:
             if rows:
                 chosen = str(view["series"].iloc[rows[0]])
                 st.session_state["series"] = chosen
-                st.page_link("views/series.py", label=f"Open series detail: {chosen}",
+                st.page_link("views/series.py", label=f"Open series detail: {plain(chosen)}",
                              icon=":material/show_chart:", query_params={"series": chosen})
 
     live()

@@ -1,16 +1,20 @@
 """Replay page: pick a replay output folder (or run a replay of a log) and see its estimates,
-alerts, rejects and, where a truth file was used, detection delay and false alarms."""
+alerts, rejects and, where a truth file was used, detection delay and false alarms.
+
+Every path typed here must lie under the replay root fixed when the dashboard started
+(``--replay-root DIR``, default the store's folder; :func:`dashboard.files.under_root`); paths
+are taken relative to the root, and errors are shown as text, never as markdown."""
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
 import pandas as pd
 import streamlit as st
 
 from dashboard import charts, data, files, shaping, ui
-from monitor.errors import ElmonError
+from dashboard.safe_text import plain
+from monitor.errors import ElmonError, SourceError
 
 
 MAX_DRAWN = 1500
@@ -22,12 +26,8 @@ def _load(folder: str, stamp: float) -> dict:
     return files.load_replay(folder)
 
 
-def _roots() -> list[str]:
-    roots = [os.getcwd()]
-    db = data.app_settings()["db"]
-    if db:
-        roots.insert(0, str(Path(db).resolve().parent))
-    return roots
+def _root() -> str | None:
+    return data.app_settings()["replay_root"]
 
 
 def _stamp(folder: str) -> float:
@@ -49,17 +49,23 @@ def _run_form() -> None:
                 from monitor.replay.driver import replay
                 from monitor.settings import load_config
             except ImportError as exc:
-                st.error(f"Replay is not available in this installation: {exc}")
+                st.error(f"Replay is not available in this installation: {plain(exc)}")
                 return
+            root = _root()
             try:
-                cfg = load_config(cfg_path or None).with_overrides("estimator",
-                                                                  forgetting=float(lam))
+                log_p = files.under_root(log, root, "observation log")
+                out_p = files.under_root(out, root, "output folder")
+                cfg_p = files.under_root(cfg_path, root, "config file") if cfg_path else None
+                truth_p = files.under_root(truth, root, "truth file") if truth else None
+                cfg = load_config(str(cfg_p) if cfg_p else None).with_overrides(
+                    "estimator", forgetting=float(lam))
                 with st.spinner("Replaying…"):      # the driver of `elmon replay`
-                    replay(log, out, cfg, truth=truth or None, progress=False)
+                    replay(str(log_p), str(out_p), cfg,
+                           truth=str(truth_p) if truth_p else None, progress=False)
             except (ElmonError, OSError, ValueError) as exc:
-                st.error(f"Replay failed: {exc}")
+                st.error(f"Replay failed: {plain(exc)}")
             else:
-                st.session_state["rp_ran"] = out
+                st.session_state["rp_ran"] = str(out_p)
                 st.rerun()
 
 
@@ -114,10 +120,14 @@ def _detection(rep: dict) -> None:
 
 def render() -> None:
     st.title("Replay")
-    found = sorted({f for r in _roots() for f in files.find_replay_folders(r)})
+    root = _root()
+    found = sorted(files.find_replay_folders(root)) if root else []
+    st.caption("Replay root (set with `elmon dashboard --replay-root DIR`): "
+               + (plain(root) if root else "none")
+               + ". Paths below are taken relative to it and must stay inside it.")
     c1, c2 = st.columns(2)
-    picked = c1.selectbox("Replay output found near the store", [NONE] + found, key="rp_found",
-                          index=1 if found else 0)
+    picked = c1.selectbox("Replay output found under the replay root", [NONE] + found,
+                          key="rp_found", index=1 if found else 0)
     typed = c2.text_input("…or type a replay output folder", key="rp_folder_text")
     _run_form()
     folder = (typed.strip() or st.session_state.get("rp_ran")
@@ -125,14 +135,15 @@ def render() -> None:
     if not folder:
         st.info("Pick or type a folder written by `elmon replay LOG --out DIR`.")
         return
-    st.caption(f"Showing replay output in `{folder}`")
     try:
+        folder = str(files.under_root(folder, root, "replay folder"))
+        st.caption(f"Showing replay output in {plain(folder)}")
         rep = _load(folder, _stamp(folder))
-    except ElmonError as exc:
-        st.error(str(exc))
+    except (ElmonError, SourceError) as exc:
+        st.error(plain(exc))
         return
     if rep["missing"]:
-        st.warning("Missing from this folder: " + ", ".join(rep["missing"]))
+        st.warning("Missing from this folder: " + plain(", ".join(rep["missing"])))
     est, alerts, rejects = rep["estimates"], rep["alerts"], rep["rejects"]
     cols = st.columns(4)
     cols[0].metric("Series", f"{est['series'].nunique() if len(est) else 0:,}")

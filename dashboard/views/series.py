@@ -10,6 +10,7 @@ import streamlit as st
 
 from dashboard import charts, data, loglog, shaping, ui
 from dashboard.legend import status_label
+from dashboard.safe_text import plain
 from dashboard.shaping import fmt_num, fmt_pct, fmt_timedelta
 
 MAX_DRAWN = 1500
@@ -31,12 +32,12 @@ def _headline(row: pd.Series) -> None:
     status = str(row["status"])
     # the status column is the widest, so its text ("out of bounds") is not cut
     cols = st.columns([2, 3, 4, 2])
-    cols[0].metric("Elasticity b", fmt_num(row["beta"]), help=f"status: {status}")
+    cols[0].metric("Elasticity b", fmt_num(row["beta"]), help=f"status: {plain(status)}")
     cols[1].metric("Interval", f"[{fmt_num(row['beta_lo'])}, {fmt_num(row['beta_hi'])}]")
-    cols[2].metric("Status", status_label(status), help=status_label(status))
+    cols[2].metric("Status", plain(status_label(status)), help=plain(status_label(status)))
     cols[3].metric("Effective n", fmt_num(row.get("n_eff"), 0))
     if pd.isna(row["beta"]):
-        st.caption(f"— means no estimate yet: status {status_label(status)}.")
+        st.caption(f"— means no estimate yet: status {plain(status_label(status))}.")
 
 
 def _elasticity(db: str, series: str, hist: pd.DataFrame, row: pd.Series) -> None:
@@ -67,7 +68,7 @@ def _elasticity(db: str, series: str, hist: pd.DataFrame, row: pd.Series) -> Non
                "vertical axis spans the 2nd to 98th percentile of the band (early estimates "
                "beyond it are clipped at the edge).")
     if truth_err:
-        st.warning(f"Truth file not used: {truth_err}")
+        st.warning(f"Truth file not used: {plain(truth_err)}")
     elif truth_bad is not None and len(truth_bad):
         st.warning(f"{len(truth_bad)} row(s) of the truth file could not be read:")
         st.dataframe(truth_bad, hide_index=True)

@@ -179,7 +179,8 @@ def run_demo(s: DemoSettings, out=print) -> dict:
                 out(f"  port {s.port} is in use by another program: the dashboard uses port "
                     f"{port} instead (choose one with --port, or make demo PORT=...)")
             dash = subprocess.Popen(streamlit_command(str(db.resolve()), port, "127.0.0.1",
-                                                      str((wd / "truth.csv").resolve())),
+                                                      str((wd / "truth.csv").resolve()),
+                                                      replay_root=str(wd.resolve())),
                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
             url = f"http://127.0.0.1:{port}/"
             summary["url"] = url
