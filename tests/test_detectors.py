@@ -273,7 +273,9 @@ def test_river_detectors_run_on_pipeline_signals():
     from tests.pipeline_helpers import simulate
 
     sid, X, y, ts = simulate(2, 1500, level_at=1000, level=-0.5, seed=51)
-    res = Pipeline(ElasticityRLS(), DetectorSettings(cusum_h=8.0, slope_h=85.0)).run(
+    # the previous charts (the level CUSUM compared below)
+    res = Pipeline(ElasticityRLS(), DetectorSettings(change_detector="charts", cusum_h=8.0,
+                                                     slope_h=85.0)).run(
         sid, X, y, 2, keep_signals=True)
     z = res.out[:, K.O_Z]
     hits = run_per_series(RiverDetector("ADWIN", delta=0.002, burn_in=50), sid, z)

@@ -116,8 +116,9 @@ def test_event_buffer_growth_resumes_exactly():
 def test_pipeline_alarms_equal_the_one_at_a_time_classes(regime, level_chart):
     sid, X, y, ts = regime
     given = {"cusum": {"cusum_h": 6.0}, "ewma": {"ewma_L": 3.0}, "page_hinkley": {"ph_threshold": 6.0}}
-    pipe = _pipe(level_chart=level_chart, slope_h=60.0, b_low=-3.0, b_high=-1.6,
-                 **given[level_chart])
+    # the previous charts (change_detector = "charts") against their one-at-a-time classes
+    pipe = _pipe(change_detector="charts", level_chart=level_chart, slope_h=60.0, b_low=-3.0,
+                 b_high=-1.6, **given[level_chart])
     res = pipe.run(sid, X, y, 6, ts=ts, keep_signals=True)
     d = pipe.detectors
     for s in range(6):
@@ -199,12 +200,25 @@ def test_messages_are_actionable(regime):
     assert f"{100 * (1.1 ** ch['beta'] - 1):+.1f}%" in m
     assert "began about 2026-" in m and "randomized price test" in m
     det = ch["details"]
+    # the split detector's text: b on each side of the change time, each side's effect, and
+    # how fast this series can show a change of 0.5
+    assert f"{100 * (1.1 ** det['beta_after'] - 1):+.1f}%" in m
+    assert f"{100 * (1.1 ** det['beta_before'] - 1):+.1f}%" in m
+    assert "a change of 0.5 in b takes about" in m and det["delay50_obs"] > 0
     assert det["effect_of_10pct_price_rise"] == pytest.approx(1.1 ** ch["beta"] - 1)
     assert json.loads(json.dumps(det)) == det
     assert ch["severity"] in ("warning", "critical")
     ls = ev[(ev["kind"] == "level_shift") & (ev["action"] == "open") & (ev["sid"] == 3)].iloc[0]
     assert "below the model at unchanged prices" in ls["message"]
-    assert -30 < ls["details"]["level_shift_pct"] < -10          # the simulated drop is 20%
+    # the simulated drop is 20%. The split detector sizes it at the alarm from the few rows
+    # since the estimated change time (here 4: se about 0.2 / sqrt(4) = 0.1 on the log scale,
+    # and the alarm selects a large one), so the size is checked to 2.5 se of the truth
+    # (log 0.8 = -0.22: -0.47 .. 0.03, i.e. -38% .. +3%) and the interval must be the one
+    # around it
+    lsd = ls["details"]
+    assert -38 < lsd["level_shift_pct"] < -10
+    assert lsd["level_shift_lo_pct"] < lsd["level_shift_pct"] < lsd["level_shift_hi_pct"]
+    assert lsd["change_observation"] == pytest.approx(1501, abs=5)    # 1-based, true 1501
     cl = ev[ev["action"] == "clear"].iloc[0]
     assert cl["severity"] == "info" and "resolved at" in cl["message"]
 
@@ -246,13 +260,20 @@ def test_settings_validation_names_the_key(section, kw, message):
 
 
 def test_settings_report_each_threshold_and_how_it_was_designed():
-    s = _pipe(cusum_h=7.5).settings()
+    s = _pipe(change_detector="charts", cusum_h=7.5).settings()
     assert s["thresholds"]["level"] == {"chart": "cusum", "k": 0.5, "threshold": 7.5, "arl0": None,
                                         "method": "given", "arl_se": None, "n_paths": 0}
     slope = s["thresholds"]["slope"]
     assert slope["method"] == "precomputed" and slope["arl0"] == 20000.0
     assert json.loads(json.dumps(s)) == s
-    assert _pipe(level_chart="none").settings()["thresholds"]["level"] is None
+    assert _pipe(change_detector="charts", level_chart="none").settings()["thresholds"][
+        "level"] is None
+    # the default split GLR: both thresholds from its precomputed table (split_table)
+    from monitor.detectors.split_table import PRECOMPUTED
+    sp = _pipe().settings()["thresholds"]
+    assert sp["slope"]["chart"] == sp["level"]["chart"] == "split_glr"
+    assert (sp["slope"]["threshold"], sp["level"]["threshold"]) == PRECOMPUTED[20000.0][:2]
+    assert sp["slope"]["method"] == "precomputed"
 
 
 def test_in_control_cusum_alarm_rate_matches_the_designed_arl0():
@@ -262,7 +283,7 @@ def test_in_control_cusum_alarm_rate_matches_the_designed_arl0():
     # design's own standard error add; allow 4 sd of the combination.
     design = pipeline_threshold("level", "cusum", 1000.0, forgetting=0.99, n_paths=2000, seed=7,
                                 k=0.5)
-    pipe = _pipe(cusum_h=design.threshold, slope_chart="none")
+    pipe = _pipe(change_detector="charts", cusum_h=design.threshold, slope_chart="none")
     sid, X, y, ts = simulate(40, 26_000, seed=17)
     states = pipe.new_states(40)
     cut = 40 * 1000                      # leave out the estimator's warm-up

@@ -15,7 +15,7 @@ here; see :mod:`monitor.pipeline.kernel` for what the pipeline does to it).
 ...     p = 10.0 * np.exp(rng.normal(0.0, 0.15))
 ...     b = -1.0 if t < 2000 else -1.8            # pivots around the typical price 10
 ...     q = 50.0 * (p / 10.0) ** b * np.exp(rng.normal(0.0, 0.15))
-...     est.learn_one({"price": p}, q)
+...     _ = est.learn_one({"price": p}, q)    # returns the estimator
 ...     if det.observe(est, np.log(p), np.log(q), ts=float(t)).alarm:
 ...         found.append((t, det.alarm, det.report["change_ts"]))
 >>> t, kind, began = found[0]

@@ -145,10 +145,14 @@ def _split_change_text(series: str, r: np.ndarray, at: str, since: str, now: str
     else:
         way = (f"b rose by {db:.2f}: demand became less sensitive to price"
                if r[EV_AFTER_B] <= 0 else f"b rose by {db:.2f}")
+    # the running estimate with its own effect (it re-anchors on the new regime within a few
+    # dozen rows, so it can differ from the after-sample fit at the alarm)
+    running = now + (f", a 10% price rise: {effect_of_10pct(r[EV_BETA])}"
+                     if math.isfinite(r[EV_BETA]) else "")
     return (f"{series}: the elasticity changed from {before} before to {after} since (the data "
             f"on each side of the change), {way}; detected at {at}, change began about {since}. "
             f"A 10% price rise now changes quantity by {effect_of_10pct(r[EV_AFTER_B])} "
-            f"(before: {effect_of_10pct(r[EV_OLD_B])}); the running estimate is {now}. "
+            f"(before: {effect_of_10pct(r[EV_OLD_B])}); the running estimate is {running}. "
             f"{delay_text(r[EV_DELAY])[0].upper() + delay_text(r[EV_DELAY])[1:]}. Look for a "
             "competitor, assortment, channel or tariff change; confirm with a randomized price "
             "test before changing prices.")

@@ -3,9 +3,11 @@
 Config sections (all keys optional; defaults in brackets)::
 
     [detectors]  arl0 [20000]: in-control ARL, observations per series, of every designed
-                 threshold; change_detector ["charts"]: "split_glr" = the split likelihood-ratio detector
-                 of a change in b or the level (monitor.detectors.split_glr), or "charts": the
-                 previous charts below on the innovations and the fast-minus-reference slope; level_chart ["cusum"] and slope_chart ["cusum"]: "cusum", "ewma",
+                 threshold; change_detector ["split_glr"]: "split_glr" = the split likelihood-ratio
+                 detector of a change in b or the level (monitor.detectors.split_glr), or
+                 "charts": the previous charts below on the innovations and the
+                 fast-minus-reference slope (the keys below apply to "charts" only);
+                 level_chart ["cusum"] and slope_chart ["cusum"]: "cusum", "ewma",
                  "page_hinkley" or "none"; cusum_k [0.5], cusum_h [designed] (level CUSUM);
                  slope_k [1.0], slope_h [designed] (slope CUSUM); ewma_lambda [0.1],
                  ewma_L [designed]; slope_ewma_lambda [0.1], slope_ewma_L [designed];
@@ -46,7 +48,7 @@ DETECTOR_RANGES: dict[str, Key] = {
     "level_burn_in": Key(20, 0, 1e6, integer=True), "slope_burn_in": Key(50, 0, 1e6, integer=True),
     "design_paths": Key(400, 20, 1e6, integer=True),
     "design_seed": Key(0, 0, 2**32 - 1, integer=True)}
-DETECTOR_KEYS = {"arl0": (NUM, 20000.0), "change_detector": (str, "charts"),
+DETECTOR_KEYS = {"arl0": (NUM, 20000.0), "change_detector": (str, "split_glr"),
                  "level_chart": (str, "cusum"),
                  "slope_chart": (str, "cusum"),
                  **{k: (NUM, r.default) for k, r in DETECTOR_RANGES.items() if k != "arl0"}}
