@@ -8,6 +8,7 @@ Each handler opens the store (read-only for reading commands), calls one functio
 from __future__ import annotations
 
 import getpass
+import json
 import math
 from pathlib import Path
 from typing import Any
@@ -96,8 +97,44 @@ def render_status(store: mstore.Store, now: Any = None, stale_after: float = 360
     return "\n".join(out)
 
 
+#: per-series fields of ``elmon status --json`` (the newest estimate of each series)
+STATUS_SERIES_FIELDS = ["series", "ts", "status", "beta", "beta_lo", "beta_hi", "n_eff",
+                        "n_obs", "open_alerts", "alert_severity", "delay50_obs"]
+
+
+def _json_value(value: Any):
+    if isinstance(value, dict):
+        return {str(k): _json_value(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_value(v) for v in value]
+    if value is None or value is pd.NaT or (isinstance(value, float) and not math.isfinite(value)):
+        return None
+    if isinstance(value, pd.Timestamp):
+        return mstore.format_ts(value)
+    if hasattr(value, "item"):          # numpy scalars
+        return _json_value(value.item())
+    return value
+
+
+def status_json(store: mstore.Store, now: Any = None, stale_after: float = 3600.0) -> dict:
+    """What ``elmon status --json`` prints: the store's counts and, per series, its newest
+    estimate with ``delay50_obs`` (expected observations to detect a change of 0.5 in b at
+    its price variation and the configured ARL0; null where b is not identified)."""
+    s = mstore.store_summary(store, now=now, stale_after=stale_after)
+    lat = mstore.latest_estimates(store)
+    series = [{k: _json_value(v) for k, v in zip(STATUS_SERIES_FIELDS, row)}
+              for row in lat[STATUS_SERIES_FIELDS].itertuples(index=False)]
+    return {"store": str(store.path),
+            "summary": _json_value(s),
+            "series": series}
+
+
 def cmd_status(args) -> int:
     with mstore.open_store(args.db, readonly=True) as store:
+        if args.json:
+            print(json.dumps(status_json(store, stale_after=args.stale_after), indent=1,
+                             allow_nan=False))
+            return 0
         print(render_status(store, stale_after=args.stale_after))
         if args.group_by:
             from monitor.cli.group_text import render_groups
@@ -190,6 +227,9 @@ def register(subparsers) -> None:
                 "backlog. Reads the store read-only, so it is safe beside a running service.")
     p.add_argument("--stale-after", type=float, default=3600.0, metavar="SECONDS",
                    help="count a source as stale after this long without a run (default 3600)")
+    p.add_argument("--json", action="store_true",
+                   help="print the counts and each series' newest estimate as JSON, with "
+                        "delay50_obs: observations a change of 0.5 in b takes to detect")
     p.add_argument("--group-by", action="append", metavar="NAME",
                    help="also list the groups of this series attribute (repeatable): series, "
                         "group mean b with its band, spread, series that differ")

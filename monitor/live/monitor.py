@@ -42,7 +42,7 @@ from monitor.rows.frames import estimates_frame
 from monitor.rows.prepare import check_rows, offset_of, order_of, prepare_rows
 from monitor.rows.validate import validation_from_config
 from monitor.sections import Config
-from monitor.store import Store, thin_estimates, wall_ts, write_batch
+from monitor.store import Store, thin_estimates, wall_ts, write_batch, write_delay50
 from monitor.groups.keys import split_key
 from monitor.live.groups import GroupUpkeep, settings_from_config as group_settings_of
 from monitor.store.live import release_writer_lock, series_bounds, take_writer_lock
@@ -211,12 +211,14 @@ class Monitor:
                           "rows_rejected": len(rejects), "last_error": notice}
                 kept, est = plan["kept"], plan["estimates"]
                 record = self._in_effect(list(plan["checkpoints"]))
-                summary = write_batch(
-                    self.store, observations=plan["observations"],
-                    estimates=kept if kept is not None and len(kept) else None,
-                    latest_estimates=est if len(est) else None, alert_changes=changes,
-                    checkpoints=plan["checkpoints"] or None, offsets={source: offset},
-                    rejects=rejects if len(rejects) else None, series=record or None)
+                with self.store.atomic():     # the batch and the series' delay50_obs
+                    summary = write_batch(
+                        self.store, observations=plan["observations"],
+                        estimates=kept if kept is not None and len(kept) else None,
+                        latest_estimates=est if len(est) else None, alert_changes=changes,
+                        checkpoints=plan["checkpoints"] or None, offsets={source: offset},
+                        rejects=rejects if len(rejects) else None, series=record or None)
+                    write_delay50(self.store, plan["delay50"])
             except BaseException:
                 self._rollback(snap)     # a failed commit leaves memory as it was before
                 raise
@@ -234,7 +236,7 @@ class Monitor:
 
     def _plan(self, frame: pd.DataFrame, rows: np.ndarray, label: str, source: str) -> dict:
         """Everything one batch writes, computed without touching the store's contents."""
-        empty = {"observations": None, "kept": None, "estimates": pd.DataFrame(),
+        empty = {"observations": None, "kept": None, "estimates": pd.DataFrame(), "delay50": {},
                  "changes": [], "checkpoints": {}, "rejects": [], "accepted": 0,
                  "zero_count": 0, "states": None, "touched": {}}
         if not len(frame):
@@ -287,6 +289,7 @@ class Monitor:
                 start_count={s: self._updates.get(s, 0) for s in names})
             plan["changes"] = alert_changes(res, est, names, sid)
             plan["states"] = (glob, res.states)
+            plan["delay50"] = dict(zip(names, self.pipeline.delay50_obs(res.states)))  # issue 12
             # rows are in arrival order (each series' accepted rows in time order unless a
             # lateness is allowed): per series, the last row processed and the newest time
             m, idx = len(names), np.arange(len(sid))

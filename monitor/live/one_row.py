@@ -23,6 +23,7 @@ from monitor.estimators.transform import design_matrix
 from monitor.live.batch import NAT, alert_changes
 from monitor.rows.validate import ordered_checks
 from monitor.store import to_json, wall_ts
+from monitor.store.detection import write_delay50
 from monitor.store.live import write_one
 from monitor.types import STATUS_LABELS, Estimate
 
@@ -156,12 +157,15 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
              "zero_skipped": mon._zero.get(series, 0)}
     now = wall_ts()
     controls = to_json({c: values[c] for c in mon._controls}) if mon._controls else None
-    write_one(
-        mon.store, observation=(series, ts, p, q, controls, source, row), estimate=estimate,
-        keep=keep, now=now,
-        checkpoint=(series, to_json(state), iso_z(last_obs), to_json({"row": row,
-                                                                        "source": source}), now),
-        offset=(source, "api", None, 1, 0, now, None, 0), changes=changes)
+    with mon.store.atomic():     # the row and the series' delay50_obs (as process_batch)
+        write_one(
+            mon.store, observation=(series, ts, p, q, controls, source, row), estimate=estimate,
+            keep=keep, now=now,
+            checkpoint=(series, to_json(state), iso_z(last_obs), to_json({"row": row,
+                                                                            "source": source}),
+                        now),
+            offset=(source, "api", None, 1, 0, now, None, 0), changes=changes)
+        write_delay50(mon.store, {series: mon.pipeline.delay50_obs(res.states)[0]})
     mon._states[vi] = res.states[0]
     mon._updates[series] = updates
     mon._last_status[series] = status

@@ -73,6 +73,7 @@ from monitor.store.codec import (format_ts, format_ts_array, from_json, parse_ts
                                  to_json, utc_now, wall_ts)
 from monitor.store.core import (DEFAULT_BUSY_TIMEOUT, Store, applied_migrations, check_schema,
                                 migrate, open_store)
+from monitor.store.detection import write_delay50
 from monitor.store.queries import (alert_events, latest_estimates, list_alerts, list_outbox,
                                    list_rejects, list_silences, open_alerts, series_history,
                                    series_observations, source_status, sparkline_data,
@@ -94,5 +95,5 @@ __all__ = [
     "get_alert", "apply_alert_change",
     "latest_estimates", "series_history", "series_observations", "list_alerts", "open_alerts",
     "alert_events", "source_status", "store_summary", "experiment_observations", "list_rejects", "sparkline_data",
-    "list_silences", "list_outbox",
+    "list_silences", "list_outbox", "write_delay50",
 ]

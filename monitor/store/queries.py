@@ -45,8 +45,10 @@ def latest_estimates(store: Store) -> pd.DataFrame:
 
     Columns: ``series, ts, beta, beta_se, beta_lo, beta_hi, n_eff, status, intercept,
     resid_sd, innovation, z, first_ts, last_obs_ts, n_obs, n_estimates, open_alerts,
-    alert_severity, low, high, forgetting, bound_low, bound_high, beta_pooled, beta_pooled_se, group`` (the last
-    three NULL unless groups are set: :mod:`monitor.store.groups`). ``ts`` is the time of the
+    alert_severity, low, high, forgetting, bound_low, bound_high, beta_pooled, beta_pooled_se, group,
+    delay50_obs`` (``beta_pooled`` .. ``group`` NULL unless groups are set:
+    :mod:`monitor.store.groups`; ``delay50_obs``: expected observations to detect a change of
+    0.5 in b, :mod:`monitor.store.detection`). ``ts`` is the time of the
     newest estimate and ``last_obs_ts`` of the newest observation. A series without an estimate yet has NULL
     numbers and status ``warming_up``; ``alert_severity`` is the worst open severity or NULL.
     """
@@ -57,7 +59,7 @@ def latest_estimates(store: Store) -> pd.DataFrame:
         " coalesce(a.n, 0) AS open_alerts,"
         " CASE a.worst WHEN 3 THEN 'critical' WHEN 2 THEN 'warning' WHEN 1 THEN 'info' END"
         " AS alert_severity, s.low, s.high, s.forgetting, s.bound_low, s.bound_high,"
-        ' l.beta_pooled, l.beta_pooled_se, l."group"'
+        ' l.beta_pooled, l.beta_pooled_se, l."group", l.delay50_obs'
         " FROM series s LEFT JOIN latest_estimates l ON l.series = s.series"
         f" LEFT JOIN (SELECT series, count(*) AS n, max({_SEVERITY_RANK}) AS worst FROM alerts"
         " WHERE state != 'resolved' GROUP BY series) a ON a.series = s.series"
