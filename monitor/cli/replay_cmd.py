@@ -166,6 +166,14 @@ def handle(args) -> int:
         print(json.dumps(summary, indent=2, sort_keys=True))
     else:
         print_summary(summary, args.out)
+    from monitor.cli import reject_share
+    from pathlib import Path
+
+    rejects = Path(args.out) / "rejects.csv"
+    if summary["rows"] and summary["rejected"] / summary["rows"] > args.max_reject_share:
+        reject_share.check("replay", summary["rows"], summary["rejected"],
+                           reject_share.first_from_csv(rejects), args.max_reject_share,
+                           str(rejects))
     return 0
 
 
@@ -179,6 +187,9 @@ def register(sub) -> None:
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     add_common_options(p)
     add_replay_options(p)
+    from monitor.cli import reject_share
+
+    reject_share.add_option(p)
     p.set_defaults(func=handle)
 
 

@@ -88,6 +88,13 @@ def cmd_ingest(args) -> int:
     out = ingest_file(args.file, args.db, config_from_args(args), batch_rows=args.batch_rows)
     if not args.quiet:
         print(describe_ingest(out, args.file))
+    if out["rows"] and out["rejected"] / out["rows"] > args.max_reject_share:
+        from monitor.cli import reject_share
+
+        reject_share.check("ingest", out["rows"], out["rejected"],
+                           reject_share.first_from_store(args.db, out["source"]),
+                           args.max_reject_share,
+                           f"elmon status --db {args.db} (rejects table of the store)")
     return 0
 
 
@@ -149,4 +156,7 @@ def register(sub) -> None:
                    help="rows per committed batch (default [service] batch_rows, 50000)")
     add_common_options(p)
     p.add_argument("--quiet", action="store_true", help="print nothing on success")
+    from monitor.cli import reject_share
+
+    reject_share.add_option(p)
     p.set_defaults(func=cmd_ingest)
