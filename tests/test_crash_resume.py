@@ -122,19 +122,19 @@ def test_sigkill_at_random_moments_then_restart_ends_exactly_as_an_uninterrupted
                             cwd=tmp_path, env=env, stderr=subprocess.PIPE, text=True)
     started = proc.stderr.readline()
     assert "elmon run: store" in started, started
-    deadline = time.monotonic() + 60
+    deadline = time.monotonic() + 600      # hang guard: a cold numba cache compiles first
     while committed_rows(tmp_path / "crash.sqlite") == 0 and time.monotonic() < deadline:
         time.sleep(0.02)                  # kill it once it has committed work, mid-stream
     time.sleep(rng.uniform(0.0, 0.4))
     proc.send_signal(signal.SIGKILL)
-    proc.wait(timeout=30)
+    proc.wait(timeout=300)
     assert proc.returncode == -signal.SIGKILL
 
     # rounds 2..23: forked services, each killed after a random delay
     out = tmp_path / "rounds.json"
     subprocess.run([sys.executable, str(ROOT / "tests" / "crash_launcher.py"),
                     str(tmp_path / "crash.toml"), str(out), "22", str(seed), "0.05", "0.9"],
-                   cwd=tmp_path, env=env, check=True, timeout=240)
+                   cwd=tmp_path, env=env, check=True, timeout=1200)  # hang guard
     rounds = json.loads(out.read_text())
     assert len(rounds) == 22 and all(r["killed"] for r in rounds)
     assert rounds[0]["before"] > 0        # the command's own run had committed batches

@@ -266,7 +266,7 @@ def test_a_reader_process_beside_the_writing_service_sees_no_lock_errors(tmp_pat
                                 env={**os.environ, "PYTHONPATH": str(ROOT)})
         appender.join(timeout=60)
         wait_until(lambda: frame(tmp_path / "s.sqlite", "SELECT coalesce(sum(rows_read), 0) AS n"
-                                 " FROM source_offsets")["n"][0] == len(log), 60)
+                                 " FROM source_offsets")["n"][0] == len(log), 60)  # the asserts below say what is missing
         svc.stop()
         svc.scheduler.shutdown(wait=True)
         svc.close()
