@@ -177,6 +177,15 @@ _BOUNDS_IN_EFFECT = [
     "ALTER TABLE series ADD COLUMN bound_high REAL",
 ]
 
+_ALERT_VERDICTS = [
+    # issue 16: what people found an alert to be (monitor.store.verdicts); the latest mark of
+    # an alert wins, every mark is also a 'note' event in its history
+    """CREATE TABLE alert_verdicts (
+        alert_id INTEGER PRIMARY KEY REFERENCES alerts (id),
+        verdict TEXT NOT NULL CHECK (verdict IN ('confirmed', 'false_alarm')),
+        who TEXT, at TEXT NOT NULL, note TEXT)""",
+]
+
 #: Ordered migrations: (id, name, steps). A step is SQL text or a callable taking the sqlite3
 #: connection (run inside the migration's transaction). Append only.
 MIGRATIONS: list[tuple[int, str, list]] = [
@@ -185,6 +194,7 @@ MIGRATIONS: list[tuple[int, str, list]] = [
     (3, "series groups", _GROUPS),
     (4, "change alert columns", _CHANGE_COLUMNS),
     (5, "bounds in effect", _BOUNDS_IN_EFFECT),
+    (6, "alert verdicts", _ALERT_VERDICTS),
 ]
 
 #: The schema version this code expects (the id of the last migration).
