@@ -100,14 +100,32 @@ def sources(db: str) -> pd.DataFrame:
     return mstore.source_status(get_store(db))
 
 
+@st.cache_data(ttl=QUERY_TTL, show_spinner=False)
+def verdicts(db: str) -> pd.DataFrame:
+    """What people marked alerts as (``monitor.store.verdicts``)."""
+    from monitor.store.verdicts import list_verdicts
+
+    return list_verdicts(get_store(db))
+
+
+@st.cache_data(ttl=QUERY_TTL, show_spinner=False)
+def truth_file(db: str) -> tuple[pd.DataFrame, dict]:
+    """The confirmed change alerts as a truth file, with counts."""
+    from monitor.store.verdicts import truth_from_verdicts
+
+    return truth_from_verdicts(get_store(db))
+
+
 def clear_queries() -> None:
     """Forget every cached query result (after a write, or on the refresh button)."""
-    for fn in (latest, summary, sparklines, history, alerts, alert, events, sources):
+    for fn in (latest, summary, sparklines, history, alerts, alert, events, sources, verdicts,
+               truth_file):
         fn.clear()
 
 
 def change_alert(db: str, alert_id: int, action: str, note: str | None, who: str | None) -> None:
-    """Acknowledge or resolve an alert through the store (its own writable connection).
+    """Acknowledge, resolve or mark (``confirmed`` / ``false_alarm``) an alert through the
+    store (its own writable connection).
 
     Refused unless the dashboard was started with actions enabled, and without a name: the
     store records who acted.
@@ -115,14 +133,20 @@ def change_alert(db: str, alert_id: int, action: str, note: str | None, who: str
     if not app_settings()["actions"]:
         raise PermissionError("this dashboard is read-only: start it with "
                               "'elmon dashboard --allow-actions' to acknowledge or resolve")
-    if action not in ("acknowledge", "resolve"):
-        raise ValueError(f"action {action!r}: must be 'acknowledge' or 'resolve'")
+    if action not in ("acknowledge", "resolve", "confirmed", "false_alarm"):
+        raise ValueError(f"action {action!r}: must be 'acknowledge', 'resolve', 'confirmed' "
+                         "or 'false_alarm'")
     if not (who or "").strip():
         raise ValueError("give your name: the store records who acknowledged or resolved")
-    fn = mstore.acknowledge_alert if action == "acknowledge" else mstore.resolve_alert
     store = mstore.open_store(db, readonly=False)
     try:
-        fn(store, int(alert_id), note=note or None, who=who or None)
+        if action in ("confirmed", "false_alarm"):
+            from monitor.store.verdicts import mark_alert
+
+            mark_alert(store, int(alert_id), action, who=who, note=note or None)
+        else:
+            fn = mstore.acknowledge_alert if action == "acknowledge" else mstore.resolve_alert
+            fn(store, int(alert_id), note=note or None, who=who or None)
     finally:
         close = getattr(store, "close", None)
         if callable(close):

@@ -14,8 +14,10 @@ from dashboard.safe_text import plain
 from monitor.errors import ElmonError
 
 STATES = ("open", "acknowledged", "resolved")
-TABLE_COLUMNS = ["id", "series", "kind", "state", "severity", "opened_ts", "change_ts", "size",
-                 "beta_before", "beta_after", "beta", "beta_lo", "beta_hi", "message"]
+TABLE_COLUMNS = ["id", "series", "kind", "state", "verdict", "severity", "opened_ts",
+                 "change_ts", "size", "beta_before", "beta_after", "beta", "beta_lo", "beta_hi",
+                 "message"]
+VERDICT_WORDS = {"confirmed": "confirmed change", "false_alarm": "false alarm"}
 
 
 def _table(view: pd.DataFrame) -> pd.DataFrame:
@@ -88,18 +90,28 @@ def _actions(db: str, alert_id: int, a: dict) -> None:
     note = st.text_area("Note", key="al_note", placeholder="what was checked, what was decided")
     who = st.text_input("Your name (required)", key="al_who",
                         help="Recorded with the action in the alert's history.")
-    c1, c2 = st.columns(2)
-    ack = c1.button("Acknowledge", key="al_ack", disabled=a["state"] != "open",
-                    help="Mark as seen; it stays active until resolved.")
-    res = c2.button("Resolve", key="al_resolve", disabled=a["state"] == "resolved")
-    if ack or res:
-        action = "acknowledge" if ack else "resolve"
+    c1, c2, c3, c4 = st.columns(4)
+    clicked = {
+        "acknowledge": c1.button("Acknowledge", key="al_ack", disabled=a["state"] != "open",
+                                 help="Mark as seen; it stays active until resolved."),
+        "resolve": c2.button("Resolve", key="al_resolve", disabled=a["state"] == "resolved"),
+        "confirmed": c3.button("Confirmed change", key="al_confirm",
+                               help="A real change: goes into the truth file for tuning."),
+        "false_alarm": c4.button("False alarm", key="al_false",
+                                 help="No change happened: tuning counts an alarm here as "
+                                      "false."),
+    }
+    done = {"acknowledge": "acknowledged", "resolve": "resolved",
+            "confirmed": "marked as a confirmed change", "false_alarm": "marked as a false alarm"}
+    for action, hit in clicked.items():
+        if not hit:
+            continue
         try:
             data.change_alert(db, alert_id, action, note, who)
         except (ElmonError, ValueError, PermissionError) as exc:
-            st.error(f"Could not {action} alert {alert_id}: {plain(exc)}")
+            st.error(f"Could not {action.replace('_', ' ')} alert {alert_id}: {plain(exc)}")
         else:
-            st.session_state["al_flash"] = f"Alert {alert_id}: {action}d."
+            st.session_state["al_flash"] = f"Alert {alert_id}: {done[action]}."
             st.rerun()
 
 
@@ -169,10 +181,22 @@ def render() -> None:
     if not len(view):
         st.info("No alerts match these filters.")
         return
+    marks = data.verdicts(db)
+    marks = dict(zip(marks["alert_id"].astype(int), marks["verdict"])) if len(marks) else {}
+    view = view.assign(verdict=[VERDICT_WORDS.get(marks.get(int(i)), None) for i in view["id"]])
     table = _table(view)
     st.dataframe(table, column_config=_column_config(), hide_index=True,
                  placeholder="—", key="al_table", height=360)
-    ui.download_csv(table, "alerts.csv", key="al_csv")
+    c1, c2 = st.columns(2)
+    with c1:
+        ui.download_csv(table, "alerts.csv", key="al_csv")
+    truth, n = data.truth_file(db)
+    with c2:
+        ui.download_csv(truth, "truth.csv", key="al_truth_csv")
+    st.caption(f"truth.csv: the {n['confirmed']} alert(s) marked as confirmed changes, as known "
+               f"change points for `elmon tune --truth` ({n['false_alarm']} marked false alarm "
+               f"and {n['unmarked']} change alert(s) not marked are left out). Same file: "
+               "`elmon alerts truth --db STORE --out truth.csv`.")
     ids = [int(i) for i in view["id"]]
     labels = {int(r.id): f"#{int(r.id)} · {r.series} · {str(r.kind).replace('_', ' ')} · {r.state}"
               for r in view.itertuples()}

@@ -250,6 +250,10 @@ def register(subparsers) -> None:
     p.add_argument("--series", help="only this series")
     p.add_argument("--kind", help="only this kind, e.g. out_of_bounds, elasticity_change")
     p.add_argument("--limit", type=int, help="at most this many")
+    from monitor.cli import alert_review    # --format csv|json, mark, truth (issue 16)
+
+    alert_review.add_format_option(p)
+    p.set_defaults(func=lambda args: alert_review.cmd_list_formatted(args, cmd_alerts_list))
     p = _parser(asub, "show", "one alert with its event history",
                 "elmon alerts show 7 --db elmon.sqlite", cmd_alerts_show)
     p.add_argument("id", type=int, help="alert id")
@@ -282,3 +286,4 @@ def register(subparsers) -> None:
     when.add_argument("--until", metavar="TIME", help="until this UTC time (ISO 8601)")
     p.add_argument("--note", help="why")
     p.add_argument("--who", help="your name (default: the login name)")
+    alert_review.register_review(asub, _parser)
