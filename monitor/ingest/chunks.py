@@ -139,13 +139,15 @@ def csv_text_chunks(path, columns: Mapping[str, str] | None = None,
     size = p.stat().st_size
     before = 0
     while offset < size:
-        frame, rows, rejects, n_lines, end = read_csv_chunk(p, names, canon, offset, before,
-                                                            max(int(chunk_rows), 1), final=True)
+        frame, rows, rejects, n_lines, end, after = read_csv_chunk(
+            p, names, canon, offset, before, max(int(chunk_rows), 1), final=True)
         if end <= offset:
             break
         yield LogChunk(frame, before, end, rows=rows, rejects=rejects)
         before += n_lines
         offset = end
+        if after != names:          # a header line with another column order (a reject)
+            names, canon = after, canonical_names(after, dict(columns or {}))
 
 
 def input_size(path) -> int:
@@ -208,7 +210,13 @@ def read_whole(log, columns) -> LogChunk:
     if not parts:
         return LogChunk(read_log(log, columns, text=True), 0, 0,
                         rows=np.zeros(0, np.int64), rejects=None)
-    return parts[0]
+    if len(parts) == 1:
+        return parts[0]
+    # a header line inside the file ends a chunk: put the pieces together again
+    rejects = [c.rejects for c in parts if c.rejects is not None and len(c.rejects)]
+    return LogChunk(pd.concat([c.frame for c in parts], ignore_index=True), 0, parts[-1].position,
+                    rows=np.concatenate([c.rows for c in parts]),
+                    rejects=pd.concat(rejects, ignore_index=True) if rejects else parts[0].rejects)
 
 
 def log_chunks(log, columns, chunk_rows: int | None):

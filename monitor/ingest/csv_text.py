@@ -8,6 +8,18 @@ its own by the standard :mod:`csv` module. A line that cannot become a row (too 
 many fields, not UTF-8) is returned as a reject naming its row number; blank lines count in
 the numbering but are not rows. Row numbers are 1-based data rows (the header is not counted),
 as in the replay's rejects.
+
+Hostile bytes are judged here, before validation:
+
+- a field holding a NUL byte or a byte-order mark (U+FEFF: left by a file concatenated onto
+  another, or NUL padding after a crash) is rejected naming its row, field and value: kept, it
+  would make an invisible second series;
+- a line that repeats the header (its fields are the column names, in any order) is rejected,
+  and the lines after it are read with that line's column order (a file appended to by a
+  writer with other columns); :func:`read_csv_chunk` ends its chunk at such a line and returns
+  the names now in effect;
+- a header line longer than :data:`MAX_HEADER_BYTES` is a :class:`SourceError` (not a wait for
+  a line break that never comes).
 """
 
 from __future__ import annotations
@@ -32,6 +44,10 @@ from monitor.rows.validate import REJECT_COLUMNS
 HEAD_BYTES = 4096
 #: bytes read per step while looking for enough line breaks
 READ_STEP = 1 << 22
+#: a header line longer than this is refused (1 MiB holds thousands of column names)
+MAX_HEADER_BYTES = 1 << 20
+#: characters never accepted inside a field: NUL and the byte-order mark (zero width)
+INVISIBLE = ("\x00", "\ufeff")
 
 
 def parse_header(line: bytes, where: str) -> list[str]:
@@ -98,8 +114,53 @@ def parse_lines(names: list[str], canon: list[str], body: bytes, first_row: int,
     take = ~blank[keep_rows]
     frame = frame.loc[take].reset_index(drop=True)
     rows = line_rows[keep_rows][take]
-    rej = pd.DataFrame(rejects, columns=REJECT_COLUMNS) if rejects else empty_rejects()
+    frame, rows, hidden = _drop_invisible(frame, rows, names)
+    rejects += hidden
+    if rejects:
+        rej = pd.DataFrame(rejects, columns=REJECT_COLUMNS).sort_values("row", kind="stable")
+        rej = rej.reset_index(drop=True)
+    else:
+        rej = empty_rejects()
     return frame, rows, rej, n_lines
+
+
+def _drop_invisible(frame: pd.DataFrame, rows: np.ndarray, names: list[str]
+                    ) -> tuple[pd.DataFrame, np.ndarray, list[dict]]:
+    """Rows with a NUL or a byte-order mark in a field become rejects naming that field."""
+    bad = np.zeros(len(frame), dtype=bool)
+    where: dict[int, int] = {}
+    for j, col in enumerate(frame.columns):
+        values = frame[col]
+        hit = np.zeros(len(frame), dtype=bool)
+        for ch in INVISIBLE:
+            hit |= values.str.contains(ch, regex=False, na=False).to_numpy(dtype=bool)
+        for i in np.flatnonzero(hit & ~bad):
+            where[int(i)] = j
+        bad |= hit
+    if not bad.any():
+        return frame, rows, []
+    for i in list(where):                  # a header line after a BOM is judged as a header
+        if header_row(frame.iloc[i:i + 1], names) == 0:
+            bad[i] = False
+            del where[i]
+    cols = list(frame.columns)
+    out = []
+    for i, j in sorted(where.items()):
+        rec = frame.iloc[i]
+        value = str(rec.iloc[j])
+        shown = ascii(value if len(value) <= 200 else value[:200] + "...")
+        out.append({"row": int(rows[i]), "series": _text(rec.get("series")),
+                    "ts": _text(rec.get("ts")), "field": names[j], "value": ascii(value)[1:-1],
+                    "reason": f"row {int(rows[i])}: field {names[j]!r} = {shown}: holds a NUL "
+                              f"byte or a byte-order mark (U+FEFF); rule: fields hold no "
+                              f"invisible characters (the same id would become another series)",
+                    "raw": json.dumps({names[k]: rec.iloc[k] for k in range(len(cols))})})
+    keep = ~bad
+    return frame.loc[keep].reset_index(drop=True), rows[keep], out
+
+
+def _text(v) -> str:
+    return "" if v is None else str(v)
 
 
 def _decode(line: bytes) -> str:
@@ -187,12 +248,14 @@ def find_line_ends(fh, offset: int, size: int, max_rows: int) -> tuple[int, int]
 
 def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_before: int,
                    max_rows: int, final: bool) -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame,
-                                                        int, int]:
+                                                        int, int, list[str]]:
     """Read up to ``max_rows`` whole lines from ``offset``.
 
-    Returns ``(frame, rows, rejects, n_lines, new_offset)``. With ``final=True`` the end of
-    the file also ends the last line (the file is complete); otherwise a partial last line
-    is left for the next read.
+    Returns ``(frame, rows, rejects, n_lines, new_offset, names)``. With ``final=True`` the end
+    of the file also ends the last line (the file is complete); otherwise a partial last line
+    is left for the next read. A line repeating the header ends the chunk: it is a reject,
+    and ``names`` is the column order for the lines after it (``names`` as given otherwise;
+    the caller renames them with :func:`monitor.ingest.base.canonical_names`).
     """
     size = os.stat(path).st_size
     with open(path, "rb") as fh:
@@ -201,19 +264,58 @@ def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_b
             end = size
         if end <= offset:
             return (pd.DataFrame({c: pd.Series(dtype=object) for c in canon}),
-                    np.zeros(0, dtype=np.int64), empty_rejects(), 0, offset)
+                    np.zeros(0, dtype=np.int64), empty_rejects(), 0, offset, list(names))
         fh.seek(offset)
         body = fh.read(end - offset)
     frame, rows, rejects, n_lines = parse_lines(names, canon, body, rows_before + 1)
-    return frame, rows, rejects, n_lines, end
+    at = header_row(frame, names)
+    if at is None:
+        return frame, rows, rejects, n_lines, end, list(names)
+    # end the chunk just after the repeated header; the lines after it follow its order
+    row = int(rows[at])
+    k = row - rows_before - 1                          # its line index within body
+    nl = np.flatnonzero(np.frombuffer(body, dtype=np.uint8) == 10)
+    cut = int(nl[k]) + 1 if k < nl.size else len(body)
+    text = _decode(body[(int(nl[k - 1]) + 1 if k else 0):cut].rstrip(b"\n"))
+    new = [str(v).strip().lstrip("\ufeff") for v in frame.iloc[at]]
+    same = new == [n.strip() for n in names]
+    why = ("it repeats the header line (rule: the header is the first line only); the column "
+           "order is unchanged" if same else
+           f"it is a header line with another column order (rule: the header is the first "
+           f"line only); the lines after it are read as {new}, not {list(names)}")
+    reject = _line_reject(row, text, why)
+    reject["field"] = "header"
+    keep = np.arange(len(frame)) < at
+    rejects = rejects[rejects["row"].to_numpy(dtype=np.int64) < row]
+    rejects = pd.concat([rejects, pd.DataFrame([reject], columns=REJECT_COLUMNS)],
+                        ignore_index=True)
+    return (frame.loc[keep].reset_index(drop=True), rows[keep], rejects, k + 1, offset + cut,
+            list(names) if same else new)
+
+
+def header_row(frame: pd.DataFrame, names: list[str]) -> int | None:
+    """Index of the first row whose fields are the column names (in any order), or None."""
+    if not len(frame) or not len(frame.columns):
+        return None
+    wanted = sorted(n.strip() for n in names)
+    first = frame.iloc[:, 0].astype("string").str.strip().str.lstrip("\ufeff")
+    for i in np.flatnonzero(first.isin(wanted).to_numpy(dtype=bool)):
+        values = [None if v is None else str(v).strip().lstrip("\ufeff") for v in frame.iloc[i]]
+        if None not in values and sorted(values) == wanted:
+            return int(i)
+    return None
 
 
 def read_header(path, where: str, final: bool) -> tuple[list[str], int] | None:
     """Header names and the byte offset after the header line (None: no complete line yet)."""
     with open(path, "rb") as fh:
-        block = fh.readline(1 << 20)
+        block = fh.readline(MAX_HEADER_BYTES + 1)
     cut = block.find(b"\n")
     if cut < 0:
+        if len(block) > MAX_HEADER_BYTES:
+            raise SourceError(f"{where}: the header line is longer than {MAX_HEADER_BYTES} bytes "
+                              f"(no line break in its first {MAX_HEADER_BYTES} bytes); rule: a "
+                              f"header of at most 1 MiB. Is this a CSV file with a header line?")
         if not block or not final:
             return None
         cut = len(block) - 1

@@ -27,7 +27,8 @@ def source_from_config(name: str, spec: Mapping[str, Any], columns=None, base: P
     if kind == "folder":
         return FolderSource(name, rel(spec["path"]), columns,
                             patterns=spec.get("patterns", ("*.csv", "*.parquet", "*.pq")),
-                            settle_s=spec.get("settle_s", 1.0))
+                            settle_s=spec.get("settle_s", 1.0),
+                            last_line_wait_s=spec.get("last_line_wait_s", 300.0))
     if kind == "sql":
         return SqlSource(name, spec["table"], spec.get("key", "id"),
                          path=rel(spec["path"]) if "path" in spec else None, url=spec.get("url"),
@@ -62,7 +63,8 @@ _COMMON = {"type": str, "poll_interval_s": (int, float), "stale_after_s": (int, 
 #: keys allowed per source type (besides ``type``, ``poll_interval_s``, ``stale_after_s``)
 SOURCE_KEYS: dict[str, dict[str, Any]] = {
     "csv": {"path": str, "on_reset": str},
-    "folder": {"path": str, "patterns": list, "settle_s": (int, float)},
+    "folder": {"path": str, "patterns": list, "settle_s": (int, float),
+               "last_line_wait_s": (int, float)},
     "sql": {"path": str, "url": str, "table": str, "key": str},
 }
 
@@ -104,7 +106,7 @@ def check_sources(content: Any) -> None:
                               f"'stop'")
         if "poll_interval_s" in spec and not spec["poll_interval_s"] > 0:
             raise ConfigError(f"{where} poll_interval_s = {spec['poll_interval_s']!r}: must be > 0")
-        for key in ("stale_after_s", "settle_s"):
+        for key in ("stale_after_s", "settle_s", "last_line_wait_s"):
             if key in spec and spec[key] < 0:
                 raise ConfigError(f"{where} {key} = {spec[key]!r}: must be >= 0")
 

@@ -84,7 +84,29 @@ class CsvTail:
             return (f"{self.path} was truncated: {st.st_size} bytes, fewer than the "
                     f"{pos['offset']} already read")
         if pos.get("head") and head_hash(self.path, pos["head_len"]) != pos["head"]:
-            return f"{self.path} was rewritten: its first {pos['head_len']} bytes changed"
+            return (f"{self.path} was rewritten or replaced: its first {pos['head_len']} bytes "
+                    f"changed")
+        return None
+
+    def _rotated(self, pos: dict) -> Path | None:
+        """The file read so far, under another name in the same folder (rotated), if it is
+        still there with the same first bytes: found by its inode (common practice of log
+        tailers, e.g. ``tail -F``)."""
+        try:
+            entries = list(os.scandir(self.path.parent))
+        except OSError:
+            return None
+        for entry in entries:
+            try:
+                st = entry.stat(follow_symlinks=False)
+            except OSError:
+                continue
+            if (st.st_ino, st.st_dev) == (pos.get("inode"), pos.get("dev")) and \
+                    entry.path != str(self.path) and st.st_size >= pos["offset"]:
+                old = Path(entry.path)
+                if pos.get("head") and head_hash(old, pos["head_len"]) != pos["head"]:
+                    return None
+                return old
         return None
 
     def read(self, position: dict | None, max_rows: int) -> Chunk | None:
@@ -97,29 +119,57 @@ class CsvTail:
         pos, notice = dict(position or {}), None
         if pos.get("offset"):
             notice = self._changed(pos, st)
+            if notice and (st.st_ino, st.st_dev) != (pos.get("inode"), pos.get("dev")):
+                old = self._rotated(pos)
+                if old is not None and os.stat(old).st_size > pos["offset"]:
+                    # lines written to the old file before it was rotated: read them first
+                    # (rotation ends the old file, so its end also ends its last line)
+                    chunk = self._read_from(old, os.stat(old), pos, max_rows, None, final=True)
+                    if chunk is not None:
+                        return chunk
+                if old is not None:
+                    notice += f" (the old file, now {old.name}, was read to its end)"
+                else:
+                    notice += (f" (the old file is no longer in {self.path.parent}: lines "
+                               f"written to it after byte {pos['offset']} cannot be read)")
             if notice and self.on_reset == "stop":
                 raise SourceError(f"{notice}; on_reset = 'stop': start the service with "
                                   f"--reset-source {self.name} to read it from its start")
             if notice:
                 notice += "; reading the new file from its start"
                 pos = {}
+        return self._read_from(self.path, st, pos, max_rows, notice)
+
+    def _read_from(self, path: Path, st: os.stat_result, pos: dict, max_rows: int,
+                   notice: str | None, final: bool | None = None) -> Chunk | None:
+        final = self.final if final is None else final
         try:
-            head = read_header(self.path, str(self.path), self.final)
+            head = read_header(path, str(path), final)
         except OSError as exc:
-            raise SourceError(f"{self.path}: cannot be read: {exc}") from None
+            raise SourceError(f"{path}: cannot be read: {exc}") from None
         if head is None:
             return None
-        names, header_end = head
+        first, header_end = head
+        names = pos.get("names") or first
         canon = canonical_names(names, self.columns)
         offset, rows = max(int(pos.get("offset", 0)), header_end), int(pos.get("rows", 0))
-        frame, rownums, rejects, n_lines, end = read_csv_chunk(
-            self.path, names, canon, offset, rows, max_rows, self.final)
+        frame, rownums, rejects, n_lines, end, after = read_csv_chunk(
+            path, names, canon, offset, rows, max_rows, final)
         if end == offset and notice is None and pos.get("offset") == offset:
             return None
         head_len = min(HEAD_BYTES, end)
         new = {"offset": int(end), "rows": rows + n_lines, "inode": st.st_ino, "dev": st.st_dev,
-               "head": head_hash(self.path, head_len), "head_len": head_len}
+               "head": head_hash(path, head_len), "head_len": head_len}
+        if after != first:
+            new["names"] = after
+        if after != names:
+            notice = "; ".join(filter(None, [notice, header_notice(path, rows + n_lines, after)]))
         return Chunk(frame, rownums, rejects, new, n_lines, notice=notice)
+
+
+def header_notice(path, row: int, names: list[str]) -> str:
+    return (f"{path}: row {row} is a header line with another column order; the lines after "
+            f"it are read as {names}")
 
 
 def _read_table(path: Path, columns) -> pd.DataFrame:
@@ -138,14 +188,21 @@ class FolderSource:
     ``patterns`` are shell patterns of the file names read (default ``*.csv``, ``*.parquet``);
     names starting with ``.`` or ending in ``.tmp`` / ``.part`` are skipped, so a writer can
     write under such a name and rename the finished file.
+
+    A CSV file's last line without a line break may still be being written (a writer paused
+    longer than ``settle_s``): it is read only when the file has not changed for
+    ``last_line_wait_s`` seconds (default 300) or a newer file is ready in the folder; until
+    then the lines before it are read and the file stays current.
     """
 
     kind = "folder"
 
     def __init__(self, name: str, path, columns: Mapping[str, str] | None = None,
-                 patterns=("*.csv", "*.parquet", "*.pq"), settle_s: float = 1.0, clock=time.time):
+                 patterns=("*.csv", "*.parquet", "*.pq"), settle_s: float = 1.0, clock=time.time,
+                 last_line_wait_s: float = 300.0):
         self.name, self.path, self.columns = name, Path(path), dict(columns or {})
         self.patterns, self.settle_s, self.clock = tuple(patterns), float(settle_s), clock
+        self.last_line_wait_s = float(last_line_wait_s)
         self._cache: tuple[tuple, pd.DataFrame] | None = None
 
     def _ready(self) -> tuple[list[tuple[int, str, int]], set[str]]:
@@ -185,30 +242,38 @@ class FolderSource:
             gone = (f"{path} disappeared after {cur['rows']} of its rows were read; the rest "
                     f"is lost to elmon")
             return self._empty({**pos, "current": None}, gone)
+        later = any(m > cur["mtime_ns"] for m, n, s in ready if n != cur["name"])
         try:
-            chunk = self._read_file(path, cur, max_rows)
+            chunk = self._read_file(path, cur, max_rows, later)
         except (SourceError, OSError) as exc:   # a damaged file must not block the ones after it
             done[cur["name"]] = [cur["size"], cur["mtime_ns"]]
             return self._empty({**pos, "done": done, "current": None},
                                f"{exc}; the file is skipped (fix it and give it a new name to "
                                f"have it read)")
         done_now = chunk.extra.pop("complete")
+        if not done_now and chunk.consumed == 0 and chunk.extra["cur"] == pos.get("current"):
+            return None                      # waiting for the rest of an unterminated last line
+        nxt = chunk.extra.pop("cur")
         keep = {k: v for k, v in done.items() if k in present or k == cur["name"]}
         if done_now:
-            keep[cur["name"]] = [cur["size"], cur["mtime_ns"]]
-        chunk.position = {"done": keep, "current": None if done_now else chunk.extra.pop("cur"),
+            keep[cur["name"]] = [nxt["size"], nxt["mtime_ns"]]
+        chunk.position = {"done": keep, "current": None if done_now else nxt,
                           "reported": pos.get("reported")}
         chunk.label = f"{self.name}/{cur['name']}"
         if notices and pos.get("reported") != notices:
             chunk.notice, chunk.notice_kind = "; ".join(notices), "source_error"
             chunk.position["reported"] = notices
+        header = chunk.extra.pop("header_notice", None)
+        if header:
+            chunk.notice = "; ".join(filter(None, [chunk.notice, header]))
+            chunk.notice_kind = "source_error"
         return chunk
 
     def _empty(self, position: dict, notice: str) -> Chunk:
         return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(), position, 0,
                      notice=notice, notice_kind="source_error")
 
-    def _read_file(self, path: Path, cur: dict, max_rows: int) -> Chunk:
+    def _read_file(self, path: Path, cur: dict, max_rows: int, later: bool = False) -> Chunk:
         suffix = path.suffix.lower()
         if suffix in (".parquet", ".pq"):
             key = (str(path), cur["size"], cur["mtime_ns"])
@@ -221,18 +286,27 @@ class FolderSource:
             nxt = {**cur, "rows": hi}
             return Chunk(frame, rows, empty_rejects(), {}, hi - lo,
                          extra={"complete": hi >= len(table), "cur": nxt})
-        head = read_header(path, str(path), final=True)
+        st = os.stat(path)
+        quiet = self.clock() - st.st_mtime >= self.last_line_wait_s or later
+        head = read_header(path, str(path), final=quiet)
         if head is None:                      # an empty file: nothing to read, done
             return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(), {}, 0,
-                         extra={"complete": True, "cur": cur})
-        names, header_end = head
+                         extra={"complete": st.st_size == 0 or quiet, "cur": cur})
+        first, header_end = head
+        names = cur.get("names") or first
         canon = canonical_names(names, self.columns)
         offset = max(cur["offset"], header_end)
-        frame, rows, rejects, n_lines, end = read_csv_chunk(path, names, canon, offset,
-                                                            cur["rows"], max_rows, final=True)
-        nxt = {**cur, "offset": end, "rows": cur["rows"] + n_lines}
-        return Chunk(frame, rows, rejects, {}, n_lines,
-                     extra={"complete": end >= cur["size"], "cur": nxt})
+        frame, rows, rejects, n_lines, end, after = read_csv_chunk(
+            path, names, canon, offset, cur["rows"], max_rows, final=quiet)
+        # the file may have grown while current: what is recorded as done is what was read
+        nxt = {**cur, "offset": end, "rows": cur["rows"] + n_lines, "size": st.st_size,
+               "mtime_ns": st.st_mtime_ns}
+        if after != first:
+            nxt["names"] = after
+        extra = {"complete": end >= st.st_size, "cur": nxt}
+        if after != names:
+            extra["header_notice"] = header_notice(path, cur["rows"] + n_lines, after)
+        return Chunk(frame, rows, rejects, {}, n_lines, extra=extra)
 
 
 class ParquetFile:
