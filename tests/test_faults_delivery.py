@@ -30,3 +30,214 @@ def test_a_redirect_is_a_failure_and_is_not_followed(httpserver, monkeypatch, co
 
 def test_shown_url_drops_user_password_query_and_fragment():
     assert mk.shown_url("http://u:p@127.0.0.1:8080/a/b?x=1#f") == "http://127.0.0.1:8080/a/b"
+
+
+# ---------------------------------------------------------------- each sink on its own
+
+import email
+import email.policy
+import json
+import logging
+import socket
+import ssl
+import subprocess
+import threading
+
+import pandas as pd
+from aiosmtpd.controller import Controller
+
+from monitor import store as ms
+from monitor.cli import main
+from monitor.store.outbox import failed_deliveries
+
+NOW = pd.Timestamp("2024-06-01T09:00:00Z")
+
+
+def at(seconds: float) -> str:
+    return ms.wall_ts(NOW + pd.Timedelta(seconds=seconds))
+
+
+def open_alerts(store, sinks, n, series="depot01/item{:05d}"):
+    store.sinks = tuple(sinks)
+    return [ms.open_alert(store, series.format(i), "elasticity_change", "2024-06-01T06:00:00Z",
+                          -0.61, -0.85, -0.37, "elasticity moved", now=at(0)) for i in range(n)]
+
+
+def log_lines(path):
+    return [json.loads(x) for x in path.read_text().splitlines()] if path.exists() else []
+
+
+def wait_for(predicate, what, guard_s=60.0):
+    """Poll until ``predicate()`` holds (``guard_s`` is a hang guard, far above the need)."""
+    done = threading.Event()
+    for _ in range(int(guard_s / 0.02)):
+        if predicate():
+            return
+        done.wait(0.02)
+    raise AssertionError(f"never happened: {what}")
+
+
+def test_a_hung_webhook_holds_back_no_other_sink(store, httpserver, tmp_path):
+    release, seen = threading.Event(), []
+
+    def hang(request):                 # the webhook takes the request and does not answer
+        seen.append(json.loads(request.data)["delivery_id"])
+        release.wait(60)               # hang guard
+        return Response("down", status=500)
+
+    httpserver.expect_request("/hook").respond_with_handler(hang)
+    open_alerts(store, ["log", "ops"], 30)
+    path = tmp_path / "alerts.jsonl"
+    sinks = {"log": mk.LogSink(path),
+             "ops": mk.WebhookSink(httpserver.url_for("/hook"), timeout=30)}
+    result = {}
+    worker = threading.Thread(target=lambda: result.update(
+        mk.deliver_due(ms.Store.open(store.path), sinks, now=at(1))))
+    worker.start()
+    # all 30 messages reach the log while the webhook still holds its first request
+    wait_for(lambda: len(log_lines(path)) == 30, "30 lines in the log")
+    assert len(seen) == 1 and not release.is_set() and worker.is_alive()
+    release.set()
+    worker.join(90)
+    assert result == {"delivered": 30, "retrying": 1, "failed": 0}
+    rows = ms.list_outbox(store)
+    ops = rows[rows["sink"] == "ops"]
+    # the webhook stopped at its failure: 1 try recorded, 29 untouched and still due
+    assert sorted(ops["attempts"].tolist()) == [0] * 29 + [1]
+    assert (ops["status"] == "pending").all()
+    assert sorted({m["alert_id"] for m in log_lines(path)}) == sorted(rows["alert_id"].unique())
+
+
+# ---------------------------------------------------------------- e-mail
+
+class Inbox:
+    def __init__(self):
+        self.envelopes = []
+
+    async def handle_DATA(self, server, session, envelope):
+        self.envelopes.append(envelope)
+        return "250 OK"
+
+
+def free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
+
+
+def test_cr_lf_in_a_series_id_never_reaches_an_email_header(store):
+    inbox = Inbox()
+    ctl = Controller(inbox, hostname="127.0.0.1", port=free_port())
+    ctl.start()
+    try:
+        open_alerts(store, ["mail"], 1, series="depot01\r\nBcc: thief@example.net\r\nX: {}")
+        mail = mk.EmailSink("127.0.0.1", ctl.port, "elmon@example.org",
+                            ["ops@example.org"], tls="none")
+        assert mk.deliver_due(store, {"mail": mail}, now=at(1))["delivered"] == 1
+    finally:
+        ctl.stop()
+    env, = inbox.envelopes
+    assert env.rcpt_tos == ["ops@example.org"]
+    msg = email.message_from_bytes(env.content, policy=email.policy.default)   # unfolds lines
+    assert msg["Bcc"] is None and msg["X"] is None
+    assert "\r" not in msg["Subject"] and "\n" not in msg["Subject"]
+    assert "depot01\\r\\nBcc: thief@example.net" in msg["Subject"]
+    assert mk.render_text({"series": "a\nb"})[1].count("series:     a\\nb") == 1
+
+
+@pytest.fixture
+def tls_files(tmp_path):
+    """A self-signed certificate for 127.0.0.1 made by the openssl command (skipped without
+    it: the test needs a real TLS server)."""
+    key, cert = tmp_path / "key.pem", tmp_path / "cert.pem"
+    try:
+        subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "2",
+                        "-keyout", str(key), "-out", str(cert), "-subj", "/CN=127.0.0.1",
+                        "-addext", "subjectAltName=IP:127.0.0.1"],
+                       check=True, capture_output=True, timeout=120)
+    except (OSError, subprocess.CalledProcessError) as exc:
+        pytest.skip(f"no openssl command to make a test certificate: {exc}")
+    return key, cert
+
+
+def test_implicit_tls_on_port_465_delivers_to_a_real_tls_server(store, tls_files):
+    key, cert = tls_files
+    server_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+    server_ctx.load_cert_chain(cert, key)
+    inbox = Inbox()
+    ctl = Controller(inbox, hostname="127.0.0.1", port=free_port(), ssl_context=server_ctx)
+    ctl.start()
+    try:
+        open_alerts(store, ["mail"], 1)
+        mail = mk.EmailSink("127.0.0.1", ctl.port, "elmon@example.org", ["ops@example.org"],
+                            tls="implicit", ca_file=str(cert))
+        assert mk.deliver_due(store, {"mail": mail}, now=at(1))["delivered"] == 1
+        # a client that does not trust the certificate fails: TLS really is in use
+        plain = mk.EmailSink("127.0.0.1", ctl.port, "elmon@example.org", ["ops@example.org"],
+                             tls="implicit")
+        with pytest.raises(mk.DeliveryError, match="CERTIFICATE_VERIFY_FAILED|certificate"):
+            plain.send({"alert_id": 1, "series": "a"})
+    finally:
+        ctl.stop()
+    assert len(inbox.envelopes) == 1
+    assert mk.EmailSink("smtp.example.org", 465, "a@example.org", ["b@example.org"]).tls == \
+        "implicit"
+    assert mk.EmailSink("smtp.example.org", 587, "a@example.org", ["b@example.org"],
+                        starttls=True).tls == "starttls"
+
+
+def test_plain_smtp_to_another_host_warns_at_config_load(caplog):
+    spec = {"type": "email", "host": "smtp.example.org", "port": 25,
+            "sender": "elmon@example.org", "recipients": ["ops@example.org"]}
+    with caplog.at_level(logging.WARNING, logger="monitor.live.sinks"):
+        mk.sinks_from_config({"mail": spec})
+    assert any("no TLS" in r.getMessage() and "smtp.example.org" in r.getMessage()
+               for r in caplog.records)
+    caplog.clear()
+    with caplog.at_level(logging.WARNING, logger="monitor.live.sinks"):
+        mk.sinks_from_config({"mail": {**spec, "host": "127.0.0.1"}})
+        mk.sinks_from_config({"mail": {**spec, "tls": "starttls"}})
+    assert not caplog.records
+    with pytest.raises(ms.ConfigError if hasattr(ms, "ConfigError") else Exception,
+                       match="tls = 'tls1'"):
+        mk.sinks_from_config({"mail": {**spec, "tls": "tls1"}})
+
+
+# ---------------------------------------------------------------- requeue and state changes
+
+def test_failed_deliveries_are_listed_and_requeued_from_the_cli(store, tmp_path, capsys):
+    open_alerts(store, ["log"], 2)
+    out = mk.deliver_due(store, {}, now=at(1), max_attempts=1)    # no such sink: fails
+    assert out == {"delivered": 0, "retrying": 0, "failed": 2}
+    db = str(store.path)
+    assert main(["deliveries", "list", "--db", db]) == 0
+    text = capsys.readouterr().out
+    assert "2 failed deliveries" in text and "no sink named 'log'" in text
+    assert main(["deliveries", "requeue", "--db", db]) == 2          # says which: refused
+    first = failed_deliveries(store)[0]["id"]
+    assert main(["deliveries", "requeue", "--id", str(first), "--db", db]) == 0
+    assert "1 failed deliveries put back" in capsys.readouterr().out
+    path = tmp_path / "alerts.jsonl"        # (the CLI works on the wall clock: now=None)
+    assert mk.deliver_due(store, {"log": mk.LogSink(path)}, now=None)["delivered"] == 1
+    assert main(["deliveries", "requeue", "--all", "--db", db]) == 0
+    assert mk.deliver_due(store, {"log": mk.LogSink(path)}, now=None)["delivered"] == 1
+    assert mk.deliver_due(store, {"log": mk.LogSink(path)}, now=None)["delivered"] == 0
+    got = log_lines(path)
+    assert sorted(m["alert_id"] for m in got) == [1, 2]               # each exactly once
+    assert failed_deliveries(store) == []
+
+
+def test_ack_and_resolve_from_the_cli_reach_the_sinks_of_the_opening(store, tmp_path):
+    a, b = open_alerts(store, ["log", "backup"], 2)
+    path, backup = tmp_path / "alerts.jsonl", tmp_path / "backup.jsonl"
+    sinks = {"log": mk.LogSink(path), "backup": mk.LogSink(backup)}
+    assert mk.deliver_due(store, sinks, now=at(1))["delivered"] == 4
+    db = str(store.path)
+    # the CLI opens the store with no sinks configured
+    assert main(["alerts", "ack", str(a), "--note", "checking", "--who", "kim", "--db", db]) == 0
+    assert main(["alerts", "resolve", str(b), "--note", "done", "--who", "lee", "--db", db]) == 0
+    assert mk.deliver_due(store, sinks, now=None)["delivered"] == 4
+    for p in (path, backup):
+        events = [(m["alert_id"], m["event"], m["who"]) for m in log_lines(p)]
+        assert events == [(a, "opened", None), (b, "opened", None), (a, "acknowledged", "kim"),
+                          (b, "resolved", "lee")]

@@ -21,6 +21,7 @@ COMMAND_MODULES = (
     "monitor.cli.arl_cmd",
     "monitor.cli.simulate_cmd",
     "monitor.cli.store_cmd",
+    "monitor.cli.alerts_cmd",
     "monitor.cli.service_cmd",
     "monitor.cli.tune_cmd",
     "monitor.cli.dashboard_cmd",

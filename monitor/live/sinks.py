@@ -37,9 +37,20 @@ Configuration (``sinks_from_config``), for example from TOML::
     port = 587
     sender = "elmon@example.org"
     recipients = ["pricing-ops@example.org"]
-    starttls = true
+    tls = "starttls"                     # or "implicit" (port 465) or "none"
     user_env = "ELMON_SMTP_USER"         # credentials only from the environment
     password_env = "ELMON_SMTP_PASSWORD"
+
+Each sink delivers on its own: :func:`deliver_due` runs every sink in its own thread, each
+send bounded by that sink's ``timeout``, and a sink that fails stops for this round (its
+other rows wait for the next), so one hung webhook never holds back the log or the e-mail.
+
+E-mail: ``tls = "starttls"`` (upgrade after connecting, port 587), ``"implicit"`` (TLS from
+the first byte, port 465: the default on that port) or ``"none"``; ``ca_file`` names a CA
+bundle for a private certificate authority. A sink without TLS to a host that is not this
+machine logs a warning when the configuration is loaded (a login would cross the network in
+plain text). Values from series ids and messages are put on one line with control characters
+escaped before they reach the subject, so a CR/LF in a series id never makes a header.
 
 With ``secret_env`` each webhook request carries ``X-Elmon-Signature: sha256=<hex>``, the
 HMAC-SHA256 of the raw body under the secret; a receiver recomputes it over the bytes it got
@@ -50,10 +61,17 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import ipaddress
 import json
+import math
+import logging
 import os
+import queue
+import re
 import smtplib
 import ssl
+import threading
+import time
 import urllib.error
 import urllib.parse
 import urllib.request
@@ -68,6 +86,8 @@ from monitor.store.codec import parse_ts, wall_ts
 from monitor.store.core import Store, accepts_path
 from monitor.store.outbox import due_deliveries, record_delivered, record_failure
 
+
+log = logging.getLogger(__name__)
 
 CAUTION = ("Elasticity estimates are statistical evidence to inform decisions, not decisions. "
            "Observational prices can bias them; randomized price tests are the sound basis. "
@@ -104,28 +124,58 @@ def sign(body: bytes, secret: str) -> str:
     return "sha256=" + hmac.new(secret.encode("utf-8"), body, hashlib.sha256).hexdigest()
 
 
+_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f\u2028\u2029\ufeff]")
+#: longest subject (characters): RFC 5322 recommends lines of at most 78
+SUBJECT_CHARS = 200
+
+
+def one_line(value: Any, limit: int | None = None) -> str:
+    """``value`` as text on one line: control characters (CR, LF, NUL, ...), line and
+    paragraph separators and the byte-order mark escaped as ``\\xNN`` / ``\\uNNNN``, so text
+    from the data (a series id) can never start a header or a fake line.
+
+    >>> one_line("depot01\r\nBcc: someone@example.org")
+    'depot01\\r\\nBcc: someone@example.org'
+    """
+    text = _CONTROL.sub(lambda m: ascii(m.group(0))[1:-1], str(value))
+    if limit is not None and len(text) > limit:
+        text = text[:limit - 3] + "..."
+    return text
+
+
 def render_text(message: Mapping[str, Any]) -> tuple[str, str]:
-    """Subject and plain-text body of a message, for people (e-mail)."""
+    """Subject and plain-text body of a message, for people (e-mail).
+
+    Every value from the data is passed through :func:`one_line`; the subject is at most
+    :data:`SUBJECT_CHARS` characters.
+    """
     def num(key: str) -> str:
         v = message.get(key)
         return "n/a" if v is None else f"{v:.3f}"
-    subject = (f"[elmon] {message.get('severity', '')} {message.get('kind', '')} "
-               f"{message.get('event', '')}: {message.get('series', '')}")
-    lines = [str(message.get("message", "")), "",
-             f"series:     {message.get('series')}",
-             f"kind:       {message.get('kind')} ({message.get('severity')})",
-             f"event:      {message.get('event')} (state now {message.get('state')})",
-             f"data time:  {message.get('ts')}",
+
+    def g(key: str, default: Any = None) -> str:
+        return one_line(message.get(key, default))
+    subject = one_line(f"[elmon] {g('severity', '')} {g('kind', '')} {g('event', '')}: "
+                       f"{g('series', '')}", SUBJECT_CHARS)
+    text = str(message.get("message", ""))
+    lines = ["\n".join(one_line(part) for part in text.split("\n")), "",
+             f"series:     {g('series')}",
+             f"kind:       {g('kind')} ({g('severity')})",
+             f"event:      {g('event')} (state now {g('state')})",
+             f"data time:  {g('ts')}",
              f"elasticity: {num('beta')} (band {num('beta_lo')} to {num('beta_hi')})",
-             f"alert id:   {message.get('alert_id')}"]
+             f"alert id:   {g('alert_id')}"]
     if message.get("note"):
-        lines.append(f"note:       {message['note']} ({message.get('who') or 'unknown'})")
+        lines.append(f"note:       {g('note')} ({one_line(message.get('who') or 'unknown')})")
     lines += ["", CAUTION]
     return subject, "\n".join(lines) + "\n"
 
 
 class LogSink:
     """Append each message as one JSON line to ``path`` (flushed and fsynced)."""
+
+    #: seconds one send may take before the round stops waiting for it (a local file)
+    timeout = 30.0
 
     def __init__(self, path: str | Path):
         self.path = Path(path)
@@ -160,8 +210,8 @@ class WebhookSink:
                  headers: Mapping[str, str] | None = None):
         if not isinstance(url, str) or not url.startswith(("http://", "https://")):
             raise ConfigError(f"webhook url {url!r} must start with http:// or https://")
-        if not float(timeout) > 0:
-            raise ConfigError(f"webhook timeout {timeout!r} must be > 0 seconds")
+        if not float(timeout) > 0 or not math.isfinite(float(timeout)):
+            raise ConfigError(f"webhook timeout {timeout!r} must be a finite number > 0 seconds")
         self.url, self.timeout, self.secret_env = url, float(timeout), secret_env
         self.headers = dict(headers or {})
         _env(secret_env, "webhook secret_env")
@@ -169,8 +219,8 @@ class WebhookSink:
     def send(self, message: dict) -> None:
         body = encode(message)
         headers = {"Content-Type": "application/json", "User-Agent": "elmon",
-                   "X-Elmon-Event": str(message.get("event", "")),
-                   "X-Elmon-Delivery": str(message.get("delivery_id", "")), **self.headers}
+                   "X-Elmon-Event": one_line(message.get("event", "")),
+                   "X-Elmon-Delivery": one_line(message.get("delivery_id", "")), **self.headers}
         secret = _env(self.secret_env, "webhook secret_env")
         if secret is not None:
             headers["X-Elmon-Signature"] = sign(body, secret)
@@ -220,54 +270,109 @@ class EmailSink:
     """Plain-text e-mail through an SMTP server (stdlib :mod:`smtplib`).
 
     ``user_env`` / ``password_env`` name environment variables holding the login; without
-    them no login is attempted. ``starttls=True`` upgrades the connection before logging in.
+    them no login is attempted. ``tls`` is ``"starttls"`` (upgrade the connection before
+    logging in), ``"implicit"`` (TLS from the start, :class:`smtplib.SMTP_SSL`; the default on
+    port 465) or ``"none"``; the older ``starttls = true`` means ``tls = "starttls"``.
+    ``ca_file`` is a CA bundle (PEM) trusted besides the system's.
     """
 
     def __init__(self, host: str, port: int, sender: str, recipients: list[str] | str,
-                 starttls: bool = False, user_env: str | None = None,
-                 password_env: str | None = None, timeout: float = 10):
+                 starttls: bool | None = None, user_env: str | None = None,
+                 password_env: str | None = None, timeout: float = 10, tls: str | None = None,
+                 ca_file: str | None = None):
         recipients = [recipients] if isinstance(recipients, str) else list(recipients)
         if not recipients or not all(isinstance(r, str) and "@" in r for r in recipients):
             raise ConfigError(f"email recipients {recipients!r} must be addresses")
+        if not all(_ADDRESS.match(r) for r in [sender, *recipients] if isinstance(r, str)):
+            raise ConfigError(f"email addresses {[sender, *recipients]!r} must not hold "
+                              f"spaces, commas or control characters")
         if not isinstance(sender, str) or "@" not in sender:
             raise ConfigError(f"email sender {sender!r} must be an address")
         if not (isinstance(port, int) and 0 < port < 65536):
             raise ConfigError(f"email port {port!r} must be an integer 1-65535")
         if (user_env is None) != (password_env is None):
             raise ConfigError("email login needs both user_env and password_env (or neither)")
+        if tls is None:
+            tls = "starttls" if starttls else ("implicit" if port == 465 and starttls is None
+                                               else "none")
+        elif starttls is not None and (tls == "starttls") != bool(starttls):
+            raise ConfigError(f"email tls = {tls!r} and starttls = {starttls!r} disagree: "
+                              f"give tls only")
+        if tls not in TLS_MODES:
+            raise ConfigError(f"email tls = {tls!r}: must be one of {', '.join(TLS_MODES)}")
+        if not float(timeout) > 0 or not math.isfinite(float(timeout)):
+            raise ConfigError(f"email timeout {timeout!r} must be a finite number > 0 seconds")
         self.host, self.port, self.sender, self.recipients = host, port, sender, recipients
-        self.starttls, self.user_env, self.password_env = bool(starttls), user_env, password_env
+        self.tls, self.user_env, self.password_env = tls, user_env, password_env
+        self.starttls = tls == "starttls"
+        self.ca_file = ca_file
         self.timeout = float(timeout)
         _env(user_env, "email user_env")
         _env(password_env, "email password_env")
+        if ca_file is not None and not Path(ca_file).is_file():
+            raise ConfigError(f"email ca_file {ca_file!r}: no such file")
+        if tls == "none" and not is_local_host(host):
+            log.warning("email sink to %s:%s has no TLS (tls = \"none\"): messages%s cross the "
+                        "network in plain text; set tls = \"starttls\" (port 587) or "
+                        "\"implicit\" (port 465)", host, port,
+                        " and the login" if user_env else "")
+
+    def _context(self) -> ssl.SSLContext:
+        return ssl.create_default_context(cafile=self.ca_file)
 
     def send(self, message: dict) -> None:
         subject, text = render_text(message)
         mail = EmailMessage()
         mail["Subject"], mail["From"], mail["To"] = subject, self.sender, ", ".join(self.recipients)
-        mail["X-Elmon-Delivery"] = str(message.get("delivery_id", ""))
+        mail["X-Elmon-Delivery"] = one_line(message.get("delivery_id", ""))
         mail.set_content(text)
+        alert_id = message.get("alert_id")
+        name = f"elmon-alert-{int(alert_id)}.json" if isinstance(alert_id, int) else \
+            "elmon-alert.json"
         mail.add_attachment(encode(message), maintype="application", subtype="json",
-                            filename=f"elmon-alert-{message.get('alert_id')}.json")
+                            filename=name)
         try:
-            with smtplib.SMTP(self.host, self.port, timeout=self.timeout) as smtp:
-                if self.starttls:
-                    smtp.starttls(context=ssl.create_default_context())
+            if self.tls == "implicit":
+                smtp = smtplib.SMTP_SSL(self.host, self.port, timeout=self.timeout,
+                                        context=self._context())
+            else:
+                smtp = smtplib.SMTP(self.host, self.port, timeout=self.timeout)
+            with smtp:
+                if self.tls == "starttls":
+                    smtp.starttls(context=self._context())
                 if self.user_env:
                     smtp.login(_env(self.user_env, "email user_env"),
                                _env(self.password_env, "email password_env"))
                 smtp.send_message(mail)
-        except (smtplib.SMTPException, OSError) as exc:
+        except (smtplib.SMTPException, OSError, ValueError) as exc:
             raise DeliveryError(f"email via {self.host}:{self.port}: {exc}") from None
 
     def __repr__(self) -> str:
-        return f"EmailSink({self.host!r}, {self.port})"
+        return f"EmailSink({self.host!r}, {self.port}, tls={self.tls!r})"
+
+
+TLS_MODES = ("starttls", "implicit", "none")
+_ADDRESS = re.compile(r"^[^\s,<>\x00-\x1f\x7f]+@[^\s,<>\x00-\x1f\x7f]+$")
+
+
+def is_local_host(host: str) -> bool:
+    """``host`` is this machine (``localhost`` or a loopback address): plain SMTP stays local.
+
+    >>> is_local_host("127.0.0.1"), is_local_host("localhost"), is_local_host("smtp.example.org")
+    (True, True, False)
+    """
+    if str(host).lower().rstrip(".") in ("localhost", "localhost.localdomain"):
+        return True
+    try:
+        return ipaddress.ip_address(str(host).strip("[]")).is_loopback
+    except ValueError:
+        return False
 
 
 SINK_KEYS = {"log": ({"path"}, set()),
          "webhook": ({"url"}, {"timeout", "secret_env", "headers"}),
          "email": ({"host", "port", "sender", "recipients"},
-                   {"starttls", "user_env", "password_env", "timeout"})}
+                   {"starttls", "tls", "ca_file", "user_env", "password_env", "timeout"})}
 _SECRET_WORDS = ("secret", "password", "user", "token", "key")
 
 
@@ -275,8 +380,8 @@ def sinks_from_config(mapping: Mapping[str, Mapping[str, Any]]) -> dict[str, Sin
     """Build sinks from ``{name: {type, ...keys}}`` (the ``[sinks.NAME]`` tables).
 
     ``type`` is ``log`` (key ``path``), ``webhook`` (``url``; ``timeout``, ``secret_env``,
-    ``headers``) or ``email`` (``host``, ``port``, ``sender``, ``recipients``; ``starttls``,
-    ``user_env``, ``password_env``, ``timeout``); it defaults to the name when the name is
+    ``headers``) or ``email`` (``host``, ``port``, ``sender``, ``recipients``; ``tls``,
+    ``starttls``, ``ca_file``, ``user_env``, ``password_env``, ``timeout``); it defaults to the name when the name is
     one of those. A secret in the file (``secret``, ``password`` ...) is refused: name the
     environment variable instead. Errors are :class:`ConfigError` naming ``sinks.NAME.KEY``.
     """
@@ -315,17 +420,47 @@ def _retry_delay(attempts: int, backoff: float, max_backoff: float) -> float:
     return min(max_backoff, backoff * 2.0 ** (attempts - 1))
 
 
+#: sinks whose sending thread from an earlier round has not returned yet (never sent twice)
+_BUSY: dict[int, threading.Thread] = {}
+_BUSY_LOCK = threading.Lock()
+
+
+def _send_all(name: str, sink: Sink | None, rows: list, now_s: str, out: queue.Queue) -> None:
+    """Thread body: send ``rows`` to one sink in order; stop at its first failure (the rest
+    wait for the next round). Each outcome goes to ``out`` as ``(row, error or None)``."""
+    try:
+        if sink is None:              # nothing to wait for: every row fails at once
+            for row in rows:
+                out.put((row, f"DeliveryError: no sink named {name!r} is configured"))
+            return
+        for row in rows:
+            message = {**json.loads(row["payload"]), "delivery_id": row["id"], "sent_at": now_s}
+            try:
+                sink.send(message)
+            except Exception as exc:  # any failure of a sink is recorded and retried
+                out.put((row, f"{type(exc).__name__}: {exc}"[:1000]))
+                return
+            out.put((row, None))
+    finally:
+        out.put((name, "done"))
+
+
 @accepts_path(readonly=False)
 def deliver_due(store: Store, sinks: Mapping[str, Sink], now: Any = None, max_attempts: int = 8,
                 backoff: float = 30.0, max_backoff: float = 3600.0, limit: int = 500) -> dict:
-    """Send the outbox rows that are due (oldest first) and record each outcome.
+    """Send the outbox rows that are due (oldest first per sink) and record each outcome.
 
-    A row is due when ``status = 'pending'`` and ``next_attempt_at <= now``. Success sets
+    A row is due when ``status = 'pending'`` and ``next_attempt_at <= now``. Each sink sends
+    its rows in its own thread, so a slow or hung sink delays no other; a sink stops at its
+    first failure in a round (its later rows stay due for the next round, unchanged), and a
+    sink whose thread from an earlier round is still sending is skipped. Success sets
     ``delivered``; failure (an exception from the sink, or no sink of that name in ``sinks``)
     adds an attempt, stores the error and schedules the next try after
     ``min(max_backoff, backoff * 2**(attempts - 1))`` seconds; the ``max_attempts``-th failure
-    sets ``failed`` (kept, shown by ``elmon status``, retried by :func:`monitor.store.outbox.requeue_failed`).
-    Each outcome commits on its own, outside any network call.
+    sets ``failed`` (kept, shown by ``elmon status``, put back by ``elmon deliveries requeue``
+    through :func:`monitor.store.outbox.requeue_failed`). Each outcome is committed by this
+    thread as it arrives, outside any network call. The round waits for a sink at most
+    ``2 * timeout + 5`` seconds per row it is sending, then leaves it running.
 
     Returns
     -------
@@ -335,22 +470,50 @@ def deliver_due(store: Store, sinks: Mapping[str, Sink], now: Any = None, max_at
     now_s = wall_ts(now)
     due = due_deliveries(store, now_s, limit)
     counts = {"delivered": 0, "retrying": 0, "failed": 0}
+    by_sink: dict[str, list] = {}
     for row in due:
-        message = {**json.loads(row["payload"]), "delivery_id": row["id"], "sent_at": now_s}
-        sink = sinks.get(row["sink"])
+        by_sink.setdefault(row["sink"], []).append(row)
+    out: queue.Queue = queue.Queue()
+    running: dict[str, float] = {}
+    with _BUSY_LOCK:
+        for name, rows in by_sink.items():
+            sink = sinks.get(name)
+            key = id(sink) if sink is not None else hash(name)
+            busy = _BUSY.get(key)
+            if busy is not None and busy.is_alive():
+                log.warning("sink %s is still sending from an earlier round; its %d due "
+                            "message(s) wait", name, len(rows))
+                continue
+            thread = threading.Thread(target=_send_all, args=(name, sink, rows, now_s, out),
+                                      name=f"elmon-sink-{name}", daemon=True)
+            _BUSY[key] = thread
+            thread.start()
+            running[name] = float(getattr(sink, "timeout", 10.0) or 10.0) * 2 + 5
+    deadline = {name: time.monotonic() + wait for name, wait in running.items()}
+    while running:
         try:
-            if sink is None:
-                raise DeliveryError(f"no sink named {row['sink']!r} is configured")
-            sink.send(message)
-        except Exception as exc:  # any failure of a sink is recorded and retried
-            attempts = row["attempts"] + 1
-            error = f"{type(exc).__name__}: {exc}"[:1000]
-            status = "failed" if attempts >= max_attempts else "pending"
-            later = wall_ts(parse_ts(now_s) + pd.Timedelta(
-                seconds=_retry_delay(attempts, backoff, max_backoff)))
-            record_failure(store, row["id"], attempts, status, later, error)
-            counts["failed" if status == "failed" else "retrying"] += 1
+            row, error = out.get(timeout=max(0.01, min(deadline[n] for n in running)
+                                             - time.monotonic()))
+        except queue.Empty:
+            for name in [n for n in running if deadline[n] <= time.monotonic()]:
+                log.error("sink %s did not answer within its time; left running, its "
+                          "messages wait", name)
+                del running[name]
             continue
-        record_delivered(store, row["id"], now_s)
-        counts["delivered"] += 1
+        if error == "done":
+            running.pop(row, None)
+            continue
+        name = row["sink"]
+        if name in running:
+            deadline[name] = time.monotonic() + running[name]
+        if error is None:
+            record_delivered(store, row["id"], now_s)
+            counts["delivered"] += 1
+            continue
+        attempts = row["attempts"] + 1
+        status = "failed" if attempts >= max_attempts else "pending"
+        later = wall_ts(parse_ts(now_s) + pd.Timedelta(
+            seconds=_retry_delay(attempts, backoff, max_backoff)))
+        record_failure(store, row["id"], attempts, status, later, error)
+        counts["failed" if status == "failed" else "retrying"] += 1
     return counts

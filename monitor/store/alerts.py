@@ -30,6 +30,7 @@ import pandas as pd
 from monitor.errors import StoreError, ValidationError
 from monitor.store.codec import format_ts, from_json, parse_ts, to_json, wall_ts
 from monitor.store.core import Store, accepts_path
+from monitor.store.outbox import alert_sinks
 
 
 #: Alert kinds the rules raise (other lower-case names are accepted for new rules).
@@ -85,8 +86,12 @@ def _event(store: Store, alert_id: int, event: str, now: str, ts: str | None = N
 
 def _notify(store: Store, alert: dict, event: str, now: str, ts: str | None = None,
             who: str | None = None, note: str | None = None) -> int:
-    """Enqueue one outbox row per configured sink; returns how many (0 when silenced)."""
-    if event not in store.notify_events or not store.sinks:
+    """Enqueue one outbox row per configured sink; returns how many (0 when silenced).
+
+    Where no sinks are configured (the CLI, the dashboard), the sinks told of the alert
+    before (:func:`monitor.store.outbox.alert_sinks`) are told again."""
+    sinks = store.sinks or alert_sinks(store, alert["id"])
+    if event not in store.notify_events or not sinks:
         return 0
     if active_silence(store, alert["series"], alert["kind"], now):
         return 0
@@ -102,8 +107,8 @@ def _notify(store: Store, alert: dict, event: str, now: str, ts: str | None = No
     due = wall_ts(parse_ts(now) + pd.Timedelta(seconds=float(hold))) if hold else now
     store.conn.executemany(
         "INSERT INTO outbox (alert_id, event, sink, payload, next_attempt_at, created_at) "
-        "VALUES (?, ?, ?, ?, ?, ?)", [(alert["id"], event, s, body, due, now) for s in store.sinks])
-    return len(store.sinks)
+        "VALUES (?, ?, ?, ?, ?, ?)", [(alert["id"], event, s, body, due, now) for s in sinks])
+    return len(sinks)
 
 
 @accepts_path(readonly=True)

@@ -7,7 +7,7 @@ outcome in its own transaction, outside any network call.
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Iterable
 
 from monitor.store.codec import wall_ts
 from monitor.store.core import Store, accepts_path
@@ -38,9 +38,43 @@ def record_delivered(store: Store, delivery_id: int, now_s: str) -> None:
 
 
 @accepts_path(readonly=False)
-def requeue_failed(store: Store, now: Any = None) -> int:
-    """Put every ``failed`` outbox row back to ``pending`` (attempts reset); returns how many."""
+def requeue_failed(store: Store, now: Any = None, ids: Iterable[int] | None = None,
+                   sink: str | None = None) -> int:
+    """Put ``failed`` outbox rows back to ``pending``, due at ``now``, with their attempts
+    reset; returns how many. ``ids`` / ``sink`` limit it to those rows / that sink. The last
+    error is kept until the next try replaces it."""
+    sql, params = ("UPDATE outbox SET status = 'pending', attempts = 0, next_attempt_at = ? "
+                   "WHERE status = 'failed'"), [wall_ts(now)]
+    if sink is not None:
+        sql += " AND sink = ?"
+        params.append(str(sink))
+    if ids is not None:
+        ids = [int(i) for i in ids]
+        sql += f" AND id IN ({', '.join('?' * len(ids))})" if ids else " AND 0"
+        params += ids
     with store.atomic():
-        cur = store.execute("UPDATE outbox SET status = 'pending', attempts = 0, "
-                            "next_attempt_at = ? WHERE status = 'failed'", (wall_ts(now),))
+        cur = store.execute(sql, params)
     return cur.rowcount
+
+
+@accepts_path(readonly=True)
+def failed_deliveries(store: Store, sink: str | None = None) -> list:
+    """``failed`` outbox rows, oldest first: ``id, alert_id, event, sink, attempts,
+    next_attempt_at, last_error``."""
+    sql, params = ("SELECT id, alert_id, event, sink, attempts, next_attempt_at, last_error "
+                   "FROM outbox WHERE status = 'failed'"), []
+    if sink is not None:
+        sql += " AND sink = ?"
+        params.append(str(sink))
+    return store.rows(sql + " ORDER BY id", params)
+
+
+def alert_sinks(store: Store, alert_id: int) -> tuple[str, ...]:
+    """The sinks that earlier events of an alert were queued for, in first-use order.
+
+    An acknowledgement or resolution made where no sinks are configured (``elmon alerts ack``,
+    the dashboard) goes to the sinks that were told of the alert's opening.
+    """
+    rows = store.conn.execute("SELECT sink FROM outbox WHERE alert_id = ? GROUP BY sink "
+                              "ORDER BY MIN(id)", (int(alert_id),)).fetchall()
+    return tuple(r[0] for r in rows)
