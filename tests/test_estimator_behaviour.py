@@ -162,6 +162,52 @@ def test_batch_equals_streaming_interleaved_series(rng, controls):
         np.testing.assert_allclose(streams[i]._state, res.states[i], atol=1e-10, equal_nan=True)
 
 
+@pytest.mark.parametrize("band", ["hc", "classic", "hac"])
+@pytest.mark.parametrize("controls", [(), ("promo",)])
+def test_batch_loop_learn_one_and_the_bare_step_agree_to_the_bit(rng, band, controls):
+    """run_batch (rls_run: no reference counting, step form chosen once), learn_one (packed
+    settings, inline checks) and rls_step called row by row with its fifteen arguments (the
+    previous form of both) give the same outputs and states, bit for bit."""
+    n_series, T = 3, 150
+    sid = np.tile(np.arange(n_series), T)
+    lp, y = simulate_loglog(rng, n_series * T)
+    promo = rng.integers(0, 2, sid.size).astype(float)
+    X = np.column_stack([np.ones(sid.size), lp] + ([promo] if controls else []))
+    proto = ElasticityRLS(forgetting=0.97, controls=controls, band=band)
+    res = run_batch(proto, sid, X, y)
+    streams = [proto.clone() for _ in range(n_series)]
+    bare = [proto.initial_state() for _ in range(n_series)]
+    out_stream = np.empty_like(res.out)
+    out_bare = np.empty_like(res.out)
+    w = np.empty(K.work_size(X.shape[1]))
+    for j in range(sid.size):
+        x = {"price": float(np.exp(lp[j]))}
+        if controls:
+            x["promo"] = float(promo[j])
+        streams[sid[j]].learn_one(x, float(np.exp(y[j])))
+        out_stream[j] = streams[sid[j]]._out
+        K.rls_step(bare[sid[j]], X[j], y[j], X.shape[1], *proto.kernel_args, out_bare[j], w)
+    # learn_one takes the quantity and the price and logs them: compare it with the batch on
+    # the same logged values
+    X2 = X.copy()
+    X2[:, 1] = np.log(np.exp(lp))
+    res2 = run_batch(proto, sid, X2, np.log(np.exp(y)))
+    np.testing.assert_array_equal(out_stream, res2.out)
+    np.testing.assert_array_equal(out_bare, res.out)
+    for i in range(n_series):
+        np.testing.assert_array_equal(streams[i]._state, res2.states[i])
+        np.testing.assert_array_equal(bare[i], res.states[i])
+
+
+def test_learn_one_takes_numeric_text_and_numpy_numbers_like_design_row():
+    """The inline checks of learn_one accept what design_row accepts (float() of it)."""
+    a, b = ElasticityRLS(), ElasticityRLS()
+    for p, q in (("2.5", "10"), (np.float32(3.0), np.int64(7)), (4, 9.5), (True, 3.0)):
+        a.learn_one({"price": p}, q)
+        b.learn_one({"price": float(p)}, float(q))
+    np.testing.assert_array_equal(a._state, b._state)
+
+
 @njit
 def _general_loop(st, X, y, band, lam, tq, out, w):
     for j in range(X.shape[0]):

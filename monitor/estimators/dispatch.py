@@ -85,10 +85,18 @@ def estimator_discount(model, st, k, band, lags, f):
         K.discount(st, k, band, lags, f)
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def estimator_run(model, state, sid, X, y, off, band, lags, lam, guard, guard_lam,
                   min_price_sd, min_neff, tq, out, w):
-    """:func:`estimator_step` over rows in order (``off`` of length n, or 0 for none)."""
+    """:func:`estimator_step` over rows in order (``off`` of length n, or 0 for none).
+
+    The log-log model goes to :func:`monitor.estimators.kernel.rls_run` (the model is
+    chosen once, not per row); both loops allocate nothing (``_nrt=False``).
+    """
+    if model == MODEL_LOGLINEAR:
+        K.rls_run(state, sid, X, y, band, lags, lam, guard, guard_lam, min_price_sd, min_neff,
+                  tq, out, w)
+        return
     k = X.shape[1]
     has_off = off.shape[0] > 0
     for j in range(X.shape[0]):

@@ -521,20 +521,53 @@ def rls_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, min_n
                     out, w)
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def rls_run(state, sid, X, y, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq,
-            out):
+            out, w):
     """Run :func:`rls_step` over rows in order; row j updates series ``sid[j]``.
 
     ``state`` is ``(n_series, state_size(k, band, lags))``, updated in place; ``out`` is
-    ``(n, NOUT)``. Rows of different series may be interleaved; each series' rows must be in
-    time order.
+    ``(n, NOUT)``; ``w`` is scratch of length :func:`work_size`. Rows of different series may
+    be interleaved; each series' rows must be in time order.
+
+    Compiled without numba's reference counting (``_nrt=False``): nothing is allocated here,
+    and the reference-count updates on the per-row slices (``state[sid[j]]``, ``out[j]``) cost
+    more than the slices themselves. The choice between the written-out k = 2 step and the
+    general one is made once, outside the row loop (the same functions :func:`rls_step` picks,
+    so the outputs are identical to the bit).
     """
     k = X.shape[1]
-    w = np.empty(k * k + 8 * k)
-    for j in range(X.shape[0]):
-        rls_step(state[sid[j]], X[j], y[j], k, band, lags, lam, guard, guard_lam, min_price_sd,
-                 min_neff, tq, out[j], w)
+    if k == 2 and band != BAND_HAC:
+        for j in range(X.shape[0]):
+            step_two_band(state[sid[j]], X[j, 1], y[j], band, lam, guard, guard_lam,
+                          min_price_sd, min_neff, tq, out[j])
+    else:
+        for j in range(X.shape[0]):
+            linear_step(state[sid[j]], X[j], y[j], k, band, lags, lam, guard, guard_lam,
+                        min_price_sd, min_neff, tq, out[j], w)
+
+
+#: slots of the packed settings vector :func:`rls_learn` takes (:func:`pack_settings`)
+(P_BAND, P_LAGS, P_LAM, P_GUARD, P_GUARD_LAM, P_MIN_PRICE_SD, P_MIN_NEFF) = range(7)
+
+
+def pack_settings(band, lags, lam, guard, guard_lam, min_price_sd, min_neff) -> np.ndarray:
+    """The step's scalar settings as one float64 vector (slots ``P_*``), for :func:`rls_learn`."""
+    return np.array([band, lags, lam, 1.0 if guard else 0.0, guard_lam, min_price_sd,
+                     min_neff], dtype=np.float64)
+
+
+@njit(cache=True, _nrt=False)
+def rls_learn(st, x, y, par, tq, out, w):
+    """:func:`rls_step` for one observation called from Python, settings packed in ``par``.
+
+    The same step as the batch loop; only the call differs: seven arguments instead of
+    fifteen, which is most of the cost of a call from Python (numba checks the type of every
+    argument on each call).
+    """
+    rls_step(st, x, y, x.shape[0], int(par[P_BAND]), int(par[P_LAGS]), par[P_LAM],
+             par[P_GUARD] != 0.0, par[P_GUARD_LAM], par[P_MIN_PRICE_SD], par[P_MIN_NEFF], tq,
+             out, w)
 
 
 @njit(cache=True, inline="always")

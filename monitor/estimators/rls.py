@@ -131,6 +131,10 @@ class ElasticityRLS:
         self._out[K.O_STATUS] = K.ST_WARMING_UP
         self._work = np.empty(K.work_size(self._k))
         self._tq = t_table(self.level)
+        # settings for the compiled one-observation step, and its reused design row (the
+        # hyperparameters are fixed once constructed: clone() for other settings)
+        self._par = K.pack_settings(*self.kernel_args[:-1])
+        self._row = np.ones(self._k)
 
     # ------------------------------------------------------------------ set-up
     def prior(self) -> tuple[np.ndarray, np.ndarray]:
@@ -163,10 +167,28 @@ class ElasticityRLS:
     # ------------------------------------------------------------------ learning
     def learn_one(self, x: Mapping[str, object], y: float) -> "ElasticityRLS":
         """Update with one observation: ``x`` holds ``price`` and the controls, ``y`` the quantity."""
-        row = design_row(x, self._specs)
-        q = check_quantity(y)
-        K.rls_step(self._state, row, math.log(q), self._k, *self.kernel_args, self._out,
-                   self._work)
+        if self._specs:
+            row = design_row(x, self._specs)
+        else:
+            # price only: the checks of design_row / check_price inline (they run on every
+            # call); anything not a finite positive number goes to them for the message
+            row = self._row
+            price = x.get("price") if isinstance(x, dict) else None
+            try:
+                p = float(price)
+            except (TypeError, ValueError):
+                p = math.nan
+            if not 0.0 < p < math.inf:
+                row = design_row(x, self._specs)   # raises with the field, value and rule
+            else:
+                row[1] = math.log(p)
+        try:
+            q = float(y)
+        except (TypeError, ValueError):
+            q = math.nan
+        if not 0.0 < q < math.inf:
+            q = check_quantity(y)                  # raises with the field, value and rule
+        K.rls_learn(self._state, row, math.log(q), self._par, self._tq, self._out, self._work)
         return self
 
     @property
