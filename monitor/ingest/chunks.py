@@ -31,8 +31,8 @@ import pyarrow.parquet as pq
 from monitor.errors import ConfigError, SourceError
 from monitor.ingest.base import canonical_names
 from monitor.ingest.csv_text import read_csv_chunk, read_header
-from monitor.ingest.logio import (DEFAULT_COLUMNS, check_file, column_renames, log_format, read_log,
-                                  table_to_frame)
+from monitor.ingest.logio import (DEFAULT_COLUMNS, check_file, column_renames, keep_leading_zeros,
+                                  log_format, read_log, table_to_frame)
 
 
 #: default CSV block size: about a million rows of a typical log
@@ -88,7 +88,11 @@ def parse_csv_bytes(data: bytes, header: bytes, source: str = "log") -> pa.Table
         conv = pacsv.ConvertOptions(null_values=[""], strings_can_be_null=True,
                                     column_types=_types(header, text))
         try:
-            return pacsv.read_csv(io.BytesIO(buf), convert_options=conv)
+            table = pacsv.read_csv(io.BytesIO(buf), convert_options=conv)
+            return table if text else keep_leading_zeros(table, lambda cols: pacsv.read_csv(
+                io.BytesIO(buf), convert_options=pacsv.ConvertOptions(
+                    null_values=[""], strings_can_be_null=True, include_columns=cols,
+                    column_types={c: pa.string() for c in cols})))
         except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
             if text:
                 raise SourceError(f"{source}: unreadable csv file: {exc}") from None

@@ -4,6 +4,10 @@ The fast path lets pyarrow type the columns (float64 numbers, timestamps parsed 
 file holds values that do not fit those types (a word in a number column, a malformed
 timestamp), it is read again with every column as text and :mod:`monitor.rows.validate` reports each
 bad field; the two paths give the same validation results.
+
+A column that pyarrow reads as integers but whose text has a leading zero in some row
+(``007``, a store or SKU code) is an identifier: it is kept as text, so ``007`` stays ``007``
+(a series key column read as the number 7 would merge ``007`` and ``7``).
 """
 
 from __future__ import annotations
@@ -15,6 +19,7 @@ from typing import Iterator, Mapping
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
@@ -110,7 +115,31 @@ def _read_csv(p: Path, text: bool) -> pa.Table:
     names = [c.strip() for c in first.split(",")]
     conv = pacsv.ConvertOptions(null_values=[""], strings_can_be_null=True,
                                 column_types=_text_types(names) if text else {"series": pa.string()})
-    return pacsv.read_csv(p, convert_options=conv)
+    table = pacsv.read_csv(p, convert_options=conv)
+    return table if text else keep_leading_zeros(table, lambda cols: pacsv.read_csv(
+        p, convert_options=pacsv.ConvertOptions(
+            null_values=[""], strings_can_be_null=True, include_columns=cols,
+            column_types={c: pa.string() for c in cols})))
+
+
+#: text of an integer with a leading zero: ``007``, ``-01`` (not ``0`` alone)
+LEADING_ZERO = r"^\s*[+-]?0[0-9]"
+
+
+def keep_leading_zeros(table: pa.Table, as_text) -> pa.Table:
+    """``table`` with each integer column whose text has a leading zero replaced by its text.
+
+    ``as_text(columns)`` reads those columns of the same input again as strings.
+    """
+    ints = [n for n, t in zip(table.column_names, table.schema.types) if pa.types.is_integer(t)]
+    if not ints:
+        return table
+    text = as_text(ints)
+    for name in ints:
+        col = text.column(name)
+        if pc.any(pc.match_substring_regex(col, LEADING_ZERO)).as_py():
+            table = table.set_column(table.column_names.index(name), name, col)
+    return table
 
 
 def iter_log_batches(path, columns: Mapping[str, str] | None = None,
