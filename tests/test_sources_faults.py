@@ -282,3 +282,48 @@ def test_a_sql_url_password_never_appears_in_an_error():
     with pytest.raises(SourceError) as info:
         src.read(None, 10)
     assert "Pa55word" not in str(info.value) and "elmon:***@127.0.0.1" in str(info.value)
+
+
+# ---------------------------------------------------------------- through the service
+
+def test_the_service_keeps_running_past_broken_sources_and_reads_them_once_fixed(tmp_path):
+    from monitor.live.service import Service
+    from monitor.settings import validate as validate_config
+    from simulators import simulate
+    from tests.conftest import DESIGNED
+    from tests.service_helpers import csv_bytes, frame
+
+    log = simulate("retail", seed=4, n_series=2, length=60).log
+    good, wide = log.iloc[:60], log.iloc[60:90]
+    (tmp_path / "feed.csv").write_bytes(csv_bytes(good))
+    (tmp_path / "wide.csv").write_bytes(b"series," + b"x" * (MAX_HEADER_BYTES + 1))
+    db = tmp_path / "meters.db"
+    with sqlite3.connect(db) as conn:
+        log.iloc[90:].rename(columns={"price": "cost"}).to_sql("obs", conn, index=True,
+                                                                index_label="id")
+    conn.close()
+    cfg = validate_config({
+        "store": {"path": "s.sqlite"}, "detectors": DESIGNED,
+        "estimator": {"controls": ["promo"]},
+        "sources": {"feed": {"type": "csv", "path": "feed.csv"},
+                    "wide": {"type": "csv", "path": "wide.csv"},
+                    "meters": {"type": "sql", "path": "meters.db", "table": "obs"}}})
+    with Service(cfg, base=tmp_path) as svc:
+        assert svc.run_once()["rows"] == 60
+    state = frame(tmp_path / "s.sqlite", "SELECT source, rows_read, last_error FROM "
+                                         "source_offsets ORDER BY source").set_index("source")
+    assert "longer than 1048576 bytes" in state.loc["wide", "last_error"]
+    assert "no column(s) ['price']" in state.loc["meters", "last_error"]
+    # fixed: the header is a normal line again, the column has its name back
+    (tmp_path / "wide.csv").write_bytes(csv_bytes(wide))
+    with sqlite3.connect(db) as conn:
+        conn.execute("ALTER TABLE obs RENAME COLUMN cost TO price")
+    conn.close()
+    with Service(cfg, base=tmp_path) as svc:
+        assert svc.run_once()["rows"] == len(log) - 60
+    obs = frame(tmp_path / "s.sqlite", "SELECT source, COUNT(*) AS n, "
+                                       "(SELECT COUNT(*) FROM rejects) AS r FROM observations "
+                                       "GROUP BY source ORDER BY source")
+    assert dict(zip(obs["source"], obs["n"])) == {"feed": 60, "meters": len(log) - 90,
+                                                  "wide": 30}
+    assert obs["r"].iloc[0] == 0                             # nothing consumed as a reject
