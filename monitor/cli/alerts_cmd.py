@@ -11,10 +11,8 @@ so each message carries ``delivery_id`` for the receiver to drop repeats.
 
 from __future__ import annotations
 
-from monitor import store as mstore
 from monitor.cli import HelpFormatter
 from monitor.errors import ConfigError
-from monitor.store.outbox import failed_deliveries, requeue_failed
 
 
 def render_failed(rows: list[dict]) -> str:
@@ -30,6 +28,9 @@ def render_failed(rows: list[dict]) -> str:
 
 
 def cmd_list(args) -> int:
+    from monitor import store as mstore
+    from monitor.store.outbox import failed_deliveries
+
     with mstore.open_store(args.db, readonly=True) as store:
         print(render_failed(failed_deliveries(store, sink=args.sink)))
     return 0
@@ -39,6 +40,9 @@ def cmd_requeue(args) -> int:
     if not args.all and not args.id and args.sink is None:
         raise ConfigError("say which failed deliveries to requeue: --id N (repeatable), "
                           "--sink NAME or --all")
+    from monitor import store as mstore
+    from monitor.store.outbox import requeue_failed
+
     with mstore.open_store(args.db) as store:
         n = requeue_failed(store, ids=args.id or None, sink=args.sink)
     print(f"elmon deliveries: {n} failed deliveries put back in the queue; the service sends "

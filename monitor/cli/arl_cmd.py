@@ -10,9 +10,9 @@ import json
 import math
 
 from monitor.cli import HelpFormatter
-from monitor.detectors import arl, arl_mc
-from monitor.detectors.split_design import (expected_delay, information, information_bound,
-                                            split_thresholds)
+
+# monitor.detectors (numba, scipy) is imported by the commands that use it, not here: every
+# command's start, elmon --help included, would pay for it
 
 
 DEFAULT_SHIFTS = (0.0, 0.5, 1.0, 2.0, 3.0)
@@ -107,6 +107,8 @@ def _common(p: argparse.ArgumentParser) -> None:
 
 
 def _cusum(args) -> int:
+    from monitor.detectors import arl, arl_mc
+
     h = arl.cusum_h_for_arl0(args.k, _target(args), args.sides) if args.h is None else args.h
     values = arl.cusum_arl(args.k, h, args.shift, args.sides, method=args.method)
     approx = arl.siegmund_arl(args.k, h, args.shift, args.sides)
@@ -120,6 +122,8 @@ def _cusum(args) -> int:
 
 
 def _ewma(args) -> int:
+    from monitor.detectors import arl, arl_mc
+
     L = arl.ewma_L_for_arl0(args.lam, _target(args)) if args.L is None else args.L
     values = arl.ewma_arl(args.lam, L, args.shift, method=args.method)
     mc = arl_mc.ewma_arl_mc(args.lam, L, args.shift, n_runs=args.mc,
@@ -132,6 +136,9 @@ def _ewma(args) -> int:
 
 
 def _split(args) -> int:
+    from monitor.detectors.split_design import (expected_delay, information, information_bound,
+                                                split_thresholds)
+
     t = split_thresholds(args.arl0)
     rows = []
     for db in args.db:
@@ -163,12 +170,16 @@ def _number(v: float) -> float | None:
 
 
 def _fmt(v: float) -> str:
+    from monitor.detectors import arl
+
     if not math.isfinite(v):
         return f"> {arl.ARL_CEILING:.0e}"
     return f"{v:.2f}" if v < 1e6 else f"{v:.4e}"
 
 
 def _emit(args, head, title, values, approx, mc) -> None:
+    from monitor.detectors import arl
+
     threshold = "h" if head["chart"] == "cusum" else "L"
     solved = getattr(args, threshold) is None
     head = {**head, "arl0_target": _target(args) if solved else None}

@@ -7,8 +7,6 @@ import sys
 from pathlib import Path
 
 from monitor.cli import HelpFormatter
-from monitor.live import \
-    settings as service_config  # noqa: F401 - registers [store], [service], [sources], [sinks]
 
 
 RUN_EPILOG = """example:
@@ -64,6 +62,7 @@ def cmd_run(args) -> int:
 def reset_source_position(config, db, base: Path, name: str) -> str:
     """Forget source ``name``'s position in the store (``--reset-source``); returns a message."""
     from monitor.errors import ConfigError
+    from monitor.live import settings as service_config
     from monitor.store import Store
     from monitor.store.live import release_writer_lock, reset_source, take_writer_lock
 

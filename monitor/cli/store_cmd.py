@@ -13,9 +13,6 @@ import math
 from pathlib import Path
 from typing import Any
 
-import pandas as pd
-
-from monitor import store as mstore
 from monitor.cli import HelpFormatter
 from monitor.errors import ConfigError
 
@@ -30,6 +27,10 @@ def _who(name: str | None) -> str:
 
 
 def _fmt(value: Any) -> str:
+    import pandas as pd
+
+    from monitor import store as mstore
+
     if value is None or (isinstance(value, float) and math.isnan(value)) or value is pd.NaT:
         return "-"
     if isinstance(value, pd.Timestamp):
@@ -52,6 +53,8 @@ def _table(df: pd.DataFrame, cols: list[str]) -> str:
 # ---------------------------------------------------------------- handlers
 
 def cmd_init(args) -> int:
+    from monitor import store as mstore
+
     existed = Path(args.db).exists()
     with mstore.Store.open(args.db, create=True) as store:
         applied, version = store.applied_on_open, store.schema_version()
@@ -67,6 +70,8 @@ def cmd_init(args) -> int:
 
 def render_status(store: mstore.Store, now: Any = None, stale_after: float = 3600.0) -> str:
     """The text of ``elmon status``."""
+    from monitor import store as mstore
+
     s = mstore.store_summary(store, now=now, stale_after=stale_after)
     sources = mstore.source_status(store, now=now)
     active = mstore.open_alerts(store)
@@ -103,6 +108,10 @@ STATUS_SERIES_FIELDS = ["series", "ts", "status", "beta", "beta_lo", "beta_hi", 
 
 
 def _json_value(value: Any):
+    import pandas as pd
+
+    from monitor import store as mstore
+
     if isinstance(value, dict):
         return {str(k): _json_value(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
@@ -120,6 +129,8 @@ def status_json(store: mstore.Store, now: Any = None, stale_after: float = 3600.
     """What ``elmon status --json`` prints: the store's counts and, per series, its newest
     estimate with ``delay50_obs`` (expected observations to detect a change of 0.5 in b at
     its price variation and the configured ARL0; null where b is not identified)."""
+    from monitor import store as mstore
+
     s = mstore.store_summary(store, now=now, stale_after=stale_after)
     lat = mstore.latest_estimates(store)
     series = [{k: _json_value(v) for k, v in zip(STATUS_SERIES_FIELDS, row)}
@@ -130,6 +141,8 @@ def status_json(store: mstore.Store, now: Any = None, stale_after: float = 3600.
 
 
 def cmd_status(args) -> int:
+    from monitor import store as mstore
+
     with mstore.open_store(args.db, readonly=True) as store:
         if args.json:
             print(json.dumps(status_json(store, stale_after=args.stale_after), indent=1,
@@ -147,6 +160,8 @@ def cmd_status(args) -> int:
 
 
 def cmd_alerts_list(args) -> int:
+    from monitor import store as mstore
+
     with mstore.open_store(args.db, readonly=True) as store:
         df = mstore.list_alerts(store, state=args.state, series=args.series, kind=args.kind,
                                 limit=args.limit)
@@ -157,6 +172,8 @@ def cmd_alerts_list(args) -> int:
 
 def render_alert(alert: dict, events: pd.DataFrame) -> str:
     """The text of ``elmon alerts show``."""
+    from monitor import store as mstore
+
     keys = ["id", "series", "kind", "severity", "state", "opened_ts", "opened_at",
             "resolved_ts", "resolved_at", "beta", "beta_lo", "beta_hi", "message",
             "last_reminded_at"]
@@ -168,12 +185,16 @@ def render_alert(alert: dict, events: pd.DataFrame) -> str:
 
 
 def cmd_alerts_show(args) -> int:
+    from monitor import store as mstore
+
     with mstore.open_store(args.db, readonly=True) as store:
         print(render_alert(mstore.get_alert(store, args.id), mstore.alert_events(store, args.id)))
     return 0
 
 
 def cmd_alerts_ack(args) -> int:
+    from monitor import store as mstore
+
     with mstore.open_store(args.db) as store:
         alert = mstore.acknowledge_alert(store, args.id, note=args.note, who=_who(args.who))
     print(f"elmon alerts: alert {alert['id']} ({alert['series']}, {alert['kind']}) acknowledged")
@@ -181,6 +202,8 @@ def cmd_alerts_ack(args) -> int:
 
 
 def cmd_alerts_resolve(args) -> int:
+    from monitor import store as mstore
+
     with mstore.open_store(args.db) as store:
         alert = mstore.resolve_alert(store, args.id, note=args.note, who=_who(args.who))
     print(f"elmon alerts: alert {alert['id']} ({alert['series']}, {alert['kind']}) resolved")
@@ -188,6 +211,8 @@ def cmd_alerts_resolve(args) -> int:
 
 
 def cmd_alerts_note(args) -> int:
+    from monitor import store as mstore
+
     with mstore.open_store(args.db) as store:
         mstore.add_note(store, args.id, args.note, who=_who(args.who))
     print(f"elmon alerts: note added to alert {args.id}")
@@ -195,6 +220,8 @@ def cmd_alerts_note(args) -> int:
 
 
 def cmd_alerts_silence(args) -> int:
+    from monitor import store as mstore
+
     with mstore.open_store(args.db) as store:
         sid = mstore.silence(store, args.series, args.kind, args.until or args.duration,
                              note=args.note, who=_who(args.who))
