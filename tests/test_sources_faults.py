@@ -327,3 +327,12 @@ def test_the_service_keeps_running_past_broken_sources_and_reads_them_once_fixed
     assert dict(zip(obs["source"], obs["n"])) == {"feed": 60, "meters": len(log) - 90,
                                                   "wide": 30}
     assert obs["r"].iloc[0] == 0                             # nothing consumed as a reject
+
+
+def test_a_file_joined_with_its_byte_order_mark_is_one_header_reject(tmp_path):
+    log = tmp_path / "log.csv"
+    log.write_bytes(HEADER + line(0) + "\ufeff".encode() + HEADER + line(1))
+    whole = read_whole(log, None)
+    assert whole.frame["quantity"].tolist() == ["10", "11"]
+    assert whole.rejects["row"].tolist() == [2] and whole.rejects["field"].tolist() == ["header"]
+    assert "repeats the header line" in whole.rejects["reason"][0]

@@ -114,8 +114,9 @@ def parse_lines(names: list[str], canon: list[str], body: bytes, first_row: int,
     take = ~blank[keep_rows]
     frame = frame.loc[take].reset_index(drop=True)
     rows = line_rows[keep_rows][take]
-    frame, rows, hidden = _drop_invisible(frame, rows, names)
-    rejects += hidden
+    if b"\x00" in body or b"\xef\xbb\xbf" in body:      # NUL or a UTF-8 byte-order mark
+        frame, rows, hidden = _drop_invisible(frame, rows, names)
+        rejects += hidden
     if rejects:
         rej = pd.DataFrame(rejects, columns=REJECT_COLUMNS).sort_values("row", kind="stable")
         rej = rej.reset_index(drop=True)
@@ -267,30 +268,72 @@ def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_b
                     np.zeros(0, dtype=np.int64), empty_rejects(), 0, offset, list(names))
         fh.seek(offset)
         body = fh.read(end - offset)
-    frame, rows, rejects, n_lines = parse_lines(names, canon, body, rows_before + 1)
-    at = header_row(frame, names)
-    if at is None:
+    k = header_line(body, names)
+    if k is None:
+        frame, rows, rejects, n_lines = parse_lines(names, canon, body, rows_before + 1)
         return frame, rows, rejects, n_lines, end, list(names)
-    # end the chunk just after the repeated header; the lines after it follow its order
-    row = int(rows[at])
-    k = row - rows_before - 1                          # its line index within body
+    # the chunk ends just after the header line; the lines after it follow its order
     nl = np.flatnonzero(np.frombuffer(body, dtype=np.uint8) == 10)
+    start = int(nl[k - 1]) + 1 if k else 0
     cut = int(nl[k]) + 1 if k < nl.size else len(body)
-    text = _decode(body[(int(nl[k - 1]) + 1 if k else 0):cut].rstrip(b"\n"))
-    new = [str(v).strip().lstrip("\ufeff") for v in frame.iloc[at]]
+    frame, rows, rejects, _ = parse_lines(names, canon, body[:start], rows_before + 1)
+    text = _decode(body[start:cut].rstrip(b"\n"))
+    new = _fields(text)
     same = new == [n.strip() for n in names]
     why = ("it repeats the header line (rule: the header is the first line only); the column "
            "order is unchanged" if same else
            f"it is a header line with another column order (rule: the header is the first "
            f"line only); the lines after it are read as {new}, not {list(names)}")
-    reject = _line_reject(row, text, why)
-    reject["field"] = "header"
-    keep = np.arange(len(frame)) < at
-    rejects = rejects[rejects["row"].to_numpy(dtype=np.int64) < row]
+    row = rows_before + k + 1
+    reject = {**_line_reject(row, text, why), "field": "header"}
     rejects = pd.concat([rejects, pd.DataFrame([reject], columns=REJECT_COLUMNS)],
                         ignore_index=True)
-    return (frame.loc[keep].reset_index(drop=True), rows[keep], rejects, k + 1, offset + cut,
-            list(names) if same else new)
+    return frame, rows, rejects, k + 1, offset + cut, list(names) if same else new
+
+
+def _fields(text: str) -> list[str]:
+    """The fields of one line, stripped of spaces (a leading byte-order mark dropped)."""
+    try:
+        return [f.strip() for f in next(csv.reader([text.lstrip("\ufeff")],
+                                                   skipinitialspace=True), [])]
+    except csv.Error:
+        return []
+
+
+def header_line(body: bytes, names: list[str]) -> int | None:
+    """Index of the first line of ``body`` whose fields are the column names in any order
+    (spaces, quotes and a byte-order mark allowed), or None.
+
+    Lines are first screened with numpy on their length and first bytes, so a chunk of a
+    million data lines costs milliseconds; only the few lines that pass are split.
+    """
+    wanted = sorted(n.strip() for n in names)
+    arr = np.frombuffer(body, dtype=np.uint8)
+    if not arr.size:
+        return None
+    nl = np.flatnonzero(arr == 10)
+    starts = np.concatenate([[0], nl + 1])
+    stops = np.concatenate([nl, [arr.size]])
+    keep = starts < arr.size
+    starts, stops = starts[keep], stops[keep]
+    base = len(",".join(wanted).encode("utf-8"))
+    length = stops - starts
+    near = (length >= base) & (length <= base + 4 * len(wanted) + 5)
+    if not near.any():
+        return None
+    width = 8
+    padded = np.concatenate([arr, np.zeros(width, dtype=np.uint8)])
+    head = padded[starts[near][:, None] + np.arange(width)]
+    hit = np.zeros(head.shape[0], dtype=bool)
+    for name in wanted:
+        pre = np.frombuffer(name.encode("utf-8")[:2], dtype=np.uint8)
+        for at in range(0, width - pre.size + 1):
+            hit |= (head[:, at:at + pre.size] == pre).all(axis=1)
+    for i in np.flatnonzero(near)[hit]:
+        text = _decode(body[starts[i]:stops[i]])
+        if sorted(_fields(text)) == wanted:
+            return int(i)
+    return None
 
 
 def header_row(frame: pd.DataFrame, names: list[str]) -> int | None:
