@@ -59,29 +59,25 @@ and compares with :func:`hmac.compare_digest`.
 
 from __future__ import annotations
 
-import hashlib
-import hmac
-import ipaddress
 import json
-import math
 import logging
+import math
 import os
 import queue
-import re
-import smtplib
-import ssl
 import threading
 import time
 import urllib.error
 import urllib.parse
 import urllib.request
-from email.message import EmailMessage
 from pathlib import Path
-from typing import Any, Mapping, Protocol
+from typing import Any, Mapping
 
 import pandas as pd
 
-from monitor.errors import ConfigError, ElmonError
+from monitor.errors import ConfigError
+from monitor.live.mail import TLS_MODES, EmailSink, is_local_host
+from monitor.live.message import (CAUTION, DeliveryError, Sink, encode, env_value, one_line,
+                                  render_text, sign)
 from monitor.store.codec import parse_ts, wall_ts
 from monitor.store.core import Store, accepts_path
 from monitor.store.outbox import due_deliveries, record_delivered, record_failure
@@ -89,87 +85,10 @@ from monitor.store.outbox import due_deliveries, record_delivered, record_failur
 
 log = logging.getLogger(__name__)
 
-CAUTION = ("Elasticity estimates are statistical evidence to inform decisions, not decisions. "
-           "Observational prices can bias them; randomized price tests are the sound basis. "
-           "Local rules on pricing and utility tariffs come first.")
-
-
-class DeliveryError(ElmonError):
-    """A sink could not deliver a message (the outbox retries it)."""
-
-
-class Sink(Protocol):
-    """What :func:`deliver_due` needs from a sink."""
-
-    def send(self, message: dict) -> None:
-        """Deliver one message or raise."""
-
-
-def _env(name: str | None, what: str) -> str | None:
-    if name is None:
-        return None
-    if name not in os.environ:
-        raise ConfigError(f"{what}: environment variable {name!r} is not set")
-    return os.environ[name]
-
-
-def encode(message: Mapping[str, Any]) -> bytes:
-    """The JSON body of a message: UTF-8, sorted keys, no NaN."""
-    return json.dumps(message, sort_keys=True, separators=(",", ":"),
-                      allow_nan=False).encode("utf-8")
-
-
-def sign(body: bytes, secret: str) -> str:
-    """``sha256=<hex>``: HMAC-SHA256 of ``body`` under ``secret`` (RFC 2104)."""
-    return "sha256=" + hmac.new(secret.encode("utf-8"), body, hashlib.sha256).hexdigest()
-
-
-_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f\u2028\u2029\ufeff]")
-#: longest subject (characters): RFC 5322 recommends lines of at most 78
-SUBJECT_CHARS = 200
-
-
-def one_line(value: Any, limit: int | None = None) -> str:
-    """``value`` as text on one line: control characters (CR, LF, NUL, ...), line and
-    paragraph separators and the byte-order mark escaped as ``\\xNN`` / ``\\uNNNN``, so text
-    from the data (a series id) can never start a header or a fake line.
-
-    >>> one_line("depot01\r\nBcc: someone@example.org")
-    'depot01\\r\\nBcc: someone@example.org'
-    """
-    text = _CONTROL.sub(lambda m: ascii(m.group(0))[1:-1], str(value))
-    if limit is not None and len(text) > limit:
-        text = text[:limit - 3] + "..."
-    return text
-
-
-def render_text(message: Mapping[str, Any]) -> tuple[str, str]:
-    """Subject and plain-text body of a message, for people (e-mail).
-
-    Every value from the data is passed through :func:`one_line`; the subject is at most
-    :data:`SUBJECT_CHARS` characters.
-    """
-    def num(key: str) -> str:
-        v = message.get(key)
-        return "n/a" if v is None else f"{v:.3f}"
-
-    def g(key: str, default: Any = None) -> str:
-        return one_line(message.get(key, default))
-    subject = one_line(f"[elmon] {g('severity', '')} {g('kind', '')} {g('event', '')}: "
-                       f"{g('series', '')}", SUBJECT_CHARS)
-    text = str(message.get("message", ""))
-    lines = ["\n".join(one_line(part) for part in text.split("\n")), "",
-             f"series:     {g('series')}",
-             f"kind:       {g('kind')} ({g('severity')})",
-             f"event:      {g('event')} (state now {g('state')})",
-             f"data time:  {g('ts')}",
-             f"elasticity: {num('beta')} (band {num('beta_lo')} to {num('beta_hi')})",
-             f"alert id:   {g('alert_id')}"]
-    if message.get("note"):
-        lines.append(f"note:       {g('note')} ({one_line(message.get('who') or 'unknown')})")
-    lines += ["", CAUTION]
-    return subject, "\n".join(lines) + "\n"
-
+#: names of the message and e-mail modules, importable from here as before
+__all__ = ["CAUTION", "DeliveryError", "EmailSink", "LogSink", "Sink", "TLS_MODES",
+           "WebhookSink", "deliver_due", "encode", "is_local_host", "one_line", "render_text",
+           "shown_url", "sign", "sinks_from_config"]
 
 class LogSink:
     """Append each message as one JSON line to ``path`` (flushed and fsynced)."""
@@ -214,14 +133,14 @@ class WebhookSink:
             raise ConfigError(f"webhook timeout {timeout!r} must be a finite number > 0 seconds")
         self.url, self.timeout, self.secret_env = url, float(timeout), secret_env
         self.headers = dict(headers or {})
-        _env(secret_env, "webhook secret_env")
+        env_value(secret_env, "webhook secret_env")
 
     def send(self, message: dict) -> None:
         body = encode(message)
         headers = {"Content-Type": "application/json", "User-Agent": "elmon",
                    "X-Elmon-Event": one_line(message.get("event", "")),
                    "X-Elmon-Delivery": one_line(message.get("delivery_id", "")), **self.headers}
-        secret = _env(self.secret_env, "webhook secret_env")
+        secret = env_value(self.secret_env, "webhook secret_env")
         if secret is not None:
             headers["X-Elmon-Signature"] = sign(body, secret)
         request = urllib.request.Request(self.url, data=body, headers=headers, method="POST")
@@ -264,109 +183,6 @@ def shown_url(url: str) -> str:
     if parts.port:
         host = f"{host}:{parts.port}"
     return urllib.parse.urlunsplit((parts.scheme, host, parts.path, "", ""))
-
-
-class EmailSink:
-    """Plain-text e-mail through an SMTP server (stdlib :mod:`smtplib`).
-
-    ``user_env`` / ``password_env`` name environment variables holding the login; without
-    them no login is attempted. ``tls`` is ``"starttls"`` (upgrade the connection before
-    logging in), ``"implicit"`` (TLS from the start, :class:`smtplib.SMTP_SSL`; the default on
-    port 465) or ``"none"``; the older ``starttls = true`` means ``tls = "starttls"``.
-    ``ca_file`` is a CA bundle (PEM) trusted besides the system's.
-    """
-
-    def __init__(self, host: str, port: int, sender: str, recipients: list[str] | str,
-                 starttls: bool | None = None, user_env: str | None = None,
-                 password_env: str | None = None, timeout: float = 10, tls: str | None = None,
-                 ca_file: str | None = None):
-        recipients = [recipients] if isinstance(recipients, str) else list(recipients)
-        if not recipients or not all(isinstance(r, str) and "@" in r for r in recipients):
-            raise ConfigError(f"email recipients {recipients!r} must be addresses")
-        if not all(_ADDRESS.match(r) for r in [sender, *recipients] if isinstance(r, str)):
-            raise ConfigError(f"email addresses {[sender, *recipients]!r} must not hold "
-                              f"spaces, commas or control characters")
-        if not isinstance(sender, str) or "@" not in sender:
-            raise ConfigError(f"email sender {sender!r} must be an address")
-        if not (isinstance(port, int) and 0 < port < 65536):
-            raise ConfigError(f"email port {port!r} must be an integer 1-65535")
-        if (user_env is None) != (password_env is None):
-            raise ConfigError("email login needs both user_env and password_env (or neither)")
-        if tls is None:
-            tls = "starttls" if starttls else ("implicit" if port == 465 and starttls is None
-                                               else "none")
-        elif starttls is not None and (tls == "starttls") != bool(starttls):
-            raise ConfigError(f"email tls = {tls!r} and starttls = {starttls!r} disagree: "
-                              f"give tls only")
-        if tls not in TLS_MODES:
-            raise ConfigError(f"email tls = {tls!r}: must be one of {', '.join(TLS_MODES)}")
-        if not float(timeout) > 0 or not math.isfinite(float(timeout)):
-            raise ConfigError(f"email timeout {timeout!r} must be a finite number > 0 seconds")
-        self.host, self.port, self.sender, self.recipients = host, port, sender, recipients
-        self.tls, self.user_env, self.password_env = tls, user_env, password_env
-        self.starttls = tls == "starttls"
-        self.ca_file = ca_file
-        self.timeout = float(timeout)
-        _env(user_env, "email user_env")
-        _env(password_env, "email password_env")
-        if ca_file is not None and not Path(ca_file).is_file():
-            raise ConfigError(f"email ca_file {ca_file!r}: no such file")
-        if tls == "none" and not is_local_host(host):
-            log.warning("email sink to %s:%s has no TLS (tls = \"none\"): messages%s cross the "
-                        "network in plain text; set tls = \"starttls\" (port 587) or "
-                        "\"implicit\" (port 465)", host, port,
-                        " and the login" if user_env else "")
-
-    def _context(self) -> ssl.SSLContext:
-        return ssl.create_default_context(cafile=self.ca_file)
-
-    def send(self, message: dict) -> None:
-        subject, text = render_text(message)
-        mail = EmailMessage()
-        mail["Subject"], mail["From"], mail["To"] = subject, self.sender, ", ".join(self.recipients)
-        mail["X-Elmon-Delivery"] = one_line(message.get("delivery_id", ""))
-        mail.set_content(text)
-        alert_id = message.get("alert_id")
-        name = f"elmon-alert-{int(alert_id)}.json" if isinstance(alert_id, int) else \
-            "elmon-alert.json"
-        mail.add_attachment(encode(message), maintype="application", subtype="json",
-                            filename=name)
-        try:
-            if self.tls == "implicit":
-                smtp = smtplib.SMTP_SSL(self.host, self.port, timeout=self.timeout,
-                                        context=self._context())
-            else:
-                smtp = smtplib.SMTP(self.host, self.port, timeout=self.timeout)
-            with smtp:
-                if self.tls == "starttls":
-                    smtp.starttls(context=self._context())
-                if self.user_env:
-                    smtp.login(_env(self.user_env, "email user_env"),
-                               _env(self.password_env, "email password_env"))
-                smtp.send_message(mail)
-        except (smtplib.SMTPException, OSError, ValueError) as exc:
-            raise DeliveryError(f"email via {self.host}:{self.port}: {exc}") from None
-
-    def __repr__(self) -> str:
-        return f"EmailSink({self.host!r}, {self.port}, tls={self.tls!r})"
-
-
-TLS_MODES = ("starttls", "implicit", "none")
-_ADDRESS = re.compile(r"^[^\s,<>\x00-\x1f\x7f]+@[^\s,<>\x00-\x1f\x7f]+$")
-
-
-def is_local_host(host: str) -> bool:
-    """``host`` is this machine (``localhost`` or a loopback address): plain SMTP stays local.
-
-    >>> is_local_host("127.0.0.1"), is_local_host("localhost"), is_local_host("smtp.example.org")
-    (True, True, False)
-    """
-    if str(host).lower().rstrip(".") in ("localhost", "localhost.localdomain"):
-        return True
-    try:
-        return ipaddress.ip_address(str(host).strip("[]")).is_loopback
-    except ValueError:
-        return False
 
 
 SINK_KEYS = {"log": ({"path"}, set()),
