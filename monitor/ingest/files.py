@@ -17,13 +17,17 @@ Positions (JSON in ``source_offsets.position``)
   ``on_reset = "restart"`` (default), the new file is read from its start (repeated rows are
   then rejected as duplicates by validation); with ``"stop"`` the source raises
   :class:`SourceError` at every poll until the position is reset
-  (``elmon run --reset-source NAME``).
+  (``elmon run --reset-source NAME``). A replaced file is first looked for under another
+  name in the same folder (a rotated log, found by its inode): the lines written to it after
+  the position are read before the new file. ``names`` is kept when a header line inside the
+  data changed the column order (:mod:`monitor.ingest.csv_text`).
 - ``folder``: ``{"done": {file: [size, mtime_ns]}, "current": {...} | null}``: each CSV or
   Parquet file is processed once, in order of modification time then name, after it has not
   changed for ``settle_s`` seconds; a large file is read in several batches (``current``
   holds the offset inside it). Rows are labelled ``NAME/FILE`` in the store. A file that
   cannot be read, disappears half-read or changes after it was read is reported (a
-  ``source_error`` alert) and skipped, so it never blocks the files after it.
+  ``source_error`` alert) and skipped, so it never blocks the files after it. A CSV file's
+  last line without a line break waits (``last_line_wait_s``, see :class:`FolderSource`).
 - ``sql``: ``{"key": last key, "rows": rows read}``: ``SELECT * FROM table WHERE key > ?
   ORDER BY key LIMIT n``. SQLite files are built in (opened read-only); other databases go
   through a SQLAlchemy URL. The key must increase in commit order (an ``INTEGER PRIMARY KEY``
