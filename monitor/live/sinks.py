@@ -276,7 +276,8 @@ def deliver_due(store: Store, sinks: Mapping[str, Sink], now: Any = None, max_at
     sets ``failed`` (kept, shown by ``elmon status``, put back by ``elmon deliveries requeue``
     through :func:`monitor.store.outbox.requeue_failed`). Each outcome is committed by this
     thread as it arrives, outside any network call. The round waits for a sink at most
-    ``2 * timeout + 5`` seconds per row it is sending, then leaves it running.
+    ``2 * timeout + 5`` seconds per row it is sending, then leaves it running (its outcome is
+    then not recorded, so that message is sent again in a later round: at least once).
 
     Returns
     -------
