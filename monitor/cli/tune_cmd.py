@@ -74,7 +74,8 @@ def print_tuning(s: dict, out) -> None:
           f"observations in {s['timing']['wall_s']:.1f} s")
     d = s["defaults"]
     print(f"defaults:    {_v(d['false_alarms_per_10k'], '.2f')} false alarms per 10,000, detection "
-          f"rate {_v(d['detection_rate'], '.0%')}, median delay {_v(d['median_delay_obs'], '.1f')} obs")
+          f"rate {_v(d['detection_rate'], '.0%')}, median delay {_v(d['median_delay_obs'], '.1f')} obs "
+          "over the detected changes")
     r = s["recommended"]
     if r is None:
         print(f"no recommendation: {s['reason']}")
@@ -82,7 +83,8 @@ def print_tuning(s: dict, out) -> None:
         print(f"recommended: {r['label']}")
         print(f"             {_v(r['false_alarms_per_10k'], '.2f')} false alarms per 10,000, "
               f"detection rate {_v(r['detection_rate'], '.0%')}, median delay "
-              f"{_v(r['median_delay_obs'], '.1f')} obs (90th percentile {_v(r['p90_delay_obs'], '.1f')})")
+              f"{_v(r['median_delay_obs'], '.1f')} obs over the detected changes (90th "
+              f"percentile {_v(r['p90_delay_obs'], '.1f')})")
         print(f"             {s['reason']}")
     print(f"Pareto front: settings {', '.join(map(str, s['pareto']))}")
     files = "tuning.csv, tuning.json, report.html" + (", recommended.toml" if r else "")

@@ -64,14 +64,19 @@ THRESHOLD_KEYS = {signal: {name: spec.threshold_keys[signal] for name, spec in C
                   for signal in SIGNALS}
 
 
-def with_thresholds(base: Config, settings: list[dict]) -> list[dict]:
+def with_thresholds(base: Config, settings: list[dict], say=None,
+                    every_s: float = 5.0) -> list[dict]:
     """Each setting plus its designed chart thresholds as explicit ``[detectors]`` keys.
 
     The designs are simulated here, once, in grid order from an empty design cache
     (:mod:`monitor.detectors.design` caches and extends its simulations per process), so every
     worker and every engine, in any process, evaluates the same thresholds; tuning.csv
-    reports them.
+    reports them. ``say`` (a function of one line of text), when given, hears how many
+    settings are designed, at most every ``every_s`` seconds and at the end (issue 16: a
+    38-79 s run printed nothing until it was over).
     """
+    import time
+
     from monitor.detectors import design
     from monitor.pipeline.run import Pipeline
 
@@ -81,7 +86,8 @@ def with_thresholds(base: Config, settings: list[dict]) -> list[dict]:
     if clear is not None:
         clear()
     out = []
-    for s in settings:
+    t0 = last = time.monotonic()
+    for i, s in enumerate(settings, start=1):
         cfg = setting_config(base, s)
         pipe = Pipeline.from_config(cfg, estimator_from_config(cfg))
         full = dict(s)
@@ -89,6 +95,11 @@ def with_thresholds(base: Config, settings: list[dict]) -> list[dict]:
             if th is not None and th["chart"] in THRESHOLD_KEYS[signal]:
                 full[("detectors", THRESHOLD_KEYS[signal][th["chart"]])] = float(th["threshold"])
         out.append(full)
+        now = time.monotonic()
+        if say is not None and (now - last >= every_s or i == len(settings)):
+            last = now
+            say(f"chart thresholds designed for {i} of {len(settings)} settings "
+                f"({now - t0:.1f} s)")
     return out
 
 

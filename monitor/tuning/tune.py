@@ -61,7 +61,10 @@ def recommend(results: pd.DataFrame, budget: float) -> tuple[int | None, str]:
     if not np.isfinite(key.loc[best, "d"]):
         return best, ("every setting within the budget misses at least half of the known "
                       "changes; this one detects the most of them")
-    return best, (f"shortest median delay ({row['median_delay_all_obs']:.3g} observations) among "
+    # "counting misses as never detected": the delay the choice uses, which differs from the
+    # median over the detected changes printed beside it (issue 16: two medians, no words)
+    return best, (f"shortest median delay counting a missed change as never detected "
+                  f"({row['median_delay_all_obs']:.3g} observations) among "
                   f"{len(ok)} of {len(results)} settings within {budget:g} false alarms per "
                   "10,000 observations")
 
@@ -78,6 +81,28 @@ def results_frame(settings: list[dict], summaries: list[dict]) -> pd.DataFrame:
 
 
 # --------------------------------------------------------------------------- the command
+def phase_printer(enabled: bool, t0: float, stream=None):
+    """A function that writes ``tune: <text> [t s]`` lines to ``stream`` (default stderr) as
+    each phase of a tuning run starts, or does nothing when ``enabled`` is false.
+
+    >>> import io, time
+    >>> buf = io.StringIO()
+    >>> phase_printer(True, time.perf_counter(), buf)("reading log.csv")
+    >>> buf.getvalue().startswith("tune: reading log.csv [")
+    True
+    """
+    import sys
+    import time
+
+    if not enabled:
+        return lambda text: None
+
+    def say(text: str) -> None:
+        print(f"tune: {text} [{time.perf_counter() - t0:.1f} s]",
+              file=stream if stream is not None else sys.stderr, flush=True)
+    return say
+
+
 def tune(log, out_dir, *, truth=None, space=None, config: Config | None = None,
          max_false_alarms: float = 1.0, arl0: float | None = None, horizon: int = 90,
          engine: str = "local", scheduler: str | None = None, npartitions: int | None = None,
@@ -119,13 +144,19 @@ def tune(log, out_dir, *, truth=None, space=None, config: Config | None = None,
     from monitor.tuning import grid as R
     from monitor.tuning.rows import load_rows
 
-    full = R.with_thresholds(config, settings)
+    say = phase_printer(progress, t0)
+    say(f"{len(settings)} settings ({len(settings) - 1} from the search space plus the "
+        "defaults); designing each one's chart thresholds by simulation")
+    full = R.with_thresholds(config, settings, say=say)
     if engine == "dask":
+        say("replaying every setting on the Dask cluster")
         summaries, n_rows = R.evaluate_dask(log, config, truth_df, full, horizon, scheduler,
                                             npartitions, chunk_rows, now_ns, progress)
     else:
+        say(f"reading and validating {log}")
         rows = load_rows(log, config, chunk_rows, now_ns)
         n_rows = rows.n
+        say(f"{rows.n:,} observations of {len(rows.names):,} series; replaying every setting")
         summaries = R.evaluate_local(rows, truth_df, config, full, horizon, workers, progress)
     res = results_frame(settings, summaries)
     for key in dict.fromkeys(k for f in full for k in f if k[1].endswith(("_h", "_L", "threshold"))):
