@@ -48,6 +48,12 @@ NOT_RUNNABLE = [
     (r"\bbig\.parquet\b", "big.parquet stands for the reader's own large log; chunked and "
                           "Dask replays are tested in tests/test_replay_scale.py and "
                           "tests/test_dask_engine.py"),
+    (r"^elmon tune\b(?!.*--truth)", "designs and checks thresholds for the ARL0 on simulated "
+                                    "in-control paths long enough for it: minutes on a "
+                                    "year's log; tests/test_tuning.py::test_cli_tune_both_modes "
+                                    "runs the same command on a small log"),
+    (r"^elmon\b.*(?<![\w./-])[A-Z][A-Z_]{2,}(?![\w.-])", "names a placeholder in capitals "
+                                                        "(STORE, LOG, DIR) the reader fills in"),
 ]
 
 #: Files the README takes as the reader's own, made with elmon's simulator before the run
@@ -135,6 +141,9 @@ def test_readme_parser_reads_blocks_continuations_and_heredocs():
     assert cmds[2]["stdin"] == "[a]\nb = 1\n" and cmds[0]["stdin"] is None
     assert not_runnable_reason("elmon run --config x.toml")
     assert not_runnable_reason("elmon run --config x.toml --once") is None
+    assert not_runnable_reason("elmon alerts truth --db STORE --out truth.csv")
+    assert not_runnable_reason("elmon replay retail.csv --out replay-out/") is None
+    assert not_runnable_reason("cat > space.toml <<'EOF'") is None
     assert _parse_error(["replay", "next.csv", "--config", "c.toml"])   # --out is required
     assert _parse_error(["replay", "a.csv", "--out", "o/", "--no-such-option"])
 
