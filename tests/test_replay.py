@@ -109,3 +109,55 @@ def test_cli_replay_prints_estimates(tmp_path, rng, capsys):
     assert rc == 0
     out = capsys.readouterr().out
     assert "oat-bar@harbor" in out and "trail-mix@millbrook" in out and "ok" in out
+
+
+def test_estimates_as_parquet_equal_the_csv_to_the_bit(tmp_path, rng):
+    """--estimates-format parquet writes estimates.parquet with the same columns and values as
+    estimates.csv (CSV text round-trips float64 exactly: shortest repr)."""
+    import pyarrow.csv as pacsv
+    import pyarrow.parquet as pq
+
+    from monitor.replay.driver import replay
+
+    _log(rng, n_days=60).to_csv(tmp_path / "log.csv", index=False)
+    rc = main(["replay", str(tmp_path / "log.csv"), "--out", str(tmp_path / "p"),
+               "--estimates-format", "parquet", "--control", "promo"])
+    assert rc == 0
+    assert not (tmp_path / "p" / "estimates.csv").exists()
+    replay(tmp_path / "log.csv", tmp_path / "c", _cfg(controls=["promo"]), progress=False)
+    par = pq.read_table(tmp_path / "p" / "estimates.parquet")
+    csv = pacsv.read_csv(tmp_path / "c" / "estimates.csv",
+                         convert_options=pacsv.ConvertOptions(column_types=par.schema))
+    assert par.num_rows == 120 and par.schema.names == csv.schema.names
+    assert par.equals(csv)
+    s = json.loads((tmp_path / "p" / "summary.json").read_text())
+    assert s["settings"]["replay"]["estimates_format"] == "parquet"
+    assert s["estimates_written"] == 120
+
+
+def test_unknown_estimates_format_is_refused_by_name(tmp_path, rng):
+    from monitor.errors import ConfigError
+    from monitor.replay.driver import replay
+
+    _log(rng, n_days=5).to_csv(tmp_path / "log.csv", index=False)
+    with pytest.raises(ConfigError, match="estimates_format = 'xlsx'"):
+        replay(tmp_path / "log.csv", tmp_path / "o", estimates_format="xlsx", progress=False)
+
+
+def test_summary_json_is_the_same_value_as_the_indented_dump():
+    """summary.json writes each series on one line (C encoder); the JSON value is the same as
+    ``json.dumps(summary, indent=2, sort_keys=True)``, text outside the block included."""
+    from monitor.replay.driver import summary_json
+
+    summary = {"rows": 3, "final": {f"s{i}/é\"x": {"beta": -1.5 + i, "beta_lo": None,
+                                                   "status": "ok", "n_obs": i}
+                                    for i in (3, 1, 2)},
+               "timing": {"wall_s": 0.5}, "alerts_by_rule": {}}
+    text = summary_json(summary)
+    assert json.loads(text) == summary
+    assert list(json.loads(text)["final"]) == sorted(summary["final"])
+    plain = json.dumps(summary, indent=2, sort_keys=True)
+    head = plain.split('"final"')[0]
+    assert text.startswith(head) and text.endswith(plain[plain.index('\n  "rows"'):])
+    assert len([ln for ln in text.splitlines() if '"beta": ' in ln]) == 3    # one line each
+    assert summary_json({"final": {}}) == json.dumps({"final": {}}, indent=2, sort_keys=True)

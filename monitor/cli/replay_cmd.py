@@ -6,8 +6,26 @@ import argparse
 import json
 
 from monitor.cli import HelpFormatter
-from monitor.detectors.spec import CHART_CHOICES
-from monitor.settings import load_config
+
+
+class _ChartChoices:
+    """The chart names of :data:`monitor.detectors.spec.CHART_CHOICES`, looked up when a value
+    is checked or a command's help is shown: importing the detectors (numba, scipy) while the
+    parser is built would slow every command's start, ``elmon --help`` included."""
+
+    def _names(self) -> list[str]:
+        from monitor.detectors.spec import CHART_CHOICES
+
+        return CHART_CHOICES
+
+    def __iter__(self):
+        return iter(self._names())
+
+    def __contains__(self, value) -> bool:
+        return value in self._names()
+
+    def __len__(self) -> int:
+        return len(self._names())
 
 
 EXAMPLE = """example:
@@ -70,11 +88,13 @@ def add_detector_options(p: argparse.ArgumentParser) -> None:
                    help="consecutive breaching updates before a bounds alert (default 3)")
     g.add_argument("--clear-after", type=int, metavar="N",
                    help="consecutive updates back inside before it clears (default 5)")
-    g.add_argument("--level-chart", choices=CHART_CHOICES,
-                   help="chart on the standardized innovations -> level_shift (default cusum)")
-    g.add_argument("--slope-chart", choices=CHART_CHOICES,
-                   help="chart on the fast-minus-reference slope statistic -> elasticity_change "
+    # metavar given: argparse would list the choices (importing the detectors) while building
+    g.add_argument("--level-chart", choices=_ChartChoices(), metavar="CHART",
+                   help="chart on the standardized innovations -> level_shift: %(choices)s "
                         "(default cusum)")
+    g.add_argument("--slope-chart", choices=_ChartChoices(), metavar="CHART",
+                   help="chart on the fast-minus-reference slope statistic -> elasticity_change: "
+                        "%(choices)s (default cusum)")
     g.add_argument("--cusum-k", type=float, metavar="K",
                    help="reference value of the level CUSUM, sd units (default 0.5)")
     g.add_argument("--cusum-h", type=float, metavar="H",
@@ -93,6 +113,8 @@ def add_detector_options(p: argparse.ArgumentParser) -> None:
 
 
 def config_from_args(args) -> "object":
+    from monitor.settings import load_config
+
     cfg = load_config(args.config)
     cfg = cfg.with_overrides("estimator", forgetting=args.forgetting, controls=args.control,
                              log_controls=args.log_control, level=args.level,
@@ -138,7 +160,8 @@ def print_summary(summary: dict, out_dir) -> None:
     if len(listed) > MAX_LISTED:
         print(f"... and {len(listed) - MAX_LISTED} more series (final estimates in summary.json)")
     print_detection(summary)
-    print(f"wrote {out_dir}/estimates.csv, alerts.csv, rejects.csv, summary.json"
+    est_file = "estimates." + summary["settings"]["replay"].get("estimates_format", "csv")
+    print(f"wrote {out_dir}/{est_file}, alerts.csv, rejects.csv, summary.json"
           + (", detection.csv" if "detection" in summary else "")
           + (f"; report {summary['report']}" if summary.get("report") else ""))
 
@@ -161,7 +184,8 @@ def handle(args) -> int:
 
     summary = replay(args.log, args.out, config_from_args(args), truth=args.truth,
                      report=args.report, report_series=args.report_series,
-                     sample_every=args.sample_every, horizon=args.horizon, **engine_kwargs(args))
+                     sample_every=args.sample_every, horizon=args.horizon,
+                     estimates_format=args.estimates_format, **engine_kwargs(args))
     if args.json:
         print(json.dumps(summary, indent=2, sort_keys=True))
     else:
@@ -185,6 +209,9 @@ def register(sub) -> None:
     p.add_argument("log", help="observation log (.csv or .parquet): series, ts, price, quantity, controls")
     p.add_argument("--out", required=True, help="output folder")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    p.add_argument("--estimates-format", choices=("csv", "parquet"), default="csv",
+                   help="estimates.csv (default) or estimates.parquet: the same columns; "
+                        "Parquet for large logs with every estimate kept")
     add_common_options(p)
     add_replay_options(p)
     from monitor.cli import reject_share

@@ -35,6 +35,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError, SourceError
 from monitor.estimators import kernel as K
@@ -70,12 +71,22 @@ SCHEMAS = {
 }
 
 
-class TableWriter:
-    """A CSV file written a frame at a time with a fixed schema (header once, even if empty)."""
+#: formats of the estimates file (``estimates_format``): CSV for small logs and for reading by
+#: eye; Parquet (the same columns and types) when every estimate of a large log is kept: about
+#: a third of the CPU time of the CSV text (measured in benchmarks/replay_output.py)
+ESTIMATES_FORMATS = ("csv", "parquet")
 
-    def __init__(self, path, schema: pa.Schema):
+
+class TableWriter:
+    """A CSV or Parquet file written a frame at a time with a fixed schema (the header or the
+    Parquet schema is there even if no row is written)."""
+
+    def __init__(self, path, schema: pa.Schema, fmt: str = "csv"):
         self.path, self.schema = Path(path), schema
-        self._w = pacsv.CSVWriter(str(self.path), schema)
+        if fmt == "parquet":
+            self._w = pq.ParquetWriter(str(self.path), schema)
+        else:
+            self._w = pacsv.CSVWriter(str(self.path), schema)
         self.rows = 0
 
     def write(self, frame: pd.DataFrame | pa.Table) -> None:
@@ -96,9 +107,11 @@ class TableWriter:
 class Accumulator:
     """Adds up :class:`Partial` results on the driver and writes the output files."""
 
-    def __init__(self, out_dir: Path, keep_report: bool):
+    def __init__(self, out_dir: Path, keep_report: bool, estimates_format: str = "csv",
+                 estimates_schema: pa.Schema = SCHEMAS["estimates"]):
         self.out_dir = out_dir
-        self.est_w = TableWriter(out_dir / "estimates.csv", SCHEMAS["estimates"])
+        self.est_w = TableWriter(out_dir / f"estimates.{estimates_format}", estimates_schema,
+                                 estimates_format)
         self.rej_w = TableWriter(out_dir / "rejects.csv", SCHEMAS["rejects"])
         self.alerts, self.opened, self.report, self.scores = [], [], [], []
         self.obs_sid, self.obs_ts = [], []
@@ -182,8 +195,8 @@ def first_series(log, columns, n: int = 4) -> list[str]:
 def replay(log, out_dir, config: Config | None = None, *, truth=None, report=None,
            report_series=None, chunk_rows: int | None = None, sample_every: int = 1,
            engine: str = "local", scheduler: str | None = None, progress: bool | Progress = True,
-           horizon: int = DEFAULT_HORIZON, now_ns: int | None = None, npartitions: int | None = None
-           ) -> dict:
+           horizon: int = DEFAULT_HORIZON, now_ns: int | None = None, npartitions: int | None = None,
+           estimates_format: str = "csv") -> dict:
     """Replay ``log`` into ``out_dir``; returns the summary (also written as summary.json).
 
     Parameters
@@ -209,11 +222,20 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
         Detection window after a change, observations (:mod:`monitor.replay.detection`).
     now_ns : int, optional
         Reference time for the future-timestamp check (default: the wall clock at the start).
+    estimates_format : "csv" or "parquet"
+        Format of the estimates file, ``estimates.csv`` or ``estimates.parquet`` (same columns
+        and values; Parquet is the one to choose when every estimate of a large log is kept).
     """
     t0 = time.perf_counter()
     config = config or default_config()
     if engine not in ("local", "dask"):
         raise ConfigError(f"engine = {engine!r}: must be 'local' or 'dask'")
+    if estimates_format not in ESTIMATES_FORMATS:
+        raise ConfigError(f"estimates_format = {estimates_format!r}: must be one of "
+                          f"{', '.join(ESTIMATES_FORMATS)}")
+    if estimates_format != "csv" and group_settings_of(config).active:
+        raise ConfigError(f"estimates_format = {estimates_format!r}: [series] groups add their "
+                          "pooled columns to estimates.csv; use the csv format with groups")
     truth_df = read_truth(truth) if truth is not None else None
     chosen = choose_report_series(truth_df, report_series) if report else []
     if report and not chosen:
@@ -221,10 +243,11 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     setup = make_setup(config, sample_every, now_ns, chosen, keep_obs=truth_df is not None)
-    acc = Accumulator(out_dir, keep_report=bool(report))
+    schema = SCHEMAS["estimates"]
     if getattr(setup.est, "nout", 0) > K.NOUT:      # instruments: estimates gain first_stage_f
-        acc.est_w = TableWriter(out_dir / "estimates.csv",
-                                SCHEMAS["estimates"].append(pa.field("first_stage_f", _F)))
+        schema = schema.append(pa.field("first_stage_f", _F))
+    acc = Accumulator(out_dir, keep_report=bool(report), estimates_format=estimates_format,
+                      estimates_schema=schema)
     if engine == "dask":
         from monitor.replay.dask import replay_partitions
 
@@ -259,8 +282,31 @@ def replay(log, out_dir, config: Config | None = None, *, truth=None, report=Non
     write_experiments_for_log(log, config, out_dir, setup.now_ns)
     summary["timing"]["wall_s"] = time.perf_counter() - t0
     summary["timing"]["rows_per_s"] = summary["rows"] / summary["timing"]["wall_s"]
-    (out_dir / "summary.json").write_text(json.dumps(summary, indent=2, sort_keys=True))
+    (out_dir / "summary.json").write_text(summary_json(summary))
     return summary
+
+
+#: stands for the per-series block while the rest of the summary is indented
+_FINAL_MARK = "\x00final\x00"
+
+
+def summary_json(summary: dict) -> str:
+    """summary.json text: ``json.dumps(summary, indent=2, sort_keys=True)`` except that each
+    series of the ``final`` block is one line.
+
+    The same JSON value (``json.loads`` gives an equal dict). With ``indent`` the standard
+    library encodes in Python, not in its C encoder; at 100,000 series the indented per-series
+    block took most of a replay's time. Here each series' object goes through the C encoder.
+    """
+    final = summary.get("final")
+    if not isinstance(final, dict) or not final:
+        return json.dumps(summary, indent=2, sort_keys=True)
+    text = json.dumps({**summary, "final": _FINAL_MARK}, indent=2, sort_keys=True)
+    mark = '"final": ' + json.dumps(_FINAL_MARK)
+    enc = json.JSONEncoder(sort_keys=True, separators=(", ", ": "))
+    lines = ",\n".join(f"    {enc.encode(str(k))}: {enc.encode(final[k])}"
+                        for k in sorted(final))
+    return text.replace(mark, '"final": {\n' + lines + "\n  }", 1)
 
 
 def prefetch(chunks):
@@ -326,7 +372,8 @@ def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info
         "final": final,
         "settings": {"estimator": setup.est._params(), "validation": setup.vset.__dict__,
                      "columns": column_names(config), **setup.pipe.settings(),
-                     "replay": {"engine": engine, "sample_every": setup.sample_every}},
+                     "replay": {"engine": engine, "sample_every": setup.sample_every,
+                                "estimates_format": acc.est_w.path.suffix[1:]}},
         "estimates_written": acc.est_w.rows,
         "timing": {"wall_s": wall, "read_s": info.get("read_s"), "core_s": t_core - t0,
                    "rows_per_s": acc.counts["rows"] / wall if wall > 0 else None,
