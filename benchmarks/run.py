@@ -5,6 +5,7 @@ Usage::
     python -m benchmarks.run                 # everything (what ``make bench`` runs)
     python -m benchmarks.run --quick         # small sizes, for trying the harness
     python -m benchmarks.run --only estimator,ingest --out /tmp/r.md
+    python -m benchmarks.run --only startup --update   # replace these groups' section in RESULTS.md
 
 A group that fails leaves a row saying so (with the error) and the run goes on; the exit code
 is then 1. Missed targets do not change the exit code: the table says so.
@@ -24,7 +25,8 @@ from pathlib import Path
 from benchmarks.common import Context, Row, machine, machine_text, table
 
 #: replay and tuning run last: they take as many runs (up to --runs) as the time budget leaves
-GROUPS = ("estimator", "detection", "ingest", "live", "memory", "dashboard", "replay", "tuning")
+GROUPS = ("startup", "estimator", "estimator_call", "detection", "ingest", "live", "memory",
+          "dashboard", "iv", "experiments", "replay_output", "replay", "tuning")
 #: seconds a group needs at least (one run of each figure, loaded machine), reserved for it
 #: while the groups before it decide how many runs they can afford
 MIN_S = {"tuning": 120.0}
@@ -47,6 +49,27 @@ def _notes(rows: list[Row]) -> str:
     return notes.text(rows)
 
 
+def _marks(group: str) -> tuple[str, str]:
+    return f"<!-- partial run: {group} -->", f"<!-- end of partial run: {group} -->"
+
+
+def partial_section(group: str, rows: list[Row], info: dict, elapsed: float) -> str:
+    """A group's figures from a ``--only ... --update`` run, with the machine and load."""
+    start, end = _marks(group)
+    return "\n".join([start, f"## Figures of group `{group}` (partial run: `python -m "
+                      f"benchmarks.run --only {group} --update`)", "",
+                      machine_text(info, elapsed), "", table(rows), "", end])
+
+
+def update_section(text: str, group: str, section: str) -> str:
+    """``text`` with ``group``'s partial section replaced by ``section`` (appended if absent)."""
+    start, end = _marks(group)
+    i, j = text.find(start), text.find(end)
+    if i >= 0 and j > i:
+        return text[:i] + section + text[j + len(end):]
+    return text.rstrip("\n") + "\n\n" + section + "\n"
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m benchmarks.run", description=__doc__,
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -58,11 +81,17 @@ def main(argv: list[str] | None = None) -> int:
                          "figure takes fewer runs rather than exceed it")
     ap.add_argument("--out", default=None, help=f"results file (default {RESULTS}; "
                                                 "--quick and --only default to no file)")
+    ap.add_argument("--update", action="store_true",
+                    help="with --only: write these groups' figures into RESULTS.md as one "
+                         "section per group (replacing that group's previous partial section), "
+                         "keeping the rest of the file; the next full run rewrites it all")
     args = ap.parse_args(argv)
     groups = [g.strip() for g in args.only.split(",") if g.strip()] or list(GROUPS)
     unknown = [g for g in groups if g not in GROUPS]
     if unknown:
         ap.error(f"unknown group(s) {unknown}; choose from {', '.join(GROUPS)}")
+    if args.update and (not args.only or args.quick):
+        ap.error("--update needs --only (and not --quick)")
     out = Path(args.out) if args.out else (None if (args.quick or args.only) else RESULTS)
 
     info = machine()
@@ -99,7 +128,15 @@ def main(argv: list[str] | None = None) -> int:
     print(body)
     for sec in sections:
         print("\n" + sec)
-    if out is not None:
+    if args.update:
+        target = out or RESULTS
+        text = target.read_text() if target.exists() else INTRO
+        for g in groups:
+            got = [r for r in rows if r.group == g]
+            text = update_section(text, g, partial_section(g, got, info, elapsed))
+        target.write_text(text)
+        print(f"\nupdated {target} (groups {', '.join(groups)})")
+    elif out is not None:
         out.write_text(doc)
         print(f"\nwrote {out}")
     print(f"total {elapsed / 60:.1f} min")
