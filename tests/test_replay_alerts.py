@@ -40,9 +40,16 @@ def _replay(args, capsys):
     return rc, out.out, out.err
 
 
+#: the previous charts (CUSUM on the slope statistic), which these tests are about; the default
+#: change detector is the split GLR since issue 12
+CHARTS = "[detectors]\nchange_detector = \"charts\"\n"
+
+
 def test_replay_writes_alerts_for_the_regime_change(regime_log, tmp_path, capsys):
     log, change_ts = regime_log
-    rc, out, _ = _replay([log, "--out", tmp_path], capsys)
+    cfg = tmp_path / "charts.toml"
+    cfg.write_text(CHARTS)
+    rc, out, _ = _replay([log, "--out", tmp_path, "--config", cfg], capsys)
     assert rc == 0
     alerts = pd.read_csv(tmp_path / "alerts.csv")
     assert list(alerts.columns[:7]) == ["series", "ts", "rule", "beta", "beta_lo", "beta_hi",
@@ -88,8 +95,10 @@ def test_bounds_option_marks_out_of_bounds_rows(regime_log, tmp_path, capsys):
 def test_detector_options_and_config_reach_the_pipeline(regime_log, tmp_path, capsys):
     log, _ = regime_log
     cfg = tmp_path / "elmon.toml"
-    cfg.write_text("[detectors]\nlevel_chart = \"ewma\"\nslope_k = 1.0\narl0 = 50000\n"
+    cfg.write_text(CHARTS + "level_chart = \"ewma\"\nslope_k = 1.0\narl0 = 50000\n"
                    "[rules]\ncooldown = 10\n")
+    charts = tmp_path / "charts.toml"
+    charts.write_text(CHARTS)
     rc, _, _ = _replay([log, "--out", tmp_path / "a", "--config", cfg, "--cusum-h", "7.0"],
                        capsys)
     assert rc == 0
@@ -99,7 +108,7 @@ def test_detector_options_and_config_reach_the_pipeline(regime_log, tmp_path, ca
     assert s["thresholds"]["level"]["arl0"] == 50000.0
     assert s["detectors"]["cusum_h"] == 7.0 and s["rules"]["cooldown"] == 10
     rc, _, _ = _replay([log, "--out", tmp_path / "b", "--slope-chart", "none", "--cusum-h",
-                        "7.0"], capsys)
+                        "7.0", "--config", charts], capsys)
     assert rc == 0
     s = json.loads((tmp_path / "b" / "summary.json").read_text())["settings"]
     assert s["thresholds"]["slope"] is None
