@@ -48,3 +48,25 @@ def designed_thresholds(forgetting: float = 0.99, arl0: float = 20000.0) -> dict
 
 #: the designed thresholds of the default settings (ARL0 20000, forgetting 0.99)
 DESIGNED = designed_thresholds()
+
+
+def pytest_configure(config):
+    """Fill the numba cache once before xdist starts its workers (tests/warm_numba.py); a
+    worker (``workerinput``) or ELMON_TEST_NO_WARMUP=1 skips it. A failure here is reported
+    and the tests compile for themselves."""
+    if hasattr(config, "workerinput") or os.environ.get("ELMON_TEST_NO_WARMUP") == "1":
+        return
+    import subprocess
+    import sys
+    import time
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    t0 = time.monotonic()
+    done = subprocess.run([sys.executable, str(root / "tests" / "warm_numba.py")], cwd=root,
+                          capture_output=True, text=True,
+                          env={**os.environ, "PYTHONPATH": str(root)})
+    msg = (f"numba cache warmed in {time.monotonic() - t0:.0f} s" if done.returncode == 0 else
+           f"numba warm-up failed (exit {done.returncode}); tests compile for themselves:\n"
+           f"{done.stderr[-2000:]}")
+    print(f"\nelmon tests: {msg}", file=sys.stderr)
