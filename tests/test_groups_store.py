@@ -42,12 +42,6 @@ def seed_latest(store, series, seed=3):
     return est
 
 
-@pytest.fixture()
-def store(tmp_path):
-    with mstore.Store.open(tmp_path / "g.sqlite") as st:
-        yield st
-
-
 def test_attributes_round_trip_and_pooled_latest(store):
     series = names()
     seed_latest(store, series)
