@@ -192,13 +192,12 @@ def test_level_shift_is_not_an_elasticity_change(runner):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(reason="issue 12, measured on the integrated tree at 11:40 UTC: 88% of 400 "
-                          "series opened level_shift within 50 observations of a -50% shift "
-                          "under step prices; reported to the detector's owner", strict=False)
 def test_level_shift_is_found_at_once(runner):
     """A -50% level shift carries about 10 nats per observation (log(0.5)^2 / (2 x 0.15^2)):
     the level chart should open within a few observations in nearly every series; >= 90% within
-    50 observations (400 series: binomial sd 1.5%)."""
+    50 observations (400 series: binomial sd 1.5%). Measured 14:30 UTC: 398 of 400 (88% at
+    11:40, before the level-only alternatives of the slope alarm included the shift's first
+    rows and before the cooldown stopped dropping alarms)."""
     sc = Scenario("lvl", prices="steps", change="level", size=-0.5, n_obs=1100, change_at=600)
     sim = simulate(sc, 400, seed=24)
     o, _, _ = runner.run(sim, ARL0, sc.change_at)

@@ -239,8 +239,14 @@ def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bpar
                 ne = _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d,
                            o[K.O_Z], bparams, gparams, vparams, split, gp, rep)
                 continue
+        # no cooldown for the split detector's kinds: it re-anchors after every alarm, so a
+        # later alarm is a further change with its own change time, not a flap of the last
+        # one (with a cooldown, a -50% level shift within 50 rows of a cleared level alert
+        # was never reported: the alarm was dropped and the detector had re-anchored)
+        cool = 0.0 if split and (kind == KIND_ELASTICITY_CHANGE or kind == KIND_LEVEL_SHIFT) \
+            else rparams[kind, U_COOLDOWN]
         a = rule_step(st, r, fire, not fire, allowed, n, t, rparams[kind, U_MODE],
-                      rparams[kind, U_CLEAR_AFTER], rparams[kind, U_COOLDOWN])
+                      rparams[kind, U_CLEAR_AFTER], cool)
         if a == ACTION_CLEAR:
             ne = _clear(ev, ne, j, kind, st, r, n, t, b, lo, hi)
         elif a == ACTION_OPEN:
