@@ -190,3 +190,58 @@ def test_replay_page_renders(server, browser):
     assert page.get_by_text("Detection against known change points").count() == 1
     _shot(page, "replay")
     page.close()
+
+
+def test_hostile_ids_render_as_plain_text(tmp_path, browser):
+    """Issue 14: series ids and messages with markdown, HTML, emoji and colour codes show as
+    the characters they are: no image fetched, no link made, no TeX, no coloured text."""
+    from tests.test_dashboard_security import HOSTILE, _seed
+
+    facts = _seed(tmp_path / "store.sqlite")
+    port = _free_port()
+    elmon = Path(sys.executable).with_name("elmon")
+    cmd = [str(elmon)] if elmon.exists() else [sys.executable, "-m", "monitor"]
+    cmd += ["dashboard", "--db", facts["path"], "--port", str(port)]
+    log = tmp_path / "server.log"
+    with open(log, "w") as out:
+        proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT, cwd=str(tmp_path),
+                                start_new_session=True)
+    base = f"http://127.0.0.1:{port}"
+    try:
+        _wait_healthy(base, proc, log, timeout=120)
+        pages = [(base + "/series?" + urllib.parse.urlencode({"series": h}), "Series detail",
+                  CHART, h) for h in HOSTILE[:4]]
+        pages.append((base + "/alerts", "Alerts", '[data-testid="stDataFrame"] canvas',
+                      None))
+        for url, title, ready, hostile in pages:
+            page = _open(browser, url, title, ready)
+            md = page.locator('[data-testid="stMarkdownContainer"]')
+            for i in range(md.count()):
+                el = md.nth(i)
+                hrefs = [a.get_attribute("href") or "" for a in el.locator("a").all()]
+                assert not [h for h in hrefs if "evil.example" in h or "127.0.0.1:9" in h
+                            or h.startswith("mailto:")], (url, hrefs)
+                srcs = [im.get_attribute("src") or "" for im in el.locator("img").all()]
+                assert not [s for s in srcs if s.startswith("http")], (url, srcs)
+                assert el.locator(".katex, span[style*='color']").count() == 0, url
+            # the visible text plus the values of inputs (the select box shows its choice in
+            # an input), word joiners removed (invisible; dashboard.safe_text)
+            body = page.evaluate(
+                "() => document.body.innerText + '\\n' + Array.from("
+                "document.querySelectorAll('input')).map(i => i.value).join('\\n')"
+            ).replace("\u2060", "")
+            if hostile is not None:          # the id itself is on the page, as typed
+                assert hostile.replace("\n", "\u240a") in body, (hostile, body[:1500])
+            else:
+                assert "![x](http://evil.example/x.png)" in body
+            _shot(page, f"hostile-{title.split()[0].lower()}-{len(url) % 97}")
+            page.close()
+    finally:
+        try:
+            os.killpg(proc.pid, signal.SIGTERM)
+            proc.wait(timeout=15)
+        except (ProcessLookupError, subprocess.TimeoutExpired):
+            try:
+                os.killpg(proc.pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
