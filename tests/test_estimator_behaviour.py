@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import math
+import types
 
 import numpy as np
 import pytest
@@ -205,7 +206,10 @@ def test_learn_one_takes_numeric_text_and_numpy_numbers_like_design_row():
     for p, q in (("2.5", "10"), (np.float32(3.0), np.int64(7)), (4, 9.5), (True, 3.0)):
         a.learn_one({"price": p}, q)
         b.learn_one({"price": float(p)}, float(q))
+    a.learn_one(types.MappingProxyType({"price": 2.75}), 6.0)    # a Mapping, not a dict
+    b.learn_one({"price": 2.75}, 6.0)
     np.testing.assert_array_equal(a._state, b._state)
+    assert a.n_obs == 5
 
 
 @njit

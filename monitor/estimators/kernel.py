@@ -558,12 +558,12 @@ def pack_settings(band, lags, lam, guard, guard_lam, min_price_sd, min_neff) -> 
 
 
 @njit(cache=True, _nrt=False)
-def rls_learn(st, x, y, par, tq, out, w):
+def rls_learn(st, x, par, tq, out, w, y):
     """:func:`rls_step` for one observation called from Python, settings packed in ``par``.
 
     The same step as the batch loop; only the call differs: seven arguments instead of
     fifteen, which is most of the cost of a call from Python (numba checks the type of every
-    argument on each call).
+    argument on each call). ``y`` comes last so a caller can keep the six arrays in one tuple.
     """
     rls_step(st, x, y, x.shape[0], int(par[P_BAND]), int(par[P_LAGS]), par[P_LAM],
              par[P_GUARD] != 0.0, par[P_GUARD_LAM], par[P_MIN_PRICE_SD], par[P_MIN_NEFF], tq,

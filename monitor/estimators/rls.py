@@ -35,6 +35,9 @@ from monitor.estimators.transform import (ControlSpec, check_quantity, design_ro
 from monitor.types import STATUS_LABELS
 
 
+_learn = K.rls_learn
+_log = math.log
+
 #: Jarque-Bera statistic above which predict_one uses Duan's smearing (chi-square(2) 0.99)
 SMEARING_JB = 9.21
 
@@ -135,6 +138,8 @@ class ElasticityRLS:
         # hyperparameters are fixed once constructed: clone() for other settings)
         self._par = K.pack_settings(*self.kernel_args[:-1])
         self._row = np.ones(self._k)
+        # the arrays of every call, in rls_learn's order (the design row is filled in place)
+        self._learn_args = (self._state, self._row, self._par, self._tq, self._out, self._work)
 
     # ------------------------------------------------------------------ set-up
     def prior(self) -> tuple[np.ndarray, np.ndarray]:
@@ -172,23 +177,25 @@ class ElasticityRLS:
         else:
             # price only: the checks of design_row / check_price inline (they run on every
             # call); anything not a finite positive number goes to them for the message
-            row = self._row
-            price = x.get("price") if isinstance(x, dict) else None
+            price = x.get("price") if type(x) is dict else None
             try:
                 p = float(price)
             except (TypeError, ValueError):
                 p = math.nan
-            if not 0.0 < p < math.inf:
-                row = design_row(x, self._specs)   # raises with the field, value and rule
-            else:
-                row[1] = math.log(p)
+            # not a finite positive number (design_row raises with the field, value and rule),
+            # or x is a Mapping other than a dict (design_row reads it)
+            row = design_row(x, self._specs) if not 0.0 < p < math.inf else None
         try:
             q = float(y)
         except (TypeError, ValueError):
             q = math.nan
         if not 0.0 < q < math.inf:
             q = check_quantity(y)                  # raises with the field, value and rule
-        K.rls_learn(self._state, row, math.log(q), self._par, self._tq, self._out, self._work)
+        if row is None:
+            self._row[1] = _log(p)
+            _learn(*self._learn_args, _log(q))
+        else:
+            _learn(self._state, row, self._par, self._tq, self._out, self._work, _log(q))
         return self
 
     @property
