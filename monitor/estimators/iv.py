@@ -34,7 +34,7 @@ import numpy as np
 from monitor.errors import ValidationError
 from monitor.estimators import iv_kernel as IK
 from monitor.estimators import kernel as K
-from monitor.estimators.rls import _check_range, floats_from_json, floats_to_json
+from monitor.estimators.rls import check_range, floats_from_json, floats_to_json
 from monitor.estimators.tquantile import t_table
 from monitor.estimators.transform import (ControlSpec, check_quantity, design_row,
                                           parameter_names, parse_controls)
@@ -96,15 +96,15 @@ class ElasticityIV:
                  log_controls: Sequence[str] = (), level: float = 0.95,
                  min_n_eff: float = 30.0, min_price_sd: float = 0.02,
                  f_min: float = IK.DEFAULT_F_MIN):
-        self.forgetting = _check_range("forgetting", forgetting, 0.0, 1.0, True, False)
+        self.forgetting = check_range("forgetting", forgetting, 0.0, 1.0, True, False)
         self.controls = tuple(controls)
         self.log_controls = tuple(log_controls)
         self.instruments = tuple(instruments)
         self.log_instruments = tuple(log_instruments)
-        self.level = _check_range("level", level, 0.0, 1.0, True, True)
-        self.min_n_eff = _check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
-        self.min_price_sd = _check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
-        self.f_min = _check_range("f_min", f_min, 0.0, math.inf, False, True)
+        self.level = check_range("level", level, 0.0, 1.0, True, True)
+        self.min_n_eff = check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
+        self.min_price_sd = check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
+        self.f_min = check_range("f_min", f_min, 0.0, math.inf, False, True)
         self._cspecs = parse_controls(self.controls, self.log_controls)
         self._ispecs = parse_instruments(self.instruments, self.log_instruments, self._cspecs)
         self._kp = 2 + len(self._cspecs)

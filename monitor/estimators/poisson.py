@@ -29,7 +29,7 @@ from monitor.errors import ValidationError
 from monitor.estimators import kernel as K
 from monitor.estimators.poisson_kernel import (poisson_init_state, poisson_state_size,
                                                poisson_step, poisson_work_size)
-from monitor.estimators.rls import _check_range, floats_from_json, floats_to_json
+from monitor.estimators.rls import check_range, floats_from_json, floats_to_json
 from monitor.estimators.tquantile import t_lookup, t_table
 from monitor.estimators.transform import (ControlSpec, design_row, parameter_names,
                                           parse_controls)
@@ -95,14 +95,14 @@ class ElasticityPoisson:
                  log_controls: Sequence[str] = (), level: float = 0.95, min_n_eff: float = 10.0,
                  min_price_sd: float = 0.02, excitation_guard: bool = True,
                  guard_forgetting: float = 0.8, band: str = "hc", exposure: str = ""):
-        self.forgetting = _check_range("forgetting", forgetting, 0.0, 1.0, True, False)
+        self.forgetting = check_range("forgetting", forgetting, 0.0, 1.0, True, False)
         self.controls = tuple(controls)
         self.log_controls = tuple(log_controls)
-        self.level = _check_range("level", level, 0.0, 1.0, True, True)
-        self.min_n_eff = _check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
-        self.min_price_sd = _check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
+        self.level = check_range("level", level, 0.0, 1.0, True, True)
+        self.min_n_eff = check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
+        self.min_price_sd = check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
         self.excitation_guard = bool(excitation_guard)
-        self.guard_forgetting = _check_range("guard_forgetting", guard_forgetting, 0.0, 1.0,
+        self.guard_forgetting = check_range("guard_forgetting", guard_forgetting, 0.0, 1.0,
                                              True, True)
         if band not in ("hc", "classic"):
             raise ValueError(f"band = {band!r}: must be one of hc, classic for the Poisson "
@@ -190,7 +190,7 @@ class ElasticityPoisson:
     def interval(self, level: float | None = None) -> tuple[float, float]:
         if level is None or level == self.level:
             return float(self._out[K.O_LO]), float(self._out[K.O_HI])
-        level = _check_range("level", level, 0.0, 1.0, True, True)
+        level = check_range("level", level, 0.0, 1.0, True, True)
         q = t_lookup(t_table(level), self.n_eff - self._k)
         return self.elasticity - q * self.stderr, self.elasticity + q * self.stderr
 

@@ -42,7 +42,7 @@ _log = math.log
 SMEARING_JB = 9.21
 
 
-def _check_range(name: str, value: float, lo: float, hi: float, lo_open: bool, hi_open: bool) -> float:
+def check_range(name: str, value: float, lo: float, hi: float, lo_open: bool, hi_open: bool) -> float:
     try:
         v = float(value)
     except (TypeError, ValueError):
@@ -108,21 +108,21 @@ class ElasticityRLS:
                  prior_sd: float | None = None, level: float = 0.95, min_n_eff: float = 10.0,
                  min_price_sd: float = 0.02, excitation_guard: bool = True,
                  guard_forgetting: float = 0.8, band: str = "hc", hac_lags: int = 8):
-        self.forgetting = _check_range("forgetting", forgetting, 0.0, 1.0, True, False)
+        self.forgetting = check_range("forgetting", forgetting, 0.0, 1.0, True, False)
         self.controls = tuple(controls)
         self.log_controls = tuple(log_controls)
-        self.prior_mean = _check_range("prior_mean", prior_mean, -math.inf, math.inf, True, True)
-        self.prior_sd = None if prior_sd is None else _check_range(
+        self.prior_mean = check_range("prior_mean", prior_mean, -math.inf, math.inf, True, True)
+        self.prior_sd = None if prior_sd is None else check_range(
             "prior_sd", prior_sd, 0.0, math.inf, True, True)
-        self.level = _check_range("level", level, 0.0, 1.0, True, True)
-        self.min_n_eff = _check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
-        self.min_price_sd = _check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
+        self.level = check_range("level", level, 0.0, 1.0, True, True)
+        self.min_n_eff = check_range("min_n_eff", min_n_eff, 0.0, math.inf, False, True)
+        self.min_price_sd = check_range("min_price_sd", min_price_sd, 0.0, math.inf, False, True)
         self.excitation_guard = bool(excitation_guard)
-        self.guard_forgetting = _check_range("guard_forgetting", guard_forgetting, 0.0, 1.0, True, True)
+        self.guard_forgetting = check_range("guard_forgetting", guard_forgetting, 0.0, 1.0, True, True)
         if band not in K.BANDS:
             raise ValueError(f"band = {band!r}: must be one of {', '.join(K.BANDS)}")
         self.band = band
-        self.hac_lags = int(_check_range("hac_lags", hac_lags, 1, 52, False, False))
+        self.hac_lags = int(check_range("hac_lags", hac_lags, 1, 52, False, False))
         if self.hac_lags != hac_lags:
             raise ValueError(f"hac_lags = {hac_lags!r}: must be an integer in [1, 52]")
         self._specs: tuple[ControlSpec, ...] = parse_controls(self.controls, self.log_controls)
@@ -340,7 +340,7 @@ class ElasticityRLS:
         """Confidence interval for b: Student-t with n_eff - k degrees of freedom."""
         if level is None or level == self.level:
             return float(self._out[K.O_LO]), float(self._out[K.O_HI])
-        level = _check_range("level", level, 0.0, 1.0, True, True)
+        level = check_range("level", level, 0.0, 1.0, True, True)
         q = t_lookup(t_table(level), self.n_eff - self._k)
         b, se = self.elasticity, self.stderr
         return b - q * se, b + q * se
