@@ -182,10 +182,17 @@ def test_readme_commands_run_as_written(tmp_path, monkeypatch):
             assert rc == 0, f"README line {c['line']}: {c['cmd']!r} exited {rc}\n" \
                             f"{out.getvalue()[-2000:]}"
         else:
-            done = subprocess.run(["bash", "-c", c["cmd"]], input=c["stdin"], text=True,
-                                  capture_output=True, cwd=tmp_path, timeout=60)
+            script = c["cmd"]
+            if c["stdin"] is not None:     # a heredoc is part of the script bash reads
+                end = re.search(r"<<\s*'?(\w+)'?", script).group(1)
+                script = f"{script}\n{c['stdin']}{end}\n"
+            done = subprocess.run(["bash", "-c", script], text=True, capture_output=True,
+                                  cwd=tmp_path, timeout=600)        # hang guard
             assert done.returncode == 0, f"README line {c['line']}: {c['cmd']!r}: " \
                                          f"{done.stderr}"
+            target = re.match(r"cat\s*>\s*(\S+)", script)
+            if target and c["stdin"].strip():   # the file holds what the README shows
+                assert (tmp_path / target.group(1)).read_text() == c["stdin"], c["cmd"]
         ran.append(c["cmd"])
     assert any(r.startswith("elmon tune") for r in ran) and \
         any(r.startswith("elmon replay") for r in ran)
