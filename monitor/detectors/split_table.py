@@ -13,13 +13,17 @@ for 500 and 1,000 hold the margin (the chart is then more conservative than aske
 TABLE_KEY = (2000.0, 30.0, 0.995, 0.25, 0.99, 11)
 #: median delay over h / I on the design model (see monitor.detectors.split_design)
 DELAY_FACTOR = 1.4
+#: slope column regenerated (same generator and seed) after the slope score's AR(1) factor was
+#: capped by the innovations' (issue 12, retail demo miss); the level column is kept from the
+#: previous run: the regenerated one was 0.09-0.14 lower (4.2338, 4.9786, 5.6605, 6.5898,
+#: 7.3104, 7.9473, 8.838, 9.5125), a change this fix does not explain; left for the detector owner
 PRECOMPUTED: dict = {
     500.0: (3.3174, 4.2983, 500),
-    1000.0: (3.3174, 5.0358, 500),
-    2000.0: (4.4136, 5.7975, 500),
-    5000.0: (5.4498, 6.6983, 500),
-    10000.0: (6.1091, 7.3615, 500),
-    20000.0: (6.7808, 7.9773, 500),
-    50000.0: (7.599, 8.9276, 500),
-    100000.0: (8.2124, 9.6251, 500),
+    1000.0: (3.3381, 5.0358, 500),
+    2000.0: (4.5658, 5.7975, 500),
+    5000.0: (5.6021, 6.6983, 500),
+    10000.0: (6.3039, 7.3615, 500),
+    20000.0: (6.989, 7.9773, 500),
+    50000.0: (7.8558, 8.9276, 500),
+    100000.0: (8.5615, 9.6251, 500),
 }
