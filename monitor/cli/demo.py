@@ -77,11 +77,6 @@ zero_policy = "skip"
 # simulated weeks; the production default is 20,000 (see "Choosing thresholds for a
 # false-alarm budget")
 arl0 = 2000
-# the previous CUSUM charts: the split likelihood-ratio detector (the default) misses the
-# retail scenario's headline change (b -1.4 to -2.2 on 2024-06-13 in elm-cross/rye-crackers:
-# its slope statistic peaks at 3.95 against 4.41, measured 4 December 2026), which the charts
-# find 36 days after it; issue 12 stays open on this
-change_detector = "charts"
 
 [service]
 poll_interval_s = 1.0
