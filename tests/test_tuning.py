@@ -124,7 +124,7 @@ def _real_level_arl(path, arl0: float) -> float:
     from monitor.pipeline.run import Pipeline
     from monitor.tuning.rows import load_rows
 
-    cfg = validate({"detectors": {"arl0": arl0}})
+    cfg = validate({"detectors": {"arl0": arl0, "change_detector": "charts"}})
     rows = load_rows(path, cfg, now_ns=NOW)
     res = Pipeline.from_config(cfg, estimator_from_config(cfg)).run(
         rows.sid, rows.X, rows.y, n_series=len(rows.names), keep_signals=True)
@@ -138,8 +138,13 @@ def test_bootstrap_check_flags_autocorrelated_errors(tmp_path):
     arl0 = 500.0
     _loglog_log(tmp_path / "ar.csv", rho=0.5)
     _loglog_log(tmp_path / "iid.csv", rho=0.0)
-    ar = calibrate(tmp_path / "ar.csv", tmp_path / "ar", arl0=arl0, progress=False, now_ns=NOW)
-    iid = calibrate(tmp_path / "iid.csv", tmp_path / "iid", arl0=arl0, progress=False, now_ns=NOW)
+    # the bootstrap check of the CUSUM level chart (cusum_h); the split likelihood-ratio
+    # default has no such check yet (issue 12), so the charts are selected
+    charts = validate({"detectors": {"change_detector": "charts"}})
+    ar = calibrate(tmp_path / "ar.csv", tmp_path / "ar", config=charts, arl0=arl0,
+                   progress=False, now_ns=NOW)
+    iid = calibrate(tmp_path / "iid.csv", tmp_path / "iid", config=charts, arl0=arl0,
+                    progress=False, now_ns=NOW)
     real_ar, real_iid = _real_level_arl(tmp_path / "ar.csv", arl0), _real_level_arl(tmp_path / "iid.csv", arl0)
     lev = ar["checks"]["level"]
     # the real rate on the autocorrelated log is several times the design's, and the check says so
