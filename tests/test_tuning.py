@@ -180,3 +180,14 @@ def test_cli_tune_both_modes(tmp_path, capsys):
     assert (tmp_path / "c" / "report.html").exists() and (tmp_path / "c" / "recommended.toml").exists()
     rc = main(["tune", str(tmp_path / "log.csv"), "--out", str(tmp_path / "x")])
     assert rc == 2 and "--arl0" in capsys.readouterr().err
+
+
+def test_bootstrap_check_names_the_detectors_it_cannot_check(tmp_path):
+    """With the default split likelihood-ratio detector the bootstrap has no chart statistic to
+    replay: the summary, recommended.toml and the command say so, instead of an empty check."""
+    _loglog_log(tmp_path / "iid.csv", rho=0.0)
+    s = calibrate(tmp_path / "iid.csv", tmp_path / "o", arl0=500.0, progress=False, now_ns=NOW,
+                  n_paths=20)
+    assert s["checks"] == {} and set(s["unchecked"]) == {"level", "slope"}
+    assert all("split_glr" in t and "--truth" in t for t in s["unchecked"].values())
+    assert "not checked by this bootstrap" in (tmp_path / "o" / "recommended.toml").read_text()

@@ -97,6 +97,8 @@ def print_calibration(s: dict, out) -> None:
           f"{s['series_used']} series")
     for c in s["checks"].values():
         print(("FLAG: " if c["flagged"] else "ok:   ") + c["message"])
+    for text in s.get("unchecked", {}).values():
+        print("NOT CHECKED: " + text)
     print(f"wrote {out}/recommended.toml, calibration.json, report.html")
 
 
