@@ -343,8 +343,9 @@ def test_live_csv_appends_whole_lines_at_the_requested_rate(tmp_path, sims):
         stop.set()
         t.join()
     # row i is due at i / 200 s, so row 99 at 0.495 s; writes are batched every 0.05 s, so the
-    # run cannot end before 0.45 s (a pacing fact); the upper bound is only a hang guard
-    assert 0.45 <= app.elapsed < 60, app.elapsed
+    # run cannot end before 0.45 s (a pacing fact that load cannot break: a slower machine only
+    # ends later); no upper bound: speed is not this test's business
+    assert app.elapsed >= 0.45, app.elapsed
     assert len(counts) >= 5 and counts == sorted(counts) and partial_ok
     assert out.read_bytes().startswith(b"series,ts,price,quantity,promo,weekend\n")
 
@@ -360,7 +361,9 @@ def test_live_speed_follows_simulated_time(tmp_path):
     app = LiveAppender(sim, tmp_path / "l.csv", speed=72_000, max_rows=60)  # 20 h per second
     app.run()
     # 60 rows = hours 0..9; hour 9 is due at 9 * 3600 / 72000 = 0.45 s
-    assert app.rows_written == 60 and 0.42 <= app.elapsed < 60     # upper bound: a hang guard
+    # the pacing holds rows back until due: it cannot end before 0.42 s (no upper bound: load
+    # only makes it later)
+    assert app.rows_written == 60 and app.elapsed >= 0.42
 
 
 def test_live_stops_on_event_and_on_max_seconds(tmp_path, sims):
