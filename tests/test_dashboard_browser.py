@@ -10,6 +10,7 @@ leaves the checkout clean).
 
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
 import signal
@@ -79,27 +80,23 @@ def _wait_healthy(base: str, proc: subprocess.Popen, log: Path, timeout: float =
     pytest.fail(f"dashboard not healthy after {timeout} s:\n{log.read_text()[-3000:]}")
 
 
-@pytest.fixture(scope="module")
-def server(tmp_path_factory):
-    _ensure_chromium()
-    d = tmp_path_factory.mktemp("browser")
-    facts = fx.seed_store(d / "store.sqlite", long_obs=3000)
-    truth = fx.write_truth(d / "truth.csv", facts)
-    fx.write_replay_folder(d / "replay-out", facts)
+@contextlib.contextmanager
+def _dashboard(cwd: Path, args: list[str], timeout: float = 30.0):
+    """``elmon dashboard ARGS`` on a free port in its own process group, healthy; yields
+    ``(base URL, server log)`` and stops the group (elmon and its streamlit child) after."""
     port = _free_port()
     elmon = Path(sys.executable).with_name("elmon")
     cmd = [str(elmon)] if elmon.exists() else [sys.executable, "-m", "monitor"]
-    cmd += ["dashboard", "--db", facts["path"], "--port", str(port), "--truth", str(truth)]
-    log = d / "server.log"
+    cmd += ["dashboard", *args, "--port", str(port)]
+    log = cwd / "server.log"
     with open(log, "w") as out:
-        proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT, cwd=str(d),
+        proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT, cwd=str(cwd),
                                 start_new_session=True)
     base = f"http://127.0.0.1:{port}"
     try:
-        _wait_healthy(base, proc, log)
-        yield {"base": base, "facts": facts, "log": log}
+        _wait_healthy(base, proc, log, timeout=timeout)
+        yield base, log
     finally:
-        # stop the process group this fixture started (elmon and its streamlit child)
         try:
             os.killpg(proc.pid, signal.SIGTERM)
             proc.wait(timeout=15)
@@ -108,6 +105,17 @@ def server(tmp_path_factory):
                 os.killpg(proc.pid, signal.SIGKILL)
             except ProcessLookupError:
                 pass
+
+
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    _ensure_chromium()
+    d = tmp_path_factory.mktemp("browser")
+    facts = fx.seed_store(d / "store.sqlite", long_obs=3000)
+    truth = fx.write_truth(d / "truth.csv", facts)
+    fx.write_replay_folder(d / "replay-out", facts)
+    with _dashboard(d, ["--db", facts["path"], "--truth", str(truth)]) as (base, log):
+        yield {"base": base, "facts": facts, "log": log}
 
 
 @pytest.fixture(scope="module")
@@ -198,17 +206,7 @@ def test_hostile_ids_render_as_plain_text(tmp_path, browser):
     from tests.test_dashboard_security import HOSTILE, _seed
 
     facts = _seed(tmp_path / "store.sqlite")
-    port = _free_port()
-    elmon = Path(sys.executable).with_name("elmon")
-    cmd = [str(elmon)] if elmon.exists() else [sys.executable, "-m", "monitor"]
-    cmd += ["dashboard", "--db", facts["path"], "--port", str(port)]
-    log = tmp_path / "server.log"
-    with open(log, "w") as out:
-        proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT, cwd=str(tmp_path),
-                                start_new_session=True)
-    base = f"http://127.0.0.1:{port}"
-    try:
-        _wait_healthy(base, proc, log, timeout=120)
+    with _dashboard(tmp_path, ["--db", facts["path"]], timeout=120) as (base, _log):
         pages = [(base + "/series?" + urllib.parse.urlencode({"series": h}), "Series detail",
                   CHART, h) for h in HOSTILE[:4]]
         pages.append((base + "/alerts", "Alerts", '[data-testid="stDataFrame"] canvas',
@@ -236,12 +234,3 @@ def test_hostile_ids_render_as_plain_text(tmp_path, browser):
                 assert "![x](http://evil.example/x.png)" in body
             _shot(page, f"hostile-{title.split()[0].lower()}-{len(url) % 97}")
             page.close()
-    finally:
-        try:
-            os.killpg(proc.pid, signal.SIGTERM)
-            proc.wait(timeout=15)
-        except (ProcessLookupError, subprocess.TimeoutExpired):
-            try:
-                os.killpg(proc.pid, signal.SIGKILL)
-            except ProcessLookupError:
-                pass
