@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import socket
 import sqlite3
 import struct
 import time
@@ -99,3 +100,21 @@ def wait_until(predicate, timeout: float, step: float = 0.05) -> bool:
             return True
         time.sleep(step)
     return bool(predicate())
+
+
+class Inbox:
+    """An aiosmtpd handler that keeps every envelope it is sent (tests of the e-mail sink)."""
+
+    def __init__(self):
+        self.envelopes = []
+
+    async def handle_DATA(self, server, session, envelope):
+        self.envelopes.append(envelope)
+        return "250 OK"
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on right now."""
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]

@@ -38,7 +38,6 @@ import email
 import email.policy
 import json
 import logging
-import socket
 import ssl
 import subprocess
 import threading
@@ -50,6 +49,7 @@ from monitor import store as ms
 from monitor.cli import main
 from monitor.errors import ConfigError
 from monitor.store.outbox import failed_deliveries
+from tests.service_helpers import Inbox, free_port
 
 NOW = pd.Timestamp("2024-06-01T09:00:00Z")
 
@@ -110,21 +110,6 @@ def test_a_hung_webhook_holds_back_no_other_sink(store, httpserver, tmp_path):
 
 
 # ---------------------------------------------------------------- e-mail
-
-class Inbox:
-    def __init__(self):
-        self.envelopes = []
-
-    async def handle_DATA(self, server, session, envelope):
-        self.envelopes.append(envelope)
-        return "250 OK"
-
-
-def free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return sock.getsockname()[1]
-
 
 def test_cr_lf_in_a_series_id_never_reaches_an_email_header(store):
     inbox = Inbox()

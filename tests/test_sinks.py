@@ -20,6 +20,7 @@ from monitor import store as ms
 from monitor.errors import ConfigError
 from monitor.live import sinks as mk
 from monitor.store.outbox import requeue_failed
+from tests.service_helpers import Inbox, free_port
 
 
 NOW = pd.Timestamp("2024-06-01T09:00:00Z")
@@ -119,21 +120,6 @@ def test_unreachable_webhook_and_unknown_sink_are_retried(store):
     assert "no sink named 'pager'" in rows.loc["pager", "last_error"]
     assert rows.loc["ops", "next_attempt_at"] == NOW + pd.Timedelta(seconds=60)
     assert mk._retry_delay(5, 60, 100) == 100              # capped
-
-
-class Inbox:
-    def __init__(self):
-        self.envelopes = []
-
-    async def handle_DATA(self, server, session, envelope):
-        self.envelopes.append(envelope)
-        return "250 OK"
-
-
-def free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return sock.getsockname()[1]
 
 
 @pytest.fixture
