@@ -26,7 +26,9 @@ class EmailSink:
     them no login is attempted. ``tls`` is ``"starttls"`` (upgrade the connection before
     logging in), ``"implicit"`` (TLS from the start, :class:`smtplib.SMTP_SSL`; the default on
     port 465) or ``"none"``; the older ``starttls = true`` means ``tls = "starttls"``.
-    ``ca_file`` is a CA bundle (PEM) trusted besides the system's.
+    ``ca_file`` is a CA bundle (PEM) trusted instead of the system's (for a server with a
+    certificate from an internal CA; :func:`ssl.create_default_context` with ``cafile`` loads
+    no system certificates).
     """
 
     def __init__(self, host: str, port: int, sender: str, recipients: list[str] | str,

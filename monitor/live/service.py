@@ -60,13 +60,15 @@ def config_folder(config: Config) -> Path:
 
 def configured_sinks(config: Config, base: Path) -> dict:
     """``[sinks.*]`` built by :func:`monitor.live.sinks.sinks_from_config`, a log sink's relative
-    ``path`` taken from ``base`` like the sources' paths."""
+    ``path`` and an e-mail sink's relative ``ca_file`` taken from ``base`` like the sources'
+    paths."""
     specs = {}
     for name, spec in (config.section("sinks") or {}).items():
         spec = dict(spec) if isinstance(spec, dict) else spec
-        if isinstance(spec, dict) and "path" in spec \
-                and not Path(spec["path"]).expanduser().is_absolute():
-            spec["path"] = str(base / Path(spec["path"]).expanduser())
+        for key in ("path", "ca_file"):
+            if isinstance(spec, dict) and isinstance(spec.get(key), str) \
+                    and not Path(spec[key]).expanduser().is_absolute():
+                spec[key] = str(base / Path(spec[key]).expanduser())
         specs[name] = spec
     return sinks_from_config(specs)
 
