@@ -299,3 +299,32 @@ def test_replay_page_runs_a_replay_of_a_log(app, tmp_path, monkeypatch):
     assert f"Showing replay output in {plain(str(out))}" in _captions(at)
     summary = json.loads((out / "summary.json").read_text())
     assert summary["settings"]["estimator"]["forgetting"] == 0.98
+
+
+def test_series_detail_says_how_fast_a_change_of_b_shows(seeded, tmp_path, monkeypatch):
+    # issue 12: the series page shows delay50_obs in words, and says when the prices do not
+    # move enough to watch b (beyond monitor.detectability.WATCH_HORIZON_OBS)
+    import shutil
+
+    from monitor.detectability import WATCH_HORIZON_OBS
+    from monitor.store.detection import write_delay50
+
+    db = tmp_path / "store.sqlite"
+    shutil.copy(seeded["path"], db)
+    quick, slow = seeded["series"][1], seeded["series"][2]
+    with mstore.open_store(db) as store:
+        write_delay50(store, {quick: 43.4, slow: 5.2 * WATCH_HORIZON_OBS})
+    monkeypatch.setenv("ELMON_DB", str(db))
+    monkeypatch.setenv("ELMON_TRUTH", seeded["truth"])
+    at = AppTest.from_file(str(APP), default_timeout=30)
+    at.run()
+    at.switch_page("views/series.py")
+    at.query_params["series"] = quick
+    at.run()
+    for series, said, horizon in ((quick, "takes about 43 observations", False),
+                                  (slow, "takes about 5,200 observations", True)):
+        at.selectbox(key="sd_series").set_value(series).run()
+        _no_errors(at)
+        cap = _captions(at)
+        assert "Detectability: At this price variation a change of 0.5 in b " + said in cap
+        assert ("its prices do not move enough to watch b" in cap) is horizon

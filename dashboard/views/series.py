@@ -12,6 +12,7 @@ from dashboard import charts, data, loglog, shaping, ui
 from dashboard.legend import status_label
 from dashboard.safe_text import plain
 from dashboard.shaping import fmt_num, fmt_pct, fmt_timedelta
+from monitor.detectability import delay_text
 
 MAX_DRAWN = 1500
 
@@ -38,6 +39,11 @@ def _headline(row: pd.Series) -> None:
     cols[3].metric("Effective n", fmt_num(row.get("n_eff"), 0))
     if pd.isna(row["beta"]):
         st.caption(f"— means no estimate yet: status {plain(status_label(status))}.")
+    elif "delay50_obs" in row.index:
+        # issue 12: how fast this series can show a changed b at its own price variation
+        text = delay_text(row.get("delay50_obs"))
+        st.caption("Detectability: " + text[0].upper() + text[1:] + " (median delay at the "
+                   "configured false-alarm budget).")
 
 
 def _elasticity(db: str, series: str, hist: pd.DataFrame, row: pd.Series) -> None:

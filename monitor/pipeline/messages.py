@@ -24,6 +24,7 @@ import math
 import numpy as np
 import pandas as pd
 
+from monitor.detectability import delay_text
 from monitor.pipeline.rules import ACTIONS, KINDS
 
 
@@ -125,14 +126,6 @@ def details(kind: str, action: str, r: np.ndarray) -> dict:
     return d
 
 
-def delay_text(delay: float) -> str:
-    """"at this price variation a change of 0.5 in b takes about N observations to detect"."""
-    if delay is None or not math.isfinite(delay):
-        return ("at this price variation a change of 0.5 in b cannot be detected (no price "
-                "variation or no noise estimate yet)")
-    n = int(round(delay, -1)) if delay >= 100 else max(int(round(delay)), 1)
-    return (f"at this price variation a change of 0.5 in b takes about {n:,} observations to "
-            "detect")
 
 
 def _split_change_text(series: str, r: np.ndarray, at: str, since: str, now: str) -> str:
