@@ -186,6 +186,17 @@ _ALERT_VERDICTS = [
         who TEXT, at TEXT NOT NULL, note TEXT)""",
 ]
 
+_SERIES_RESETS = [
+    # issue 14: `elmon series reset NAME` forgets a series' estimator, detector and gate
+    # state (its checkpoint); every reset is recorded here with who, why and the checkpoint
+    # state it replaced, and the stored history (observations, estimates, alerts) stays
+    """CREATE TABLE series_resets (
+        id INTEGER PRIMARY KEY AUTOINCREMENT,
+        series TEXT NOT NULL, at TEXT NOT NULL, who TEXT NOT NULL, why TEXT NOT NULL,
+        last_ts TEXT, before_state TEXT)""",
+    "CREATE INDEX series_resets_series ON series_resets (series, id)",
+]
+
 #: Ordered migrations: (id, name, steps). A step is SQL text or a callable taking the sqlite3
 #: connection (run inside the migration's transaction). Append only.
 MIGRATIONS: list[tuple[int, str, list]] = [
@@ -195,6 +206,7 @@ MIGRATIONS: list[tuple[int, str, list]] = [
     (4, "change alert columns", _CHANGE_COLUMNS),
     (5, "bounds in effect", _BOUNDS_IN_EFFECT),
     (6, "alert verdicts", _ALERT_VERDICTS),
+    (7, "series resets", _SERIES_RESETS),
 ]
 
 #: The schema version this code expects (the id of the last migration).
@@ -204,4 +216,4 @@ SCHEMA_VERSION = MIGRATIONS[-1][0]
 #: latest_estimates and sparklines).
 TABLES = ("series", "observations", "rejects", "estimates", "latest_estimates", "sparklines",
           "alerts", "alert_events", "checkpoints", "source_offsets", "outbox", "silences",
-          "series_attributes", "alert_members", "migrations")
+          "series_attributes", "alert_members", "series_resets", "migrations")
