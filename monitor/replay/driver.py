@@ -153,7 +153,8 @@ class Accumulator:
             alerts, opened = alerts.iloc[order].reset_index(drop=True), opened.iloc[order].reset_index(drop=True)
         else:
             alerts = pd.DataFrame({c: pd.Series(dtype=object) for c in ALERT_OUT_COLUMNS})
-            opened = pd.DataFrame({"series": [], "ts": np.zeros(0, np.int64), "rule": []})
+            opened = pd.DataFrame({"series": [], "ts": np.zeros(0, np.int64), "rule": [],
+                                   "change_ts": []})
         w = TableWriter(self.out_dir / "alerts.csv", SCHEMAS["alerts"])
         w.write(alerts)
         w.close()

@@ -154,7 +154,7 @@ class Partial:
 
     estimates: pa.Table           # estimates.csv rows (sampled)
     alerts: pd.DataFrame
-    opened: pd.DataFrame          # series, ts (int64 ns), rule: alerts opened (detection)
+    opened: pd.DataFrame          # series, ts (int64 ns), rule, change_ts: alerts opened (detection)
     rejects: pd.DataFrame
     final: pd.DataFrame           # index series: ts (ns), FINAL_FIELDS, status, n
     rows: int
@@ -224,9 +224,14 @@ def partial_of(res: ChunkResult, setup: Setup, carried: CarriedState) -> Partial
     keep = sample_mask(res.sid, res.status, ev_rows, setup.sample_every, carried)
     estimates = estimates_table(good, res.out, res.status, None if keep.all() else np.flatnonzero(keep))
     alerts = res.alerts
+    # the estimated change time each alert carries (ISO text, None where it has none: the
+    # previous charts' alerts) goes with it, so detection.csv scores the change-time error
     opened = pd.DataFrame({"series": alerts["series"].to_numpy(dtype=object),
                            "ts": _ts_of_events(good, res.events),
-                           "rule": alerts["rule"].to_numpy(dtype=object)})
+                           "rule": alerts["rule"].to_numpy(dtype=object),
+                           "change_ts": (alerts["change_ts"].to_numpy(dtype=object)
+                                         if "change_ts" in alerts.columns
+                                         else np.full(len(alerts), None, dtype=object))})
     rejects = v.rejects[REJECT_OUT_COLUMNS] if len(v.rejects) else \
         pd.DataFrame({c: pd.Series(dtype=object) for c in REJECT_OUT_COLUMNS})
     final = _final(good, res, None if carried.states is None else
