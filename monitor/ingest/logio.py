@@ -27,14 +27,19 @@ from monitor.errors import SourceError
 
 
 DEFAULT_COLUMNS = {"series": "series", "ts": "ts", "price": "price", "quantity": "quantity"}
-#: ``[columns]``: the log's column name of each field (the schema :mod:`monitor.settings` composes)
-COLUMNS_KEYS = {name: (str, column) for name, column in DEFAULT_COLUMNS.items()}
+#: ``[columns]``: the log's column name of each field, and how its text is written:
+#: ``ts_format`` (a strftime format of the timestamps, e.g. ``"%d/%m/%Y"``; empty = ISO 8601 or
+#: epoch seconds); the schema :mod:`monitor.settings` composes
+COLUMNS_KEYS = {**{name: (str, column) for name, column in DEFAULT_COLUMNS.items()},
+                "ts_format": (str, "")}
 SECTIONS = {"columns": COLUMNS_KEYS}
 
 
 def column_names(config) -> dict[str, str]:
-    """``[columns]`` of a :class:`monitor.sections.Config` with the defaults filled."""
-    return {**DEFAULT_COLUMNS, **config.section("columns")}
+    """The column-name part of ``[columns]`` of a :class:`monitor.sections.Config`, defaults
+    filled (``ts_format`` and other format keys left out)."""
+    sec = config.section("columns")
+    return {name: sec.get(name, column) for name, column in DEFAULT_COLUMNS.items()}
 
 
 def log_format(path: str | os.PathLike) -> str:

@@ -1,7 +1,8 @@
 """The one-observation path of :meth:`monitor.live.monitor.Monitor.observe`, without data frames.
 
 A call whose values are plainly valid (a known series, a newer timestamp in a strict ISO 8601
-or epoch-seconds form, finite positive numbers, every configured control) is validated, run
+or epoch-seconds form, numbers inside ``[validation] min_value .. max_value``, every configured
+control) is validated, run
 through the pipeline and committed here in well under a millisecond of Python; anything else
 (a new series, a value to reject, a zero quantity, an unusual timestamp form) returns
 :data:`NOT_PLAIN` and goes through the general batch path, which judges and words it. Both
@@ -21,7 +22,7 @@ import pandas as pd
 from monitor.estimators import kernel as K
 from monitor.estimators.transform import design_matrix
 from monitor.live.batch import NAT, alert_changes
-from monitor.rows.validate import ordered_checks
+from monitor.rows.validate import TS_MAX_NS, TS_MIN_NS, ordered_checks
 from monitor.store import to_json, wall_ts
 from monitor.store.detection import write_delay50
 from monitor.store.live import write_one
@@ -66,8 +67,8 @@ def plain_ns(ts) -> int | None:
         return ns
     if isinstance(ts, Real) and not isinstance(ts, (bool, np.bool_)):
         v = float(ts)
-        if not (math.isfinite(v) and abs(v) < 1e11):
-            return None
+        if not (math.isfinite(v) and TS_MIN_NS / 1e9 <= v <= TS_MAX_NS / 1e9):
+            return None                      # out of range: the batch path rejects it
         return int(np.round(np.array([v]) * 1e9).astype(np.int64)[0])
     if isinstance(ts, pd.Timestamp) or hasattr(ts, "isoformat") and hasattr(ts, "tzinfo"):
         try:
@@ -94,8 +95,10 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
         return NOT_PLAIN
     gi, vi = mon.gate.index.get(series), mon._index.get(series)
     p, q, ns = _number(price), _number(quantity), plain_ns(ts)
-    if gi is None or vi is None or p is None or q is None or ns is None or p <= 0 or q <= 0:
-        return NOT_PLAIN
+    lo, hi = mon.validation.min_value, mon.validation.max_value
+    if gi is None or vi is None or p is None or q is None or ns is None \
+            or not (lo <= p <= hi and lo <= q <= hi):
+        return NOT_PLAIN                     # outside the accepted range: worded by the batch path
     if ns <= mon._last_obs.get(series, NAT):
         return NOT_PLAIN                     # a repeat or late row: the general path words it
     if ns > int(mon.clock_ns()) + int(mon.validation.max_future_s * 1e9):
@@ -103,7 +106,8 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
     values = {}
     for name in mon._controls:
         v = _number(controls.get(name)) if name in controls else None
-        if v is None or (name in mon.estimator.log_controls and v <= 0):
+        if v is None or abs(v) > hi or (name in mon.estimator.log_controls
+                                         and not lo <= v <= hi):
             return NOT_PLAIN
         values[name] = v
     gate = mon.gate

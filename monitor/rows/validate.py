@@ -4,12 +4,19 @@ Used by every input path (replay, ``elmon ingest``, the service's sources, ``Mon
 Checks, in order, each giving one reason per row (the first that fails):
 
 - ``series``: empty field;
-- ``ts``: empty, unparsable (ISO 8601 with offset or Z, naive = UTC, or epoch seconds), or in
-  the future beyond ``max_future_s`` (only when a reference time ``now`` is given);
-- ``price``, ``quantity`` and each named control: empty, not a number, NaN, infinity;
-  price <= 0; quantity < 0; quantity == 0 (zero policy: ``reject`` quarantines it, ``skip``
-  counts it and keeps it out of the estimator, ``keep`` passes it on for a model that takes
-  zero quantities as data); a logged control <= 0;
+- ``ts``: empty, unparsable (ISO 8601 with offset or Z, naive = UTC, or epoch seconds; or the
+  stated ``ts_format``), a date or time field out of range (2024-02-30, hour 25), a word
+  (``now``, ``today``: the wall clock is never taken for a row's time), outside the supported
+  range :data:`TS_MIN` .. :data:`TS_MAX` (times are int64 nanoseconds since 1970, which end in
+  1677 and 2262; a year 9999 is rejected, never wrapped), or in the future beyond
+  ``max_future_s`` (only when a reference time ``now`` is given);
+- ``price``, ``quantity`` and each named control: empty, not a number, NaN, infinity (a
+  literal or a number beyond float64); price <= 0; quantity < 0; price or a non-zero quantity
+  outside ``[min_value, max_value]`` (1e-9 .. 1e12: a subnormal or a 1e300 is a corrupt field,
+  and its log would dominate every estimate); a control beyond ``max_value`` in size; quantity
+  == 0 (zero policy: ``reject`` quarantines it, ``skip`` counts it and keeps it out of the
+  estimator, ``keep`` passes it on for a model that takes zero quantities as data); a logged
+  control (an exposure) <= 0 or outside ``[min_value, max_value]``; ``-0.0`` is zero;
 - per series, in time order, against state carried across batches (:class:`SeriesGate`):
   a duplicate (same series and timestamp as the latest or one of the last 15 accepted rows;
   ``keep_first`` keeps the first and quarantines later copies); a row older than the series' last accepted time by more than ``allowed_lateness_s``;
@@ -36,6 +43,23 @@ WINDOW = 15          # recent accepted prices kept per series for the unit check
 MIN_HISTORY = 2      # accepted prices needed before the unit check uses the series' history
 MIN_BATCH = 5        # time-ordered batches: rows of a new series that give a batch median
 
+#: the supported time range (ISO 8601 UTC): int64 ns since 1970 reach 1677-09-21 .. 2262-04-11;
+#: whole years inside that are accepted, anything outside is rejected (never wrapped)
+TS_MIN, TS_MAX = "1678-01-01T00:00:00Z", "2261-12-31T23:59:59Z"
+TS_MIN_NS = int(np.datetime64(TS_MIN[:-1], "ns").astype(np.int64))
+TS_MAX_NS = int(np.datetime64("2262-01-01T00:00:00", "ns").astype(np.int64)) - 1
+#: words pandas would read as the wall clock
+TS_WORDS = frozenset({"now", "today", "yesterday", "tomorrow"})
+TS_RANGE_RULE = (f"timestamp outside the supported range {TS_MIN} .. {TS_MAX} (times are "
+                 f"int64 nanoseconds since 1970-01-01)")
+TS_WORD_RULE = ("unparsable timestamp: a word, not a time (a row's time is never taken from "
+                "the clock; write ISO 8601 or epoch seconds)")
+TS_FIELD_RULE = ("unparsable timestamp: no such date or time (a month, day, hour, minute or "
+                 "second out of range)")
+TS_UNPARSABLE_RULE = "unparsable timestamp (expected ISO 8601 or epoch seconds)"
+_ISO_SHAPE = (r"^[+-]?\d{4,}-\d{1,2}-\d{1,2}([T ]\d{1,2}(:\d{1,2}(:\d{1,2}([.,]\d+)?)?)?)?"
+              r"\s*(Z|[+-]\d{2}(:?\d{2})?)?$")
+
 
 @dataclass(frozen=True)
 class ValidationSettings:
@@ -48,6 +72,9 @@ class ValidationSettings:
     unit_ratio: float = 50.0
     key: tuple = ()                        # [series] key: 2+ columns make a composite id
     order: str = "auto"                    # auto | time | arrival (see monitor.rows.prepare)
+    min_value: float = 1e-9                # price, non-zero quantity, logged control: >= this
+    max_value: float = 1e12                # ... and <= this; a control's size <= this
+    ts_format: str = ""                    # strftime format of text timestamps ("" = ISO 8601)
 
     def __post_init__(self):
         if self.zero_policy not in ("reject", "skip", "keep"):
@@ -62,13 +89,23 @@ class ValidationSettings:
                 raise ConfigError(f"{name} = {getattr(self, name)!r}: must be >= 0")
         if not self.unit_ratio > 1:
             raise ConfigError(f"unit_ratio = {self.unit_ratio!r}: must be > 1")
+        if not (0 < self.min_value < self.max_value < math.inf):
+            raise ConfigError(f"min_value = {self.min_value!r}, max_value = {self.max_value!r}: "
+                              f"must be finite with 0 < min_value < max_value")
+        if self.min_value < np.finfo(np.float64).tiny:
+            raise ConfigError(f"min_value = {self.min_value!r}: must be at least "
+                              f"{np.finfo(np.float64).tiny!r} (no subnormal numbers)")
+        if self.ts_format and "%" not in self.ts_format:
+            raise ConfigError(f"ts_format = {self.ts_format!r}: must be a strftime format with "
+                              f"% codes, for example '%d/%m/%Y' or '%d/%m/%Y %H:%M'")
 
 
 #: ``[validation]`` keys: (type, default), the schema :mod:`monitor.settings` composes
 VALIDATION_KEYS = {"zero_policy": (str, "reject"), "duplicate_policy": (str, "keep_first"),
                    "allowed_lateness_s": ((int, float), 0.0),
                    "max_future_s": ((int, float), 3600.0), "unit_ratio": ((int, float), 50.0),
-                   "order": (str, "auto")}
+                   "order": (str, "auto"), "min_value": ((int, float), 1e-9),
+                   "max_value": ((int, float), 1e12)}
 SECTIONS = {"validation": VALIDATION_KEYS}
 
 
@@ -79,7 +116,8 @@ def validation_from_config(cfg) -> ValidationSettings:
     sec = dict(cfg.section("validation"))
     if cfg.section("estimator").get("model") == "poisson":
         sec["zero_policy"] = "keep"           # zero quantities are data for the Poisson model
-    return ValidationSettings(**sec, key=key)
+    ts_format = cfg.section("columns").get("ts_format") or ""    # the log's own time format
+    return ValidationSettings(**sec, key=key, ts_format=ts_format)
 
 
 @dataclass
@@ -125,29 +163,97 @@ def parse_numbers(col: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     return v, bad
 
 
-def parse_timestamps(col: pd.Series) -> np.ndarray:
-    """int64 ns since the epoch, UTC; ``INT64_MIN`` where unparsable or empty."""
+def parse_timestamps(col: pd.Series, ts_format: str = "") -> np.ndarray:
+    """int64 ns since the epoch, UTC; ``INT64_MIN`` where empty, unparsable or out of range
+    (:func:`read_timestamps` says why)."""
+    return read_timestamps(col, ts_format)[0]
+
+
+def _in_range(t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """ns of datetime64 values (any unit) and a mask of those inside TS_MIN .. TS_MAX, checked
+    in the values' own unit so nothing wraps on the way to nanoseconds."""
     nat = np.iinfo(np.int64).min
+    t = np.asarray(t)
+    unit = np.datetime_data(t.dtype)[0]
+    lo = np.datetime64(TS_MIN_NS, "ns").astype(f"datetime64[{unit}]")
+    hi = np.datetime64(TS_MAX_NS, "ns").astype(f"datetime64[{unit}]")
+    ok = ~np.isnat(t) & (t >= lo) & (t <= hi)
+    out = np.full(t.shape, nat, dtype=np.int64)
+    out[ok] = t[ok].astype("datetime64[ns]").view(np.int64)
+    return out, ok
+
+
+def read_timestamps(col: pd.Series, ts_format: str = "") -> tuple[np.ndarray, np.ndarray]:
+    """Timestamps as int64 ns since 1970 UTC, and why each one that failed did.
+
+    Text is ISO 8601 (an offset or ``Z``; naive is UTC) or, with ``ts_format``, that strftime
+    format (naive is UTC; ``%z`` for an offset); numbers (or number text) are epoch seconds.
+    Datetime columns (Parquet) are taken as they are, naive as UTC.
+
+    Returns
+    -------
+    ns : int64 array
+        ``INT64_MIN`` where the field is empty or failed.
+    why : object array
+        ``None``, or the rule a present field broke: :data:`TS_UNPARSABLE_RULE` (or the format
+        it does not match), :data:`TS_FIELD_RULE`, :data:`TS_WORD_RULE`,
+        :data:`TS_RANGE_RULE`.
+    """
+    nat = np.iinfo(np.int64).min
+    n = len(col)
+    why = np.full(n, None, dtype=object)
     if isinstance(col.dtype, pd.DatetimeTZDtype) or pd.api.types.is_datetime64_dtype(col):
-        t = pd.to_datetime(col, utc=True)
-        return t.to_numpy(dtype="datetime64[ns]").view(np.int64).copy()
+        t = pd.to_datetime(col, utc=True).dt.tz_localize(None).to_numpy()
+        out, ok = _in_range(t)
+        why[~ok & ~np.isnat(t)] = TS_RANGE_RULE
+        return out, why
+    lo_s, hi_s = TS_MIN_NS / 1e9, TS_MAX_NS / 1e9
     if pd.api.types.is_numeric_dtype(col):
         v = col.to_numpy(dtype=np.float64, na_value=np.nan)
-        out = np.full(len(v), nat, dtype=np.int64)
-        ok = np.isfinite(v) & (np.abs(v) < 1e11)
+        out = np.full(n, nat, dtype=np.int64)
+        ok = np.isfinite(v) & (v >= lo_s) & (v <= hi_s)
         out[ok] = np.round(v[ok] * 1e9).astype(np.int64)
-        return out
+        why[~ok & ~np.isnan(v)] = TS_RANGE_RULE
+        return out, why
     s = col.astype("string").str.strip()
     num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
-    out = np.full(len(s), nat, dtype=np.int64)
-    is_num = np.isfinite(num) & (np.abs(num) < 1e11)
-    out[is_num] = np.round(num[is_num] * 1e9).astype(np.int64)
+    out = np.full(n, nat, dtype=np.int64)
+    is_num = ~np.isnan(num)
+    ok = is_num & (num >= lo_s) & (num <= hi_s)
+    out[ok] = np.round(num[ok] * 1e9).astype(np.int64)
+    why[is_num & ~ok] = TS_RANGE_RULE
     rest = ~is_num & ~_is_blank(col)
     if rest.any():
-        t = pd.to_datetime(s[rest], utc=True, errors="coerce", format="ISO8601")
-        vals = t.to_numpy(dtype="datetime64[ns]").view(np.int64)
-        out[np.flatnonzero(rest)] = vals
-    return out
+        text = s[rest]
+        word = text.str.lower().isin(TS_WORDS).to_numpy(dtype=bool, na_value=False)
+        idx = np.flatnonzero(rest)
+        why[idx[word]] = TS_WORD_RULE
+        idx, text = idx[~word], text[~word]
+        if ts_format:
+            t = pd.to_datetime(text, format=ts_format, utc=True, errors="coerce")
+        else:
+            t = pd.to_datetime(text, utc=True, errors="coerce", format="ISO8601")
+        vals, good = _in_range(t.dt.tz_localize(None).to_numpy())
+        out[idx[good]] = vals[good]
+        failed = t.isna().to_numpy(dtype=bool)
+        why[idx[~good & ~failed]] = TS_RANGE_RULE
+        if failed.any():
+            bad = idx[failed]
+            if ts_format:
+                why[bad] = (f"timestamp does not match the stated format {ts_format!r} "
+                            f"(--ts-format / [columns] ts_format)")
+            else:
+                shaped = text[failed].str.match(_ISO_SHAPE).to_numpy(dtype=bool, na_value=False)
+                why[bad] = np.where(shaped, TS_FIELD_RULE, TS_UNPARSABLE_RULE)
+                # a year beyond 4 digits or one pandas cannot hold is out of range, not a typo
+                years = text[failed].str.extract(r"^([+-]?\d{4,})-", expand=False)
+                far = years.notna().to_numpy() & shaped
+                if far.any():
+                    y = pd.to_numeric(years[far], errors="coerce").to_numpy(dtype=np.float64)
+                    outside = (y < 1678) | (y > 2261)
+                    sel = bad[np.flatnonzero(far)[outside]]
+                    why[sel] = TS_RANGE_RULE
+    return out, why
 
 
 class SeriesGate:
@@ -187,10 +293,13 @@ class SeriesGate:
                 "ring_ts": self.ring_ts[i].tolist(), "count": int(self.count[i])}
 
     def restore(self, series: str, state: dict) -> None:
+        """Set one series' state from :meth:`state_of`'s dict; a dict without ``ring`` (a reset
+        series: only ``last_ts``, ``count = 0``) starts the recent prices afresh."""
         i = self.ids(np.array([series], dtype=object))[0]
-        self.last_ts[i] = int(state["last_ts"])
-        self.ring[i] = np.asarray(state["ring"], dtype=np.float64)
-        self.ring_ts[i] = np.asarray(state["ring_ts"], dtype=np.int64)
+        last = state.get("last_ts")
+        self.last_ts[i] = np.iinfo(np.int64).min if last is None else int(last)
+        self.ring[i] = np.asarray(state.get("ring", np.zeros(WINDOW)), dtype=np.float64)
+        self.ring_ts[i] = np.asarray(state.get("ring_ts", np.zeros(WINDOW)), dtype=np.int64)
         self.count[i] = int(state["count"])
 
 
@@ -322,25 +431,41 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     for col in (settings.key if keys is not None else ()):
         flag(keys.blank[col], col, EMPTY_PART_RULE)
     flag(_is_blank(series), "series", "empty field")
-    ts = parse_timestamps(frame["ts"])
+    ts, ts_why = read_timestamps(frame["ts"], settings.ts_format)
     nat = np.iinfo(np.int64).min
     flag(_is_blank(frame["ts"]), "ts", "empty field")
-    flag(ts == nat, "ts", "unparsable timestamp (expected ISO 8601 or epoch seconds)")
+    for text in pd.unique(ts_why[ts_why != None]):    # noqa: E711 (object array)
+        flag(ts_why == text, "ts", text)
+    flag(ts == nat, "ts", TS_UNPARSABLE_RULE)
     if now_ns is not None:
         flag((ts != nat) & (ts > now_ns + int(settings.max_future_s * 1e9)), "ts",
              f"timestamp in the future by more than {settings.max_future_s:g} s")
     values = {}
+    lo, hi = settings.min_value, settings.max_value
+    limits = f"[{lo:g}, {hi:g}] ([validation] min_value, max_value)"
     for c in ["price", "quantity"] + list(controls) + list(log_controls):
         v, unparsable = parse_numbers(frame[c])
         flag(_is_blank(frame[c]), c, "empty field")
         flag(unparsable, c, "not a number")
         flag(np.isnan(v), c, "NaN is not a value")
-        flag(np.isinf(v), c, "infinity is not a value")
+        if np.isinf(v).any():
+            word = _inf_words(frame[c])
+            flag(np.isinf(v) & word, c, "infinity is not a value")
+            flag(np.isinf(v), c, "number beyond the float64 range (it overflows to infinity)")
         values[c] = v
-    flag(values["price"] <= 0, "price", "price must be > 0")
-    flag(values["quantity"] < 0, "quantity", "quantity must be >= 0")
+    price, qty = values["price"], values["quantity"]
+    flag(price <= 0, "price", "price must be > 0")
+    flag(qty < 0, "quantity", "quantity must be >= 0")
+    flag((price < lo) | (price > hi), "price", f"price outside the accepted range {limits}")
+    flag((qty != 0) & ((qty < lo) | (qty > hi)), "quantity",
+         f"quantity outside the accepted range {limits}")
     for c in log_controls:
         flag(values[c] <= 0, c, "a control entered in logs must be > 0")
+        flag((values[c] < lo) | (values[c] > hi), c,
+             f"a control entered in logs outside the accepted range {limits}")
+    for c in controls:
+        flag(np.abs(values[c]) > hi, c, f"a control beyond +-{hi:g} in size ([validation] "
+                                        f"max_value)")
     zero = (values["quantity"] == 0) & ~flagged
     if settings.zero_policy == "reject":
         flag(zero, "quantity", "zero quantity cannot be logged (zero_policy = reject)")
@@ -394,6 +519,20 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     zero_frame = pd.DataFrame({"row": rows[zi], "series": series.iloc[zi].to_numpy(dtype=object),
                                "ts": ts[zi]})
     return Validated(good=good.reset_index(drop=True), rejects=rejects, zero_skipped=zero_frame)
+
+
+def _inf_words(col: pd.Series) -> np.ndarray:
+    """Fields written as infinity (``inf``, ``-Infinity``, a float inf), as against a number
+    too large for float64 (``1e309``)."""
+    if pd.api.types.is_float_dtype(col):
+        return np.isinf(col.to_numpy(dtype=np.float64))
+    if col.dtype == object:
+        floats = np.fromiter((isinstance(v, float) and math.isinf(v) for v in col), dtype=bool,
+                             count=len(col))
+    else:
+        floats = np.zeros(len(col), dtype=bool)
+    low = col.astype("string").str.strip().str.lower().str.lstrip("+-")
+    return floats | low.isin(["inf", "infinity"]).to_numpy(dtype=bool, na_value=False)
 
 
 def _cell(v) -> str:
