@@ -23,6 +23,7 @@ COMMAND_MODULES = (
     "monitor.cli.store_cmd",
     "monitor.cli.alerts_cmd",
     "monitor.cli.service_cmd",
+    "monitor.cli.series_cmd",
     "monitor.cli.tune_cmd",
     "monitor.cli.dashboard_cmd",
     "monitor.cli.demo_cmd",

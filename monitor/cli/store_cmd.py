@@ -17,7 +17,8 @@ from monitor.cli import HelpFormatter
 from monitor.errors import ConfigError
 
 
-def _who(name: str | None) -> str:
+def who_or_login(name: str | None) -> str:
+    """``name``, else the login name (``unknown`` when there is none)."""
     if name:
         return name
     try:
@@ -196,7 +197,7 @@ def cmd_alerts_ack(args) -> int:
     from monitor import store as mstore
 
     with mstore.open_store(args.db) as store:
-        alert = mstore.acknowledge_alert(store, args.id, note=args.note, who=_who(args.who))
+        alert = mstore.acknowledge_alert(store, args.id, note=args.note, who=who_or_login(args.who))
     print(f"elmon alerts: alert {alert['id']} ({alert['series']}, {alert['kind']}) acknowledged")
     return 0
 
@@ -205,7 +206,7 @@ def cmd_alerts_resolve(args) -> int:
     from monitor import store as mstore
 
     with mstore.open_store(args.db) as store:
-        alert = mstore.resolve_alert(store, args.id, note=args.note, who=_who(args.who))
+        alert = mstore.resolve_alert(store, args.id, note=args.note, who=who_or_login(args.who))
     print(f"elmon alerts: alert {alert['id']} ({alert['series']}, {alert['kind']}) resolved")
     return 0
 
@@ -214,7 +215,7 @@ def cmd_alerts_note(args) -> int:
     from monitor import store as mstore
 
     with mstore.open_store(args.db) as store:
-        mstore.add_note(store, args.id, args.note, who=_who(args.who))
+        mstore.add_note(store, args.id, args.note, who=who_or_login(args.who))
     print(f"elmon alerts: note added to alert {args.id}")
     return 0
 
@@ -224,7 +225,7 @@ def cmd_alerts_silence(args) -> int:
 
     with mstore.open_store(args.db) as store:
         sid = mstore.silence(store, args.series, args.kind, args.until or args.duration,
-                             note=args.note, who=_who(args.who))
+                             note=args.note, who=who_or_login(args.who))
         until = mstore.list_silences(store, active_only=False).set_index("id").loc[sid, "until"]
     print(f"elmon alerts: silence {sid} for series {args.series!r}, kind {args.kind!r} "
           f"until {mstore.wall_ts(until)}")

@@ -4,7 +4,9 @@ A series' checkpoint (``checkpoints.state``, JSON, written in the same transacti
 batch that produced it)::
 
     {"pipeline": [...],        # Pipeline.state_to_json(vector): estimator + detectors + rules
+                               # (null after `elmon series reset`: a new series' state)
      "gate": {"last_ts", "ring", "ring_ts", "count"},   # SeriesGate: duplicates, lateness, units
+                               # (after a reset only last_ts and count = 0)
      "updates": n,             # estimator updates so far (estimate thinning counts from it)
      "last_status": "ok",      # status of the last update (thinning keeps status changes)
      "last_obs_ns": t,         # newest observation time, zero-quantity rows included
@@ -56,10 +58,13 @@ def restore(mon) -> None:
     mon._updates, mon._last_status, mon._last_obs, mon._zero = {}, {}, {}, {}
     for series, cp in sorted(load_checkpoints(mon.store).items()):
         st = cp.state
-        try:
-            vec = vector_from_json(mon.pipeline, st["pipeline"])
-        except (ConfigError, ValidationError) as exc:
-            raise _changed_model(series, str(exc)) from None
+        if st.get("pipeline") is None:        # reset (elmon series reset): a new series' state
+            vec = mon.pipeline.new_states(1)[0]
+        else:
+            try:
+                vec = vector_from_json(mon.pipeline, st["pipeline"])
+            except (ConfigError, ValidationError) as exc:
+                raise _changed_model(series, str(exc)) from None
         if vec.shape != (mon._width,):
             raise _changed_model(series, f"a state of length {vec.size}, this configuration "
                                          f"needs {mon._width}")

@@ -17,6 +17,7 @@ import pandas as pd
 
 from monitor.errors import StoreError
 from monitor.store import Store, from_json, parse_ts, wall_ts
+from monitor.store.core import accepts_path
 from monitor.store.alerts import apply_alert_change
 # the store's own statements, so the single-row writer cannot drift from write_batch's SQL
 from monitor.store.batch import (INSERT_EST, INSERT_OBS, UPSERT_LATEST, UPSERT_OFFSET,
@@ -64,6 +65,58 @@ def reset_source(store: Store, source: str) -> bool:
         cur = store.execute("UPDATE source_offsets SET position = NULL, last_error = NULL "
                             "WHERE source = ?", (source,))
     return cur.rowcount > 0
+
+
+def reset_series(store: Store, series: str, who: str, why: str) -> dict:
+    """Forget a series' estimator, detector and validation state; the caller holds the writer
+    lock (``elmon series reset``).
+
+    The checkpoint keeps only what keeps time order and duplicate detection: the newest
+    observation time (a row not newer than it is still late or a duplicate). The estimator,
+    the detectors and the recent prices of the unit check start afresh at the next row, as for
+    a new series. Observations, estimates, alerts and rejects stay stored. The reset is
+    recorded in ``series_resets`` with ``who``, ``why`` and the replaced checkpoint state.
+
+    Returns the ``series_resets`` row. Raises :class:`StoreError` for a series the store does
+    not know, or an empty ``who`` / ``why``.
+    """
+    if not str(why or "").strip() or not str(who or "").strip():
+        raise StoreError(f"reset of series {series!r}: give who and why (they are recorded)")
+    rows = store.rows("SELECT state, last_ts, last_pos FROM checkpoints WHERE series = ?",
+                      (series,))
+    if not rows:
+        known = store.scalar("SELECT count(*) FROM checkpoints")
+        raise StoreError(f"no series {series!r} in the store ({known} series have state; "
+                         f"names are exact, e.g. as 'elmon status --json' lists them)")
+    before = rows[0]
+    state = from_json(before["state"]) or {}
+    gate = state.get("gate") or {}
+    fresh = {"pipeline": None,                 # a new series' state at the next row
+             "gate": {"last_ts": gate.get("last_ts"), "count": 0} if gate else None,
+             "updates": 0, "last_status": None,
+             "last_obs_ns": state.get("last_obs_ns"),
+             "zero_skipped": state.get("zero_skipped", 0)}
+    now = wall_ts()
+    with store.atomic():
+        store.execute("UPDATE checkpoints SET state = ?, updated_at = ? WHERE series = ?",
+                      (json.dumps(fresh), now, series))
+        cur = store.execute("INSERT INTO series_resets (series, at, who, why, last_ts, "
+                            "before_state) VALUES (?, ?, ?, ?, ?, ?)",
+                            (series, now, str(who), str(why), before["last_ts"],
+                             before["state"]))
+    return {"id": cur.lastrowid, "series": series, "at": now, "who": str(who), "why": str(why),
+            "last_ts": before["last_ts"]}
+
+
+@accepts_path(readonly=True)
+def list_series_resets(store: Store, series: str | None = None) -> pd.DataFrame:
+    """Recorded series resets, newest first (``before_state`` left out)."""
+    sql = "SELECT id, series, at, who, why, last_ts FROM series_resets"
+    params: tuple = ()
+    if series is not None:
+        sql += " WHERE series = ?"
+        params = (series,)
+    return store.frame(sql + " ORDER BY id DESC", params)
 
 
 def record_source_error(store: Store, source: str, kind: str, message: str | None) -> None:
