@@ -51,17 +51,42 @@ def hint(field: str | None, value: str | None) -> str:
     """Advice for the first rejected value's common causes ('' when none applies).
 
     >>> hint("ts", "13/01/2023")
-    ' Day-first or slashed dates are not read: write ts as ISO 8601 (2023-01-13 or 2023-01-13T00:00:00Z) or epoch seconds.'
+    " Day-first or slashed dates are not read as ISO 8601: state their format with --ts-format '%d/%m/%Y' (or [columns] ts_format), or write ts as ISO 8601 (2023-01-13 or 2023-01-13T00:00:00Z) or epoch seconds."
+    >>> "--ts-format '%d.%m.%y %H:%M' " in hint("ts", "21.02.23 10:30")
+    True
     >>> hint("price", "3,40")
     ' A decimal comma is not read: write 3.40.'
     """
     v = "" if value is None else str(value)
     if field == "ts" and _DAY_FIRST.match(v):
-        return (" Day-first or slashed dates are not read: write ts as ISO 8601 (2023-01-13 or "
-                "2023-01-13T00:00:00Z) or epoch seconds.")
+        return (f" Day-first or slashed dates are not read as ISO 8601: state their format with "
+                f"--ts-format {guess_format(v)} (or [columns] ts_format), or write ts as ISO 8601 "
+                f"(2023-01-13 or 2023-01-13T00:00:00Z) or epoch seconds.")
     if field in ("price", "quantity") and re.fullmatch(r"\s*-?\d+,\d+\s*", v):
         return f" A decimal comma is not read: write {v.strip().replace(',', '.')}."
     return ""
+
+
+def guess_format(value: str) -> str:
+    """The ``--ts-format`` a dotted, slashed or dashed date most likely has, quoted for a shell
+    (day first unless the second number cannot be a month; both when either could be).
+
+    >>> guess_format("13/01/2023"), guess_format("01/13/2023"), guess_format("01-02-2023")
+    ("'%d/%m/%Y'", "'%m/%d/%Y'", "'%d-%m-%Y' (day first) or '%m-%d-%Y' (month first)")
+    """
+    m = re.match(r"^\s*(\d{1,2})([./-])(\d{1,2})[./-](\d{2,4})(?:[ T](\d{1,2}:\d{2}(:\d{2})?))?",
+                 value)
+    if m is None:
+        return "'%d/%m/%Y'"
+    a, sep, b, year, clock, secs = m.groups()
+    tail = (" %H:%M:%S" if secs else " %H:%M") if clock else ""
+    y = "%Y" if len(year) == 4 else "%y"
+    day_first, month_first = f"'%d{sep}%m{sep}{y}{tail}'", f"'%m{sep}%d{sep}{y}{tail}'"
+    if int(b) > 12:
+        return month_first
+    if int(a) > 12:
+        return day_first
+    return f"{day_first} (day first) or {month_first} (month first)"
 
 
 def check(command: str, rows: int, rejected: int, first: dict | None, limit: float,

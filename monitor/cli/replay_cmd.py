@@ -68,6 +68,9 @@ def add_common_options(p: argparse.ArgumentParser) -> None:
     for col in ("ts", "price", "quantity"):
         p.add_argument(f"--{col}-col", dest=f"{col}_col", metavar="NAME",
                        help=f"name of the {col} column in the log (default '{col}')")
+    p.add_argument("--ts-format", dest="ts_format", metavar="FORMAT",
+                   help="strftime format of the timestamps, e.g. '%%d/%%m/%%Y' for day-first "
+                        "dates (default: ISO 8601 or epoch seconds; [columns] ts_format)")
     p.add_argument("--group-col", dest="group_col", action="append", metavar="NAME",
                    help="attribute whose values group the series (repeatable): a key column or "
                         "a column of [series] attributes; adds pooled estimates and group alerts")
@@ -124,7 +127,8 @@ def config_from_args(args) -> "object":
     cfg = cfg.with_overrides("validation", zero_policy=args.zero_policy)
     series_cols = list(args.series_col or [])
     cfg = cfg.with_overrides("columns", series=series_cols[0] if len(series_cols) == 1 else None,
-                             ts=args.ts_col, price=args.price_col, quantity=args.quantity_col)
+                             ts=args.ts_col, price=args.price_col, quantity=args.quantity_col,
+                             ts_format=getattr(args, "ts_format", None))
     cfg = cfg.with_overrides("series", key=series_cols if len(series_cols) > 1 else None,
                              groups=getattr(args, "group_col", None))
     get = lambda name: getattr(args, name, None)  # noqa: E731  (commands without the group)

@@ -95,9 +95,30 @@ class ValidationSettings:
         if self.min_value < np.finfo(np.float64).tiny:
             raise ConfigError(f"min_value = {self.min_value!r}: must be at least "
                               f"{np.finfo(np.float64).tiny!r} (no subnormal numbers)")
-        if self.ts_format and "%" not in self.ts_format:
-            raise ConfigError(f"ts_format = {self.ts_format!r}: must be a strftime format with "
-                              f"% codes, for example '%d/%m/%Y' or '%d/%m/%Y %H:%M'")
+        if self.ts_format:
+            check_ts_format(self.ts_format)
+
+
+def check_ts_format(fmt: str) -> str:
+    """``fmt`` if it is a strftime format pandas can read timestamps with, else
+    :class:`ConfigError` saying why.
+
+    >>> check_ts_format("%d/%m/%Y")
+    '%d/%m/%Y'
+    >>> check_ts_format("dd/mm/yyyy")
+    Traceback (most recent call last):
+    ...
+    monitor.errors.ConfigError: ts_format = 'dd/mm/yyyy': must be a strftime format with % codes, for example '%d/%m/%Y' or '%d/%m/%Y %H:%M'
+    """
+    example = "for example '%d/%m/%Y' or '%d/%m/%Y %H:%M'"
+    if "%" not in fmt:
+        raise ConfigError(f"ts_format = {fmt!r}: must be a strftime format with % codes, "
+                          f"{example}")
+    try:
+        pd.to_datetime(pd.Series(["x"]), format=fmt, errors="coerce", utc=True)
+    except ValueError as exc:
+        raise ConfigError(f"ts_format = {fmt!r}: {exc} ({example})") from None
+    return fmt
 
 
 #: ``[validation]`` keys: (type, default), the schema :mod:`monitor.settings` composes
