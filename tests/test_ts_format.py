@@ -5,6 +5,7 @@ option to use. Reference: the same rows written in ISO 8601, which need no forma
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import pandas as pd
 
 from monitor import store as mstore
@@ -70,3 +71,52 @@ def test_a_format_without_codes_is_a_clear_error(tmp_path, capsys):
     rc = main(["replay", str(dmy), "--out", str(tmp_path / "o"), "--ts-format", "dd/mm/yyyy"])
     err = capsys.readouterr().err
     assert rc == 2 and "ts_format = 'dd/mm/yyyy': must be a strftime format" in err
+
+
+# ---------------------------------------------------------------- the field separator
+
+def _sep_log(path, sep):
+    comma = _log(path.with_suffix(".comma.csv"), "%Y-%m-%dT%H:%M:%SZ")
+    text = comma.read_text()
+    path.write_text(text.replace(",", sep))
+    return comma, path
+
+
+@pytest.mark.parametrize("sep, option", [(";", None), (";", ";"), ("\t", "tab"), ("|", None)])
+def test_a_stated_or_sniffed_separator_reads_as_the_comma_log(tmp_path, sep, option):
+    comma, log = _sep_log(tmp_path / "log.csv", sep)
+    extra = ["--delimiter", option] if option else []
+    assert main(["replay", str(comma), "--out", str(tmp_path / "a"), "--quiet"]) == 0
+    assert main(["replay", str(log), "--out", str(tmp_path / "b"), "--quiet", *extra]) == 0
+    a = pd.read_csv(tmp_path / "a" / "estimates.csv")
+    pd.testing.assert_frame_equal(a, pd.read_csv(tmp_path / "b" / "estimates.csv"))
+    assert main(["ingest", str(log), "--db", str(tmp_path / "s.sqlite"), "--quiet", *extra]) == 0
+    hist = mstore.series_history(tmp_path / "s.sqlite", "elm-row/rye-loaf")
+    np.testing.assert_allclose(hist["beta"].to_numpy(float), a["beta"].to_numpy(float),
+                               rtol=0, atol=1e-12, equal_nan=True)
+
+
+def test_a_wrong_separator_says_which_one_to_give(tmp_path, capsys):
+    _comma, log = _sep_log(tmp_path / "log.csv", ";")
+    rc = main(["ingest", str(log), "--db", str(tmp_path / "s.sqlite"), "--delimiter", ","])
+    err = capsys.readouterr().err
+    assert rc == 2 and "give --delimiter ';'" in err
+    rc = main(["replay", str(log), "--out", str(tmp_path / "o"), "--delimiter", ","])
+    err = capsys.readouterr().err
+    assert rc == 2 and "missing column(s)" in err and "give --delimiter ';'" in err
+    rc = main(["replay", str(log), "--out", str(tmp_path / "o"), "--delimiter", "ab"])
+    assert rc == 2 and "delimiter = 'ab': must be one character" in capsys.readouterr().err
+
+
+def test_the_folder_source_sniffs_each_file(tmp_path):
+    from monitor.live.service import Service
+    from monitor.settings import validate
+
+    (tmp_path / "in").mkdir()
+    _sep_log(tmp_path / "in" / "a.csv", ";")
+    (tmp_path / "in" / "a.comma.csv").unlink()
+    cfg = validate({"store": {"path": "s.sqlite"},
+                    "sources": {"drops": {"type": "folder", "path": "in", "settle_s": 0.0}}})
+    with Service(cfg, base=tmp_path) as svc:
+        t = svc.run_once()
+    assert t["accepted"] == 90 and t["rejected"] == 0

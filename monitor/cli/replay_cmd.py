@@ -68,6 +68,9 @@ def add_common_options(p: argparse.ArgumentParser) -> None:
     for col in ("ts", "price", "quantity"):
         p.add_argument(f"--{col}-col", dest=f"{col}_col", metavar="NAME",
                        help=f"name of the {col} column in the log (default '{col}')")
+    p.add_argument("--delimiter", metavar="CHAR",
+                   help="field separator of a CSV log: ',' ';' '|' or 'tab' (default: sniffed "
+                        "from the header line; [columns] delimiter)")
     p.add_argument("--ts-format", dest="ts_format", metavar="FORMAT",
                    help="strftime format of the timestamps, e.g. '%%d/%%m/%%Y' for day-first "
                         "dates (default: ISO 8601 or epoch seconds; [columns] ts_format)")
@@ -128,7 +131,8 @@ def config_from_args(args) -> "object":
     series_cols = list(args.series_col or [])
     cfg = cfg.with_overrides("columns", series=series_cols[0] if len(series_cols) == 1 else None,
                              ts=args.ts_col, price=args.price_col, quantity=args.quantity_col,
-                             ts_format=getattr(args, "ts_format", None))
+                             ts_format=getattr(args, "ts_format", None),
+                             delimiter=getattr(args, "delimiter", None))
     cfg = cfg.with_overrides("series", key=series_cols if len(series_cols) > 1 else None,
                              groups=getattr(args, "group_col", None))
     get = lambda name: getattr(args, name, None)  # noqa: E731  (commands without the group)

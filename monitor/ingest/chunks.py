@@ -30,9 +30,9 @@ import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError, SourceError
 from monitor.ingest.base import canonical_names
-from monitor.ingest.csv_text import read_csv_chunk, read_header
+from monitor.ingest.csv_text import file_delimiter, read_csv_chunk, read_header
 from monitor.ingest.logio import (DEFAULT_COLUMNS, check_file, column_renames, keep_leading_zeros,
-                                  log_format, read_log, table_to_frame)
+                                  log_format, read_log, stated_delimiter, table_to_frame)
 
 
 #: default CSV block size: about a million rows of a typical log
@@ -135,7 +135,8 @@ def csv_text_chunks(path, columns: Mapping[str, str] | None = None,
     every field is text (a value keeps the file's spelling in a reject), every line is a row,
     a reject or blank, and row numbers are those of the file."""
     p = check_file(path)
-    head = read_header(p, str(p), final=True)
+    delimiter = file_delimiter(p, stated_delimiter(columns))
+    head = read_header(p, str(p), final=True, delimiter=delimiter)
     if head is None:
         return
     names, offset = head
@@ -144,7 +145,8 @@ def csv_text_chunks(path, columns: Mapping[str, str] | None = None,
     before = 0
     while offset < size:
         frame, rows, rejects, n_lines, end, after = read_csv_chunk(
-            p, names, canon, offset, before, max(int(chunk_rows), 1), final=True)
+            p, names, canon, offset, before, max(int(chunk_rows), 1), final=True,
+            delimiter=delimiter)
         if end <= offset:
             break
         yield LogChunk(frame, before, end, rows=rows, rejects=rejects)

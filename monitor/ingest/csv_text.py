@@ -37,6 +37,7 @@ import pyarrow.csv as pacsv
 
 from monitor.errors import SourceError
 from monitor.ingest.base import empty_rejects
+from monitor.ingest.logio import sniff_delimiter
 from monitor.rows.validate import REJECT_COLUMNS
 
 
@@ -48,15 +49,24 @@ READ_STEP = 1 << 22
 MAX_HEADER_BYTES = 1 << 20
 #: characters never accepted inside a field: NUL and the byte-order mark (zero width)
 INVISIBLE = ("\x00", "\ufeff")
+def file_delimiter(path, stated: str | None = None) -> str:
+    """``stated`` when given, else the separator sniffed from the file's first line."""
+    if stated:
+        return stated
+    with open(path, "rb") as fh:
+        line = fh.readline(MAX_HEADER_BYTES + 1)
+    return sniff_delimiter(line.decode("utf-8-sig", errors="replace").rstrip("\r\n"))
 
 
-def parse_header(line: bytes, where: str) -> list[str]:
-    """Column names of a header line (UTF-8, comma separated, surrounding spaces removed)."""
+def parse_header(line: bytes, where: str, delimiter: str | None = None) -> list[str]:
+    """Column names of a header line (UTF-8, separated by ``delimiter`` or the sniffed one,
+    surrounding spaces removed)."""
     try:
         text = line.decode("utf-8-sig").rstrip("\r\n")
     except UnicodeDecodeError:
         raise SourceError(f"{where}: the header line is not UTF-8 text") from None
-    names = [n.strip() for n in next(csv.reader([text]), [])]
+    names = [n.strip() for n in next(csv.reader([text], delimiter=delimiter or
+                                                 sniff_delimiter(text)), [])]
     if not names or all(n == "" for n in names):
         raise SourceError(f"{where}: empty header line")
     dup = sorted({n for n in names if names.count(n) > 1})
@@ -78,8 +88,8 @@ def _line_reject(row: int, text: str, why: str) -> dict:
 
 
 def parse_lines(names: list[str], canon: list[str], body: bytes, first_row: int,
-                ) -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame, int]:
-    """Split ``body`` (whole lines) into rows of text fields.
+                delimiter: str = ",") -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame, int]:
+    """Split ``body`` (whole lines) into rows of text fields separated by ``delimiter``.
 
     Returns ``(frame, rows, rejects, n_lines)``: the rows that have one field per header
     column, their data row numbers, the lines that do not, and the number of lines.
@@ -98,17 +108,18 @@ def parse_lines(names: list[str], canon: list[str], body: bytes, first_row: int,
             np.zeros(0, dtype=np.int64), empty_rejects(), n_lines
     try:
         body.decode("utf-8")                 # pyarrow's bad-line handler needs UTF-8 text
-        frame, bad_lines = _parse_fast(names, body)
+        frame, bad_lines = _parse_fast(names, body, delimiter)
         if len(frame) + len(bad_lines) != n_lines:   # a lone CR split a line: go line by line
             raise UnicodeDecodeError("utf-8", b"", 0, 1, "line count differs")
         bad = np.zeros(n_lines, dtype=bool)
         bad[bad_lines] = True
         keep_rows = ~bad
         rejects = [_line_reject(line_rows[i], _decode(body[starts[i]:nl[i]]),
-                                _count_message(body[starts[i]:nl[i]], len(names)))
+                                _count_message(body[starts[i]:nl[i]], len(names), delimiter))
                    for i in bad_lines]
     except (pa.ArrowInvalid, pa.ArrowTypeError, UnicodeDecodeError):
-        frame, keep_rows, rejects = _parse_slow(names, body, starts, nl, line_rows, blank)
+        frame, keep_rows, rejects = _parse_slow(names, body, starts, nl, line_rows, blank,
+                                                delimiter)
     frame.columns = canon
     # every line that is not a reject produced a row (blank lines an all-null one): drop those
     take = ~blank[keep_rows]
@@ -168,16 +179,17 @@ def _decode(line: bytes) -> str:
     return line.decode("utf-8", errors="replace").rstrip("\r")
 
 
-def _count_message(line: bytes, n_fields: int) -> str:
+def _count_message(line: bytes, n_fields: int, delimiter: str = ",") -> str:
     try:
-        got = len(next(csv.reader([_decode(line)]), []))
+        got = len(next(csv.reader([_decode(line)], delimiter=delimiter), []))
     except csv.Error:
         got = "an unreadable number of"
     return f"the line has {got} fields, the header has {n_fields}"
 
 
-def _parse_fast(names: list[str], body: bytes) -> tuple[pd.DataFrame, list[int]]:
-    header = (",".join(f'"{n}"' for n in names) + "\n").encode("utf-8")
+def _parse_fast(names: list[str], body: bytes, delimiter: str = ","
+                ) -> tuple[pd.DataFrame, list[int]]:
+    header = (delimiter.join(f'"{n}"' for n in names) + "\n").encode("utf-8")
     bad: list[int] = []
 
     def invalid(row) -> str:
@@ -187,8 +199,8 @@ def _parse_fast(names: list[str], body: bytes) -> tuple[pd.DataFrame, list[int]]
     table = pacsv.read_csv(
         io.BytesIO(header + body),
         read_options=pacsv.ReadOptions(use_threads=False, block_size=max(1 << 20, len(body) + 64)),
-        parse_options=pacsv.ParseOptions(invalid_row_handler=invalid, ignore_empty_lines=False,
-                                          newlines_in_values=False),
+        parse_options=pacsv.ParseOptions(delimiter=delimiter, invalid_row_handler=invalid,
+                                          ignore_empty_lines=False, newlines_in_values=False),
         convert_options=pacsv.ConvertOptions(column_types={n: pa.string() for n in names},
                                              null_values=[""], strings_can_be_null=True,
                                              quoted_strings_can_be_null=True))
@@ -197,7 +209,7 @@ def _parse_fast(names: list[str], body: bytes) -> tuple[pd.DataFrame, list[int]]
     return frame.astype(object).where(frame.notna(), None), sorted(bad)
 
 
-def _parse_slow(names, body, starts, nl, line_rows, blank):
+def _parse_slow(names, body, starts, nl, line_rows, blank, delimiter=","):
     """One line at a time with the standard csv module (for chunks pyarrow refuses)."""
     records, keep, rejects = [], np.zeros(len(nl), dtype=bool), []
     n = len(names)
@@ -213,7 +225,7 @@ def _parse_slow(names, body, starts, nl, line_rows, blank):
             rejects.append(_line_reject(line_rows[i], _decode(raw), "not valid UTF-8 text"))
             continue
         try:
-            fields = next(csv.reader([text]), [])
+            fields = next(csv.reader([text], delimiter=delimiter), [])
         except csv.Error as exc:
             rejects.append(_line_reject(line_rows[i], text, f"not a CSV line ({exc})"))
             continue
@@ -248,9 +260,9 @@ def find_line_ends(fh, offset: int, size: int, max_rows: int) -> tuple[int, int]
 
 
 def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_before: int,
-                   max_rows: int, final: bool) -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame,
-                                                        int, int, list[str]]:
-    """Read up to ``max_rows`` whole lines from ``offset``.
+                   max_rows: int, final: bool, delimiter: str = ","
+                   ) -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame, int, int, list[str]]:
+    """Read up to ``max_rows`` whole lines from ``offset`` (fields separated by ``delimiter``).
 
     Returns ``(frame, rows, rejects, n_lines, new_offset, names)``. With ``final=True`` the end
     of the file also ends the last line (the file is complete); otherwise a partial last line
@@ -268,17 +280,19 @@ def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_b
                     np.zeros(0, dtype=np.int64), empty_rejects(), 0, offset, list(names))
         fh.seek(offset)
         body = fh.read(end - offset)
-    k = header_line(body, names)
+    k = header_line(body, names, delimiter)
     if k is None:
-        frame, rows, rejects, n_lines = parse_lines(names, canon, body, rows_before + 1)
+        frame, rows, rejects, n_lines = parse_lines(names, canon, body, rows_before + 1,
+                                                    delimiter)
         return frame, rows, rejects, n_lines, end, list(names)
     # the chunk ends just after the header line; the lines after it follow its order
     nl = np.flatnonzero(np.frombuffer(body, dtype=np.uint8) == 10)
     start = int(nl[k - 1]) + 1 if k else 0
     cut = int(nl[k]) + 1 if k < nl.size else len(body)
-    frame, rows, rejects, _ = parse_lines(names, canon, body[:start], rows_before + 1)
+    frame, rows, rejects, _ = parse_lines(names, canon, body[:start], rows_before + 1,
+                                          delimiter)
     text = _decode(body[start:cut].rstrip(b"\n"))
-    new = _fields(text)
+    new = _fields(text, delimiter)
     same = new == [n.strip() for n in names]
     why = ("it repeats the header line (rule: the header is the first line only); the column "
            "order is unchanged" if same else
@@ -291,16 +305,16 @@ def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_b
     return frame, rows, rejects, k + 1, offset + cut, list(names) if same else new
 
 
-def _fields(text: str) -> list[str]:
+def _fields(text: str, delimiter: str = ",") -> list[str]:
     """The fields of one line, stripped of spaces (a leading byte-order mark dropped)."""
     try:
-        return [f.strip() for f in next(csv.reader([text.lstrip("\ufeff")],
+        return [f.strip() for f in next(csv.reader([text.lstrip("\ufeff")], delimiter=delimiter,
                                                    skipinitialspace=True), [])]
     except csv.Error:
         return []
 
 
-def header_line(body: bytes, names: list[str]) -> int | None:
+def header_line(body: bytes, names: list[str], delimiter: str = ",") -> int | None:
     """Index of the first line of ``body`` whose fields are the column names in any order
     (spaces, quotes and a byte-order mark allowed), or None.
 
@@ -316,7 +330,7 @@ def header_line(body: bytes, names: list[str]) -> int | None:
     stops = np.concatenate([nl, [arr.size]])
     keep = starts < arr.size
     starts, stops = starts[keep], stops[keep]
-    base = len(",".join(wanted).encode("utf-8"))
+    base = len(delimiter.join(wanted).encode("utf-8"))
     length = stops - starts
     near = (length >= base) & (length <= base + 4 * len(wanted) + 5)
     if not near.any():
@@ -331,7 +345,7 @@ def header_line(body: bytes, names: list[str]) -> int | None:
             hit |= (head[:, at:at + pre.size] == pre).all(axis=1)
     for i in np.flatnonzero(near)[hit]:
         text = _decode(body[starts[i]:stops[i]])
-        if sorted(_fields(text)) == wanted:
+        if sorted(_fields(text, delimiter)) == wanted:
             return int(i)
     return None
 
@@ -349,8 +363,10 @@ def header_row(frame: pd.DataFrame, names: list[str]) -> int | None:
     return None
 
 
-def read_header(path, where: str, final: bool) -> tuple[list[str], int] | None:
-    """Header names and the byte offset after the header line (None: no complete line yet)."""
+def read_header(path, where: str, final: bool, delimiter: str | None = None
+                ) -> tuple[list[str], int] | None:
+    """Header names (separated by ``delimiter``, else the sniffed separator) and the byte
+    offset after the header line (None: no complete line yet)."""
     with open(path, "rb") as fh:
         block = fh.readline(MAX_HEADER_BYTES + 1)
     cut = block.find(b"\n")
@@ -362,4 +378,4 @@ def read_header(path, where: str, final: bool) -> tuple[list[str], int] | None:
         if not block or not final:
             return None
         cut = len(block) - 1
-    return parse_header(block[:cut + 1], where), cut + 1
+    return parse_header(block[:cut + 1], where, delimiter), cut + 1

@@ -49,7 +49,9 @@ import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError, SourceError
 from monitor.ingest.base import Chunk, canonical_names, empty_rejects
-from monitor.ingest.csv_text import HEAD_BYTES, head_hash, read_csv_chunk, read_header
+from monitor.ingest.csv_text import (HEAD_BYTES, file_delimiter, head_hash, read_csv_chunk,
+                                     read_header)
+from monitor.ingest.logio import stated_delimiter
 
 
 __all__ = ["CsvTail", "FolderSource", "ParquetFile"]
@@ -79,6 +81,7 @@ class CsvTail:
         if on_reset not in ("restart", "stop"):
             raise ConfigError(f"on_reset = {on_reset!r}: must be 'restart' or 'stop'")
         self.name, self.path, self.columns = name, Path(path), dict(columns or {})
+        self.delimiter = stated_delimiter(columns)      # None: sniffed from the header line
         self.final, self.on_reset = final, on_reset
 
     def _changed(self, pos: dict, st: os.stat_result) -> str | None:
@@ -148,7 +151,8 @@ class CsvTail:
                    notice: str | None, final: bool | None = None) -> Chunk | None:
         final = self.final if final is None else final
         try:
-            head = read_header(path, str(path), final)
+            delimiter = file_delimiter(path, self.delimiter)
+            head = read_header(path, str(path), final, delimiter)
         except OSError as exc:
             raise SourceError(f"{path}: cannot be read: {exc}") from None
         if head is None:
@@ -158,7 +162,7 @@ class CsvTail:
         canon = canonical_names(names, self.columns)
         offset, rows = max(int(pos.get("offset", 0)), header_end), int(pos.get("rows", 0))
         frame, rownums, rejects, n_lines, end, after = read_csv_chunk(
-            path, names, canon, offset, rows, max_rows, final)
+            path, names, canon, offset, rows, max_rows, final, delimiter)
         if end == offset and notice is None and pos.get("offset") == offset:
             return None
         head_len = min(HEAD_BYTES, end)
@@ -205,6 +209,7 @@ class FolderSource:
                  patterns=("*.csv", "*.parquet", "*.pq"), settle_s: float = 1.0, clock=time.time,
                  last_line_wait_s: float = 300.0):
         self.name, self.path, self.columns = name, Path(path), dict(columns or {})
+        self.delimiter = stated_delimiter(columns)      # None: sniffed from each header line
         self.patterns, self.settle_s, self.clock = tuple(patterns), float(settle_s), clock
         self.last_line_wait_s = float(last_line_wait_s)
         self._cache: tuple[tuple, pd.DataFrame] | None = None
@@ -292,7 +297,8 @@ class FolderSource:
                          extra={"complete": hi >= len(table), "cur": nxt})
         st = os.stat(path)
         quiet = self.clock() - st.st_mtime >= self.last_line_wait_s or later
-        head = read_header(path, str(path), final=quiet)
+        delimiter = file_delimiter(path, self.delimiter)
+        head = read_header(path, str(path), final=quiet, delimiter=delimiter)
         if head is None:                      # an empty file: nothing to read, done
             return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(), {}, 0,
                          extra={"complete": st.st_size == 0 or quiet, "cur": cur})
@@ -301,7 +307,7 @@ class FolderSource:
         canon = canonical_names(names, self.columns)
         offset = max(cur["offset"], header_end)
         frame, rows, rejects, n_lines, end, after = read_csv_chunk(
-            path, names, canon, offset, cur["rows"], max_rows, final=quiet)
+            path, names, canon, offset, cur["rows"], max_rows, final=quiet, delimiter=delimiter)
         # the file may have grown while current: what is recorded as done is what was read
         nxt = {**cur, "offset": end, "rows": cur["rows"] + n_lines, "size": st.st_size,
                "mtime_ns": st.st_mtime_ns}

@@ -12,6 +12,7 @@ A column that pyarrow reads as integers but whose text has a leading zero in som
 
 from __future__ import annotations
 
+import csv
 import os
 from pathlib import Path
 from typing import Iterator, Mapping
@@ -23,23 +24,78 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from monitor.errors import SourceError
+from monitor.errors import ConfigError, SourceError
 
 
 DEFAULT_COLUMNS = {"series": "series", "ts": "ts", "price": "price", "quantity": "quantity"}
 #: ``[columns]``: the log's column name of each field, and how its text is written:
 #: ``ts_format`` (a strftime format of the timestamps, e.g. ``"%d/%m/%Y"``; empty = ISO 8601 or
-#: epoch seconds); the schema :mod:`monitor.settings` composes
+#: epoch seconds) and ``delimiter`` (the field separator; empty = sniffed from the header line:
+#: the comma unless ``;``, tab or ``|`` splits it into more fields); the schema
+#: :mod:`monitor.settings` composes
 COLUMNS_KEYS = {**{name: (str, column) for name, column in DEFAULT_COLUMNS.items()},
-                "ts_format": (str, "")}
+                "ts_format": (str, ""), "delimiter": (str, "")}
 SECTIONS = {"columns": COLUMNS_KEYS}
 
 
-def column_names(config) -> dict[str, str]:
-    """The column-name part of ``[columns]`` of a :class:`monitor.sections.Config`, defaults
-    filled (``ts_format`` and other format keys left out)."""
+#: field separators a header line is sniffed for; the comma unless another splits it into more
+DELIMITERS = (",", ";", "\t", "|")
+
+
+def sniff_delimiter(line: str) -> str:
+    r"""The field separator of a header line: the one of :data:`DELIMITERS` that splits it into
+    the most fields (quotes respected); the comma on a tie or when none splits it.
+
+    >>> sniff_delimiter("series;ts;price;quantity"), sniff_delimiter("series,ts,price,quantity")
+    (';', ',')
+    >>> sniff_delimiter("series\tts\tprice\tquantity"), sniff_delimiter("single")
+    ('\t', ',')
+    """
+    best, most = ",", 1
+    for d in DELIMITERS:
+        try:
+            n = len(next(csv.reader([line], delimiter=d), []))
+        except csv.Error:
+            continue
+        if n > most:
+            best, most = d, n
+    return best
+
+
+def check_delimiter(value: str) -> str:
+    r"""A one-character field separator (``tab`` or ``\t`` for a tab), else ConfigError.
+
+    >>> check_delimiter(";"), check_delimiter("tab"), check_delimiter("\\t")
+    (';', '\t', '\t')
+    """
+    value = {"tab": "\t", "\\t": "\t"}.get(str(value).lower(), value)
+    if not isinstance(value, str) or len(value) != 1 or value in "\"\r\n" or value.isalnum():
+        raise ConfigError(f"delimiter = {value!r}: must be one character that is not a letter, "
+                          f"digit, quote or line break, e.g. ',' ';' '|' or 'tab'")
+    return value
+
+
+class LogLayout(dict):
+    """The log's column names (``{field: column}``, a plain mapping for renames) and its stated
+    field separator ``delimiter`` (``None``: sniffed from each file's header line)."""
+
+    def __init__(self, names, delimiter: str | None = None):
+        super().__init__(names)
+        self.delimiter = delimiter or None
+
+
+def column_names(config) -> LogLayout:
+    """The column names of ``[columns]`` of a :class:`monitor.sections.Config`, defaults filled,
+    with its ``delimiter`` (checked) as :attr:`LogLayout.delimiter`."""
     sec = config.section("columns")
-    return {name: sec.get(name, column) for name, column in DEFAULT_COLUMNS.items()}
+    stated = sec.get("delimiter") or ""
+    return LogLayout({name: sec.get(name, column) for name, column in DEFAULT_COLUMNS.items()},
+                     check_delimiter(stated) if stated else None)
+
+
+def stated_delimiter(columns) -> str | None:
+    """The stated separator of a columns mapping (a :class:`LogLayout`), else None."""
+    return getattr(columns, "delimiter", None)
 
 
 def log_format(path: str | os.PathLike) -> str:
@@ -85,7 +141,7 @@ def read_log(path, columns: Mapping[str, str] | None = None,
         if fmt == "parquet":
             table = pq.read_table(p)
         else:
-            table = _read_csv(p, text)
+            table = _read_csv(p, text, stated_delimiter(columns))
     except SourceError:
         raise
     except (pa.ArrowInvalid, pa.ArrowTypeError) as exc:
@@ -112,17 +168,19 @@ def table_to_frame(table: pa.Table) -> pd.DataFrame:
     return frame
 
 
-def _read_csv(p: Path, text: bool) -> pa.Table:
+def _read_csv(p: Path, text: bool, delimiter: str | None = None) -> pa.Table:
     with open(p, "rb") as fh:
         first = fh.readline().decode("utf-8", errors="replace").strip()
     if not first:
         raise SourceError(f"{p}: empty file (no header line)")
-    names = [c.strip() for c in first.split(",")]
+    delimiter = delimiter or sniff_delimiter(first)
+    names = [c.strip() for c in first.split(delimiter)]
     conv = pacsv.ConvertOptions(null_values=[""], strings_can_be_null=True,
                                 column_types=_text_types(names) if text else {"series": pa.string()})
-    table = pacsv.read_csv(p, convert_options=conv)
+    parse = pacsv.ParseOptions(delimiter=delimiter)
+    table = pacsv.read_csv(p, parse_options=parse, convert_options=conv)
     return table if text else keep_leading_zeros(table, lambda cols: pacsv.read_csv(
-        p, convert_options=pacsv.ConvertOptions(
+        p, parse_options=parse, convert_options=pacsv.ConvertOptions(
             null_values=[""], strings_can_be_null=True, include_columns=cols,
             column_types={c: pa.string() for c in cols})))
 
@@ -163,10 +221,12 @@ def iter_log_batches(path, columns: Mapping[str, str] | None = None,
         return
     with open(p, "rb") as fh:
         first = fh.readline().decode("utf-8", errors="replace").strip()
-    names = [c.strip() for c in first.split(",")]
+    delimiter = stated_delimiter(columns) or sniff_delimiter(first)
+    names = [c.strip() for c in first.split(delimiter)]
     conv = pacsv.ConvertOptions(null_values=[""], strings_can_be_null=True,
                                 column_types=_text_types(names))
     reader = pacsv.open_csv(p, read_options=pacsv.ReadOptions(block_size=1 << 24),
+                            parse_options=pacsv.ParseOptions(delimiter=delimiter),
                             convert_options=conv)
     for batch in reader:
         df = batch.to_pandas()

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from monitor.rows.isotime import format_ts
-from monitor.rows.validate import REJECT_COLUMNS, REQUIRED, parse_numbers
+from monitor.rows.validate import REJECT_COLUMNS, REQUIRED, parse_numbers, separator_hint
 from monitor.store import existing_observation_keys
 
 
@@ -67,7 +67,7 @@ def missing_column_rejects(frame: pd.DataFrame, rows: np.ndarray, missing: list[
                            ) -> pd.DataFrame:
     """Every row of a source that lacks required columns, rejected with that reason."""
     why = (f"missing column(s) {missing}; the source has columns {list(frame.columns)} "
-           f"(map names with [columns])")
+           f"(map names with [columns]){separator_hint(frame.columns)}")
     out = []
     for r, raw in zip(rows, raw_rows(frame, range(len(frame)))):
         out.append({"row": int(r), "series": raw.get("series", ""), "ts": raw.get("ts", ""),

@@ -435,7 +435,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     names = list(REQUIRED) + list(controls) + list(log_controls)
     missing = [c for c in names if c not in frame.columns]
     if missing:
-        raise SourceError(f"missing column(s) {missing}; the log has columns {list(frame.columns)}")
+        raise SourceError(f"missing column(s) {missing}; the log has columns "
+                          f"{list(frame.columns)}{separator_hint(frame.columns)}")
     n = len(frame)
     rows = np.arange(row_offset + 1, row_offset + n + 1, dtype=np.int64)
     reason = np.full(n, None, dtype=object)
@@ -554,6 +555,19 @@ def _inf_words(col: pd.Series) -> np.ndarray:
         floats = np.zeros(len(col), dtype=bool)
     low = col.astype("string").str.strip().str.lower().str.lstrip("+-")
     return floats | low.isin(["inf", "infinity"]).to_numpy(dtype=bool, na_value=False)
+
+
+def separator_hint(columns) -> str:
+    """Advice when a column name holds a field separator (the file was split by another one).
+
+    >>> separator_hint(["series;ts;price;quantity"])
+    " (a column name holds ';': is that the field separator? give --delimiter ';' or [columns] delimiter)"
+    >>> separator_hint(["series", "ts"])
+    ''
+    """
+    seps = [d for d in (";", "\t", "|", ",") if any(d in str(c) for c in columns)]
+    return (f" (a column name holds {seps[0]!r}: is that the field separator? give "
+            f"--delimiter {seps[0]!r} or [columns] delimiter)" if seps else "")
 
 
 def _cell(v) -> str:
