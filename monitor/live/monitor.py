@@ -79,7 +79,9 @@ class Monitor:
         self.estimator = estimator_from_config(self.config)
         self.validation = validation_from_config(self.config)
         self.pipeline = Pipeline.from_config(self.config, self.estimator)
-        self.estimates_every = service_config.store_settings(self.config)["estimates_every"]
+        store_sec = service_config.store_settings(self.config)
+        self.estimates_every = store_sec["estimates_every"]
+        self.wal_max_bytes = int(store_sec["wal_max_mb"] * 1e6)
         self.clock_ns = clock_ns
         self._own = not isinstance(store, Store)
         self.store = Store.open(store, create=True) if self._own else store
@@ -226,6 +228,7 @@ class Monitor:
             self._recorded.update({r["series"]: r for r in record})
             self._rows_read[source] = self._rows_read.get(source, 0) + consumed
             self.groups.after_batch(plan["checkpoints"])   # pooled latest, group alerts
+            self.store.bound_wal(self.wal_max_bytes)      # readers cannot grow it for good
         return BatchReport(source=source, rows=consumed, accepted=plan["accepted"],
                            rejected=len(rejects), zero_skipped=plan["zero_count"],
                            series=len(plan["checkpoints"]),

@@ -175,5 +175,6 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
     mon._last_status[series] = status
     mon._last_obs[series] = last_obs
     mon._rows_read[source] = row
+    mon.store.bound_wal(mon.wal_max_bytes)
     return Estimate(series=series, ts=ts, beta=floats[0], beta_se=floats[1], beta_lo=floats[2],
                     beta_hi=floats[3], n_eff=floats[4], status=status)

@@ -7,6 +7,7 @@ checked; the readers below fill the defaults themselves::
     [store]
     path = "elmon.sqlite"        # the SQLite store (created when missing)
     estimates_every = 1          # keep every n-th estimate of a series plus every status change
+    wal_max_mb = 64              # the write-ahead log is checkpointed and truncated past this
 
     [service]
     poll_interval_s = 5.0        # default poll interval of a source
@@ -40,7 +41,8 @@ from monitor.live.sinks import SINK_KEYS
 from monitor.sections import Config, defaults
 
 
-STORE_KEYS = {"path": (str, "elmon.sqlite"), "estimates_every": (int, 1)}
+STORE_KEYS = {"path": (str, "elmon.sqlite"), "estimates_every": (int, 1),
+              "wal_max_mb": ((int, float), 64.0)}
 
 SERVICE_KEYS = {
     "poll_interval_s": ((int, float), 5.0), "batch_rows": (int, 50_000),
@@ -87,6 +89,9 @@ def store_settings(config: Config) -> dict:
     if sec["estimates_every"] < 1:
         raise ConfigError(f"[store] estimates_every = {sec['estimates_every']!r}: must be >= 1 "
                           f"(1 keeps every estimate)")
+    if not 0 < sec["wal_max_mb"] <= 1e6:
+        raise ConfigError(f"[store] wal_max_mb = {sec['wal_max_mb']!r}: must be a number of "
+                          f"megabytes in (0, 1e6]")
     return sec
 
 

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import os
 import sqlite3
 import threading
 from pathlib import Path
@@ -74,6 +75,7 @@ class Store:
         #: alerts hold member notifications, :func:`monitor.store.groups.member_hold`)
         self.notify_hold = None
         self.applied_on_open: list[int] = []
+        self.busy_timeout = DEFAULT_BUSY_TIMEOUT
         self._lock = threading.RLock()
 
     @classmethod
@@ -115,6 +117,7 @@ class Store:
         except sqlite3.DatabaseError as exc:
             raise StoreError(f"cannot open store {str(path)!r}: {exc}") from None
         store = cls(conn, path, readonly)
+        store.busy_timeout = busy_timeout
         try:
             if readonly:
                 check_schema(store)
@@ -203,6 +206,35 @@ class Store:
         if not self.db["migrations"].exists():
             return 0
         return int(self.scalar("SELECT coalesce(max(id), 0) FROM migrations"))
+
+    def bound_wal(self, max_bytes: int, wait_s: float = 0.5) -> bool:
+        """Keep the write-ahead log near ``max_bytes``: when ``<store>-wal`` is larger, copy it
+        into the store and truncate it (``PRAGMA wal_checkpoint(TRUNCATE)``).
+
+        SQLite's automatic checkpoint (every 1000 pages) is passive: while readers keep
+        snapshots open (a dashboard, ``elmon status``) it cannot reach the end of the log, the
+        log is never restarted, and its file only grows; a restarted log also keeps its size
+        on disk. Here the writer waits at most ``wait_s`` for readers (not its normal busy
+        timeout) and tries again after a later batch when they are still busy. Returns
+        whether the log was truncated. A read-only store does nothing.
+        """
+        if self.readonly or max_bytes <= 0:
+            return False
+        try:
+            size = os.path.getsize(str(self.path) + "-wal")
+        except OSError:
+            return False
+        if size <= max_bytes:
+            return False
+        with self._lock:
+            self.conn.execute(f"PRAGMA busy_timeout = {int(wait_s * 1000)}")
+            try:
+                busy, _log, _done = self.conn.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()
+            except sqlite3.OperationalError:
+                busy = 1
+            finally:
+                self.conn.execute(f"PRAGMA busy_timeout = {int(self.busy_timeout * 1000)}")
+        return busy == 0
 
     def close(self) -> None:
         """Close the connection (the WAL is checkpointed by SQLite when the last one closes)."""

@@ -10,7 +10,10 @@ from __future__ import annotations
 import fcntl
 import json
 import os
+import socket
 import sqlite3
+import stat
+import sys
 from typing import Any
 
 import pandas as pd
@@ -34,23 +37,74 @@ _UPSERT_CHECKPOINT = (
 SOURCE_PREFIX = "source:"
 
 
+def writer_lock_path(store_path) -> str:
+    """``<store>.writer.lock`` beside the store's real file: a symbolic link to the store (or
+    a link in its folder path) names the same lock, so it cannot start a second writer."""
+    return os.path.realpath(str(store_path)) + ".writer.lock"
+
+
 def take_writer_lock(store_path):
-    """Hold ``<store>.writer.lock`` exclusively (``flock``) so one process writes live state;
-    the kernel releases it when the process ends, even by SIGKILL. Returns the open file."""
-    fh = open(str(store_path) + ".writer.lock", "a+")
+    """Hold the store's writer lock exclusively (``flock`` on :func:`writer_lock_path`) so one
+    process writes live state; the kernel releases it when the process ends, even by SIGKILL.
+
+    The lock file is opened with ``O_NOFOLLOW`` and must be a regular file: a symbolic link
+    planted at its path is refused (it would otherwise make elmon create or truncate the file
+    it points to). The holder's pid, command line, host and start time are written into the
+    file, and a refusal names them. Returns the open file.
+    """
+    path = writer_lock_path(store_path)
+    flags = os.O_RDWR | os.O_CREAT | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_CLOEXEC", 0)
+    try:
+        fd = os.open(path, flags, 0o644)
+    except OSError as exc:
+        if os.path.islink(path):
+            raise StoreError(f"writer lock {path!r} is a symbolic link (to "
+                             f"{os.readlink(path)!r}); elmon does not follow it: remove the "
+                             f"link") from None
+        raise StoreError(f"writer lock {path!r} cannot be opened: {exc.strerror}") from None
+    if not stat.S_ISREG(os.fstat(fd).st_mode):
+        os.close(fd)
+        raise StoreError(f"writer lock {path!r} is not a regular file; remove it")
+    fh = os.fdopen(fd, "r+")
     try:
         fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError:
         fh.seek(0)
-        holder = fh.read().strip() or "unknown"
+        holder = describe_holder(fh.read(4096))
         fh.close()
         raise StoreError(f"store {str(store_path)!r} is being processed by another elmon "
-                         f"process (pid {holder}); stop it first") from None
+                         f"process ({holder}); stop it first") from None
     fh.seek(0)
     fh.truncate()
-    fh.write(str(os.getpid()))
+    fh.write(json.dumps({"pid": os.getpid(), "host": socket.gethostname(),
+                         "started": wall_ts(), "command": " ".join(sys.argv)[:500]}))
     fh.flush()
     return fh
+
+
+def describe_holder(text: str) -> str:
+    """The holder recorded in a lock file, as text: ``pid N, 'command', host H, since T``
+    (files of older versions hold only the pid).
+
+    >>> describe_holder('{"pid": 42, "host": "ops1", "started": "2026-01-02T03:04:05Z", '
+    ...                 '"command": "elmon run --config elmon.toml"}')
+    "pid 42, 'elmon run --config elmon.toml', host ops1, since 2026-01-02T03:04:05Z"
+    >>> describe_holder("42"), describe_holder("")
+    ('pid 42', 'pid unknown')
+    """
+    text = text.strip()
+    try:
+        info = json.loads(text) if text.startswith("{") else {"pid": text or "unknown"}
+    except ValueError:
+        info = {"pid": "unknown"}
+    parts = [f"pid {info.get('pid', 'unknown')}"]
+    if info.get("command"):
+        parts.append(repr(str(info["command"])))
+    if info.get("host"):
+        parts.append(f"host {info['host']}")
+    if info.get("started"):
+        parts.append(f"since {info['started']}")
+    return ", ".join(parts)
 
 
 def release_writer_lock(fh) -> None:
