@@ -1,6 +1,6 @@
 """Observation logs (and truth files) written from the change-detection grid
 (:mod:`simulators.change_grid`), for tests that go through files as a user does (replay,
-tune). Invented series names; one observation per day from 2024-01-01."""
+tune). Invented series names; one observation per day from 2018-01-01."""
 
 from __future__ import annotations
 
@@ -10,6 +10,8 @@ import pandas as pd
 from simulators.change_grid import Simulation
 
 DAY = 86_400 * 10**9
+#: first day of every log (2,000 days end in 2023: no row is in the future for the validation)
+START = "2018-01-01"
 
 
 def series_names(n: int) -> list[str]:
@@ -21,7 +23,7 @@ def write_grid_log(sim: Simulation, path, truth=None) -> list[str]:
     change points as a truth file (series, ts, kind, beta_before, beta_after). Returns the
     series names in series-code order."""
     names = series_names(sim.n_series)
-    ts = sim.ts(DAY)
+    ts = sim.ts(DAY, start=START)
     iso = pd.to_datetime(ts, utc=True).strftime("%Y-%m-%dT%H:%M:%SZ")
     frame = pd.DataFrame({"series": np.array(names, dtype=object)[sim.sid], "ts": iso,
                           "price": np.round(np.exp(sim.X[:, 1]), 6),

@@ -138,8 +138,9 @@ def test_bootstrap_check_flags_autocorrelated_errors(tmp_path):
     arl0 = 500.0
     _loglog_log(tmp_path / "ar.csv", rho=0.5)
     _loglog_log(tmp_path / "iid.csv", rho=0.0)
-    # the bootstrap check of the CUSUM level chart (cusum_h); the split likelihood-ratio
-    # default has no such check yet (issue 12), so the charts are selected
+    # the charts' check (the previous CUSUM/EWMA/Page-Hinkley charts, selectable): the
+    # bootstrap of the CUSUM level chart's statistic and the cusum_h that meets the target;
+    # the default split detector's check is tests/test_tune_split_check.py and the test below
     charts = validate({"detectors": {"change_detector": "charts"}})
     ar = calibrate(tmp_path / "ar.csv", tmp_path / "ar", config=charts, arl0=arl0,
                    progress=False, now_ns=NOW)
@@ -175,19 +176,32 @@ def test_cli_tune_both_modes(tmp_path, capsys):
     s = json.loads((tmp_path / "t" / "tuning.json").read_text())
     assert s["settings"] == 3 and len(pd.read_csv(tmp_path / "t" / "tuning.csv")) == 3
     rc = main(["tune", str(tmp_path / "log.csv"), "--arl0", "300", "--config",
-               str(tmp_path / "base.toml"), "--out", str(tmp_path / "c"), "--quiet"])
-    assert rc == 0 and "design for ARL0 = 300" in capsys.readouterr().out
+               str(tmp_path / "base.toml"), "--out", str(tmp_path / "c"), "--quiet",
+               "--bootstrap-obs", "100000"])
+    out = capsys.readouterr().out
+    assert rc == 0 and "design for ARL0 = 300" in out
+    assert "elasticity_change:" in out and "level_shift:" in out and "NOT CHECKED" not in out
     assert (tmp_path / "c" / "report.html").exists() and (tmp_path / "c" / "recommended.toml").exists()
     rc = main(["tune", str(tmp_path / "log.csv"), "--out", str(tmp_path / "x")])
     assert rc == 2 and "--arl0" in capsys.readouterr().err
 
 
-def test_bootstrap_check_names_the_detectors_it_cannot_check(tmp_path):
-    """With the default split likelihood-ratio detector the bootstrap has no chart statistic to
-    replay: the summary, recommended.toml and the command say so, instead of an empty check."""
+def test_bootstrap_check_covers_the_default_detector_and_names_what_it_cannot(tmp_path):
+    """The default split likelihood-ratio detector is checked (alert rates per kind on
+    resampled in-control logs, tests/test_tune_split_check.py); the Poisson model, whose
+    residuals this check does not resample, is named as not checked in the summary,
+    recommended.toml and the command's output instead of an empty check."""
     _loglog_log(tmp_path / "iid.csv", rho=0.0)
     s = calibrate(tmp_path / "iid.csv", tmp_path / "o", arl0=500.0, progress=False, now_ns=NOW,
-                  n_paths=20)
-    assert s["checks"] == {} and set(s["unchecked"]) == {"level", "slope"}
-    assert all("split_glr" in t and "--truth" in t for t in s["unchecked"].values())
-    assert "not checked by this bootstrap" in (tmp_path / "o" / "recommended.toml").read_text()
+                  n_steps=100_000)
+    a = s["alert_rates"]
+    assert s["checks"] == {} and s["unchecked"] == {} and a["checked"]
+    assert set(a["kinds"]) == {"elasticity_change", "level_shift"}
+    assert a["observations"] >= 100_000 and a["series_used"] == 6
+    assert all(k["verdict"] in ("holds", "breaks", "unsettled") for k in a["kinds"].values())
+    poisson = validate({"estimator": {"model": "poisson"}})
+    p = calibrate(tmp_path / "iid.csv", tmp_path / "p", config=poisson, arl0=500.0,
+                  progress=False, now_ns=NOW, n_steps=100_000)
+    assert p["alert_rates"] is None and set(p["unchecked"]) == {"level", "slope"}
+    assert all("poisson" in t and "--truth" in t for t in p["unchecked"].values())
+    assert "not checked by this bootstrap" in (tmp_path / "p" / "recommended.toml").read_text()

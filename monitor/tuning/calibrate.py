@@ -22,6 +22,11 @@
    design's ``1 / arl0``; a difference of more than 20% is flagged, and the threshold that gives
    ``arl0`` on the data is written to ``recommended.toml``.
 
+With the split likelihood-ratio detector (the default) steps 2 and 3 are those of
+:mod:`monitor.tuning.alert_check`: its alerts per 10,000 observations of each kind on in-control
+paths resampled from the log, against 10,000 / ``arl0``, with a verdict per kind (calibration.json
+``alert_rates``). Models other than the log-log one are named as not checked.
+
 Block length per series: ``max(2 m, ceil(n^(1/3)))``, capped at n / 2, where m is the first lag
 after which 5 sample autocorrelations in a row are inside ``+-2 / sqrt(n)`` (the first step of
 the rule of Politis & White 2004, from memory). Paths are drawn from series in proportion to
@@ -42,38 +47,12 @@ from monitor.detectors.spec import CHARTS, chart_spec, threshold_key
 from monitor.errors import ConfigError
 from monitor.estimators import kernel as K
 from monitor.settings import Config, default_config, estimator_from_config, validate
+from monitor.tuning.blocks import block_length, bootstrap_indices
 
 
 FLAG_RATIO = 0.20
 #: threshold set out of reach per chart, so that no chart resets on a bootstrap path
 _OUT_OF_REACH = {name: spec.out_of_reach for name, spec in CHARTS.items()}
-
-
-def block_length(z: np.ndarray) -> int:
-    """Block length for the moving-block bootstrap of ``z`` (see the module docstring)."""
-    n = z.size
-    if n < 8:
-        return max(1, n)
-    x = z - z.mean()
-    denom = float(x @ x) or 1.0
-    lim = 2.0 / math.sqrt(n)
-    run, m = 0, 0
-    for lag in range(1, min(n // 2, 500)):
-        r = float(x[:-lag] @ x[lag:]) / denom
-        run = run + 1 if abs(r) < lim else 0
-        if run == 5:
-            m = lag - 5
-            break
-    else:
-        m = min(n // 4, 500)
-    return int(min(max(2 * m, math.ceil(n ** (1 / 3))), max(1, n // 2)))
-
-
-def bootstrap_indices(n: int, length: int, block: int, rng: np.random.Generator) -> np.ndarray:
-    """Indices of a circular moving-block bootstrap path of ``length`` from ``n`` observations."""
-    k = -(-length // block)
-    starts = rng.integers(0, n, size=k)
-    return ((starts[:, None] + np.arange(block)[None, :]) % n).ravel()[:length]
 
 
 def _series_material(rows, est, pipe, seed: int) -> list[dict]:
@@ -219,29 +198,43 @@ def calibrate(log, out_dir, *, config: Config | None = None, arl0: float = 20000
     est = estimator_from_config(cfg)
     pipe = Pipeline.from_config(cfg, est)
     rows = load_rows(log, cfg, chunk_rows, now_ns)
-    material = _series_material(rows, est, pipe, seed)
-    if not material:
-        raise ConfigError(f"{log}: no series has 30 observations past warm-up; the bootstrap "
-                          "check needs the log's own innovations")
-    for m in material:
-        m["block"] = block_length(m["z"])
-    charts = {}
+    charts, unchecked, split = {}, {}, False
     for signal, th in pipe.settings()["thresholds"].items():
-        if th is not None and th["chart"] in _OUT_OF_REACH:
+        if th is None:
+            continue
+        if th["chart"] in _OUT_OF_REACH:
             kw = {k: v for k, v in th.items() if k in ("k", "lam")}
             charts[signal] = (th["chart"], th["threshold"], kw)
-    # detectors this bootstrap cannot check (the split likelihood-ratio detector, the default,
-    # has no chart statistic to replay on resampled innovations yet): said, never skipped silently
-    unchecked = {signal: (f"{signal}: the {th['chart']} detector is not checked by this "
-                          "bootstrap (it covers the CUSUM/EWMA/Page-Hinkley charts only); check it "
-                          "with a truth file (elmon tune LOG --truth TRUTH) or select the charts "
-                          "([detectors] change_detector = \"charts\")")
-                 for signal, th in pipe.settings()["thresholds"].items()
-                 if th is not None and th["chart"] not in _OUT_OF_REACH}
+        elif th["chart"] == "split_glr" and getattr(est, "model", "") == "loglinear":
+            split = True
+        else:      # said, never skipped silently
+            unchecked[signal] = (f"{signal}: the {th['chart']} detector with the "
+                                 f"{getattr(est, 'model', '?')} model is not checked by this "
+                                 "bootstrap (it resamples log-log residuals); check it with a "
+                                 "truth file (elmon tune LOG --truth TRUTH)")
+    alert_rates = None
+    if split:
+        from monitor.tuning.alert_check import check_alert_rates
+
+        alert_rates = check_alert_rates(rows, cfg, arl0, n_obs=n_steps, seed=seed,
+                                        progress=progress)
+        if not alert_rates["checked"]:
+            unchecked.update({s: f"{s}: split_glr not checked: {alert_rates['reason']}"
+                              for s in ("level", "slope")})
+    if not charts and (alert_rates is None or not alert_rates["checked"]) and not unchecked:
+        raise ConfigError(f"{log}: nothing to check: no detector with a threshold is configured")
+    material = []
+    if charts:
+        material = _series_material(rows, est, pipe, seed)
+        if not material:
+            raise ConfigError(f"{log}: no series has 30 observations past warm-up; the bootstrap "
+                              "check needs the log's own innovations")
+    for m in material:
+        m["block"] = block_length(m["z"])
     n_steps = int(n_steps or 12_000_000)
     length = int(max(10, min(5 * arl0, n_steps // n_paths)))
     stats = chart_paths(material, cfg, {s: (c, h) for s, (c, h, _) in charts.items()}, n_paths,
-                        length, seed)
+                        length, seed) if charts else {}
     checks, thresholds = {}, {}
     for signal, (chart, h_design, kw) in charts.items():
         st = stats[signal]
@@ -275,17 +268,27 @@ def calibrate(log, out_dir, *, config: Config | None = None, arl0: float = 20000
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     setting = {("detectors", "arl0"): arl0, **{("detectors", k): v for k, v in thresholds.items()}}
+    split_msgs = [] if alert_rates is None or not alert_rates["checked"] else \
+        [k["message"] for k in alert_rates["kinds"].values()]
     header = (f"elmon tune --arl0 {arl0:g}: thresholds for {arl0:g} observations per series between "
-              "false alarms\n" + "\n".join([c["message"] for c in checks.values()]
+              "false alarms\n" + "\n".join([c["message"] for c in checks.values()] + split_msgs
                                              + list(unchecked.values())))
     (out / "recommended.toml").write_text(to_toml(recommended_config(base, setting), header))
+    if material:
+        used, paths, blocks = len(material), n_paths, [m["block"] for m in material]
+    elif alert_rates is not None and alert_rates["checked"]:
+        used, paths, length = (alert_rates["series_used"], alert_rates["paths"],
+                               int(alert_rates["median_path_length"]))
+        blocks = [0]      # no blocks: the split check resamples by an autoregressive sieve
+    else:
+        used, paths, length, blocks = 0, 0, 0, [0]
     summary = {"log": str(log), "arl0": arl0, "mode": "design check by block bootstrap",
-               "series_used": len(material), "observations": rows.n, "paths": n_paths,
+               "series_used": used, "observations": rows.n, "paths": paths,
                "path_length": length, "block_lengths": {
-                   "median": float(np.median([m["block"] for m in material])),
-                   "max": int(max(m["block"] for m in material))},
-               "checks": checks, "unchecked": unchecked,
-               "flagged": any(c["flagged"] for c in checks.values()),
+                   "median": float(np.median(blocks)), "max": int(max(blocks))},
+               "checks": checks, "unchecked": unchecked, "alert_rates": alert_rates,
+               "flagged": any(c["flagged"] for c in checks.values())
+               or bool(alert_rates and alert_rates.get("flagged")),
                "recommended_thresholds": thresholds, "seed": seed,
                "timing": {"wall_s": time.perf_counter() - t0}}
     (out / "calibration.json").write_text(json.dumps(summary, indent=2, sort_keys=True))
