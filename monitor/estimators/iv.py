@@ -26,7 +26,6 @@ True
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from typing import Mapping, Sequence
 
 import numpy as np
@@ -34,6 +33,7 @@ import numpy as np
 from monitor.errors import ValidationError
 from monitor.estimators import iv_kernel as IK
 from monitor.estimators import kernel as K
+from monitor.estimators.batch import BatchResult
 from monitor.estimators.rls import check_range, floats_from_json, floats_to_json
 from monitor.estimators.tquantile import t_table
 from monitor.estimators.transform import (ControlSpec, check_quantity, design_row,
@@ -135,6 +135,11 @@ class ElasticityIV:
     @property
     def state_size(self) -> int:
         return IK.state_size(self._kp, self._nq)
+
+    @property
+    def control_specs(self) -> tuple:
+        """Design specs of the controls then the instruments, in design-row order."""
+        return self._specs
 
     @property
     def parameter_names(self) -> list[str]:
@@ -267,32 +272,13 @@ def iv_from_settings(params: Mapping) -> ElasticityIV:
     return est
 
 
-@dataclass
-class IVBatchResult:
-    """Per-row outputs (columns ``kernel.O_*`` and :data:`iv_kernel.O_FSTAT`) and final states."""
-
-    out: np.ndarray
-    states: np.ndarray
-
-    @property
-    def beta(self) -> np.ndarray:
-        return self.out[:, K.O_BETA]
-
-    @property
-    def beta_lo(self) -> np.ndarray:
-        return self.out[:, K.O_LO]
-
-    @property
-    def beta_hi(self) -> np.ndarray:
-        return self.out[:, K.O_HI]
+class IVBatchResult(BatchResult):
+    """Per-row outputs (columns ``kernel.O_*`` and :data:`iv_kernel.O_FSTAT`) and final states:
+    :class:`~monitor.estimators.batch.BatchResult` plus the first-stage F statistic."""
 
     @property
     def first_stage_f(self) -> np.ndarray:
         return self.out[:, IK.O_FSTAT]
-
-    @property
-    def status(self) -> np.ndarray:
-        return self.out[:, K.O_STATUS].astype(np.int8)
 
     def status_labels(self) -> list[str]:
         return [status_label(s) for s in self.status]
