@@ -80,10 +80,11 @@ def batches(log: pd.DataFrame) -> list[pd.DataFrame]:
 def memory(mon: Monitor) -> dict:
     """Every piece of a Monitor's in-memory state a batch can change."""
     gate = {k: (v.copy() if hasattr(v, "copy") else v) for k, v in vars(mon.gate).items()}
-    return {"gate": gate, "index": dict(mon._index), "names": list(mon._names),
-            "states": mon._states.copy(), "updates": dict(mon._updates),
-            "last_status": dict(mon._last_status), "last_obs": dict(mon._last_obs),
-            "zero": dict(mon._zero), "rows_read": dict(mon._rows_read)}
+    book = mon.book
+    return {"gate": gate, "index": dict(book.index), "names": list(book.names),
+            "states": book.states.copy(), "updates": dict(book.updates),
+            "last_status": dict(book.last_status), "last_obs": dict(book.last_obs),
+            "zero": dict(book.zero), "rows_read": dict(book.rows_read)}
 
 
 def assert_same_memory(a: dict, b: dict) -> None:

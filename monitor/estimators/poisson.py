@@ -131,6 +131,11 @@ class ElasticityPoisson:
         return parameter_names(self._specs)
 
     @property
+    def control_specs(self) -> tuple:
+        """The controls' design specs, in design-row order (after the intercept and log price)."""
+        return self._specs
+
+    @property
     def kernel_args(self) -> tuple:
         """Arguments after the data in :func:`monitor.estimators.dispatch.estimator_run`."""
         return (self._band, self._lags, self.forgetting, self.excitation_guard,

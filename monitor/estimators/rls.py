@@ -164,6 +164,11 @@ class ElasticityRLS:
         return parameter_names(self._specs)
 
     @property
+    def control_specs(self) -> tuple:
+        """The controls' design specs, in design-row order (after the intercept and log price)."""
+        return self._specs
+
+    @property
     def kernel_args(self) -> tuple:
         """Arguments after the data in :func:`monitor.estimators.kernel.rls_run`."""
         return (self._band, self._lags, self.forgetting, self.excitation_guard,

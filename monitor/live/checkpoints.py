@@ -21,6 +21,8 @@ continues exactly as an uninterrupted one. Each source's row count comes back fr
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
+
 import numpy as np
 
 from monitor.errors import ConfigError, StoreError, ValidationError
@@ -49,40 +51,65 @@ def _changed_model(series: str, what: str) -> StoreError:
                       f"another model configuration (use a new store or the old configuration)")
 
 
-def restore(mon) -> None:
-    """Set a Monitor's per-series state from the store's checkpoints and offsets."""
-    mon.gate = SeriesGate()
-    mon._index, mon._names = {}, []
-    mon._width = mon.pipeline.new_states(1).shape[1]
+@dataclass
+class SeriesBook:
+    """The engine's memory of every series besides the validation gate, kept by
+    :class:`monitor.live.monitor.Monitor` and filled from the checkpoints by :func:`restore`.
+
+    ``index[name]`` is the series' row of ``states`` (``len(names) x width`` pipeline vectors,
+    in ``names`` order); ``updates``, ``last_status``, ``last_obs`` (ns) and ``zero`` are the
+    checkpoint's fields per series; ``rows_read`` each source's committed row count.
+    """
+
+    width: int
+    index: dict = field(default_factory=dict)
+    names: list = field(default_factory=list)
+    states: np.ndarray | None = None
+    updates: dict = field(default_factory=dict)
+    last_status: dict = field(default_factory=dict)
+    last_obs: dict = field(default_factory=dict)
+    zero: dict = field(default_factory=dict)
+    rows_read: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        if self.states is None:
+            self.states = np.zeros((0, self.width), dtype=np.float64)
+
+
+def restore(store, pipeline) -> tuple[SeriesGate, SeriesBook]:
+    """The validation gate and the series book of a store's checkpoints and offsets."""
+    gate = SeriesGate()
+    book = SeriesBook(width=pipeline.new_states(1).shape[1])
     vectors = []
-    mon._updates, mon._last_status, mon._last_obs, mon._zero = {}, {}, {}, {}
-    for series, cp in sorted(load_checkpoints(mon.store).items()):
+    for series, cp in sorted(load_checkpoints(store).items()):
         st = cp.state
         if st.get("pipeline") is None:        # reset (elmon series reset): a new series' state
-            vec = mon.pipeline.new_states(1)[0]
+            vec = pipeline.new_states(1)[0]
         else:
             try:
-                vec = vector_from_json(mon.pipeline, st["pipeline"])
+                vec = vector_from_json(pipeline, st["pipeline"])
             except (ConfigError, ValidationError) as exc:
                 raise _changed_model(series, str(exc)) from None
-        if vec.shape != (mon._width,):
+        if vec.shape != (book.width,):
             raise _changed_model(series, f"a state of length {vec.size}, this configuration "
-                                         f"needs {mon._width}")
-        mon._index[series] = len(mon._names)
-        mon._names.append(series)
+                                         f"needs {book.width}")
+        book.index[series] = len(book.names)
+        book.names.append(series)
         vectors.append(vec)
         if st.get("gate") is not None:
-            mon.gate.restore(series, st["gate"])
-        mon._updates[series] = int(st.get("updates", 0))
+            gate.restore(series, st["gate"])
+        book.updates[series] = int(st.get("updates", 0))
         if st.get("last_status") is not None:
-            mon._last_status[series] = st["last_status"]
-        mon._last_obs[series] = int(st.get("last_obs_ns", NAT))
-        mon._zero[series] = int(st.get("zero_skipped", 0))
-    mon._states = np.array(vectors, dtype=np.float64).reshape(len(vectors), mon._width)
-    mon._rows_read = rows_read_by_source(mon.store)
+            book.last_status[series] = st["last_status"]
+        book.last_obs[series] = int(st.get("last_obs_ns", NAT))
+        book.zero[series] = int(st.get("zero_skipped", 0))
+    book.states = np.array(vectors, dtype=np.float64).reshape(len(vectors), book.width)
+    book.rows_read = rows_read_by_source(store)
+    return gate, book
 
 
-def checkpoints(mon, touched: dict[str, dict], source: str) -> dict[str, dict]:
+def checkpoints(book: SeriesBook, gate: SeriesGate, pipeline, touched: dict[str, dict],
+                source: str) -> dict[str, dict]:
     """The checkpoint row of every series a batch touched.
 
     ``touched[series]`` holds ``updates``, ``last_status``, ``row`` (last source row), ``ts``
@@ -90,18 +117,18 @@ def checkpoints(mon, touched: dict[str, dict], source: str) -> dict[str, dict]:
     ``zero`` and ``zero_ts``; ``last_obs`` is set on each for the commit.
     """
     names = list(touched)
-    newest = np.array([max(mon._last_obs.get(s, NAT), touched[s]["ts"],
+    newest = np.array([max(book.last_obs.get(s, NAT), touched[s]["ts"],
                            touched[s].get("zero_ts", NAT)) for s in names], dtype=np.int64)
     text = format_ts(np.where(newest == NAT, 0, newest)) if len(names) else []
     out = {}
     for s, last_obs, iso in zip(names, newest.tolist(), text):
         t = touched[s]
-        vec = t["vec"] if t["vec"] is not None else mon._states[mon._index[s]]
-        gate = mon.gate.state_of(s) if s in mon.gate.index else None
+        vec = t["vec"] if t["vec"] is not None else book.states[book.index[s]]
+        gstate = gate.state_of(s) if s in gate.index else None
         t["last_obs"] = last_obs
-        state = {"pipeline": vector_to_json(mon.pipeline, vec), "gate": gate,
+        state = {"pipeline": vector_to_json(pipeline, vec), "gate": gstate,
                  "updates": t["updates"], "last_status": t["last_status"],
-                 "last_obs_ns": last_obs, "zero_skipped": mon._zero.get(s, 0) + t.get("zero", 0)}
+                 "last_obs_ns": last_obs, "zero_skipped": book.zero.get(s, 0) + t.get("zero", 0)}
         out[s] = {"state": state, "last_ts": iso if last_obs != NAT else None,
                   "last_pos": {"source": source, "row": t["row"]}}
     return out

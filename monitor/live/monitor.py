@@ -90,7 +90,8 @@ class Monitor:
             self._lockfile = take_writer_lock(self.store.path)
             self.store.sinks = service_config.sink_names(self.config)
             self._lock = threading.RLock()
-            self._controls = list(self.estimator.controls) + list(self.estimator.log_controls)
+            #: controls the estimator reads (as given, then in logs), in its order
+            self.control_names = list(self.estimator.controls) + list(self.estimator.log_controls)
             self._required = required_columns(self.estimator)
             key = list(self.validation.key)
             if len(key) > 1:             # composite ids are built from the key columns
@@ -100,7 +101,10 @@ class Monitor:
             self._recorded: dict[str, dict] = {}   # series -> last written _in_effect record
             self._fast = not self.groups.enabled   # observe tries monitor.live.one_row first
             self.plain_calls = 0              # observe calls that took the one-row path
-            self._nan_median = np.zeros(0)
+            #: batch medians of the one-row path (all NaN: no batch), kept at the gate's size
+            self.nan_medians = np.zeros(0)
+            #: the engine's per-series memory (monitor.live.checkpoints.SeriesBook) and gate
+            self.gate, self.book = None, None
             self._restore()
         except BaseException:
             self.close()
@@ -108,30 +112,31 @@ class Monitor:
 
     # ------------------------------------------------------------------ set-up
 
-    def _vec_to_json(self, vec: np.ndarray):
+    def state_json(self, vec: np.ndarray):
+        """A pipeline state vector as the checkpoint's JSON list."""
         return vector_to_json(self.pipeline, vec)
 
     def _restore(self) -> None:
         """Every series from its checkpoint; each source's row count from its offset."""
-        restore(self)
+        self.gate, self.book = restore(self.store, self.pipeline)
 
     @property
     def series(self) -> list[str]:
         """Names of the series the monitor holds state for."""
-        return list(self._names)
+        return list(self.book.names)
 
     def state_of(self, series: str) -> np.ndarray:
         """A copy of a series' pipeline state vector."""
-        return self._states[self._index[series]].copy()
+        return self.book.states[self.book.index[series]].copy()
 
     def _ensure(self, names: list[str]) -> np.ndarray:
-        new = [n for n in names if n not in self._index]
+        new = [n for n in names if n not in self.book.index]
         if new:
             for n in new:
-                self._index[n] = len(self._names)
-                self._names.append(n)
-            self._states = np.vstack([self._states, self.pipeline.new_states(len(new))])
-        return np.array([self._index[n] for n in names], dtype=np.int64)
+                self.book.index[n] = len(self.book.names)
+                self.book.names.append(n)
+            self.book.states = np.vstack([self.book.states, self.pipeline.new_states(len(new))])
+        return np.array([self.book.index[n] for n in names], dtype=np.int64)
 
     # ------------------------------------------------------------------ the Python API
     def observe(self, series: str, ts, price, quantity, **controls) -> Estimate | None:
@@ -194,7 +199,7 @@ class Monitor:
         n_pre = 0 if pre_rejects is None else len(pre_rejects)
         with self._lock:
             if rows is None:
-                base = self._rows_read.get(source, 0)
+                base = self.book.rows_read.get(source, 0)
                 rows = np.arange(base + 1, base + len(frame) + 1, dtype=np.int64)
             rows = np.asarray(rows, dtype=np.int64)
             consumed = len(frame) + n_pre if consumed is None else int(consumed)
@@ -226,7 +231,7 @@ class Monitor:
                 raise
             self._commit(plan)
             self._recorded.update({r["series"]: r for r in record})
-            self._rows_read[source] = self._rows_read.get(source, 0) + consumed
+            self.book.rows_read[source] = self.book.rows_read.get(source, 0) + consumed
             self.groups.after_batch(plan["checkpoints"])   # pooled latest, group alerts
             self.store.bound_wal(self.wal_max_bytes)      # readers cannot grow it for good
         return BatchReport(source=source, rows=consumed, accepted=plan["accepted"],
@@ -251,13 +256,13 @@ class Monitor:
                        now_ns=int(self.clock_ns()), rows=rows,
                        order=order_of(self.validation, "arrival"))
         good = v.good
-        zeros = zero_rows(frame, v.zero_skipped, self._controls) if len(v.zero_skipped) else None
+        zeros = zero_rows(frame, v.zero_skipped, self.control_names) if len(v.zero_skipped) else None
 
         # repeats the gate cannot see (late copies of stored times, zero-quantity rows)
         cand = pd.concat([good[["row", "series", "ts"]].assign(zero=False),
                           zeros[["row", "series", "ts"]].assign(zero=True)
                           if zeros is not None else None], ignore_index=True)
-        seen = {n: self._last_obs.get(n, NAT) for n in set(cand["series"])}
+        seen = {n: self.book.last_obs.get(n, NAT) for n in set(cand["series"])}
         dup, late = duplicates_against_store(
             self.store, cand, seen, self.validation.duplicate_policy == "reject_all",
             int(self.validation.allowed_lateness_s * 1e9))
@@ -280,16 +285,16 @@ class Monitor:
         if len(good):
             sid, X, y, names = prepare_rows(good, self.estimator)
             glob = self._ensure(names)
-            states = self._states[glob].copy()
-            kw = self._run_extras(good["ts"].to_numpy(dtype=np.int64), names)
+            states = self.book.states[glob].copy()
+            kw = self.run_extras(good["ts"].to_numpy(dtype=np.int64), names)
             res = self.pipeline.run(sid, X, y, n_series=len(names), states=states,
                                     offset=offset_of(good, self.estimator), **kw)
             est = estimates_frame(good, res.out, res.status)
             plan["estimates"] = est
             plan["kept"] = thin_estimates(
                 est, self.estimates_every,
-                previous_status={s: self._last_status[s] for s in names if s in self._last_status},
-                start_count={s: self._updates.get(s, 0) for s in names})
+                previous_status={s: self.book.last_status[s] for s in names if s in self.book.last_status},
+                start_count={s: self.book.updates.get(s, 0) for s in names})
             plan["changes"] = alert_changes(res, est, names, sid)
             plan["states"] = (glob, res.states)
             plan["delay50"] = dict(zip(names, self.pipeline.delay50_obs(res.states)))  # issue 12
@@ -306,28 +311,28 @@ class Monitor:
             status = est["status"].to_numpy()
             for k in range(m):
                 s = names[k]
-                touched[s] = {"updates": self._updates.get(s, 0) + int(count[k]),
+                touched[s] = {"updates": self.book.updates.get(s, 0) + int(count[k]),
                               "last_status": status[last[k]], "row": int(top[k]),
                               "ts": int(newest[k]), "vec": res.states[k]}
-            obs_parts.append(observation_frame(good, self._controls, label,
+            obs_parts.append(observation_frame(good, self.control_names, label,
                                                est["ts"].to_numpy()))
         if zeros is not None and len(zeros):
             zc = zeros.groupby("series").agg(n=("row", "size"), row=("row", "max"),
                                              ts=("ts", "max"))
             self._ensure(list(zc.index))
             for s, r in zc.iterrows():
-                t = touched.setdefault(s, {"updates": self._updates.get(s, 0),
-                                           "last_status": self._last_status.get(s),
+                t = touched.setdefault(s, {"updates": self.book.updates.get(s, 0),
+                                           "last_status": self.book.last_status.get(s),
                                            "row": 0, "ts": NAT, "vec": None})
                 t["zero"] = int(r["n"])
                 t["row"] = max(t["row"], int(r["row"]))
                 t["zero_ts"] = int(r["ts"])
-            obs_parts.append(observation_frame(zeros, self._controls, label))
+            obs_parts.append(observation_frame(zeros, self.control_names, label))
             plan["zero_count"] = len(zeros)
         if obs_parts:
             plan["observations"] = pd.concat(obs_parts, ignore_index=True)
         plan["touched"] = touched
-        plan["checkpoints"] = checkpoints(self, touched, source)
+        plan["checkpoints"] = checkpoints(self.book, self.gate, self.pipeline, touched, source)
         return plan
 
     def _in_effect(self, names: list[str]) -> list[dict]:
@@ -353,7 +358,7 @@ class Monitor:
                 out.append(rec)
         return out
 
-    def _run_extras(self, ts: np.ndarray, names: list[str]) -> dict:
+    def run_extras(self, ts: np.ndarray, names: list[str]) -> dict:
         """Optional arguments of ``Pipeline.run``: row times, series names (for messages) and
         each series' own elasticity bounds from the store's ``series`` table (a side not set
         there keeps the ``[bounds]`` limit)."""
@@ -388,8 +393,8 @@ class Monitor:
         after the transaction), so keeping the reference is enough.
         """
         gate = {k: (v.copy() if hasattr(v, "copy") else v) for k, v in vars(self.gate).items()}
-        return {"gate": gate, "index": dict(self._index), "names": list(self._names),
-                "states": self._states}
+        return {"gate": gate, "index": dict(self.book.index), "names": list(self.book.names),
+                "states": self.book.states}
 
     def _rollback(self, snap: dict) -> None:
         """Put back the in-memory state saved by :meth:`_snapshot`."""
@@ -398,20 +403,20 @@ class Monitor:
                 delattr(self.gate, k)
         for k, v in snap["gate"].items():
             setattr(self.gate, k, v)
-        self._index, self._names = snap["index"], snap["names"]
-        self._states = snap["states"]
+        self.book.index, self.book.names = snap["index"], snap["names"]
+        self.book.states = snap["states"]
 
     def _commit(self, plan: dict) -> None:
         """Move the committed batch's state into memory (only after the transaction)."""
         if plan["states"] is not None:
             glob, states = plan["states"]
-            self._states[glob] = states
+            self.book.states[glob] = states
         for s, t in plan["touched"].items():
-            self._updates[s] = t["updates"]
+            self.book.updates[s] = t["updates"]
             if t["last_status"] is not None:
-                self._last_status[s] = t["last_status"]
-            self._last_obs[s] = t["last_obs"]
-            self._zero[s] = self._zero.get(s, 0) + t.get("zero", 0)
+                self.book.last_status[s] = t["last_status"]
+            self.book.last_obs[s] = t["last_obs"]
+            self.book.zero[s] = self.book.zero.get(s, 0) + t.get("zero", 0)
 
     # ------------------------------------------------------------------ closing
     def close(self) -> None:
@@ -429,4 +434,4 @@ class Monitor:
         self.close()
 
     def __repr__(self) -> str:
-        return f"<Monitor {str(self.store.path)!r}: {len(self._names)} series>"
+        return f"<Monitor {str(self.store.path)!r}: {len(self.book.names)} series>"

@@ -93,18 +93,18 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
     """Process one plainly valid observation (module docstring), or return :data:`NOT_PLAIN`."""
     if not isinstance(series, str) or not series.strip():
         return NOT_PLAIN
-    gi, vi = mon.gate.index.get(series), mon._index.get(series)
+    gi, vi = mon.gate.index.get(series), mon.book.index.get(series)
     p, q, ns = _number(price), _number(quantity), plain_ns(ts)
     lo, hi = mon.validation.min_value, mon.validation.max_value
     if gi is None or vi is None or p is None or q is None or ns is None \
             or not (lo <= p <= hi and lo <= q <= hi):
         return NOT_PLAIN                     # outside the accepted range: worded by the batch path
-    if ns <= mon._last_obs.get(series, NAT):
+    if ns <= mon.book.last_obs.get(series, NAT):
         return NOT_PLAIN                     # a repeat or late row: the general path words it
     if ns > int(mon.clock_ns()) + int(mon.validation.max_future_s * 1e9):
         return NOT_PLAIN
     values = {}
-    for name in mon._controls:
+    for name in mon.control_names:
         v = _number(controls.get(name)) if name in controls else None
         if v is None or abs(v) > hi or (name in mon.estimator.log_controls
                                          and not lo <= v <= hi):
@@ -112,15 +112,15 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
         values[name] = v
     gate = mon.gate
     saved = (gate.last_ts[gi], gate.ring[gi].copy(), gate.ring_ts[gi].copy(), gate.count[gi])
-    if mon._nan_median.size != gate.last_ts.size:
-        mon._nan_median = np.full(gate.last_ts.size, np.nan)
+    if mon.nan_medians.size != gate.last_ts.size:
+        mon.nan_medians = np.full(gate.last_ts.size, np.nan)
     code = np.zeros(1, dtype=np.int8)
     price_arr = np.array([p])
     ordered_checks(np.array([gi], dtype=np.int64), np.array([ns], dtype=np.int64),
                     np.log(price_arr), gate.last_ts, gate.ring, gate.ring_ts, gate.count,
                     np.int64(mon.validation.allowed_lateness_s * 1e9),
                     math.log(mon.validation.unit_ratio),
-                    mon.validation.duplicate_policy == "reject_all", code, mon._nan_median)
+                    mon.validation.duplicate_policy == "reject_all", code, mon.nan_medians)
     if code[0] != 0:                         # rejected: the kernel changed nothing
         return NOT_PLAIN
     try:
@@ -131,12 +131,12 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
 
 
 def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
-    specs = mon.estimator._specs
+    specs = mon.estimator.control_specs
     X = design_matrix(price_arr, {c.name: np.array([values[c.name]]) for c in specs}, specs)
     y = np.log(np.array([q], dtype=np.float64))
     sid = np.zeros(1, dtype=np.int64)
-    states = mon._states[[vi]].copy()
-    kw = mon._run_extras(np.array([ns], dtype=np.int64), [series])
+    states = mon.book.states[[vi]].copy()
+    kw = mon.run_extras(np.array([ns], dtype=np.int64), [series])
     res = mon.pipeline.run(sid, X, y, n_series=1, states=states, **kw)
     out, status = res.out[0], STATUS_LABELS[int(res.status[0])]
     ts = iso_z(ns)
@@ -144,8 +144,8 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
                                       K.O_INTERCEPT, K.O_RESID_SD, K.O_E, K.O_Z)]
     sql = [None if v != v else v for v in floats]
     estimate = (series, ts, *sql[:5], status, *sql[5:])
-    updates = mon._updates.get(series, 0) + 1
-    prev = mon._last_status.get(series)
+    updates = mon.book.updates.get(series, 0) + 1
+    prev = mon.book.last_status.get(series)
     keep = mon.estimates_every == 1 or updates % mon.estimates_every == 0 or prev != status
     changes = []
     records = getattr(res, "records", None)
@@ -153,14 +153,14 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
         est = pd.DataFrame({"ts": [ts]})
         changes = alert_changes(res, est, [series], sid)
     source = "api"
-    row = mon._rows_read.get(source, 0) + 1
+    row = mon.book.rows_read.get(source, 0) + 1
     gate_state = mon.gate.state_of(series)
-    last_obs = max(mon._last_obs.get(series, NAT), ns)
-    state = {"pipeline": mon._vec_to_json(res.states[0]), "gate": gate_state, "updates": updates,
+    last_obs = max(mon.book.last_obs.get(series, NAT), ns)
+    state = {"pipeline": mon.state_json(res.states[0]), "gate": gate_state, "updates": updates,
              "last_status": status, "last_obs_ns": last_obs,
-             "zero_skipped": mon._zero.get(series, 0)}
+             "zero_skipped": mon.book.zero.get(series, 0)}
     now = wall_ts()
-    controls = to_json({c: values[c] for c in mon._controls}) if mon._controls else None
+    controls = to_json({c: values[c] for c in mon.control_names}) if mon.control_names else None
     with mon.store.atomic():     # the row and the series' delay50_obs (as process_batch)
         write_one(
             mon.store, observation=(series, ts, p, q, controls, source, row), estimate=estimate,
@@ -170,11 +170,11 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
                         now),
             offset=(source, "api", None, 1, 0, now, None, 0), changes=changes)
         write_delay50(mon.store, {series: mon.pipeline.delay50_obs(res.states)[0]})
-    mon._states[vi] = res.states[0]
-    mon._updates[series] = updates
-    mon._last_status[series] = status
-    mon._last_obs[series] = last_obs
-    mon._rows_read[source] = row
+    mon.book.states[vi] = res.states[0]
+    mon.book.updates[series] = updates
+    mon.book.last_status[series] = status
+    mon.book.last_obs[series] = last_obs
+    mon.book.rows_read[source] = row
     mon.store.bound_wal(mon.wal_max_bytes)
     return Estimate(series=series, ts=ts, beta=floats[0], beta_se=floats[1], beta_lo=floats[2],
                     beta_hi=floats[3], n_eff=floats[4], status=status)

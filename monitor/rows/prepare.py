@@ -121,7 +121,7 @@ def response(good: pd.DataFrame, est) -> np.ndarray:
 
 def design_rows(good: pd.DataFrame, est) -> tuple[np.ndarray, np.ndarray]:
     """Design matrix ``[1, log p, controls]`` and the response of validated rows."""
-    specs = est.control_specs if hasattr(est, "control_specs") else est._specs
+    specs = est.control_specs
     X = design_matrix(good["price"].to_numpy(), {c.name: good[c.name].to_numpy() for c in specs},
                       specs)
     return X, response(good, est)
