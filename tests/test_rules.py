@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from monitor.detectors import PageHinkley
+from monitor.errors import ConfigError
 from monitor.detectors.arl import cusum_h_for_arl0
 from monitor.detectors.kernels import F_ALARM, F_REST_DN, F_REST_UP, F_USED
 from monitor.detectors.design import PRECOMPUTED, pipeline_threshold
@@ -124,6 +125,34 @@ def test_messages_and_severities_per_kind():
     frame = events_frame(np.vstack([r, cl]), np.array([3]), names=["a", "b", "c", "d"])
     assert frame["message"].str.startswith("d: ").all()
     assert json.loads(json.dumps(frame["details"].tolist())) == frame["details"].tolist()
+
+
+def test_load_wording_speaks_of_load_and_tariffs_not_shops():
+    # issue 16: feeder alerts said "Look for a competitor, assortment, channel..."
+    from monitor.pipeline.messages import WORDING
+    from monitor.pipeline.settings import WORDINGS, RuleSettings
+
+    assert set(WORDING) == set(WORDINGS)
+    ec = _record("elasticity_change", b=-0.25, lo=-0.3, hi=-0.2, ob=-0.1, olo=-0.13, ohi=-0.07,
+                 size=-0.15, extra=-3.0)
+    ls = _record("level_shift", b=-0.2, lo=-0.25, hi=-0.15, ob=-0.2, olo=-0.25, ohi=-0.15,
+                 size=math.log(1.12))
+    lv = _record("low_variation", b=-0.2, lo=-0.3, hi=-0.1, size=0.004, extra=0.02)
+    for kind, r in (("elasticity_change", ec), ("level_shift", ls), ("low_variation", lv)):
+        retail = message(kind, "open", "feeder-north-07", r)
+        load = message(kind, "open", "feeder-north-07", r, wording="load")
+        assert load != retail
+        for shop_word in ("competitor", "assortment", "stock-out", "promotion", "price test"):
+            assert shop_word not in load, (kind, shop_word, load)
+    assert "tariff" in message("elasticity_change", "open", "f", ec, wording="load")
+    assert "load is about 12% above the model" in message("level_shift", "open", "f", ls,
+                                                           wording="load")
+    assert "changes load by" in message("level_shift", "open", "f", ls, wording="load")
+    assert "competitor" in message("elasticity_change", "open", "s", ec)   # retail by default
+    frame = events_frame(np.vstack([ls]), np.array([0]), names=["f"], wording="load")
+    assert frame["message"].str.contains("new connections").all()
+    with pytest.raises(ConfigError, match=r"\[rules\] wording = 'farm'"):
+        RuleSettings(wording="farm")
 
 
 # ----------------------------------------------------------------------------- design

@@ -128,15 +128,41 @@ def details(kind: str, action: str, r: np.ndarray) -> dict:
 
 
 
-def _split_change_text(series: str, r: np.ndarray, at: str, since: str, now: str) -> str:
+#: ``[rules] wording``: the advice and nouns of the alert texts for each trade (issue 16: feeder
+#: alerts spoke of competitors and assortments). Keys: what moves (``quantity``), the advice after
+#: a change of b, after a level shift and under low price variation, and the sound test.
+WORDING = {
+    "retail": {
+        "quantity": "quantity", "demand": "demand",
+        "change_advice": "Look for a competitor, assortment, channel or tariff change; confirm "
+                         "with a randomized price test before changing prices.",
+        "level_advice": "Check stock-outs, promotions, unit or feed changes and seasonality "
+                        "that the controls miss.",
+        "restore": "A planned price test would restore the estimate.",
+        "plan": "the price plan"},
+    "load": {
+        "quantity": "load", "demand": "load",
+        "change_advice": "Look for a programme change (enrolment, in-home displays, automated "
+                         "appliances), a change in the connected customers or a tariff "
+                         "change; confirm with a randomized tariff trial before changing "
+                         "tariffs.",
+        "level_advice": "Check new connections or disconnections, meter or feed changes, "
+                        "outages, and weather or calendar effects that the controls miss.",
+        "restore": "A tariff trial with varied prices would restore the estimate.",
+        "plan": "the tariff"},
+}
+
+
+def _split_change_text(series: str, r: np.ndarray, at: str, since: str, now: str,
+                       w: dict) -> str:
     before = _band(r[EV_OLD_B], r[EV_OLD_LO], r[EV_OLD_HI])
     after = _band(r[EV_AFTER_B], r[EV_AFTER_LO], r[EV_AFTER_HI])
     db = r[EV_SIZE]
     if db < 0:
-        way = (f"b fell by {abs(db):.2f}: demand became more sensitive to price"
+        way = (f"b fell by {abs(db):.2f}: {w['demand']} became more sensitive to price"
                if r[EV_OLD_B] <= 0 else f"b fell by {abs(db):.2f}")
     else:
-        way = (f"b rose by {db:.2f}: demand became less sensitive to price"
+        way = (f"b rose by {db:.2f}: {w['demand']} became less sensitive to price"
                if r[EV_AFTER_B] <= 0 else f"b rose by {db:.2f}")
     # the running estimate with its own effect (it re-anchors on the new regime within a few
     # dozen rows, so it can differ from the after-sample fit at the alarm)
@@ -144,20 +170,22 @@ def _split_change_text(series: str, r: np.ndarray, at: str, since: str, now: str
                      if math.isfinite(r[EV_BETA]) else "")
     return (f"{series}: the elasticity changed from {before} before to {after} since (the data "
             f"on each side of the change), {way}; detected at {at}, change began about {since}. "
-            f"A 10% price rise now changes quantity by {effect_of_10pct(r[EV_AFTER_B])} "
+            f"A 10% price rise now changes {w['quantity']} by {effect_of_10pct(r[EV_AFTER_B])} "
             f"(before: {effect_of_10pct(r[EV_OLD_B])}); the running estimate is {running}. "
-            f"{delay_text(r[EV_DELAY])[0].upper() + delay_text(r[EV_DELAY])[1:]}. Look for a "
-            "competitor, assortment, channel or tariff change; confirm with a randomized price "
-            "test before changing prices.")
+            f"{delay_text(r[EV_DELAY])[0].upper() + delay_text(r[EV_DELAY])[1:]}. "
+            + w["change_advice"])
 
 
-def message(kind: str, action: str, series: str, r: np.ndarray, causes: str = "") -> str:
-    """The text of one event record, for a person who has to act on it."""
+def message(kind: str, action: str, series: str, r: np.ndarray, causes: str = "",
+            wording: str = "retail") -> str:
+    """The text of one event record, for a person who has to act on it, in the words of the
+    trade ``wording`` (a key of :data:`WORDING`)."""
+    w = WORDING[wording]
     now = _band(r[EV_BETA], r[EV_LO], r[EV_HI])
     before = _band(r[EV_OLD_B], r[EV_OLD_LO], r[EV_OLD_HI])
     at = _fmt_ts(r[EV_TS], r[EV_N])
     since = _fmt_ts(r[EV_START_TS], r[EV_START_N])
-    effect = (f"a 10% price rise now changes quantity by {effect_of_10pct(r[EV_BETA])}"
+    effect = (f"a 10% price rise now changes {w['quantity']} by {effect_of_10pct(r[EV_BETA])}"
               if math.isfinite(r[EV_BETA]) else "")
     if action == "clear" and r[EV_SUPERSEDED] == 1.0:
         return (f"{series}: {kind.replace('_', ' ')} superseded at {at} by a further change "
@@ -167,26 +195,25 @@ def message(kind: str, action: str, series: str, r: np.ndarray, causes: str = ""
                 f"{_int(r[EV_SIZE])} observations; now {now}"
                 + (f", {effect}." if effect else "."))
     if kind == "elasticity_change" and math.isfinite(r[EV_AFTER_B]):
-        return _split_change_text(series, r, at, since, now)
+        return _split_change_text(series, r, at, since, now, w)
     if kind == "elasticity_change":
         was = effect_of_10pct(r[EV_OLD_B])
         return (f"{series}: the elasticity changed from {before} to {now} (fast estimate), "
                 f"detected at {at}, change began about {since}. {effect[0].upper() + effect[1:]} "
-                f"(before: {was}). Look for a competitor, assortment, channel or tariff change; "
-                "confirm with a randomized price test before changing prices.")
+                f"(before: {was}). " + w["change_advice"])
     if kind == "level_shift":
         pct = 100.0 * math.expm1(r[EV_SIZE]) if math.isfinite(r[EV_SIZE]) else math.nan
         way = "above" if pct > 0 else "below"
-        return (f"{series}: demand is about {abs(pct):.0f}% {way} the model at unchanged prices "
+        return (f"{series}: {w['demand']} is about {abs(pct):.0f}% {way} the model at unchanged "
+                "prices "
                 f"since about {since} (detected at {at}); the elasticity is not what moved: "
-                f"{now} (before: {before}), {effect}. Check stock-outs, promotions, unit or "
-                "feed changes and seasonality that the controls miss.")
+                f"{now} (before: {before}), {effect}. " + w["level_advice"])
     if kind == "out_of_bounds":
         side = "below" if r[EV_SIDE] < 0 else "above"
         rng = f"[{r[EV_SIZE]:g}, {r[EV_EXTRA]:g}]"
         return (f"{series}: the elasticity {now} is {side} the allowed range {rng} since "
                 f"{since} (confirmed at {at}; last inside: {before}); {effect}. Review the "
-                "data and the price plan; the estimate is evidence, not a decision.")
+                f"data and {w['plan']}; the estimate is evidence, not a decision.")
     if kind == "sign_flip":
         return (f"{series}: the elasticity is confidently positive, {now}, since {since} "
                 f"(last non-positive: {before}): higher prices with higher sales usually mean "
@@ -196,12 +223,13 @@ def message(kind: str, action: str, series: str, r: np.ndarray, causes: str = ""
         return (f"{series}: prices have barely varied since {since} (sd of log price "
                 f"{100.0 * r[EV_SIZE]:.1f}% < {100.0 * r[EV_EXTRA]:.1f}%); the elasticity "
                 f"{now} cannot be updated reliably and elasticity alerts are paused until "
-                "prices vary again. A planned price test would restore the estimate.")
+                "prices vary again. " + w["restore"])
     return f"{series}: {kind} {action} at {at}"
 
 
 def events_frame(records: np.ndarray, sid: np.ndarray, names=None,
-                 interval_mode: bool = True, feedback=None, feedback_events=()) -> pd.DataFrame:
+                 interval_mode: bool = True, feedback=None, feedback_events=(),
+                 wording: str = "retail") -> pd.DataFrame:
     """The events DataFrame (columns :data:`EVENT_COLUMNS`) from ``(m, NEV)`` records, plus
     the informational ``price_feedback`` events and, for ``sign_flip``, the likely causes in
     order from the row's price-feedback verdict (``feedback``: per-row ``FB_*`` outputs)."""
@@ -221,7 +249,8 @@ def events_frame(records: np.ndarray, sid: np.ndarray, names=None,
                      "message": message(kind, action, series, r, "" if feedback is None
                                         or kind != "sign_flip" else FB.sign_flip_causes(
                                             feedback[row, FB.FB_VERDICT],
-                                            feedback[row, FB.FB_DIRECTION])),
+                                            feedback[row, FB.FB_DIRECTION]),
+                                     wording),
                      "details": details(kind, action, r)})
     if len(feedback_events):
         rows = sorted(rows + FB.event_rows(feedback_events, names), key=lambda e: e["row"])

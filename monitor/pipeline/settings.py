@@ -58,7 +58,8 @@ RULE_KEYS = {"cooldown": (NUM, 50), "clear_after": (NUM, 200), "out_of_bounds": 
              "elasticity_change": (bool, True), "level_shift": (bool, True),
              "sign_flip": (bool, True), "low_variation": (bool, True),
              "sign_flip_persistence": (NUM, 5), "sign_flip_clear_after": (NUM, 5),
-             "low_variation_persistence": (NUM, 5), "low_variation_clear_after": (NUM, 20)}
+             "low_variation_persistence": (NUM, 5), "low_variation_clear_after": (NUM, 20),
+             "wording": (str, "retail")}
 #: the sections this module owns, for monitor.settings to compose
 SECTIONS = {"detectors": DETECTOR_KEYS, "bounds": BOUNDS_KEYS, "rules": RULE_KEYS}
 
@@ -89,6 +90,9 @@ def _validate(obj, section: str) -> None:
     for f in dataclasses.fields(obj):
         object.__setattr__(obj, f.name, _checked(section, f.name, getattr(obj, f.name)))
 
+
+#: ``[rules] wording``: the trades the alert texts can speak to
+WORDINGS = ("retail", "load")
 
 #: ``[detectors] change_detector``: the split GLR (default) or the previous charts
 CHANGE_DETECTORS = ("split_glr", "charts")
@@ -181,9 +185,15 @@ class RuleSettings:
     sign_flip_clear_after: int = 5
     low_variation_persistence: int = 5
     low_variation_clear_after: int = 20
+    #: words of the alert texts: "retail" (shops, price tests) or "load" (feeders, tariffs);
+    #: the texts are in :data:`monitor.pipeline.messages.WORDING`
+    wording: str = "retail"
 
     def __post_init__(self):
         _validate(self, "rules")
+        if self.wording not in WORDINGS:
+            raise ConfigError(f"[rules] wording = {self.wording!r}: must be one of "
+                              f"{', '.join(WORDINGS)} (the trade whose words the alert texts use)")
 
 
 def settings_from_config(config) -> tuple[DetectorSettings, BoundsSettings, RuleSettings]:
