@@ -126,6 +126,18 @@ def test_demo_config_comment_names_no_wrong_series_count():
     assert "12-series" not in text and "arl0 = 2000" in text
 
 
+def test_demo_configs_use_the_words_of_their_trade():
+    # issue 16 item 6: the load demo's alerts spoke of competitors and assortments
+    import tomllib
+
+    from monitor.cli.demo import DemoSettings, demo_config_text
+    from monitor.settings import validate
+
+    for scenario, wording in (("retail", "retail"), ("load", "load")):
+        text = demo_config_text(DemoSettings(scenario=scenario), Path("x.sqlite"))
+        assert validate(tomllib.loads(text)).section("rules")["wording"] == wording
+
+
 def test_example_config_effective_window_is_kish():
     """(1 + λ) / (1 − λ) at λ = 0.98 is 99 (Kish's effective n, the dashboard's definition)."""
     root = Path(__file__).resolve().parents[1]

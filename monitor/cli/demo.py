@@ -33,7 +33,7 @@ from monitor.errors import ConfigError
 SCENARIO_SETTINGS = {
     "retail": {"forgetting": 0.98, "controls": ["promo", "weekend"], "speed": 8 * 86400.0},
     "load": {"forgetting": 0.995, "controls": ["hdd", "cdd", "event", "shoulder", "peak"],
-             "speed": 4 * 3600.0},
+             "speed": 4 * 3600.0, "wording": "load"},
     "observational": {"forgetting": 0.98, "controls": ["weekend"], "speed": 8 * 86400.0},
     "flat": {"forgetting": 0.98, "controls": ["weekend"], "speed": 8 * 86400.0},
 }
@@ -71,6 +71,10 @@ controls = [{controls}]
 
 [validation]
 zero_policy = "skip"
+
+[rules]
+# the words of the alert texts: "retail" (shops) or "load" (feeders and tariffs)
+wording = "{est.get('wording', 'retail')}"
 
 [detectors]
 # in-control ARL 2,000 observations per chart, so that the demo reacts within its few
