@@ -101,7 +101,8 @@ def _ordered_rows(ctx: Context) -> list[Row]:
 
     def run_new():
         st = fresh()
-        ordered_checks(sid, ts, lp, *st[:4], 0, np.log(50.0), False, st[4], bm)
+        ordered_checks(sid, ts, lp, *st[:4], 0, np.log(50.0), False, st[4], bm,
+                       np.zeros(sid.size), np.zeros((S, WINDOW)), np.zeros(S, np.int64), 0.0)
         return st
 
     def run_old():

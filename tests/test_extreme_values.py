@@ -34,6 +34,9 @@ RANGE = "outside the accepted range [1e-09, 1e+12]"
 #: (series, ts, price, quantity) of each hostile row, and the field and rule it must be
 #: rejected for (None: it is processed)
 HOSTILE = [
+    # in range, but 1e8 and 1e-8 times series a's recent quantities (about 150): its history
+    ("a", "2024-03-01T02:20:00Z", "1.4", "1.5e10", "quantity", "suspected quantity error"),
+    ("a", "2024-03-01T02:40:00Z", "1.4", "1.5e-6", "quantity", "suspected quantity error"),
     ("b", "2024-03-02T00:00:00Z", "1e308", "5", "price", RANGE),
     ("b", "2024-03-02T01:00:00Z", "2", "1e308", "quantity", RANGE),
     ("b", "2024-03-02T02:00:00Z", "1e300", "5", "price", RANGE),
@@ -160,9 +163,12 @@ def test_processed_rows_are_the_same_in_ingest_and_replay(ingested):
         assert list(r["ts"]) == list(i["ts"])
         np.testing.assert_allclose(r["beta"].to_numpy(float), i["beta"].to_numpy(float),
                                    rtol=0, atol=1e-12, equal_nan=True)
-    # series b recovers: its 30 good rows after the extreme ones give a sane elasticity
+    # series b recovers: its 30 good rows after the extreme ones give a sane elasticity, and
+    # series a keeps its own (the quantity spikes never reached the estimator)
     b = mstore.series_history(db, "b")
     assert b["beta"].iloc[-1] == pytest.approx(-1.5, abs=0.6)
+    a = mstore.series_history(db, "a")
+    assert a["beta"].iloc[-1] == pytest.approx(-1.5, abs=0.3)
 
 
 def test_times_before_1970_and_offsets_are_stored_as_utc(ingested):
@@ -247,3 +253,14 @@ def test_value_limits_are_settings_checked_by_name():
     cfg = validate({"validation": {"min_value": 1e-3, "max_value": 1e6}})
     from monitor.rows.validate import validation_from_config
     assert validation_from_config(cfg).max_value == 1e6
+
+
+def test_gate_of_an_older_checkpoint_starts_its_quantity_history_afresh():
+    from monitor.rows.validate import WINDOW, SeriesGate
+
+    gate = SeriesGate()
+    gate.restore("s", {"last_ts": 5, "ring": [0.5] * WINDOW, "ring_ts": list(range(WINDOW)),
+                       "count": 40})                 # written before the quantity check
+    assert gate.qcount[0] == 0 and gate.count[0] == 40
+    state = gate.state_of("s")
+    assert state["qcount"] == 0 and len(state["qring"]) == WINDOW

@@ -194,7 +194,8 @@ def test_ordered_checks_same_codes_as_the_numpy_median_walk():
 
     got = fresh()
     ordered_checks(sid, ts, lp, *got[:4], 3_600 * 10**9, np.log(50.0), False, got[4],
-                   batch_median)
+                   batch_median, np.zeros(n), np.zeros((S, WINDOW)), np.zeros(S, np.int64),
+                   0.0)                                    # the quantity check off: as the oracle
     want = fresh()
     _ordered_checks_oracle(sid, ts, lp, *want[:4], 3_600 * 10**9, np.log(50.0), want[4],
                            batch_median)

@@ -22,7 +22,7 @@ import pandas as pd
 from monitor.estimators import kernel as K
 from monitor.estimators.transform import design_matrix
 from monitor.live.batch import NAT, alert_changes
-from monitor.rows.validate import TS_MAX_NS, TS_MIN_NS, ordered_checks
+from monitor.rows.validate import TS_MAX_NS, TS_MIN_NS, log_qratio, ordered_checks
 from monitor.store import to_json, wall_ts
 from monitor.store.detection import write_delay50
 from monitor.store.live import write_one
@@ -111,7 +111,8 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
             return NOT_PLAIN
         values[name] = v
     gate = mon.gate
-    saved = (gate.last_ts[gi], gate.ring[gi].copy(), gate.ring_ts[gi].copy(), gate.count[gi])
+    saved = (gate.last_ts[gi], gate.ring[gi].copy(), gate.ring_ts[gi].copy(), gate.count[gi],
+             gate.qring[gi].copy(), gate.qcount[gi])
     if mon.nan_medians.size != gate.last_ts.size:
         mon.nan_medians = np.full(gate.last_ts.size, np.nan)
     code = np.zeros(1, dtype=np.int8)
@@ -120,13 +121,15 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
                     np.log(price_arr), gate.last_ts, gate.ring, gate.ring_ts, gate.count,
                     np.int64(mon.validation.allowed_lateness_s * 1e9),
                     math.log(mon.validation.unit_ratio),
-                    mon.validation.duplicate_policy == "reject_all", code, mon.nan_medians)
+                    mon.validation.duplicate_policy == "reject_all", code, mon.nan_medians,
+                    np.log(np.array([q])), gate.qring, gate.qcount, log_qratio(mon.validation))
     if code[0] != 0:                         # rejected: the kernel changed nothing
         return NOT_PLAIN
     try:
         return _run_and_commit(mon, series, vi, ns, p, q, values, price_arr)
     except BaseException:
-        gate.last_ts[gi], gate.ring[gi], gate.ring_ts[gi], gate.count[gi] = saved
+        (gate.last_ts[gi], gate.ring[gi], gate.ring_ts[gi], gate.count[gi], gate.qring[gi],
+         gate.qcount[gi]) = saved
         raise
 
 

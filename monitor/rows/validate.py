@@ -21,7 +21,10 @@ Checks, in order, each giving one reason per row (the first that fails):
   a duplicate (same series and timestamp as the latest or one of the last 15 accepted rows;
   ``keep_first`` keeps the first and quarantines later copies); a row older than the series' last accepted time by more than ``allowed_lateness_s``;
   a suspected unit error: a price ``unit_ratio`` (50) times or more away from the median of the
-  series' last accepted prices (for example cents logged against dollars).
+  series' last accepted prices (for example cents logged against dollars); a suspected
+  quantity error: a non-zero quantity ``quantity_ratio`` (1000) times or more away from the
+  median of the series' last 15 accepted non-zero quantities (once 2 are known; a corrupt
+  1e300, or a count logged in thousandths, would otherwise dominate the estimate).
 """
 
 from __future__ import annotations
@@ -70,6 +73,7 @@ class ValidationSettings:
     allowed_lateness_s: float = 0.0
     max_future_s: float = 3600.0
     unit_ratio: float = 50.0
+    quantity_ratio: float = 1000.0         # 0 turns the quantity history check off
     key: tuple = ()                        # [series] key: 2+ columns make a composite id
     order: str = "auto"                    # auto | time | arrival (see monitor.rows.prepare)
     min_value: float = 1e-9                # price, non-zero quantity, logged control: >= this
@@ -89,6 +93,9 @@ class ValidationSettings:
                 raise ConfigError(f"{name} = {getattr(self, name)!r}: must be >= 0")
         if not self.unit_ratio > 1:
             raise ConfigError(f"unit_ratio = {self.unit_ratio!r}: must be > 1")
+        if not (self.quantity_ratio == 0 or 1 < self.quantity_ratio < math.inf):
+            raise ConfigError(f"quantity_ratio = {self.quantity_ratio!r}: must be > 1 and finite "
+                              f"(0 turns the check off)")
         if not (0 < self.min_value < self.max_value < math.inf):
             raise ConfigError(f"min_value = {self.min_value!r}, max_value = {self.max_value!r}: "
                               f"must be finite with 0 < min_value < max_value")
@@ -125,7 +132,8 @@ def check_ts_format(fmt: str) -> str:
 VALIDATION_KEYS = {"zero_policy": (str, "reject"), "duplicate_policy": (str, "keep_first"),
                    "allowed_lateness_s": ((int, float), 0.0),
                    "max_future_s": ((int, float), 3600.0), "unit_ratio": ((int, float), 50.0),
-                   "order": (str, "auto"), "min_value": ((int, float), 1e-9),
+                   "order": (str, "auto"), "quantity_ratio": ((int, float), 1000.0),
+                   "min_value": ((int, float), 1e-9),
                    "max_value": ((int, float), 1e12)}
 SECTIONS = {"validation": VALIDATION_KEYS}
 
@@ -289,6 +297,8 @@ class SeriesGate:
         self.ring = np.zeros((0, WINDOW))
         self.ring_ts = np.zeros((0, WINDOW), dtype=np.int64)
         self.count = np.zeros(0, dtype=np.int64)
+        self.qring = np.zeros((0, WINDOW))                  # recent log quantities (non-zero)
+        self.qcount = np.zeros(0, dtype=np.int64)
 
     def ids(self, series: np.ndarray) -> np.ndarray:
         codes, uniques = pd.factorize(series)
@@ -306,22 +316,28 @@ class SeriesGate:
             self.ring = np.vstack([self.ring, np.zeros((grow, WINDOW))])
             self.ring_ts = np.vstack([self.ring_ts, np.zeros((grow, WINDOW), dtype=np.int64)])
             self.count = np.concatenate([self.count, np.zeros(grow, dtype=np.int64)])
+            self.qring = np.vstack([self.qring, np.zeros((grow, WINDOW))])
+            self.qcount = np.concatenate([self.qcount, np.zeros(grow, dtype=np.int64)])
         return mapping[codes]
 
     def state_of(self, series: str) -> dict:
         i = self.index[series]
         return {"last_ts": int(self.last_ts[i]), "ring": self.ring[i].tolist(),
-                "ring_ts": self.ring_ts[i].tolist(), "count": int(self.count[i])}
+                "ring_ts": self.ring_ts[i].tolist(), "count": int(self.count[i]),
+                "qring": self.qring[i].tolist(), "qcount": int(self.qcount[i])}
 
     def restore(self, series: str, state: dict) -> None:
         """Set one series' state from :meth:`state_of`'s dict; a dict without ``ring`` (a reset
-        series: only ``last_ts``, ``count = 0``) starts the recent prices afresh."""
+        series: only ``last_ts``, ``count = 0``) starts the recent prices afresh, and one without
+        ``qring`` (a checkpoint of an older version) the recent quantities."""
         i = self.ids(np.array([series], dtype=object))[0]
         last = state.get("last_ts")
         self.last_ts[i] = np.iinfo(np.int64).min if last is None else int(last)
         self.ring[i] = np.asarray(state.get("ring", np.zeros(WINDOW)), dtype=np.float64)
         self.ring_ts[i] = np.asarray(state.get("ring_ts", np.zeros(WINDOW)), dtype=np.int64)
         self.count[i] = int(state["count"])
+        self.qring[i] = np.asarray(state.get("qring", np.zeros(WINDOW)), dtype=np.float64)
+        self.qcount[i] = int(state.get("qcount", 0))
 
 
 @njit(cache=True, inline="always")
@@ -344,11 +360,14 @@ def ring_median(ring, s, c, tmp):
 
 @njit(cache=True)
 def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_ratio,
-                    reject_all, code, batch_median):
-    """Walk rows sorted by (sid, ts, arrival); set code 1 duplicate, 2 late, 3 unit error.
+                    reject_all, code, batch_median, lq, qring, qcount, log_qratio):
+    """Walk rows sorted by (sid, ts, arrival); set code 1 duplicate, 2 late, 3 unit error,
+    4 quantity error.
 
     The unit check compares log price with the median of the series' last accepted prices (once
-    2 are known), or else with ``batch_median`` (NaN: no check).
+    2 are known), or else with ``batch_median`` (NaN: no check). The quantity check compares a
+    finite log quantity ``lq`` (``-inf`` for a zero kept as data: not checked, not kept) with
+    the median of the series' last accepted ones (once 2 are known; ``log_qratio`` <= 0: off).
     """
     n = sid.shape[0]
     w = ring.shape[1]
@@ -374,6 +393,15 @@ def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_
         if med == med and abs(lp[j] - med) >= log_ratio:
             code[j] = 3
             continue
+        finite_q = lq[j] > -np.inf
+        if finite_q and log_qratio > 0 and qcount[s] >= 2:
+            qmed = ring_median(qring, s, min(qcount[s], w), tmp)
+            if abs(lq[j] - qmed) >= log_qratio:
+                code[j] = 4
+                continue
+        if finite_q:
+            qring[s, qcount[s] % w] = lq[j]
+            qcount[s] += 1
         ring[s, count[s] % w] = lp[j]
         ring_ts[s, count[s] % w] = ts[j]
         count[s] += 1
@@ -391,7 +419,8 @@ def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_
 
 _ORDER_REASONS = {1: ("ts", "duplicate row: same series and timestamp as an earlier row"),
                   2: ("ts", "late row: older than the series' last accepted time beyond the allowed lateness"),
-                  3: ("price", "suspected unit error: price is {ratio:.0f}x or more away from the series' recent median")}
+                  3: ("price", "suspected unit error: price is {ratio:.0f}x or more away from the series' recent median"),
+                  4: ("quantity", "suspected quantity error: quantity is {qratio:.0f}x or more away from the series' recent median ([validation] quantity_ratio)")}
 
 
 def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
@@ -509,6 +538,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
             order = idx[np.argsort(sid_all[idx], kind="stable")]
         code = np.zeros(order.size, dtype=np.int8)
         lp = np.log(values["price"][order])
+        with np.errstate(divide="ignore"):
+            lq = np.log(values["quantity"][order])          # a zero kept as data: -inf
         grouped = pd.Series(lp).groupby(sid_all[order])
         batch_median = np.full(gate.last_ts.size, np.nan)
         if order_by == "time":
@@ -517,11 +548,11 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         ordered_checks(sid_all[order], ts[order], lp, gate.last_ts,
                         gate.ring, gate.ring_ts, gate.count, np.int64(settings.allowed_lateness_s * 1e9),
                         math.log(settings.unit_ratio), settings.duplicate_policy == "reject_all", code,
-                        batch_median)
+                        batch_median, lq, gate.qring, gate.qcount, log_qratio(settings))
         for c, (fld, text) in _ORDER_REASONS.items():
             m = np.zeros(n, dtype=bool)
             m[order[code == c]] = True
-            flag(m, fld, text.format(ratio=settings.unit_ratio))
+            flag(m, fld, text.format(ratio=settings.unit_ratio, qratio=settings.quantity_ratio))
         good_idx = order[code == 0]
         if order_by == "arrival":
             good_idx = np.sort(good_idx)
@@ -555,6 +586,11 @@ def _inf_words(col: pd.Series) -> np.ndarray:
         floats = np.zeros(len(col), dtype=bool)
     low = col.astype("string").str.strip().str.lower().str.lstrip("+-")
     return floats | low.isin(["inf", "infinity"]).to_numpy(dtype=bool, na_value=False)
+
+
+def log_qratio(settings: ValidationSettings) -> float:
+    """``log(quantity_ratio)``, or 0 (no quantity check) when the ratio is 0."""
+    return math.log(settings.quantity_ratio) if settings.quantity_ratio > 0 else 0.0
 
 
 def separator_hint(columns) -> str:
