@@ -53,12 +53,20 @@ def test_every_commented_table_of_the_example_is_accepted(tmp_path, monkeypatch)
     text = EXAMPLE.read_text(encoding="utf-8")
     assert "starttls = true" not in text, "the e-mail sink's TLS key is tls = \"starttls\""
     live = uncommented(text)
+    for key in ("ts_format", "delimiter"):              # the commented [columns] format keys
+        assert f"\n# {key} = " in live
+        live = live.replace(f"\n# {key} = ", f"\n{key} = ")
     for table in ("[sources.drops]", "[sources.meters]", "[sinks.ops]", "[sinks.mail]"):
         assert f"\n{table}" in live, f"{table} is no longer in the example"
     cfg_path = tmp_path / "elmon.toml"
     cfg_path.write_text(live, encoding="utf-8")
     config = load_config(cfg_path)            # every key checked against the schemas
     assert set(config.section("sources")) == {"feed", "drops", "meters"}
+    assert config.section("columns")["delimiter"] == ";"
+    from monitor.ingest.logio import column_names
+    from monitor.rows.validate import validation_from_config
+    assert column_names(config).delimiter == ";"
+    assert validation_from_config(config).ts_format == "%d/%m/%Y"
     for var in ("ELMON_WEBHOOK_SECRET", "ELMON_SMTP_USER", "ELMON_SMTP_PASSWORD"):
         monkeypatch.setenv(var, "x")
     sinks = configured_sinks(config, tmp_path)
