@@ -120,3 +120,14 @@ def test_the_folder_source_sniffs_each_file(tmp_path):
     with Service(cfg, base=tmp_path) as svc:
         t = svc.run_once()
     assert t["accepted"] == 90 and t["rejected"] == 0
+
+
+def test_the_dask_engine_reads_a_semicolon_log_like_the_local_one(tmp_path):
+    comma, log = _sep_log(tmp_path / "log.csv", ";")
+    assert main(["replay", str(comma), "--out", str(tmp_path / "a"), "--quiet"]) == 0
+    assert main(["replay", str(log), "--out", str(tmp_path / "d"), "--quiet", "--engine",
+                 "dask", "--delimiter", ";"]) == 0
+    a = pd.read_csv(tmp_path / "a" / "estimates.csv")
+    d = pd.read_csv(tmp_path / "d" / "estimates.csv").sort_values(["series", "ts"])
+    np.testing.assert_allclose(d["beta"].to_numpy(float), a["beta"].to_numpy(float),
+                               rtol=0, atol=1e-12, equal_nan=True)

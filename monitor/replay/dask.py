@@ -36,8 +36,9 @@ from monitor.errors import ConfigError
 from monitor.ingest.base import canonical_names
 from monitor.ingest.chunks import (DEFAULT_BLOCK_BYTES, Block, canonical_frame, csv_blocks,
                                    csv_header, mean_line_bytes)
-from monitor.ingest.csv_text import parse_lines, read_header
-from monitor.ingest.logio import check_file, column_names, log_format, table_to_frame
+from monitor.ingest.csv_text import file_delimiter, parse_lines, read_header
+from monitor.ingest.logio import (check_file, column_names, log_format, stated_delimiter,
+                                  table_to_frame)
 from monitor.progress import Progress
 
 
@@ -109,11 +110,13 @@ def read_split(log: str, block, columns: dict, npartitions: int):
         n = len(frame)
         pos = np.arange(n, dtype=np.int64)
     else:
-        names, _ = read_header(log, str(log), final=True)
+        delimiter = file_delimiter(log, stated_delimiter(columns))   # stated, else sniffed
+        names, _ = read_header(log, str(log), final=True, delimiter=delimiter)
         with open(log, "rb") as fh:
             fh.seek(b.start)
             body = fh.read(b.stop - b.start)
-        frame, rows, line_rejects, n = parse_lines(names, canonical_names(names, columns), body, 1)
+        frame, rows, line_rejects, n = parse_lines(names, canonical_names(names, columns), body, 1,
+                                                   delimiter)
         pos = rows - 1
     if "series" in frame.columns:
         part = partition_of(frame["series"], npartitions)
@@ -182,7 +185,7 @@ def replay_partitions(log, config, setup, acc, truth, horizon, scheduler, progre
         small = input_size(log) <= (WHOLE_ROWS if log_format(log) == "parquet" else WHOLE_BYTES)
         whole = chunk_rows is None and small
     blocks = log_blocks(log, chunk_rows, whole)
-    columns = dict(column_names(config))
+    columns = column_names(config)          # a LogLayout: names and the stated delimiter
     t0 = time.perf_counter()
     with dask_client(scheduler) as client:
         nparts = int(npartitions or 2 * max(1, len(client.nthreads())))
