@@ -5,7 +5,8 @@ resampled from the log, against 10,000 / A, with a verdict per kind.
 Logs come from the detection grid (simulators/change_grid.py), no change in them. What the
 pipeline itself does on such data, measured on 600 series x 2,000 observations per pattern at
 ARL0 2,000 (alerts per 10,000 / design, elasticity_change / level_shift): independent errors
-1.00 / 0.95; error sd growing with price (g = 3, log-price sd 0.2) 1.74 / 2.92."""
+1.00 / 0.95; error sd growing with price (g = 3, log-price sd 0.2) 1.74 / 2.92; AR(1) errors
+of 0.9 0.49 / 1.83."""
 
 from __future__ import annotations
 
@@ -53,6 +54,8 @@ def test_iid_errors_keep_the_design_and_the_command_says_so(tmp_path, capsys):
         assert f"ok:   {kind}" in out and "design holds" in k["message"]
     assert not s["flagged"] and "NOT CHECKED" not in out and "FLAG" not in out
     assert "design holds" in (tmp_path / "o" / "recommended.toml").read_text()
+    html = (tmp_path / "o" / "report.html").read_text()
+    assert "False alerts on resampled in-control logs" in html and "design holds" in html
 
 
 def test_variance_growing_with_price_is_flagged_with_its_cause(tmp_path):
@@ -74,6 +77,21 @@ def test_variance_growing_with_price_is_flagged_with_its_cause(tmp_path):
     again = calibrate(tmp_path / "grow.csv", tmp_path / "o2", config=validate({}), arl0=ARL0,
                       n_steps=BUDGET, progress=False, now_ns=NOW)
     assert again["alert_rates"]["kinds"] == a["kinds"]
+
+
+def test_strongly_autocorrelated_errors_flag_the_level_alerts_only(tmp_path):
+    """AR(1) errors of 0.9: the pipeline raises 1.83 times the designed level_shift alerts and
+    0.49 times the elasticity_change alerts on such data (module docstring); the check flags the level kind and leaves the slope kind as holding."""
+    _log(tmp_path / "ar.csv", errors="ar1", rho=0.9)
+    s = calibrate(tmp_path / "ar.csv", tmp_path / "o", config=validate({}), arl0=ARL0,
+                  n_steps=BUDGET, progress=False, now_ns=NOW)
+    a = s["alert_rates"]
+    level, slope = a["kinds"]["level_shift"], a["kinds"]["elasticity_change"]
+    assert level["verdict"] == "breaks" and level["ratio"] > 1.5, level["message"]
+    assert "the errors cause it" in level["message"] and "6 of 6 series autocorrelated" in \
+        level["message"]
+    assert slope["verdict"] == "holds" and not slope["flagged"], slope["message"]
+    assert a["health"]["autocorrelated"] == 6 and a["health"]["median_resid_ac1"] > 0.8
 
 
 def test_rates_interval_and_verdicts():
@@ -99,22 +117,27 @@ def test_rates_interval_and_verdicts():
 
 
 def test_health_of_autocorrelated_and_price_linked_errors_against_statsmodels():
-    """The health figures equal statsmodels' acf and OLS slope of log e^2 on log price."""
+    """The health figures equal statsmodels' acf and OLS slope of log e^2 on log price; the
+    flags fire at the levels of monitor.replay.health (lag-1 autocorrelation 0.7, error sd
+    ratio 1.45 one log-price sd apart) and not for independent errors of constant variance."""
     import statsmodels.api as sm
     from statsmodels.tsa.stattools import acf
 
     rng = np.random.default_rng(4)
     n = 3000
-    x = np.log(10.0) + 0.15 * rng.standard_normal(n)
+    x = np.log(10.0) + 0.2 * rng.standard_normal(n)
     u = rng.standard_normal(n)
     for t in range(1, n):
-        u[t] = 0.5 * u[t - 1] + rng.standard_normal()
-    e = u * np.exp(3.0 * (x - np.log(10.0)))
+        u[t] += 0.85 * u[t - 1]
+    e = u * np.exp(1.0 * (x - np.log(10.0)))
     h = health_of_arrays(e, x)
     assert h["resid_ac1"] == pytest.approx(acf(e, nlags=1)[1], abs=2e-3)
     fit = sm.OLS(np.log(e * e), sm.add_constant(x)).fit()
     assert h["var_price_slope"] == pytest.approx(fit.params[1], rel=1e-9)
     assert h["var_price_slope_se"] == pytest.approx(fit.bse[1], rel=1e-9)
-    assert h["flags"] == "autocorrelated price_linked_variance"
-    iid = health_of_arrays(rng.standard_normal(n), x)
-    assert iid["flags"] == ""
+    assert health_of_arrays(u, x)["flags"] == "autocorrelated"             # r1 about 0.85
+    grow = rng.standard_normal(n) * np.exp(3.0 * (x - np.log(10.0)))      # sd ratio 1.8
+    assert health_of_arrays(grow, x)["flags"] == "price_linked_variance"
+    mild = rng.standard_normal(n) * np.exp(1.0 * (x - np.log(10.0)))      # sd ratio 1.2
+    assert health_of_arrays(mild, x)["flags"] == ""
+    assert health_of_arrays(rng.standard_normal(n), x)["flags"] == ""

@@ -350,6 +350,32 @@ def _json_float(v):
     return None if v is None or not math.isfinite(float(v)) else float(v)
 
 
+def _health_counts(final: dict) -> dict:
+    """Series per residual-health flag (monitor.replay.health), over the finals."""
+    out = {"autocorrelated": 0, "price_linked_variance": 0, "too_few_rows": 0}
+    for v in final.values():
+        for flag in (v.get("health") or "").split():
+            out[flag] = out.get(flag, 0) + 1
+    return out
+
+
+def _health_fields(d: dict) -> dict:
+    """A series' residual health for summary.json (monitor.replay.health): ``resid_ac1``,
+    ``var_price_slope``, ``sd_ratio_per_price_sd`` (4 significant digits; null when not
+    computed) and ``health``
+    (space-separated flags, "" when the data keep the design's assumptions, "too_few_rows",
+    or null for models other than log-log)."""
+    h = d.get("health")
+
+    def four(key):        # 4 significant digits: a diagnostic, and the same value whether the
+        v = _json_float(d.get(key, float("nan")))     # sums were added chunk by chunk or whole
+        return None if v is None else float(f"{v:.4g}")
+
+    return {"resid_ac1": four("resid_ac1"), "var_price_slope": four("var_price_slope"),
+            "sd_ratio_per_price_sd": four("sd_ratio_per_price_sd"),
+            "health": None if h is None or (isinstance(h, float) and math.isnan(h)) else str(h)}
+
+
 def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info, engine, scores) -> dict:
     """summary.json: the keys of :func:`monitor.replay.driver.run_replay` plus detection and timing."""
     final = {}
@@ -362,7 +388,8 @@ def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info
             d = row._asdict()
             final[str(name)] = {"ts": str(t_txt), **{k: _json_float(d[k]) for k in FINAL_FIELDS},
                                 "status": d["status"], "n_obs": int(d["n"]),
-                                "delay50_obs": _json_float(d.get("delay50_obs", float("nan")))}
+                                "delay50_obs": _json_float(d.get("delay50_obs", float("nan"))),
+                                **_health_fields(d)}
     by_rule = {str(k): int(c) for k, c in alerts["rule"].value_counts().items()} if len(alerts) else {}
     statuses = [v["status"] for v in final.values()]
     wall = time.perf_counter() - t0
@@ -370,6 +397,7 @@ def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info
         "log": str(log), **acc.counts, "series": len(final), "alerts": int(len(alerts)),
         "alerts_by_rule": by_rule,
         "status_counts": {s: statuses.count(s) for s in dict.fromkeys(statuses)},
+        "health_counts": _health_counts(final),
         "final": final,
         "settings": {"estimator": setup.est._params(), "validation": setup.vset.__dict__,
                      "columns": column_names(config), **setup.pipe.settings(),
@@ -428,6 +456,14 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
     if len(good):
         last = np.flatnonzero(np.r_[sid[1:] != sid[:-1], True])
         d50 = pipe.delay50_obs(result.states)
+        health = None
+        if getattr(est, "model", "loglinear") == "loglinear":
+            from monitor.replay.health import HealthSums
+
+            sums = HealthSums(len(names))
+            sums.add(sid, result.out[:, K.O_E], X[:, 1],
+                     result.out[:, K.O_STATUS] != K.ST_WARMING_UP)
+            health = sums.frame(names)
         for j in last:
             o = result.out[j]
             final[names[sid[j]]] = {
@@ -436,7 +472,8 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
                 "beta_hi": _json_float(o[K.O_HI]), "n_eff": _json_float(o[K.O_NEFF]),
                 "status": STATUS_LABELS[int(result.status[j])],
                 "n_obs": int(np.count_nonzero(sid == sid[j])),
-                "delay50_obs": _json_float(d50[sid[j]])}
+                "delay50_obs": _json_float(d50[sid[j]]),
+                **_health_fields({} if health is None else health.iloc[int(sid[j])].to_dict())}
     wall = time.perf_counter() - t0
     summary = {
         "log": str(log_path),

@@ -21,6 +21,7 @@ import pandas as pd
 import pyarrow as pa
 
 from monitor.estimators import kernel as K
+from monitor.replay.health import HEALTH_COLUMNS, HealthSums
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
                                  estimates_frame)
 from monitor.rows.isotime import iso_utc
@@ -57,12 +58,14 @@ class CarriedState:
     states: object = None
     seen: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
     last_status: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int8))
+    health: HealthSums = field(default_factory=HealthSums)    # residual health sums (issue 12)
 
     def grow(self, pipe, n: int) -> None:
         """Make room for ``n`` series (fresh pipeline states for the new ones)."""
         have = self.seen.size
         if n <= have:
             return
+        self.health.grow(n)
         self.seen = np.r_[self.seen, np.zeros(n - have, np.int64)]
         self.last_status = np.r_[self.last_status, np.full(n - have, -1, np.int8)]
         fresh = pipe.new_states(n - have)
@@ -135,6 +138,9 @@ def run_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offs
                              ts=good["ts"].to_numpy(dtype=np.int64), names=names)
         carried.states = res.states
         out, status, events = res.out, np.asarray(res.status, dtype=np.int8), res.events
+        if getattr(setup.est, "model", "loglinear") == "loglinear":
+            # residual health of each series (monitor.replay.health): innovations past warm-up
+            carried.health.add(sid, out[:, K.O_E], X[:, 1], out[:, K.O_STATUS] != K.ST_WARMING_UP)
         alerts = alerts_frame(res, good, names)
     else:
         out, status = np.empty((0, K.NOUT)), np.zeros(0, np.int8)
@@ -235,7 +241,9 @@ def partial_of(res: ChunkResult, setup: Setup, carried: CarriedState) -> Partial
     rejects = v.rejects[REJECT_OUT_COLUMNS] if len(v.rejects) else \
         pd.DataFrame({c: pd.Series(dtype=object) for c in REJECT_OUT_COLUMNS})
     final = _final(good, res, None if carried.states is None else
-                   setup.pipe.delay50_obs(carried.states))
+                   setup.pipe.delay50_obs(carried.states),
+                   carried.health if getattr(setup.est, "model", "loglinear") == "loglinear"
+                   else None)
     report = pd.DataFrame(columns=ESTIMATE_COLUMNS)
     if setup.report_series and len(good):
         m = good["series"].isin(setup.report_series).to_numpy()
@@ -257,12 +265,15 @@ def _ts_of_events(good, events) -> np.ndarray:
     return good["ts"].to_numpy(dtype=np.int64)[ev["row"].to_numpy(dtype=np.int64)]
 
 
-def _final(good: pd.DataFrame, res: ChunkResult, delay50=None) -> pd.DataFrame:
+def _final(good: pd.DataFrame, res: ChunkResult, delay50=None, health=None) -> pd.DataFrame:
     """Last processed observation of each series in the chunk, its row count and, from the
-    pipeline states after the chunk, ``delay50_obs`` (issue 12)."""
+    pipeline states after the chunk, ``delay50_obs`` (issue 12); with ``health`` (the carried
+    :class:`~monitor.replay.health.HealthSums`, cumulative) the series' residual health so far
+    (:data:`~monitor.replay.health.HEALTH_COLUMNS`, empty for models other than log-log)."""
     sid = res.sid
     if sid.size == 0:
-        return pd.DataFrame(columns=["ts", *FINAL_FIELDS, "status", "n", "delay50_obs"],
+        return pd.DataFrame(columns=["ts", *FINAL_FIELDS, "status", "n", "delay50_obs",
+                                     *HEALTH_COLUMNS],
                             index=pd.Index([], name="series", dtype=object))
     # each series' last row in processing order (rows need not be grouped by series: with
     # [validation] order = "arrival" they stay in arrival order), and its row count
@@ -276,6 +287,13 @@ def _final(good: pd.DataFrame, res: ChunkResult, delay50=None) -> pd.DataFrame:
     f["status"] = np.array(STATUS_LABELS, dtype=object)[res.status[last]]
     f["n"] = counts.astype(np.int64)
     f["delay50_obs"] = np.nan if delay50 is None else np.asarray(delay50)[sid[last]]
+    if health is not None:
+        h = health.frame(f.index, sid[last])
+        for c in HEALTH_COLUMNS:
+            f[c] = h[c].to_numpy()
+    else:
+        for c in HEALTH_COLUMNS:
+            f[c] = None if c == "health" else np.nan
     return f
 
 

@@ -322,6 +322,15 @@ def write_calibration_report(path, summary: dict) -> Path:
     if rows:
         sections.insert(1, table_html(pd.DataFrame(rows).astype(object).where(
             pd.DataFrame(rows).notna(), None)))
+    rates = summary.get("alert_rates") or {}
+    if rates.get("checked"):      # the split detector's check (monitor.tuning.alert_check)
+        sections.append("<h2>False alerts on resampled in-control logs</h2>" + table_html(
+            pd.DataFrame([{"kind": kind, "alerts": k["alerts"], "per 10,000": k["rate_per_10k"],
+                           "designed per 10,000": k["design_per_10k"], "ratio": k["ratio"],
+                           "95% low": k["ratio_lo"], "95% high": k["ratio_hi"],
+                           "iid normal errors, ratio": k["reference"]["ratio"],
+                           "verdict": k["verdict"]} for kind, k in rates["kinds"].items()])))
+        sections.extend(f"<p>{esc(k['message'])}</p>" for k in rates["kinds"].values())
     for signal, c in summary["checks"].items():
         h, a = np.asarray(c["curve"]["h"]), np.asarray(c["curve"]["arl"])
         if not h.size:

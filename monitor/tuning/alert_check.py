@@ -136,6 +136,8 @@ def series_models(rows, pipe, min_rows: int = MIN_ROWS) -> list[dict]:
         X, y = rows.X[a:b], rows.y[a:b]
         theta = np.linalg.lstsq(X[m], y[m], rcond=None)[0]
         es, xs = e[a:b][m], X[m, 1]
+        if not np.std(es) > 0:          # a series fitted exactly: no errors to resample
+            continue
         h = health_of_arrays(es, xs)
         g_raw, g_se = h["var_price_slope"], h["var_price_slope_se"]
         g = g_raw if math.isfinite(g_raw) and abs(g_raw) >= Z_LEVEL * g_se else 0.0
@@ -178,7 +180,7 @@ def verdict(r: dict) -> str:
 
 
 def _message(kind: str, d: dict, ref: dict, arl0: float, health: dict) -> str:
-    what = "elasticity_change" if kind == "elasticity_change" else "level_shift"
+    what = kind
     v = d["verdict"]
     head = (f"{what}: {d['rate_per_10k']:.3g} false alerts per 10,000 observations on the "
             f"data's in-control paths against {d['design_per_10k']:.3g} designed "
