@@ -19,7 +19,7 @@ import pytest
 from monitor.cli import main
 from monitor.replay.health import health_of_arrays
 from monitor.settings import validate
-from monitor.tuning.alert_check import KINDS, _rates, verdict
+from monitor.tuning.alert_check import KINDS, alert_rates, verdict
 from monitor.tuning.calibrate import calibrate
 from simulators.change_grid import Scenario, simulate
 from tests.grid_logs import write_grid_log
@@ -102,7 +102,7 @@ def test_rates_interval_and_verdicts():
     exposure = np.full(100, 2000.0)            # 200,000 observations: 100 alerts designed
     counts = np.ones(100)
     counts[:60] += 1                           # 160 alerts, spread evenly over the paths
-    r = _rates(counts, exposure, 2000.0)
+    r = alert_rates(counts, exposure, 2000.0)
     assert r["alerts"] == 160 and r["ratio"] == pytest.approx(1.6) and r["dispersion"] == 1.0
     # Garwood's ends: the means whose upper / lower 2.5% tails hold the count (scipy)
     assert poisson.cdf(160, r["ratio_hi"] * 100) == pytest.approx(0.025, rel=1e-6)
@@ -110,10 +110,10 @@ def test_rates_interval_and_verdicts():
     assert verdict(r) == "breaks"
     lumpy = np.zeros(100)
     lumpy[:5] = 32                             # the same 160 alerts in 5 of 100 paths
-    w = _rates(lumpy, exposure, 2000.0)
+    w = alert_rates(lumpy, exposure, 2000.0)
     assert w["dispersion"] > 10 and w["ratio_lo"] < r["ratio_lo"] and w["ratio"] == r["ratio"]
     assert verdict(w) == "unsettled"
-    assert verdict(_rates(np.ones(100), exposure, 2000.0)) == "holds"
+    assert verdict(alert_rates(np.ones(100), exposure, 2000.0)) == "holds"
 
 
 def test_health_of_autocorrelated_and_price_linked_errors_against_statsmodels():

@@ -43,6 +43,7 @@ import math
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 #: flag levels (see the module docstring)
 AC1_LEVEL = 0.7
@@ -74,41 +75,17 @@ class HealthSums:
             self.a = np.concatenate([self.a, more], axis=1)
 
     def add(self, sid: np.ndarray, e: np.ndarray, x: np.ndarray, usable: np.ndarray) -> None:
-        """Add rows ``(sid, e, x)`` (each series' rows in time order; rows of different series
-        may interleave); ``usable`` marks rows past warm-up with a finite innovation."""
-        sid = np.asarray(sid, dtype=np.int64)
-        self.grow(int(sid.max()) + 1 if sid.size else 0)
-        m = np.asarray(usable, bool) & np.isfinite(e) & np.isfinite(x)
-        s, e, x = sid[m], np.asarray(e, float)[m], np.asarray(x, float)[m]
-        if not s.size:
+        """Add rows ``(sid, e, x)`` in processing order (each series' rows in time order; rows
+        of different series may interleave); ``usable`` marks rows past warm-up. Rows with a
+        non-finite ``e`` or ``x`` are left out. One compiled pass; the sums of a series are
+        added in its row order, so chunk boundaries do not change them."""
+        sid = np.ascontiguousarray(sid, dtype=np.int64)
+        if not sid.size:
             return
-        n = self.a.shape[1]
-        if s.size > 1 and not np.all(s[1:] >= s[:-1]):      # group by series, time order kept
-            order = np.argsort(s, kind="stable")
-            s, e, x = s[order], e[order], x[order]
-        first = np.r_[True, s[1:] != s[:-1]]
-        prev = np.r_[np.nan, e[:-1]]
-        prev[first] = self.a[_FIELDS.index("last"), s[first]]
-        pair = np.isfinite(prev)
-        l = np.log(np.maximum(e * e, 1e-300))
-        A = self.a
-
-        def add(field, w, rows=None):
-            A[_FIELDS.index(field)] += np.bincount(s if rows is None else s[rows],
-                                                   weights=w, minlength=n)
-
-        add("n", np.ones(s.size))
-        add("se", e)
-        add("see", e * e)
-        add("np", np.ones(int(pair.sum())), pair)
-        add("sp", e[pair] * prev[pair], pair)
-        add("sx", x)
-        add("sxx", x * x)
-        add("sl", l)
-        add("sxl", x * l)
-        add("sll", l * l)
-        last = np.r_[first[1:], True]                    # the last row of each series
-        A[_FIELDS.index("last"), s[last]] = e[last]
+        self.grow(int(sid.max()) + 1)
+        _add_rows(self.a, sid, np.ascontiguousarray(e, dtype=np.float64),
+                  np.ascontiguousarray(x, dtype=np.float64),
+                  np.ascontiguousarray(usable, dtype=np.bool_))
 
     def frame(self, names, codes=None) -> pd.DataFrame:
         """:data:`HEALTH_COLUMNS` per series (index ``names``): of every series in code order,
@@ -166,3 +143,26 @@ def health_of_arrays(e: np.ndarray, x: np.ndarray) -> dict:
     return {"resid_ac1": float(row["resid_ac1"]), "var_price_slope": float(row["var_price_slope"]),
             "var_price_slope_se": float(row["var_price_slope_se"]),
             "sd_ratio_per_price_sd": float(row["sd_ratio_per_price_sd"]), "flags": row["health"]}
+
+
+@njit(cache=True)
+def _add_rows(A, sid, e, x, use):      # pragma: no cover - compiled
+    for j in range(sid.size):
+        ej, xj = e[j], x[j]
+        if not use[j] or not (np.isfinite(ej) and np.isfinite(xj)):
+            continue
+        s = sid[j]
+        A[0, s] += 1.0
+        A[1, s] += ej
+        A[2, s] += ej * ej
+        prev = A[10, s]
+        if np.isfinite(prev):
+            A[3, s] += 1.0
+            A[4, s] += ej * prev
+        lj = math.log(max(ej * ej, 1e-300))
+        A[5, s] += xj
+        A[6, s] += xj * xj
+        A[7, s] += lj
+        A[8, s] += xj * lj
+        A[9, s] += lj * lj
+        A[10, s] = ej

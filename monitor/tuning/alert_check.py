@@ -149,7 +149,7 @@ def series_models(rows, pipe, min_rows: int = MIN_ROWS) -> list[dict]:
     return out
 
 
-def _rates(counts: np.ndarray, exposure: np.ndarray, arl0: float) -> dict:
+def alert_rates(counts: np.ndarray, exposure: np.ndarray, arl0: float) -> dict:
     """Rate per 10,000 observations, ratio to the design and its 95% interval (see the module
     docstring, step 3) from per-path alert counts and path lengths."""
     from scipy.stats import chi2
@@ -273,8 +273,8 @@ def check_alert_rates(rows, config, arl0: float, *, n_obs: int | None = None, se
                   [h["sd_ratio_per_price_sd"] for h in hs]))}
     kinds = {}
     for kind in KINDS:
-        d = _rates(np.concatenate(counts["data"][kind]), exposure, arl0)
-        ref = _rates(np.concatenate(counts["ref"][kind]), exposure, arl0)
+        d = alert_rates(np.concatenate(counts["data"][kind]), exposure, arl0)
+        ref = alert_rates(np.concatenate(counts["ref"][kind]), exposure, arl0)
         d["verdict"] = verdict(d)
         d["flagged"] = d["verdict"] == "breaks"
         d["reference"] = ref
