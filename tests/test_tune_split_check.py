@@ -141,3 +141,15 @@ def test_health_of_autocorrelated_and_price_linked_errors_against_statsmodels():
     mild = rng.standard_normal(n) * np.exp(1.0 * (x - np.log(10.0)))      # sd ratio 1.2
     assert health_of_arrays(mild, x)["flags"] == ""
     assert health_of_arrays(rng.standard_normal(n), x)["flags"] == ""
+
+
+def test_the_check_shows_its_progress_unless_quiet(tmp_path, capsys):
+    """A progress line on stderr names the resampled observations done (the last one when the
+    budget is spent); --quiet prints none."""
+    _log(tmp_path / "iid.csv")
+    args = ["tune", str(tmp_path / "iid.csv"), "--arl0", "2000", "--bootstrap-obs", "50000"]
+    assert main(args + ["--out", str(tmp_path / "a")]) == 0
+    err = capsys.readouterr().err
+    assert "tune check: " in err and "observations (100% of input)" in err and "(done)" in err
+    assert main(args + ["--out", str(tmp_path / "b"), "--quiet"]) == 0
+    assert "tune check" not in capsys.readouterr().err
