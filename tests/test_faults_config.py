@@ -25,3 +25,53 @@ def test_the_longest_accepted_time_still_loads():
     sec = service_settings(Config({"service": {"misfire_grace_s": float(MAX_SECONDS),
                                                "reminder_every_s": 0.0}}))
     assert sec["misfire_grace_s"] == MAX_SECONDS
+
+
+# ---------------------------------------------------------------- round 3 (issue 14, item 9)
+
+@pytest.mark.parametrize("section, key, value, words", [
+    ("validation", "max_future_s", math.inf, "max_future_s = inf: must be a finite number"),
+    ("validation", "allowed_lateness_s", math.nan, "allowed_lateness_s = nan: must be a finite"),
+    ("validation", "unit_ratio", math.inf, "unit_ratio = inf: must be > 1 and finite"),
+    ("validation", "quantity_ratio", math.nan, "quantity_ratio = nan: must be > 1 and finite"),
+])
+def test_validation_times_and_ratios_must_be_finite(section, key, value, words):
+    from monitor.rows.validate import validation_from_config
+    from monitor.settings import validate
+
+    with pytest.raises(ConfigError, match=words.replace("(", r"\(")):
+        validation_from_config(validate({section: {key: value}}))
+
+
+@pytest.mark.parametrize("spec, words", [
+    ({"type": "folder", "path": "in", "patterns": [1, 2]}, r"patterns = \[1, 2\]: must be a list"),
+    ({"type": "folder", "path": "in", "settle_s": math.inf}, "settle_s = inf: must be a finite"),
+    ({"type": "csv", "path": "f.csv", "poll_interval_s": 1e300},
+     r"poll_interval_s = 1e\+300: must be a finite"),
+])
+def test_source_settings_are_refused_at_load_naming_the_key(spec, words):
+    from monitor.settings import validate
+
+    with pytest.raises(ConfigError, match=r"\[sources.x\] " + words):
+        validate({"sources": {"x": spec}})
+
+
+def test_webhook_headers_that_are_not_a_table_name_the_key():
+    from monitor.live.sinks import sinks_from_config
+
+    with pytest.raises(ConfigError, match=r"sinks\.w: headers = 'abc': must be a table"):
+        sinks_from_config({"w": {"type": "webhook", "url": "https://hooks.example.org/x",
+                                 "headers": "abc"}})
+    with pytest.raises(ConfigError, match="line break"):
+        sinks_from_config({"w": {"type": "webhook", "url": "https://hooks.example.org/x",
+                                 "headers": {"X-A": "1\r\nX-B: 2"}}})
+
+
+def test_run_once_fails_when_a_source_cannot_be_read(tmp_path, capsys):
+    from monitor.cli import main
+
+    (tmp_path / "c.toml").write_text('[sources.feed]\ntype = "csv"\npath = "missing.csv"\n')
+    rc = main(["run", "--config", str(tmp_path / "c.toml"), "--db", str(tmp_path / "s.sqlite"),
+               "--once", "--log-level", "error"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "error: source feed: SourceError:" in err and "missing.csv" in err

@@ -321,7 +321,8 @@ def test_on_reset_stop_waits_until_the_source_is_reset(tmp_path, log, capsys):
     other = tmp_path / "other.csv"
     other.write_bytes(csv_bytes(log.iloc[20:30]))
     os.replace(other, feed)
-    assert main(args) == 0                                   # stopped: nothing read
+    assert main(args) == 2          # stopped: nothing read, and --once says so (issue 14)
+    assert "error: source feed: SourceError:" in capsys.readouterr().err
     err = frame(tmp_path / "s.sqlite", "SELECT last_error FROM source_offsets")["last_error"][0]
     assert "was replaced" in err and "--reset-source feed" in err
     assert frame(tmp_path / "s.sqlite", "SELECT count(*) AS n FROM observations")["n"][0] == 20

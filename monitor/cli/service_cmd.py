@@ -50,12 +50,15 @@ def cmd_run(args) -> int:
     if args.once:
         try:
             t = service.run_once()
+            errors = service.source_errors
         finally:
             service.close()
         print(f"elmon run --once: {t['rows']} rows in {t['batches']} batches: {t['accepted']} "
               f"processed, {t['rejected']} rejected, {t['zero_skipped']} zero quantities "
               f"skipped, {t['alerts_opened']} alerts opened")
-        return 0
+        for name, msg in errors.items():     # a source that could not be read is a failure
+            print(f"elmon run --once: error: source {name}: {msg}", file=sys.stderr)
+        return 2 if errors else 0
     return service.run()
 
 

@@ -107,8 +107,16 @@ def check_sources(content: Any) -> None:
         if "poll_interval_s" in spec and not spec["poll_interval_s"] > 0:
             raise ConfigError(f"{where} poll_interval_s = {spec['poll_interval_s']!r}: must be > 0")
         for key in ("stale_after_s", "settle_s", "last_line_wait_s"):
-            if key in spec and spec[key] < 0:
-                raise ConfigError(f"{where} {key} = {spec[key]!r}: must be >= 0")
+            if key in spec and not 0 <= spec[key] <= 366 * 86400:
+                raise ConfigError(f"{where} {key} = {spec[key]!r}: must be a finite number of "
+                                  f"seconds, 0 .. {366 * 86400} (366 days)")
+        if "poll_interval_s" in spec and not spec["poll_interval_s"] <= 366 * 86400:
+            raise ConfigError(f"{where} poll_interval_s = {spec['poll_interval_s']!r}: must be a "
+                              f"finite number of seconds, at most {366 * 86400} (366 days)")
+        patterns = spec.get("patterns", ["*"])
+        if not patterns or not all(isinstance(p, str) and p.strip() for p in patterns):
+            raise ConfigError(f"{where} patterns = {patterns!r}: must be a list of file name "
+                              f"patterns (text), e.g. [\"*.csv\", \"*.parquet\"]")
 
 
 #: the free-form ``[sources]`` table and its validator, for monitor.settings to compose

@@ -140,6 +140,11 @@ class Service:
                 break
         return reports
 
+    @property
+    def source_errors(self) -> dict[str, str]:
+        """Sources whose last poll failed, with the error (``elmon run --once`` exits 2)."""
+        return {name: msg for name, msg in self._errors.items() if msg}
+
     def _set_error(self, name: str, kind: str, message: str | None) -> None:
         if self._errors.get(name, "unset") != message:
             try:

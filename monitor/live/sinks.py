@@ -132,6 +132,14 @@ class WebhookSink:
         if not float(timeout) > 0 or not math.isfinite(float(timeout)):
             raise ConfigError(f"webhook timeout {timeout!r} must be a finite number > 0 seconds")
         self.url, self.timeout, self.secret_env = url, float(timeout), secret_env
+        if headers is not None and not (isinstance(headers, Mapping) and all(
+                isinstance(k, str) and isinstance(v, str) for k, v in headers.items())):
+            raise ConfigError(f"headers = {headers!r}: must be a table of header names to text "
+                              f"values, e.g. headers = {{ \"X-Team\" = \"pricing\" }}")
+        bad = [k for k, v in (headers or {}).items() if any(c in k + v for c in "\r\n\0")]
+        if bad:
+            raise ConfigError(f"headers {bad!r}: a header name or value must not hold a line "
+                              f"break or NUL")
         self.headers = dict(headers or {})
         env_value(secret_env, "webhook secret_env")
 

@@ -46,6 +46,9 @@ WINDOW = 15          # recent accepted prices kept per series for the unit check
 MIN_HISTORY = 2      # accepted prices needed before the unit check uses the series' history
 MIN_BATCH = 5        # time-ordered batches: rows of a new series that give a batch median
 
+#: the longest lateness or future allowance accepted, seconds (100 years; inf would overflow)
+MAX_TIME_S = 100 * 366 * 86400.0
+
 #: the supported time range (ISO 8601 UTC): int64 ns since 1970 reach 1677-09-21 .. 2262-04-11;
 #: whole years inside that are accepted, anything outside is rejected (never wrapped)
 TS_MIN, TS_MAX = "1678-01-01T00:00:00Z", "2261-12-31T23:59:59Z"
@@ -89,10 +92,11 @@ class ValidationSettings:
         if self.duplicate_policy not in ("keep_first", "reject_all"):
             raise ConfigError(f"duplicate_policy = {self.duplicate_policy!r}: must be 'keep_first' or 'reject_all'")
         for name in ("allowed_lateness_s", "max_future_s"):
-            if not getattr(self, name) >= 0:
-                raise ConfigError(f"{name} = {getattr(self, name)!r}: must be >= 0")
-        if not self.unit_ratio > 1:
-            raise ConfigError(f"unit_ratio = {self.unit_ratio!r}: must be > 1")
+            if not 0 <= getattr(self, name) <= MAX_TIME_S:
+                raise ConfigError(f"{name} = {getattr(self, name)!r}: must be a finite number "
+                                  f"of seconds, 0 .. {MAX_TIME_S:g} (100 years)")
+        if not 1 < self.unit_ratio < math.inf:
+            raise ConfigError(f"unit_ratio = {self.unit_ratio!r}: must be > 1 and finite")
         if not (self.quantity_ratio == 0 or 1 < self.quantity_ratio < math.inf):
             raise ConfigError(f"quantity_ratio = {self.quantity_ratio!r}: must be > 1 and finite "
                               f"(0 turns the check off)")
