@@ -94,3 +94,7 @@ def read_toml(path: str | Path, what: str = "config file") -> dict:
         return tomllib.loads(p.read_text(encoding="utf-8"))
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{p}: not valid TOML: {exc}") from None
+    except UnicodeDecodeError as exc:
+        line = p.read_bytes()[:exc.start].count(b"\n") + 1
+        raise ConfigError(f"{p}: line {line}: not UTF-8 text (byte {exc.object[exc.start]:#04x} "
+                          f"at offset {exc.start}); a TOML file is UTF-8") from None

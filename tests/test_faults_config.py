@@ -75,3 +75,12 @@ def test_run_once_fails_when_a_source_cannot_be_read(tmp_path, capsys):
                "--once", "--log-level", "error"])
     err = capsys.readouterr().err
     assert rc == 2 and "error: source feed: SourceError:" in err and "missing.csv" in err
+
+
+def test_a_config_file_that_is_not_utf8_is_an_error_naming_the_line(tmp_path, capsys):
+    from monitor.cli import main
+
+    (tmp_path / "c.toml").write_bytes(b'[store]\npath = "\xff\xfe.sqlite"\n')
+    assert main(["run", "--config", str(tmp_path / "c.toml"), "--once"]) == 2
+    err = capsys.readouterr().err
+    assert "c.toml: line 2: not UTF-8 text (byte 0xff at offset 16)" in err
