@@ -131,3 +131,16 @@ def test_the_dask_engine_reads_a_semicolon_log_like_the_local_one(tmp_path):
     d = pd.read_csv(tmp_path / "d" / "estimates.csv").sort_values(["series", "ts"])
     np.testing.assert_allclose(d["beta"].to_numpy(float), a["beta"].to_numpy(float),
                                rtol=0, atol=1e-12, equal_nan=True)
+
+
+def test_the_error_names_the_log_s_own_column(tmp_path, capsys):
+    dmy = _log(tmp_path / "dmy.csv", "%d/%m/%Y")
+    dmy.write_text(dmy.read_text().replace("series,ts,", "series,sold_on,", 1))
+    rc = main(["replay", str(dmy), "--out", str(tmp_path / "o"), "--quiet", "--ts-col",
+               "sold_on"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "field 'ts' (column 'sold_on' of the log) = '01/01/2024'" in err
+    rc = main(["ingest", str(dmy), "--db", str(tmp_path / "s.sqlite"), "--ts-col", "sold_on"])
+    assert rc == 2 and "(column 'sold_on' of the log)" in capsys.readouterr().err
+    assert main(["ingest", str(dmy), "--db", str(tmp_path / "t.sqlite"), "--quiet",
+                 "--ts-col", "sold_on", "--ts-format", "%d/%m/%Y"]) == 0

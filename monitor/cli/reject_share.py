@@ -89,12 +89,25 @@ def guess_format(value: str) -> str:
     return f"{day_first} (day first) or {month_first} (month first)"
 
 
+def renamed(args) -> dict[str, str]:
+    """The log's own names of the fields mapped with ``--ts-col`` etc. (``{field: column}``)."""
+    out = {}
+    for field in ("ts", "price", "quantity"):
+        col = getattr(args, f"{field}_col", None)
+        if col and col != field:
+            out[field] = col
+    series = getattr(args, "series_col", None) or []
+    if len(series) == 1 and series[0] != "series":
+        out["series"] = series[0]
+    return out
+
+
 def check(command: str, rows: int, rejected: int, first: dict | None, limit: float,
-          where: str) -> None:
+          where: str, columns: dict[str, str] | None = None) -> None:
     """Raise :class:`ValidationError` when ``rejected / rows > limit``.
 
     ``first`` is the first rejected row (``row, field, value, reason``), ``where`` says where
-    all rejects can be read.
+    all rejects can be read, ``columns`` the log's own name of a renamed field (named beside it).
 
     >>> check("replay", 800, 800, {"row": 2, "field": "ts", "value": "13/01/2023",
     ...       "reason": "not a time"}, 0.5, "out/rejects.csv")
@@ -110,8 +123,10 @@ def check(command: str, rows: int, rejected: int, first: dict | None, limit: flo
     if first:
         reason = str(first.get("reason") or "")
         reason = re.sub(r"^row \d+: field '[^']*' = '[^']*': ", "", reason)
-        msg += (f"; first: row {first.get('row')}, field {first.get('field')!r} = "
-                f"{str(first.get('value'))!r}: {reason}.")
+        field = first.get("field")
+        own = (columns or {}).get(field)
+        named = f"field {field!r}" + (f" (column {own!r} of the log)" if own else "")
+        msg += f"; first: row {first.get('row')}, {named} = {str(first.get('value'))!r}: {reason}."
         msg += hint(first.get("field"), first.get("value"))
     msg += f" All rejects with reasons: {where}."
     raise ValidationError(msg, field=(first or {}).get("field"), value=(first or {}).get("value"))

@@ -205,7 +205,7 @@ def handle(args) -> int:
     if summary["rows"] and summary["rejected"] / summary["rows"] > args.max_reject_share:
         reject_share.check("replay", summary["rows"], summary["rejected"],
                            reject_share.first_from_csv(rejects), args.max_reject_share,
-                           str(rejects))
+                           str(rejects), reject_share.renamed(args))
     return 0
 
 

@@ -96,7 +96,8 @@ def cmd_ingest(args) -> int:
         reject_share.check("ingest", out["rows"], out["rejected"],
                            reject_share.first_from_store(args.db, out["source"]),
                            args.max_reject_share,
-                           f"elmon status --db {args.db} (rejects table of the store)")
+                           f"elmon status --db {args.db} (rejects table of the store)",
+                           reject_share.renamed(args))
     return 0
 
 
