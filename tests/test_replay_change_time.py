@@ -65,7 +65,7 @@ def test_dask_partitions_score_the_same_change_times(tmp_path):
     setup = make_setup(cfg, now_ns=NOW, keep_obs=True)
     log = str(tmp_path / "log.csv")
     (block,) = log_blocks(log, None, True)
-    split = read_split(log, block, dict(column_names(cfg)), 2)
+    split = read_split(log, block, column_names(cfg), 2)
     parts = [run_partition([split[1][p]], [0], setup, truth, 200) for p in range(2)]
     assert all(len(p.opened) and "change_ts" in p.opened.columns for p in parts)
     merged = Scores.merge([p.scores for p in parts], truth).changes
