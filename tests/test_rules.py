@@ -153,6 +153,22 @@ def test_load_wording_speaks_of_load_and_tariffs_not_shops():
     assert frame["message"].str.contains("new connections").all()
     with pytest.raises(ConfigError, match=r"\[rules\] wording = 'farm'"):
         RuleSettings(wording="farm")
+    # the setting reaches the alert texts of a pipeline run: a price held flat from row 60
+    from monitor.estimators import ElasticityRLS
+    from monitor.pipeline.run import Pipeline
+
+    rng = np.random.default_rng(3)
+    n = 200
+    x = np.where(np.arange(n) < 60, rng.normal(0.0, 0.2, n), 0.0)
+    X = np.column_stack([np.ones(n), x])
+    y = 3.0 - 0.2 * x + rng.normal(0.0, 0.05, n)
+    texts = {}
+    for wording in ("retail", "load"):
+        pipe = Pipeline(ElasticityRLS(forgetting=0.95), rules=RuleSettings(wording=wording))
+        ev = pipe.run(np.zeros(n, np.int64), X, y, 1).events
+        texts[wording] = ev.loc[ev["kind"] == "low_variation", "message"].tolist()
+    assert texts["retail"] and "planned price test" in texts["retail"][0]
+    assert texts["load"] and "tariff trial" in texts["load"][0]
 
 
 # ----------------------------------------------------------------------------- design

@@ -86,6 +86,7 @@ class PipelineResult:
     names: list | None = None
     signals: np.ndarray | None = None
     interval_mode: bool = True
+    wording: str = "retail"                     # [rules] wording of the alert texts
     feedback: np.ndarray | None = None          # per-row price-feedback outputs (FB_* columns)
     feedback_events: list = field(default_factory=list)
     _events: pd.DataFrame | None = field(default=None, repr=False)
@@ -96,7 +97,7 @@ class PipelineResult:
         details`` (one row per open or clear decision, in row order)."""
         if self._events is None:
             self._events = events_frame(self.records, self.sid, self.names, self.interval_mode,
-                                        self.feedback, self.feedback_events)
+                                        self.feedback, self.feedback_events, self.wording)
         return self._events
 
     def signals_frame(self) -> pd.DataFrame:
@@ -314,7 +315,8 @@ class Pipeline:
                               sid=sid, ts=None if ts is None else np.asarray(ts),
                               names=None if names is None else list(names),
                               signals=sig if keep_signals else None,
-                              interval_mode=self.bounds.mode == "interval")
+                              interval_mode=self.bounds.mode == "interval",
+                              wording=self.rules.wording)
 
     def _bounds_arrays(self, n_series: int, low, high) -> tuple[np.ndarray, np.ndarray]:
         bp = np.tile(self._bparams, (n_series, 1))

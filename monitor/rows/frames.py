@@ -63,7 +63,7 @@ def alerts_frame(result, good: pd.DataFrame, names: list[str]) -> pd.DataFrame:
     (rule = kind); ``good`` are the rows the pipeline ran over, ``names`` the series names."""
     if result.names is None and names is not None:
         ev = events_frame(result.records, result.sid, list(names), result.interval_mode,
-                          result.feedback, result.feedback_events)
+                          result.feedback, result.feedback_events, result.wording)
     else:
         ev = result.events
     ev = ev[ev["action"] == "open"]
