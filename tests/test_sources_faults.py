@@ -336,3 +336,24 @@ def test_a_file_joined_with_its_byte_order_mark_is_one_header_reject(tmp_path):
     assert whole.frame["quantity"].tolist() == ["10", "11"]
     assert whole.rejects["row"].tolist() == [2] and whole.rejects["field"].tolist() == ["header"]
     assert "repeats the header line" in whole.rejects["reason"][0]
+
+
+def test_a_sql_table_recreated_with_more_rows_than_were_read_is_read_again(tmp_path):
+    """Issue 14 item 7: the new table's largest key is above the last key read, so the old
+    check (largest key below it) saw nothing and keys 1..3 of the new table were never read."""
+    db = tmp_path / "sales.sqlite"
+    _table(db, [0, 1, 2])
+    src = SqlSource("sales", "sales", path=db)
+    chunks, pos = drain(src)
+    assert pos["key"] == 3
+    with sqlite3.connect(db) as conn:
+        conn.execute("DROP TABLE sales")
+    conn.close()
+    _table(db, [5, 6, 7, 8, 9])                                  # keys 1..5, other rows
+    chunks, pos = drain(src, pos)
+    assert "recreated or rewritten" in chunks[0].notice and "(3)" in chunks[0].notice
+    assert values(chunks, "quantity") == [15.0, 16.0, 17.0, 18.0, 19.0]
+    assert chunks[-1].rows.tolist()[-1] == 8                     # 3 + 5 rows, numbers go on
+    _table(db, [1], start=6)                                     # an append is no reset
+    chunks, pos = drain(src, pos)
+    assert [c.notice for c in chunks if c.notice] == [] and values(chunks, "quantity") == [11.0]

@@ -4,13 +4,17 @@ See :mod:`monitor.ingest.files` for the position (``{"key": last key, "rows": ro
 caveat on keys that commit out of order.
 
 Faults: a table dropped (or a column renamed) raises :class:`SourceError` without moving the
-position, so the rows are read once it is back; a table recreated or emptied, whose largest
-key is now below the last key read, is reported (a ``source_reset`` notice) and read again
-from its first key. The connection URL is shown without its password in every message.
+position, so the rows are read once it is back; a table recreated or emptied is reported (a
+``source_reset`` notice) and read again from its first key. It is recognized by its largest
+key falling below the last key read, or, when the new table already holds more rows than
+that, by the row at the last key read no longer being the row that was read (the position
+keeps a SHA-256 of that row's values). The connection URL is shown without its password in
+every message.
 """
 
 from __future__ import annotations
 
+import hashlib
 import re
 import sqlite3
 from pathlib import Path
@@ -47,6 +51,8 @@ class SqlSource:
         self.name, self.table, self.key, self.columns = name, table, key, dict(columns or {})
         self.path, self.url = (Path(path) if path is not None else None), url
         self._engine = None
+        #: SHA-256 of the last row the latest query returned (its values, in column order)
+        self.last_row_hash: str | None = None
 
     @property
     def where(self) -> str:
@@ -70,6 +76,7 @@ class SqlSource:
                 conn.close()
             except sqlite3.Error as exc:
                 raise SourceError(f"{self.path}: table {self.table!r}: {exc}") from None
+            self.last_row_hash = row_hash(data[-1]) if data else None
             return pd.DataFrame.from_records(data, columns=names)
         try:
             import sqlalchemy as sa
@@ -89,7 +96,9 @@ class SqlSource:
         try:
             with self._engine.connect() as conn:
                 result = conn.execute(sql, {"last": last, "n": int(max_rows)})
-                return pd.DataFrame(result.fetchall(), columns=list(result.keys()))
+                data = result.fetchall()
+                self.last_row_hash = row_hash(data[-1]) if data else None
+                return pd.DataFrame(data, columns=list(result.keys()))
         except sa.exc.SQLAlchemyError as exc:
             raise SourceError(f"{self.where}: table {self.table!r}: "
                               f"{hide(str(getattr(exc, 'orig', None) or exc), self.url)}") from None
@@ -118,10 +127,56 @@ class SqlSource:
             raise SourceError(f"{self.where}: table {self.table!r}: "
                               f"{hide(str(getattr(exc, 'orig', None) or exc), self.url)}") from None
 
+    def _hash_at(self, key: Any) -> str | None:
+        """:func:`row_hash` of the row whose key is ``key`` now (None when there is none)."""
+        if self.path is not None:
+            q = ".".join(f'"{p}"' for p in self.key.split("."))
+            t = ".".join(f'"{p}"' for p in self.table.split("."))
+            uri = self.path.resolve().as_uri() + "?mode=ro"
+            try:
+                with sqlite3.connect(uri, uri=True, timeout=10.0) as conn:
+                    row = conn.execute(f"SELECT * FROM {t} WHERE {q} = ?", [key]).fetchone()
+                conn.close()
+            except sqlite3.Error as exc:
+                raise SourceError(f"{self.path}: table {self.table!r}: {exc}") from None
+            return None if row is None else row_hash(row)
+        import sqlalchemy as sa
+        prep = self._engine.dialect.identifier_preparer
+        q = lambda n: ".".join(prep.quote(p) for p in n.split("."))  # noqa: E731
+        try:
+            with self._engine.connect() as conn:
+                row = conn.execute(sa.text(f"SELECT * FROM {q(self.table)} WHERE "
+                                           f"{q(self.key)} = :k"), {"k": key}).fetchone()
+        except sa.exc.SQLAlchemyError as exc:
+            raise SourceError(f"{self.where}: table {self.table!r}: "
+                              f"{hide(str(getattr(exc, 'orig', None) or exc), self.url)}") from None
+        return None if row is None else row_hash(tuple(row))
+
+    def _reset_chunk(self, last: Any, top: Any, rows: int) -> Chunk:
+        """The notice of a table whose largest key fell below the last key read."""
+        notice = (f"{self.where}: table {self.table!r} now holds "
+                  f"{'no rows' if top is None else f'keys up to {top!r}'}, below the last "
+                  f"key read ({last!r}): it was recreated or emptied; reading it again "
+                  f"from its first key")
+        return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(),
+                     {"rows": rows}, 0, notice=notice)
+
     def read(self, position: dict | None, max_rows: int) -> Chunk | None:
         pos = dict(position or {})
-        frame = self._query(pos.get("key"), max_rows)
         rows = int(pos.get("rows", 0))
+        if pos.get("key") is not None and pos.get("last_hash") is not None:
+            now = self._hash_at(pos["key"])      # the table may be there again, but another one
+            if now != pos["last_hash"]:
+                top = self._max_key()
+                if top is None or top < pos["key"]:
+                    return self._reset_chunk(pos["key"], top, rows)
+                notice = (f"{self.where}: table {self.table!r}: the row at the last key read "
+                          f"({pos['key']!r}) is {'gone' if now is None else 'another row'} now: "
+                          f"the table was recreated or rewritten; reading it again from its "
+                          f"first key")
+                return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(),
+                             {"rows": rows}, 0, notice=notice)
+        frame = self._query(pos.get("key"), max_rows)
         if not len(frame):
             last = pos.get("key")
             if last is None:
@@ -129,12 +184,7 @@ class SqlSource:
             top = self._max_key()
             if top is not None and top >= last:
                 return None
-            notice = (f"{self.where}: table {self.table!r} now holds "
-                      f"{'no rows' if top is None else f'keys up to {top!r}'}, below the last "
-                      f"key read ({last!r}): it was recreated or emptied; reading it again "
-                      f"from its first key")
-            return Chunk(pd.DataFrame(), np.zeros(0, dtype=np.int64), empty_rejects(),
-                         {"rows": rows}, 0, notice=notice)
+            return self._reset_chunk(last, top, rows)
         if self.key not in frame.columns:
             raise SourceError(f"table {self.table!r} has no key column {self.key!r}")
         canon = canonical_names(list(frame.columns), self.columns)
@@ -150,12 +200,22 @@ class SqlSource:
         last = last.item() if hasattr(last, "item") else last
         frame.columns = canon
         rownums = np.arange(rows + 1, rows + len(frame) + 1, dtype=np.int64)
-        return Chunk(frame, rownums, empty_rejects(), {"key": last, "rows": rows + len(frame)},
+        return Chunk(frame, rownums, empty_rejects(),
+                     {"key": last, "rows": rows + len(frame), "last_hash": self.last_row_hash},
                      len(frame))
 
 
 #: canonical columns a table must have (the series may come from several key columns)
 REQUIRED = ("ts", "price", "quantity")
+
+
+def row_hash(row) -> str:
+    """SHA-256 (hex) of a database row's values in column order (their Python repr).
+
+    >>> row_hash((1, "a", 2.5)) == row_hash((1, "a", 2.5)) != row_hash((1, "a", 2.6))
+    True
+    """
+    return hashlib.sha256(repr(tuple(row)).encode("utf-8")).hexdigest()
 
 
 def shown_db_url(url: str) -> str:
