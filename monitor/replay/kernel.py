@@ -215,14 +215,17 @@ def estimates_table(good: pd.DataFrame, out: np.ndarray, status: np.ndarray,
     if idx is not None:
         series = series.take(pa.array(idx))
     cols = {"series": series, "ts": iso_utc(good["ts"].to_numpy(dtype=np.int64)[sel])}
-    o = out[sel]
-    for name, j in _EST_FLOATS:
-        cols[name] = pa.array(o[:, j], pa.float64(), from_pandas=True)
+    # the kernel's rows are observations (row-major); one transposed copy of the written slots
+    # makes each column contiguous instead of a strided copy per column
+    slots = [j for _, j in _EST_FLOATS + _EST_TAIL] + ([K.NOUT] if out.shape[1] > K.NOUT else [])
+    o = np.ascontiguousarray(out[sel].T[slots])
+    for k, (name, _) in enumerate(_EST_FLOATS):
+        cols[name] = pa.array(o[k], pa.float64(), from_pandas=True)
     cols["status"] = _LABELS.take(pa.array(np.asarray(status[sel], dtype=np.int64)))
-    for name, j in _EST_TAIL:
-        cols[name] = pa.array(o[:, j], pa.float64(), from_pandas=True)
-    if o.shape[1] > K.NOUT:      # instruments: the effective first-stage F (issue 17)
-        cols["first_stage_f"] = pa.array(o[:, K.NOUT], pa.float64(), from_pandas=True)
+    for k, (name, _) in enumerate(_EST_TAIL, start=len(_EST_FLOATS)):
+        cols[name] = pa.array(o[k], pa.float64(), from_pandas=True)
+    if out.shape[1] > K.NOUT:      # instruments: the effective first-stage F (issue 17)
+        cols["first_stage_f"] = pa.array(o[-1], pa.float64(), from_pandas=True)
     return pa.table(cols)
 
 
