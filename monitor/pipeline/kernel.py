@@ -11,6 +11,17 @@ nothing (the caller passes every buffer), and in a function this size the refere
 updates on the many array arguments of the inlined steps were not pruned and cost about 4x the
 arithmetic (measured: 2.4M vs 10.8M obs/s on the same machine).
 
+One compiled loop per configuration family (:data:`LOOPS`): the estimator's step form
+(:func:`monitor.estimators.dispatch.step_form`) and the detector family are compile-time
+constants (:func:`monitor.estimators.dispatch.compile_time_choice`), so a configuration
+compiles only its own estimator step and detectors, on first use, and numba's cache keeps each
+loop (module-level functions; closures made by a factory would not be cached). The estimator
+step and the detector step are compiled as functions of their own, not pasted into the loop:
+numba's type inference costs more than linearly in the size of the function it types, and one
+loop holding every model and both detector families took about 170 CPU-s to compile on an
+empty cache, the default loop alone about 35 (same results to the bit; speed within the
+noise of a shared machine).
+
 Per observation, in this order:
 
 1. :func:`~monitor.estimators.kernel.rls_step` (estimate, interval, status, innovation z);
@@ -37,7 +48,8 @@ from monitor.detectors.slope_kernel import (G_BF, adjusted_response, fast_interv
                                             slope_step)
 from monitor.detectors import split_glr as SG
 from monitor.estimators import kernel as K
-from monitor.estimators.dispatch import estimator_discount, estimator_step
+from monitor.estimators.dispatch import (FORM_IV, FORM_LINEAR, FORM_POISSON, FORM_TWO,
+                                         compile_time_choice, form_discount, form_step)
 from monitor.pipeline.split_events import change_start, split_open, split_reanchor, split_row
 from monitor.pipeline.messages import (EV_AFTER_B, EV_AFTER_HI, EV_AFTER_LO, EV_DELAY,
                                        EV_SUPERSEDED,
@@ -129,20 +141,38 @@ def _open_run(ev, ne, j, kind, st, det, run, n, ts, b, lo, hi, size, extra):
 
 
 @njit(cache=True, _nrt=False)
-def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, bparams, gparams,
-          vparams, split, gp, rep):
-    """The event record of an opening (rare: not inlined)."""
-    if split and (kind == KIND_ELASTICITY_CHANGE or kind == KIND_LEVEL_SHIFT):
-        return split_open(ev, ne, j, kind, st, lay[L_SPLIT], rep, n, t, b, lo, hi, tq,
-                          gp[SG.Q_HS])
+def _open_split(split, ev, ne, j, kind, st, lay, fl, fs, n, t, b, lo, hi, sd, tq, d, z, gp,
+                rep):
+    return split_open(ev, ne, j, kind, st, lay[L_SPLIT], rep, n, t, b, lo, hi, tq, gp[SG.Q_HS])
+
+
+@njit(cache=True, _nrt=False)
+def _open_charts(split, ev, ne, j, kind, st, lay, fl, fs, n, t, b, lo, hi, sd, tq, d, z, gp,
+                 rep):
     if kind == KIND_ELASTICITY_CHANGE:
         ga = lay[L_SLOPE]
         _, flo, fhi = fast_interval(st, ga, sd, tq)
         return _open_chart(ev, ne, j, kind, st, lay[L_SEP], fs, n, t, st[ga + G_BF], flo, fhi,
                            st[lay[L_SCHART] + C_LAST], d)
-    if kind == KIND_LEVEL_SHIFT:
-        return _open_chart(ev, ne, j, kind, st, lay[L_LEP], fl, n, t, b, lo, hi,
-                           st[lay[L_LCHART] + C_LAST], z)
+    return _open_chart(ev, ne, j, kind, st, lay[L_LEP], fl, n, t, b, lo, hi,
+                       st[lay[L_LCHART] + C_LAST], z)
+
+
+@compile_time_choice({True: _open_split, False: _open_charts})
+def open_change(split, ev, ne, j, kind, st, lay, fl, fs, n, t, b, lo, hi, sd, tq, d, z, gp,
+                rep):
+    """The opening record of an elasticity change or level shift (``split``: a constant)."""
+    return (_open_split if split else _open_charts)(split, ev, ne, j, kind, st, lay, fl, fs, n,
+                                                    t, b, lo, hi, sd, tq, d, z, gp, rep)
+
+
+@njit(cache=True, _nrt=False)
+def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, bparams, gparams,
+          vparams, split, gp, rep):
+    """The event record of an opening (rare: not inlined; ``split`` is a constant)."""
+    if kind == KIND_ELASTICITY_CHANGE or kind == KIND_LEVEL_SHIFT:
+        return open_change(split, ev, ne, j, kind, st, lay, fl, fs, n, t, b, lo, hi, sd, tq, d,
+                           z, gp, rep)
     if kind == KIND_OUT_OF_BOUNDS:
         return _open_run(ev, ne, j, kind, st, lay[L_BOUNDS], lay[L_BRUN], n, t, b, lo, hi,
                          bparams[sj, 1], bparams[sj, 2])
@@ -154,11 +184,101 @@ def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, b
                      np.sqrt(st[K.I_LPM2] / w) if w > 0.0 else np.nan, vparams[2])
 
 
+def _detect_split(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,
+                  lp, skind, sp, gp):
+    """The split GLR (slope and level kinds from the same sums) on every row past warm-up."""
+    fl = 0
+    fs = 0
+    if not warm:
+        fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp)
+    return np.nan, fl, fs
+
+
+def _detect_charts(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,
+                   lp, skind, sp, gp):
+    """The previous charts: the slope statistic d, the level chart on the standardized
+    innovation, the slope chart on d (informative rows only), with their episode trackers."""
+    d = slope_step(st, lay[L_SLOPE], xj[1], adjusted_response(st, xj, yj, k), sd, st[K.I_PAUSED],
+                   lf, lr)
+    fl = chart_step(lkind, st, lay[L_LCHART], np.nan if warm else o[K.O_Z], lp)
+    episode_step(st, lay[L_LEP], fl, n, t, b, lo, hi, o[K.O_E])
+    fs = chart_step(skind, st, lay[L_SCHART], d if inf else np.nan, sp)
+    episode_step(st, lay[L_SEP], fs, n, t, b, lo, hi, d)
+    return d, fl, fs
+
+
+@compile_time_choice({True: _detect_split, False: _detect_charts})
+def detect(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind, lp,
+           skind, sp, gp):
+    """The change detector family's step on one row; returns ``(d, level_flags,
+    slope_flags)``. ``split`` is a constant: only that family is compiled (as a function of
+    its own: it is most of the loop's code)."""
+    return (_detect_split if split else _detect_charts)(
+        split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind, lp, skind, sp,
+        gp)
+
+
+@njit(cache=True, _nrt=False)
+def _after_split(split, st, lay, fl, fs, b, lo, hi, gp):
+    split_reanchor(st, lay[L_SPLIT], fl, fs, gp)
+
+
+@njit(cache=True, _nrt=False)
+def _after_charts(split, st, lay, fl, fs, b, lo, hi, gp):
+    if fs & F_ALARM:
+        reanchor(st, lay[L_SLOPE])
+        episode_restart(st, lay[L_SEP], b, lo, hi)
+    if fl & F_ALARM:
+        episode_restart(st, lay[L_LEP], b, lo, hi)
+
+
+@compile_time_choice({True: _after_split, False: _after_charts})
+def after_alarms(split, st, lay, fl, fs, b, lo, hi, gp):
+    """Re-anchoring of the detectors after the row's alarms, once the rules have seen them
+    (``split``: a constant)."""
+    (_after_split if split else _after_charts)(split, st, lay, fl, fs, b, lo, hi, gp)
+
+
+@njit(cache=True, _nrt=False)
+def _keep_split(split, sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp):
+    at = lay[L_SPLIT]
+    sig[j, S_D] = np.nan
+    sig[j, S_BFAST] = np.nan
+    sig[j, S_LOFAST] = np.nan
+    sig[j, S_HIFAST] = np.nan
+    sig[j, S_LEVEL_STAT] = st[at + SG.D_GL]
+    sig[j, S_SLOPE_STAT] = st[at + SG.D_GS]
+    sig[j, S_LEVEL_FLAGS] = fl
+    sig[j, S_SLOPE_FLAGS] = fs
+
+
+@njit(cache=True, _nrt=False)
+def _keep_charts(split, sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp):
+    ga = lay[L_SLOPE]
+    sig[j, S_D] = d
+    sig[j, S_BFAST] = st[ga + G_BF]
+    _, sig[j, S_LOFAST], sig[j, S_HIFAST] = fast_interval(st, ga, sd, tq)
+    sig[j, S_LEVEL_STAT] = chart_stat(lkind, st, lay[L_LCHART], lp)
+    sig[j, S_SLOPE_STAT] = chart_stat(skind, st, lay[L_SCHART], sp)
+    sig[j, S_LEVEL_FLAGS] = fl
+    sig[j, S_SLOPE_FLAGS] = fs
+
+
+@compile_time_choice({True: _keep_split, False: _keep_charts})
+def keep_signals(split, sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp):
+    """Row ``j`` of the signals (:data:`S_D` ...), when the caller keeps them."""
+    (_keep_split if split else _keep_charts)(split, sig, j, st, lay, d, sd, tq, fl, fs, lkind,
+                                             lp, skind, sp)
+
+
 @njit(cache=True, inline="always")
-def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bparams, bon,
-         gparams, vparams, rparams, ev, ne, status, sig, keep, split, gp, rep, est_args):
+def _row(form, split, a, st, o, xj, yj, j, sj, k, t, ne):
     """Everything after the estimator's step for row ``j`` of series ``sj``; returns ``ne``.
-    All state is addressed as ``st[offset + slot]``: no array views are made per row."""
+    ``a`` holds :func:`pipeline_run`'s arguments. All state is addressed as
+    ``st[offset + slot]``: no array views are made per row."""
+    (_, _, _, _, _, _, lay, est_args, lf, lr, lkind, lp, skind, sp, bparams, bon, gparams,
+     vparams, rparams, _, ev, status, sig, keep, _, gp, rep) = a
+    tq = est_args[7]
     stat = o[K.O_STATUS]
     n = st[K.I_N]
     b = o[K.O_BETA]
@@ -170,25 +290,8 @@ def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bpar
     # informative: status ok and the estimator's forgetting not paused by flat prices (while
     # paused, b and the slope statistic are frozen; feeding them again is not new evidence)
     inf = ok and st[K.I_PAUSED] == 0.0
-    ga = lay[L_SLOPE]
-    la, le_ = lay[L_LCHART], lay[L_LEP]
-    sa, se_ = lay[L_SCHART], lay[L_SEP]
-    d = np.nan
-    fl = 0
-    fs = 0
-    if split:
-        # the split GLR (slope and level charts from the same sums) on every row past warm-up
-        if not warm:
-            fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp)
-    else:
-        d = slope_step(st, ga, xj[1], adjusted_response(st, xj, yj, k), sd, st[K.I_PAUSED],
-                       lf, lr)
-        # level chart on the standardized innovation
-        fl = chart_step(lkind, st, la, np.nan if warm else o[K.O_Z], lp)
-        episode_step(st, le_, fl, n, t, b, lo, hi, o[K.O_E])
-        # slope chart on d
-        fs = chart_step(skind, st, sa, d if inf else np.nan, sp)
-        episode_step(st, se_, fs, n, t, b, lo, hi, d)
+    d, fl, fs = detect(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr,
+                       lkind, lp, skind, sp, gp)
     # bounds, sign flip, low variation
     ba, bra = lay[L_BOUNDS], lay[L_BRUN]
     if inf and bon[sj]:
@@ -245,27 +348,21 @@ def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bpar
         # was never reported: the alarm was dropped and the detector had re-anchored)
         cool = 0.0 if split and (kind == KIND_ELASTICITY_CHANGE or kind == KIND_LEVEL_SHIFT) \
             else rparams[kind, U_COOLDOWN]
-        a = rule_step(st, r, fire, not fire, allowed, n, t, rparams[kind, U_MODE],
-                      rparams[kind, U_CLEAR_AFTER], cool)
-        if a == ACTION_CLEAR:
+        act = rule_step(st, r, fire, not fire, allowed, n, t, rparams[kind, U_MODE],
+                        rparams[kind, U_CLEAR_AFTER], cool)
+        if act == ACTION_CLEAR:
             ne = _clear(ev, ne, j, kind, st, r, n, t, b, lo, hi)
-        elif a == ACTION_OPEN:
+        elif act == ACTION_OPEN:
             ne = _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d,
                        o[K.O_Z], bparams, gparams, vparams, split, gp, rep)
-    if split:
-        split_reanchor(st, lay[L_SPLIT], fl, fs, gp)
-        if fs & F_ALARM:
+    if (fl | fs) & F_ALARM:
+        after_alarms(split, st, lay, fl, fs, b, lo, hi, gp)
+        if split and fs & F_ALARM:
             # the estimator's past before the change is down-weighted at once (one extra
             # forgetting step), so the reported b follows the new regime within a few dozen
             # rows (after a level shift too it doubled the level chart's false alarms on AR(1)
             # errors: measured, so not done there)
-            estimator_discount(est_args[0], st, k, est_args[1], est_args[2], DISCOUNT)
-    else:
-        if fs & F_ALARM:
-            reanchor(st, ga)
-            episode_restart(st, se_, b, lo, hi)
-        if fl & F_ALARM:
-            episode_restart(st, le_, b, lo, hi)
+            form_discount(form, st, k, est_args[0], est_args[1], DISCOUNT)
     # final status of the row
     code = stat
     if ok:
@@ -277,43 +374,24 @@ def _row(st, o, xj, yj, j, sj, k, t, lay, tq, lf, lr, lkind, lp, skind, sp, bpar
             code = 4.0
     status[j] = np.int8(code)
     if keep:
-        _keep(sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp, split)
+        keep_signals(split, sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp)
     return ne
 
 
-@njit(cache=True, _nrt=False)
-def _keep(sig, j, st, lay, d, sd, tq, fl, fs, lkind, lp, skind, sp, split):
-    if split:
-        at = lay[L_SPLIT]
-        sig[j, S_D] = np.nan
-        sig[j, S_BFAST] = np.nan
-        sig[j, S_LOFAST] = np.nan
-        sig[j, S_HIFAST] = np.nan
-        sig[j, S_LEVEL_STAT] = st[at + SG.D_GL]
-        sig[j, S_SLOPE_STAT] = st[at + SG.D_GS]
-        sig[j, S_LEVEL_FLAGS] = fl
-        sig[j, S_SLOPE_FLAGS] = fs
-        return
-    ga = lay[L_SLOPE]
-    sig[j, S_D] = d
-    sig[j, S_BFAST] = st[ga + G_BF]
-    _, sig[j, S_LOFAST], sig[j, S_HIFAST] = fast_interval(st, ga, sd, tq)
-    sig[j, S_LEVEL_STAT] = chart_stat(lkind, st, lay[L_LCHART], lp)
-    sig[j, S_SLOPE_STAT] = chart_stat(skind, st, lay[L_SCHART], sp)
-    sig[j, S_LEVEL_FLAGS] = fl
-    sig[j, S_SLOPE_FLAGS] = fs
-
-
-@njit(cache=True, _nrt=False)
-def pipeline_run(states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind, lp, skind, sp,
-                 bparams, bon, gparams, vparams, rparams, out, ev, status, sig, keep, u, split,
-                 gp, rep):
+def pipeline_run(form, split, states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind, lp,
+                 skind, sp, bparams, bon, gparams, vparams, rparams, out, ev, status, sig, keep,
+                 u, gp, rep):
     """Process rows ``start..`` in order; returns ``(stop_row, n_events)``.
+
+    ``form`` (:func:`monitor.estimators.dispatch.step_form`) and ``split`` (the split GLR,
+    else the previous charts) choose the compiled loop (:data:`LOOPS`): each holds only its
+    estimator step and its detector family, so a configuration compiles, and caches, only what
+    it uses.
 
     Stops early (``stop_row < n``) when the event buffer ``ev`` might overflow; the caller
     grows it and calls again from ``stop_row`` (the states are consistent at row boundaries).
-    ``est_args = (model, band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq, off)``
-    (:func:`monitor.estimators.dispatch.estimator_step`; ``off``: log exposure per row, or
+    ``est_args = (band, lags, lam, guard, guard_lam, min_price_sd, min_neff, tq, off)``
+    (:func:`monitor.estimators.dispatch.form_step`; ``off``: log exposure per row, or
     empty); ``bparams`` is
     ``(n_series, BOUNDS_PARAMS)``, ``bon`` per-series bounds switches; ``rparams`` is
     ``(5, RULE_PARAMS)``; ``vparams = [persistence, clear_after, min_price_sd]``; ``u`` is the
@@ -321,7 +399,18 @@ def pipeline_run(states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind, lp,
     detectors get the estimator's log-scale response ``out[O_YLOG]`` (``y`` itself for the
     log-log model).
     """
-    model, band, lags, lam, guard, guard_lam, mps, mneff, tq, off = est_args
+    return LOOPS[form, bool(split)]((states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind,
+                                     lp, skind, sp, bparams, bon, gparams, vparams, rparams, out,
+                                     ev, status, sig, keep, u, gp, rep))
+
+
+@njit(cache=True, inline="always")
+def _rows(form, split, a):
+    """The loop of :func:`pipeline_run` for a literal ``form`` and ``split`` (``a``: the
+    arguments after them, as one tuple)."""
+    states, sid, X, y, ts, start, _, est_args, _, _, _, _, _, _, _, _, _, _, _, out, ev, _, _, \
+        _, u, _, _ = a
+    band, lags, lam, guard, guard_lam, mps, mneff, tq, off = est_args
     has_off = off.shape[0] > 0
     k = X.shape[1]
     ne = 0
@@ -332,9 +421,56 @@ def pipeline_run(states, sid, X, y, ts, start, lay, est_args, lf, lr, lkind, lp,
         sj = sid[j]
         st = states[sj]
         o = out[j]
-        estimator_step(model, st, X[j], y[j], off[j] if has_off else 0.0, k, band, lags, lam,
-                       guard, guard_lam, mps, mneff, tq, o, u)
-        ne = _row(st, o, X[j], o[K.O_YLOG], j, sj, k, ts[j], lay, tq, lf, lr, lkind, lp, skind, sp,
-                  bparams, bon, gparams, vparams, rparams, ev, ne, status, sig, keep, split, gp,
-                  rep, est_args)
+        form_step(form, st, X[j], y[j], off[j] if has_off else 0.0, k, band, lags, lam, guard,
+                  guard_lam, mps, mneff, tq, o, u)
+        ne = _row(form, split, a, st, o, X[j], o[K.O_YLOG], j, sj, k, ts[j], ne)
     return X.shape[0], ne
+
+
+# One compiled loop per (estimator step form, detector family), each a module-level function so
+# that numba's cache=True keeps it: a configuration compiles only its own loop, on first use.
+@njit(cache=True, _nrt=False)
+def _two_split(a):
+    return _rows(FORM_TWO, True, a)
+
+
+@njit(cache=True, _nrt=False)
+def _two_charts(a):
+    return _rows(FORM_TWO, False, a)
+
+
+@njit(cache=True, _nrt=False)
+def _linear_split(a):
+    return _rows(FORM_LINEAR, True, a)
+
+
+@njit(cache=True, _nrt=False)
+def _linear_charts(a):
+    return _rows(FORM_LINEAR, False, a)
+
+
+@njit(cache=True, _nrt=False)
+def _poisson_split(a):
+    return _rows(FORM_POISSON, True, a)
+
+
+@njit(cache=True, _nrt=False)
+def _poisson_charts(a):
+    return _rows(FORM_POISSON, False, a)
+
+
+@njit(cache=True, _nrt=False)
+def _iv_split(a):
+    return _rows(FORM_IV, True, a)
+
+
+@njit(cache=True, _nrt=False)
+def _iv_charts(a):
+    return _rows(FORM_IV, False, a)
+
+
+#: the compiled loop of each ``(step form, split)``
+LOOPS = {(FORM_TWO, True): _two_split, (FORM_TWO, False): _two_charts,
+         (FORM_LINEAR, True): _linear_split, (FORM_LINEAR, False): _linear_charts,
+         (FORM_POISSON, True): _poisson_split, (FORM_POISSON, False): _poisson_charts,
+         (FORM_IV, True): _iv_split, (FORM_IV, False): _iv_charts}

@@ -44,7 +44,7 @@ from monitor.errors import ConfigError
 from monitor.estimators import feedback as FB
 from monitor.estimators import kernel as K
 from monitor.estimators.batch import initial_states
-from monitor.estimators.dispatch import model_code, work_size
+from monitor.estimators.dispatch import step_form, work_size
 from monitor.detectors import split_glr as SG
 from monitor.detectors.split_design import split_thresholds
 from monitor.pipeline.kernel import L_SIZE, L_SPLIT, NSIG, pipeline_run
@@ -290,18 +290,18 @@ class Pipeline:
         off = np.empty(0) if offset is None else np.ascontiguousarray(offset, dtype=np.float64)
         if off.size and off.shape != (n,):
             raise ValueError("offset must have one value per row")
-        args = (model_code(est.model), est._band, est._lags, est.forgetting,
-                est.excitation_guard, est.guard_forgetting, est.min_price_sd, est.min_n_eff,
-                est._tq, off)
+        args = (est._band, est._lags, est.forgetting, est.excitation_guard,
+                est.guard_forgetting, est.min_price_sd, est.min_n_eff, est._tq, off)
+        form = step_form(est.model, X.shape[1], est._band)
         d = self.detectors
         (lkind, lp), (skind, sp) = self._charts["level"], self._charts["slope"]
         while True:
-            ev = np.empty((cap, NEV))
-            stop, ne = pipeline_run(states, sid, X, y, tsf, start, self._layout, args,
-                                    d.fast_forgetting, d.reference_forgetting, lkind, lp, skind,
-                                    sp, bparams, bon, self._gparams, self._vparams,
-                                    self._rparams, out, ev, status, sig, keep_signals,
-                                    np.empty(work_size(est.model, X.shape[1])), self.split,
+            ev = np.zeros((cap, NEV))     # zeros: a field a record leaves unset reads 0
+            stop, ne = pipeline_run(form, self.split, states, sid, X, y, tsf, start,
+                                    self._layout, args, d.fast_forgetting,
+                                    d.reference_forgetting, lkind, lp, skind, sp, bparams, bon,
+                                    self._gparams, self._vparams, self._rparams, out, ev, status,
+                                    sig, keep_signals, np.empty(work_size(est.model, X.shape[1])),
                                     self._gp, np.empty(SG.REPORT_SIZE))
             records.append(ev[:ne])
             if stop >= n:
