@@ -79,11 +79,7 @@ def test_config_key_and_groups_give_pooled_columns_and_group_alert(tmp_path):
     write_log(tmp_path / "log.csv", n=160, change_store="north-quay", change_at=90)
     (tmp_path / "elmon.toml").write_text(
         '[series]\nkey = ["sku", "store"]\ngroups = ["store"]\ngroup_min_members = 3\n'
-        '[estimator]\nforgetting = 0.97\n[detectors]\narl0 = 2000\n'
-            # the CUSUM charts: under the split default two of the four changed series open a
-            # level_shift first and their elasticity_change 11-12 days later, outside the
-            # 7-day group window (issue 12's labelling miss, measured 4 December 2026)
-            'change_detector = "charts"\n', encoding="utf-8")
+        '[estimator]\nforgetting = 0.97\n[detectors]\narl0 = 2000\n', encoding="utf-8")
     rc = main(["replay", str(tmp_path / "log.csv"), "--out", str(tmp_path / "o"), "--quiet",
                "--config", str(tmp_path / "elmon.toml")])
     assert rc == 0

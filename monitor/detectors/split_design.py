@@ -154,7 +154,8 @@ class _Simulation:
         return s / self.n
 
     def solve(self, chart: int, arl0: float) -> float:
-        lo = S.MARGIN if chart == 0 else 1.0
+        # both statistics are 0 or above about the likelihood margin (split_glr: labels)
+        lo = S.MARGIN
         grid = np.linspace(lo, 25.0, 2401)
         a = self.arl(chart, grid)
         if a[-1] < arl0 or arl0 > self.max_len / 4:
