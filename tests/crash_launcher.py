@@ -7,6 +7,11 @@ from the store (nothing but imported modules is inherited: no connection, no thr
 state) and runs it; after a random delay in [LO, HI] seconds the child is killed with SIGKILL.
 Forking saves the interpreter start-up (seconds on this machine) that an exec would pay in each
 of the rounds; the rounds that start the ``elmon`` command itself are done by the test.
+
+So that the kills land on services at work on any machine, however loaded, each round waits
+for state, never for a clock: it forks only once the feed holds bytes the store has not
+committed (or the feed has stopped growing), and the random delay starts when the child says
+its service is built (a byte on a pipe), not when it was forked.
 """
 
 from __future__ import annotations
@@ -33,6 +38,41 @@ def committed(db: Path) -> int:
         return int(row[0])
     except sqlite3.Error:
         return -1
+
+
+def committed_offset(db: Path, source: str) -> int:
+    """Byte offset of the feed the store has committed (0 before the first commit)."""
+    if not db.exists():
+        return 0
+    try:
+        conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
+        try:
+            row = conn.execute("SELECT position FROM source_offsets WHERE source = ?",
+                               (source,)).fetchone()
+        finally:
+            conn.close()
+    except sqlite3.Error:
+        return 0
+    if not row or not row[0]:
+        return 0
+    return int(json.loads(row[0]).get("offset", 0))
+
+
+def wait_for_pending(db: Path, source: str, feed: Path, quiet_s: float = 3.0,
+                     guard_s: float = 600.0) -> None:
+    """Return once the feed holds bytes beyond the committed offset, or once it has not grown
+    for ``quiet_s`` (the writer is done); ``guard_s`` is a hang guard only."""
+    t0 = time.monotonic()
+    last_size, last_change = -1, time.monotonic()
+    while time.monotonic() - t0 < guard_s:
+        size = feed.stat().st_size if feed.exists() else 0
+        if size > committed_offset(db, source) + 64:
+            return
+        if size != last_size:
+            last_size, last_change = size, time.monotonic()
+        elif time.monotonic() - last_change > quiet_s:
+            return
+        time.sleep(0.02)
 
 
 def warm_up() -> None:
@@ -67,18 +107,29 @@ def main() -> int:
     cfg = load_config(config_path)
     base = Path(config_path).resolve().parent
     db = base / cfg.section("store")["path"]
+    source, spec = next(iter(cfg.section("sources").items()))
+    feed = base / spec["path"]
     rng = random.Random(int(seed))
     log = []
     for i in range(rounds):
+        wait_for_pending(db, source, feed)
         before = committed(db)
+        ready_r, ready_w = os.pipe()
         pid = os.fork()
         if pid == 0:                                   # the child: a service, killed below
             code = 1
             try:
-                Service(cfg, base=base).run(install_signals=False)
+                os.close(ready_r)
+                svc = Service(cfg, base=base)
+                os.write(ready_w, b"r")                # built: the parent's clock starts now
+                os.close(ready_w)
+                svc.run(install_signals=False)
                 code = 0
             finally:
                 os._exit(code)
+        os.close(ready_w)
+        os.read(ready_r, 1)                            # b"" if the child died before: go on
+        os.close(ready_r)
         delay = rng.uniform(lo, hi)
         time.sleep(delay)
         os.kill(pid, signal.SIGKILL)
