@@ -177,7 +177,9 @@ def diagnostics(st, r, lt):
 def fixed_b_factor(lags, n_meat):
     """Widening of the hac band for the variability of the Newey-West variance: the ratio of
     the fixed-b 97.5% critical value of the Bartlett kernel, ``1.9600 + 2.9694 b + 0.4160 b^2
-    - 0.5324 b^3`` (Kiefer & Vogelsang 2005; coefficients from memory), to 1.96, with
+    - 0.5324 b^3`` (Kiefer & Vogelsang 2005's fitted polynomial; coefficients recalled, and
+    checked within 2% for b in 0.05-1 against the fixed-b limit simulated from its definition
+    in tests/test_estimator_bands.py), to 1.96, with
     ``b = (lags + 1) / n_meat`` and ``n_meat = W2^2 / W4`` the effective number of rows of the
     meat (n at forgetting 1). Applied at every level (exact for 95%, an approximation else)."""
     b = (lags + 1.0) / n_meat if n_meat > 0.0 else 1.0
