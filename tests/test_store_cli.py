@@ -102,3 +102,24 @@ def test_every_store_command_has_help_with_an_example(argv, capsys):
     assert info.value.code == 0
     text = capsys.readouterr().out
     assert "example" in text and "elmon " + " ".join(argv) in text
+
+
+def test_status_says_which_series_cannot_be_watched(tmp_path, capsys):
+    # issue 12 item 5: `elmon status` names the series whose prices do not move enough to
+    # show a change of 0.5 in b within the watch horizon (delay50_obs beyond it)
+    from monitor.detectability import WATCH_HORIZON_OBS
+    from monitor.store.detection import write_delay50
+    from tests import dashboard_fixtures as fx
+
+    path = tmp_path / "watch.sqlite"
+    facts = fx.seed_store(path, n_series=4, n_obs=60)
+    quick, slow = facts["series"][0], facts["series"][1]
+    with ms.open_store(path) as s:
+        write_delay50(s, {quick: 40.0, slow: 3.0 * WATCH_HORIZON_OBS})
+    capsys.readouterr()
+    assert main(["status", "--db", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert (f"detectability: 1 series show a change of 0.5 in b within "
+            f"{WATCH_HORIZON_OBS:,} observations") in out
+    assert "1 do not (their prices do not move enough to watch b); 2 not yet known" in out
+    assert f"  {slow}: about 3,000 observations" in out and f"  {quick}:" not in out

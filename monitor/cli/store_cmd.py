@@ -69,6 +69,28 @@ def cmd_init(args) -> int:
     return 0
 
 
+def _watch_lines(latest) -> list[str]:
+    """Detectability (issue 12): how many series can show a change of 0.5 in b within the
+    watch horizon, and the ones whose prices do not move enough (up to 10 named)."""
+    from monitor.detectability import WATCH_HORIZON_OBS
+
+    if "delay50_obs" not in latest.columns or not len(latest):
+        return []
+    d = latest["delay50_obs"].astype(float)
+    known = d.notna()
+    slow = latest.loc[known & (d > WATCH_HORIZON_OBS)].sort_values("delay50_obs",
+                                                                    ascending=False)
+    out = ["", f"detectability: {int((known & (d <= WATCH_HORIZON_OBS)).sum())} series show a "
+               f"change of 0.5 in b within {WATCH_HORIZON_OBS:,} observations (median delay); "
+               f"{len(slow)} do not (their prices do not move enough to watch b); "
+               f"{int((~known).sum())} not yet known"]
+    for r in slow.head(10).itertuples(index=False):
+        out.append(f"  {r.series}: about {int(round(r.delay50_obs, -1)):,} observations")
+    if len(slow) > 10:
+        out.append(f"  ... and {len(slow) - 10} more (elmon status --json: delay50_obs)")
+    return out
+
+
 def render_status(store: mstore.Store, now: Any = None, stale_after: float = 3600.0) -> str:
     """The text of ``elmon status``."""
     from monitor import store as mstore
@@ -93,6 +115,7 @@ def render_status(store: mstore.Store, now: Any = None, stale_after: float = 360
                                  position=[mstore.to_json(p) for p in sources["position"]])
     out.append(_table(sources, ["source", "kind", "rows_read", "rows_rejected", "last_run_at",
                                 "lag_s", "last_error", "position"]))
+    out += _watch_lines(mstore.latest_estimates(store))
     out += ["", "open alerts:", _table(active.head(20), ["id", "severity", "state", "series",
                                                          "kind", "opened_ts", "message"])]
     if len(active) > 20:
