@@ -24,6 +24,7 @@ COMMAND_MODULES = (
     "monitor.cli.alerts_cmd",
     "monitor.cli.service_cmd",
     "monitor.cli.series_cmd",
+    "monitor.cli.bounds_cmd",
     "monitor.cli.tune_cmd",
     "monitor.cli.dashboard_cmd",
     "monitor.cli.demo_cmd",

@@ -66,6 +66,7 @@ from monitor.store.alerts import (ALERT_KINDS, ALERT_STATES, SEVERITIES, acknowl
                                   active_silence, add_note, apply_alert_change, auto_resolve,
                                   due_reminders, get_alert, last_resolved, open_alert,
                                   record_reminder, resolve_alert, send_reminders, silence)
+from monitor.store.bounds import clear_series_bounds, list_series_bounds, set_series_bounds
 from monitor.store.batch import (ESTIMATE_COLUMNS, OBSERVATION_COLUMNS, Checkpoint,
                                  existing_observation_keys, get_offset, load_checkpoints,
                                  thin_estimates, write_batch)

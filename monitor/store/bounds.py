@@ -1,0 +1,133 @@
+"""Per-series elasticity bounds: the ``low`` / ``high`` columns of the ``series`` table.
+
+A series' own bounds replace the ``[bounds]`` limits of the configuration side by side: a side
+left NULL keeps the ``[bounds]`` limit (:func:`monitor.store.live.series_bounds` reads them, the
+live service applies them to each batch). ``bound_low`` / ``bound_high`` are different: they
+record the bounds the service last *applied* (what the dashboard draws) and only the service
+writes them.
+
+Writing bounds takes no writer lock of its own. The service holds the store's writer lock for
+as long as it runs, so a command that needed it could only change bounds with the service
+stopped, while the point is that the running service picks them up at its next batch (it reads
+the ``series`` table for every batch and caches nothing). The change is one ``BEGIN IMMEDIATE``
+transaction on one row; SQLite's write lock (busy timeout 10 s) orders it with the service's
+batch transactions, and the service never writes ``low`` / ``high``.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+
+import pandas as pd
+
+from monitor.errors import StoreError
+from monitor.store.codec import wall_ts
+from monitor.store.core import Store, accepts_path
+
+#: sentinel: leave this side as stored
+KEEP = object()
+
+
+def _checked(side: str, value) -> float | None:
+    """``value`` as a finite float, or ``None`` (no bound on this side)."""
+    if value is None:
+        return None
+    if isinstance(value, bool):
+        raise StoreError(f"bounds: {side} = {value!r} is not a number")
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise StoreError(f"bounds: {side} = {value!r} is not a number (give an elasticity "
+                         f"such as -3.5, or 'none' for no {side} bound)") from None
+    if not math.isfinite(v):
+        raise StoreError(f"bounds: {side} = {value!r} must be a finite number (leave the side "
+                         f"out, or 'none', for no {side} bound)")
+    return v
+
+
+def set_series_bounds(store: Store, series: str, *, low=KEEP, high=KEEP,
+                      create: bool = False) -> dict:
+    """Set a series' own elasticity bounds (unitless: d log q / d log p).
+
+    Parameters
+    ----------
+    store : Store
+        The writer.
+    series : str
+        Series id, exactly as stored.
+    low, high : float, None or KEEP
+        The new side (``None`` removes it, so the ``[bounds]`` limit applies); ``KEEP`` (the
+        default) leaves the stored side as it is.
+    create : bool
+        Add the series when the store does not know it yet (bounds set ahead of its first
+        row). Without it an unknown name is refused: a mistyped name would otherwise hold
+        bounds that no row ever meets.
+
+    Returns
+    -------
+    dict
+        ``series``, ``low``, ``high`` (after the change), ``before`` (``(low, high)``) and
+        ``created``.
+
+    Raises
+    ------
+    StoreError
+        A side that is not a finite number, ``low >= high`` after the change, or an unknown
+        series without ``create``.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> db = pathlib.Path(tempfile.mkdtemp()) / "b.sqlite"
+    >>> with Store.open(db) as st:
+    ...     r = set_series_bounds(st, "shop1/tea", low=-4, create=True)
+    ...     r = set_series_bounds(st, "shop1/tea", high=-0.5)
+    ...     (r["low"], r["high"]), r["before"]
+    ((-4.0, -0.5), (-4.0, None))
+    """
+    series = str(series)
+    new = {side: (KEEP if v is KEEP else _checked(side, v))
+           for side, v in (("low", low), ("high", high))}
+    with store.atomic():
+        rows = store.rows("SELECT low, high FROM series WHERE series = ?", (series,))
+        created = not rows
+        if created and not create:
+            names = [r["series"] for r in store.rows("SELECT series FROM series")]
+            near = difflib.get_close_matches(series, names, n=3, cutoff=0.6)
+            hint = f"; close names: {', '.join(repr(n) for n in near)}" if near else ""
+            raise StoreError(f"no series {series!r} in the store ({len(names)} series{hint}); "
+                             f"names are exact (elmon bounds list, elmon status --json). To set "
+                             f"bounds before a series' first row, add --create")
+        before = (None, None) if created else (rows[0]["low"], rows[0]["high"])
+        lo = before[0] if new["low"] is KEEP else new["low"]
+        hi = before[1] if new["high"] is KEEP else new["high"]
+        if lo is not None and hi is not None and not lo < hi:
+            raise StoreError(f"series {series!r}: bounds low = {lo:g} must be below high = "
+                             f"{hi:g}")
+        now = wall_ts()
+        if created:
+            store.execute("INSERT INTO series (series, low, high, updated_at) VALUES (?, ?, ?, ?)",
+                          (series, lo, hi, now))
+        else:
+            store.execute("UPDATE series SET low = ?, high = ?, updated_at = ? WHERE series = ?",
+                          (lo, hi, now, series))
+    return {"series": series, "low": lo, "high": hi, "before": before, "created": created}
+
+
+def clear_series_bounds(store: Store, series: str) -> dict:
+    """Remove a series' own bounds (both sides); the ``[bounds]`` limits then apply to it.
+    Raises :class:`StoreError` for an unknown series."""
+    return set_series_bounds(store, series, low=None, high=None)
+
+
+@accepts_path(readonly=True)
+def list_series_bounds(store: Store) -> pd.DataFrame:
+    """Series with bounds of their own, by name.
+
+    Columns: ``series, low, high`` (their own bounds; NULL: that side follows ``[bounds]``)
+    and ``bound_low, bound_high`` (the bounds the service last applied to the series, NULL
+    before its first batch or where no bound is in effect).
+    """
+    return store.frame("SELECT series, low, high, bound_low, bound_high FROM series "
+                       "WHERE low IS NOT NULL OR high IS NOT NULL ORDER BY series")
