@@ -157,6 +157,12 @@ def print_summary(summary: dict, out_dir) -> None:
           f"{summary['zero_skipped']} zero quantities skipped, {summary['alerts']} alerts")
     if summary.get("alerts_by_rule"):
         print("alerts by kind: " + ", ".join(f"{k} {v}" for k, v in sorted(summary["alerts_by_rule"].items())))
+    if summary.get("zero_notes"):
+        from monitor.replay.health import ZERO_NOTE_SHARE
+
+        print(f"{summary['zero_notes']} series have {ZERO_NOTE_SHARE:.0%} or more zero quantities: "
+              "the log-log model cannot use zeros and is biased on small counts; use "
+              "--model poisson (summary.json: each such series' note)")
     t = summary["timing"]
     print(f"wall time {t['wall_s']:.2f} s ({t['rows_per_s']:,.0f} rows/s)")
     print(f"{'series':<32} {'beta':>8} {'95% interval':>20} {'n_eff':>8}  status")

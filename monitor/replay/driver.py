@@ -46,6 +46,7 @@ from monitor.pipeline.run import Pipeline
 from monitor.progress import Progress
 from monitor.replay.detection import DEFAULT_HORIZON, Scores, read_truth, score
 from monitor.replay.groups import apply_groups
+from monitor.replay.health import zero_counts, zero_fields
 from monitor.live.groups import settings_from_config as group_settings_of
 from monitor.replay.kernel import (ALERT_OUT_COLUMNS, FINAL_FIELDS, CarriedState, Partial, Setup,
                                    merge_final, partial_of, run_chunk)
@@ -363,6 +364,10 @@ def _health_counts(final: dict) -> dict:
     return out
 
 
+def _model(est) -> str:
+    return str(getattr(est, "model", "loglinear"))
+
+
 def _health_fields(d: dict) -> dict:
     """A series' residual health for summary.json (monitor.replay.health): ``resid_ac1``,
     ``var_price_slope``, ``sd_ratio_per_price_sd`` (4 significant digits; null when not
@@ -393,7 +398,8 @@ def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info
             final[str(name)] = {"ts": str(t_txt), **{k: _json_float(d[k]) for k in FINAL_FIELDS},
                                 "status": d["status"], "n_obs": int(d["n"]),
                                 "delay50_obs": _json_float(d.get("delay50_obs", float("nan"))),
-                                **_health_fields(d)}
+                                **_health_fields(d),
+                                **zero_fields(_model(setup.est), d.get("zeros", 0), d["n"])}
     by_rule = {str(k): int(c) for k, c in alerts["rule"].value_counts().items()} if len(alerts) else {}
     statuses = [v["status"] for v in final.values()]
     wall = time.perf_counter() - t0
@@ -402,6 +408,7 @@ def build_summary(log, acc: Accumulator, alerts, setup, config, t0, t_core, info
         "alerts_by_rule": by_rule,
         "status_counts": {s: statuses.count(s) for s in dict.fromkeys(statuses)},
         "health_counts": _health_counts(final),
+        "zero_notes": sum(1 for v in final.values() if "note" in v),
         "final": final,
         "settings": {"estimator": setup.est._params(), "validation": setup.vset.__dict__,
                      "columns": column_names(config), **setup.pipe.settings(),
@@ -457,6 +464,7 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
                 out_dir / "rejects.csv")
 
     final = {}
+    zeros = zero_counts(v)
     if len(good):
         last = np.flatnonzero(np.r_[sid[1:] != sid[:-1], True])
         d50 = pipe.delay50_obs(result.states)
@@ -477,13 +485,16 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
                 "status": STATUS_LABELS[int(result.status[j])],
                 "n_obs": int(np.count_nonzero(sid == sid[j])),
                 "delay50_obs": _json_float(d50[sid[j]]),
-                **_health_fields({} if health is None else health.iloc[int(sid[j])].to_dict())}
+                **_health_fields({} if health is None else health.iloc[int(sid[j])].to_dict()),
+                **zero_fields(_model(est), zeros.get(names[sid[j]], 0),
+                              np.count_nonzero(sid == sid[j]))}
     wall = time.perf_counter() - t0
     summary = {
         "log": str(log_path),
         "rows": int(len(frame)) + (0 if chunk.rejects is None else len(chunk.rejects)),
         "accepted": int(len(good)), "rejected": int(len(v.rejects)),
         "zero_skipped": int(len(v.zero_skipped)), "series": len(names),
+        "zero_notes": sum(1 for f in final.values() if "note" in f),
         "alerts": int(len(alerts)),
         "alerts_by_rule": {str(k): int(c) for k, c in alerts["rule"].value_counts().items()} if len(alerts) else {},
         "status_counts": {s["status"]: sum(1 for f in final.values() if f["status"] == s["status"]) for s in final.values()},

@@ -21,7 +21,7 @@ import pandas as pd
 import pyarrow as pa
 
 from monitor.estimators import kernel as K
-from monitor.replay.health import HEALTH_COLUMNS, HealthSums
+from monitor.replay.health import HEALTH_COLUMNS, HealthSums, zero_counts
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
                                  estimates_frame)
 from monitor.rows.isotime import iso_utc
@@ -271,7 +271,7 @@ def partial_of(res: ChunkResult, setup: Setup, carried: CarriedState) -> Partial
     final = _final(good, res, None if carried.states is None else
                    setup.pipe.delay50_obs(carried.states),
                    carried.health if getattr(setup.est, "model", "loglinear") == "loglinear"
-                   else None)
+                   else None, zero_counts(v))
     report = pd.DataFrame(columns=ESTIMATE_COLUMNS)
     if setup.report_series and len(good):
         m = good["series"].isin(setup.report_series).to_numpy()
@@ -293,14 +293,15 @@ def _ts_of_events(good, events) -> np.ndarray:
     return good["ts"].to_numpy(dtype=np.int64)[ev["row"].to_numpy(dtype=np.int64)]
 
 
-def _final(good: pd.DataFrame, res: ChunkResult, delay50=None, health=None) -> pd.DataFrame:
+def _final(good: pd.DataFrame, res: ChunkResult, delay50=None, health=None,
+           zeros: pd.Series | None = None) -> pd.DataFrame:
     """Last processed observation of each series in the chunk, its row count and, from the
     pipeline states after the chunk, ``delay50_obs`` (issue 12); with ``health`` (the carried
     :class:`~monitor.replay.health.HealthSums`, cumulative) the series' residual health so far
     (:data:`~monitor.replay.health.HEALTH_COLUMNS`, empty for models other than log-log)."""
     sid = res.sid
     if sid.size == 0:
-        return pd.DataFrame(columns=["ts", *FINAL_FIELDS, "status", "n", "delay50_obs",
+        return pd.DataFrame(columns=["ts", *FINAL_FIELDS, "status", "n", "zeros", "delay50_obs",
                                      *HEALTH_COLUMNS],
                             index=pd.Index([], name="series", dtype=object))
     # each series' last row in processing order (rows need not be grouped by series: with
@@ -314,6 +315,10 @@ def _final(good: pd.DataFrame, res: ChunkResult, delay50=None, health=None) -> p
     f.insert(0, "ts", good["ts"].to_numpy(dtype=np.int64)[last])
     f["status"] = np.array(STATUS_LABELS, dtype=object)[res.status[last]]
     f["n"] = counts.astype(np.int64)
+    # zero quantities skipped or rejected in the chunk (issue 13: the Poisson note); a series
+    # whose chunk holds zeros but no processed row is not counted
+    f["zeros"] = (np.zeros(len(f), np.int64) if zeros is None or not len(zeros)
+                  else zeros.reindex(f.index).fillna(0).to_numpy(dtype=np.int64))
     f["delay50_obs"] = np.nan if delay50 is None else np.asarray(delay50)[sid[last]]
     if health is not None:
         h = health.frame(f.index, sid[last])
@@ -358,4 +363,6 @@ def merge_final(old: pd.DataFrame | None, new: pd.DataFrame) -> pd.DataFrame:
     new = new.copy()
     if len(common):
         new.loc[common, "n"] += old.loc[common, "n"].to_numpy()
+        if "zeros" in new and "zeros" in old:
+            new.loc[common, "zeros"] += old.loc[common, "zeros"].to_numpy()
     return pd.concat([old.drop(common), new])
