@@ -55,6 +55,9 @@ NOT_RUNNABLE = [
     (r"^elmon series\b", "acts on a live store holding the reader's series (the README's "
                           "elmon.sqlite of `elmon run`); tests/test_series_reset.py runs the "
                           "same commands on a store the service made"),
+    (r"^elmon bounds\b", "acts on a live store holding the reader's series (the README's "
+                         "elmon.sqlite of `elmon run`); tests/test_bounds_cmd.py runs the same "
+                         "commands on a store, one of them while a Monitor holds it"),
     (r"^elmon\b.*(?<![\w./-])[A-Z][A-Z_]{2,}(?![\w.-])", "names a placeholder in capitals "
                                                         "(STORE, LOG, DIR) the reader fills in"),
 ]
