@@ -42,6 +42,12 @@ def test_demo_catches_the_scenario_change_point(tmp_path):
     # raised after the change, within 60 days of it (daily data)
     assert t_change <= opened <= t_change + pd.Timedelta(days=60), (opened, t_change)
     assert f"ALERT" in proc.stdout and change.series in proc.stdout
+    # issue 16: the feed (9 s at this speed) ends before --duration; the terminal says so
+    # and that the demo stays up until Ctrl-C
+    ended = [ln for ln in proc.stdout.splitlines() if "feed ended" in ln]
+    assert len(ended) == 1, proc.stdout[-3000:]
+    assert f"all {len(pd.read_csv(wd / 'feed.csv'))} rows appended" in ended[0]
+    assert "until Ctrl-C" in ended[0]
 
 
 @pytest.mark.slow
@@ -77,6 +83,24 @@ def test_demo_with_dashboard_stops_every_process_on_sigterm(tmp_path):
     time.sleep(1)
     with pytest.raises(OSError):
         urllib.request.urlopen(f"http://127.0.0.1:{port}/_stcore/health", timeout=1)
+
+
+def test_default_pace_alerts_the_headline_change_early_and_lasts_minutes():
+    """Issue 16: at 8 simulated days a second the retail feed ended 45 s after the start. At
+    the default pace the headline change (elm-cross/rye-crackers) is in the feed with room for
+    30 days of detection delay (it is found about 15 rows after the change) within the first
+    two minutes, and the feed lasts at least three minutes."""
+    import simulators
+    from monitor.cli.demo import SCENARIO_SETTINGS, pace_text
+
+    speed = SCENARIO_SETTINGS["retail"]["speed"]
+    sim = simulators.simulate("retail", seed=1)
+    ts = pd.to_datetime(sim.log["ts"], utc=True)
+    change = pd.Timestamp("2024-06-13T00:00:00Z")          # README: the headline change
+    assert ((change + pd.Timedelta(days=30)) - ts.min()).total_seconds() / speed <= 120
+    assert (ts.max() - ts.min()).total_seconds() / speed >= 180
+    assert pace_text(sim.log["ts"], [change.isoformat()], speed).startswith(
+        "the feed runs 3 min")
 
 
 def test_pick_port_replaces_a_port_in_use_and_keeps_a_free_one():

@@ -33,7 +33,7 @@ def register(sub) -> None:
                        epilog=EXAMPLE, formatter_class=HelpFormatter)
     p.add_argument("--scenario", default="retail", help="retail (default), load, observational, flat")
     p.add_argument("--speed", type=float, default=None,
-                   help="simulated seconds per wall second (retail default 691200: 8 days a second)")
+                   help="simulated seconds per wall second (default 172800 = 2 days a second for the daily scenarios: the retail year runs about 3 minutes; 14400 = 4 hours a second for load)")
     p.add_argument("--db", default=None, help="store path (default WORKDIR/elmon-demo.sqlite; replaced)")
     p.add_argument("--workdir", default="demo-work", help="working folder (default ./demo-work)")
     p.add_argument("--seed", type=int, default=1, help="scenario seed (default 1)")
