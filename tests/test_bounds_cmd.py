@@ -137,8 +137,41 @@ def test_a_running_service_applies_new_bounds_at_its_next_batch(tmp_path, capsys
 
 
 def test_every_bounds_command_has_help_with_an_example(capsys):
-    for argv in (["bounds", "--help"], ["bounds", "set", "--help"], ["bounds", "list", "--help"]):
+    for argv in (["bounds", "--help"], ["bounds", "set", "--help"], ["bounds", "load", "--help"],
+                 ["bounds", "list", "--help"]):
         with pytest.raises(SystemExit) as exc:
             main(argv)
         assert exc.value.code == 0
         assert "elmon bounds " in capsys.readouterr().out.split("example")[-1]
+
+
+def test_load_sets_many_series_or_none_of_them(tmp_path, capsys):
+    db = str(_store(tmp_path / "s.sqlite"))
+    good = tmp_path / "bounds.csv"
+    good.write_text("series,low,high\nshop1/tea,-4,-0.5\nshop2/oats,,-1\n")
+    assert main(["bounds", "load", str(good), "--db", db]) == 0
+    assert _own(db) == {"shop1/tea": (-4.0, -0.5), "shop2/oats": (None, -1.0)}
+    bad = tmp_path / "bad.csv"
+    # one good row among bad ones: nothing changes, every bad row is named with its rule
+    bad.write_text("series,low,high\nshop1/tea,-9,-8\nshop2/oats,abc,\n,1,2\n"
+                   "shop1/tea,-3,-2\nshop1/tae,-3,\nshop2/oats,-1,-1\n")
+    assert main(["bounds", "load", str(bad), "--db", db]) == 2
+    err = capsys.readouterr().err
+    for words in ("5 bad row(s), nothing changed",
+                  "row 2 (line 3, series 'shop2/oats'): field 'low' value 'abc' is not a finite",
+                  "row 3 (line 4): field 'series' is empty",
+                  "row 4 (line 5, series 'shop1/tea'): field 'series' repeats row 1",
+                  "row 5 (line 6, series 'shop1/tae'): no such series",
+                  "row 6 (line 7, series 'shop2/oats'): field 'series' repeats row 2"):
+        assert words in err, err
+    assert "row 1 " not in err                                   # the good row is not blamed
+    assert _own(db) == {"shop1/tea": (-4.0, -0.5), "shop2/oats": (None, -1.0)}
+    order = tmp_path / "order.csv"
+    order.write_text("series,low,high\nshop1/tea,-1,-2\n")
+    assert main(["bounds", "load", str(order), "--db", db]) == 2
+    assert "row 1 (line 2, series 'shop1/tea'): low = -1 must be below high = -2" in \
+        capsys.readouterr().err
+    header = tmp_path / "header.csv"
+    header.write_text("name,low\nshop1/tea,-3\n")
+    assert main(["bounds", "load", str(header), "--db", db]) == 2
+    assert "missing column(s) series, high" in capsys.readouterr().err

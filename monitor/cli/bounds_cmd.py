@@ -1,4 +1,4 @@
-"""``elmon bounds set`` and ``elmon bounds list``: a series' own elasticity bounds."""
+"""``elmon bounds set``, ``load`` and ``list``: a series' own elasticity bounds."""
 
 from __future__ import annotations
 
@@ -80,6 +80,28 @@ def cmd_set(args) -> int:
     return 0
 
 
+def cmd_load(args) -> int:
+    import pandas as pd
+
+    from monitor.store import Store
+    from monitor.store.bounds import load_series_bounds
+
+    try:
+        table = pd.read_csv(args.file, dtype=str, keep_default_na=False)
+    except FileNotFoundError:
+        raise ConfigError(f"bounds file {args.file!r} does not exist") from None
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"bounds file {args.file!r} is not a CSV file: {exc}") from None
+    with Store.open(args.db, create=False) as store:
+        recs = load_series_bounds(store, table, create=args.create,
+                                  source=f"bounds file {args.file!r}")
+    made = sum(r["created"] for r in recs)
+    print(f"elmon bounds: {len(recs)} series' bounds set from {args.file}"
+          + (f" ({made} series added)" if made else "")
+          + "; a running service applies them from its next batch")
+    return 0
+
+
 def cmd_list(args) -> int:
     from monitor.store.bounds import list_series_bounds
 
@@ -111,7 +133,8 @@ def register(subparsers) -> None:
                                           "[bounds] limits of the configuration.",
                               formatter_class=HelpFormatter,
                               epilog="examples:\n  elmon bounds set NAME --low -4 --high -0.5 "
-                                     "--db elmon.sqlite\n  elmon bounds list --db elmon.sqlite")
+                                     "--db elmon.sqlite\n  elmon bounds load bounds.csv --db elmon.sqlite"
+                                     "\n  elmon bounds list --db elmon.sqlite")
     bsub = p.add_subparsers(dest="bounds_command", metavar="ACTION")
     bsub.required = True
     s = bsub.add_parser("set", help="set (or --clear) one series' bounds",
@@ -126,6 +149,17 @@ def register(subparsers) -> None:
                    help="add the series when the store does not know it yet")
     s.add_argument("--db", required=True, metavar="PATH", help="the store file (SQLite)")
     s.set_defaults(func=cmd_set)
+    ld = bsub.add_parser("load", help="set many series' bounds from a CSV file (series,low,high)",
+                         description="Set the bounds of every series in a CSV file with the "
+                                     "header series,low,high; an empty cell: no own bound on that "
+                                     "side. One bad row refuses the whole file (nothing changes).",
+                         epilog="example:\n  elmon bounds load bounds.csv --db elmon.sqlite",
+                         formatter_class=HelpFormatter)
+    ld.add_argument("file", help="CSV file: series,low,high")
+    ld.add_argument("--create", action="store_true",
+                    help="add series the store does not know yet")
+    ld.add_argument("--db", required=True, metavar="PATH", help="the store file (SQLite)")
+    ld.set_defaults(func=cmd_load)
     ls = bsub.add_parser("list", help="series with bounds of their own, and the [bounds] default",
                          description="List the series that have bounds of their own.",
                          epilog=LIST_EPILOG, formatter_class=HelpFormatter)

@@ -131,3 +131,60 @@ def list_series_bounds(store: Store) -> pd.DataFrame:
     """
     return store.frame("SELECT series, low, high, bound_low, bound_high FROM series "
                        "WHERE low IS NOT NULL OR high IS NOT NULL ORDER BY series")
+
+
+def load_series_bounds(store: Store, table: pd.DataFrame, *, create: bool = False,
+                       source: str = "bounds file") -> list[dict]:
+    """Set the bounds of many series from a table with columns ``series, low, high`` (an
+    empty cell: no own bound on that side, so ``[bounds]`` applies to it).
+
+    All or nothing: every row is checked first, and one bad row refuses the whole table with a
+    message naming each bad row (1-based after the header, and its line in the file), its field, its value and the
+    rule, so that a file is never half applied. Rules: ``series`` non-empty and not repeated;
+    ``low`` / ``high`` empty or a finite number; ``low < high``; the series known to the store
+    unless ``create``. Returns the :func:`set_series_bounds` records in table order.
+    """
+    missing = [c for c in ("series", "low", "high") if c not in table.columns]
+    if missing:
+        raise StoreError(f"{source}: missing column(s) {', '.join(missing)}; the header must "
+                         f"be series,low,high")
+    known = {r["series"] for r in store.rows("SELECT series FROM series")}
+    problems, rows, seen = [], [], {}
+    for i, rec in enumerate(table[["series", "low", "high"]].itertuples(index=False), start=1):
+        name = "" if pd.isna(rec.series) else str(rec.series).strip()
+        where = f"row {i} (line {i + 1}, series {name!r})"
+        if not name:
+            problems.append(f"row {i} (line {i + 1}): field 'series' is empty")
+            continue
+        if name in seen:
+            problems.append(f"{where}: field 'series' repeats row {seen[name]}")
+            continue
+        seen[name] = i
+        sides = {}
+        for side in ("low", "high"):
+            raw = getattr(rec, side)
+            if raw is None or (isinstance(raw, float) and math.isnan(raw)) or \
+                    str(raw).strip() == "":
+                sides[side] = None
+                continue
+            try:
+                sides[side] = _checked(side, str(raw).strip())
+            except StoreError:
+                problems.append(f"{where}: field '{side}' value {str(raw)!r} is not a finite "
+                                f"number (leave the cell empty for no {side} bound)")
+                sides[side] = KEEP
+        lo, hi = sides["low"], sides["high"]
+        if lo is not KEEP and hi is not KEEP and lo is not None and hi is not None \
+                and not lo < hi:
+            problems.append(f"{where}: low = {lo:g} must be below high = {hi:g}")
+        if name not in known and not create:
+            problems.append(f"{where}: no such series in the store (add --create to set bounds "
+                            f"before its first row)")
+        rows.append((name, lo, hi))
+    if problems:
+        more = f"; and {len(problems) - 20} more" if len(problems) > 20 else ""
+        raise StoreError(f"{source}: {len(problems)} bad row(s), nothing changed: "
+                         + "; ".join(problems[:20]) + more)
+    with store.atomic():
+        return [set_series_bounds(store, name, low=lo, high=hi, create=create)
+                for name, lo, hi in rows]
