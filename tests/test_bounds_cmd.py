@@ -175,3 +175,17 @@ def test_load_sets_many_series_or_none_of_them(tmp_path, capsys):
     header.write_text("name,low\nshop1/tea,-3\n")
     assert main(["bounds", "load", str(header), "--db", db]) == 2
     assert "missing column(s) series, high" in capsys.readouterr().err
+
+
+def test_bounds_set_through_the_services_own_connection_apply_at_its_next_batch(tmp_path):
+    """The library call on the Monitor's own Store (an embedding program): no other
+    connection commits, so a cache of bounds must learn of the change from the store."""
+    store = mstore.Store.open(tmp_path / "s.sqlite")
+    with Monitor(store, validate({"estimator": {"forgetting": 0.98}})) as mon:
+        mon.observe_many(_feed(0, 120))
+        mstore.set_series_bounds(store, "shop1/tea", low=-6, high=-3)
+        mon.observe_many(_feed(120, 20))
+        lat = mstore.latest_estimates(store).set_index("series")
+        assert lat.loc["shop1/tea", ["bound_low", "bound_high"]].tolist() == [-6.0, -3.0]
+        assert len(mstore.list_alerts(store, kind="out_of_bounds")) == 1
+    store.close()

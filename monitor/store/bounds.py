@@ -11,7 +11,10 @@ as long as it runs, so a command that needed it could only change bounds with th
 stopped, while the point is that the running service picks them up at its next batch (it reads
 the ``series`` table for every batch and caches nothing). The change is one ``BEGIN IMMEDIATE``
 transaction on one row; SQLite's write lock (busy timeout 10 s) orders it with the service's
-batch transactions, and the service never writes ``low`` / ``high``.
+batch transactions, and the service never writes ``low`` / ``high``. A service that caches
+the bounds learns of a change from ``PRAGMA data_version`` (a commit by another connection) or,
+for a change through its own connection, from ``Store.bounds_version``, which
+:func:`set_series_bounds` counts up.
 """
 
 from __future__ import annotations
@@ -112,6 +115,9 @@ def set_series_bounds(store: Store, series: str, *, low=KEEP, high=KEEP,
         else:
             store.execute("UPDATE series SET low = ?, high = ?, updated_at = ? WHERE series = ?",
                           (lo, hi, now, series))
+    # a cache of bounds on this same connection (the service's) compares this count; another
+    # connection's commit shows in its PRAGMA data_version instead
+    store.bounds_version = getattr(store, "bounds_version", 0) + 1
     return {"series": series, "low": lo, "high": hi, "before": before, "created": created}
 
 
