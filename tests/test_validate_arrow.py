@@ -138,3 +138,44 @@ def test_minus_zero_and_blank_take_the_general_path():
     assert V._arrow_numbers(pd.Series(["1", None], dtype="string[pyarrow]")) is None
     assert V._arrow_numbers(pd.Series(["1", "nan"], dtype="string[pyarrow]")) is None
     assert V._arrow_numbers(pd.Series(["1", "2"], dtype=object)) is None     # not Arrow text
+
+
+def _ts_texts(rng, n: int) -> list:
+    """ISO times (with and without offsets, fractions, out-of-range fields and years), epoch
+    seconds as text (integers, fractions, exponents, signs, out of range), words, junk, blanks."""
+    pool = ["2025-01-31T10:00:00Z", "2025-01-31 10:00:00+02:00", "2025-01-31", "2024-02-30",
+            "2025-01-01T25:00:00Z", "9999-01-01T00:00:00Z", "+12025-01-01", "-0500-01-01",
+            "1677-01-01T00:00:00Z", "2025-1-2T3:4:5.123456789Z", "2025-01-31T10:00:00.5-0330",
+            "1700000000", "1700000000.25", "1.7e9", "+1.7e9", "-1.7e9", "-0", "0", " 1700000000 ",
+            "1e300", "inf", "-Infinity", "nan", "now", "Today", "abc", "17000-00000", "", "  ",
+            None, "31/01/2025", "1_700_000_000", "0x10", "2025-01-31T10:00:00Z junk", "-5-3"]
+    out = [pool[i] for i in rng.integers(0, len(pool), n)]
+    out += [f"2025-{m:02d}-{d:02d}T{h:02d}:00:00Z" for m, d, h in
+            zip(rng.integers(1, 13, 50), rng.integers(1, 29, 50), rng.integers(0, 24, 50))]
+    out += [f"%.{d}g" % x for d, x in zip(rng.integers(1, 18, 50), rng.uniform(-1e10, 1e10, 50))]
+    return out
+
+
+@pytest.mark.parametrize("dtype", ["string[pyarrow]", "str", object])
+def test_timestamps_skip_number_parse_on_dates_same_results(monkeypatch, dtype):
+    rng = np.random.default_rng(2026)
+    col = pd.Series(_ts_texts(rng, 600), dtype=dtype)
+    maybe = V._number_like(col.astype("string").str.strip())
+    assert maybe is not None and not maybe.all() and maybe.any()     # the skip is exercised
+    ns, why = V.read_timestamps(col)
+    with monkeypatch.context() as m:
+        m.setattr(V, "_number_like", lambda s: None)                  # every field tries numbers
+        ons, owhy = V.read_timestamps(col)
+    np.testing.assert_array_equal(ns, ons)
+    assert why.tolist() == owhy.tolist()
+    frame = pd.DataFrame({"series": pd.Series(["a"] * len(col), dtype="string[pyarrow]"),
+                          "ts": col,
+                          "price": pd.Series(["2"] * len(col), dtype="string[pyarrow]"),
+                          "quantity": pd.Series(["3"] * len(col), dtype="string[pyarrow]")})
+    new = validate_frame(frame)
+    with monkeypatch.context() as m:
+        m.setattr(V, "_number_like", lambda s: None)
+        old = validate_frame(frame)
+    pd.testing.assert_frame_equal(new.good, old.good)
+    pd.testing.assert_frame_equal(new.rejects, old.rejects)
+    assert len(new.good) > 0 and len(new.rejects) > 0

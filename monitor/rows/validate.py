@@ -252,6 +252,18 @@ def parse_numbers(col: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     return v, bad
 
 
+def _number_like(s: pd.Series) -> np.ndarray | None:
+    """Fields of trimmed text that may be epoch seconds: all but those starting with digits,
+    a ``-`` and a digit (``2025-01-31...``), which no number reading accepts (a ``-`` after
+    digits is a number only after an exponent ``e``). ``None``: every field (not Arrow text).
+    Decided in C by Arrow's regular expressions."""
+    arr = arrow_text_array(s)
+    if arr is None:
+        return None
+    dated = pc.fill_null(pc.match_substring_regex(arr, r"^[+-]?[0-9]+-[0-9]"), False)
+    return ~np.asarray(dated.to_numpy(zero_copy_only=False), dtype=bool)
+
+
 def parse_timestamps(col: pd.Series, ts_format: str = "") -> np.ndarray:
     """int64 ns since the epoch, UTC; ``INT64_MIN`` where empty, unparsable or out of range
     (:func:`read_timestamps` says why)."""
@@ -305,7 +317,14 @@ def read_timestamps(col: pd.Series, ts_format: str = "") -> tuple[np.ndarray, np
         why[~ok & ~np.isnan(v)] = TS_RANGE_RULE
         return out, why
     s = col.astype("string").str.strip()
-    num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    maybe = _number_like(s)
+    if maybe is None:
+        num = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    else:      # ISO dates skip pd.to_numeric (it makes a Python object of every field first)
+        num = np.full(n, np.nan)
+        if maybe.any():
+            num[maybe] = pd.to_numeric(s[maybe], errors="coerce").to_numpy(dtype=np.float64,
+                                                                            na_value=np.nan)
     out = np.full(n, nat, dtype=np.int64)
     is_num = ~np.isnan(num)
     ok = is_num & (num >= lo_s) & (num <= hi_s)
