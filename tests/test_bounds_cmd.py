@@ -27,8 +27,15 @@ def _own(path) -> dict:
             for r in df.itertuples()}
 
 
+def _updated_at(db) -> dict:
+    with mstore.Store.open(db, create=False) as st:
+        return {r["series"]: r["updated_at"] for r in
+                st.rows("SELECT series, updated_at FROM series")}
+
+
 def test_set_changes_only_the_sides_given_and_list_shows_them(tmp_path, capsys):
     db = str(_store(tmp_path / "s.sqlite"))
+    written = _updated_at(db)
     assert main(["bounds", "set", "shop1/tea", "--low", "-4", "--high", "-0.5", "--db", db]) == 0
     assert _own(db) == {"shop1/tea": (-4.0, -0.5)}
     assert main(["bounds", "set", "shop1/tea", "--high", "-0.8", "--db", db]) == 0   # low kept
@@ -44,6 +51,8 @@ def test_set_changes_only_the_sides_given_and_list_shows_them(tmp_path, capsys):
     assert rows == {"shop1/tea": ["none", "-0.8"], "shop2/oats": ["-3.5", "none"]}
     assert main(["bounds", "set", "shop1/tea", "--clear", "--db", db]) == 0
     assert _own(db) == {"shop2/oats": (-3.5, None)}
+    # the wall time of each series' last rows (the stale check's clock) is not moved
+    assert _updated_at(db) == written
 
 
 def test_list_shows_the_config_default(tmp_path, capsys):

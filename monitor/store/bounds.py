@@ -113,8 +113,10 @@ def set_series_bounds(store: Store, series: str, *, low=KEEP, high=KEEP,
             store.execute("INSERT INTO series (series, low, high, updated_at) VALUES (?, ?, ?, ?)",
                           (series, lo, hi, now))
         else:
-            store.execute("UPDATE series SET low = ?, high = ?, updated_at = ? WHERE series = ?",
-                          (lo, hi, now, series))
+            # updated_at stays: it is the wall time of the series' last rows, which the stale
+            # check reads (a bounds change is not the series sending data)
+            store.execute("UPDATE series SET low = ?, high = ? WHERE series = ?",
+                          (lo, hi, series))
     # a cache of bounds on this same connection (the service's) compares this count; another
     # connection's commit shows in its PRAGMA data_version instead
     store.bounds_version = getattr(store, "bounds_version", 0) + 1
