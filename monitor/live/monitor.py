@@ -46,6 +46,7 @@ from monitor.store import Store, thin_estimates, wall_ts, write_batch, write_del
 from monitor.groups.keys import split_key
 from monitor.live.groups import GroupUpkeep, settings_from_config as group_settings_of
 from monitor.store.live import release_writer_lock, series_bounds, take_writer_lock
+from monitor.store.wal import WalCheckpointer
 from monitor.types import Estimate
 
 
@@ -86,6 +87,7 @@ class Monitor:
         self._own = not isinstance(store, Store)
         self.store = Store.open(store, create=True) if self._own else store
         self._lockfile = None
+        self.wal = None
         try:
             self._lockfile = take_writer_lock(self.store.path)
             self.store.sinks = service_config.sink_names(self.config)
@@ -99,6 +101,9 @@ class Monitor:
             self.groups = GroupUpkeep(self.store, group_settings_of(self.config))
             self._run_params = set(inspect.signature(self.pipeline.run).parameters)
             self._recorded: dict[str, dict] = {}   # series -> last written _in_effect record
+            #: series -> own (low, high) or None, valid while _bounds_key holds (own_bounds)
+            self._bounds: dict[str, tuple | None] = {}
+            self._bounds_key = None
             self._fast = not self.groups.enabled   # observe tries monitor.live.one_row first
             self.plain_calls = 0              # observe calls that took the one-row path
             #: batch medians of the one-row path (all NaN: no batch), kept at the gate's size
@@ -106,14 +111,16 @@ class Monitor:
             #: the engine's per-series memory (monitor.live.checkpoints.SeriesBook) and gate
             self.gate, self.book = None, None
             self._restore()
+            #: WAL checkpoints in a thread of their own, outside the commits (issue 15)
+            self.wal = WalCheckpointer(self.store)
         except BaseException:
             self.close()
             raise
 
     # ------------------------------------------------------------------ set-up
 
-    def state_json(self, vec: np.ndarray):
-        """A pipeline state vector as the checkpoint's JSON list."""
+    def state_json(self, vec: np.ndarray) -> str:
+        """A pipeline state vector as the checkpoint's text (binary form, base64)."""
         return vector_to_json(self.pipeline, vec)
 
     def _restore(self) -> None:
@@ -233,6 +240,7 @@ class Monitor:
             self._recorded.update({r["series"]: r for r in record})
             self.book.rows_read[source] = self.book.rows_read.get(source, 0) + consumed
             self.groups.after_batch(plan["checkpoints"])   # pooled latest, group alerts
+            self.wal.committed(max(consumed, 1))          # background checkpoint on budget
             self.store.bound_wal(self.wal_max_bytes)      # readers cannot grow it for good
         return BatchReport(source=source, rows=consumed, accepted=plan["accepted"],
                            rejected=len(rejects), zero_skipped=plan["zero_count"],
@@ -345,7 +353,7 @@ class Monitor:
         lam = getattr(self.estimator, "forgetting", None)
         low, high = (self.pipeline.bounds.limits() if hasattr(self.pipeline, "bounds")
                      else (-math.inf, math.inf))
-        own = series_bounds(self.store, names)
+        own = self.own_bounds(names)
         out = []
         for n in names:
             o = own.get(n, (None, None))
@@ -358,6 +366,29 @@ class Monitor:
                 out.append(rec)
         return out
 
+    def own_bounds(self, names: list[str]) -> dict[str, tuple]:
+        """:func:`monitor.store.live.series_bounds` of ``names`` through a cache.
+
+        Each series' own bounds (or their absence) are read from the ``series`` table once and
+        kept. The whole cache is dropped when they may have changed: when another connection
+        (another process: a dashboard, ``elmon``) committed anything since the last look
+        (``PRAGMA data_version`` changed, one cheap statement per call) or when this store
+        connection wrote per-series bounds (``Store.bounds_version``, counted by
+        :func:`monitor.store.write_batch` for settings with ``low`` or ``high`` and by
+        :mod:`monitor.store.bounds`). A series' entry is ``None`` when it has no own bounds.
+        """
+        key = (self.store.scalar("PRAGMA data_version"), self.store.bounds_version)
+        if key != self._bounds_key:
+            self._bounds.clear()
+            self._bounds_key = key
+        cache = self._bounds
+        missing = [n for n in names if n not in cache]
+        if missing:
+            found = series_bounds(self.store, missing)
+            for n in missing:
+                cache[n] = found.get(n)
+        return {n: cache[n] for n in names if cache[n] is not None}
+
     def run_extras(self, ts: np.ndarray, names: list[str]) -> dict:
         """Optional arguments of ``Pipeline.run``: row times, series names (for messages) and
         each series' own elasticity bounds from the store's ``series`` table (a side not set
@@ -368,7 +399,7 @@ class Monitor:
         if "names" in self._run_params:
             kw["names"] = names
         if {"low", "high"} <= self._run_params and hasattr(self.pipeline, "bounds"):
-            own = series_bounds(self.store, names)
+            own = self.own_bounds(names)
             if own:
                 low, high = self.pipeline.bounds.limits()
                 pick = lambda n, i, dflt: own[n][i] if n in own and own[n][i] is not None \
@@ -420,7 +451,11 @@ class Monitor:
 
     # ------------------------------------------------------------------ closing
     def close(self) -> None:
-        """Close the store (when the Monitor opened it) and release the writer lock."""
+        """Stop the WAL checkpoint thread, close the store (when the Monitor opened it) and
+        release the writer lock."""
+        if self.wal is not None:
+            self.wal.close()
+            self.wal = None
         if self._own and self.store is not None:
             self.store.close()
         if self._lockfile is not None:

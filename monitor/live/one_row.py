@@ -24,7 +24,6 @@ from monitor.estimators.transform import design_matrix
 from monitor.live.batch import NAT, alert_changes
 from monitor.rows.validate import TS_MAX_NS, TS_MIN_NS, log_qratio, ordered_checks
 from monitor.store import to_json, wall_ts
-from monitor.store.detection import write_delay50
 from monitor.store.live import write_one
 from monitor.types import STATUS_LABELS, Estimate
 
@@ -164,20 +163,20 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
              "zero_skipped": mon.book.zero.get(series, 0)}
     now = wall_ts()
     controls = to_json({c: values[c] for c in mon.control_names}) if mon.control_names else None
-    with mon.store.atomic():     # the row and the series' delay50_obs (as process_batch)
-        write_one(
-            mon.store, observation=(series, ts, p, q, controls, source, row), estimate=estimate,
-            keep=keep, now=now,
-            checkpoint=(series, to_json(state), iso_z(last_obs), to_json({"row": row,
-                                                                            "source": source}),
-                        now),
-            offset=(source, "api", None, 1, 0, now, None, 0), changes=changes)
-        write_delay50(mon.store, {series: mon.pipeline.delay50_obs(res.states)[0]})
+    write_one(                   # one transaction: the row and the series' delay50_obs
+        mon.store, observation=(series, ts, p, q, controls, source, row), estimate=estimate,
+        keep=keep, now=now,
+        checkpoint=(series, to_json(state), iso_z(last_obs), to_json({"row": row,
+                                                                        "source": source}),
+                    now),
+        offset=(source, "api", None, 1, 0, now, None, 0), changes=changes,
+        delay50=mon.pipeline.delay50_obs(res.states)[0])
     mon.book.states[vi] = res.states[0]
     mon.book.updates[series] = updates
     mon.book.last_status[series] = status
     mon.book.last_obs[series] = last_obs
     mon.book.rows_read[source] = row
-    mon.store.bound_wal(mon.wal_max_bytes)
+    if mon.wal.committed(1):                 # budget reached: the thread checkpoints, and a
+        mon.store.bound_wal(mon.wal_max_bytes)   # log pinned by readers is truncated here
     return Estimate(series=series, ts=ts, beta=floats[0], beta_se=floats[1], beta_lo=floats[2],
                     beta_hi=floats[3], n_eff=floats[4], status=status)

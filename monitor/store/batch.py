@@ -153,7 +153,9 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
         latest_rows = newest_per_series(*estimate_rows(latest_estimates))
     elif est_rows:
         latest_rows = newest_per_series(est_df, est_rows)
-    settings_stmts = settings_sql(as_frame(series, key="series"), now) if series is not None else []
+    settings_df = as_frame(series, key="series") if series is not None else None
+    settings_stmts = settings_sql(settings_df, now) if settings_df is not None else []
+    own_bounds = settings_df is not None and bool({"low", "high"} & set(settings_df.columns))
     reject_params = reject_rows(rejects, now) if rejects is not None else []
     ckpt_params = checkpoint_rows(checkpoints, now) if checkpoints is not None else []
     offset_params = offset_statements(offsets, now) if offsets is not None else []
@@ -161,6 +163,8 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
     with store.atomic():
         for sql, params in settings_stmts:
             store.conn.execute(sql, params)
+        if own_bounds and settings_stmts:
+            store.bounds_version += 1            # Monitor.own_bounds drops its cache
         summary["series"] = len(settings_stmts)
         counts = series_counts(obs_df, est_df, now)
         if counts:

@@ -17,6 +17,7 @@ import datetime as dt
 import json
 import math
 import re
+import time
 from typing import Any
 
 import numpy as np
@@ -119,8 +120,10 @@ def wall_ts(value: Any = None) -> str:
     >>> wall_ts("2024-05-01T08:30:00Z")
     '2024-05-01T08:30:00.000000Z'
     """
-    stamp = pd.Timestamp.now(tz="UTC") if value is None else _to_timestamp(value)
-    return stamp.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    if value is None:        # now, without a pandas Timestamp (3 us instead of 30-70 us)
+        secs, ns = divmod(time.time_ns(), 1_000_000_000)
+        return time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(secs)) + f".{ns // 1000:06d}Z"
+    return _to_timestamp(value).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
 def utc_now() -> str:

@@ -75,6 +75,9 @@ class Store:
         #: alerts hold member notifications, :func:`monitor.store.groups.member_hold`)
         self.notify_hold = None
         self.applied_on_open: list[int] = []
+        #: count of writes of per-series bounds (``low`` / ``high``) through this connection
+        #: (:func:`monitor.store.write_batch`); caches of bounds compare it
+        self.bounds_version = 0
         self.busy_timeout = DEFAULT_BUSY_TIMEOUT
         self._lock = threading.RLock()
 

@@ -16,6 +16,10 @@ from typing import Mapping
 from monitor.store.core import Store, accepts_path
 
 
+#: the statement of :func:`write_delay50` (also run by the one-row writer)
+DELAY50_SQL = "UPDATE latest_estimates SET delay50_obs = ? WHERE series = ?"
+
+
 @accepts_path(readonly=False)
 def write_delay50(store: Store, values: Mapping[str, float]) -> int:
     """Set ``delay50_obs`` of each series' latest estimate (NaN or infinity -> NULL).
@@ -28,6 +32,5 @@ def write_delay50(store: Store, values: Mapping[str, float]) -> int:
     if not params:
         return 0
     with store.atomic():
-        cur = store.conn.executemany(
-            "UPDATE latest_estimates SET delay50_obs = ? WHERE series = ?", params)
+        cur = store.conn.executemany(DELAY50_SQL, params)
     return int(cur.rowcount)

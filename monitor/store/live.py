@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import fcntl
 import json
+import math
 import os
 import socket
 import sqlite3
@@ -21,6 +22,7 @@ import pandas as pd
 from monitor.errors import StoreError
 from monitor.store import Store, from_json, parse_ts, wall_ts
 from monitor.store.core import accepts_path
+from monitor.store.detection import DELAY50_SQL
 from monitor.store.alerts import apply_alert_change
 # the store's own statements, so the single-row writer cannot drift from write_batch's SQL
 from monitor.store.batch import (INSERT_EST, INSERT_OBS, UPSERT_LATEST, UPSERT_OFFSET,
@@ -260,15 +262,18 @@ def stale_changes(store: Store, now: Any, source_limits: dict[str, float],
 
 
 def write_one(store: Store, *, observation: tuple, estimate: tuple, keep: bool,
-              checkpoint: tuple, offset: tuple, changes: list, now: str) -> dict:
+              checkpoint: tuple, offset: tuple, changes: list, now: str,
+              delay50: float | None = None) -> dict:
     """One observation's batch in one transaction, without building frames (``Monitor.observe``).
 
     Writes exactly the rows :func:`monitor.store.write_batch` writes for a batch of one
     accepted observation, with the same SQL statements: the series' counts, the observation,
     the estimate (history only when ``keep``; ``latest_estimates`` always), the sparkline cache,
     the checkpoint, the source offset and the alert changes. Parameters are the rows in the
-    statements' column order (``estimate`` with NULL for NaN). tests/test_engine.py holds the two
-    writers equal over every table.
+    statements' column order (``estimate`` with NULL for NaN). ``delay50`` is the series'
+    ``latest_estimates.delay50_obs`` (:func:`monitor.store.detection.write_delay50`; NaN or
+    infinity -> NULL), set in the same transaction. tests/test_engine.py holds the two writers
+    equal over every table.
     """
     series, ts = observation[0], observation[1]
     summary = {"alerts_opened": [], "alerts_resolved": [], "alerts_reminded": [],
@@ -283,6 +288,8 @@ def write_one(store: Store, *, observation: tuple, estimate: tuple, keep: bool,
         if keep:
             store.conn.execute(INSERT_EST, estimate)
         store.conn.execute(UPSERT_LATEST, estimate)
+        d50 = None if delay50 is None or not math.isfinite(float(delay50)) else float(delay50)
+        store.conn.execute(DELAY50_SQL, (d50, series))
         if keep:
             row = store.conn.execute("SELECT ts, beta FROM sparklines WHERE series = ?",
                                      (series,)).fetchone()
