@@ -231,8 +231,8 @@ def parse_numbers(col: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     """Float values and a mask of fields that are present but do not parse as numbers.
 
     Arrow-backed text whose every field is a finite number is parsed by Arrow in C
-    (:func:`_arrow_numbers`, about 15x less CPU than ``pd.to_numeric``, which makes Python
-    objects of Arrow text first); any other column takes the general path below, which reads
+    (:func:`_arrow_numbers`; ``pd.to_numeric`` would make a Python object of every field
+    first); any other column takes the general path below, which reads
     blanks, NaN words, infinities and junk. Both give the same float64 to the bit.
     """
     if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
