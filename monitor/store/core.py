@@ -131,6 +131,12 @@ class Store:
             raise
         return store
 
+    @property
+    def lock(self) -> threading.RLock:
+        """The lock held through every transaction and query on this connection (another
+        thread holding it knows no transaction of this connection is running)."""
+        return self._lock
+
     # -- transactions ---------------------------------------------------------------
 
     @contextlib.contextmanager

@@ -9,10 +9,10 @@ and runs ``PRAGMA wal_checkpoint(PASSIVE)`` on a connection of its own, in a thr
 after every ``every_commits`` commits or ``every_rows`` rows (whichever comes first). A
 passive checkpoint takes no write lock, so the writer keeps committing meanwhile. The log
 starts again from its beginning only when a write begins with every frame copied, and a
-writer that committed during the copy prevents that; so after each background copy the
-writer's next :meth:`WalCheckpointer.committed` copies the few frames committed meanwhile
-itself (tens of pages instead of the budget's hundreds) and the log's file stays near one
-budget's pages when no reader holds an old snapshot.
+writer that committed during the copy prevents that; so a second, short pass copies the few
+frames committed meanwhile while holding the store's connection lock (a call arriving then
+waits for it, without spending CPU time), and the log's file stays near one budget's pages
+when no reader holds an old snapshot.
 
 Durability does not change: a committed transaction is in the log (``synchronous = NORMAL``)
 whether or not a checkpoint has copied it yet, and a process killed during a checkpoint
@@ -30,8 +30,6 @@ import threading
 EVERY_COMMITS = 64
 #: rows between two background checkpoints (large batches)
 EVERY_ROWS = 20_000
-#: passive passes at most per checkpoint (each copies the frames committed during the last)
-PASSES = 8
 #: SQLite's default ``wal_autocheckpoint``, put back on a shared connection when done
 SQLITE_DEFAULT_PAGES = 1000
 
@@ -51,8 +49,7 @@ class WalCheckpointer:
     :meth:`committed` costs a few additions and, once per budget, an ``Event.set``; the
     checkpoint itself runs in the thread (the sqlite3 module releases the GIL while SQLite
     copies pages). ``checkpoints`` counts the checkpoints run by the thread, ``last`` is
-    SQLite's ``(busy, log pages, pages checkpointed)`` of the latest one, ``tail_copies`` the
-    writer's copies of the frames committed during a background copy.
+    SQLite's ``(busy, log pages, pages checkpointed)`` of the latest one.
     """
 
     def __init__(self, store, every_commits: int = EVERY_COMMITS, every_rows: int = EVERY_ROWS):
@@ -61,9 +58,6 @@ class WalCheckpointer:
         self._commits = self._rows = 0
         self.checkpoints = 0
         self.last: tuple | None = None
-        self._copied = False
-        self.last_tail = None
-        self.tail_copies = 0
         self._wake = threading.Event()
         self._stop = False
         self._conn = sqlite3.connect(str(store.path), timeout=store.busy_timeout,
@@ -78,10 +72,6 @@ class WalCheckpointer:
         reached (a checkpoint is then asked of the thread and the counts start again)."""
         self._commits += 1
         self._rows += rows
-        if self._copied:            # the thread copied the log: copy the few frames committed
-            self._copied = False    # since, here, between two transactions, so that the next
-            self.last_tail = self.store.scalar("PRAGMA wal_checkpoint(PASSIVE)")  # write
-            self.tail_copies += 1   # finds the log fully copied and starts it again
         if self._commits < self.every_commits and self._rows < self.every_rows:
             return False
         self._commits = self._rows = 0
@@ -97,14 +87,14 @@ class WalCheckpointer:
             try:
                 # the first pass copies the budget's pages while the writer goes on; the log
                 # starts again only when a write begins with every frame copied, which a
-                # writer committing during the pass prevents: committed() then copies the
-                # frames of those commits (a few) on the writer's connection
-                for _ in range(PASSES):
-                    self.last = self._conn.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()
-                    if self.last[0] != 0 or self.last[1] == self.last[2] or self._stop:
-                        break
+                # commit during the pass prevents, so a last pass copies those few frames
+                # while holding the store's lock (no writer transaction runs meanwhile)
+                self.last = self._conn.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()
+                if self.last[0] == 0 and not self._stop:
+                    with self.store.lock:
+                        self.last = self._conn.execute(
+                            "PRAGMA wal_checkpoint(PASSIVE)").fetchone()
                 self.checkpoints += 1
-                self._copied = self.last[0] == 0 and self.last[1] == self.last[2]
             except sqlite3.Error:    # busy or closing: the next budget tries again
                 pass
 
