@@ -4,8 +4,10 @@
    rules) and the committed store batch (observation, estimate, checkpoint, offset in one
    transaction), timed one call at a time after a warm-up; 50 series in turn, timestamps
    increasing. Each run is a stretch of up to 2,000 calls (at most 8 s) of one session; p50
-   and p99 of each run, and the median of the runs' percentiles is shown. Target
-   (issue 8): p99 <= 1 ms.
+   and p99 of each run, and the median of the runs' percentiles is shown. Targets (issue 15):
+   p99 <= 1 ms wall and <= 0.6 ms CPU time of the calling thread (the wall figure on a shared
+   machine also holds the waits for a core). WAL checkpoints run in the Monitor's own thread
+   (:mod:`monitor.store.wal`), so their CPU time is not the calling thread's.
 2. The estimator alone, ``ElasticityRLS.learn_one`` (no store, no validation of a frame): the
    floor of the in-process path, for comparison.
 3. Row to outbox: a running :class:`monitor.live.service.Service` tails a CSV at a 1 s poll
@@ -72,10 +74,15 @@ def _observe_latency(ctx: Context) -> list[Row]:
             means.append(float(np.mean(lat)) / 1e6)
             counts.append(len(lat))
         plain = None if plain0 is None else mon.plain_calls - plain0
+        wal = getattr(mon, "wal", None)
+        ckpts = None if wal is None else wal.checkpoints
     for f in ctx.tmp.glob("live.sqlite*"):
         f.unlink()
     path_note = "" if plain is None else f"; {plain / total:.0%} of timed calls took the one-row path"
-    p99 = median(p99s)
+    p99, c99 = median(p99s), median(c99s)
+    ckpt_note = "" if ckpts is None else (
+        f"; {ckpts} WAL checkpoints ran in the Monitor's checkpoint thread (SQLite's automatic "
+        f"one, inside a commit, is off)")
     return [
         Row("live path: Monitor.observe, one observation (validate, estimate, detect, rule, "
             "commit), p99", p99, "ms", p99s, target="<= 1 ms", met=p99 <= 1.0, better="lower",
@@ -85,6 +92,10 @@ def _observe_latency(ctx: Context) -> list[Row]:
                   f"{path_note}; {min(counts):,}-{max(counts):,} calls per run (at most "
                   f"{budget_s:.0f} s) after {2 * n_series} warm-up calls, {n_series} series, "
                   f"hourly timestamps"),
+        Row("live path: Monitor.observe, CPU time of the calling thread per call, p99", c99,
+            "ms", c99s, target="<= 0.6 ms", met=c99 <= 0.6, better="lower",
+            check=f"p50 {median(c50s):.2f} ms (time.thread_time_ns around each call; a "
+                  f"background WAL checkpoint is not counted){ckpt_note}"),
     ]
 
 
