@@ -59,3 +59,37 @@ def test_slow_control_ignores_nan_coefficients_and_other_controls():
     slow_control(st, at, 3, 1.0)          # NaN coefficient (dependent column): mean kept
     assert st[at + SG.CF0] == 0.5 and st[at + SG.CF0 + 1] == 0.0
     assert st[at + SG.CN0] == 1.0 and st[at + SG.CN0 + 1] == 0.0
+
+
+def test_a_checkpoint_from_before_the_slow_means_resumes_with_them_fresh(tmp_path):
+    # stores checkpointed before the slow control means (split block 99 floats, now 111) are
+    # upgraded on resume: the 2 * NCF new floats are inserted as zeros, the rest is kept
+    import pytest
+
+    from monitor.errors import ConfigError
+    from monitor.pipeline.run import L_SPLIT, Pipeline
+    from monitor.estimators import ElasticityRLS
+
+    pipe = Pipeline(ElasticityRLS(forgetting=0.99, controls=["promo"]))
+    rng = np.random.default_rng(2)
+    n = 400
+    x = rng.normal(0.0, 0.15, n)
+    z = (rng.random(n) < 0.3).astype(float)
+    X = np.column_stack([np.ones(n), x, z])
+    y = 2.0 - 1.2 * x + 0.3 * z + rng.normal(0.0, 0.1, n)
+    states = pipe.run(np.zeros(n, np.int64), X, y, 1).states
+    row = states[0]
+    at = int(pipe._layout[L_SPLIT]) + SG.SPLIT_SIZE - 2 * SG.NCF
+    assert np.any(row[at:at + 2 * SG.NCF] != 0.0)        # the means were in use
+    old = np.concatenate([row[:at], row[at + 2 * SG.NCF:]])
+    up = pipe.checked_state(old)
+    assert up.shape == row.shape
+    assert np.array_equal(up[:at], row[:at], equal_nan=True)
+    assert np.array_equal(up[at + 2 * SG.NCF:], row[at + 2 * SG.NCF:], equal_nan=True)
+    assert np.all(up[at:at + 2 * SG.NCF] == 0.0)
+    assert np.array_equal(pipe.state_from_json(pipe.state_to_json(old)), up, equal_nan=True)
+    # the upgraded row runs on
+    more = pipe.run(np.zeros(50, np.int64), X[:50], y[:50], 1, states=up[None, :].copy())
+    assert np.all(np.isfinite(more.out[:, K.O_BETA]))
+    with pytest.raises(ConfigError, match="layout changed"):
+        pipe.checked_state(old[:-1])

@@ -63,6 +63,8 @@ def vector_from_json(pipeline, obj) -> np.ndarray:
             raise ConfigError(f"checkpoint state holds {len(raw)} bytes, not whole float64 "
                               f"values")
         vec = np.frombuffer(raw, dtype="<f8").astype(np.float64)
+        if hasattr(pipeline, "checked_state"):
+            return pipeline.checked_state(vec)
         size = getattr(pipeline, "state_size", vec.size)
         if vec.size != size:
             raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "

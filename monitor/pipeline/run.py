@@ -247,11 +247,24 @@ class Pipeline:
         return floats_to_json(vector)
 
     def state_from_json(self, obj) -> np.ndarray:
-        vec = floats_from_json(obj)
-        if vec.shape != (self.state_size,):
-            raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "
-                              f"{self.state_size} (estimator controls or layout changed)")
-        return vec
+        return self.checked_state(floats_from_json(obj))
+
+    def checked_state(self, vec: np.ndarray) -> np.ndarray:
+        """One series' stored state row, checked against this pipeline's length.
+
+        A row written before the split detector kept its slow control means (4 December 2026:
+        ``2 * NCF`` floats appended to the split block) is upgraded by inserting them as zeros:
+        the means then start afresh from the next row, everything else resumes exactly.
+        Any other length raises :class:`~monitor.errors.ConfigError`."""
+        vec = np.asarray(vec, dtype=np.float64)
+        if vec.shape == (self.state_size,):
+            return vec
+        added = 2 * SG.NCF
+        if self.split and vec.ndim == 1 and vec.size == self.state_size - added:
+            at = int(self._layout[L_SPLIT]) + SG.SPLIT_SIZE - added
+            return np.concatenate([vec[:at], np.zeros(added), vec[at:]])
+        raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "
+                          f"{self.state_size} (estimator controls or layout changed)")
 
     # ------------------------------------------------------------------ running
     def run(self, sid, X, y, n_series: int, states: np.ndarray | None = None, ts=None, *,
