@@ -77,6 +77,9 @@ class LiveAppender:
         Shortest wall time between two writes, seconds (default 0.05).
     on_write : callable, optional
         Called after each durable write with the number of rows written so far.
+    clock, sleep : callable, optional
+        The pacing's clock (seconds, default ``time.monotonic``) and its wait (default: wait
+        on the stop event); tests pass a simulated pair to check the pacing exactly.
 
     Examples
     --------
@@ -91,7 +94,9 @@ class LiveAppender:
                  speed: float | None = None, table: str = "observations", append: bool = False,
                  max_rows: int | None = None, max_seconds: float | None = None,
                  stop_event: threading.Event | None = None, realtime: bool = False,
-                 min_interval: float = 0.05, on_write: Callable[[int], None] | None = None):
+                 min_interval: float = 0.05, on_write: Callable[[int], None] | None = None,
+                 clock: Callable[[], float] = time.monotonic,
+                 sleep: Callable[[float], object] | None = None):
         log = log[0] if isinstance(log, tuple) else log
         if not isinstance(log, pd.DataFrame) or not {"series", "ts"} <= set(log.columns):
             raise ConfigError("log: must be a DataFrame with columns series, ts, ...")
@@ -116,6 +121,10 @@ class LiveAppender:
         self.max_rows, self.max_seconds = max_rows, max_seconds
         self.realtime, self.min_interval, self.on_write = realtime, float(min_interval), on_write
         self._stop = stop_event or threading.Event()
+        # the pacing's clock and wait (seconds); tests give a simulated pair, so that the pacing
+        # is checked without reading the wall clock
+        self._clock = clock
+        self._sleep = sleep or self._stop.wait
         self._log = log.reset_index(drop=True)
         self._written = 0
         self._elapsed = 0.0
@@ -162,7 +171,7 @@ class LiveAppender:
         due = self._due(log)
         sink = _CsvSink(self.target, log, self.append) if self.kind == "csv" else \
             _SqliteSink(self.target, log, self.table, self.append)
-        clock = time.monotonic
+        clock = self._clock
         t0 = clock()
         i, last = 0, -np.inf
         try:
@@ -182,7 +191,7 @@ class LiveAppender:
                 wake = max(due[i], last + self.min_interval)
                 if self.max_seconds is not None:
                     wake = min(wake, self.max_seconds)
-                self._stop.wait(max(0.0, wake - (clock() - t0)))
+                self._sleep(max(0.0, wake - (clock() - t0)))
         finally:
             sink.close()
         return self._written

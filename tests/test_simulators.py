@@ -342,10 +342,7 @@ def test_live_csv_appends_whole_lines_at_the_requested_rate(tmp_path, sims):
     finally:
         stop.set()
         t.join()
-    # row i is due at i / 200 s, so row 99 at 0.495 s; writes are batched every 0.05 s, so the
-    # run cannot end before 0.45 s (a pacing fact that load cannot break: a slower machine only
-    # ends later); no upper bound: speed is not this test's business
-    assert app.elapsed >= 0.45, app.elapsed
+    # the pacing itself (no row before it is due) is checked on a simulated clock below
     assert len(counts) >= 5 and counts == sorted(counts) and partial_ok
     assert out.read_bytes().startswith(b"series,ts,price,quantity,promo,weekend\n")
 
@@ -356,14 +353,51 @@ def test_live_csv_full_run_equals_the_batch_file(tmp_path):
     assert (tmp_path / "live.csv").read_bytes() == table_bytes(sim.log)
 
 
+class _SimulatedClock:
+    """A clock that moves only when the appender waits (no wall clock read)."""
+
+    def __init__(self):
+        self.t = 0.0
+
+    def __call__(self):
+        return self.t
+
+    def sleep(self, seconds):
+        self.t += seconds
+
+
+def _paced(log, target, **kw):
+    """Run an appender on a simulated clock; return it and (rows written, clock) per write."""
+    clock, writes = _SimulatedClock(), []
+    app = LiveAppender(log, target, clock=clock, sleep=clock.sleep,
+                       on_write=lambda i: writes.append((i, clock())), **kw)
+    app.run()
+    return app, writes
+
+
+def test_live_rate_holds_each_row_back_until_it_is_due(tmp_path, sims):
+    app, writes = _paced(sims["retail"].log, tmp_path / "r.csv", rate=200, max_rows=100)
+    assert app.rows_written == 100 and writes[-1][0] == 100
+    # row i is due at i / 200 s: a write at time t holds only rows due by t, and each write
+    # takes every row due by then; writes are at least min_interval (0.05 s) apart
+    for (i, t) in writes:
+        assert (i - 1) / 200 <= t + 1e-12 and (i == 100 or i / 200 > t - 1e-12), (i, t)
+    gaps = np.diff([t for _, t in writes])
+    assert np.all(gaps >= 0.05 - 1e-12)
+    assert writes[-1][1] == pytest.approx(0.5, abs=0.05)     # row 99 is due at 0.495 s
+
+
 def test_live_speed_follows_simulated_time(tmp_path):
     sim = simulate("load", seed=0)  # 6 feeders, hourly
-    app = LiveAppender(sim, tmp_path / "l.csv", speed=72_000, max_rows=60)  # 20 h per second
-    app.run()
-    # 60 rows = hours 0..9; hour 9 is due at 9 * 3600 / 72000 = 0.45 s
-    # the pacing holds rows back until due: it cannot end before 0.42 s (no upper bound: load
-    # only makes it later)
-    assert app.rows_written == 60 and app.elapsed >= 0.42
+    app, writes = _paced(sim, tmp_path / "l.csv", speed=72_000, max_rows=60)  # 20 h per second
+    # 60 rows = hours 0..9 of 6 feeders; hour h is due at h * 3600 / 72000 = 0.05 h s
+    assert app.rows_written == 60
+    for i, t in writes:
+        last_hour = (i - 1) // 6
+        assert last_hour * 0.05 <= t + 1e-12, (i, t)        # no row before it is due
+        if i < 60:
+            assert (i // 6) * 0.05 > t - 1e-12, (i, t)      # every row due by then is written
+    assert writes[-1][1] == pytest.approx(0.45, abs=1e-9)
 
 
 def test_live_stops_on_event_and_on_max_seconds(tmp_path, sims):
