@@ -103,54 +103,46 @@ class SqlSource:
             raise SourceError(f"{self.where}: table {self.table!r}: "
                               f"{hide(str(getattr(exc, 'orig', None) or exc), self.url)}") from None
 
-    def _max_key(self) -> Any:
-        """The largest key in the table now (None when it is empty)."""
+    def _first_row(self, select: str, where: str = "", key: Any = None) -> tuple | None:
+        """The first row of ``SELECT <select> FROM <table> [WHERE <key> = key]`` on the table
+        now (None when there is none); ``select`` and ``where`` take ``{key}`` for the quoted
+        key column. Read-only; a database error becomes a :class:`SourceError`."""
+        args = [] if not where else [key]
         if self.path is not None:
             q = ".".join(f'"{p}"' for p in self.key.split("."))
             t = ".".join(f'"{p}"' for p in self.table.split("."))
+            sql = f"SELECT {select.format(key=q)} FROM {t}" + (
+                f" WHERE {where.format(key=q)} = ?" if where else "")
             uri = self.path.resolve().as_uri() + "?mode=ro"
             try:
                 with sqlite3.connect(uri, uri=True, timeout=10.0) as conn:
-                    value = conn.execute(f"SELECT MAX({q}) FROM {t}").fetchone()[0]
+                    row = conn.execute(sql, args).fetchone()
                 conn.close()
             except sqlite3.Error as exc:
                 raise SourceError(f"{self.path}: table {self.table!r}: {exc}") from None
-            return value
+            return None if row is None else tuple(row)
         import sqlalchemy as sa
         prep = self._engine.dialect.identifier_preparer
-        q = lambda n: ".".join(prep.quote(p) for p in n.split("."))  # noqa: E731
+        q = ".".join(prep.quote(p) for p in self.key.split("."))
+        t = ".".join(prep.quote(p) for p in self.table.split("."))
+        sql = f"SELECT {select.format(key=q)} FROM {t}" + (
+            f" WHERE {where.format(key=q)} = :k" if where else "")
         try:
             with self._engine.connect() as conn:
-                return conn.execute(sa.text(f"SELECT MAX({q(self.key)}) FROM {q(self.table)}")
-                                    ).scalar()
+                row = conn.execute(sa.text(sql), {"k": key} if where else {}).fetchone()
         except sa.exc.SQLAlchemyError as exc:
             raise SourceError(f"{self.where}: table {self.table!r}: "
                               f"{hide(str(getattr(exc, 'orig', None) or exc), self.url)}") from None
+        return None if row is None else tuple(row)
+
+    def _max_key(self) -> Any:
+        """The largest key in the table now (None when it is empty)."""
+        return self._first_row("MAX({key})")[0]
 
     def _hash_at(self, key: Any) -> str | None:
         """:func:`row_hash` of the row whose key is ``key`` now (None when there is none)."""
-        if self.path is not None:
-            q = ".".join(f'"{p}"' for p in self.key.split("."))
-            t = ".".join(f'"{p}"' for p in self.table.split("."))
-            uri = self.path.resolve().as_uri() + "?mode=ro"
-            try:
-                with sqlite3.connect(uri, uri=True, timeout=10.0) as conn:
-                    row = conn.execute(f"SELECT * FROM {t} WHERE {q} = ?", [key]).fetchone()
-                conn.close()
-            except sqlite3.Error as exc:
-                raise SourceError(f"{self.path}: table {self.table!r}: {exc}") from None
-            return None if row is None else row_hash(row)
-        import sqlalchemy as sa
-        prep = self._engine.dialect.identifier_preparer
-        q = lambda n: ".".join(prep.quote(p) for p in n.split("."))  # noqa: E731
-        try:
-            with self._engine.connect() as conn:
-                row = conn.execute(sa.text(f"SELECT * FROM {q(self.table)} WHERE "
-                                           f"{q(self.key)} = :k"), {"k": key}).fetchone()
-        except sa.exc.SQLAlchemyError as exc:
-            raise SourceError(f"{self.where}: table {self.table!r}: "
-                              f"{hide(str(getattr(exc, 'orig', None) or exc), self.url)}") from None
-        return None if row is None else row_hash(tuple(row))
+        row = self._first_row("*", "{key}", key)
+        return None if row is None else row_hash(row)
 
     def _reset_chunk(self, last: Any, top: Any, rows: int) -> Chunk:
         """The notice of a table whose largest key fell below the last key read."""
