@@ -70,7 +70,7 @@ REF_PRIOR_VAR = 1e6
 
 
 def _prior_var(est) -> list[float]:
-    return [REF_PRIOR_VAR] * est._k
+    return [REF_PRIOR_VAR] * est.row_width
 
 
 def _refs(ctx: Context, p, rows: np.ndarray, est, elmon_rate: float, res, what: str,

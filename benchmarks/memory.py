@@ -93,7 +93,7 @@ def child(n: int) -> dict:
     state_bytes = sum(a.nbytes for a in _state_arrays(states))
     from monitor.estimators import kernel as K
 
-    est_bytes = K.state_size(est._k) * 8 * n
+    est_bytes = K.state_size(est.row_width) * 8 * n
     assert len(index) == n
     return {"n": n, "rss0": rss0, "rss1": rss1, "peak": _peak(), "state_bytes": state_bytes,
             "estimator_state_bytes": est_bytes, "per_series": state_bytes / n}

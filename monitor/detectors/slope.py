@@ -114,11 +114,11 @@ class FastSlowSlope:
     def observe(self, est, log_price: float, log_q: float, row=None) -> float:
         """Update from an :class:`~monitor.estimators.ElasticityRLS` right after its
         ``learn_one`` (``row``: the design row, needed only with controls)."""
-        y = log_q if row is None else adjusted_response(est._state, np.asarray(row, float),
-                                                        float(log_q), est._k)
+        y = log_q if row is None else adjusted_response(est.state_vector, np.asarray(row, float),
+                                                        float(log_q), est.row_width)
         sd = est.residual_sd
         return self.update(log_price, y, sd if math.isfinite(sd) else math.nan,
-                           bool(est._state[K.I_PAUSED]))
+                           bool(est.state_vector[K.I_PAUSED]))
 
     def reanchor(self) -> "FastSlowSlope":
         """Re-anchor the reference on the fast regression (what the pipeline does at an alarm)."""

@@ -122,8 +122,8 @@ class SplitGLR:
         """Update from an :class:`~monitor.estimators.ElasticityRLS` right after its
         ``learn_one`` (``row``: the design row, needed only with controls). Rows while the
         estimator is warming up are skipped."""
-        st = est._state
-        k = est._k
+        st = est.state_vector
+        k = est.row_width
         self.alarm, self.report = None, None
         if est.n_eff < max(est.min_n_eff, k + 2.0) or not math.isfinite(est.residual_sd):
             return self

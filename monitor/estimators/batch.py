@@ -93,8 +93,8 @@ def run_batch(est, sid: np.ndarray, X: np.ndarray, y: np.ndarray,
     X = np.ascontiguousarray(X, dtype=np.float64)
     y = np.ascontiguousarray(y, dtype=np.float64)
     sid = np.ascontiguousarray(sid, dtype=np.int64)
-    if X.ndim != 2 or X.shape[1] != est._k:
-        raise ValueError(f"X has shape {X.shape}; expected (n, {est._k}) for {est.parameter_names}")
+    if X.ndim != 2 or X.shape[1] != est.row_width:
+        raise ValueError(f"X has shape {X.shape}; expected (n, {est.row_width}) for {est.parameter_names}")
     if y.shape[0] != X.shape[0] or sid.shape[0] != X.shape[0]:
         raise ValueError("sid, X and y must have the same number of rows")
     n_series = int(sid.max()) + 1 if sid.size else 0
@@ -110,5 +110,5 @@ def run_batch(est, sid: np.ndarray, X: np.ndarray, y: np.ndarray,
     if off.size and est.model != "poisson":
         raise ValueError("offset (exposure) is used by the Poisson model only")
     estimator_run(model_code(est.model), states, sid, X, y, off, *est.kernel_args, out,
-                  np.empty(work_size(est.model, est._k)))
+                  np.empty(work_size(est.model, est.row_width)))
     return BatchResult(out=out, states=states)

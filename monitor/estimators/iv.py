@@ -133,6 +133,28 @@ class ElasticityIV:
         return IK.init_state(self._kp, self._nq)
 
     @property
+    def dispatch_args(self) -> tuple:
+        """Arguments after the data of a step of :mod:`monitor.estimators.dispatch`: band code,
+        lag count (here: the instrument count), forgetting, guard, guard forgetting, min price sd, min n_eff, t table."""
+        return (self._band, self._lags, self.forgetting, self.excitation_guard,
+                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
+
+    @property
+    def row_width(self) -> int:
+        """Columns of one design row the kernels read: ``(1, log p, controls, instruments)``."""
+        return self._k
+
+    @property
+    def band_code(self) -> int:
+        """The band kind as the kernels' integer code (always the heteroskedasticity-robust code)."""
+        return self._band
+
+    @property
+    def state_vector(self) -> np.ndarray:
+        """The live state vector (the array itself, not a copy: read it, never write it)."""
+        return self._state
+
+    @property
     def state_size(self) -> int:
         return IK.state_size(self._kp, self._nq)
 
@@ -222,7 +244,7 @@ class ElasticityIV:
                 "resid_sd": o[K.O_RESID_SD], "first_stage_f": o[IK.O_FSTAT]}
 
     # ------------------------------------------------------------------ state
-    def _params(self) -> dict:
+    def hyperparameters(self) -> dict:
         return {"instruments": list(self.instruments),
                 "log_instruments": list(self.log_instruments), "forgetting": self.forgetting,
                 "controls": list(self.controls), "log_controls": list(self.log_controls),
@@ -231,7 +253,7 @@ class ElasticityIV:
 
     def to_state(self) -> dict:
         """Plain JSON-able state; :meth:`from_state` continues bit for bit."""
-        return {"params": self._params(), "state": floats_to_json(self._state),
+        return {"params": self.hyperparameters(), "state": floats_to_json(self._state),
                 "out": floats_to_json(self._out)}
 
     @classmethod

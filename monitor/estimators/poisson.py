@@ -123,6 +123,28 @@ class ElasticityPoisson:
         return poisson_init_state(self._k)
 
     @property
+    def dispatch_args(self) -> tuple:
+        """Arguments after the data of a step of :mod:`monitor.estimators.dispatch`: band code,
+        lag count, forgetting, guard, guard forgetting, min price sd, min n_eff, t table."""
+        return (self._band, self._lags, self.forgetting, self.excitation_guard,
+                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
+
+    @property
+    def row_width(self) -> int:
+        """Columns of one design row the kernels read: ``(1, log p, controls)``."""
+        return self._k
+
+    @property
+    def band_code(self) -> int:
+        """The band kind as the kernels' integer code (:data:`kernel.BANDS` of ``band``)."""
+        return self._band
+
+    @property
+    def state_vector(self) -> np.ndarray:
+        """The live state vector (the array itself, not a copy: read it, never write it)."""
+        return self._state
+
+    @property
     def state_size(self) -> int:
         return poisson_state_size(self._k)
 
@@ -138,8 +160,7 @@ class ElasticityPoisson:
     @property
     def kernel_args(self) -> tuple:
         """Arguments after the data in :func:`monitor.estimators.dispatch.estimator_run`."""
-        return (self._band, self._lags, self.forgetting, self.excitation_guard,
-                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
+        return self.dispatch_args
 
     # ------------------------------------------------------------------ learning
     def learn_one(self, x: Mapping[str, object], y: float, exposure: float | None = None
@@ -216,7 +237,7 @@ class ElasticityPoisson:
                 "resid_sd": o[K.O_RESID_SD], "band": self.band}
 
     # ------------------------------------------------------------------ state
-    def _params(self) -> dict:
+    def hyperparameters(self) -> dict:
         return {"forgetting": self.forgetting, "controls": list(self.controls),
                 "log_controls": list(self.log_controls), "level": self.level,
                 "min_n_eff": self.min_n_eff, "min_price_sd": self.min_price_sd,
@@ -225,7 +246,7 @@ class ElasticityPoisson:
                 "exposure": self.exposure}
 
     def to_state(self) -> dict:
-        return {"params": self._params(), "state": floats_to_json(self._state),
+        return {"params": self.hyperparameters(), "state": floats_to_json(self._state),
                 "out": floats_to_json(self._out)}
 
     @classmethod
@@ -240,7 +261,7 @@ class ElasticityPoisson:
         return est
 
     def clone(self) -> "ElasticityPoisson":
-        return type(self)(**self._params())
+        return type(self)(**self.hyperparameters())
 
     def __repr__(self) -> str:
         return (f"ElasticityPoisson(forgetting={self.forgetting}, controls={self.controls}, "

@@ -156,6 +156,28 @@ class ElasticityRLS:
         return K.init_state(*self.prior(), self._band, self._lags)
 
     @property
+    def dispatch_args(self) -> tuple:
+        """Arguments after the data of a step of :mod:`monitor.estimators.dispatch`: band code,
+        lag count, forgetting, guard, guard forgetting, min price sd, min n_eff, t table."""
+        return (self._band, self._lags, self.forgetting, self.excitation_guard,
+                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
+
+    @property
+    def row_width(self) -> int:
+        """Columns of one design row the kernels read: ``(1, log p, controls)``."""
+        return self._k
+
+    @property
+    def band_code(self) -> int:
+        """The band kind as the kernels' integer code (:data:`kernel.BANDS` of ``band``)."""
+        return self._band
+
+    @property
+    def state_vector(self) -> np.ndarray:
+        """The live state vector (the array itself, not a copy: read it, never write it)."""
+        return self._state
+
+    @property
     def state_size(self) -> int:
         return K.state_size(self._k, self._band, self._lags)
 
@@ -171,8 +193,7 @@ class ElasticityRLS:
     @property
     def kernel_args(self) -> tuple:
         """Arguments after the data in :func:`monitor.estimators.kernel.rls_run`."""
-        return (self._band, self._lags, self.forgetting, self.excitation_guard,
-                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
+        return self.dispatch_args
 
     # ------------------------------------------------------------------ learning
     def learn_one(self, x: Mapping[str, object], y: float) -> "ElasticityRLS":
@@ -382,10 +403,10 @@ class ElasticityRLS:
     # ------------------------------------------------------------------ state
     def to_state(self) -> dict:
         """Plain JSON-able state; :meth:`from_state` continues bit for bit."""
-        return {"params": self._params(), "state": floats_to_json(self._state),
+        return {"params": self.hyperparameters(), "state": floats_to_json(self._state),
                 "out": floats_to_json(self._out)}
 
-    def _params(self) -> dict:
+    def hyperparameters(self) -> dict:
         return {"forgetting": self.forgetting, "controls": list(self.controls),
                 "log_controls": list(self.log_controls), "prior_mean": self.prior_mean,
                 "prior_sd": self.prior_sd, "level": self.level, "min_n_eff": self.min_n_eff,
@@ -406,7 +427,7 @@ class ElasticityRLS:
 
     def clone(self) -> "ElasticityRLS":
         """A fresh, unfitted estimator with the same hyperparameters."""
-        return type(self)(**self._params())
+        return type(self)(**self.hyperparameters())
 
     def __repr__(self) -> str:
         return (f"ElasticityRLS(forgetting={self.forgetting}, controls={self.controls}, "

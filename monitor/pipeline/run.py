@@ -281,8 +281,8 @@ class Pipeline:
         y = np.ascontiguousarray(y, dtype=np.float64)
         sid = np.ascontiguousarray(sid, dtype=np.int64)
         n = X.shape[0]
-        if X.ndim != 2 or X.shape[1] != self.estimator._k:
-            raise ValueError(f"X has shape {X.shape}; expected (n, {self.estimator._k})")
+        if X.ndim != 2 or X.shape[1] != self.estimator.row_width:
+            raise ValueError(f"X has shape {X.shape}; expected (n, {self.estimator.row_width})")
         if y.shape != (n,) or sid.shape != (n,):
             raise ValueError("sid, X and y must have the same number of rows")
         if n and (sid.min() < 0 or sid.max() >= n_series):
@@ -303,9 +303,8 @@ class Pipeline:
         off = np.empty(0) if offset is None else np.ascontiguousarray(offset, dtype=np.float64)
         if off.size and off.shape != (n,):
             raise ValueError("offset must have one value per row")
-        args = (est._band, est._lags, est.forgetting, est.excitation_guard,
-                est.guard_forgetting, est.min_price_sd, est.min_n_eff, est._tq, off)
-        form = step_form(est.model, X.shape[1], est._band)
+        args = (*est.dispatch_args, off)
+        form = step_form(est.model, X.shape[1], est.band_code)
         d = self.detectors
         (lkind, lp), (skind, sp) = self._charts["level"], self._charts["slope"]
         while True:

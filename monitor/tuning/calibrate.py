@@ -61,7 +61,7 @@ def _series_material(rows, est, pipe, seed: int) -> list[dict]:
     theta and residual sd."""
     n_series = len(rows.names)
     res = pipe.run(rows.sid, rows.X, rows.y, n_series=n_series, ts=rows.ts)
-    k = est._k
+    k = est.row_width
     theta = res.states[:, K.NS:K.NS + k].copy()
     bounds = np.searchsorted(rows.sid, np.arange(n_series + 1))
     last = np.maximum(bounds[1:] - 1, 0)
