@@ -197,6 +197,17 @@ _SERIES_RESETS = [
     "CREATE INDEX series_resets_series ON series_resets (series, id)",
 ]
 
+_BAND_KIND = [
+    # issue 13: the kind of each estimate's band ([estimator] band: 'hc' heteroskedasticity-
+    # robust, 'hac' autocorrelation-robust, 'classic'). NULL where the estimate has no band
+    # (beta_lo / beta_hi NULL: its status, warming_up or low_variation, says why) and on rows
+    # stored before this migration: the checkpoints keep no estimator settings, so the kind
+    # that wrote them is not known (it was the [estimator] band of that configuration)
+    "ALTER TABLE estimates ADD COLUMN band TEXT CHECK (band IN ('hc', 'hac', 'classic'))",
+    "ALTER TABLE latest_estimates ADD COLUMN band TEXT "
+    "CHECK (band IN ('hc', 'hac', 'classic'))",
+]
+
 #: Ordered migrations: (id, name, steps). A step is SQL text or a callable taking the sqlite3
 #: connection (run inside the migration's transaction). Append only.
 MIGRATIONS: list[tuple[int, str, list]] = [
@@ -207,6 +218,7 @@ MIGRATIONS: list[tuple[int, str, list]] = [
     (5, "bounds in effect", _BOUNDS_IN_EFFECT),
     (6, "alert verdicts", _ALERT_VERDICTS),
     (7, "series resets", _SERIES_RESETS),
+    (8, "band kind", _BAND_KIND),
 ]
 
 #: The schema version this code expects (the id of the last migration).
