@@ -81,17 +81,11 @@ def cmd_set(args) -> int:
 
 
 def cmd_load(args) -> int:
-    import pandas as pd
-
+    from monitor.ingest.bounds_file import read_bounds_file
     from monitor.store import Store
     from monitor.store.bounds import load_series_bounds
 
-    try:
-        table = pd.read_csv(args.file, dtype=str, keep_default_na=False)
-    except FileNotFoundError:
-        raise ConfigError(f"bounds file {args.file!r} does not exist") from None
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"bounds file {args.file!r} is not a CSV file: {exc}") from None
+    table = read_bounds_file(args.file)
     with Store.open(args.db, create=False) as store:
         recs = load_series_bounds(store, table, create=args.create,
                                   source=f"bounds file {args.file!r}")
@@ -112,6 +106,11 @@ def cmd_list(args) -> int:
         sec = load_config(args.config).section("bounds")
         print(f"[bounds] default ({args.config}): low = {_fmt(sec.get('low'))}, high = "
               f"{_fmt(sec.get('high'))}, mode = {sec.get('mode')}")
+        if sec.get("file"):
+            from monitor.ingest.bounds_file import bounds_file_path
+
+            print(f"[bounds] file: {bounds_file_path(load_config(args.config))} (the service "
+                  "loads it at start and whenever it changes; replay applies it)")
     else:
         print("[bounds] default: in the service's configuration (give --config FILE to show "
               "it; the built-in default is none on both sides)")

@@ -37,6 +37,8 @@ import threading
 import time
 from pathlib import Path
 
+from monitor.errors import ConfigError, StoreError
+from monitor.ingest.bounds_file import BoundsFileWatch, bounds_file_path, read_bounds_file
 from monitor.ingest.factory import sources_from_config
 from monitor.ingest.logio import column_names
 from monitor.live import settings as service_config
@@ -44,6 +46,7 @@ from monitor.live.monitor import Monitor
 from monitor.live.sinks import deliver_due, sinks_from_config
 from monitor.sections import Config
 from monitor.store import get_offset, send_reminders, wall_ts, write_batch
+from monitor.store.bounds import load_series_bounds
 from monitor.store.live import record_source_error, source_rows_at, stale_changes
 
 
@@ -108,12 +111,50 @@ class Service:
             self._last_rows.setdefault(name, started)
         self._errors: dict[str, str | None] = {}
         self.scheduler = None
+        path = bounds_file_path(config, base)
+        self._bounds_watch = BoundsFileWatch(path) if path is not None else None
+        self._bounds_lock = threading.Lock()
+        try:
+            self.sync_bounds(strict=True)
+        except Exception:
+            self.monitor.close()
+            raise
+
+    def sync_bounds(self, strict: bool = False) -> int | None:
+        """Load ``[bounds] file`` into the store's per-series bounds when the file changed
+        since the last look (at start, then before each poll); returns the number of series
+        loaded, or ``None`` when nothing was loaded.
+
+        The file is applied all or nothing (:func:`monitor.store.bounds.load_series_bounds`,
+        series created when new). A bad file refuses the start (``strict``); later, a bad
+        version is logged once with every bad row named and the bounds loaded before stay in
+        effect. Removing a line does not clear that series' bounds (``elmon bounds set NAME
+        --low none --high none`` does).
+        """
+        watch = self._bounds_watch
+        if watch is None:
+            return None
+        with self._bounds_lock:
+            if not watch.changed():
+                return None
+            source = f"[bounds] file {str(watch.path)!r}"
+            try:
+                recs = load_series_bounds(self.store, read_bounds_file(watch.path),
+                                          create=True, source=source)
+            except (ConfigError, StoreError) as exc:
+                if strict:
+                    raise ConfigError(str(exc)) from None
+                log.error("%s; the bounds loaded before stay in effect", exc)
+                return None
+        log.info("%s: bounds of %d series loaded", source, len(recs))
+        return len(recs)
 
     # ------------------------------------------------------------------ jobs
     def poll(self, name: str) -> list:
         """Read and commit batches from source ``name`` until it has nothing new (or stop)."""
         src = self.sources[name]
         reports = []
+        self.sync_bounds()
         while not self.stop_event.is_set():
             position = self._positions.get(name)
             try:
@@ -282,7 +323,11 @@ def ingest_file(path, store, config: Config | None = None, batch_rows: int | Non
     t0 = time.perf_counter()
     out = {"source": name, "batches": 0, "rows": 0, "accepted": 0, "rejected": 0,
            "zero_skipped": 0, "alerts_opened": 0, "notices": []}
+    bounds_path = bounds_file_path(config, config_folder(config))
     with Monitor(store, config) as mon:
+        if bounds_path is not None:
+            load_series_bounds(mon.store, read_bounds_file(bounds_path), create=True,
+                               source=f"[bounds] file {str(bounds_path)!r}")
         row = get_offset(mon.store, name)
         position = row["position"] if row else None
         out["start"], out["resumed"] = position, position is not None

@@ -53,7 +53,7 @@ DETECTOR_KEYS = {"arl0": (NUM, 20000.0), "change_detector": (str, "split_glr"),
                  "slope_chart": (str, "cusum"),
                  **{k: (NUM, r.default) for k, r in DETECTOR_RANGES.items() if k != "arl0"}}
 BOUNDS_KEYS = {"low": (NUM, None), "high": (NUM, None), "mode": (str, "interval"),
-               "persistence": (NUM, 3), "clear_after": (NUM, 5)}
+               "persistence": (NUM, 3), "clear_after": (NUM, 5), "file": (str, "")}
 RULE_KEYS = {"cooldown": (NUM, 50), "clear_after": (NUM, 200), "out_of_bounds": (bool, True),
              "elasticity_change": (bool, True), "level_shift": (bool, True),
              "sign_flip": (bool, True), "low_variation": (bool, True),
@@ -146,6 +146,9 @@ class BoundsSettings:
     mode: str = "interval"
     persistence: int = 3
     clear_after: int = 5
+    #: a table ``series,low,high`` of per-series bounds (:mod:`monitor.ingest.bounds_file`);
+    #: the pipeline only carries the name, its readers apply it
+    file: str = ""
 
     def __post_init__(self):
         for key in ("low", "high"):

@@ -40,6 +40,7 @@ import pyarrow.parquet as pq
 from monitor.errors import ConfigError, SourceError
 from monitor.estimators import kernel as K
 from monitor.estimators.feedback import feedback_summary
+from monitor.ingest.bounds_file import config_bounds, per_series_limits
 from monitor.ingest.chunks import iter_chunks, log_chunks, read_whole
 from monitor.ingest.logio import column_names, write_table
 from monitor.pipeline.run import Pipeline
@@ -175,7 +176,7 @@ def make_setup(config: Config, sample_every: int = 1, now_ns: int | None = None,
     return Setup(est=est, pipe=Pipeline.from_config(config, est), vset=validation_from_config(config),
                  now_ns=time.time_ns() if now_ns is None else int(now_ns),
                  sample_every=int(sample_every), report_series=frozenset(report_series),
-                 keep_obs=keep_obs)
+                 keep_obs=keep_obs, own_bounds=config_bounds(config))
 
 
 def choose_report_series(truth: pd.DataFrame | None, requested=None) -> list[str]:
@@ -447,9 +448,13 @@ def run_replay(log_path, out_dir, config: Config | None = None, quiet: bool = Tr
                    rows=chunk.rows, line_rejects=chunk.rejects, order=order_of(vset, "time"))
     good = v.good
     sid, X, y, names = prepare_rows(good, est)
+    own = config_bounds(config)
+    limits = {}
+    if own:
+        low, high = per_series_limits(names, own, *pipe.bounds.limits())
+        limits = {"low": low, "high": high}
     result = pipe.run(sid, X, y, n_series=len(names), ts=good["ts"].to_numpy(dtype=np.int64),
-                      offset=offset_of(good, est),
-                      names=names)
+                      offset=offset_of(good, est), names=names, **limits)
     t_core = time.perf_counter()
 
     out_dir = Path(out_dir)

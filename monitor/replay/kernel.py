@@ -21,6 +21,7 @@ import pandas as pd
 import pyarrow as pa
 
 from monitor.estimators import kernel as K
+from monitor.ingest.bounds_file import per_series_limits
 from monitor.replay.health import HEALTH_COLUMNS, HealthSums, zero_counts
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
                                  estimates_frame)
@@ -48,6 +49,16 @@ class Setup:
     sample_every: int = 1
     report_series: frozenset = frozenset()
     keep_obs: bool = False        # keep (sid, ts) of every processed row (detection metrics)
+    #: per-series bounds {series: (low, high)} from ``[bounds] file`` (None: not set, the
+    #: ``[bounds]`` limit applies on that side)
+    own_bounds: dict = field(default_factory=dict)
+
+    def bounds_kwargs(self, names: list[str]) -> dict:
+        """``low`` / ``high`` of ``Pipeline.run`` for ``names`` when any has bounds of its own."""
+        if not self.own_bounds or not any(n in self.own_bounds for n in names):
+            return {}
+        low, high = per_series_limits(names, self.own_bounds, *self.pipe.bounds.limits())
+        return {"low": low, "high": high}
 
 
 @dataclass
@@ -160,7 +171,8 @@ def run_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row_offs
         names = carried.names()
         res = setup.pipe.run(sid, X, y, n_series=n_series, states=carried.states,
                              offset=offset_of(good, setup.est),
-                             ts=good["ts"].to_numpy(dtype=np.int64), names=names)
+                             ts=good["ts"].to_numpy(dtype=np.int64), names=names,
+                             **setup.bounds_kwargs(names))
         carried.states = res.states
         out, status, events = res.out, np.asarray(res.status, dtype=np.int8), res.events
         if getattr(setup.est, "model", "loglinear") == "loglinear":

@@ -25,6 +25,7 @@ import math
 import pandas as pd
 
 from monitor.errors import StoreError
+from monitor.ingest.bounds_file import check_bounds_table
 from monitor.store.codec import wall_ts
 from monitor.store.core import Store, accepts_path
 
@@ -152,47 +153,12 @@ def load_series_bounds(store: Store, table: pd.DataFrame, *, create: bool = Fals
     ``low`` / ``high`` empty or a finite number; ``low < high``; the series known to the store
     unless ``create``. Returns the :func:`set_series_bounds` records in table order.
     """
-    missing = [c for c in ("series", "low", "high") if c not in table.columns]
-    if missing:
-        raise StoreError(f"{source}: missing column(s) {', '.join(missing)}; the header must "
-                         f"be series,low,high")
-    known = {r["series"] for r in store.rows("SELECT series FROM series")}
-    problems, rows, seen = [], [], {}
-    for i, rec in enumerate(table[["series", "low", "high"]].itertuples(index=False), start=1):
-        name = "" if pd.isna(rec.series) else str(rec.series).strip()
-        where = f"row {i} (line {i + 1}, series {name!r})"
-        if not name:
-            problems.append(f"row {i} (line {i + 1}): field 'series' is empty")
-            continue
-        if name in seen:
-            problems.append(f"{where}: field 'series' repeats row {seen[name]}")
-            continue
-        seen[name] = i
-        sides = {}
-        for side in ("low", "high"):
-            raw = getattr(rec, side)
-            if raw is None or (isinstance(raw, float) and math.isnan(raw)) or \
-                    str(raw).strip() == "":
-                sides[side] = None
-                continue
-            try:
-                sides[side] = _checked(side, str(raw).strip())
-            except StoreError:
-                problems.append(f"{where}: field '{side}' value {str(raw)!r} is not a finite "
-                                f"number (leave the cell empty for no {side} bound)")
-                sides[side] = KEEP
-        lo, hi = sides["low"], sides["high"]
-        if lo is not KEEP and hi is not KEEP and lo is not None and hi is not None \
-                and not lo < hi:
-            problems.append(f"{where}: low = {lo:g} must be below high = {hi:g}")
-        if name not in known and not create:
-            problems.append(f"{where}: no such series in the store (add --create to set bounds "
-                            f"before its first row)")
-        rows.append((name, lo, hi))
-    if problems:
-        more = f"; and {len(problems) - 20} more" if len(problems) > 20 else ""
-        raise StoreError(f"{source}: {len(problems)} bad row(s), nothing changed: "
-                         + "; ".join(problems[:20]) + more)
+    known = None if create else {r["series"] for r in store.rows("SELECT series FROM series")}
+    try:
+        rows = check_bounds_table(table, source, known,
+                                  " (add --create to set bounds before its first row)")
+    except ValueError as exc:
+        raise StoreError(str(exc)) from None
     with store.atomic():
         return [set_series_bounds(store, name, low=lo, high=hi, create=create)
                 for name, lo, hi in rows]
