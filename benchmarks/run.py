@@ -26,7 +26,7 @@ from benchmarks.common import Context, Row, machine, machine_text, table
 
 #: replay and tuning run last: they take as many runs (up to --runs) as the time budget leaves
 GROUPS = ("startup", "estimator", "estimator_call", "detection", "ingest", "live", "memory",
-          "dashboard", "iv", "experiments", "replay_output", "replay", "tuning")
+          "restart", "dashboard", "iv", "experiments", "replay_output", "replay", "tuning")
 #: seconds a group needs at least (one run of each figure, loaded machine), reserved for it
 #: while the groups before it decide how many runs they can afford
 MIN_S = {"tuning": 120.0}

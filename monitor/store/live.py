@@ -310,3 +310,17 @@ def rows_read_by_source(store: Store) -> dict[str, int]:
     """``{source: rows read}`` of every committed source position."""
     return {r["source"]: int(r["rows_read"])
             for r in store.rows("SELECT source, rows_read FROM source_offsets")}
+
+
+def checkpoint_texts(store: Store, size: int = 4096):
+    """Every series' checkpoint as ``(series, state text)``, in series order, read in blocks
+    of ``size`` rows (a restart decodes them as they come instead of holding every parsed
+    checkpoint at once)."""
+    with store.lock:
+        cur = store.conn.execute("SELECT series, state FROM checkpoints ORDER BY series")
+    while True:
+        with store.lock:
+            block = cur.fetchmany(size)
+        if not block:
+            return
+        yield from block
