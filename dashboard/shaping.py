@@ -198,6 +198,50 @@ def alert_counts(summary: dict) -> dict:
 
 
 # ----------------------------------------------------------------------------- history
+#: words for each band kind an estimate records (``[estimator] band``; issue 13)
+BAND_WORDS = {
+    "hc": "heteroskedasticity-robust (White 1980 sandwich)",
+    "hac": "autocorrelation-robust (Newey & West 1987 sandwich)",
+    "classic": "classic (constant error variance, independent errors)",
+}
+
+
+def band_caption(history: pd.DataFrame) -> str:
+    """What kind of confidence band the drawn estimates carry, from their ``band`` column.
+
+    One kind: ``"Band: heteroskedasticity-robust (White 1980 sandwich), at the configured
+    level."``; several (the configuration changed): each with its count of estimates; none
+    recorded on estimates that have a band (stored before elmon recorded the kind): says so.
+    Estimates without a band (warming up, low variation) are not counted.
+
+    >>> band_caption(pd.DataFrame({"beta_lo": [-1.2, None], "beta_hi": [-0.8, None],
+    ...                            "band": ["hac", None]}))
+    'Band: autocorrelation-robust (Newey & West 1987 sandwich), at the configured level.'
+    """
+    lo = pd.to_numeric(history.get("beta_lo"), errors="coerce") if "beta_lo" in history else None
+    if lo is None or not len(history):
+        return "No band to show yet."
+    hi = pd.to_numeric(history["beta_hi"], errors="coerce")
+    with_band = np.isfinite(lo.to_numpy(dtype=float)) & np.isfinite(hi.to_numpy(dtype=float))
+    if not with_band.any():
+        return "No band to show yet."
+    kinds = (history["band"] if "band" in history else pd.Series([None] * len(history),
+                                                                   index=history.index))
+    kinds = kinds[with_band]
+    counts = kinds.dropna().astype(str).value_counts()
+    unknown = int(kinds.isna().sum())
+    if not len(counts):
+        return ("Band kind not recorded: these estimates were stored before elmon recorded "
+                "it (it is the [estimator] band of the configuration that wrote them).")
+    words = [BAND_WORDS.get(k, k) for k in counts.index]
+    if len(counts) == 1 and not unknown:
+        return f"Band: {words[0]}, at the configured level."
+    parts = [f"{w} for {n:,} estimates" for w, n in zip(words, counts.tolist())]
+    if unknown:
+        parts.append(f"not recorded for {unknown:,} estimates stored before elmon recorded it")
+    return "Bands: " + "; ".join(parts) + " (the configuration changed over this history)."
+
+
 def band_frame(history: pd.DataFrame) -> pd.DataFrame:
     """Elasticity with its band for drawing: ``ts`` (UTC), ``beta``, ``beta_lo``, ``beta_hi``,
     ``status`` and ``drawable`` (all three finite; warming-up rows are kept but not drawn)."""

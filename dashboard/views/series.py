@@ -70,7 +70,8 @@ def _elasticity(db: str, series: str, hist: pd.DataFrame, row: pd.Series) -> Non
     if later:
         msg += (f"; {later} known change point(s) lie outside the data's time span and are "
                 "not drawn")
-    st.caption(msg + f". Alerts: {len(markers)}; known change points: {len(known)}. The "
+    st.caption(shaping.band_caption(hist) + " "      # the band's kind (issue 13)
+               + msg + f". Alerts: {len(markers)}; known change points: {len(known)}. The "
                "vertical axis spans the 2nd to 98th percentile of the band (early estimates "
                "beyond it are clipped at the edge).")
     if truth_err:

@@ -145,7 +145,9 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
     floats = [float(out[i]) for i in (K.O_BETA, K.O_SE, K.O_LO, K.O_HI, K.O_NEFF,
                                       K.O_INTERCEPT, K.O_RESID_SD, K.O_E, K.O_Z)]
     sql = [None if v != v else v for v in floats]
-    estimate = (series, ts, *sql[:5], status, *sql[5:])
+    band = K.BAND_NAMES.get(int(out[K.O_BAND])) if sql[2] is not None and sql[3] is not None \
+        else None                            # the kind of the band (issue 13), as estimates_frame
+    estimate = (series, ts, *sql[:5], status, *sql[5:], band)
     updates = mon.book.updates.get(series, 0) + 1
     prev = mon.book.last_status.get(series)
     keep = mon.estimates_every == 1 or updates % mon.estimates_every == 0 or prev != status

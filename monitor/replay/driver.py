@@ -64,7 +64,8 @@ _F = pa.float64()
 SCHEMAS = {
     "estimates": pa.schema([("series", pa.string()), ("ts", pa.string())]
                            + [(c, _F) for c in ESTIMATE_COLUMNS[2:7]] + [("status", pa.string())]
-                           + [(c, _F) for c in ESTIMATE_COLUMNS[8:]]),
+                           + [(c, _F) for c in ESTIMATE_COLUMNS[8:12]]
+                           + [("band", pa.string())]),
     "alerts": pa.schema([("series", pa.string()), ("ts", pa.string()), ("rule", pa.string()),
                          ("beta", _F), ("beta_lo", _F), ("beta_hi", _F), ("message", pa.string()),
                          ("change_ts", pa.string())] + [(c, _F) for c in ALERT_COLUMNS[8:]]

@@ -24,7 +24,7 @@ from monitor.estimators import kernel as K
 from monitor.ingest.bounds_file import per_series_limits
 from monitor.replay.health import HEALTH_COLUMNS, HealthSums, zero_counts
 from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
-                                 estimates_frame)
+                                 band_kinds, estimates_frame)
 from monitor.rows.isotime import iso_utc
 from monitor.rows.prepare import check_rows, design_rows, offset_of, order_of
 from monitor.rows.validate import SeriesGate, Validated
@@ -236,6 +236,7 @@ def estimates_table(good: pd.DataFrame, out: np.ndarray, status: np.ndarray,
     cols["status"] = _LABELS.take(pa.array(np.asarray(status[sel], dtype=np.int64)))
     for k, (name, _) in enumerate(_EST_TAIL, start=len(_EST_FLOATS)):
         cols[name] = pa.array(o[k], pa.float64(), from_pandas=True)
+    cols["band"] = pa.array(band_kinds(out[sel]), pa.string())   # the band's kind (issue 13)
     if out.shape[1] > K.NOUT:      # instruments: the effective first-stage F (issue 17)
         cols["first_stage_f"] = pa.array(o[-1], pa.float64(), from_pandas=True)
     return pa.table(cols)

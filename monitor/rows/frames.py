@@ -14,7 +14,22 @@ from monitor.types import STATUS_LABELS
 
 
 ESTIMATE_COLUMNS = ["series", "ts", "beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "status",
-                    "intercept", "resid_sd", "innovation", "z"]
+                    "intercept", "resid_sd", "innovation", "z", "band"]
+
+#: ``band``: the kind of the estimate's band (``[estimator] band``: "hc", "hac" or "classic",
+#: from the kernel's output column ``O_BAND``); empty (NULL) where the estimate has no band
+#: (``beta_lo`` NaN: status warming_up or low_variation says why)
+BAND_KINDS = tuple(K.BAND_NAMES[c] for c in sorted(K.BAND_NAMES))
+
+
+def band_kinds(out: np.ndarray) -> np.ndarray:
+    """The band kind of each output row (object array of "classic" / "hc" / "hac"), ``None``
+    where the row has no band (``beta_lo`` or ``beta_hi`` NaN)."""
+    names = np.array(BAND_KINDS + (None,), dtype=object)
+    code = out[:, K.O_BAND]
+    has = np.isfinite(out[:, K.O_LO]) & np.isfinite(out[:, K.O_HI]) & np.isfinite(code)
+    idx = np.where(has, np.nan_to_num(code, nan=0.0), len(BAND_KINDS)).astype(np.int64)
+    return names[idx]
 
 
 #: a change alert (elasticity_change, level_shift) also carries CHANGE_COLUMNS: the
@@ -42,7 +57,7 @@ def _estimates(good: pd.DataFrame, out: np.ndarray, labels: np.ndarray) -> pd.Da
         "beta": out[:, K.O_BETA], "beta_se": out[:, K.O_SE], "beta_lo": out[:, K.O_LO],
         "beta_hi": out[:, K.O_HI], "n_eff": out[:, K.O_NEFF], "status": labels,
         "intercept": out[:, K.O_INTERCEPT], "resid_sd": out[:, K.O_RESID_SD],
-        "innovation": out[:, K.O_E], "z": out[:, K.O_Z]})
+        "innovation": out[:, K.O_E], "z": out[:, K.O_Z], "band": band_kinds(out)})
 
 
 def _change_columns(ev: pd.DataFrame) -> dict:

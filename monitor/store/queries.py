@@ -46,7 +46,7 @@ def latest_estimates(store: Store) -> pd.DataFrame:
     Columns: ``series, ts, beta, beta_se, beta_lo, beta_hi, n_eff, status, intercept,
     resid_sd, innovation, z, first_ts, last_obs_ts, n_obs, n_estimates, open_alerts,
     alert_severity, low, high, forgetting, bound_low, bound_high, beta_pooled, beta_pooled_se, group,
-    delay50_obs`` (``beta_pooled`` .. ``group`` NULL unless groups are set:
+    delay50_obs, band`` (``band``: the kind of the newest estimate's band, issue 13; ``beta_pooled`` .. ``group`` NULL unless groups are set:
     :mod:`monitor.store.groups`; ``delay50_obs``: expected observations to detect a change of
     0.5 in b, :mod:`monitor.store.detection`). ``ts`` is the time of the
     newest estimate and ``last_obs_ts`` of the newest observation. A series without an estimate yet has NULL
@@ -59,7 +59,7 @@ def latest_estimates(store: Store) -> pd.DataFrame:
         " coalesce(a.n, 0) AS open_alerts,"
         " CASE a.worst WHEN 3 THEN 'critical' WHEN 2 THEN 'warning' WHEN 1 THEN 'info' END"
         " AS alert_severity, s.low, s.high, s.forgetting, s.bound_low, s.bound_high,"
-        ' l.beta_pooled, l.beta_pooled_se, l."group", l.delay50_obs'
+        ' l.beta_pooled, l.beta_pooled_se, l."group", l.delay50_obs, l.band'
         " FROM series s LEFT JOIN latest_estimates l ON l.series = s.series"
         f" LEFT JOIN (SELECT series, count(*) AS n, max({_SEVERITY_RANK}) AS worst FROM alerts"
         " WHERE state != 'resolved' GROUP BY series) a ON a.series = s.series"
@@ -72,12 +72,13 @@ def series_history(store: Store, series: str, start: Any = None, end: Any = None
     """A series' stored estimates with their bands, joined with the observed price and quantity.
 
     Columns: ``series, ts, beta, beta_se, beta_lo, beta_hi, n_eff, status, intercept,
-    resid_sd, innovation, z, price, quantity``; ordered by ``ts``; ``start`` / ``end``
-    inclusive.
+    resid_sd, innovation, z, price, quantity, band``; ordered by ``ts``; ``start`` / ``end``
+    inclusive. ``band`` is the kind of each estimate's band ("hc", "hac", "classic"; NULL with
+    no band or when stored before the kind was recorded).
     """
     lo, hi = _bounds(start, end)
     sql = ("SELECT e.series, e.ts, e.beta, e.beta_se, e.beta_lo, e.beta_hi, e.n_eff, e.status,"
-           " e.intercept, e.resid_sd, e.innovation, e.z, o.price, o.quantity"
+           " e.intercept, e.resid_sd, e.innovation, e.z, o.price, o.quantity, e.band"
            " FROM estimates e LEFT JOIN observations o ON o.series = e.series AND o.ts = e.ts"
            " WHERE e.series = ? AND e.ts >= ? AND e.ts <= ? ORDER BY e.ts")
     return store.frame(sql, (series, lo, hi), ts_columns=("ts",))

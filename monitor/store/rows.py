@@ -21,7 +21,9 @@ from monitor.types import STATUS_LABELS
 
 OBSERVATION_COLUMNS = ("series", "ts", "price", "quantity", "controls", "source", "source_row")
 ESTIMATE_COLUMNS = ("series", "ts", "beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "status",
-                    "intercept", "resid_sd", "innovation", "z")
+                    "intercept", "resid_sd", "innovation", "z", "band")
+#: band kinds an estimate may record (issue 13); NULL where the estimate has no band
+BAND_KINDS = ("hc", "hac", "classic")
 _EST_FLOATS = ("beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "intercept", "resid_sd",
                "innovation", "z")
 _SERIES_SETTINGS = ("low", "high", "forgetting", "settings", "bound_low", "bound_high")
@@ -141,9 +143,24 @@ def estimate_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
                                       f"{status.iloc[i]!r}: an undefined beta needs status "
                                       f"warming_up or low_variation", field="beta", row=i)
         cols.append(_objects(vals))
-    rows = [(s, t, *vals[:5], st, *vals[5:]) for s, t, st, *vals in
-            zip(df["series"].tolist(), df["ts"].tolist(), status.tolist(), *cols)]
+    band = _band_kinds(df, what)
+    rows = [(s, t, *vals[:5], st, *vals[5:], b) for s, t, st, b, *vals in
+            zip(df["series"].tolist(), df["ts"].tolist(), status.tolist(), band, *cols)]
     return df, rows
+
+
+def _band_kinds(df: pd.DataFrame, what: str) -> list:
+    """The ``band`` column as a list (``None`` where missing, NaN or absent), checked."""
+    if "band" not in df.columns:
+        return [None] * len(df)
+    vals = [None if v is None or (isinstance(v, float) and v != v) else v
+            for v in df["band"].tolist()]
+    for i, v in enumerate(vals):
+        if v is not None and v not in BAND_KINDS:
+            raise ValidationError(f"{_where(df, i, what)}: field 'band' = {v!r}: band must be "
+                                  f"one of {', '.join(BAND_KINDS)} or empty", field="band",
+                                  value=v, row=i)
+    return vals
 
 
 def newest_per_series(df: pd.DataFrame, rows: list[tuple]) -> list[tuple]:
