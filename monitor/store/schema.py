@@ -208,6 +208,25 @@ _BAND_KIND = [
     "CHECK (band IN ('hc', 'hac', 'classic'))",
 ]
 
+_RESET_REQUESTS = [
+    # issue 14: `elmon series reset` while the service runs. The service holds the writer
+    # lock, so the command records the reset as a request (applied_at NULL); the running
+    # service applies it before its next batch (a fresh state in memory and in the
+    # checkpoint, in one transaction) and sets applied_at. A reset made with no service
+    # running is applied at once (applied_at = at), as every reset before this migration was.
+    "ALTER TABLE series_resets ADD COLUMN applied_at TEXT",
+    "UPDATE series_resets SET applied_at = at",
+    "CREATE INDEX series_resets_pending ON series_resets (id) WHERE applied_at IS NULL",
+]
+
+_DELIVERY_LEASE = [
+    # issue 14: a delivery attempt claims its outbox row until claimed_until (wall time); no
+    # round picks a claimed row again while the attempt may still complete, and the attempt
+    # records its own outcome however late. A lease left by a process that died runs out, and
+    # the row is sent again (at least once)
+    "ALTER TABLE outbox ADD COLUMN claimed_until TEXT",
+]
+
 #: Ordered migrations: (id, name, steps). A step is SQL text or a callable taking the sqlite3
 #: connection (run inside the migration's transaction). Append only.
 MIGRATIONS: list[tuple[int, str, list]] = [
@@ -219,6 +238,8 @@ MIGRATIONS: list[tuple[int, str, list]] = [
     (6, "alert verdicts", _ALERT_VERDICTS),
     (7, "series resets", _SERIES_RESETS),
     (8, "band kind", _BAND_KIND),
+    (9, "series reset requests", _RESET_REQUESTS),
+    (10, "delivery leases", _DELIVERY_LEASE),
 ]
 
 #: The schema version this code expects (the id of the last migration).
