@@ -94,6 +94,11 @@ class Monitor:
             self._lock = threading.RLock()
             #: controls the estimator reads (as given, then in logs), in its order
             self.control_names = list(self.estimator.controls) + list(self.estimator.log_controls)
+            #: the Poisson model (issue 13): zero quantities are data, and its exposure column
+            #: ("" without one); the one-row path reads both (monitor.live.one_row)
+            self.zero_as_data = bool(getattr(self.estimator, "zero_quantity_ok", False)) \
+                and self.validation.zero_policy == "keep"
+            self.exposure_col = str(getattr(self.estimator, "exposure", "") or "")
             self._required = required_columns(self.estimator)
             key = list(self.validation.key)
             if len(key) > 1:             # composite ids are built from the key columns

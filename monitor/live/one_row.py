@@ -4,10 +4,19 @@ A call whose values are plainly valid (a known series, a newer timestamp in a st
 or epoch-seconds form, numbers inside ``[validation] min_value .. max_value``, every configured
 control) is validated, run
 through the pipeline and committed here in well under a millisecond of Python; anything else
-(a new series, a value to reject, a zero quantity, an unusual timestamp form) returns
-:data:`NOT_PLAIN` and goes through the general batch path, which judges and words it. Both
-paths call the same validation kernel, design matrix, pipeline and SQL statements, so the
-store ends the same either way (tests/test_engine.py compares every table).
+(a new series, a value to reject, a zero quantity under the log-log model, an unusual
+timestamp form) returns :data:`NOT_PLAIN` and goes through the general batch path, which judges
+and words it. Both paths call the same validation kernel, design matrix, pipeline and SQL
+statements, so the store ends the same either way (tests/test_engine.py compares every table).
+
+The Poisson model (``[estimator] model = "poisson"``, issue 13) takes this path too, as the
+batch path runs it (:func:`monitor.rows.prepare.response`, :func:`~monitor.rows.prepare.offset_of`):
+the response is ``q`` itself, a zero quantity included (zero policy ``keep``: it is data, and
+the quantity check skips it as the kernel does for ``log 0``), and the exposure column
+(``[estimator] exposure``) must be a number inside ``min_value .. max_value`` (anything else
+goes to the batch path, which rejects it) and enters as the offset ``log(exposure)``.
+tests/test_engine_poisson.py holds the store equal to the batch path's and the estimates equal
+to the replay's.
 """
 
 from __future__ import annotations
@@ -95,8 +104,9 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
     gi, vi = mon.gate.index.get(series), mon.book.index.get(series)
     p, q, ns = _number(price), _number(quantity), plain_ns(ts)
     lo, hi = mon.validation.min_value, mon.validation.max_value
+    zero = q == 0.0 and mon.zero_as_data and math.copysign(1.0, q) > 0   # a Poisson zero
     if gi is None or vi is None or p is None or q is None or ns is None \
-            or not (lo <= p <= hi and lo <= q <= hi):
+            or not (lo <= p <= hi and (lo <= q <= hi or zero)):
         return NOT_PLAIN                     # outside the accepted range: worded by the batch path
     if ns <= mon.book.last_obs.get(series, NAT):
         return NOT_PLAIN                     # a repeat or late row: the general path words it
@@ -109,6 +119,12 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
                                          and not lo <= v <= hi):
             return NOT_PLAIN
         values[name] = v
+    offset = None
+    if mon.exposure_col:                     # Poisson exposure: validated as a logged control
+        e = _number(controls.get(mon.exposure_col))
+        if e is None or not lo <= e <= hi:
+            return NOT_PLAIN
+        offset = np.log(np.array([e]))
     gate = mon.gate
     saved = (gate.last_ts[gi], gate.ring[gi].copy(), gate.ring_ts[gi].copy(), gate.count[gi],
              gate.qring[gi].copy(), gate.qcount[gi])
@@ -116,29 +132,34 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
         mon.nan_medians = np.full(gate.last_ts.size, np.nan)
     code = np.zeros(1, dtype=np.int8)
     price_arr = np.array([p])
+    q_arr = np.array([q])
+    with np.errstate(divide="ignore"):       # a zero kept as data: -inf, as validation has it
+        lq = np.log(q_arr)
     ordered_checks(np.array([gi], dtype=np.int64), np.array([ns], dtype=np.int64),
                     np.log(price_arr), gate.last_ts, gate.ring, gate.ring_ts, gate.count,
                     np.int64(mon.validation.allowed_lateness_s * 1e9),
                     math.log(mon.validation.unit_ratio),
                     mon.validation.duplicate_policy == "reject_all", code, mon.nan_medians,
-                    np.log(np.array([q])), gate.qring, gate.qcount, log_qratio(mon.validation))
+                    lq, gate.qring, gate.qcount, log_qratio(mon.validation))
     if code[0] != 0:                         # rejected: the kernel changed nothing
         return NOT_PLAIN
     try:
-        return _run_and_commit(mon, series, vi, ns, p, q, values, price_arr)
+        return _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, offset)
     except BaseException:
         (gate.last_ts[gi], gate.ring[gi], gate.ring_ts[gi], gate.count[gi], gate.qring[gi],
          gate.qcount[gi]) = saved
         raise
 
 
-def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr):
+def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, offset):
     specs = mon.estimator.control_specs
     X = design_matrix(price_arr, {c.name: np.array([values[c.name]]) for c in specs}, specs)
-    y = np.log(np.array([q], dtype=np.float64))
+    y = q_arr if mon.zero_as_data else lq    # monitor.rows.prepare.response
     sid = np.zeros(1, dtype=np.int64)
     states = mon.book.states[[vi]].copy()
     kw = mon.run_extras(np.array([ns], dtype=np.int64), [series])
+    if offset is not None:
+        kw["offset"] = offset                # monitor.rows.prepare.offset_of
     res = mon.pipeline.run(sid, X, y, n_series=1, states=states, **kw)
     out, status = res.out[0], STATUS_LABELS[int(res.status[0])]
     ts = iso_z(ns)
