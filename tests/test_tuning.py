@@ -188,8 +188,9 @@ def test_cli_tune_both_modes(tmp_path, capsys):
 
 def test_bootstrap_check_covers_the_default_detector_and_names_what_it_cannot(tmp_path):
     """The default split likelihood-ratio detector is checked (alert rates per kind on
-    resampled in-control logs, tests/test_tune_split_check.py); the Poisson model, whose
-    residuals this check does not resample, is named as not checked in the summary,
+    resampled in-control logs, tests/test_tune_split_check.py), under the Poisson model too
+    (count paths, tests/test_tune_count_check.py); the previous charts under the Poisson model,
+    whose residuals this check does not resample, are named as not checked in the summary,
     recommended.toml and the command's output instead of an empty check."""
     _loglog_log(tmp_path / "iid.csv", rho=0.0)
     s = calibrate(tmp_path / "iid.csv", tmp_path / "o", arl0=500.0, progress=False, now_ns=NOW,
@@ -200,6 +201,12 @@ def test_bootstrap_check_covers_the_default_detector_and_names_what_it_cannot(tm
     assert a["observations"] >= 100_000 and a["series_used"] == 6
     assert all(k["verdict"] in ("holds", "breaks", "unsettled") for k in a["kinds"].values())
     poisson = validate({"estimator": {"model": "poisson"}})
+    p = calibrate(tmp_path / "iid.csv", tmp_path / "q", config=poisson, arl0=500.0,
+                  progress=False, now_ns=NOW, n_steps=20_000)
+    assert p["alert_rates"]["checked"] and p["alert_rates"]["model"] == "poisson"
+    assert p["unchecked"] == {}
+    poisson = validate({"estimator": {"model": "poisson"},
+                        "detectors": {"change_detector": "charts"}})
     p = calibrate(tmp_path / "iid.csv", tmp_path / "p", config=poisson, arl0=500.0,
                   progress=False, now_ns=NOW, n_steps=100_000)
     assert p["alert_rates"] is None and set(p["unchecked"]) == {"level", "slope"}

@@ -104,10 +104,17 @@ def print_calibration(s: dict, out) -> None:
     a = s.get("alert_rates")
     if a and a.get("checked"):
         h = a["health"]
+        if a.get("model") == "poisson":        # count paths (monitor.tuning.count_check)
+            health = (f"count health: {h['overdispersed']} of {h['series']} series "
+                      f"over-dispersed (median Pearson dispersion "
+                      f"{h['median_pearson_dispersion']:.2f}; drawn negative binomial), "
+                      f"{h['autocorrelated']} autocorrelated")
+        else:
+            health = (f"residual health: {h['autocorrelated']} of {h['series']} series "
+                      f"autocorrelated, {h['price_linked_variance']} with error variance linked "
+                      "to price")
         print(f"split detector: {a['observations']:,} resampled in-control observations "
-              f"({a['paths']} paths on the log's own prices); "
-              f"residual health: {h['autocorrelated']} of {h['series']} series autocorrelated, "
-              f"{h['price_linked_variance']} with error variance linked to price")
+              f"({a['paths']} paths on the log's own prices); " + health)
         for k in a["kinds"].values():
             tag = {"holds": "ok:   ", "breaks": "FLAG: ", "unsettled": "OPEN: "}[k["verdict"]]
             print(tag + k["message"])

@@ -47,6 +47,12 @@ This check asks whether the data at hand keep that promise.
    (what the design assumes, on the data's own prices): when the data's paths are over the
    design and the reference is not, the errors break it; when both are, the price pattern does.
 
+Under the Poisson model (``[estimator] model = "poisson"``, issue 13) steps 1, 2 and 4 are
+those of :mod:`monitor.tuning.count_check`: the paths are counts drawn from a Poisson
+regression fitted to each series on its own prices, controls and exposures, negative binomial
+where the counts are over-dispersed (Cameron & Trivedi 2013), and the reference draws Poisson
+counts on the same means; the count, the interval and the verdicts are the same.
+
 Verdict per kind (the band of issue 12: within +-25% of 10,000 / ARL0): ``breaks`` when the
 interval's lower end is above 1.25 times the design; ``holds`` when the estimate is at most
 1.25 times (``conservative`` beside it when the interval's upper end is below 0.75: fewer false
@@ -179,8 +185,25 @@ def verdict(r: dict) -> str:
     return "unsettled"
 
 
-def _message(kind: str, d: dict, ref: dict, arl0: float, health: dict) -> str:
+#: the words of the reference and of an error-caused break, per model
+_WORDS = {
+    "loglinear": ("the same paths with independent normal errors", "the errors cause it",
+                  "the errors cause most of it"),
+    "poisson": ("the same paths drawn as Poisson counts", "the counts' over-dispersion causes it",
+                "the counts' over-dispersion causes most of it"),
+}
+
+
+def _log_errors_text(health: dict) -> str:
+    return (f"({health['autocorrelated']} of {health['series']} series autocorrelated, "
+            f"median lag-1 autocorrelation {health['median_resid_ac1']:.2f}; "
+            f"{health['price_linked_variance']} with error variance linked to price)")
+
+
+def _message(kind: str, d: dict, ref: dict, arl0: float, errors: str,
+             model: str = "loglinear") -> str:
     what = kind
+    ref_words, cause, most = _WORDS[model]
     v = d["verdict"]
     head = (f"{what}: {d['rate_per_10k']:.3g} false alerts per 10,000 observations on the "
             f"data's in-control paths against {d['design_per_10k']:.3g} designed "
@@ -192,20 +215,16 @@ def _message(kind: str, d: dict, ref: dict, arl0: float, health: dict) -> str:
             tail += (" (conservative: fewer false alerts than designed, so changes take longer "
                      "to detect than the design says)")
         return f"{head}: {tail}"
-    errors = (f"({health['autocorrelated']} of {health['series']} series autocorrelated, "
-              f"median lag-1 autocorrelation {health['median_resid_ac1']:.2f}; "
-              f"{health['price_linked_variance']} with error variance linked to price)")
     if ref["ratio"] <= 1 + BAND:
-        why = f"the errors cause it {errors}"
+        why = f"{cause} {errors}"
     elif d["ratio"] > (1 + BAND) * ref["ratio"]:
         # the price pattern alone is over the band, and the errors raise it well beyond that
-        why = (f"the errors cause most of it {errors}, on top of the price pattern (prices "
+        why = (f"{most} {errors}, on top of the price pattern (prices "
                "held for weeks, flat stretches, prices moving with a control)")
     else:
         why = ("the price pattern (prices held for weeks, flat stretches, prices moving with a "
                "control) takes the statistic out of its design")
-    cause = (f"the same paths with independent normal errors give {ref['ratio']:.2f} times, so "
-             + why)
+    cause = f"{ref_words} give {ref['ratio']:.2f} times, so " + why
     if v == "unsettled":
         return (f"{head}: over the design but not settled by this budget; run the check with "
                 f"more observations (--bootstrap-obs); {cause}")
@@ -227,7 +246,15 @@ def check_alert_rates(rows, config, arl0: float, *, n_obs: int | None = None, se
 
     est = estimator_from_config(config)
     pipe = Pipeline.from_config(config, est)
-    models = series_models(rows, pipe)
+    model = getattr(est, "model", "loglinear")
+    counts_model = model == "poisson"
+    if counts_model:                 # parametric count paths (monitor.tuning.count_check)
+        from monitor.tuning.count_check import (count_errors_text, count_health, count_models,
+                                                count_path)
+
+        models = count_models(rows, pipe)
+    else:
+        models = series_models(rows, pipe)
     if not models:
         return {"checked": False, "reason": f"no series has {MIN_ROWS} observations past the "
                                             "estimator's warm-up to resample"}
@@ -239,7 +266,7 @@ def check_alert_rates(rows, config, arl0: float, *, n_obs: int | None = None, se
     lengths, done, paths = [], 0, 0
     order = []
     while done < budget:
-        Xs, yd, yr = [], [], []
+        Xs, yd, yr, offs = [], [], [], []
         group = 0
         while group < GROUP_ROWS // 2 and done < budget:
             if not order:
@@ -249,17 +276,24 @@ def check_alert_rates(rows, config, arl0: float, *, n_obs: int | None = None, se
             L = min(n, cap)
             a = int(rng.integers(0, n - L + 1))
             X = m["X"][a:a + L]
-            fit = X @ m["theta"]
-            us = sieve_path(m["phi"], m["w"], L, rng)
             Xs.append(X)
-            yd.append(fit + us * np.exp(0.5 * m["g"] * (X[:, 1] - m["xbar"])))
-            yr.append(fit + m["sd"] * rng.standard_normal(L))
+            if counts_model:
+                mu = m["mu"][a:a + L]
+                offs.append(m["offset"][a:a + L])
+                yd.append(count_path(mu, m["alpha"], rng))
+                yr.append(count_path(mu, 0.0, rng))
+            else:
+                fit = X @ m["theta"]
+                us = sieve_path(m["phi"], m["w"], L, rng)
+                yd.append(fit + us * np.exp(0.5 * m["g"] * (X[:, 1] - m["xbar"])))
+                yr.append(fit + m["sd"] * rng.standard_normal(L))
             lengths.append(L)
             group += L
             done += L
         k = len(Xs)
         sid = np.repeat(np.arange(2 * k), [x.shape[0] for x in Xs] * 2)
-        res = pipe.run(sid, np.concatenate(Xs + Xs), np.concatenate(yd + yr), n_series=2 * k)
+        res = pipe.run(sid, np.concatenate(Xs + Xs), np.concatenate(yd + yr), n_series=2 * k,
+                       offset=np.concatenate(offs + offs) if counts_model else None)
         ev = res.events
         ev = ev[(ev["action"] == "open") & ev["kind"].isin(KINDS)]
         for kind in KINDS:
@@ -271,13 +305,18 @@ def check_alert_rates(rows, config, arl0: float, *, n_obs: int | None = None, se
         bar.update(rows=group, done=done)
     bar.close()
     exposure = np.asarray(lengths, dtype=float)
-    hs = [m["health"] for m in models]
-    health = {"series": len(models),
-              "autocorrelated": sum("autocorrelated" in h["flags"] for h in hs),
-              "price_linked_variance": sum("price_linked_variance" in h["flags"] for h in hs),
-              "median_resid_ac1": float(np.nanmedian([h["resid_ac1"] for h in hs])),
-              "median_sd_ratio_per_price_sd": float(np.nanmedian(
-                  [h["sd_ratio_per_price_sd"] for h in hs]))}
+    if counts_model:
+        health = count_health(models)
+        errors = count_errors_text(health)
+    else:
+        hs = [m["health"] for m in models]
+        health = {"series": len(models),
+                  "autocorrelated": sum("autocorrelated" in h["flags"] for h in hs),
+                  "price_linked_variance": sum("price_linked_variance" in h["flags"] for h in hs),
+                  "median_resid_ac1": float(np.nanmedian([h["resid_ac1"] for h in hs])),
+                  "median_sd_ratio_per_price_sd": float(np.nanmedian(
+                      [h["sd_ratio_per_price_sd"] for h in hs]))}
+        errors = _log_errors_text(health)
     kinds = {}
     for kind in KINDS:
         d = alert_rates(np.concatenate(counts["data"][kind]), exposure, arl0)
@@ -285,12 +324,14 @@ def check_alert_rates(rows, config, arl0: float, *, n_obs: int | None = None, se
         d["verdict"] = verdict(d)
         d["flagged"] = d["verdict"] == "breaks"
         d["reference"] = ref
-        d["message"] = _message(kind, d, ref, arl0, health)
+        d["message"] = _message(kind, d, ref, arl0, errors, model)
         kinds[kind] = d
-    return {"checked": True, "detector": "split_glr", "arl0": arl0, "paths": paths,
-            "observations": int(exposure.sum()), "budget": budget, "path_cap": cap,
-            "series_used": len(models), "ar_orders": {
-                "median": float(np.median([m["phi"].size for m in models])),
-                "max": int(max(m["phi"].size for m in models))},
+    shape = ({"nb_alpha": {"median": health["median_nb_alpha"],
+                           "max": float(max(m["alpha"] for m in models))}} if counts_model else
+             {"ar_orders": {"median": float(np.median([m["phi"].size for m in models])),
+                            "max": int(max(m["phi"].size for m in models))}})
+    return {"checked": True, "detector": "split_glr", "model": model, "arl0": arl0,
+            "paths": paths, "observations": int(exposure.sum()), "budget": budget,
+            "path_cap": cap, "series_used": len(models), **shape,
             "median_path_length": float(np.median(exposure)), "health": health, "kinds": kinds,
             "flagged": any(v["flagged"] for v in kinds.values()), "seed": seed}

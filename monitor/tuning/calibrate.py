@@ -25,7 +25,9 @@
 With the split likelihood-ratio detector (the default) steps 2 and 3 are those of
 :mod:`monitor.tuning.alert_check`: its alerts per 10,000 observations of each kind on in-control
 paths resampled from the log, against 10,000 / ``arl0``, with a verdict per kind (calibration.json
-``alert_rates``). Models other than the log-log one are named as not checked.
+``alert_rates``); under the Poisson model its paths are counts drawn from the fitted model on
+the log's own prices (:mod:`monitor.tuning.count_check`). Other detectors are checked for the
+log-log model only; with another model they are named as not checked.
 
 Block length per series: ``max(2 m, ceil(n^(1/3)))``, capped at n / 2, where m is the first lag
 after which 5 sample autocorrelations in a row are inside ``+-2 / sqrt(n)`` (the first step of
@@ -202,16 +204,18 @@ def calibrate(log, out_dir, *, config: Config | None = None, arl0: float = 20000
     for signal, th in pipe.settings()["thresholds"].items():
         if th is None:
             continue
-        if th["chart"] in _OUT_OF_REACH:
+        if th["chart"] in _OUT_OF_REACH and getattr(est, "model", "") == "loglinear":
             kw = {k: v for k, v in th.items() if k in ("k", "lam")}
             charts[signal] = (th["chart"], th["threshold"], kw)
-        elif th["chart"] == "split_glr" and getattr(est, "model", "") == "loglinear":
+        elif th["chart"] == "split_glr" and getattr(est, "model", "") in ("loglinear",
+                                                                          "poisson"):
             split = True
         else:      # said, never skipped silently
             unchecked[signal] = (f"{signal}: the {th['chart']} detector with the "
                                  f"{getattr(est, 'model', '?')} model is not checked by this "
-                                 "bootstrap (it resamples log-log residuals); check it with a "
-                                 "truth file (elmon tune LOG --truth TRUTH)")
+                                 "bootstrap (it resamples log-log residuals; the count paths "
+                                 "check the split_glr detector); check it with a truth file "
+                                 "(elmon tune LOG --truth TRUTH)")
     alert_rates = None
     if split:
         from monitor.tuning.alert_check import check_alert_rates

@@ -53,7 +53,8 @@ def evaluate(rows: Rows, truth: pd.DataFrame, base: Config, setting: dict, horiz
         raise ConfigError("the controls cannot be part of the search space (they change the "
                           "design matrix); set them in the base config")
     pipe = Pipeline.from_config(cfg, est)
-    res = pipe.run(rows.sid, rows.X, rows.y, n_series=len(rows.names), ts=rows.ts)
+    res = pipe.run(rows.sid, rows.X, rows.y, n_series=len(rows.names), ts=rows.ts,
+                   offset=rows.offset)      # the Poisson model's log exposure (issue 13)
     return score(rows.sid, rows.ts, rows.names, opened_alerts(rows, res.events), truth, horizon,
                  partial=partial)
 
@@ -112,7 +113,10 @@ POOL_MIN_WORK = 5_000_000
 def _init_worker(folder: str, names: list[str], truth, base_data: dict, horizon: int) -> None:
     # copy-on-write maps: shared pages, and writable arrays (the compiled kernels' usual types)
     a = {k: np.load(Path(folder) / f"{k}.npy", mmap_mode="c") for k in ("sid", "X", "y", "ts")}
-    _WORKER.update(rows=Rows(a["sid"], a["X"], a["y"], a["ts"], names), truth=truth,
+    off = Path(folder) / "offset.npy"      # the Poisson model's log exposure, when it has one
+    a["offset"] = np.load(off, mmap_mode="c") if off.exists() else None
+    _WORKER.update(rows=Rows(a["sid"], a["X"], a["y"], a["ts"], names, offset=a["offset"]),
+                   truth=truth,
                    base=Config(base_data), horizon=horizon)
 
 
@@ -145,8 +149,9 @@ def evaluate_local(rows: Rows, truth, base: Config, settings: list[dict], horizo
         bar.close()
         return out
     with tempfile.TemporaryDirectory(prefix="elmon-tune-") as folder:
-        for k in ("sid", "X", "y", "ts"):
-            np.save(Path(folder) / f"{k}.npy", np.ascontiguousarray(getattr(rows, k)))
+        for k in ("sid", "X", "y", "ts", "offset"):
+            if getattr(rows, k) is not None:
+                np.save(Path(folder) / f"{k}.npy", np.ascontiguousarray(getattr(rows, k)))
         with ProcessPoolExecutor(workers, mp_context=get_context("spawn"), initializer=_init_worker,
                                  initargs=(folder, rows.names, truth, base.data, horizon)) as pool:
             for summary in pool.map(_evaluate_in_worker, settings):

@@ -9,7 +9,7 @@ import numpy as np
 
 from monitor.ingest.logio import column_names
 from monitor.replay.kernel import CarriedState, Setup, validate_chunk
-from monitor.rows.prepare import design_rows
+from monitor.rows.prepare import design_rows, offset_of
 from monitor.settings import Config, estimator_from_config
 
 
@@ -23,6 +23,8 @@ class Rows:
     ts: np.ndarray
     names: list[str]
     rejected: int = 0
+    #: log exposure per row (the Poisson model's ``[estimator] exposure``), else None
+    offset: np.ndarray | None = None
 
     @property
     def n(self) -> int:
@@ -47,15 +49,20 @@ def rows_from_frames(frames, setup: Setup) -> Rows:
         rejected += len(v.rejects)
         if len(v.good):
             X, y = design_rows(v.good, setup.est)
-            parts.append((sid, X, y, v.good["ts"].to_numpy(dtype=np.int64)))
+            off = offset_of(v.good, setup.est)
+            parts.append((sid, X, y, v.good["ts"].to_numpy(dtype=np.int64),
+                          np.zeros(len(y)) if off is None else off))
     k = len(setup.est.parameter_names)
     if parts:
-        sid, X, y, ts = (np.concatenate([p[i] for p in parts]) for i in range(4))
+        sid, X, y, ts, off = (np.concatenate([p[i] for p in parts]) for i in range(5))
         order = np.argsort(sid, kind="stable")     # chunks in order: each series stays in time order
-        sid, X, y, ts = sid[order], np.ascontiguousarray(X[order]), y[order], ts[order]
+        sid, X, y, ts, off = (sid[order], np.ascontiguousarray(X[order]), y[order], ts[order],
+                              off[order])
     else:
         sid, X, y, ts = np.zeros(0, np.int64), np.zeros((0, k)), np.zeros(0), np.zeros(0, np.int64)
-    return Rows(sid, X, y, ts, carried.names(), rejected)
+        off = np.zeros(0)
+    exposure = bool(getattr(setup.est, "exposure", ""))
+    return Rows(sid, X, y, ts, carried.names(), rejected, off if exposure else None)
 
 
 def load_rows(log, config: Config, chunk_rows: int | None = None, now_ns: int | None = None) -> Rows:
