@@ -8,6 +8,8 @@ series over the rows after the reset would (reference: a fresh store fed only th
 from __future__ import annotations
 
 import sqlite3
+import subprocess
+import sys
 
 import numpy as np
 import pandas as pd
@@ -19,6 +21,7 @@ from monitor.live.monitor import Monitor
 from monitor.live.service import Service, ingest_file
 from monitor.settings import validate
 from tests.conftest import DESIGNED
+from tests.service_helpers import wait_until
 
 N = 160          # hourly rows per series
 CUT = 100        # rows of each series in the first part
@@ -121,14 +124,82 @@ def test_the_reset_is_recorded_and_listed(runs, capsys):
     assert "x  by ops-tester: prices logged in cents" in out
 
 
-def test_reset_of_an_unknown_series_or_while_a_writer_runs_is_refused(tmp_path, capsys):
+def test_reset_of_an_unknown_series_is_refused_and_a_held_store_gets_a_request(tmp_path,
+                                                                              capsys):
     db = tmp_path / "s.sqlite"
     with Monitor(db, validate({"detectors": dict(DESIGNED)})) as mon:
         mon.observe("a", "2024-05-01T00:00:00Z", 2.0, 10.0)
-        assert main(["series", "reset", "a", "--why", "test", "--db", str(db)]) == 2
-        err = capsys.readouterr().err
-        assert "being processed by another elmon process" in err and "pid" in err
+        mon.observe("a", "2024-05-01T01:00:00Z", 2.1, 9.0)
+        held = mon.state_of("a").tobytes()
+        # the writer lock is held: the reset is recorded as a request, the state untouched
+        assert main(["series", "reset", "a", "--why", "test", "--db", str(db)]) == 0
+        out = capsys.readouterr().out
+        assert "requested" in out and "pid" in out
+        assert mon.state_of("a").tobytes() == held
+    from monitor.store.live import list_series_resets
+
+    assert list_series_resets(db)["applied_at"].isna().all()
+    # a monitor started later applies it before anything else
+    with Monitor(db, validate({"detectors": dict(DESIGNED)})) as mon:
+        assert mon.state_of("a").tobytes() == mon.pipeline.new_states(1)[0].tobytes()
+    assert list_series_resets(db)["applied_at"].notna().all()
     assert main(["series", "reset", "b", "--why", "test", "--db", str(db)]) == 2
     assert "no series 'b' in the store" in capsys.readouterr().err
     with pytest.raises(SystemExit):                       # --why is required
         main(["series", "reset", "a", "--db", str(db)])
+
+
+def test_a_running_service_applies_a_reset_made_by_another_process(tmp_path):
+    """The service runs on its scheduler; ``elmon series reset`` runs in another process while
+    it holds the store. The service applies the request while its source is quiet, and x then
+    continues exactly as a new series over the rows after the reset; y and z as if nothing
+    happened."""
+    df = _frame()
+    first, second = df[df["k"] < CUT], df[df["k"] >= CUT]
+    cfg = validate({"detectors": dict(DESIGNED), "store": {"path": "live.sqlite"},
+                    "service": {"poll_interval_s": 0.1, "delivery_interval_s": 60},
+                    "sources": {"feed": {"type": "csv", "path": "feed.csv"}}})
+    _write(first, tmp_path / "feed.csv")
+    db = tmp_path / "live.sqlite"
+    svc = Service(cfg, base=tmp_path)
+    try:
+        svc.start()
+        assert wait_until(lambda: _rows_read(db) == len(first), 30)
+        old = svc.monitor.state_of("x").tobytes()
+        proc = subprocess.run([sys.executable, "-m", "monitor", "series", "reset", "x", "--why",
+                               "prices logged in cents since row 80", "--who", "ops-tester",
+                               "--db", str(db)], capture_output=True, text=True, timeout=300)
+        assert proc.returncode == 0, proc.stderr
+        assert "requested" in proc.stdout
+        from monitor.store.live import list_series_resets
+
+        assert wait_until(lambda: list_series_resets(db)["applied_at"].notna().all(), 30)
+        fresh = svc.monitor.pipeline.new_states(1)[0].tobytes()
+        assert svc.monitor.state_of("x").tobytes() == fresh != old
+        assert mstore.load_checkpoints(db)["x"].state["pipeline"] is None
+        with open(tmp_path / "feed.csv", "a") as fh:
+            fh.write(second.drop(columns="k").to_csv(index=False, header=False))
+        assert wait_until(lambda: _rows_read(db) == len(df), 30)
+    finally:
+        svc.stop()
+        if svc.scheduler is not None:
+            svc.scheduler.shutdown(wait=True)
+        svc.close()
+    rec = list_series_resets(db)
+    assert list(rec["who"]) == ["ops-tester"] and rec["last_ts"].iloc[0] == "2024-05-04T07:00:00Z"
+    _write(second[second["series"] == "x"], tmp_path / "x2.csv")
+    ingest_file(tmp_path / "x2.csv", tmp_path / "fresh.sqlite", cfg, deliver=False)
+    after = _estimates(db, "x").iloc[SHIFT:].reset_index(drop=True)
+    pd.testing.assert_frame_equal(after, _estimates(tmp_path / "fresh.sqlite", "x"),
+                                  check_exact=True)
+    _write(df, tmp_path / "whole.csv")
+    ingest_file(tmp_path / "whole.csv", tmp_path / "plain.sqlite", cfg, deliver=False)
+    for name in ("y", "z"):
+        pd.testing.assert_frame_equal(_estimates(db, name),
+                                      _estimates(tmp_path / "plain.sqlite", name),
+                                      check_exact=True)
+
+
+def _rows_read(db) -> int:
+    with sqlite3.connect(db) as con:
+        return con.execute("SELECT coalesce(sum(rows_read), 0) FROM source_offsets").fetchone()[0]

@@ -11,19 +11,31 @@ RESET_EPILOG = """example:
 
 The series' estimator, detectors and recent prices (the unit check) start afresh at its next
 row, as for a new series; rows not newer than its newest stored time are still late or
-duplicates. Its stored history (observations, estimates, alerts, rejects) stays. Stop the
-service first: the store has one writer, and the command says which process holds it."""
+duplicates. Its stored history (observations, estimates, alerts, rejects) stays. While a
+service runs (it holds the store's writer lock) the reset is recorded as a request and the
+service applies it before its next batch (at the latest at its next poll); 'elmon series
+resets' shows it as pending until then."""
 
 
 def cmd_reset(args) -> int:
     from monitor.cli.store_cmd import who_or_login
     from monitor.store import Store
-    from monitor.store.live import release_writer_lock, reset_series, take_writer_lock
+    from monitor.store.live import (WriterBusy, release_writer_lock, request_series_reset,
+                                    reset_series, take_writer_lock)
 
+    who = who_or_login(args.who)
     with Store.open(args.db, create=False) as store:
-        lock = take_writer_lock(store.path)
         try:
-            rec = reset_series(store, args.name, who_or_login(args.who), args.why)
+            lock = take_writer_lock(store.path)
+        except WriterBusy as busy:
+            rec = request_series_reset(store, args.name, who, args.why)
+            print(f"elmon series: reset of {rec['series']!r} requested (record {rec['id']}, by "
+                  f"{rec['who']}: {rec['why']}); the process holding the store ({busy.holder}) "
+                  f"applies it before its next batch ('elmon series resets' shows it pending "
+                  f"until then)")
+            return 0
+        try:
+            rec = reset_series(store, args.name, who, args.why)
         finally:
             release_writer_lock(lock)
     print(f"elmon series: {rec['series']!r} reset (record {rec['id']}, by {rec['who']}: "
@@ -39,8 +51,9 @@ def cmd_resets(args) -> int:
         print("elmon series: no resets recorded")
         return 0
     for r in df.itertuples(index=False):
-        print(f"{r.id:>4}  {r.at}  {r.series}  by {r.who}: {r.why}  (newest row then: "
-              f"{r.last_ts or '-'})")
+        when = (f"newest row then: {r.last_ts or '-'}" if r.applied_at else
+                "pending: the running service applies it before its next batch")
+        print(f"{r.id:>4}  {r.at}  {r.series}  by {r.who}: {r.why}  ({when})")
     return 0
 
 

@@ -35,7 +35,8 @@ from monitor.live.batch import NAT
 from monitor.rows.isotime import format_ts
 from monitor.rows.validate import SeriesGate
 from monitor.store import from_json
-from monitor.store.live import checkpoint_texts, rows_read_by_source
+from monitor.store.live import (apply_series_reset, checkpoint_texts, pending_series_resets,
+                                rows_read_by_source)
 
 
 #: prefix of the binary form of a state vector in a checkpoint
@@ -199,6 +200,8 @@ def restore(store, pipeline) -> tuple[SeriesGate, SeriesBook]:
     del chunks
     _gate_arrays(gate, gate_names, gate_parts)
     book.rows_read = rows_read_by_source(store)
+    if not getattr(store, "readonly", False):
+        apply_pending_resets(store, book, gate, pipeline)   # requested while no one applied
     return gate, book
 
 
@@ -226,3 +229,34 @@ def checkpoints(book: SeriesBook, gate: SeriesGate, pipeline, touched: dict[str,
         out[s] = {"state": state, "last_ts": iso if last_obs != NAT else None,
                   "last_pos": {"source": source, "row": t["row"]}}
     return out
+
+
+def reset_in_memory(book: SeriesBook, gate: SeriesGate, pipeline, series: str) -> None:
+    """A series' memory as :func:`restore` builds it from a reset checkpoint
+    (:func:`monitor.store.live.fresh_state`): a new series' state vector, no updates and no
+    last status, the gate's recent prices and quantities cleared (its newest time kept)."""
+    if series in book.index:
+        book.states[book.index[series]] = pipeline.new_states(1)[0]
+    book.updates[series] = 0
+    book.last_status.pop(series, None)
+    if series in gate.index:
+        i = gate.index[series]
+        gate.ring[i] = 0.0
+        gate.ring_ts[i] = 0
+        gate.count[i] = 0
+        gate.qring[i] = 0.0
+        gate.qcount[i] = 0
+
+
+def apply_pending_resets(store, book: SeriesBook, gate: SeriesGate, pipeline) -> list[str]:
+    """Apply the reset requests of ``elmon series reset`` made while this process held the
+    writer lock (:func:`monitor.store.live.request_series_reset`): each in its own
+    transaction (checkpoint and request), then in memory. Called before every batch by the
+    service, and at every start; the caller makes sure no batch runs meanwhile. Returns the
+    series reset, in request order."""
+    done = []
+    for req in pending_series_resets(store):
+        apply_series_reset(store, req["id"], req["series"])
+        reset_in_memory(book, gate, pipeline, req["series"])
+        done.append(req["series"])
+    return done

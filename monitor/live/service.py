@@ -42,6 +42,7 @@ from monitor.ingest.bounds_file import BoundsFileWatch, bounds_file_path, read_b
 from monitor.ingest.factory import sources_from_config
 from monitor.ingest.logio import column_names
 from monitor.live import settings as service_config
+from monitor.live.checkpoints import apply_pending_resets
 from monitor.live.monitor import Monitor
 from monitor.live.sinks import deliver_due, sinks_from_config
 from monitor.sections import Config
@@ -110,6 +111,9 @@ class Service:
         for name in self.sources:
             self._last_rows.setdefault(name, started)
         self._errors: dict[str, str | None] = {}
+        #: held around each batch with the reset requests applied before it (source jobs run
+        #: in the scheduler's threads; a reset must not fall inside another source's batch)
+        self._batch_lock = threading.Lock()
         self.scheduler = None
         path = bounds_file_path(config, base)
         self._bounds_watch = BoundsFileWatch(path) if path is not None else None
@@ -155,6 +159,11 @@ class Service:
         src = self.sources[name]
         reports = []
         self.sync_bounds()
+        try:
+            with self._batch_lock:           # picked up even while the source is quiet
+                self.apply_resets()
+        except Exception as exc:
+            log.error("series resets not applied yet: %s", exc)
         while not self.stop_event.is_set():
             position = self._positions.get(name)
             try:
@@ -162,7 +171,9 @@ class Service:
                 if chunk is None:
                     self._set_error(name, src.kind, None)
                     break
-                rep = self.monitor.process_chunk(chunk, name, src.kind)
+                with self._batch_lock:
+                    self.apply_resets()
+                    rep = self.monitor.process_chunk(chunk, name, src.kind)
             except Exception as exc:  # a source problem is recorded, never fatal
                 msg = f"{type(exc).__name__}: {exc}"
                 if self._errors.get(name) != msg:
@@ -180,6 +191,18 @@ class Service:
             if chunk.position == position and not rep.rows:
                 break
         return reports
+
+    def apply_resets(self) -> list[str]:
+        """Apply the ``elmon series reset`` requests made since the last batch (the command
+        cannot take the writer lock this service holds, so it records a request): each
+        series starts afresh in memory and in its checkpoint before the next batch, and the
+        state it had is never written back. Returns the series reset."""
+        m = self.monitor
+        done = apply_pending_resets(m.store, m.book, m.gate, m.pipeline)
+        for series in done:
+            log.warning("series %s reset (elmon series reset): it starts afresh at its next "
+                        "row", series)
+        return done
 
     @property
     def source_errors(self) -> dict[str, str]:
@@ -335,6 +358,7 @@ def ingest_file(path, store, config: Config | None = None, batch_rows: int | Non
             chunk = src.read(position, rows_per_batch)
             if chunk is None:
                 break
+            apply_pending_resets(mon.store, mon.book, mon.gate, mon.pipeline)
             rep = mon.process_chunk(chunk, name, src.kind)
             out["batches"] += 1
             for key in ("rows", "accepted", "rejected", "zero_skipped"):

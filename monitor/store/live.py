@@ -74,14 +74,23 @@ def take_writer_lock(store_path):
         fh.seek(0)
         holder = describe_holder(fh.read(4096))
         fh.close()
-        raise StoreError(f"store {str(store_path)!r} is being processed by another elmon "
-                         f"process ({holder}); stop it first") from None
+        raise WriterBusy(f"store {str(store_path)!r} is being processed by another elmon "
+                         f"process ({holder}); stop it first", holder) from None
     fh.seek(0)
     fh.truncate()
     fh.write(json.dumps({"pid": os.getpid(), "host": socket.gethostname(),
                          "started": wall_ts(), "command": " ".join(sys.argv)[:500]}))
     fh.flush()
     return fh
+
+
+class WriterBusy(StoreError):
+    """The writer lock is held by another process; ``holder`` describes it
+    (:func:`describe_holder`)."""
+
+    def __init__(self, message: str, holder: str):
+        super().__init__(message)
+        self.holder = holder
 
 
 def describe_holder(text: str) -> str:
@@ -123,51 +132,109 @@ def reset_source(store: Store, source: str) -> bool:
     return cur.rowcount > 0
 
 
+def _checked_reset(store: Store, series: str, who: str, why: str) -> None:
+    if not str(why or "").strip() or not str(who or "").strip():
+        raise StoreError(f"reset of series {series!r}: give who and why (they are recorded)")
+    if store.scalar("SELECT count(*) FROM checkpoints WHERE series = ?", (series,)) == 0:
+        known = store.scalar("SELECT count(*) FROM checkpoints")
+        raise StoreError(f"no series {series!r} in the store ({known} series have state; "
+                         f"names are exact, e.g. as 'elmon status --json' lists them)")
+
+
+def fresh_state(state: dict | None) -> dict:
+    """The checkpoint state of a reset series made from its current one: a new series'
+    pipeline state (``null``) and gate, keeping only what keeps time order and duplicate
+    detection (the gate's and the series' newest times) and the zero-row count."""
+    state = state or {}
+    gate = state.get("gate") or {}
+    return {"pipeline": None,
+            "gate": {"last_ts": gate.get("last_ts"), "count": 0} if gate else None,
+            "updates": 0, "last_status": None,
+            "last_obs_ns": state.get("last_obs_ns"),
+            "zero_skipped": state.get("zero_skipped", 0)}
+
+
+def _apply_reset(store: Store, series: str, now: str) -> tuple[dict, dict]:
+    """Inside a transaction: replace the series' checkpoint state by :func:`fresh_state`;
+    returns the checkpoint row before (``state`` text, ``last_ts``) and the fresh state."""
+    before = store.rows("SELECT state, last_ts FROM checkpoints WHERE series = ?", (series,))[0]
+    fresh = fresh_state(from_json(before["state"]))
+    store.execute("UPDATE checkpoints SET state = ?, updated_at = ? WHERE series = ?",
+                  (json.dumps(fresh), now, series))
+    return before, fresh
+
+
 def reset_series(store: Store, series: str, who: str, why: str) -> dict:
     """Forget a series' estimator, detector and validation state; the caller holds the writer
-    lock (``elmon series reset``).
+    lock (``elmon series reset`` with no service running).
 
     The checkpoint keeps only what keeps time order and duplicate detection: the newest
     observation time (a row not newer than it is still late or a duplicate). The estimator,
     the detectors and the recent prices of the unit check start afresh at the next row, as for
     a new series. Observations, estimates, alerts and rejects stay stored. The reset is
-    recorded in ``series_resets`` with ``who``, ``why`` and the replaced checkpoint state.
+    recorded in ``series_resets`` with ``who``, ``why``, the replaced checkpoint state and
+    ``applied_at`` (now). While a service holds the writer lock use
+    :func:`request_series_reset` instead.
 
     Returns the ``series_resets`` row. Raises :class:`StoreError` for a series the store does
     not know, or an empty ``who`` / ``why``.
     """
-    if not str(why or "").strip() or not str(who or "").strip():
-        raise StoreError(f"reset of series {series!r}: give who and why (they are recorded)")
-    rows = store.rows("SELECT state, last_ts, last_pos FROM checkpoints WHERE series = ?",
-                      (series,))
-    if not rows:
-        known = store.scalar("SELECT count(*) FROM checkpoints")
-        raise StoreError(f"no series {series!r} in the store ({known} series have state; "
-                         f"names are exact, e.g. as 'elmon status --json' lists them)")
-    before = rows[0]
-    state = from_json(before["state"]) or {}
-    gate = state.get("gate") or {}
-    fresh = {"pipeline": None,                 # a new series' state at the next row
-             "gate": {"last_ts": gate.get("last_ts"), "count": 0} if gate else None,
-             "updates": 0, "last_status": None,
-             "last_obs_ns": state.get("last_obs_ns"),
-             "zero_skipped": state.get("zero_skipped", 0)}
+    _checked_reset(store, series, who, why)
     now = wall_ts()
     with store.atomic():
-        store.execute("UPDATE checkpoints SET state = ?, updated_at = ? WHERE series = ?",
-                      (json.dumps(fresh), now, series))
+        before, _ = _apply_reset(store, series, now)
         cur = store.execute("INSERT INTO series_resets (series, at, who, why, last_ts, "
-                            "before_state) VALUES (?, ?, ?, ?, ?, ?)",
+                            "before_state, applied_at) VALUES (?, ?, ?, ?, ?, ?, ?)",
                             (series, now, str(who), str(why), before["last_ts"],
-                             before["state"]))
+                             before["state"], now))
     return {"id": cur.lastrowid, "series": series, "at": now, "who": str(who), "why": str(why),
-            "last_ts": before["last_ts"]}
+            "last_ts": before["last_ts"], "applied_at": now}
+
+
+def request_series_reset(store: Store, series: str, who: str, why: str) -> dict:
+    """Record a reset for the process that holds the writer lock (a running service) to
+    apply before its next batch (:func:`pending_series_resets`, :func:`apply_series_reset`).
+
+    Takes no writer lock: it is one ``INSERT`` into ``series_resets`` with ``applied_at``
+    NULL, ordered with the service's batches by SQLite's write lock, like ``elmon bounds
+    set``. Checks like :func:`reset_series`. Returns the request row."""
+    _checked_reset(store, series, who, why)
+    now = wall_ts()
+    with store.atomic():
+        cur = store.execute("INSERT INTO series_resets (series, at, who, why) VALUES "
+                            "(?, ?, ?, ?)", (series, now, str(who), str(why)))
+    return {"id": cur.lastrowid, "series": series, "at": now, "who": str(who), "why": str(why),
+            "last_ts": None, "applied_at": None}
+
+
+def pending_series_resets(store: Store) -> list[dict]:
+    """Reset requests not applied yet (``id``, ``series``), oldest first; one indexed read,
+    cheap enough for every batch."""
+    return store.rows("SELECT id, series FROM series_resets WHERE applied_at IS NULL "
+                      "ORDER BY id")
+
+
+def apply_series_reset(store: Store, request_id: int, series: str) -> dict:
+    """Apply one reset request in one transaction: the series' checkpoint becomes
+    :func:`fresh_state` of it, the request gets ``applied_at``, ``last_ts`` and the replaced
+    ``before_state``. The caller (the writer) then resets the series in memory the same
+    way. Returns the fresh state (``{}`` when the series has no checkpoint any more)."""
+    now = wall_ts()
+    with store.atomic():
+        if store.scalar("SELECT count(*) FROM checkpoints WHERE series = ?", (series,)):
+            before, fresh = _apply_reset(store, series, now)
+        else:
+            before, fresh = {"state": None, "last_ts": None}, {}
+        store.execute("UPDATE series_resets SET applied_at = ?, last_ts = ?, before_state = ? "
+                      "WHERE id = ?", (now, before["last_ts"], before["state"],
+                                       int(request_id)))
+    return fresh
 
 
 @accepts_path(readonly=True)
 def list_series_resets(store: Store, series: str | None = None) -> pd.DataFrame:
     """Recorded series resets, newest first (``before_state`` left out)."""
-    sql = "SELECT id, series, at, who, why, last_ts FROM series_resets"
+    sql = "SELECT id, series, at, who, why, last_ts, applied_at FROM series_resets"
     params: tuple = ()
     if series is not None:
         sql += " WHERE series = ?"
