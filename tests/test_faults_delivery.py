@@ -226,3 +226,79 @@ def test_ack_and_resolve_from_the_cli_reach_the_sinks_of_the_opening(store, tmp_
         events = [(m["alert_id"], m["event"], m["who"]) for m in log_lines(p)]
         assert events == [(a, "opened", None), (b, "opened", None), (a, "acknowledged", "kim"),
                           (b, "resolved", "lee")]
+
+
+# ---------------------------------------------------------------- a send outliving its round
+
+def _slow_hook(answer_after_s: float, step_s: float):
+    """A real local HTTP server that counts every request it receives, then answers 200 one
+    byte at a time, ``step_s`` apart (so the client's socket timeout never fires), finishing
+    ``answer_after_s`` after the request. Returns ``(server, count list, url)``."""
+    import http.server
+
+    got = []
+
+    class Handler(http.server.BaseHTTPRequestHandler):
+        def do_POST(self):
+            body = self.rfile.read(int(self.headers["Content-Length"]))
+            got.append(json.loads(body)["delivery_id"])
+            answer = b"HTTP/1.1 200 OK\r\nContent-Length: 0\r\nConnection: close\r\n\r\n"
+            pause = threading.Event()
+            per = max(step_s, answer_after_s / len(answer))
+            for i in range(len(answer)):
+                pause.wait(per)
+                self.wfile.write(answer[i:i + 1])
+                self.wfile.flush()
+            self.close_connection = True
+
+        def log_message(self, *args):
+            pass
+
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    return server, got, f"http://127.0.0.1:{server.server_address[1]}/hook"
+
+
+def test_a_send_outliving_twice_its_timeout_is_delivered_once(store, tmp_path):
+    """The webhook (timeout 0.4 s) answers 200 after 2 s, more than twice its timeout: the
+    round stops waiting, a second round and a second process's sink (another object: the
+    in-process busy check cannot see it) find the row claimed, the late success is recorded
+    by the sending thread, and a later round sends nothing: the server counts one request."""
+    server, got, url = _slow_hook(answer_after_s=2.0, step_s=0.05)
+    try:
+        open_alerts(store, ["ops"], 1)
+        first = mk.deliver_due(store, {"ops": mk.WebhookSink(url, timeout=0.4)}, now=at(1),
+                               grace_s=0.0)
+        assert first == {"delivered": 0, "retrying": 0, "failed": 0}   # still sending
+        assert got == [1]
+        other = ms.Store.open(store.path)          # another writer connection
+        try:
+            again = mk.deliver_due(other, {"ops": mk.WebhookSink(url, timeout=0.4)},
+                                   now=at(2), grace_s=0.0)
+        finally:
+            other.close()
+        assert again == {"delivered": 0, "retrying": 0, "failed": 0}
+        wait_for(lambda: ms.list_outbox(store)["status"].tolist() == ["delivered"],
+                 "the late success recorded")
+        later = mk.deliver_due(store, {"ops": mk.WebhookSink(url, timeout=0.4)}, now=at(3),
+                               grace_s=0.0)
+        assert later == {"delivered": 0, "retrying": 0, "failed": 0}
+        row = ms.list_outbox(store).iloc[0]
+        assert row["attempts"] == 1 and row["last_error"] is None
+        assert got == [1]                          # one delivery reached the server
+    finally:
+        server.shutdown()
+        server.server_close()
+
+
+def test_an_abandoned_claim_runs_out_and_the_row_is_sent_again(store):
+    """A claim left by a process that died (never recorded) runs out after its lease: the
+    row is due again (at least once)."""
+    from monitor.store.outbox import claim_deliveries, due_deliveries
+
+    open_alerts(store, ["log"], 1)
+    (row,) = due_deliveries(store, at(1), 10)
+    assert claim_deliveries(store, [row["id"]], at(1), at(1 + mk.LEASE_MIN_S)) == [row["id"]]
+    assert claim_deliveries(store, [row["id"]], at(2), at(500)) == []      # taken
+    assert due_deliveries(store, at(2), 10) == []
+    assert [r["id"] for r in due_deliveries(store, at(1 + mk.LEASE_MIN_S), 10)] == [row["id"]]

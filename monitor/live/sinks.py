@@ -80,7 +80,8 @@ from monitor.live.message import (CAUTION, DeliveryError, Sink, encode, env_valu
                                   render_text, sign)
 from monitor.store.codec import parse_ts, wall_ts
 from monitor.store.core import Store, accepts_path
-from monitor.store.outbox import due_deliveries, record_delivered, record_failure
+from monitor.store.outbox import (claim_deliveries, due_deliveries, release_claims,
+                                  record_delivered, record_failure)
 
 
 log = logging.getLogger(__name__)
@@ -248,58 +249,132 @@ def _retry_delay(attempts: int, backoff: float, max_backoff: float) -> float:
 _BUSY: dict[int, threading.Thread] = {}
 _BUSY_LOCK = threading.Lock()
 
+#: shortest claim (lease) on an outbox row while it is being sent, seconds
+LEASE_MIN_S = 300.0
 
-def _send_all(name: str, sink: Sink | None, rows: list, now_s: str, out: queue.Queue) -> None:
+
+def lease_seconds(sink) -> float:
+    """How long an attempt claims its rows: ``max(LEASE_MIN_S, 20 * timeout)``. A send that
+    is still running is never raced by another round or process within it; a claim left by a
+    process that died runs out after it, and the row is sent again (at least once)."""
+    return max(LEASE_MIN_S, 20.0 * float(getattr(sink, "timeout", 10.0) or 10.0))
+
+
+class _Job:
+    """One sink's sending thread in one round. While the round waits for it, outcomes go
+    through the round's queue; once the round stops waiting (``abandon``), the thread records
+    its outcomes itself, however late, so a late success is recorded and never sent again."""
+
+    def __init__(self, name: str, record, release):
+        self.name, self.record, self.release = name, record, release
+        self.lock = threading.Lock()
+        self.abandoned = False
+
+    def abandon(self) -> None:
+        with self.lock:
+            self.abandoned = True
+
+    def outcome(self, out: queue.Queue, row, error) -> None:
+        with self.lock:
+            if not self.abandoned:
+                out.put((row, error))
+                return
+        try:
+            self.record(row, error, wall_ts())
+            log.warning("sink %s: delivery %s finished after the round stopped waiting; "
+                        "recorded as %s", self.name, row["id"],
+                        "delivered" if error is None else "failed")
+        except Exception as exc:   # e.g. the store was closed: the lease runs out, sent again
+            log.error("sink %s: late outcome of delivery %s not recorded: %s", self.name,
+                      row["id"], exc)
+
+    def finished(self, out: queue.Queue, unsent: list[int]) -> None:
+        with self.lock:
+            if not self.abandoned:
+                out.put((self.name, ("done", unsent)))
+                return
+        try:
+            self.release(unsent)
+        except Exception as exc:
+            log.error("sink %s: claims not released: %s", self.name, exc)
+
+
+def _send_all(job: _Job, sink: Sink | None, rows: list, now_s: str, out: queue.Queue) -> None:
     """Thread body: send ``rows`` to one sink in order; stop at its first failure (the rest
-    wait for the next round). Each outcome goes to ``out`` as ``(row, error or None)``."""
+    wait for the next round: their claims are released). Each outcome goes to
+    :meth:`_Job.outcome`."""
+    done = 0
     try:
         if sink is None:              # nothing to wait for: every row fails at once
             for row in rows:
-                out.put((row, f"DeliveryError: no sink named {name!r} is configured"))
+                job.outcome(out, row, f"DeliveryError: no sink named {job.name!r} is configured")
+                done += 1
             return
         for row in rows:
             message = {**json.loads(row["payload"]), "delivery_id": row["id"], "sent_at": now_s}
             try:
                 sink.send(message)
             except Exception as exc:  # any failure of a sink is recorded and retried
-                out.put((row, f"{type(exc).__name__}: {exc}"[:1000]))
+                done += 1
+                job.outcome(out, row, f"{type(exc).__name__}: {exc}"[:1000])
                 return
-            out.put((row, None))
+            done += 1
+            job.outcome(out, row, None)
     finally:
-        out.put((name, "done"))
+        job.finished(out, [r["id"] for r in rows[done:]])
 
 
 @accepts_path(readonly=False)
 def deliver_due(store: Store, sinks: Mapping[str, Sink], now: Any = None, max_attempts: int = 8,
-                backoff: float = 30.0, max_backoff: float = 3600.0, limit: int = 500) -> dict:
+                backoff: float = 30.0, max_backoff: float = 3600.0, limit: int = 500,
+                grace_s: float = 5.0) -> dict:
     """Send the outbox rows that are due (oldest first per sink) and record each outcome.
 
-    A row is due when ``status = 'pending'`` and ``next_attempt_at <= now``. Each sink sends
+    A row is due when ``status = 'pending'``, ``next_attempt_at <= now`` and it is not
+    claimed. Before sending, the round claims its rows (``outbox.claimed_until``, for
+    :func:`lease_seconds` of the sink): no other round or process takes a claimed row, so a
+    send that outlives the round's patience is never raced by a second copy. Each sink sends
     its rows in its own thread, so a slow or hung sink delays no other; a sink stops at its
-    first failure in a round (its later rows stay due for the next round, unchanged), and a
-    sink whose thread from an earlier round is still sending is skipped. Success sets
-    ``delivered``; failure (an exception from the sink, or no sink of that name in ``sinks``)
-    adds an attempt, stores the error and schedules the next try after
+    first failure in a round (its later rows are released unchanged, due for the next
+    round), and a sink whose thread from an earlier round is still sending is skipped.
+    Success sets ``delivered``; failure (an exception from the sink, or no sink of that name
+    in ``sinks``) adds an attempt, stores the error and schedules the next try after
     ``min(max_backoff, backoff * 2**(attempts - 1))`` seconds; the ``max_attempts``-th failure
     sets ``failed`` (kept, shown by ``elmon status``, put back by ``elmon deliveries requeue``
-    through :func:`monitor.store.outbox.requeue_failed`). Each outcome is committed by this
-    thread as it arrives, outside any network call. The round waits for a sink at most
-    ``2 * timeout + 5`` seconds per row it is sending, then leaves it running (its outcome is
-    then not recorded, so that message is sent again in a later round: at least once).
+    through :func:`monitor.store.outbox.requeue_failed`). Each outcome is committed as it
+    arrives, outside any network call. The round waits for a sink at most
+    ``2 * timeout + grace_s`` seconds per row it is sending, then leaves it running: the
+    thread then records its own outcome when the send returns (a late success is
+    ``delivered``, not sent again). A process killed mid-send leaves the claim, which runs
+    out: that message is sent again (at least once; receivers drop repeats by
+    ``delivery_id``).
 
     Returns
     -------
     dict
-        Counts ``delivered``, ``retrying``, ``failed``.
+        Counts ``delivered``, ``retrying``, ``failed`` (outcomes recorded by this round).
     """
     now_s = wall_ts(now)
     due = due_deliveries(store, now_s, limit)
     counts = {"delivered": 0, "retrying": 0, "failed": 0}
+
+    def record(row, error, when_s) -> str:
+        if error is None:
+            record_delivered(store, row["id"], when_s)
+            return "delivered"
+        attempts = row["attempts"] + 1
+        status = "failed" if attempts >= max_attempts else "pending"
+        later = wall_ts(parse_ts(when_s) + pd.Timedelta(
+            seconds=_retry_delay(attempts, backoff, max_backoff)))
+        record_failure(store, row["id"], attempts, status, later, error)
+        return "failed" if status == "failed" else "retrying"
+
     by_sink: dict[str, list] = {}
     for row in due:
         by_sink.setdefault(row["sink"], []).append(row)
     out: queue.Queue = queue.Queue()
     running: dict[str, float] = {}
+    jobs: dict[str, _Job] = {}
     with _BUSY_LOCK:
         for name, rows in by_sink.items():
             sink = sinks.get(name)
@@ -309,36 +384,44 @@ def deliver_due(store: Store, sinks: Mapping[str, Sink], now: Any = None, max_at
                 log.warning("sink %s is still sending from an earlier round; its %d due "
                             "message(s) wait", name, len(rows))
                 continue
-            thread = threading.Thread(target=_send_all, args=(name, sink, rows, now_s, out),
+            until = wall_ts(parse_ts(now_s) + pd.Timedelta(seconds=lease_seconds(sink)))
+            claimed = set(claim_deliveries(store, [r["id"] for r in rows], now_s, until))
+            rows = [r for r in rows if r["id"] in claimed]
+            if not rows:
+                continue
+            job = jobs[name] = _Job(name, record, lambda ids: release_claims(store, ids))
+            thread = threading.Thread(target=_send_all, args=(job, sink, rows, now_s, out),
                                       name=f"elmon-sink-{name}", daemon=True)
             _BUSY[key] = thread
             thread.start()
-            running[name] = float(getattr(sink, "timeout", 10.0) or 10.0) * 2 + 5
+            running[name] = float(getattr(sink, "timeout", 10.0) or 10.0) * 2 + float(grace_s)
     deadline = {name: time.monotonic() + wait for name, wait in running.items()}
+
+    def handle(row, error) -> None:
+        if isinstance(error, tuple):                  # ("done", ids never attempted)
+            running.pop(row, None)
+            release_claims(store, error[1])
+            return
+        name = row["sink"]
+        if name in running:
+            deadline[name] = time.monotonic() + running[name]
+        counts[record(row, error, now_s)] += 1
+
     while running:
         try:
             row, error = out.get(timeout=max(0.01, min(deadline[n] for n in running)
                                              - time.monotonic()))
         except queue.Empty:
             for name in [n for n in running if deadline[n] <= time.monotonic()]:
-                log.error("sink %s did not answer within its time; left running, its "
-                          "messages wait", name)
+                log.error("sink %s did not answer within its time; left running, it records "
+                          "its outcome when the send returns", name)
+                jobs[name].abandon()
                 del running[name]
             continue
-        if error == "done":
-            running.pop(row, None)
-            continue
-        name = row["sink"]
-        if name in running:
-            deadline[name] = time.monotonic() + running[name]
-        if error is None:
-            record_delivered(store, row["id"], now_s)
-            counts["delivered"] += 1
-            continue
-        attempts = row["attempts"] + 1
-        status = "failed" if attempts >= max_attempts else "pending"
-        later = wall_ts(parse_ts(now_s) + pd.Timedelta(
-            seconds=_retry_delay(attempts, backoff, max_backoff)))
-        record_failure(store, row["id"], attempts, status, later, error)
-        counts["failed" if status == "failed" else "retrying"] += 1
+        handle(row, error)
+    while True:                  # outcomes queued before a sink was abandoned
+        try:
+            handle(*out.get_nowait())
+        except queue.Empty:
+            break
     return counts

@@ -14,11 +14,36 @@ from monitor.store.core import Store, accepts_path
 
 
 def due_deliveries(store: Store, now_s: str, limit: int) -> list:
-    """Outbox rows with ``status = 'pending'`` and ``next_attempt_at <= now_s``, oldest first:
-    ``id, alert_id, event, sink, payload, attempts``."""
+    """Outbox rows with ``status = 'pending'``, ``next_attempt_at <= now_s`` and no claim
+    running past ``now_s``, oldest first: ``id, alert_id, event, sink, payload, attempts``."""
     return store.rows("SELECT id, alert_id, event, sink, payload, attempts FROM outbox WHERE "
-                      "status = 'pending' AND next_attempt_at <= ? ORDER BY id LIMIT ?",
-                      (now_s, int(limit)))
+                      "status = 'pending' AND next_attempt_at <= ? AND (claimed_until IS NULL "
+                      "OR claimed_until <= ?) ORDER BY id LIMIT ?", (now_s, now_s, int(limit)))
+
+
+def claim_deliveries(store: Store, ids: list[int], now_s: str, until_s: str) -> list[int]:
+    """Claim outbox rows for one delivery attempt until ``until_s`` (a lease, in one
+    transaction): only rows still pending and unclaimed at ``now_s`` are taken, so a row that
+    another round or process claimed meanwhile is not sent twice. Returns the ids claimed."""
+    got = []
+    with store.atomic():
+        for i in ids:
+            cur = store.execute("UPDATE outbox SET claimed_until = ? WHERE id = ? AND status = "
+                                "'pending' AND (claimed_until IS NULL OR claimed_until <= ?)",
+                                (until_s, int(i), now_s))
+            if cur.rowcount == 1:
+                got.append(int(i))
+    return got
+
+
+def release_claims(store: Store, ids: list[int]) -> None:
+    """End the claim of rows that were not attempted (their sink stopped at an earlier row):
+    they are due again at once, unchanged."""
+    if not ids:
+        return
+    with store.atomic():
+        store.execute(f"UPDATE outbox SET claimed_until = NULL WHERE id IN "
+                      f"({', '.join('?' * len(ids))})", [int(i) for i in ids])
 
 
 def record_failure(store: Store, delivery_id: int, attempts: int, status: str, next_at: str,
@@ -27,14 +52,16 @@ def record_failure(store: Store, delivery_id: int, attempts: int, status: str, n
     the error text."""
     with store.atomic():
         store.execute("UPDATE outbox SET attempts = ?, status = ?, next_attempt_at = ?,"
-                      " last_error = ? WHERE id = ?", (attempts, status, next_at, error, delivery_id))
+                      " last_error = ?, claimed_until = NULL WHERE id = ?",
+                      (attempts, status, next_at, error, delivery_id))
 
 
 def record_delivered(store: Store, delivery_id: int, now_s: str) -> None:
     """A delivered row: one more attempt, ``delivered`` at ``now_s``, no error."""
     with store.atomic():
         store.execute("UPDATE outbox SET attempts = attempts + 1, status = 'delivered', "
-                      "delivered_at = ?, last_error = NULL WHERE id = ?", (now_s, delivery_id))
+                      "delivered_at = ?, last_error = NULL, claimed_until = NULL WHERE id = ?",
+                      (now_s, delivery_id))
 
 
 @accepts_path(readonly=False)
@@ -43,8 +70,8 @@ def requeue_failed(store: Store, now: Any = None, ids: Iterable[int] | None = No
     """Put ``failed`` outbox rows back to ``pending``, due at ``now``, with their attempts
     reset; returns how many. ``ids`` / ``sink`` limit it to those rows / that sink. The last
     error is kept until the next try replaces it."""
-    sql, params = ("UPDATE outbox SET status = 'pending', attempts = 0, next_attempt_at = ? "
-                   "WHERE status = 'failed'"), [wall_ts(now)]
+    sql, params = ("UPDATE outbox SET status = 'pending', attempts = 0, next_attempt_at = ?, "
+                   "claimed_until = NULL WHERE status = 'failed'"), [wall_ts(now)]
     if sink is not None:
         sql += " AND sink = ?"
         params.append(str(sink))
