@@ -286,11 +286,23 @@ def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_b
                                                     delimiter)
         return frame, rows, rejects, n_lines, end, list(names)
     # the chunk ends just after the header line; the lines after it follow its order
+    start, cut, reject, after = header_split(body, k, names, rows_before, delimiter)
+    frame, rows, rejects, _ = parse_lines(names, canon, body[:start], rows_before + 1,
+                                          delimiter)
+    rejects = pd.concat([rejects, pd.DataFrame([reject], columns=REJECT_COLUMNS)],
+                        ignore_index=True)
+    return frame, rows, rejects, k + 1, offset + cut, after
+
+
+def header_split(body: bytes, k: int, names: list[str], rows_before: int,
+                 delimiter: str = ","):
+    """Line ``k`` of ``body`` repeats the header (:func:`header_line`): returns ``(start,
+    cut, reject, names_after)``: the byte offsets of that line and just after it, its reject
+    (field ``header``, row ``rows_before + k + 1``) and the column order of the lines after
+    it (``names`` when the order is unchanged)."""
     nl = np.flatnonzero(np.frombuffer(body, dtype=np.uint8) == 10)
     start = int(nl[k - 1]) + 1 if k else 0
     cut = int(nl[k]) + 1 if k < nl.size else len(body)
-    frame, rows, rejects, _ = parse_lines(names, canon, body[:start], rows_before + 1,
-                                          delimiter)
     text = _decode(body[start:cut].rstrip(b"\n"))
     new = _fields(text, delimiter)
     same = new == [n.strip() for n in names]
@@ -298,11 +310,40 @@ def read_csv_chunk(path, names: list[str], canon: list[str], offset: int, rows_b
            "order is unchanged" if same else
            f"it is a header line with another column order (rule: the header is the first "
            f"line only); the lines after it are read as {new}, not {list(names)}")
-    row = rows_before + k + 1
-    reject = {**_line_reject(row, text, why), "field": "header"}
-    rejects = pd.concat([rejects, pd.DataFrame([reject], columns=REJECT_COLUMNS)],
-                        ignore_index=True)
-    return frame, rows, rejects, k + 1, offset + cut, list(names) if same else new
+    reject = {**_line_reject(rows_before + k + 1, text, why), "field": "header"}
+    return start, cut, reject, list(names) if same else new
+
+
+def parse_lines_with_headers(names: list[str], columns, body: bytes, first_row: int,
+                             delimiter: str = ","):
+    """:func:`parse_lines` over a body that may repeat the header line (concatenated
+    exports): each such line is a reject and the lines after it are read in its column
+    order, exactly as :func:`read_csv_chunk` does chunk by chunk. ``columns`` maps names to
+    the canonical ones (:func:`monitor.ingest.base.canonical_names`). Returns ``(frame, rows,
+    rejects, n_lines, names_after)``."""
+    from monitor.ingest.base import canonical_names
+
+    frames, rows, rejects, n = [], [], [], 0
+    names = list(names)
+    while True:
+        k = header_line(body, names, delimiter)
+        if k is None:
+            f, r, rej, m = parse_lines(names, canonical_names(names, columns), body,
+                                       first_row + n, delimiter)
+            frames.append(f), rows.append(r), rejects.append(rej)
+            n += m
+            break
+        start, cut, reject, after = header_split(body, k, names, first_row + n - 1, delimiter)
+        f, r, rej, _ = parse_lines(names, canonical_names(names, columns), body[:start],
+                                   first_row + n, delimiter)
+        frames.append(f), rows.append(r)
+        rejects += [rej, pd.DataFrame([reject], columns=REJECT_COLUMNS)]
+        n += k + 1
+        names, body = after, body[cut:]
+    frame = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
+    rej = [x for x in rejects if len(x)]
+    return (frame, np.concatenate(rows), pd.concat(rej, ignore_index=True) if rej else
+            rejects[0], n, names)
 
 
 def _fields(text: str, delimiter: str = ",") -> list[str]:

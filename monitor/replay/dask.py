@@ -33,10 +33,10 @@ import pandas as pd
 import pyarrow.parquet as pq
 
 from monitor.errors import ConfigError
-from monitor.ingest.base import canonical_names
 from monitor.ingest.chunks import (DEFAULT_BLOCK_BYTES, Block, canonical_frame, csv_blocks,
                                    csv_header, mean_line_bytes)
-from monitor.ingest.csv_text import file_delimiter, parse_lines, read_header
+from monitor.ingest.csv_text import (file_delimiter, header_line, header_split,
+                                     parse_lines_with_headers, read_header)
 from monitor.ingest.logio import (check_file, column_names, log_format, stated_delimiter,
                                   table_to_frame)
 from monitor.progress import Progress
@@ -92,14 +92,51 @@ def log_blocks(log, chunk_rows: int | None, whole: bool) -> list:
     return [("csv", b) for b in csv_blocks(p, size)]
 
 
-def read_split(log: str, block, columns: dict, npartitions: int):
+def block_body(log: str, block) -> bytes:
+    with open(log, "rb") as fh:
+        fh.seek(block.start)
+        return fh.read(block.stop - block.start)
+
+
+def last_header(log: str, block, columns: dict):
+    """Worker task: the column order of the last line in a CSV block that repeats the header
+    (the names in any order, :func:`monitor.ingest.csv_text.header_line`), or ``None``. The
+    driver carries it to the blocks after (:func:`names_at_blocks`), so every block is read
+    in the column order in force where it starts, as the local reader does."""
+    kind, b = block
+    if kind != "csv":
+        return None
+    delimiter = file_delimiter(log, stated_delimiter(columns))
+    names, _ = read_header(log, str(log), final=True, delimiter=delimiter)
+    body, found = block_body(log, b), None
+    while True:
+        k = header_line(body, names, delimiter)
+        if k is None:
+            return found
+        _, cut, _, after = header_split(body, k, names, 0, delimiter)
+        found, names, body = after, after, body[cut:]
+
+
+def names_at_blocks(first: list[str] | None, found: list) -> list:
+    """The column order in force at the start of each block: the file's header, then the
+    last header line repeated in the blocks before (``found[i]`` of block i, or ``None``)."""
+    out, names = [], first
+    for f in found:
+        out.append(names)
+        names = f if f is not None else names
+    return out
+
+
+def read_split(log: str, block, columns: dict, npartitions: int, names: list | None = None):
     """Worker task: read one block and split it by series partition.
 
     Returns ``(n_rows, pieces, line_rejects)``; piece p holds the block's rows of partition p,
     in file order, with their row number within the block - 1 in column ``_pos``. A CSV block
-    is split by the one line reader (:func:`monitor.ingest.csv_text.parse_lines`): ``n_rows``
-    counts its lines (blank ones too, as row numbers do) and ``line_rejects`` are the lines
-    it could not split, numbered within the block.
+    is split by the one line reader (:func:`monitor.ingest.csv_text.parse_lines_with_headers`)
+    in the column order ``names`` in force at its start (default: the file's header): a line
+    repeating the header is a reject and the lines after it follow its order; ``n_rows``
+    counts its lines (blank ones and header lines too, as row numbers do) and
+    ``line_rejects`` are the lines it could not split, numbered within the block.
     """
     kind, b = block
     line_rejects = None
@@ -111,12 +148,10 @@ def read_split(log: str, block, columns: dict, npartitions: int):
         pos = np.arange(n, dtype=np.int64)
     else:
         delimiter = file_delimiter(log, stated_delimiter(columns))   # stated, else sniffed
-        names, _ = read_header(log, str(log), final=True, delimiter=delimiter)
-        with open(log, "rb") as fh:
-            fh.seek(b.start)
-            body = fh.read(b.stop - b.start)
-        frame, rows, line_rejects, n = parse_lines(names, canonical_names(names, columns), body, 1,
-                                                   delimiter)
+        if names is None:
+            names, _ = read_header(log, str(log), final=True, delimiter=delimiter)
+        frame, rows, line_rejects, n, _ = parse_lines_with_headers(
+            names, dict(columns or {}), block_body(log, b), 1, delimiter)
         pos = rows - 1
     if "series" in frame.columns:
         part = partition_of(frame["series"], npartitions)
@@ -189,7 +224,11 @@ def replay_partitions(log, config, setup, acc, truth, horizon, scheduler, progre
     t0 = time.perf_counter()
     with dask_client(scheduler) as client:
         nparts = int(npartitions or 2 * max(1, len(client.nthreads())))
-        splits = [client.submit(read_split, log, b, columns, nparts, pure=False) for b in blocks]
+        found = client.gather([client.submit(last_header, log, b, columns, pure=False)
+                               for b in blocks])
+        starts = names_at_blocks(None, found)
+        splits = [client.submit(read_split, log, b, columns, nparts, names, pure=False)
+                  for b, names in zip(blocks, starts)]
         counts = client.gather([client.submit(split_rows, s) for s in splits])
         offsets = np.r_[0, np.cumsum(counts)[:-1]].astype(int).tolist()
         bar = progress if isinstance(progress, Progress) else \
