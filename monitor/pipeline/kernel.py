@@ -185,17 +185,17 @@ def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, b
 
 
 def _detect_split(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,
-                  lp, skind, sp, gp, work):
+                  lp, skind, sp, gp):
     """The split GLR (slope and level kinds from the same sums) on every row past warm-up."""
     fl = 0
     fs = 0
     if not warm:
-        fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp, work)
+        fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp)
     return np.nan, fl, fs
 
 
 def _detect_charts(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,
-                   lp, skind, sp, gp, work):
+                   lp, skind, sp, gp):
     """The previous charts: the slope statistic d, the level chart on the standardized
     innovation, the slope chart on d (informative rows only), with their episode trackers."""
     d = slope_step(st, lay[L_SLOPE], xj[1], adjusted_response(st, xj, yj, k), sd, st[K.I_PAUSED],
@@ -209,13 +209,13 @@ def _detect_charts(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm,
 
 @compile_time_choice({True: _detect_split, False: _detect_charts})
 def detect(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind, lp,
-           skind, sp, gp, work):
+           skind, sp, gp):
     """The change detector family's step on one row; returns ``(d, level_flags,
     slope_flags)``. ``split`` is a constant: only that family is compiled (as a function of
     its own: it is most of the loop's code)."""
     return (_detect_split if split else _detect_charts)(
         split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind, lp, skind, sp,
-        gp, work)
+        gp)
 
 
 @njit(cache=True, _nrt=False)
@@ -291,7 +291,7 @@ def _row(form, split, a, st, o, xj, yj, j, sj, k, t, ne):
     # paused, b and the slope statistic are frozen; feeding them again is not new evidence)
     inf = ok and st[K.I_PAUSED] == 0.0
     d, fl, fs = detect(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr,
-                       lkind, lp, skind, sp, gp, rep)
+                       lkind, lp, skind, sp, gp)
     # bounds, sign flip, low variation
     ba, bra = lay[L_BOUNDS], lay[L_BRUN]
     if inf and bon[sj]:
