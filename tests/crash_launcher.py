@@ -4,7 +4,8 @@ Run as ``python tests/crash_launcher.py CONFIG OUT.json ROUNDS SEED LO HI`` by
 tests/test_crash_resume.py. The launcher imports elmon once and warms the compiled kernels,
 then for each round forks a child process that builds a fresh :class:`monitor.live.service.Service`
 from the store (nothing but imported modules is inherited: no connection, no thread, no
-state) and runs it; after a random delay in [LO, HI] seconds the child is killed with SIGKILL.
+state) and runs it; after a random delay in [LO, HI] seconds the child is killed with SIGKILL
+(every other round with rows to read: once it has committed a batch, then within LO seconds).
 Forking saves the interpreter start-up (seconds on this machine) that an exec would pay in each
 of the rounds; the rounds that start the ``elmon`` command itself are done by the test.
 
@@ -59,20 +60,21 @@ def committed_offset(db: Path, source: str) -> int:
 
 
 def wait_for_pending(db: Path, source: str, feed: Path, quiet_s: float = 3.0,
-                     guard_s: float = 600.0) -> None:
-    """Return once the feed holds bytes beyond the committed offset, or once it has not grown
-    for ``quiet_s`` (the writer is done); ``guard_s`` is a hang guard only."""
+                     guard_s: float = 600.0) -> bool:
+    """Return True once the feed holds bytes beyond the committed offset, False once it has not
+    grown for ``quiet_s`` (the writer is done); ``guard_s`` is a hang guard only."""
     t0 = time.monotonic()
     last_size, last_change = -1, time.monotonic()
     while time.monotonic() - t0 < guard_s:
         size = feed.stat().st_size if feed.exists() else 0
         if size > committed_offset(db, source) + 64:
-            return
+            return True
         if size != last_size:
             last_size, last_change = size, time.monotonic()
         elif time.monotonic() - last_change > quiet_s:
-            return
+            return False
         time.sleep(0.02)
+    return False
 
 
 def warm_up() -> None:
@@ -112,7 +114,13 @@ def main() -> int:
     rng = random.Random(int(seed))
     log = []
     for i in range(rounds):
-        wait_for_pending(db, source, feed)
+        pending = wait_for_pending(db, source, feed)
+        # every other round with rows to read is killed mid-stream: once the child has
+        # committed a batch of its own (a state, not a clock: on a loaded machine a service can
+        # take longer than the whole delay range to build its first batch), a short random
+        # moment into the next one; the other rounds are killed a random moment after the
+        # service is built (often before its first commit, during start-up)
+        after_commit = pending and i % 2 == 0
         before = committed(db)
         ready_r, ready_w = os.pipe()
         pid = os.fork()
@@ -131,10 +139,16 @@ def main() -> int:
         os.read(ready_r, 1)                            # b"" if the child died before: go on
         os.close(ready_r)
         delay = rng.uniform(lo, hi)
+        if after_commit:
+            guard = time.monotonic() + 600.0           # hang guard only
+            while committed(db) <= before and time.monotonic() < guard:
+                time.sleep(0.005)
+            delay = rng.uniform(0.0, lo)
         time.sleep(delay)
         os.kill(pid, signal.SIGKILL)
         _, status = os.waitpid(pid, 0)
         log.append({"round": i, "delay": delay, "before": before, "after": committed(db),
+                    "after_commit": after_commit,
                     "killed": os.WIFSIGNALED(status) and os.WTERMSIG(status) == signal.SIGKILL})
     Path(out).write_text(json.dumps(log))
     return 0

@@ -14,7 +14,8 @@ side by side (the machine class has 2 cores):
   (row checks, the pipeline with the default detector, the price-feedback pass, output
   frames), then the other estimators' loops with the split detector (which reuse the split
   detector's compiled step the replay cached);
-- part 2: every estimator's loop with the previous charts.
+- part 2: the estimators' batch runs alone (``run_batch``, ``run_iv``), then every
+  estimator's loop with the previous charts.
 """
 
 from __future__ import annotations
@@ -52,6 +53,26 @@ def _loops(split: bool, models: tuple[str, ...]) -> None:
         Pipeline(est, det).run(sid, X, yy, 1, offset=off, keep_signals=True)
 
 
+def _batches() -> None:
+    """The batch runs of the estimators alone (``run_batch``: one compiled loop for every model,
+    inlined, the longest compile of the project; ``run_iv``), used by the band, feedback and
+    reference tests. Compiled in a test worker on a loaded machine it took over 10 minutes."""
+    import numpy as np
+
+    from monitor.estimators import ElasticityRLS
+    from monitor.estimators.batch import run_batch
+    from monitor.estimators.iv import ElasticityIV, run_iv
+
+    rng = np.random.default_rng(0)
+    n = 200
+    sid = np.zeros(n, dtype=np.int64)
+    lp = 0.1 * rng.standard_normal(n)
+    y = 3.0 - 1.5 * lp + 0.1 * rng.standard_normal(n)
+    run_batch(ElasticityRLS(), sid, np.column_stack([np.ones(n), lp]), y)
+    run_iv(ElasticityIV(instruments=["z"]), sid,
+           np.column_stack([np.ones(n), lp, lp + 0.1 * rng.standard_normal(n)]), y)
+
+
 def _replay() -> None:
     with tempfile.TemporaryDirectory(prefix="elmon-warm-") as tmp:
         log = Path(tmp) / "log.csv"
@@ -68,6 +89,7 @@ def main(argv: list[str]) -> int:
         _loops(True, ("linear", "poisson", "iv"))
         return 0
     if argv == ["2"]:
+        _batches()
         _loops(False, ("two", "linear", "poisson", "iv"))
         return 0
     parts = [subprocess.Popen([sys.executable, __file__, part], stderr=subprocess.PIPE,
