@@ -33,6 +33,7 @@ import numpy as np
 from monitor.errors import ValidationError
 from monitor.estimators import iv_kernel as IK
 from monitor.estimators import kernel as K
+from monitor.estimators.access import KernelView
 from monitor.estimators.batch import BatchResult
 from monitor.estimators.rls import check_range, floats_from_json, floats_to_json
 from monitor.estimators.tquantile import t_table
@@ -66,7 +67,7 @@ def parse_instruments(linear: Sequence[str] = (), logged: Sequence[str] = (),
     return specs
 
 
-class ElasticityIV:
+class ElasticityIV(KernelView):
     """Online log-log elasticity through instruments (recursive 2SLS, exponential forgetting).
 
     Parameters
@@ -131,28 +132,6 @@ class ElasticityIV:
     def initial_state(self) -> np.ndarray:
         """A fresh state vector (no data; 2SLS has no prior)."""
         return IK.init_state(self._kp, self._nq)
-
-    @property
-    def dispatch_args(self) -> tuple:
-        """Arguments after the data of a step of :mod:`monitor.estimators.dispatch`: band code,
-        lag count (here: the instrument count), forgetting, guard, guard forgetting, min price sd, min n_eff, t table."""
-        return (self._band, self._lags, self.forgetting, self.excitation_guard,
-                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
-
-    @property
-    def row_width(self) -> int:
-        """Columns of one design row the kernels read: ``(1, log p, controls, instruments)``."""
-        return self._k
-
-    @property
-    def band_code(self) -> int:
-        """The band kind as the kernels' integer code (always the heteroskedasticity-robust code)."""
-        return self._band
-
-    @property
-    def state_vector(self) -> np.ndarray:
-        """The live state vector (the array itself, not a copy: read it, never write it)."""
-        return self._state
 
     @property
     def state_size(self) -> int:

@@ -27,6 +27,7 @@ import numpy as np
 
 from monitor.errors import ValidationError
 from monitor.estimators import kernel as K
+from monitor.estimators.access import KernelView
 from monitor.estimators.poisson_kernel import (poisson_init_state, poisson_state_size,
                                                poisson_step, poisson_work_size)
 from monitor.estimators.rls import check_range, floats_from_json, floats_to_json
@@ -65,7 +66,7 @@ def log_exposure(value: object) -> float:
     return math.log(v)
 
 
-class ElasticityPoisson:
+class ElasticityPoisson(KernelView):
     """Online Poisson pseudo-maximum-likelihood elasticity with exponential forgetting.
 
     Parameters
@@ -121,28 +122,6 @@ class ElasticityPoisson:
 
     def initial_state(self) -> np.ndarray:
         return poisson_init_state(self._k)
-
-    @property
-    def dispatch_args(self) -> tuple:
-        """Arguments after the data of a step of :mod:`monitor.estimators.dispatch`: band code,
-        lag count, forgetting, guard, guard forgetting, min price sd, min n_eff, t table."""
-        return (self._band, self._lags, self.forgetting, self.excitation_guard,
-                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
-
-    @property
-    def row_width(self) -> int:
-        """Columns of one design row the kernels read: ``(1, log p, controls)``."""
-        return self._k
-
-    @property
-    def band_code(self) -> int:
-        """The band kind as the kernels' integer code (:data:`kernel.BANDS` of ``band``)."""
-        return self._band
-
-    @property
-    def state_vector(self) -> np.ndarray:
-        """The live state vector (the array itself, not a copy: read it, never write it)."""
-        return self._state
 
     @property
     def state_size(self) -> int:

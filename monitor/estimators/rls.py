@@ -29,6 +29,7 @@ import numpy as np
 
 from monitor.errors import ValidationError
 from monitor.estimators import kernel as K
+from monitor.estimators.access import KernelView
 from monitor.estimators.tquantile import t_lookup, t_table
 from monitor.estimators.transform import (ControlSpec, check_quantity, design_row, parameter_names,
                                           parse_controls)
@@ -64,7 +65,7 @@ def floats_from_json(values: Sequence) -> np.ndarray:
     return np.array([math.nan if v is None else v for v in values], dtype=np.float64)
 
 
-class ElasticityRLS:
+class ElasticityRLS(KernelView):
     """Online log-log elasticity by recursive least squares with exponential forgetting.
 
     Parameters
@@ -154,28 +155,6 @@ class ElasticityRLS:
     def initial_state(self) -> np.ndarray:
         """A fresh state vector for these settings."""
         return K.init_state(*self.prior(), self._band, self._lags)
-
-    @property
-    def dispatch_args(self) -> tuple:
-        """Arguments after the data of a step of :mod:`monitor.estimators.dispatch`: band code,
-        lag count, forgetting, guard, guard forgetting, min price sd, min n_eff, t table."""
-        return (self._band, self._lags, self.forgetting, self.excitation_guard,
-                self.guard_forgetting, self.min_price_sd, self.min_n_eff, self._tq)
-
-    @property
-    def row_width(self) -> int:
-        """Columns of one design row the kernels read: ``(1, log p, controls)``."""
-        return self._k
-
-    @property
-    def band_code(self) -> int:
-        """The band kind as the kernels' integer code (:data:`kernel.BANDS` of ``band``)."""
-        return self._band
-
-    @property
-    def state_vector(self) -> np.ndarray:
-        """The live state vector (the array itself, not a copy: read it, never write it)."""
-        return self._state
 
     @property
     def state_size(self) -> int:
