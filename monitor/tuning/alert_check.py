@@ -132,13 +132,8 @@ def series_models(rows, pipe, min_rows: int = MIN_ROWS) -> list[dict]:
     res = pipe.run(rows.sid, rows.X, rows.y, n_series=n_series, ts=rows.ts)
     e = res.out[:, K.O_E]
     usable = np.isfinite(e) & (res.out[:, K.O_STATUS] != K.ST_WARMING_UP)
-    bounds = np.searchsorted(rows.sid, np.arange(n_series + 1))
     out = []
-    for s in range(n_series):
-        a, b = bounds[s], bounds[s + 1]
-        m = usable[a:b]
-        if m.sum() < min_rows:
-            continue
+    for s, a, b, m in rows.usable_spans(usable, min_rows):
         X, y = rows.X[a:b], rows.y[a:b]
         theta = np.linalg.lstsq(X[m], y[m], rcond=None)[0]
         es, xs = e[a:b][m], X[m, 1]

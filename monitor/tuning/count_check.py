@@ -99,13 +99,8 @@ def count_models(rows, pipe, min_rows: int = MIN_ROWS) -> list[dict]:
     off_all = getattr(rows, "offset", None)
     res = pipe.run(rows.sid, rows.X, rows.y, n_series=n_series, ts=rows.ts, offset=off_all)
     usable = res.out[:, K.O_STATUS] != K.ST_WARMING_UP
-    bounds = np.searchsorted(rows.sid, np.arange(n_series + 1))
     out = []
-    for s in range(n_series):
-        a, b = bounds[s], bounds[s + 1]
-        m = usable[a:b]
-        if m.sum() < min_rows:
-            continue
+    for s, a, b, m in rows.usable_spans(usable, min_rows):
         X, q = rows.X[a:b], rows.y[a:b]
         off = np.zeros(b - a) if off_all is None else off_all[a:b]
         if not q[m].any():               # no count at all: nothing to fit

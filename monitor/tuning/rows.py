@@ -26,6 +26,17 @@ class Rows:
     #: log exposure per row (the Poisson model's ``[estimator] exposure``), else None
     offset: np.ndarray | None = None
 
+    def usable_spans(self, usable: np.ndarray, min_rows: int):
+        """``(s, a, b, m)`` for each series ``s`` with at least ``min_rows`` usable rows: its
+        rows are ``a:b`` (``sid`` is sorted), ``m`` marks the usable ones among them."""
+        n_series = len(self.names)
+        edges = np.searchsorted(self.sid, np.arange(n_series + 1))
+        for s in range(n_series):
+            a, b = edges[s], edges[s + 1]
+            m = usable[a:b]
+            if m.sum() >= min_rows:
+                yield s, a, b, m
+
     @property
     def n(self) -> int:
         return int(self.sid.size)
