@@ -227,6 +227,15 @@ _DELIVERY_LEASE = [
     "ALTER TABLE outbox ADD COLUMN claimed_until TEXT",
 ]
 
+_OBSERVATION_EXPOSURE = [
+    # issue 13: the exposure behind each observation's quantity ([estimator] exposure /
+    # --exposure-col under the Poisson model: opening hours, customers, connected meters), so
+    # a Poisson store can be re-run from its own observations. NULL: no exposure, which the
+    # model reads as 1 (every row stored before this migration, and every log-log row)
+    "ALTER TABLE observations ADD COLUMN exposure REAL "
+    "CHECK (exposure IS NULL OR exposure > 0)",
+]
+
 #: Ordered migrations: (id, name, steps). A step is SQL text or a callable taking the sqlite3
 #: connection (run inside the migration's transaction). Append only.
 MIGRATIONS: list[tuple[int, str, list]] = [
@@ -240,6 +249,7 @@ MIGRATIONS: list[tuple[int, str, list]] = [
     (8, "band kind", _BAND_KIND),
     (9, "series reset requests", _RESET_REQUESTS),
     (10, "delivery leases", _DELIVERY_LEASE),
+    (11, "observation exposure", _OBSERVATION_EXPOSURE),
 ]
 
 #: The schema version this code expects (the id of the last migration).
