@@ -6,7 +6,10 @@ reference) so both see the same load on the shared machine:
 - ``elmon --help`` (``python -m monitor --help``: the console script runs the same
   ``monitor.cli:main``); target <= 0.75x the reference;
 - the reference: ``python -c "import pandas"``, the import every data command needs anyway;
-- ``python -c "import monitor.cli"``: the parser's modules alone.
+- ``python -c "import monitor.cli"``: the parser's modules alone;
+- ``elmon status --db STORE`` on a store of a simulated year (12 series, daily, written by
+  ``elmon ingest`` before the clock): target <= 1.5x the reference (it reads the store with
+  pandas, so the import is part of its work).
 
 The check: the modules ``elmon --help`` loaded (``python -X importtime``) include none of numba,
 pandas, scipy, pyarrow, streamlit or sqlite_utils (they are imported by the commands that use
@@ -113,6 +116,37 @@ def cold_compile_rows(ctx: Context) -> list[Row]:
     return [first, speed]
 
 
+def _status_store(tmp: Path) -> Path:
+    """A store of a simulated retail year (12 series x 365 days) written by ``elmon ingest``."""
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    log, db = tmp / "log.csv", tmp / "status.sqlite"
+    subprocess.run([sys.executable, "-m", "monitor", "simulate", "retail", "--out", str(log),
+                    "--seed", "1"], cwd=ROOT, env=env, check=True, capture_output=True)
+    subprocess.run([sys.executable, "-m", "monitor", "ingest", str(log), "--db", str(db),
+                    "--quiet"], cwd=ROOT, env=env, check=True, capture_output=True)
+    return db
+
+
+def status_rows(ctx: Context, runs: int) -> list[Row]:
+    """``elmon status`` against ``import pandas``, started in turn (module docstring)."""
+    with tempfile.TemporaryDirectory(prefix="elmon-status-") as tmp:
+        db = _status_store(Path(tmp))
+        status_cmd = ["-m", "monitor", "status", "--db", str(db)]
+        pandas_cmd = ["-c", "import pandas"]
+        _wall(status_cmd)
+        t_status, t_pandas = [], []
+        for _ in range(runs):
+            t_status.append(_wall(status_cmd))
+            t_pandas.append(_wall(pandas_cmd))
+    s, p = median(t_status), median(t_pandas)
+    ratio = s / p
+    return [Row("start and run of elmon status on a store of 12 series x 365 days (fresh "
+                "interpreter, wall)", s, "s", t_status, target="<= 1.5x import pandas",
+                met=ratio <= 1.5, better="lower", ratio=f"{ratio:.2f}x the reference",
+                check=f"python -c \"import pandas\" started alternately with it: {p:.3f} s "
+                      f"(median of {runs})")]
+
+
 def run(ctx: Context) -> list[Row]:
     runs = max(ctx.runs, 5)          # a start is short: more runs for a stable median
     help_cmd = ["-m", "monitor", "--help"]
@@ -140,5 +174,6 @@ def run(ctx: Context) -> list[Row]:
     cli = Row('python -c "import monitor.cli" (the parser modules alone)', median(t_cli), "s",
               t_cli, reference=True, better="lower",
               check="what every command pays before its own imports")
+    status = attempt("elmon status start", lambda: status_rows(ctx, runs))
     cold = attempt("first replay after install (cold compile)", lambda: cold_compile_rows(ctx))
-    return [main, ref, cli, *cold]
+    return [main, ref, cli, *status, *cold]
