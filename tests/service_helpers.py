@@ -15,8 +15,8 @@ import pandas as pd
 #: what "the same store" means: every table that holds results, in an order independent of
 #: how rows were grouped into batches (ids and wall-clock columns left out)
 DUMP_QUERIES = {
-    "observations": "SELECT series, ts, price, quantity, controls, source, source_row "
-                    "FROM observations ORDER BY series, ts",
+    "observations": "SELECT series, ts, price, quantity, controls, source, source_row, "
+                    "exposure FROM observations ORDER BY series, ts",
     "estimates": "SELECT * FROM estimates ORDER BY series, ts",
     "latest_estimates": "SELECT * FROM latest_estimates ORDER BY series",
     "series": "SELECT series, first_ts, last_ts, n_obs, n_estimates FROM series ORDER BY series",

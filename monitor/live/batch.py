@@ -76,13 +76,17 @@ def missing_column_rejects(frame: pd.DataFrame, rows: np.ndarray, missing: list[
     return pd.DataFrame(out, columns=REJECT_COLUMNS)
 
 
-def zero_rows(frame: pd.DataFrame, zero: pd.DataFrame, controls: list[str]) -> pd.DataFrame:
-    """Zero-quantity rows kept as observations (zero policy ``skip``): validated columns."""
+def zero_rows(frame: pd.DataFrame, zero: pd.DataFrame, controls: list[str],
+              exposure: str = "") -> pd.DataFrame:
+    """Zero-quantity rows kept as observations (zero policy ``skip``): validated columns
+    (the exposure column too when there is one and the frame has it)."""
     local = zero["local"].to_numpy(dtype=np.int64)
     out = pd.DataFrame({"row": zero["row"].to_numpy(dtype=np.int64),
                         "series": zero["series"].astype(str).to_numpy(),
                         "ts": zero["ts"].to_numpy(dtype=np.int64), "local": local})
-    for c in ["price", "quantity"] + controls:
+    extra = [exposure] if exposure and exposure in frame.columns and exposure not in controls \
+        else []
+    for c in ["price", "quantity"] + controls + extra:
         out[c] = parse_numbers(frame[c].iloc[local].reset_index(drop=True))[0]
     return out
 
@@ -134,9 +138,12 @@ def extra_rejects(frame: pd.DataFrame, local: np.ndarray, rows: np.ndarray, why:
 
 
 def observation_frame(df: pd.DataFrame, controls: list[str], label: str,
-                      ts_text: np.ndarray | None = None) -> pd.DataFrame:
+                      ts_text: np.ndarray | None = None, exposure: str = "") -> pd.DataFrame:
     """Rows to store in ``observations`` (``ts`` as ISO text, controls as a dict per row);
-    ``ts_text`` is the ISO text of ``df["ts"]`` when already formatted."""
+    ``ts_text`` is the ISO text of ``df["ts"]`` when already formatted; ``exposure`` names the
+    Poisson model's exposure column (``[estimator] exposure``), stored in the ``exposure``
+    column (issue 13: a Poisson store can be re-run from its observations); NULL without one
+    or where ``df`` lacks it."""
     out = pd.DataFrame({"series": df["series"].astype(str).to_numpy(),
                         "ts": format_ts(df["ts"].to_numpy(dtype=np.int64))
                         if ts_text is None else ts_text,
@@ -149,6 +156,8 @@ def observation_frame(df: pd.DataFrame, controls: list[str], label: str,
         out["controls"] = None
     out["source"] = label
     out["source_row"] = df["row"].to_numpy(dtype=np.int64)
+    if exposure and exposure in df.columns:
+        out["exposure"] = df[exposure].to_numpy(dtype=np.float64)
     return out
 
 

@@ -95,7 +95,8 @@ class Monitor:
             #: controls the estimator reads (as given, then in logs), in its order
             self.control_names = list(self.estimator.controls) + list(self.estimator.log_controls)
             #: the Poisson model (issue 13): zero quantities are data, and its exposure column
-            #: ("" without one); the one-row path reads both (monitor.live.one_row)
+            #: ("" without one); the one-row path reads both (monitor.live.one_row), and both
+            #: paths store each row's exposure in observations.exposure (migration 11)
             self.zero_as_data = bool(getattr(self.estimator, "zero_quantity_ok", False)) \
                 and self.validation.zero_policy == "keep"
             self.exposure_col = str(getattr(self.estimator, "exposure", "") or "")
@@ -269,7 +270,8 @@ class Monitor:
                        now_ns=int(self.clock_ns()), rows=rows,
                        order=order_of(self.validation, "arrival"))
         good = v.good
-        zeros = zero_rows(frame, v.zero_skipped, self.control_names) if len(v.zero_skipped) else None
+        zeros = zero_rows(frame, v.zero_skipped, self.control_names, self.exposure_col) \
+            if len(v.zero_skipped) else None
 
         # repeats the gate cannot see (late copies of stored times, zero-quantity rows)
         cand = pd.concat([good[["row", "series", "ts"]].assign(zero=False),
@@ -328,7 +330,7 @@ class Monitor:
                               "last_status": status[last[k]], "row": int(top[k]),
                               "ts": int(newest[k]), "vec": res.states[k]}
             obs_parts.append(observation_frame(good, self.control_names, label,
-                                               est["ts"].to_numpy()))
+                                               est["ts"].to_numpy(), self.exposure_col))
         if zeros is not None and len(zeros):
             zc = zeros.groupby("series").agg(n=("row", "size"), row=("row", "max"),
                                              ts=("ts", "max"))
@@ -340,7 +342,8 @@ class Monitor:
                 t["zero"] = int(r["n"])
                 t["row"] = max(t["row"], int(r["row"]))
                 t["zero_ts"] = int(r["ts"])
-            obs_parts.append(observation_frame(zeros, self.control_names, label))
+            obs_parts.append(observation_frame(zeros, self.control_names, label,
+                                               exposure=self.exposure_col))
             plan["zero_count"] = len(zeros)
         if obs_parts:
             plan["observations"] = pd.concat(obs_parts, ignore_index=True)

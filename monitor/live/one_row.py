@@ -14,7 +14,8 @@ batch path runs it (:func:`monitor.rows.prepare.response`, :func:`~monitor.rows.
 the response is ``q`` itself, a zero quantity included (zero policy ``keep``: it is data, and
 the quantity check skips it as the kernel does for ``log 0``), and the exposure column
 (``[estimator] exposure``) must be a number inside ``min_value .. max_value`` (anything else
-goes to the batch path, which rejects it) and enters as the offset ``log(exposure)``.
+goes to the batch path, which rejects it) and enters as the offset ``log(exposure)``; the
+value itself is stored in ``observations.exposure`` as the batch path stores it.
 tests/test_engine_poisson.py holds the store equal to the batch path's and the estimates equal
 to the replay's.
 """
@@ -119,7 +120,7 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
                                          and not lo <= v <= hi):
             return NOT_PLAIN
         values[name] = v
-    offset = None
+    offset, e = None, None
     if mon.exposure_col:                     # Poisson exposure: validated as a logged control
         e = _number(controls.get(mon.exposure_col))
         if e is None or not lo <= e <= hi:
@@ -144,14 +145,15 @@ def observe_plain(mon, series, ts, price, quantity, controls: dict):
     if code[0] != 0:                         # rejected: the kernel changed nothing
         return NOT_PLAIN
     try:
-        return _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, offset)
+        return _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, offset,
+                               e)
     except BaseException:
         (gate.last_ts[gi], gate.ring[gi], gate.ring_ts[gi], gate.count[gi], gate.qring[gi],
          gate.qcount[gi]) = saved
         raise
 
 
-def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, offset):
+def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, offset, exposure):
     specs = mon.estimator.control_specs
     X = design_matrix(price_arr, {c.name: np.array([values[c.name]]) for c in specs}, specs)
     y = q_arr if mon.zero_as_data else lq    # monitor.rows.prepare.response
@@ -187,7 +189,8 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, off
     now = wall_ts()
     controls = to_json({c: values[c] for c in mon.control_names}) if mon.control_names else None
     write_one(                   # one transaction: the row and the series' delay50_obs
-        mon.store, observation=(series, ts, p, q, controls, source, row), estimate=estimate,
+        mon.store, observation=(series, ts, p, q, controls, source, row, exposure),
+        estimate=estimate,
         keep=keep, now=now,
         checkpoint=(series, to_json(state), iso_z(last_obs), to_json({"row": row,
                                                                         "source": source}),

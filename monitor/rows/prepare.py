@@ -94,7 +94,8 @@ def check_rows(frame: pd.DataFrame, est, *, settings: ValidationSettings | None 
                        log_controls=list(est.log_controls) + list(est_instruments(est, True))
                        + ([est.exposure] if getattr(est, "exposure", "") else []),
                        settings=settings, gate=gate, now_ns=now_ns,
-                       row_offset=0 if rows is not None else row_offset, order_by=order)
+                       row_offset=0 if rows is not None else row_offset, order_by=order,
+                       exposure=getattr(est, "exposure", "") or "")
     if rows is not None:
         v = renumber(v, np.asarray(rows, dtype=np.int64))
     if line_rejects is not None and len(line_rejects):

@@ -505,7 +505,7 @@ _ORDER_REASONS = {1: ("ts", "duplicate row: same series and timestamp as an earl
 def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
                    settings: ValidationSettings | None = None, gate: SeriesGate | None = None,
                    now_ns: int | None = None, row_offset: int = 0,
-                   order_by: str = "time") -> Validated:
+                   order_by: str = "time", exposure: str = "") -> Validated:
     """Validate a frame of raw rows in arrival order.
 
     Parameters
@@ -513,6 +513,9 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     frame : DataFrame
         Raw columns ``series, ts, price, quantity`` and any controls (already renamed).
     controls, log_controls : names of the controls used (entered as given / in logs).
+    exposure : str
+        The name among ``log_controls`` that is the Poisson model's exposure (checked as a
+        logged control; its messages say "exposure").
     gate : SeriesGate
         Ordered-check state carried across batches; a new one if omitted.
     now_ns : int, optional
@@ -590,9 +593,10 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     flag((qty != 0) & ((qty < lo) | (qty > hi)), "quantity",
          f"quantity outside the accepted range {limits}")
     for c in log_controls:
-        flag(values[c] <= 0, c, "a control entered in logs must be > 0")
+        what = "an exposure" if c == exposure else "a control entered in logs"
+        flag(values[c] <= 0, c, f"{what} must be > 0")
         flag((values[c] < lo) | (values[c] > hi), c,
-             f"a control entered in logs outside the accepted range {limits}")
+             f"{what} outside the accepted range {limits}")
     for c in controls:
         flag(np.abs(values[c]) > hi, c, f"a control beyond +-{hi:g} in size ([validation] "
                                         f"max_value)")

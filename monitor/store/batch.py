@@ -66,7 +66,7 @@ class Checkpoint(NamedTuple):
 
 
 INSERT_OBS = ("INSERT INTO observations (series, ts, price, quantity, controls, source, "
-               "source_row) VALUES (?, ?, ?, ?, ?, ?, ?)")
+               "source_row, exposure) VALUES (?, ?, ?, ?, ?, ?, ?, ?)")
 INSERT_EST = f"INSERT INTO estimates ({', '.join(ESTIMATE_COLUMNS)}) VALUES " \
               f"({', '.join('?' * len(ESTIMATE_COLUMNS))})"
 UPSERT_LATEST = (f"INSERT INTO latest_estimates ({', '.join(ESTIMATE_COLUMNS)}) VALUES "
@@ -103,7 +103,8 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
     ----------
     observations : DataFrame or list of dict, optional
         Columns ``series, ts, price, quantity`` and optionally ``controls`` (dict or JSON
-        text), ``source``, ``source_row``. Any other columns are packed into ``controls``.
+        text), ``source``, ``source_row``, ``exposure`` (the Poisson model's exposure, > 0;
+        missing or NaN: NULL, no exposure). Any other columns are packed into ``controls``.
         A ``(series, ts)`` already stored or repeated in the batch raises :class:`StoreError`
         (duplicates are decided by validation upstream; see :func:`existing_observation_keys`).
         Each series' ``first_ts``, ``last_ts`` and ``n_obs`` are updated from these rows.

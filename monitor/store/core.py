@@ -37,7 +37,7 @@ DEFAULT_BUSY_TIMEOUT = 10.0
 #: Columns that query frames always return as float64 (NULL -> NaN), even when all NULL.
 FLOAT_COLUMNS = frozenset({"beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "intercept",
                            "resid_sd", "innovation", "z", "price", "quantity", "low", "high",
-                           "forgetting", "lag_seconds"})
+                           "forgetting", "lag_seconds", "exposure"})
 
 # ---------------------------------------------------------------- the store
 

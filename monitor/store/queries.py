@@ -87,9 +87,11 @@ def series_history(store: Store, series: str, start: Any = None, end: Any = None
 @accepts_path(readonly=True)
 def series_observations(store: Store, series: str, start: Any = None,
                         end: Any = None) -> pd.DataFrame:
-    """A series' observations: ``id, series, ts, price, quantity, controls, source, source_row``."""
+    """A series' observations: ``id, series, ts, price, quantity, controls, source, source_row,
+    exposure`` (the Poisson model's exposure; NULL: none, read as 1)."""
     lo, hi = _bounds(start, end)
-    df = store.frame("SELECT id, series, ts, price, quantity, controls, source, source_row"
+    df = store.frame("SELECT id, series, ts, price, quantity, controls, source, source_row,"
+                     " exposure"
                      " FROM observations WHERE series = ? AND ts >= ? AND ts <= ? ORDER BY ts",
                      (series, lo, hi), ts_columns=("ts",))
     return _parse(df, "controls")
@@ -265,16 +267,18 @@ def experiment_observations(store: Store, patterns: Iterable[str], start: Any = 
     """Observations of the series whose id matches any glob pattern (SQLite ``GLOB``: ``*``,
     ``?``, ``[...]``), ``start`` / ``end`` inclusive, ordered by ``ts`` then ``series``.
 
-    Columns: ``series, ts, price, quantity, controls`` (controls parsed). The matching series
+    Columns: ``series, ts, price, quantity, controls, exposure`` (controls parsed; exposure
+    NULL where the row has none). The matching series
     come from the ``series`` table; their rows are read on the ``(series, ts)`` index, so an
     experiment's window costs its own rows, not the whole history (issue 18).
     """
     pats = [str(p) for p in patterns]
     if not pats:
-        return pd.DataFrame(columns=["series", "ts", "price", "quantity", "controls"])
+        return pd.DataFrame(columns=["series", "ts", "price", "quantity", "controls",
+                                     "exposure"])
     lo, hi = _bounds(start, end)
     match = " OR ".join("series GLOB ?" for _ in pats)
-    df = store.frame("SELECT series, ts, price, quantity, controls FROM observations"
+    df = store.frame("SELECT series, ts, price, quantity, controls, exposure FROM observations"
                      f" WHERE series IN (SELECT series FROM series WHERE {match})"
                      " AND ts >= ? AND ts <= ? ORDER BY ts, series",
                      (*pats, lo, hi), ts_columns=("ts",))

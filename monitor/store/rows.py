@@ -19,7 +19,8 @@ from monitor.store.codec import format_ts, format_ts_array, to_json
 from monitor.types import STATUS_LABELS
 
 
-OBSERVATION_COLUMNS = ("series", "ts", "price", "quantity", "controls", "source", "source_row")
+OBSERVATION_COLUMNS = ("series", "ts", "price", "quantity", "controls", "source", "source_row",
+                       "exposure")
 ESTIMATE_COLUMNS = ("series", "ts", "beta", "beta_se", "beta_lo", "beta_hi", "n_eff", "status",
                     "intercept", "resid_sd", "innovation", "z", "band")
 #: band kinds an estimate may record (issue 13); NULL where the estimate has no band
@@ -92,6 +93,7 @@ def observation_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
             raise ValidationError(f"{_where(df, i, what)}: field {name!r} = {float(vals[i])!r}: "
                                   f"{name} {rule} and finite (validate rows before the store)",
                                   field=name, value=vals[i], row=i)
+    exposure = _exposures(df, what)
     dup = df.duplicated(["series", "ts"])
     if dup.any():
         i = int(np.flatnonzero(dup.to_numpy())[0])
@@ -111,8 +113,32 @@ def observation_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
     srow = _objects(_floats(df, "source_row", what))
     srow = [None if v is None else int(v) for v in srow]
     rows = list(zip(df["series"].tolist(), df["ts"].tolist(), price.tolist(), qty.tolist(),
-                    controls, source, srow))
+                    controls, source, srow, exposure))
     return df, rows
+
+
+def _exposures(df: pd.DataFrame, what: str) -> list:
+    """The ``exposure`` column as a list: ``None`` (NULL: no exposure, read as 1) where the
+    column is absent or a value is missing or NaN; otherwise a float that must be finite and
+    > 0 (the Poisson model's offset is ``log(exposure)``; validation rejects anything else
+    before the store, so a bad value here is a caller's error)."""
+    if "exposure" not in df.columns:
+        return [None] * len(df)
+    raw = df["exposure"]
+    vals = pd.to_numeric(raw, errors="coerce").to_numpy(dtype="float64", na_value=np.nan)
+    text = np.isnan(vals) & raw.notna().to_numpy()
+    if text.any():
+        i = int(np.flatnonzero(text)[0])
+        raise ValidationError(f"{_where(df, i, what)}: field 'exposure' = {raw.iloc[i]!r}: not a "
+                              f"number (an exposure is a number > 0, or empty for none)",
+                              field="exposure", value=raw.iloc[i], row=i)
+    bad = ~np.isnan(vals) & ~(np.isfinite(vals) & (vals > 0))
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise ValidationError(f"{_where(df, i, what)}: field 'exposure' = {float(vals[i])!r}: "
+                              f"exposure must be > 0 and finite, or empty for none (validate "
+                              f"rows before the store)", field="exposure", value=vals[i], row=i)
+    return _objects(vals)
 
 
 def estimate_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
