@@ -26,15 +26,26 @@ MIN_LOG_PRICE_SD = 1e-3
 def loglog_points(history: pd.DataFrame) -> pd.DataFrame:
     """``ts``, ``price``, ``quantity``, ``log_price``, ``log_quantity`` of the rows that can be
     put on the log-log scale (price > 0 and quantity > 0); the count of the rest is kept in
-    ``attrs['not_on_log_scale']`` so the page can say how many were left out and why."""
+    ``attrs['not_on_log_scale']`` so the page can say how many were left out and why.
+
+    When the history has an ``exposure`` column with values (the Poisson model's exposure,
+    stored with each observation), ``log_quantity`` is ``log(quantity / exposure)``, the
+    quantity per unit of exposure as the model has it (a missing exposure is 1), and
+    ``attrs['per_exposure']`` is True."""
     price = pd.to_numeric(history["price"], errors="coerce").astype("float64").to_numpy()
     qty = pd.to_numeric(history["quantity"], errors="coerce").astype("float64").to_numpy()
-    ok = np.isfinite(price) & np.isfinite(qty) & (price > 0) & (qty > 0)
+    expo = np.ones(len(qty))
+    per_exposure = "exposure" in history.columns and history["exposure"].notna().any()
+    if per_exposure:
+        e = pd.to_numeric(history["exposure"], errors="coerce").astype("float64").to_numpy()
+        expo = np.where(np.isnan(e), 1.0, e)
+    ok = np.isfinite(price) & np.isfinite(qty) & (price > 0) & (qty > 0) & (expo > 0)
     out = pd.DataFrame({"ts": to_utc(history["ts"]).to_numpy()[ok], "price": price[ok],
                         "quantity": qty[ok]})
     out["log_price"] = np.log(out["price"].to_numpy())
-    out["log_quantity"] = np.log(out["quantity"].to_numpy())
+    out["log_quantity"] = np.log(out["quantity"].to_numpy() / expo[ok])
     out.attrs["not_on_log_scale"] = int((~ok).sum())
+    out.attrs["per_exposure"] = bool(per_exposure)
     return out.reset_index(drop=True)
 
 

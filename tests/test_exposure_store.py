@@ -269,3 +269,58 @@ def test_the_store_refuses_a_bad_exposure_given_to_it(tmp_path, value, rule):
     got = store.frame("SELECT exposure FROM observations ORDER BY ts")["exposure"]
     assert got.iloc[0] == 8.0 and np.isnan(got.iloc[1])            # missing: NULL, read as 1
     store.close()
+
+
+def test_an_experiment_read_from_the_store_fits_the_quantity_per_unit_of_exposure(tmp_path):
+    """``elmon experiment status`` reads the store's rows again and fits b: with the stored
+    exposure as the offset it gives the fit on the log's rows (the replay's path) and the
+    within-series least squares of log(q / hours) from statsmodels."""
+    import statsmodels.formula.api as smf
+
+    from monitor.experiments import plan_from_config
+    from monitor.experiments.sources import status_from_store, statuses_from_frame
+    from monitor.experiments.status import evaluate
+
+    log = count_log(seed=13, n_series=3, length=200)
+    with Monitor(tmp_path / "s.sqlite", config()) as mon:
+        mon.observe_many(log)
+    start = log["ts"].iloc[len(log) // 4]
+    plan = plan_from_config("kiosk-trial", {"series": ["pier-*"], "start": start})
+    stored = status_from_store(tmp_path / "s.sqlite", plan, ["promo"], [])
+    rows = log.assign(ts=pd.to_datetime(log["ts"], utc=True))
+    cfg = validate_config({"estimator": dict(ESTIMATOR), "experiments": {
+        "kiosk-trial": {"series": ["pier-*"], "start": start}}})
+    from_log = statuses_from_frame(rows, cfg)[0]
+    b = stored.summary["b"]
+    assert b == pytest.approx(from_log.summary["b"], rel=1e-12, abs=0)
+    assert stored.summary["n_obs"] == from_log.summary["n_obs"] > 150
+    # reference: statsmodels OLS with series dummies (the within estimator) on the window's
+    # rows with q > 0 (the log-log fit leaves zeros out)
+    win = rows[(rows["ts"] >= pd.Timestamp(start)) & (rows["quantity"] > 0)]
+    fit = smf.ols("np.log(quantity / hours) ~ np.log(price) + promo + C(series)",
+                  data=win).fit()
+    assert b == pytest.approx(fit.params["np.log(price)"], rel=1e-9)
+    # without the exposure the fit is another one: the stored column is what is used
+    plain = evaluate(rows, plan, ["promo"], [])
+    assert abs(plain.summary["b"] - b) > 1e-6
+
+
+def test_the_dashboards_window_slopes_use_the_stored_exposure(tmp_path):
+    """The series page's log-log windows re-fit slopes from the stored rows: of log(q / hours)
+    when the store has the exposure (scipy's linregress on the log's rows as reference)."""
+    from scipy.stats import linregress
+
+    from dashboard import loglog
+
+    log = count_log(seed=17, n_series=1, length=120)
+    with Monitor(tmp_path / "s.sqlite", config()) as mon:
+        mon.observe_many(log)
+    pts = loglog.loglog_points(ms.series_history(tmp_path / "s.sqlite", log["series"].iloc[0]))
+    pos = log[log["quantity"] > 0]
+    assert pts.attrs["per_exposure"] and len(pts) == len(pos)
+    assert pts.attrs["not_on_log_scale"] == len(log) - len(pos)
+    fit = loglog.fit_window(pts["log_price"], pts["log_quantity"])
+    ref = linregress(np.log(pos["price"]), np.log(pos["quantity"] / pos["hours"]))
+    assert fit["slope"] == pytest.approx(ref.slope, rel=1e-9)
+    plain = linregress(np.log(pos["price"]), np.log(pos["quantity"]))
+    assert abs(plain.slope - ref.slope) > 1e-6                # the exposure changes the slope

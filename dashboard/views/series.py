@@ -117,7 +117,9 @@ def _windows(hist: pd.DataFrame, anchors: list, series: str) -> None:
         if f["reason"]:
             col.caption(f"— no line: {f['reason']}.")
     skipped = pts.attrs.get("not_on_log_scale", 0)
-    st.caption("Slopes are plain least-squares fits of log quantity on log price within each "
+    per = ("log(quantity / exposure), the quantity per unit of the stored exposure,"
+           if pts.attrs.get("per_exposure") else "log quantity")
+    st.caption(f"Slopes are plain least-squares fits of {per} on log price within each "
                "window (controls ignored), a picture of the raw relation."
                + (f" {skipped} observation(s) with zero quantity are not on the log scale."
                   if skipped else ""))

@@ -2,7 +2,8 @@
 
 - :func:`status_from_store` reads the plan's series from ``baseline_start`` to ``end`` through
   the store's query :func:`monitor.store.experiment_observations` (all SQL stays in the store),
-  unpacks the controls column and calls :func:`~monitor.experiments.status.evaluate`.
+  unpacks the controls column and calls :func:`~monitor.experiments.status.evaluate` with the
+  stored exposure (the Poisson model's, NULL = none) as the fit's offset.
 - :func:`statuses_from_config` does it for every ``[experiments.NAME]`` of a config, with the
   controls of ``[estimator]``.
 - :func:`experiments_json` gives the JSON document replay writes as ``experiments.json``;
@@ -34,6 +35,10 @@ def unpack_controls(df: pd.DataFrame) -> pd.DataFrame:
     return pd.concat([df.drop(columns=["controls"]), ctl], axis=1)
 
 
+#: the column the store's exposure is read into (not a name a log column would have)
+STORED_EXPOSURE = "(stored exposure)"
+
+
 def status_from_store(store: Any, plan: ExperimentPlan, controls: Sequence[str] = (),
                       log_controls: Sequence[str] = ()) -> ExperimentStatus:
     """The experiment's status from the observations table of ``store`` (a Store or a path)."""
@@ -41,7 +46,11 @@ def status_from_store(store: Any, plan: ExperimentPlan, controls: Sequence[str] 
 
     rows = mstore.experiment_observations(store, list(plan.series), plan.baseline_start,
                                           plan.end)
-    return evaluate(unpack_controls(rows), plan, controls, log_controls)
+    # the stored exposure (store migration 11; NULL: none, i.e. 1) under a name no control
+    # can have, so a control named "exposure" is not shadowed
+    rows = rows.rename(columns={"exposure": STORED_EXPOSURE})
+    return evaluate(unpack_controls(rows), plan, controls, log_controls,
+                    exposure=STORED_EXPOSURE)
 
 
 def plans_from_config(cfg: Any) -> dict[str, ExperimentPlan]:
@@ -55,10 +64,16 @@ def controls_from_config(cfg: Any) -> tuple[list[str], list[str]]:
     return list(est.get("controls", [])), list(est.get("log_controls", []))
 
 
+def exposure_from_config(cfg: Any) -> str:
+    """``[estimator] exposure``: the exposure column of the Poisson model, or ``""``."""
+    return str(cfg.section("estimator").get("exposure", "") or "")
+
+
 def statuses_from_frame(frame: pd.DataFrame, cfg: Any) -> list[ExperimentStatus]:
     """Every configured experiment evaluated on validated rows (replay, at the end of a log)."""
     controls, log_controls = controls_from_config(cfg)
-    return [evaluate(frame, plan, controls, log_controls)
+    exposure = exposure_from_config(cfg)
+    return [evaluate(frame, plan, controls, log_controls, exposure=exposure)
             for plan in plans_from_config(cfg).values()]
 
 
@@ -100,7 +115,10 @@ def write_experiments_for_log(log: str | Path, cfg: Any, out_dir: str | Path,
     keep = {n for n in names if any(p.matches(n) for p in plans.values())}
     frame = frame[frame["series"].astype(str).isin(keep)].reset_index(drop=True)
     controls, log_controls = controls_from_config(cfg)
-    v = validate_frame(frame, controls=controls, log_controls=log_controls,
+    exposure = exposure_from_config(cfg)          # checked as the replay checks it
+    v = validate_frame(frame, controls=controls,
+                       log_controls=log_controls + ([exposure] if exposure else []),
+                       exposure=exposure,
                        settings=validation_from_config(cfg),
                        now_ns=time.time_ns() if now_ns is None else now_ns)
     return write_experiments_json(v.good, cfg, out_dir)

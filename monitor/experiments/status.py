@@ -146,7 +146,8 @@ def _reference_prices(base: pd.DataFrame, names: list[str], test: pd.DataFrame,
 
 
 def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] = (),
-             log_controls: Sequence[str] = (), feedback: bool = True) -> ExperimentStatus:
+             log_controls: Sequence[str] = (), feedback: bool = True,
+             exposure: str = "") -> ExperimentStatus:
     """The experiment's status from observation rows (see the module docstring).
 
     Parameters
@@ -161,6 +162,11 @@ def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] 
     feedback : bool
         Run the price-feedback diagnostic (:func:`~monitor.experiments.health.feedback_check`)
         when this installation has it; its failure compromises the test.
+    exposure : str
+        Column of the exposure behind each quantity (the Poisson model's ``[estimator]
+        exposure``: opening hours, customers, meters), or ``""``. The fit is then of the
+        quantity per unit of exposure, ``log q - log e`` (the model's offset); a missing
+        value (NULL in the store: no exposure) is 1, a value not > 0 leaves the row out.
     """
     notes: list[str] = []
     alpha = 1.0 - plan.level
@@ -177,6 +183,9 @@ def evaluate(frame: pd.DataFrame, plan: ExperimentPlan, controls: Sequence[str] 
     with np.errstate(invalid="ignore", divide="ignore"):
         logp = np.log(test["price"].to_numpy(np.float64))
         logq = np.log(test["quantity"].to_numpy(np.float64))
+        if exposure and exposure in test.columns:
+            e = pd.to_numeric(test[exposure], errors="coerce").to_numpy(np.float64)
+            logq = logq - np.log(np.where(np.isnan(e), 1.0, e))
     good = np.isfinite(logp) & np.isfinite(logq)
     if z is not None:
         good &= np.isfinite(z).all(axis=1)

@@ -72,13 +72,15 @@ def series_history(store: Store, series: str, start: Any = None, end: Any = None
     """A series' stored estimates with their bands, joined with the observed price and quantity.
 
     Columns: ``series, ts, beta, beta_se, beta_lo, beta_hi, n_eff, status, intercept,
-    resid_sd, innovation, z, price, quantity, band``; ordered by ``ts``; ``start`` / ``end``
-    inclusive. ``band`` is the kind of each estimate's band ("hc", "hac", "classic"; NULL with
-    no band or when stored before the kind was recorded).
+    resid_sd, innovation, z, price, quantity, band, exposure``; ordered by ``ts``; ``start`` /
+    ``end`` inclusive. ``band`` is the kind of each estimate's band ("hc", "hac", "classic";
+    NULL with no band or when stored before the kind was recorded); ``exposure`` the Poisson
+    model's exposure of the observation (NULL: none).
     """
     lo, hi = _bounds(start, end)
     sql = ("SELECT e.series, e.ts, e.beta, e.beta_se, e.beta_lo, e.beta_hi, e.n_eff, e.status,"
-           " e.intercept, e.resid_sd, e.innovation, e.z, o.price, o.quantity, e.band"
+           " e.intercept, e.resid_sd, e.innovation, e.z, o.price, o.quantity, e.band,"
+           " o.exposure"
            " FROM estimates e LEFT JOIN observations o ON o.series = e.series AND o.ts = e.ts"
            " WHERE e.series = ? AND e.ts >= ? AND e.ts <= ? ORDER BY e.ts")
     return store.frame(sql, (series, lo, hi), ts_columns=("ts",))
