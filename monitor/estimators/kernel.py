@@ -65,7 +65,8 @@ from numba import njit
 from monitor.estimators.sandwich import (centre_theta, centre_vector, meat_form, s_form,
                                         update_q, update_t)
 from monitor.estimators.solve import DROP_TOL, factor, price_column, solve
-from monitor.estimators.tquantile import t_lookup
+from monitor.estimators.packed import div2, div4, sqrt4
+from monitor.estimators.tquantile import t_lookup, t_lookup_inv
 
 
 # layout of the scalar part of a state vector
@@ -240,15 +241,60 @@ def finish(st, out, beta, intercept, identified, vb, V, rank, k, neff, lowvar, b
 def step_two_band(st, x1, y, band, lam, guard, guard_lam, min_price_sd, min_neff, tq, out):
     """The update written out for k = 2 (intercept and log price), bands classic and hc.
 
-    Equal to :func:`linear_step` to rounding (tests/test_estimator_bands.py checks 1e-10).
+    Equal to :func:`linear_step` to rounding (tests/test_estimator_bands.py checks 1e-10), and
+    to the bit to its own form before issue 15's second round
+    (benchmarks/estimator_previous.py; tests/test_estimator_bits.py): the same floating-point
+    operations on the same operands, arranged for speed. Independent divisions go through the
+    divider together (:mod:`monitor.estimators.packed`: 4 lanes cost about one scalar division),
+    ``(-u) / v`` is written ``-(u / v)`` and ``rank * W3 / W`` as ``rank * (W3 / W)`` (exact:
+    IEEE rounding is symmetric in sign and rank is 1 or 2, a power of two), the Student-t
+    lookup takes its ``1 / df`` from a packed division (:func:`t_lookup_inv`), and the residual
+    diagnostics (a call to ``exp``) come last, when few values are live across the call.
     """
-    raw_low, lt = excitation(st, x1, lam, guard, guard_lam, min_price_sd)
-    ncd = 1 if band == BAND_CLASSIC else 6
+    thr = min_price_sd * min_price_sd
+    # the divisions that need only the previous state, in two packed instructions: the two
+    # excitation windows' mean steps d / w, and A01^2 / A00, A01 / A00, 1 / A00, V / (W - 2)
+    # of the predictive variance
+    w1 = lam * st[I_LPW] + 1.0
+    d1 = x1 - st[I_LPMEAN]
+    w2 = guard_lam * st[I_GW] + 1.0
+    d2 = x1 - st[I_GMEAN]
     a = st[NS]
     b = st[NS + 1]
     A00 = st[NS + 2]
     A01 = st[NS + 3]
     A11 = st[NS + 5]
+    W = st[I_W]
+    V = st[I_V]
+    q_d1, q_d2, q_sq, q_r = div4((d1, d2, A01 * A01, A01), (w1, w2, A00, A00))
+    q_i00, q_vd = div2((1.0, V), (A00, W - 2.0))
+    # excitation (both windows), as ew_variance and excitation; then m2 / w of both windows
+    # and the previous 1 / s_b in one instruction
+    mean1 = st[I_LPMEAN] + q_d1
+    m2a = lam * st[I_LPM2] + d1 * (x1 - mean1)
+    if m2a < 0.0:
+        m2a = 0.0
+    mean2 = st[I_GMEAN] + q_d2
+    m2b = guard_lam * st[I_GM2] + d2 * (x1 - mean2)
+    if m2b < 0.0:
+        m2b = 0.0
+    sb0 = A11 - q_sq
+    v1, v2, p11, _ = div4((m2a, m2b, 1.0, 1.0), (w1, w2, sb0, 1.0))
+    st[I_LPW] = w1
+    st[I_LPMEAN] = mean1
+    st[I_LPM2] = m2a
+    st[I_GW] = w2
+    st[I_GMEAN] = mean2
+    st[I_GM2] = m2b
+    raw_low = v1 < thr
+    lt = lam
+    if guard and v2 < thr:
+        st[I_NPAUSED] += 1.0
+        st[I_PAUSED] = 1.0
+        lt = 1.0
+    else:
+        st[I_PAUSED] = 0.0
+    ncd = 1 if band == BAND_CLASSIC else 6
     t0 = NS + 10
     if st[I_N] == 0.0:
         st[NS + 8] = x1
@@ -259,29 +305,20 @@ def step_two_band(st, x1, y, band, lam, guard, guard_lam, min_price_sd, min_neff
     yc = y - nu
     e = y - a - b * x1
     # classic predictive variance x' P S P x from the previous state
-    W = st[I_W]
-    V = st[I_V]
-    z = np.nan
     zsd = np.nan
-    if A00 > 0.0 and A11 > 0.0:
-        sb = A11 - A01 * A01 / A00
-        if sb > DROP_TOL * A11:
-            p11 = 1.0 / sb
-            p01 = -A01 / A00 * p11
-            p00 = 1.0 / A00 - A01 / A00 * p01
-            u1 = p01 + p11 * x1
-            u0 = p00 + p01 * x1 + mu * u1
-            s00 = st[t0]
-            s01 = st[t0 + ncd]
-            s11 = st[t0 + 2 * ncd]
-            q = u0 * (s00 * u0 + s01 * u1) + u1 * (s01 * u0 + s11 * u1)
-            dof = W - 2.0
-            if dof > 0.0 and V > 0.0:
-                zsd = np.sqrt(V / dof * (1.0 + q))
-                z = e / zsd
-    st[I_E] = e
-    st[I_ZSD] = zsd
-    st[I_Z] = z
+    zok = False
+    if A00 > 0.0 and A11 > 0.0 and sb0 > DROP_TOL * A11:
+        p01 = -q_r * p11
+        p00 = q_i00 - q_r * p01
+        u1 = p01 + p11 * x1
+        u0 = p00 + p01 * x1 + mu * u1
+        s00 = st[t0]
+        s01 = st[t0 + ncd]
+        s11 = st[t0 + 2 * ncd]
+        q = u0 * (s00 * u0 + s01 * u1) + u1 * (s01 * u0 + s11 * u1)
+        if W - 2.0 > 0.0 and V > 0.0:
+            zsd = np.sqrt(q_vd * (1.0 + q))
+            zok = True
     # update the sums
     A00 = lt * A00 + 1.0
     A01 = lt * A01 + x1
@@ -304,26 +341,36 @@ def step_two_band(st, x1, y, band, lam, guard, guard_lam, min_price_sd, min_neff
     st[I_W] = W
     st[I_W2] = W2
     st[I_N] += 1.0
+    # A01^2 / A00 and A01 / A00 of the solve, n_eff = W^2 / W2, W3 / W of the hc factor
+    q_sq, q_r, neff, q_w3 = div4((A01 * A01, A01, W * W, W3), (A00, A00, W2, W))
+    z = np.nan
+    if zok:
+        z = e / zsd
+    st[I_E] = e
+    st[I_ZSD] = zsd
+    st[I_Z] = z
     # solve (log price last: Frisch-Waugh form)
-    sb = A11 - A01 * A01 / A00
+    sb = A11 - q_sq
     identified = A11 > 0.0 and sb > DROP_TOL * A11
+    rank = 2.0 if identified else 1.0
+    # rank * W3 / W == rank * (W3 / W) to the bit: rank is 1 or 2 (a power of two)
+    hd = W2 - rank * q_w3
+    # b's quotient, 1 / s_b, s_b / W (x_sd^2) and 1 / df of the t lookup; then a and the hc
+    # factor W2 / (W2 - rank W3 / W)
+    bq, p11, xs2, u_df = div4((c1 - q_r * c0, 1.0, sb, 1.0), (sb, sb, W, neff - rank))
     if identified:
-        b = (c1 - A01 / A00 * c0) / sb
-        a = (c0 - A01 * b) / A00
-        rank = 2.0
+        b = bq
+        num = c0 - A01 * b
     else:
         b = 0.0
-        a = c0 / A00
-        rank = 1.0
+        num = c0
+    a, hf = div2((num, W2), (A00, hd))
     st[NS] = a
     st[NS + 1] = b
     V = YY - a * c0 - b * c1
     if V < 0.0:
         V = 0.0
     st[I_V] = V
-    xsd = np.sqrt(sb / W) if sb > 0.0 else 0.0
-    st[I_XSD] = xsd
-    diagnostics(st, y - a - b * x1, lt)
     # meat sums
     if band == BAND_CLASSIC:
         st[t0] = l2 * st[t0] + 1.0
@@ -342,18 +389,18 @@ def step_two_band(st, x1, y, band, lam, guard, guard_lam, min_price_sd, min_neff
             st[i + 3] = l2 * st[i + 3] + xa * x2
             st[i + 4] = l2 * st[i + 4] + xa * xy
             st[i + 5] = l2 * st[i + 5] + xa * y2
-    neff = W * W / W2
+    dof = W - rank
+    vd, _ = div2((V, 1.0), (dof, 1.0))
     vb = np.nan
     if identified:
-        p11 = 1.0 / sb
-        p01 = -A01 / A00 * p11 + mu * p11
+        p01 = -q_r * p11 + mu * p11
         if band == BAND_CLASSIC:
             s00 = st[t0]
             s01 = st[t0 + 1]
             s11 = st[t0 + 2]
             vb = p01 * (s00 * p01 + s01 * p11) + p11 * (s01 * p01 + s11 * p11)
             if W > rank:
-                vb *= V / (W - rank)
+                vb *= vd
         else:
             ac = a + mu * b - nu
             g0 = ac * ac
@@ -368,9 +415,44 @@ def step_two_band(st, x1, y, band, lam, guard, guard_lam, min_price_sd, min_neff
             m11 = g0 * st[t0 + 12] + g1 * st[t0 + 13] + g2 * st[t0 + 14] + g3 * st[t0 + 15] + \
                 g4 * st[t0 + 16] + st[t0 + 17]
             vb = p01 * p01 * m00 + 2.0 * p01 * p11 * m01 + p11 * p11 * m11
-            vb *= hc_factor(W, W2, W3, rank)
-    finish(st, out, b, a, identified, vb, V, rank, 2, neff, raw_low or xsd < min_price_sd,
-           band, e, z, min_neff, tq, y)
+            vb *= hf if hd > 0.0 else np.nan
+    # x_sd, the residual sd and the elasticity's se in one square root
+    xsd_, rsd, se, _ = sqrt4((xs2, vd, vb, 1.0))
+    xsd = xsd_ if sb > 0.0 else 0.0
+    st[I_XSD] = xsd
+    lowvar = raw_low or xsd < min_price_sd
+    # output row (as finish does for the general step)
+    out[O_NEFF] = neff
+    out[O_E] = e
+    out[O_Z] = z
+    out[O_INTERCEPT] = a
+    out[O_BAND] = band
+    out[O_YLOG] = y
+    warm = neff < min_neff or neff < 4.0
+    vok = dof > 0.0 and V > 0.0
+    out[O_RESID_SD] = rsd if vok else np.nan
+    if identified and vok and vb >= 0.0:
+        tq_ = t_lookup_inv(tq, neff - rank, u_df)
+        out[O_BETA] = b
+        out[O_SE] = se
+        out[O_LO] = b - tq_ * se
+        out[O_HI] = b + tq_ * se
+        if warm or not (tq_ == tq_):
+            out[O_STATUS] = ST_WARMING_UP
+        elif lowvar:
+            out[O_STATUS] = ST_LOW_VARIATION
+        else:
+            out[O_STATUS] = ST_OK
+    else:
+        out[O_BETA] = b if identified else np.nan
+        out[O_SE] = np.nan
+        out[O_LO] = np.nan
+        out[O_HI] = np.nan
+        if identified or warm:
+            out[O_STATUS] = ST_WARMING_UP
+        else:
+            out[O_STATUS] = ST_LOW_VARIATION
+    diagnostics(st, y - a - b * x1, lt)
 
 
 @njit(cache=True, inline="always")
@@ -567,6 +649,16 @@ def rls_learn(st, x, par, tq, out, w, y):
     fifteen, which is most of the cost of a call from Python (numba checks the type of every
     argument on each call). ``y`` comes last so a caller can keep the six arrays in one tuple.
     """
+    rls_step(st, x, y, x.shape[0], int(par[P_BAND]), int(par[P_LAGS]), par[P_LAM],
+             par[P_GUARD] != 0.0, par[P_GUARD_LAM], par[P_MIN_PRICE_SD], par[P_MIN_NEFF], tq,
+             out, w)
+
+
+@njit(cache=True, _nrt=False)
+def rls_learn_price(st, x, par, tq, out, w, lp, y):
+    """:func:`rls_learn` for a design row ``(1, log p)`` whose log price ``lp`` is written into
+    ``x[1]`` here (a float argument costs less to pass from Python than a numpy item write)."""
+    x[1] = lp
     rls_step(st, x, y, x.shape[0], int(par[P_BAND]), int(par[P_LAGS]), par[P_LAM],
              par[P_GUARD] != 0.0, par[P_GUARD_LAM], par[P_MIN_PRICE_SD], par[P_MIN_NEFF], tq,
              out, w)

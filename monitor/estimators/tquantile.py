@@ -38,7 +38,15 @@ def t_lookup(table: np.ndarray, df: float) -> float:
     """Interpolated quantile for ``df >= 1`` (NaN below)."""
     if not (df >= 1.0):
         return np.nan
-    u = 1.0 / df
+    return t_lookup_inv(table, df, 1.0 / df)
+
+
+@njit(cache=True, inline="always")
+def t_lookup_inv(table: np.ndarray, df: float, u: float) -> float:
+    """:func:`t_lookup` given ``u = 1 / df`` already computed (the k = 2 step computes it in one
+    vector division with others); the same value to the bit."""
+    if not (df >= 1.0):
+        return np.nan
     m = table.shape[0] - 1
     pos = u * m
     i = int(pos)

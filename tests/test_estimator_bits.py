@@ -1,0 +1,177 @@
+"""The estimator's fast paths give the same numbers, to the bit, as the forms they replaced
+(issue 15).
+
+- :func:`monitor.estimators.kernel.step_two_band` (packed divisions, the exponential last)
+  against its previous form, kept verbatim in benchmarks/estimator_previous.py, on rows that
+  reach every branch: the excitation guard pausing, a price held constant (log price
+  unidentified), low variation, forgetting 1, a prior, bands hc and classic;
+- the packed division and square root (:mod:`monitor.estimators.packed`) against numpy's
+  scalar IEEE operations, special values included;
+- ``ElasticityRLS.learn_one`` (compiled entry, inline checks) against ``run_batch``, and its
+  messages for bad input.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from numba import njit
+
+from benchmarks.estimator_previous import previous_rls_run_two
+from monitor.errors import ValidationError
+from monitor.estimators import ElasticityRLS, run_batch
+from monitor.estimators import kernel as K
+from monitor.estimators.packed import div2, div4, sqrt4
+
+
+def _bits(a: np.ndarray) -> np.ndarray:
+    return np.ascontiguousarray(a).view(np.int64)
+
+
+def _hard_rows(rng, n_series: int, T: int):
+    """Rows in arrival order: prices that vary, prices held for spells (the guard pauses), a
+    price constant for the first half of some series (unidentified), small price moves."""
+    sid = np.tile(np.arange(n_series), T)
+    step = np.repeat(np.arange(T), n_series)
+    lp0 = np.log(rng.uniform(2.0, 8.0, n_series))
+    lp = lp0[sid] + rng.normal(0.0, 0.1, sid.size)
+    held = (sid % 3 == 0) & ((step // 40) % 2 == 1)
+    lp[held] = np.round(lp[held], 1)
+    lp[(sid % 5 == 1) & (step < T // 2)] = 1.5
+    small = sid % 7 == 2
+    lp[small] = lp0[sid[small]] + rng.normal(0.0, 0.005, small.sum())
+    y = 4.0 - 2.0 * lp + rng.normal(0.0, 0.2, sid.size)
+    X = np.column_stack([np.ones(sid.size), lp])
+    return sid, X, y
+
+
+def _previous(est, sid, X, y):
+    states = np.tile(est.initial_state(), (int(sid.max()) + 1, 1))
+    out = np.empty((sid.size, K.NOUT))
+    band, _, lam, guard, guard_lam, mps, mneff, tq = est.kernel_args
+    previous_rls_run_two(states, sid, X, y, band, lam, guard, guard_lam, mps, mneff, tq, out)
+    return out, states
+
+
+SETTINGS = [
+    {},
+    {"band": "classic"},
+    {"excitation_guard": False},
+    {"forgetting": 1.0},
+    {"forgetting": 0.9, "band": "classic", "min_price_sd": 0.05},
+    {"prior_mean": -1.5, "prior_sd": 1.0, "level": 0.9},
+]
+
+
+@pytest.mark.parametrize("settings", SETTINGS)
+def test_k2_step_equals_its_previous_form_to_the_bit(rng, settings):
+    sid, X, y = _hard_rows(rng, 30, 200)
+    est = ElasticityRLS(**{"forgetting": 0.97, **settings})
+    res = run_batch(est, sid, X, y)
+    out, states = _previous(est, sid, X, y)
+    np.testing.assert_array_equal(_bits(res.out), _bits(out))
+    np.testing.assert_array_equal(_bits(res.states), _bits(states))
+    status = res.status
+    # the rows reached the branches they were built for
+    assert (status == K.ST_OK).any() and (status == K.ST_LOW_VARIATION).any()
+    assert (status == K.ST_WARMING_UP).any()
+    if est.prior_sd is None:   # a prior on b identifies it while the price is held
+        assert np.isnan(res.beta[(sid % 5 == 1) & (np.arange(sid.size) > 30)]).any()
+    if est.excitation_guard:
+        assert res.states[:, K.I_NPAUSED].sum() > 0
+
+
+def test_k2_step_one_long_series_to_the_bit(rng):
+    """One series: every row reads the state the row before wrote."""
+    sid, X, y = _hard_rows(rng, 1, 4000)
+    est = ElasticityRLS(forgetting=0.995)
+    res = run_batch(est, np.zeros(sid.size, dtype=np.int64), X, y)
+    out, states = _previous(est, np.zeros(sid.size, dtype=np.int64), X, y)
+    np.testing.assert_array_equal(_bits(res.out), _bits(out))
+    np.testing.assert_array_equal(_bits(res.states), _bits(states))
+
+
+@njit(cache=True)
+def _packed(a, b):
+    out = np.empty((a.shape[0], 7))
+    for i in range(0, a.shape[0] - 3, 4):
+        q0, q1, q2, q3 = div4((a[i], a[i + 1], a[i + 2], a[i + 3]),
+                              (b[i], b[i + 1], b[i + 2], b[i + 3]))
+        r0, r1 = div2((a[i], a[i + 1]), (b[i], b[i + 1]))
+        s0, s1, s2, s3 = sqrt4((a[i], a[i + 1], a[i + 2], a[i + 3]))
+        out[i, 0], out[i + 1, 0], out[i + 2, 0], out[i + 3, 0] = q0, q1, q2, q3
+        out[i, 1], out[i + 1, 1] = r0, r1
+        out[i, 2], out[i + 1, 2], out[i + 2, 2], out[i + 3, 2] = s0, s1, s2, s3
+    return out
+
+
+def test_packed_division_and_sqrt_equal_scalar_ieee_operations(rng):
+    """Lane by lane equal to numpy's float64 division and square root (IEEE 754 correctly
+    rounded), with zeros, infinities, NaN, negative and subnormal values among the operands."""
+    special = np.array([0.0, -0.0, 1.0, -1.0, np.inf, -np.inf, np.nan, 5e-324, 2.2e-308,
+                        1.7e308, 3.0, 1e-300])
+    a = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
+                        np.repeat(special, special.size)])
+    b = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
+                        np.tile(special, special.size)])
+    n = a.size - a.size % 4
+    got = _packed(a[:n], b[:n])
+    with np.errstate(all="ignore"):
+        q = a[:n] / b[:n]
+        s = np.sqrt(a[:n])
+    np.testing.assert_array_equal(np.isnan(got[:, 0]), np.isnan(q))
+    ok = ~np.isnan(q)
+    np.testing.assert_array_equal(_bits(got[ok, 0]), _bits(q[ok]))
+    ok2 = (np.arange(n) % 4 < 2) & ~np.isnan(q)
+    np.testing.assert_array_equal(_bits(got[ok2, 1]), _bits(q[ok2]))
+    np.testing.assert_array_equal(np.isnan(got[:, 2]), np.isnan(s))
+    ok3 = ~np.isnan(s)
+    np.testing.assert_array_equal(_bits(got[ok3, 2]), _bits(s[ok3]))
+
+
+def test_learn_one_equals_run_batch_to_the_bit(rng):
+    est = ElasticityRLS(forgetting=0.98)
+    n = 600
+    price = np.round(5.0 * np.exp(rng.normal(0, 0.1, n)), 2)
+    qty = np.exp(3.0 - 1.8 * np.log(price) + rng.normal(0, 0.2, n))
+    outs = np.empty((n, K.NOUT))
+    for j in range(n):
+        est.learn_one({"price": float(price[j])}, float(qty[j]))
+        outs[j] = est._out
+    # learn_one logs with math.log (numpy's log may differ from it in the last bit)
+    X = np.column_stack([np.ones(n), [math.log(v) for v in price.tolist()]])
+    res = run_batch(est.clone(), np.zeros(n, dtype=np.int64), X,
+                    np.array([math.log(v) for v in qty.tolist()]))
+    np.testing.assert_array_equal(_bits(outs), _bits(res.out))
+    np.testing.assert_array_equal(_bits(est._state), _bits(res.states[0]))
+    # numpy scalars and ints go the same way as floats
+    e2 = ElasticityRLS(forgetting=0.98)
+    for j in range(n):
+        e2.learn_one({"price": price[j]}, qty[j])
+    np.testing.assert_array_equal(_bits(e2._state), _bits(est._state))
+
+
+@pytest.mark.parametrize("x, q, field, rule", [
+    ({"price": -1.0}, 5.0, "price", None),
+    ({"price": "abc"}, 5.0, "price", None),
+    ({}, 5.0, "price", "missing"),
+    ({"price": math.nan}, 5.0, "price", None),
+    ({"price": math.inf}, 5.0, "price", None),
+    ({"price": 2.0}, 0.0, "quantity", "zero"),
+    ({"price": 2.0}, -3.0, "quantity", "non_negative"),
+    ({"price": 2.0}, None, "quantity", None),
+    ({"price": 2.0}, math.inf, "quantity", None),
+])
+def test_learn_one_bad_input_names_field_and_leaves_the_state(x, q, field, rule):
+    est = ElasticityRLS()
+    est.learn_one({"price": 2.0}, 10.0)
+    before = est._state.copy()
+    with pytest.raises(ValidationError) as err:
+        est.learn_one(x, q)
+    assert err.value.field == field
+    if rule is not None:
+        assert err.value.rule == rule
+    assert field in str(err.value)
+    np.testing.assert_array_equal(_bits(est._state), _bits(before))
