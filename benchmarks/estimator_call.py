@@ -1,22 +1,24 @@
-"""How the estimator's compiled step is called (issue 15), each beside its previous form.
+"""How the estimator's compiled step is called and how lean it is (issue 15), each beside its
+previous form.
 
 - The batch loop :func:`monitor.estimators.kernel.rls_run` (what ``run_batch`` runs for the
-  log-log model: compiled without numba's reference counting, the k = 2 form chosen once
-  outside the row loop), 10,000 series x 1,000 steps in arrival order, default settings
-  (hc band, forgetting 0.995, excitation guard on); reference: the loop as it was, compiled
-  here with reference counting and the model and form chosen per row. Outputs and final
-  states compared to the bit. Target (issue 15): >= 30M obs per CPU-second.
-- ``ElasticityRLS.learn_one`` called row by row from Python (price only); reference: the
-  previous call, ``design_row`` + ``check_quantity`` + :func:`~monitor.estimators.kernel.rls_step`
-  with its fifteen arguments. Final states compared to the bit. Target: >= 1M obs/s (per
-  CPU-second of the process, like the loop above: on the shared machine wall time also counts
-  the waits for a core).
+  log-log model), 10,000 series x 1,000 steps in arrival order, default settings (hc band,
+  forgetting 0.995, excitation guard on). References: the k = 2 step as it was before the
+  second round (benchmarks/estimator_previous.py: the same loop, without reference counting,
+  the scalar divisions one by one), and the loop as it was before issue 15 (compiled here with
+  reference counting, the model and form chosen per row). Outputs and final states compared
+  to the bit. Target (issue 15): >= 30M obs per CPU-second.
+- ``ElasticityRLS.learn_one`` called row by row from Python (price only). References: its
+  previous form (the seven-argument ``rls_learn`` through numba's dispatcher, the log price
+  written into the design row in numpy), and the call before issue 15, ``design_row`` +
+  ``check_quantity`` + :func:`~monitor.estimators.kernel.rls_step` with its fifteen arguments.
+  Final states compared to the bit. Target: >= 1M obs/s (per CPU-second of the process, like
+  the loop above: on the shared machine wall time also counts the waits for a core).
 """
 
 from __future__ import annotations
 
 import math
-import time
 
 import numpy as np
 
@@ -44,12 +46,16 @@ def _old_loop():
 
 
 def _cpu(fn):
-    c0 = time.process_time()
+    """(wall seconds, process CPU seconds, result) of ``fn()`` alone: the CPU time is taken
+    inside :func:`timed`, after its ``gc.collect()`` (timing around ``timed`` counted that full
+    collection too: with the 200,000 row dicts of the learn_one figure alive it was as long as
+    the 200,000 calls themselves)."""
     t, res = timed(fn)
-    return t, time.process_time() - c0, res
+    return t, timed.cpu_share * t, res
 
 
 def _kernel_rows(ctx: Context) -> list[Row]:
+    from benchmarks.estimator_previous import previous_rls_run_two
     from monitor.estimators import ElasticityRLS, run_batch
     from monitor.estimators import kernel as K
     from monitor.estimators.batch import initial_states
@@ -65,24 +71,42 @@ def _kernel_rows(ctx: Context) -> list[Row]:
     out_old.fill(0.0)
     w = np.empty(work_size("loglinear", 2))
     m = 2000
+    out_prev = np.empty((p.n, K.NOUT))
+    out_prev.fill(0.0)
+    band, _, lam, guard, guard_lam, mps, mneff, tq = est.kernel_args
     run_batch(est, p.sid[:m], p.X[:m], p.y[:m])
     old(0, initial_states(est, S), p.sid[:m], p.X[:m], p.y[:m], np.empty(0), *est.kernel_args,
         out_old[:m], w)
-    cpu_new, cpu_old, st_new, st_old = [], [], None, None
+    previous_rls_run_two(initial_states(est, S), p.sid[:m], p.X[:m], p.y[:m], band, lam, guard,
+                         guard_lam, mps, mneff, tq, out_prev[:m])
+    cpu_new, cpu_old, cpu_prev, st_new, st_old, st_prev = [], [], [], None, None, None
     for _ in range(ctx.runs):
         st_new = initial_states(est, S)
         _, c, _ = _cpu(lambda: run_batch(est, p.sid, p.X, p.y, states=st_new, out=out_new))
         cpu_new.append(c)
+        st_prev = initial_states(est, S)
+        _, c, _ = _cpu(lambda: previous_rls_run_two(st_prev, p.sid, p.X, p.y, band, lam, guard,
+                                                    guard_lam, mps, mneff, tq, out_prev))
+        cpu_prev.append(c)
         st_old = initial_states(est, S)
         _, c, _ = _cpu(lambda: old(0, st_old, p.sid, p.X, p.y, np.empty(0), *est.kernel_args,
                                    out_old, w))
         cpu_old.append(c)
     same = (np.array_equal(out_new, out_old, equal_nan=True)
             and np.array_equal(st_new, st_old, equal_nan=True))
+    same_prev = (np.array_equal(out_new.view(np.int64), out_prev.view(np.int64))
+                 and np.array_equal(st_new.view(np.int64), st_prev.view(np.int64)))
     main = rate_row(f"estimator batch loop (rls_run via run_batch), {S:,} series x {T:,} "
                     f"steps, per CPU-second", p.n, cpu_new, unit="obs/s", target=30e6)
     main.check = ("default settings (hc band, forgetting 0.995, guard on); rate per second of "
                   "process CPU time, so a busy machine's waiting is not counted")
+    prev = rate_row("the k = 2 step before the second round (benchmarks/estimator_previous.py), "
+                    "same loop without reference counting", p.n, cpu_prev, unit="obs/s")
+    prev.reference = True
+    prev.ratio = (f"elmon {main.value / prev.value:.2f}x faster" if main.value >= prev.value
+                  else f"elmon {prev.value / main.value:.2f}x slower")
+    prev.check = (f"outputs ({p.n:,} x {K.NOUT}) and final states identical to the bit "
+                  f"(compared as int64): {'agrees' if same_prev else '**DIFFERS**'}")
     ref = rate_row("the same loop compiled with reference counting, model and form chosen per "
                    "row (before issue 15)", p.n, cpu_old, unit="obs/s")
     ref.reference = True
@@ -90,7 +114,7 @@ def _kernel_rows(ctx: Context) -> list[Row]:
                  else f"elmon {ref.value / main.value:.2f}x slower")
     ref.check = (f"outputs ({p.n:,} x {K.NOUT}) and final states identical to the bit: "
                  f"{'agrees' if same else '**DIFFERS**'}")
-    return [main, ref]
+    return [main, prev, ref]
 
 
 def _learn_one_rows(ctx: Context) -> list[Row]:
@@ -111,6 +135,19 @@ def _learn_one_rows(ctx: Context) -> list[Row]:
             learn(x, q)
         return est
 
+    def previous():
+        # learn_one as it was before the second round: the dispatcher call, the row in numpy
+        est = ElasticityRLS(forgetting=0.99)
+        row, args, learn, log = est._learn_args[1], est._learn_args, K.rls_learn, math.log
+        for x, q in zip(xs, qty):
+            p = float(x["price"])
+            qq = float(q)
+            if not (0.0 < p < math.inf and 0.0 < qq < math.inf):
+                raise ValueError("benchmark rows are valid")
+            row[1] = log(p)
+            learn(*args, log(qq))
+        return est
+
     def old():
         est = ElasticityRLS(forgetting=0.99)
         for x, q in zip(xs, qty):
@@ -124,25 +161,37 @@ def _learn_one_rows(ctx: Context) -> list[Row]:
     e.learn_one(xs[0], qty[0])
     K.rls_step(e._state, design_row(xs[0], e._specs), 1.0, e._k, *e.kernel_args, e._out,
                e._work)
-    t_new, t_old, a, b = [], [], None, None
+    t_new, t_old, t_prev, a, b, c = [], [], [], None, None, None
     for _ in range(ctx.runs):
         _, t, a = _cpu(new)
         t_new.append(t)
+        _, t, c = _cpu(previous)
+        t_prev.append(t)
         _, t, b = _cpu(old)
         t_old.append(t)
     same = np.array_equal(a._state, b._state, equal_nan=True) and \
         np.array_equal(a._out, b._out, equal_nan=True)
+    same_prev = np.array_equal(a._state.view(np.int64), c._state.view(np.int64)) and \
+        np.array_equal(a._out.view(np.int64), c._out.view(np.int64))
     main = rate_row(f"ElasticityRLS.learn_one, {n:,} calls from Python (price only), per "
                     f"CPU-second", n, t_new, target=1e6)
     main.check = ("process CPU time of the loop (the shared machine's waiting not counted); "
-                  "includes the checks of price and quantity")
+                  "includes the checks of price and quantity; the step is called through its "
+                  "compiled entry (rls.compiled_entry: no per-call type dispatch) with the log "
+                  "price as a float argument")
+    prev = rate_row("its previous form: rls_learn through numba's dispatcher, seven arguments, "
+                    "the log price written into the design row in numpy", n, t_prev)
+    prev.reference = True
+    prev.ratio = f"elmon {main.value / prev.value:.2f}x faster"
+    prev.check = (f"final state and output row identical to the bit: "
+                  f"{'agrees' if same_prev else '**DIFFERS**'}")
     ref = rate_row("the previous call: design_row + check_quantity + rls_step with fifteen "
                    "arguments", n, t_old)
     ref.reference = True
     ref.ratio = f"elmon {main.value / ref.value:.1f}x faster"
     ref.check = (f"final state and output row identical to the bit: "
                  f"{'agrees' if same else '**DIFFERS**'}")
-    return [main, ref]
+    return [main, prev, ref]
 
 
 def run(ctx: Context) -> list[Row]:

@@ -63,23 +63,33 @@ MEASURES = {
         "first render."),
 }
 
+#: why the estimator kernel misses its targets (issue 15 profile)
+KERNEL_CAUSE = (
+    "measured for issue 15: not the loop's overhead (the same loop over the same rows with a "
+    "trivial body, per-row array views included, runs at ~170M obs per CPU-second; the loop "
+    "is compiled without reference counting) but the step itself, about 55-60 ns a row, the "
+    "same for one series as for 10,000 (so neither memory nor the series' own recursion sets "
+    "it). A copy of the step without its divisions, square roots and exp runs about 3x "
+    "faster, but packing the independent divisions into 4-lane vector instructions (a quarter "
+    "of the divider's work) gave only 5-15%, every bit unchanged: what costs is their latency "
+    "along each row's chain (A01^2/A00 -> s_b -> b -> a -> V -> V/dof -> sqrt, 13-20 cycles "
+    "each, and the call to exp for Duan's smearing sum), which the processor overlaps little "
+    "from one row to the next (a row is ~400 instructions); the bare update of theta and P "
+    "beside it computes none of the variance, interval, guard or status. Exactness rules "
+    "out approximating them. Next to try: 4 series per vector instruction in the batch loop "
+    "(rows of different series are independent and every lane does the same IEEE "
+    "operation, so the bits stay), and the interval and status only for rows that are kept "
+    "(thinned estimates)")
+
+
 #: causes of misses seen when profiling, keyed by the start of the figure's name
 CAUSES = {
     "detection:": (
         "the cell named beside the figure is the worst of its check; the section 'Detection "
         "against the information bound' has every cell side by side with the old slope chart "
         "and river's detectors"),
-    "estimator kernel, 2 parameters": (
-        "the step computes far more than the RLS update: compare the bare compiled update of "
-        "theta and P on the same rows (a reference row of this figure); the cost is in the "
-        "extras per observation (sandwich matrix S, two exponentially weighted "
-        "variances for the excitation guard, the t-quantile lookup, interval, status, ten "
-        "output columns), and in sharing the two cores (see the core share). With one series every "
-        "step waits for the one before (a chain of dependent divisions), so even the bare "
-        "update runs several times slower there than over many interleaved series. Closing it: "
-        "compute the interval and status only for rows that are kept or shown (thinned "
-        "estimates, the last row of a batch), keep S and the guard statistics in a "
-        "cheaper form, and write fewer output columns in the bulk path"),
+    "estimator kernel, 2 parameters": KERNEL_CAUSE,
+    "estimator batch loop": KERNEL_CAUSE,
     "live path: Monitor.observe": (
         "the calls take the one-row path and the median is well under 1 ms, but the tail is "
         "not: the CPU time per call (shown beside the wall time) has a p99 above 1 ms of its "
@@ -153,6 +163,11 @@ def _misses(rows: list[Row]) -> list[str]:
                 line += f" Why: {cause}."
             out.append(line)
     return out
+
+
+def missed_lines(rows: list[Row]) -> list[str]:
+    """The 'Missed targets' lines of ``rows`` (one per missed target, with its cause)."""
+    return _misses(rows)
 
 
 def _short(name: str) -> str:

@@ -55,10 +55,14 @@ def _marks(group: str) -> tuple[str, str]:
 
 def partial_section(group: str, rows: list[Row], info: dict, elapsed: float) -> str:
     """A group's figures from a ``--only ... --update`` run, with the machine and load."""
+    from benchmarks import notes
+
     start, end = _marks(group)
+    missed = notes.missed_lines(rows)
+    why = ["", "Missed targets of this group:", "", *missed] if missed else []
     return "\n".join([start, f"## Figures of group `{group}` (partial run: `python -m "
                       f"benchmarks.run --only {group} --update`)", "",
-                      machine_text(info, elapsed), "", table(rows), "", end])
+                      machine_text(info, elapsed), "", table(rows), *why, "", end])
 
 
 def update_section(text: str, group: str, section: str) -> str:
