@@ -2,7 +2,8 @@
 gate's arrays grew one series at a time; ``make bench`` group ``restart`` times it now).
 
 A monitor over 40 series (one of them only zero-quantity rows, so it has no gate state; half
-of the checkpoints rewritten in the older JSON-list form of the state vector) is closed and
+of the checkpoints rewritten in the older JSON-list form of the state vector, a third of them
+with the older JSON-object form of the validation gate's state) is closed and
 opened again: the restored state matrix, gate arrays and per-series counts equal what the
 closing monitor held, bit for bit, and the restarted monitor then writes exactly the
 estimates of one that never stopped. A series reset by ``elmon series reset`` comes back as a
@@ -20,6 +21,8 @@ import pandas as pd
 from monitor.estimators.rls import floats_to_json
 from monitor.live.checkpoints import vector_from_json
 from monitor.live.monitor import Monitor
+from monitor.rows.gate_state import GATE_PREFIX, gate_parts
+from monitor.rows.validate import WINDOW
 from monitor.settings import validate
 from monitor.store.live import reset_series
 
@@ -53,13 +56,21 @@ def _memory(mon) -> dict:
                        book.rows_read)}
 
 
-def _old_form(db, every: int = 2) -> None:
-    """Every ``every``-th checkpoint's state vector rewritten as the older JSON list."""
+def _old_form(db, every: int = 2, gate_every: int = 3) -> None:
+    """Every ``every``-th checkpoint's state vector rewritten as the older JSON list, and every
+    ``gate_every``-th gate state as the older JSON object (``SeriesGate.state_of``'s dict)."""
     with sqlite3.connect(db) as con:
         rows = con.execute("SELECT series, state FROM checkpoints ORDER BY series").fetchall()
-        for series, text in rows[::every]:
+        for k, (series, text) in enumerate(rows):
             st = json.loads(text)
-            st["pipeline"] = floats_to_json(vector_from_json(None, st["pipeline"]))
+            if k % every == 0:
+                st["pipeline"] = floats_to_json(vector_from_json(None, st["pipeline"]))
+            if k % gate_every == 0 and st.get("gate") is not None:
+                assert st["gate"].startswith(GATE_PREFIX)      # written in the binary form
+                last, ring, ring_ts, count, qring, qcount = gate_parts(st["gate"], WINDOW)
+                st["gate"] = {"last_ts": last, "ring": ring.tolist(),
+                              "ring_ts": ring_ts.tolist(), "count": count,
+                              "qring": qring.tolist(), "qcount": qcount}
             con.execute("UPDATE checkpoints SET state = ? WHERE series = ?",
                         (json.dumps(st), series))
 

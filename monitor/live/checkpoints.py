@@ -7,8 +7,11 @@ batch that produced it)::
                                # "f8:" + base64 of its float64 values, little-endian (issue 15;
                                # stores written before hold a JSON list of floats, still read)
                                # (null after `elmon series reset`: a new series' state)
-     "gate": {"last_ts", "ring", "ring_ts", "count"},   # SeriesGate: duplicates, lateness, units
-                               # (after a reset only last_ts and count = 0)
+     "gate": "g8:...",         # SeriesGate (duplicates, lateness, units): "g8:" + base64 of
+                               # one binary record (monitor.rows.gate_state); stores written
+                               # before hold an object {"last_ts", "ring", "ring_ts", "count",
+                               # "qring", "qcount"}, still read (after a reset: an object with
+                               # only last_ts and count = 0)
      "updates": n,             # estimator updates so far (estimate thinning counts from it)
      "last_status": "ok",      # status of the last update (thinning keeps status changes)
      "last_obs_ns": t,         # newest observation time, zero-quantity rows included
@@ -32,6 +35,7 @@ import numpy as np
 from monitor.errors import ConfigError, StoreError, ValidationError
 from monitor.estimators.rls import floats_from_json, floats_to_json
 from monitor.live.batch import NAT
+from monitor.rows.gate_state import gate_bytes, gate_parts, gate_text, record_dtype
 from monitor.rows.isotime import format_ts
 from monitor.rows.validate import SeriesGate
 from monitor.store import from_json
@@ -106,33 +110,37 @@ class SeriesBook:
             self.states = np.zeros((0, self.width), dtype=np.float64)
 
 
-def gate_from_state(state: dict, window: int) -> tuple:
+def gate_from_state(state, window: int) -> tuple:
     """``(last_ts, ring, ring_ts, count, qring, qcount)`` of one series from a checkpoint's
-    ``gate`` dict (:meth:`SeriesGate.state_of`); a dict without rings (a reset series) or
-    without ``qring`` (an older version) starts them at zero, as :meth:`SeriesGate.restore`
-    does."""
-    last = state.get("last_ts")
-    zeros = np.zeros(window)
-    return (NAT if last is None else int(last),
-            np.asarray(state.get("ring", zeros), dtype=np.float64),
-            np.asarray(state.get("ring_ts", zeros), dtype=np.int64), int(state["count"]),
-            np.asarray(state.get("qring", zeros), dtype=np.float64),
-            int(state.get("qcount", 0)))
+    gate state (:func:`monitor.rows.gate_state.gate_parts`: the binary text, or the object of
+    older checkpoints; one without rings, as a reset writes, or without ``qring``, as older
+    versions wrote, starts them at zero, as :meth:`SeriesGate.restore` does)."""
+    return gate_parts(state, window)
 
 
-def _gate_arrays(gate: SeriesGate, names: list[str], parts: list[tuple]) -> None:
-    """Set every restored series' gate state at once (``parts[k]`` of ``names[k]`` from
-    :func:`gate_from_state`): one array per field, instead of growing the gate's arrays one
-    series at a time (quadratic: 100k series took 170 s that way)."""
+def _gate_arrays(gate: SeriesGate, names: list[str], parts: list) -> None:
+    """Set every restored series' gate state at once (``parts[k]`` of ``names[k]``: the raw
+    binary record (:func:`monitor.rows.gate_state.gate_bytes`) or the tuple of
+    :func:`gate_from_state` for an older checkpoint): one array per field, instead of growing
+    the gate's arrays one series at a time (quadratic: 100k series took 170 s that way). The
+    binary records are decoded together by one ``np.frombuffer``."""
     window = gate.ring.shape[1]
     n = len(names)
     gate.index = {name: k for k, name in enumerate(names)}
-    gate.last_ts = np.fromiter((p[0] for p in parts), dtype=np.int64, count=n)
-    gate.ring = np.array([p[1] for p in parts], dtype=np.float64).reshape(n, window)
-    gate.ring_ts = np.array([p[2] for p in parts], dtype=np.int64).reshape(n, window)
-    gate.count = np.fromiter((p[3] for p in parts), dtype=np.int64, count=n)
-    gate.qring = np.array([p[4] for p in parts], dtype=np.float64).reshape(n, window)
-    gate.qcount = np.fromiter((p[5] for p in parts), dtype=np.int64, count=n)
+    binary = np.fromiter((isinstance(p, bytes) for p in parts), dtype=bool, count=n)
+    rec = np.zeros(n, dtype=record_dtype(window))
+    if binary.any():
+        rec[binary] = np.frombuffer(b"".join(p for p in parts if isinstance(p, bytes)),
+                                    dtype=record_dtype(window))
+    for k in np.flatnonzero(~binary):
+        last, ring, ring_ts, count, qring, qcount = parts[k]
+        rec[k] = (last, count, qcount, ring, ring_ts, qring)
+    gate.last_ts = rec["last_ts"].astype(np.int64)
+    gate.ring = rec["ring"].astype(np.float64).reshape(n, window)
+    gate.ring_ts = rec["ring_ts"].astype(np.int64).reshape(n, window)
+    gate.count = rec["count"].astype(np.int64)
+    gate.qring = rec["qring"].astype(np.float64).reshape(n, window)
+    gate.qcount = rec["qcount"].astype(np.int64)
 
 
 def _binary_vector(obj, width: int) -> bytes | None:
@@ -161,7 +169,7 @@ def restore(store, pipeline) -> tuple[SeriesGate, SeriesBook]:
     window = gate.ring.shape[1]
     book = SeriesBook(width=width)
     chunks, fresh = [], None
-    gate_names, gate_parts = [], []
+    gate_names, gate_rows = [], []
     for series, text in checkpoint_texts(store):
         st = from_json(text) or {}
         obj = st.get("pipeline")
@@ -185,7 +193,8 @@ def restore(store, pipeline) -> tuple[SeriesGate, SeriesBook]:
         chunks.append(raw)
         if st.get("gate") is not None:
             try:
-                gate_parts.append(gate_from_state(st["gate"], window))
+                rec = gate_bytes(st["gate"], window)
+                gate_rows.append(rec if rec is not None else gate_from_state(st["gate"], window))
             except (ConfigError, ValueError, KeyError, TypeError) as exc:
                 raise _changed_model(series, f"gate state unreadable ({exc})") from None
             gate_names.append(series)
@@ -198,7 +207,7 @@ def restore(store, pipeline) -> tuple[SeriesGate, SeriesBook]:
     book.states = np.frombuffer(b"".join(chunks), dtype="<f8").astype(np.float64) \
         .reshape(n, width)
     del chunks
-    _gate_arrays(gate, gate_names, gate_parts)
+    _gate_arrays(gate, gate_names, gate_rows)
     book.rows_read = rows_read_by_source(store)
     if not getattr(store, "readonly", False):
         apply_pending_resets(store, book, gate, pipeline)   # requested while no one applied
@@ -221,7 +230,7 @@ def checkpoints(book: SeriesBook, gate: SeriesGate, pipeline, touched: dict[str,
     for s, last_obs, iso in zip(names, newest.tolist(), text):
         t = touched[s]
         vec = t["vec"] if t["vec"] is not None else book.states[book.index[s]]
-        gstate = gate.state_of(s) if s in gate.index else None
+        gstate = gate_text(gate, gate.index[s]) if s in gate.index else None
         t["last_obs"] = last_obs
         state = {"pipeline": vector_to_json(pipeline, vec), "gate": gstate,
                  "updates": t["updates"], "last_status": t["last_status"],

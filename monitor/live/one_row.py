@@ -32,6 +32,7 @@ import pandas as pd
 from monitor.estimators import kernel as K
 from monitor.estimators.transform import design_matrix
 from monitor.live.batch import NAT, alert_changes
+from monitor.rows.gate_state import gate_text
 from monitor.rows.validate import TS_MAX_NS, TS_MIN_NS, log_qratio, ordered_checks
 from monitor.store import to_json, wall_ts
 from monitor.store.live import write_one
@@ -181,7 +182,7 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, off
         changes = alert_changes(res, est, [series], sid)
     source = "api"
     row = mon.book.rows_read.get(source, 0) + 1
-    gate_state = mon.gate.state_of(series)
+    gate_state = gate_text(mon.gate, mon.gate.index[series])
     last_obs = max(mon.book.last_obs.get(series, NAT), ns)
     state = {"pipeline": mon.state_json(res.states[0]), "gate": gate_state, "updates": updates,
              "last_status": status, "last_obs_ns": last_obs,

@@ -20,6 +20,7 @@ from typing import Any
 import pandas as pd
 
 from monitor.errors import StoreError
+from monitor.rows.gate_state import last_time
 from monitor.store import Store, from_json, parse_ts, wall_ts
 from monitor.store.core import accepts_path
 from monitor.store.detection import DELAY50_SQL
@@ -146,9 +147,9 @@ def fresh_state(state: dict | None) -> dict:
     pipeline state (``null``) and gate, keeping only what keeps time order and duplicate
     detection (the gate's and the series' newest times) and the zero-row count."""
     state = state or {}
-    gate = state.get("gate") or {}
+    gate = state.get("gate")
     return {"pipeline": None,
-            "gate": {"last_ts": gate.get("last_ts"), "count": 0} if gate else None,
+            "gate": {"last_ts": last_time(gate), "count": 0} if gate else None,
             "updates": 0, "last_status": None,
             "last_obs_ns": state.get("last_obs_ns"),
             "zero_skipped": state.get("zero_skipped", 0)}
