@@ -133,3 +133,19 @@ def test_an_empty_batch_opens_nothing():
     test's warm-up did): no event, no error."""
     res = np.empty((0, F.FB_NOUT))
     assert F.verdict_events(res, np.zeros(0, dtype=np.int64), np.zeros(3)) == []
+
+
+def test_one_row_at_a_time_gives_the_batch_events():
+    """The one-row shortcut of verdict_events (the live path's Monitor.observe) opens and clears
+    on exactly the rows the batch form does, with the same values."""
+    sim = observational(seed=9, n_series=5)
+    sid, lp, e, use = naive_innovations(sim, ["weekend"])
+    whole = F.run_feedback(sid, lp, e, use)
+    ev = F.verdict_events(whole.out, sid, np.zeros(5))
+    verdict = np.zeros(5)
+    one = []
+    for j in range(len(sid)):
+        one += [(j, *rest) for _, *rest in F.verdict_events(whole.out[j:j + 1], sid[j:j + 1],
+                                                              verdict)]
+        verdict[sid[j]] = whole.out[j, F.FB_VERDICT]
+    assert len(ev) >= 5 and one == ev               # every series opens at least once

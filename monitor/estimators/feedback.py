@@ -231,6 +231,12 @@ def verdict_events(out: np.ndarray, sid: np.ndarray, before: np.ndarray) -> list
     v = out[:, FB_VERDICT]
     if len(v) == 0:                       # an empty batch opens and clears nothing
         return []
+    if len(v) == 1:                       # one row (Monitor.observe): its series' verdict before
+        p0, v0 = float(before[int(sid[0])]), float(v[0])
+        if (v0 == V_FEEDBACK) == (p0 == V_FEEDBACK):
+            return []
+        return [(0, int(sid[0]), "open" if v0 == V_FEEDBACK else "clear", float(out[0, FB_T]),
+                 float(out[0, FB_COEF]), int(out[0, FB_DIRECTION]))]
     prev = np.asarray(before, dtype=np.float64)[sid].copy()
     # previous verdict of each row within its series: shift by series
     order = np.argsort(sid, kind="stable")
