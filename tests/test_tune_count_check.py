@@ -100,13 +100,17 @@ def test_poisson_counts_keep_the_design_and_the_command_says_so(tmp_path, capsys
     assert "count health: 0 of 4 series over-dispersed" in out
 
 
-def test_over_dispersed_counts_are_drawn_negative_binomial_and_raise_the_rate(tmp_path):
+def test_over_dispersed_counts_are_drawn_negative_binomial_and_break_the_level_design(tmp_path):
     """NB2 counts (alpha 3) checked against the Poisson-designed thresholds: the check finds the
     over-dispersion in every series, draws its paths with it, and they raise more false
-    level alerts than the same paths drawn as Poisson counts. (The Poisson model's split
-    detector is far below its design on both, measured 20:20 UTC 4 December 2026 at commit 645e4ec: 0 false
-    alerts on Poisson paths, 0.11 times the design at alpha 3, so the verdict stays 'holds
-    (conservative)' rather than 'breaks'.)"""
+    level alerts than the same paths drawn as Poisson counts, enough for the check to flag
+    the level chart and name the over-dispersion as the cause. The split detector weighs rows
+    by the Poisson working weights and scales by the Pearson dispersion (monitor.detectors.
+    split_glr, "Working weights"), which holds the design on Poisson counts but not the heavy
+    tails of over-dispersed ones: level alerts at 4.5-7.1x the design at alpha 3 (measured 23:15
+    UTC 4 December 2026, means 2 and 10, ARL0 2,000, 100 series of 5,000 rows each). Before the weights
+    the detector was far below its design on both (0 false alerts on Poisson paths, 0.11x at
+    alpha 3), and this check could not flag the over-dispersion."""
     count_log(tmp_path / "nb.csv", alpha=3.0)
     s = calibrate(tmp_path / "nb.csv", tmp_path / "o", config=validate(CFG), arl0=ARL0,
                   n_steps=BUDGET, progress=False, now_ns=NOW)
@@ -117,6 +121,9 @@ def test_over_dispersed_counts_are_drawn_negative_binomial_and_raise_the_rate(tm
     level = a["kinds"]["level_shift"]
     assert level["alerts"] > level["reference"]["alerts"]
     assert level["ratio"] > level["reference"]["ratio"]
+    assert level["verdict"] == "breaks" and level["flagged"] and a["flagged"]
+    assert level["reference"]["ratio"] <= 1.25     # Poisson counts on the same means: holds
+    assert "over-dispersion" in level["message"]
     for k in a["kinds"].values():            # the same verdict rule as the log-log check
         assert k["verdict"] == ("breaks" if k["ratio_lo"] > 1.25 else
                                 "holds" if k["ratio"] <= 1.25 else "unsettled")

@@ -109,7 +109,7 @@ class SplitGLR:
         return self
 
     def _fire(self, slope: bool) -> None:
-        S.split_report(self._state, 0, slope, 0.0, self._rep)
+        S.split_report(self._state, 0, slope, 0.0, self._rep, self._p)
         self.alarm = "elasticity_change" if slope else "level_shift"
         self.report = report_dict(self._rep)
         if slope:

@@ -65,6 +65,50 @@ retail demo's rye-crackers (iid errors, lag-1 autocorrelation of ``x`` 0.20 from
 it read 0.15-0.20 (raised to 0.25 by the one-se margin), shrank the slope statistic by about
 40% and hid a change of b from -1.4 to -2.2 for 113 rows; capped, it is found after 15 rows.
 
+Working weights (the Poisson model)
+-----------------------------------
+Under ``[estimator] model = "poisson"`` the pipeline feeds the estimator's working response
+``z = x' theta_{t-1} + (q - mu) / mu`` (``mu = exp(x' theta_{t-1} + offset)``, the one-step
+prediction; :mod:`monitor.estimators.poisson_kernel`), whose variance ``phi / mu`` changes with
+the level and the price. Each row enters every sum with the working weight ``w = mu``
+(:func:`split_step_w`): ``n = sum w``, ``Sx = sum w x``, ``Sxx = sum w x^2``, ``Sy = sum w z``,
+``Sxy = sum w x z``, and the scale is estimated from the standardized innovation ``e = sqrt(w)
+(z - z_hat) = (q - mu) / sqrt(mu)``, the Pearson residual, so ``sigma^2`` estimates the
+Pearson dispersion ``phi`` (1 for Poisson counts, ``1 + alpha mu`` on average for negative
+binomial ones). The formulas above then hold with the weighted sums: a weighted least-squares
+fit of ``z`` is one Fisher-scoring step of the Poisson regression (iteratively reweighted least
+squares; McCullagh & Nelder 1989, sec. 2.5), and each ``2 G`` is the Poisson score statistic
+(Rao 1948) of the change's regressor (``1_A`` for the level, ``1_A x`` beside it for the slope),
+divided by ``phi`` (quasi-likelihood; Wedderburn 1974): the GLR in filter form of Willsky &
+Jones (1976) on the Poisson model's own scale. The slope score becomes ``u = sqrt(w) (x -
+xbar) e`` and the information ``E[w (x - xbar)^2]``, so the sandwich factor ``kappa`` and the
+information per observation ``db^2 E[mu (x - xbar)^2] / (2 phi)`` (:func:`info_per_obs`) keep
+their meaning. Rules that count rows use ``sum w / c``, with ``c`` the EW mean weight of the
+series (:func:`row_unit`; held in ``D_HX``, whose variance function is not used here: the
+weights already carry the variance's dependence on the mean), so the state layout is the log-log
+model's. A level candidate also needs an expected count ``sum mu >= MIN_COUNT_LEVEL`` after its
+change time (a few rows of small counts are far from normal). With weight 1 (the log-log
+models) everything is as described above, to the bit.
+
+Measured (pipeline, Poisson counts, b = -1.5, log-price sd 0.15, forgetting 0.995; 100-200
+series of 5,000 rows per cell; alerts per 10,000 observations over the design, slope / level):
+
+=====================  ===============  ===============
+mean count             ARL0 2,000       ARL0 20,000
+=====================  ===============  ===============
+0.5                    0.38x / 0.38x    0.82x / 0.38x
+2                      0.94x / 1.20x    0.92x / 1.18x
+10                     1.06x / 1.32x    1.10x / 1.06x
+=====================  ===============  ===============
+
+(before the weights: 3.8x / 41x at a mean of 0.5 and no alert at all at 2 and 10, ARL0
+2,000). Negative binomial counts break the level chart's design (heavy tails that ``phi`` does
+not carry: 2.4-3.9x at NB2 alpha 1, 4.5-7.1x at alpha 3, means 2 and 10, ARL0 2,000); ``elmon
+tune`` flags it (:mod:`monitor.tuning.count_check`). Delays against Lorden's bound at ARL0
+2,000: a level shift by 2.7 in 17 / 5 / 2 rows at means 0.5 / 2 / 10 (bound 15 / 3.8 / 0.8),
+by 0.7 in 208 / 68 / 14 (bound 295 / 74 / 15); a change of 0.5 in b pivoting at the typical
+price in 178 rows at a mean of 10 (bound 258).
+
 Start rule and re-anchoring
 ---------------------------
 Rows are fed only once the estimator has left ``warming_up``. The level chart starts when
@@ -150,8 +194,8 @@ SPLIT_SIZE = CN0 + NCF
 
 # ---------------------------------------------------------------- parameters
 (Q_HS, Q_HL, Q_CAP, Q_MINROWS, Q_LAMS, Q_SESTART, Q_LEVEL_ON, Q_SLOPE_ON, Q_HOTS,
- Q_HOTL, Q_LMARGIN) = range(11)
-SPLIT_PARAMS = 11
+ Q_HOTL, Q_LMARGIN, Q_WEIGHTED, Q_MIN_WEIGHT, Q_MIN_WEIGHT_S) = range(14)
+SPLIT_PARAMS = 14
 DEFAULT_REF_CAP = 2000.0
 DEFAULT_MIN_ROWS = 30.0
 DEFAULT_LAM_SCALE = 0.995
@@ -175,6 +219,19 @@ MIN_AFTER_LEVEL = 3.0
 #: with 30 (min_rows), a second shift within 30 rows of a level alarm could never alarm
 #: (measured: 7 of 400 series missed a -50% shift under step prices that way)
 MIN_BEFORE_LEVEL = 10.0
+#: with working weights (Poisson model): fewest expected counts (sum of ``mu``) after a level
+#: candidate's change time. A few rows of small counts are far from normal (their upper tail is
+#: much heavier): at a mean of 0.5 with the row rules alone the level chart alarmed about 2.5x
+#: as often as designed (ARL 790 at ARL0 2,000, detector fed the true means). Measured in the
+#: pipeline (level alerts / design at ARL0 2,000 and 20,000), with 5: mean 0.5 0.72x / 0.88x,
+#: mean 2 1.63x / -; with 7: 0.55x / 0.54x, 1.46x / 1.62x; with 10: 0.38x / 0.38x, 1.20x /
+#: 1.18x (mean 10: 1.32x / 1.06x with any of them). The safe side: 10
+MIN_COUNT_LEVEL = 10.0
+#: the same for a slope candidate. At a mean of 0.5 the slope statistic's tail is heavier than
+#: the design's, so no single value fits both ARL0s: with 5 the pipeline measured 0.59x at ARL0
+#: 2,000 and 1.8x at 20,000, with 10 0.38x and 0.82x (the lower, safe side at both); from a
+#: mean of about 1 up the rows rule (MIN_AFTER) is the stricter one
+MIN_COUNT_SLOPE = 10.0
 #: rows after an alarm during which the scale is not updated (the estimator re-converges).
 #: Longer is worse for false alarms: a false alarm is more likely when the scale happens to be
 #: low, and freezing it for 200 rows more than doubled the level chart's false alarms on held
@@ -200,16 +257,44 @@ def state_size() -> int:
 def params(h_slope: float, h_level: float, *, ref_cap: float = DEFAULT_REF_CAP,
            min_rows: float = DEFAULT_MIN_ROWS, lam_scale: float = DEFAULT_LAM_SCALE,
            se_start: float = DEFAULT_SE_START, level_on: bool = True,
-           slope_on: bool = True, level_margin: float = MARGIN) -> np.ndarray:
+           slope_on: bool = True, level_margin: float = MARGIN,
+           weighted: bool = False, min_weight: float | None = None,
+           min_weight_slope: float | None = None) -> np.ndarray:
     """Parameter vector of :func:`split_step` (thresholds in units of G = log-likelihood
-    ratio, i.e. half the chi-square(1) statistic)."""
+    ratio, i.e. half the chi-square(1) statistic). ``weighted``: rows come with working
+    weights (:func:`split_step_w`, the Poisson model; module docstring, "Working weights");
+    ``min_weight``: fewest total weight (expected count) after a level candidate's change time
+    for it to alarm (default :data:`MIN_COUNT_LEVEL` with weights, 0 without);
+    ``min_weight_slope``: the same for a slope candidate (:data:`MIN_COUNT_SLOPE`)."""
     p = np.zeros(SPLIT_PARAMS)
     p[Q_HS], p[Q_HL], p[Q_CAP], p[Q_MINROWS] = h_slope, h_level, ref_cap, min_rows
     p[Q_LAMS], p[Q_SESTART] = lam_scale, se_start
     p[Q_LEVEL_ON], p[Q_SLOPE_ON] = float(level_on), float(slope_on)
     p[Q_HOTS], p[Q_HOTL] = 0.5 * h_slope, 0.5 * h_level
     p[Q_LMARGIN] = level_margin
+    p[Q_WEIGHTED] = float(weighted)
+    p[Q_MIN_WEIGHT] = (MIN_COUNT_LEVEL if weighted else 0.0) if min_weight is None else min_weight
+    p[Q_MIN_WEIGHT_S] = ((MIN_COUNT_SLOPE if weighted else 0.0) if min_weight_slope is None
+                         else min_weight_slope)
     return p
+
+
+@njit(cache=True, inline="always")
+def row_unit(st, at, p):
+    """The weight of a typical row, ``c``: 1 without working weights; with them the EW mean
+    of the weights (module docstring, "Working weights"), held in ``D_HX``. A sum of weights
+    divided by ``c`` counts rows (for the rules that are about rows: fewest rows on each side
+    of a change time, the reference cap, degrees of freedom, the change's first row)."""
+    if p[Q_WEIGHTED] == 0.0:
+        return 1.0
+    c = st[at + D_HX]
+    return c if c > 0.0 else 1.0
+
+
+@njit(cache=True, inline="always")
+def _nrows(n, unit):
+    """Rows in a sample of weight ``n`` (whole rows; exact without weights)."""
+    return np.floor(n / unit + 0.5)
 
 
 # ---------------------------------------------------------------- helpers
@@ -265,13 +350,14 @@ def _lrf(r, n):
 
 
 @njit(cache=True, inline="always")
-def _var_at(st, at, s2, mx):
+def _var_at(st, at, s2, mx, weighted):
     """The error variance at mean log price ``mx`` (centred coordinates): ``sigma^2 + g (mx -
     xbar)`` with ``g = E[(x - xbar) e^2] / E[(x - xbar)^2]`` (a linear variance function, so
     the level test of a few rows at high or low prices uses their own variance), kept within
-    [sigma^2 / 4, 4 sigma^2]."""
+    [sigma^2 / 4, 4 sigma^2]. With working weights (``weighted``) ``sigma^2`` itself: the
+    weights carry the variance's dependence on the mean, and ``D_HX`` holds the row unit."""
     xx = st[at + D_XX]
-    if not (xx > 0.0):
+    if weighted or not (xx > 0.0):
         return s2
     # the slope of the variance per sd of log price, relative to sigma^2, has a standard error
     # of about sqrt(2 / neff) under constant variance (normal errors); it is shrunk towards 0
@@ -301,16 +387,18 @@ def _moments(n, sx, sxx, sy, sxy):
 
 
 @njit(cache=True, inline="always")
-def _candidate(st, at, j, s2, kap, rs, rl, minrows):
+def _candidate(st, at, j, s2, kap, rs, rl, minw_s, unit, weighted):
     """``(G_s, G_l, n_A, n_B, G_l0, G_p)`` of checkpoint ``j`` (-1 where undefined; ``G_l`` is
     computed from one row on each side of the change time, the caller decides which may
     alarm; ``G_l0`` and ``G_p`` compare a level-only with a slope-only change for the label,
-    see :func:`_level_vs_pivot`)."""
+    see :func:`_level_vs_pivot`). ``unit``: the weight of a typical row (:func:`row_unit`),
+    ``weighted``: working weights in use, ``minw_s``: fewest total weight after the change
+    time for a slope statistic."""
     o = at + SLOT0 + SLOT_W * j
     na = st[at + C0] - st[o]
     gs = -1.0
     gl = -1.0
-    if na < 1.0 or not (s2 > 0.0):
+    if na < 1.0 * unit or not (s2 > 0.0):
         return gs, gl, na, 0.0, 0.0, 0.0
     mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
                                   st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
@@ -321,22 +409,24 @@ def _candidate(st, at, j, s2, kap, rs, rl, minrows):
     cyb += st[at + L0 + 2]
     nbs = nb + st[at + L0]
     tiny = 1e-12
-    if na >= MIN_AFTER and cxa > tiny * na and cxb > tiny:
+    ra = na / unit
+    rb = nbs / unit
+    if na >= MIN_AFTER * unit and na >= minw_s and cxa > tiny * na and cxb > tiny:
         db = cya / cxa - cyb / cxb
-        gs = 0.5 * db * db / (s2 * kap * (_lrf(rs, na) / cxa + _lrf(rs, nbs) / cxb))
+        gs = 0.5 * db * db / (s2 * kap * (_lrf(rs, ra) / cxa + _lrf(rs, rb) / cxb))
     gl0 = 0.0
     gp = 0.0
-    if nb >= 1.0:
+    if nb >= 1.0 * unit:
         cx = cxa + cxb
         dx = mxa - mxb
         bw = (cya + cyb) / cx if cx > tiny else 0.0
         if cx > tiny or dx == 0.0:
-            v = (_lrf(rl, na) * _var_at(st, at, s2, mxa) / na
-                 + _lrf(rl, nb) * _var_at(st, at, s2, mxb) / nb
-                 + (s2 * kap * _lrf(rs, na + nbs) * dx * dx / cx if cx > tiny else 0.0))
+            v = (_lrf(rl, ra) * _var_at(st, at, s2, mxa, weighted) / na
+                 + _lrf(rl, nb / unit) * _var_at(st, at, s2, mxb, weighted) / nb
+                 + (s2 * kap * _lrf(rs, ra + rb) * dx * dx / cx if cx > tiny else 0.0))
             d = mya - myb - bw * dx
             gl = 0.5 * d * d / v
-        gl0, gp = _level_vs_pivot(na, nb, dx, mya - myb, cxa, cya, cxb, cyb, s2 * _lrf(rl, na))
+        gl0, gp = _level_vs_pivot(na, nb, dx, mya - myb, cxa, cya, cxb, cyb, s2 * _lrf(rl, ra))
     return gs, gl, na, nb, gl0, gp
 
 
@@ -454,9 +544,22 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
     """Feed one row (state ``st[at:]``): ``x = log p``, ``y = y*`` (controls removed), ``e`` the
     estimator's one-step innovation (for the scale), ``n_obs`` the series' observation number,
     ``ts`` its time. Returns the flags (``SG_*``); the caller re-anchors after an alarm
-    (:func:`reanchor_slope` / :func:`reanchor_level`). A NaN ``x``, ``y`` or ``e`` is skipped."""
-    if not (x == x) or not (y == y) or not (e == e):
+    (:func:`reanchor_slope` / :func:`reanchor_level`). A NaN ``x``, ``y`` or ``e`` is skipped.
+    Every row has weight 1 (:func:`split_step_w` with ``w = 1``)."""
+    return split_step_w(st, at, x, y, e, 1.0, n_obs, ts, p)
+
+
+@njit(cache=True, inline="always")
+def split_step_w(st, at, x, y, e, wt, n_obs, ts, p):
+    """:func:`split_step` for a row of working weight ``wt > 0`` (module docstring, "Working
+    weights"): ``y`` the working response (controls removed), ``e = sqrt(wt) (y - y_hat)`` the
+    standardized innovation whose variance the scale estimates (the Pearson residual
+    ``(q - mu) / sqrt(mu)`` under the Poisson model, whose ``wt = mu``). With ``wt = 1`` (and
+    ``p[Q_WEIGHTED] = 0``) it is the unweighted detector to the bit. A row with a NaN or a
+    weight that is not positive is skipped."""
+    if not (x == x) or not (y == y) or not (e == e) or not (wt > 0.0):
         return 0
+    weighted = p[Q_WEIGHTED] != 0.0
     if st[at + D_NF] == 0.0:
         st[at + D_X0] = x
         for i in range(NSLOT):
@@ -464,7 +567,6 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
     x = x - st[at + D_X0]
     y = y
     lam = p[Q_LAMS]
-    cap = p[Q_CAP]
     # --- scale, autocorrelation and sandwich statistics (EW, weight D_W); frozen while a
     # chart's statistic is above half its threshold (a change building up would inflate it);
     # no winsorizing before min_rows rows (the scale is not yet known)
@@ -485,17 +587,26 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
                 ec = lim
             elif ec < -lim:
                 ec = -lim
-        u = xc * ec
+        # the slope score sqrt(wt) xc ec and the information wt xc^2 (weights 1: xc ec, xc^2)
+        u = (np.sqrt(wt) * xc) * ec
         st[at + D_S2] = s2 + (ec * ec - s2) * iw
         if st[at + D_NF] > 0.0:
             st[at + D_E1] += (ec * st[at + D_PE] - st[at + D_E1]) * iw
             st[at + D_U1] += (u * st[at + D_PU] - st[at + D_U1]) * iw
         st[at + D_UU] += (u * u - st[at + D_UU]) * iw
-        st[at + D_XX] += (xc * xc - st[at + D_XX]) * iw
-        st[at + D_HX] += (xc * ec * ec - st[at + D_HX]) * iw
+        st[at + D_XX] += (wt * xc * xc - st[at + D_XX]) * iw
+        if weighted:
+            # the row unit: EW mean of the weights (a value left by an earlier layout, or
+            # none yet, is replaced by this row's weight)
+            c = st[at + D_HX]
+            st[at + D_HX] = c + (wt - c) * iw if c > 0.0 else wt
+        else:
+            st[at + D_HX] += (xc * ec * ec - st[at + D_HX]) * iw
         st[at + D_PE] = ec
         st[at + D_PU] = u
     st[at + D_NF] += 1.0
+    unit = row_unit(st, at, p)
+    cap = p[Q_CAP] * unit
     # --- checkpoints (cascade), then the row enters the current sums
     t = st[at + D_T] + 1.0
     st[at + D_T] = t
@@ -516,11 +627,11 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
     if moved:  # data older than the new window start join the reference
         n, sx, sxx, sy, sxy = _rebase(st, at, NSLOT - 1)
         _add_ref(st, at, n, sx, sxx, sy, sxy, cap)
-    st[at + C0] += 1.0
-    st[at + C0 + 1] += x
-    st[at + C0 + 2] += x * x
-    st[at + C0 + 3] += y
-    st[at + C0 + 4] += x * y
+    st[at + C0] += wt
+    st[at + C0 + 1] += wt * x
+    st[at + C0 + 2] += wt * x * x
+    st[at + C0 + 3] += wt * y
+    st[at + C0 + 4] += wt * x * y
     # --- start rules
     s2, kap, rs, rl = _scales(st, at)
     flags = SG_FED
@@ -537,7 +648,7 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
                                 st[at + R0 + 3] + st[at + C0 + 3],
                                 st[at + R0 + 4] + st[at + C0 + 4])
         cxx += st[at + L0 + 1]
-        if cxx > 0.0 and s2 * kap * _lrf(rs, tn) / cxx <= p[Q_SESTART] * p[Q_SESTART]:
+        if cxx > 0.0 and s2 * kap * _lrf(rs, tn / unit) / cxx <= p[Q_SESTART] * p[Q_SESTART]:
             st[at + D_ON_S] = 1.0
             _restart(st, at, ts, cap)
             return flags
@@ -556,7 +667,8 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
         if nj == prev_n:
             continue
         prev_n = nj
-        gs, gl, na, nb, gl0, gp = _candidate(st, at, j, s2, kap, rs, rl, p[Q_MINROWS])
+        gs, gl, na, nb, gl0, gp = _candidate(st, at, j, s2, kap, rs, rl, p[Q_MIN_WEIGHT_S],
+                                             unit, weighted)
         if gs > gs_max:
             gs_max = gs
             js = j
@@ -565,7 +677,8 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
             gl_any = gl
         if gp > gp_any:
             gp_any = gp
-        if na >= MIN_AFTER_LEVEL and nb >= MIN_BEFORE_LEVEL and gl > gl_max:
+        if na >= MIN_AFTER_LEVEL * unit and nb >= MIN_BEFORE_LEVEL * unit and gl > gl_max \
+                and na >= p[Q_MIN_WEIGHT]:
             gl_max = gl
             jl = j
             gl0_jl = gl0
@@ -621,10 +734,12 @@ def split_step(st, at, x, y, e, n_obs, ts, p):
 
 
 @njit(cache=True, inline="always")
-def split_report(st, at, slope, n_obs, out):
+def split_report(st, at, slope, n_obs, out, p):
     """Fill ``out`` (:data:`REPORT_SIZE`) for the last alarm of the slope (``slope`` True) or
-    level chart: the change time, b before / after with standard errors (sigma_s scale) and
-    degrees of freedom, the level change ``d`` (log scale) with its se, and the statistic."""
+    level chart: the change time, the rows since it, b before / after with standard errors
+    (sigma_s scale) and degrees of freedom, the level change ``d`` (log scale) with its se,
+    and the statistic."""
+    unit = row_unit(st, at, p)
     j = int(st[at + (D_JS if slope else D_JL)])
     for i in range(REPORT_SIZE):
         out[i] = np.nan
@@ -641,30 +756,32 @@ def split_report(st, at, slope, n_obs, out):
     cxb += st[at + L0 + 1]
     cyb += st[at + L0 + 2]
     out[RP_TS] = st[o + 5]
-    out[RP_NA] = na
+    out[RP_NA] = _nrows(na, unit)
     nbs = nb + st[at + L0]
     if cxb > 0.0:
         out[RP_BB] = cyb / cxb
-        out[RP_BB_SE] = np.sqrt(s2 * kap * _lrf(rs, nbs) / cxb)
-    if cxa > 0.0 and na >= 2.0:
+        out[RP_BB_SE] = np.sqrt(s2 * kap * _lrf(rs, nbs / unit) / cxb)
+    if cxa > 0.0 and na >= 2.0 * unit:
         out[RP_BA] = cya / cxa
-        out[RP_BA_SE] = np.sqrt(s2 * kap * _lrf(rs, na) / cxa)
+        out[RP_BA_SE] = np.sqrt(s2 * kap * _lrf(rs, na / unit) / cxa)
     cx = cxa + cxb
     dx = mxa - mxb
     bw = (cya + cyb) / cx if cx > 0.0 else 0.0
     if nb > 0.0 and na > 0.0:
         out[RP_LEVEL] = mya - myb - bw * dx
-        out[RP_LEVEL_SE] = np.sqrt(s2 * (_lrf(rl, na) / na + _lrf(rl, nb) / nb)
+        out[RP_LEVEL_SE] = np.sqrt(s2 * (_lrf(rl, na / unit) / na + _lrf(rl, nb / unit) / nb)
                                    + s2 * kap * (dx * dx / cx if cx > 0.0 else 0.0))
     out[RP_STAT] = st[at + (D_GS if slope else D_GL)]
-    out[RP_DFB] = nb + st[at + L0] - 2.0
-    out[RP_DFA] = na - 2.0
+    out[RP_DFB] = (nb + st[at + L0]) / unit - 2.0
+    out[RP_DFA] = na / unit - 2.0
 
 
 @njit(cache=True, inline="always")
-def after_fit(st, at, slope):
+def after_fit(st, at, slope, p):
     """``(n_A, a, b)`` of the after sample of the last alarm's checkpoint in raw ``log p``
-    coordinates (``y* = a + b log p``), before re-anchoring; NaN where undefined."""
+    coordinates (``y* = a + b log p``; ``n_A`` in rows), before re-anchoring; NaN where
+    undefined."""
+    unit = row_unit(st, at, p)
     j = int(st[at + (D_JS if slope else D_JL)])
     if j < 0:
         return 0.0, np.nan, np.nan
@@ -672,10 +789,10 @@ def after_fit(st, at, slope):
     na = st[at + C0] - st[o]
     mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
                                   st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
-    if na < 2.0 or not (cxa > 0.0):
-        return na, np.nan, np.nan
+    if na < 2.0 * unit or not (cxa > 0.0):
+        return _nrows(na, unit), np.nan, np.nan
     b = cya / cxa
-    return na, mya - b * (mxa + st[at + D_X0]), b
+    return _nrows(na, unit), mya - b * (mxa + st[at + D_X0]), b
 
 
 @njit(cache=True, inline="always")
@@ -746,6 +863,28 @@ def reanchor_level(st, at, p):
     st[at + D_GL] = 0.0
     st[at + D_GS] = 0.0
     st[at + D_HOT] = HOLD
+
+
+def split_statistics(before, after, s2: float = 1.0, weighted: bool = True) -> dict:
+    """The statistics of one candidate change time from the (weighted) sums ``(n, Sx, Sxx, Sy,
+    Sxy)`` of the samples before and after it, the error variance ``s2`` known (no sandwich
+    factor, no autocorrelation): ``slope`` (``G_s``), ``level`` (``G_l``), ``level_only`` and
+    ``pivot`` (:func:`_level_vs_pivot`), in log-likelihood-ratio units.
+
+    With the rows' working weights ``w = mu`` and working responses ``z = eta + (q - mu) / mu``
+    at the Poisson maximum-likelihood fit without a change, ``2 G`` is the score statistic of
+    the Poisson regression with the change's regressor added (level: ``1_A``; slope: ``1_A x``
+    beside ``1_A``; pivot: ``1_A (x - xbar_B)``): one Fisher-scoring step from the null fit is
+    a weighted least-squares fit of ``z`` (McCullagh & Nelder 1989, sec. 2.5), and its
+    sums-of-squares reduction is Rao's score statistic (checked against statsmodels in
+    tests/test_split_poisson.py). ``weighted``: as :func:`params`."""
+    st = np.zeros(SPLIT_SIZE)
+    st[R0:R0 + 5] = np.asarray(before, dtype=np.float64)     # before = R + slot 0 (empty)
+    st[C0:C0 + 5] = np.asarray(after, dtype=np.float64)      # after = C - slot 0
+    gs, gl, _, _, gl0, gp = _candidate(st, 0, 0, float(s2), 1.0, 0.0, 0.0, 0.0, 1.0,
+                                       bool(weighted))
+    return {"slope": float(gs), "level": float(gl), "level_only": float(gl0),
+            "pivot": float(gp)}
 
 
 @njit(cache=True, inline="always")

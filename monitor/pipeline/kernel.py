@@ -50,7 +50,8 @@ from monitor.detectors import split_glr as SG
 from monitor.estimators import kernel as K
 from monitor.estimators.dispatch import (FORM_IV, FORM_LINEAR, FORM_POISSON, FORM_TWO,
                                          compile_time_choice, form_discount, form_step)
-from monitor.pipeline.split_events import change_start, split_open, split_reanchor, split_row
+from monitor.pipeline.split_events import (change_start, detector_mean, split_open,
+                                           split_reanchor, split_row)
 from monitor.pipeline.messages import (EV_AFTER_B, EV_AFTER_HI, EV_AFTER_LO, EV_DELAY,
                                        EV_SUPERSEDED,
                                        EV_ACTION, EV_BETA, EV_COUNT, EV_EXTRA, EV_HI, EV_KIND,
@@ -143,7 +144,7 @@ def _open_run(ev, ne, j, kind, st, det, run, n, ts, b, lo, hi, size, extra):
 @njit(cache=True, _nrt=False)
 def _open_split(split, ev, ne, j, kind, st, lay, fl, fs, n, t, b, lo, hi, sd, tq, d, z, gp,
                 rep):
-    return split_open(ev, ne, j, kind, st, lay[L_SPLIT], rep, n, t, b, lo, hi, tq, gp[SG.Q_HS])
+    return split_open(ev, ne, j, kind, st, lay[L_SPLIT], rep, n, t, b, lo, hi, tq, gp)
 
 
 @njit(cache=True, _nrt=False)
@@ -185,17 +186,18 @@ def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, b
 
 
 def _detect_split(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,
-                  lp, skind, sp, gp):
-    """The split GLR (slope and level kinds from the same sums) on every row past warm-up."""
+                  lp, skind, sp, gp, mu):
+    """The split GLR (slope and level kinds from the same sums) on every row past warm-up
+    (``mu``: the Poisson model's predicted mean, the row's working weight; NaN otherwise)."""
     fl = 0
     fs = 0
     if not warm:
-        fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp)
+        fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp, mu)
     return np.nan, fl, fs
 
 
 def _detect_charts(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,
-                   lp, skind, sp, gp):
+                   lp, skind, sp, gp, mu):
     """The previous charts: the slope statistic d, the level chart on the standardized
     innovation, the slope chart on d (informative rows only), with their episode trackers."""
     d = slope_step(st, lay[L_SLOPE], xj[1], adjusted_response(st, xj, yj, k), sd, st[K.I_PAUSED],
@@ -209,13 +211,13 @@ def _detect_charts(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm,
 
 @compile_time_choice({True: _detect_split, False: _detect_charts})
 def detect(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind, lp,
-           skind, sp, gp):
+           skind, sp, gp, mu):
     """The change detector family's step on one row; returns ``(d, level_flags,
     slope_flags)``. ``split`` is a constant: only that family is compiled (as a function of
     its own: it is most of the loop's code)."""
     return (_detect_split if split else _detect_charts)(
         split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind, lp, skind, sp,
-        gp)
+        gp, mu)
 
 
 @njit(cache=True, _nrt=False)
@@ -291,7 +293,7 @@ def _row(form, split, a, st, o, xj, yj, j, sj, k, t, ne):
     # paused, b and the slope statistic are frozen; feeding them again is not new evidence)
     inf = ok and st[K.I_PAUSED] == 0.0
     d, fl, fs = detect(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr,
-                       lkind, lp, skind, sp, gp)
+                       lkind, lp, skind, sp, gp, detector_mean(form, a[3][j], o))
     # bounds, sign flip, low variation
     ba, bra = lay[L_BOUNDS], lay[L_BRUN]
     if inf and bon[sj]:
@@ -334,7 +336,7 @@ def _row(form, split, a, st, o, xj, yj, j, sj, k, t, ne):
                                                          kind == KIND_LEVEL_SHIFT):
             # a further change while the alert is open: when it began after the open alert's
             # detection, the open alert is closed as superseded and the new one opened
-            if change_start(st, lay[L_SPLIT], kind == KIND_ELASTICITY_CHANGE, n) > \
+            if change_start(st, lay[L_SPLIT], kind == KIND_ELASTICITY_CHANGE, n, gp) > \
                     st[r + R_OPENED_N]:
                 ne = _clear(ev, ne, j, kind, st, r, n, t, b, lo, hi)
                 ev[ne - 1, EV_SUPERSEDED] = 1.0

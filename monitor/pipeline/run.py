@@ -185,7 +185,10 @@ class Pipeline:
         for signal, h in (("level", t.level), ("slope", t.slope)):
             self.designs[signal] = DesignedThreshold(h, t.arl0, math.nan, math.nan, t.n_paths,
                                                      t.method)
-        return SG.params(t.slope, t.level)
+        # the Poisson model's rows enter with their working weights (split_glr, "Working
+        # weights"); the log-log models' with weight 1
+        return SG.params(t.slope, t.level,
+                         weighted=getattr(self.estimator, "model", "") == "poisson")
 
     def delay50_obs(self, states: np.ndarray) -> np.ndarray:
         """Per series: expected observations to detect a change of 0.5 in b at its price

@@ -22,6 +22,8 @@ from monitor.detectors import split_glr as SG
 from monitor.detectors.kernels import F_ALARM
 from monitor.detectors.split_table import DELAY_FACTOR
 from monitor.estimators import kernel as K
+from monitor.estimators.dispatch import (FORM_IV, FORM_LINEAR, FORM_POISSON, FORM_TWO,
+                                         compile_time_choice)
 from monitor.estimators.tquantile import t_lookup
 from monitor.pipeline.messages import (EV_ACTION, EV_AFTER_B, EV_AFTER_HI, EV_AFTER_LO, EV_BETA,
                                        EV_COUNT, EV_DELAY, EV_EXTRA, EV_HI, EV_KIND, EV_LO, EV_N,
@@ -36,13 +38,34 @@ DB_QUOTED = 0.5
 N_SLOW = 500.0
 
 
+def _no_mean(form, q, o):
+    return np.nan
+
+
+def _count_mean(form, q, o):
+    return q - o[K.O_E]
+
+
+@compile_time_choice({FORM_TWO: _no_mean, FORM_LINEAR: _no_mean, FORM_IV: _no_mean,
+                      FORM_POISSON: _count_mean}, inline="always")
+def detector_mean(form, q, o):
+    """The estimator's predicted mean ``mu`` of this row under the Poisson model (``q`` the
+    count, ``o[O_E] = q - mu``), NaN for the log-log models (no working weights); ``form`` is
+    a compile-time constant."""
+    return (_count_mean if form == FORM_POISSON else _no_mean)(form, q, o)
+
+
 @njit(cache=True, inline="always")
-def split_row(st, at, xj, yj, k, e, n, t, gp):
+def split_row(st, at, xj, yj, k, e, n, t, gp, mu):
     """One row of the split GLR; returns ``(level_flags, slope_flags)`` (``F_ALARM`` bits).
 
-    The response is ``y* = log q - cbar' z`` with ``cbar`` the slow means of the estimator's
-    control coefficients (:func:`slow_control`). Series without controls (``k == 2``) are
-    untouched."""
+    The response is ``y* = y - cbar' z`` with ``cbar`` the slow means of the estimator's
+    control coefficients (:func:`slow_control`); series without controls (``k == 2``) are
+    untouched. ``y`` is log q under the log-log model (``mu`` NaN: every row weight 1, ``e``
+    the log-scale innovation) and the working response ``x' theta + (q - mu) / mu`` under the
+    Poisson model (``mu`` the predicted mean, ``e = q - mu``): the row then enters with the
+    working weight ``w = mu`` and the scale sees the Pearson residual ``(q - mu) / sqrt(mu)``
+    (:func:`monitor.detectors.split_glr.split_step_w`, "Working weights")."""
     ys = yj
     for i in range(2, k):
         if i - 2 < SG.NCF:
@@ -50,7 +73,11 @@ def split_row(st, at, xj, yj, k, e, n, t, gp):
             ys -= st[at + SG.CF0 + i - 2] * xj[i]
         else:
             ys -= st[K.NS + i] * xj[i]
-    f = SG.split_step(st, at, xj[1], ys, e, n, t, gp)
+    w = 1.0
+    if mu == mu:
+        w = mu
+        e = e / np.sqrt(mu)
+    f = SG.split_step_w(st, at, xj[1], ys, e, w, n, t, gp)
     fl = F_ALARM if f & SG.SG_LEVEL else 0
     fs = F_ALARM if f & SG.SG_SLOPE else 0
     return fl, fs
@@ -105,11 +132,12 @@ def delay50_all(states, at, h, out):
 
 
 @njit(cache=True, _nrt=False)
-def split_open(ev, ne, j, kind, st, at, rep, n, t, b, lo, hi, tq, h):
+def split_open(ev, ne, j, kind, st, at, rep, n, t, b, lo, hi, tq, gp):
     """Write the opening record of an elasticity change (slope chart) or level shift (level
     chart) from the detector's report; returns the new event count."""
     slope = kind == KIND_ELASTICITY_CHANGE
-    SG.split_report(st, at, slope, n, rep)
+    h = gp[SG.Q_HS]
+    SG.split_report(st, at, slope, n, rep, gp)
     bb, bse, ba, ase = rep[SG.RP_BB], rep[SG.RP_BB_SE], rep[SG.RP_BA], rep[SG.RP_BA_SE]
     qb = t_lookup(tq, max(rep[SG.RP_DFB], 1.0))
     qa = t_lookup(tq, max(rep[SG.RP_DFA], 1.0))
@@ -140,13 +168,15 @@ def split_open(ev, ne, j, kind, st, at, rep, n, t, b, lo, hi, tq, h):
 
 
 @njit(cache=True, inline="always")
-def change_start(st, at, slope, n):
-    """Observation number at which the change of the last alarm began (argmax checkpoint)."""
+def change_start(st, at, slope, n, gp):
+    """Observation number at which the change of the last alarm began (argmax checkpoint;
+    with working weights the after sample's weight in rows, :func:`~monitor.detectors.
+    split_glr.row_unit`)."""
     j = int(st[at + (SG.D_JS if slope else SG.D_JL)])
     if j < 0:
         return n
     o = at + SG.SLOT0 + SG.SLOT_W * j
-    return n - (st[at + SG.C0] - st[o]) + 1.0
+    return n - np.floor((st[at + SG.C0] - st[o]) / SG.row_unit(st, at, gp) + 0.5) + 1.0
 
 
 @njit(cache=True, inline="always")
