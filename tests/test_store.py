@@ -484,3 +484,28 @@ def test_reader_process_beside_a_busy_writer_sees_no_lock_errors(store):
     assert reader_errors == 0 and writer_errors == 0 and "locked" not in err, facts
     assert batches > 5 and reads > 5, facts   # sustained on both sides (fewer under load)
     assert distinct > 2, facts            # the reader really read while the writer wrote
+
+
+def test_batch_series_counts_equal_a_pandas_groupby():
+    """The per-series first/last time and row count of a batch (``series_counts``, which
+    the series upsert adds up) equal a pandas groupby's min / max / size of the same rows
+    (the reference), with rows of many series in shuffled order, fractional-second times and
+    estimates for only some series; series come in sorted order, as the groupby gives them."""
+    from monitor.store.rows import observation_rows, series_counts
+
+    rng = np.random.default_rng(12)
+    names = np.array([f"store{k % 7}/item{k:03d}" for k in range(60)])
+    n = 3_000
+    ts = T0 + pd.to_timedelta(rng.integers(0, 10**9, n), unit="ms")
+    obs = pd.DataFrame({"series": names[rng.integers(0, 60, n)], "ts": ts,
+                        "price": rng.uniform(1, 9, n), "quantity": rng.uniform(1, 9, n)})
+    obs = obs.drop_duplicates(["series", "ts"]).reset_index(drop=True)
+    df, _ = observation_rows(obs)
+    est = df[df["series"].isin(names[::3])]
+    got = series_counts(df, est, "now")
+    ref = df.groupby("series")["ts"].agg(["min", "max", "size"])
+    n_est = est.groupby("series").size()
+    want = [(s, lo, hi, int(k), int(n_est.get(s, 0)), "now")
+            for s, lo, hi, k in zip(ref.index, ref["min"], ref["max"], ref["size"])]
+    assert got == want
+    assert any("." in r[1] for r in got)              # fractional times were compared as text

@@ -201,10 +201,19 @@ def series_counts(obs: pd.DataFrame | None, est: pd.DataFrame | None, now: str) 
     """Per series: (series, first_ts, last_ts, n_obs, n_estimates, now) of this batch."""
     parts = {}
     if obs is not None and len(obs):
-        g = obs.groupby("series")["ts"].agg(["min", "max", "size"])
-        for s, lo, hi, n in zip(g.index.tolist(), g["min"].tolist(), g["max"].tolist(),
-                                g["size"].tolist()):
-            parts[s] = [lo, hi, int(n), 0]
+        # series in sorted order (as a groupby gives them); the batch's rows of each series
+        # made contiguous by a stable sort of their codes, then min / max of the timestamp text
+        # (text order is time order: monitor.store.codec) per run: 2.7x faster than a pandas
+        # groupby on the Arrow-backed text columns (ingest's write_batch, issue 15)
+        codes, names = pd.factorize(obs["series"].to_numpy(dtype=object), sort=True)
+        order = np.argsort(codes, kind="stable")
+        c, t = codes[order], obs["ts"].to_numpy(dtype=object)[order]
+        first = np.flatnonzero(np.r_[True, c[1:] != c[:-1]])
+        lo, hi = np.minimum.reduceat(t, first), np.maximum.reduceat(t, first)
+        size = np.diff(np.r_[first, len(c)])
+        for s, a, b, n in zip(names[c[first]].tolist(), lo.tolist(), hi.tolist(),
+                              size.tolist()):
+            parts[s] = [a, b, int(n), 0]
     if est is not None and len(est):
         for s, n in est.groupby("series").size().items():
             parts.setdefault(s, [None, None, 0, 0])[3] = int(n)
