@@ -99,3 +99,10 @@ def test_load_scenario_collinear_stretch_raises_no_elasticity_alert():
                             & res.events["kind"].isin(["elasticity_change", "out_of_bounds",
                                                        "sign_flip"])]
         assert not np.isin(opened["row"].to_numpy(), stretch).any()
+        # its low_variation alert says why: the raw price moves, but only with the controls
+        lv = res.events[(res.events["action"] == "open") & (res.events["kind"] == "low_variation")
+                        & np.isin(res.events["row"].to_numpy(), stretch)]
+        assert len(lv) == 1
+        d = lv["details"].iloc[0]
+        assert d["log_price_sd"] < 1e-6 < d["min_price_sd"] < 0.2 < d["raw_log_price_sd"]
+        assert "moved only with the controls" in lv["message"].iloc[0]

@@ -16,7 +16,8 @@ from monitor.detectors.kernels import F_ALARM, F_REST_DN, F_REST_UP, F_USED
 from monitor.detectors.design import PRECOMPUTED, pipeline_threshold
 from monitor.pipeline.messages import (EV_ACTION, EV_BETA, EV_EXTRA, EV_HI, EV_KIND, EV_LO, EV_N,
                                        EV_OLD_B, EV_OLD_HI, EV_OLD_LO, EV_ROW, EV_SIDE, EV_SIZE,
-                                       EV_START_N, EV_START_TS, EV_TS, NEV, effect_of_10pct,
+                                       EV_START_N, EV_START_TS, EV_STAT, EV_TS, NEV,
+                                       effect_of_10pct, details,
                                        events_frame, message, severity)
 from monitor.pipeline.rules import (E_B, E_CNT, E_START_N, E_SUM, EP_SIDE, EP_SIZE, KINDS,
                                     AlertRule, episode_restart, episode_step)
@@ -117,7 +118,15 @@ def test_messages_and_severities_per_kind():
     assert severity("out_of_bounds", "open", ob) == "critical"
     assert severity("out_of_bounds", "open", ob, interval_mode=False) == "warning"
     lv = _record("low_variation", b=-1.5, lo=-1.9, hi=-1.1, size=0.004, extra=0.02)
-    assert "(sd of log price 0.4% < 2.0%)" in message("low_variation", "open", "s", lv)
+    lv[EV_STAT] = 0.005                          # the raw sd: low as well
+    m = message("low_variation", "open", "s", lv)
+    assert "prices have barely varied" in m and "before the controls" not in m
+    assert "left after the intercept and the controls 0.4% < 2.0%)" in m
+    lv[EV_STAT] = 0.202                          # a price that only the controls move
+    m = message("low_variation", "open", "s", lv)
+    assert "the price has moved only with the controls" in m
+    assert "0.4% < 2.0%; before the controls 20.2%" in m
+    assert details("low_variation", "open", lv)["raw_log_price_sd"] == 0.202
     assert severity("low_variation", "open", lv) == "info"
     cl = _record("sign_flip", action="clear", b=-1.1, lo=-1.4, hi=-0.8, size=120)
     assert severity("sign_flip", "clear", cl) == "info"

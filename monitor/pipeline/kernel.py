@@ -180,9 +180,17 @@ def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, b
     if kind == KIND_SIGN_FLIP:
         return _open_run(ev, ne, j, kind, st, lay[L_SIGN], lay[L_SRUN], n, t, b, lo, hi,
                          gparams[1], gparams[2])
+    # low variation: the size is the sd the status compared with the minimum, the sd of log
+    # price left after the intercept and the controls (the estimator's information matrix;
+    # the raw sd when that is the lower); the statistic slot holds the raw sd (a price that
+    # the controls explain varies in the raw data: issue 13, the load scenario's tariff hours)
     w = st[K.I_LPW]
-    return _open_run(ev, ne, j, kind, st, lay[L_LOWVAR], lay[L_VRUN], n, t, b, lo, hi,
-                     np.sqrt(st[K.I_LPM2] / w) if w > 0.0 else np.nan, vparams[2])
+    raw = np.sqrt(st[K.I_LPM2] / w) if w > 0.0 else np.nan
+    left = st[K.I_XSD]
+    ne = _open_run(ev, ne, j, kind, st, lay[L_LOWVAR], lay[L_VRUN], n, t, b, lo, hi,
+                   left if left < raw or not (raw == raw) else raw, vparams[2])
+    ev[ne - 1, EV_STAT] = raw
+    return ne
 
 
 def _detect_split(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,

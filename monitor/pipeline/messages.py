@@ -122,7 +122,8 @@ def details(kind: str, action: str, r: np.ndarray) -> dict:
         d.update(side="below" if r[EV_SIDE] < 0 else "above", low=_num(r[EV_SIZE]),
                  high=_num(r[EV_EXTRA]))
     elif kind == "low_variation":
-        d.update(log_price_sd=_num(r[EV_SIZE]), min_price_sd=_num(r[EV_EXTRA]))
+        d.update(log_price_sd=_num(r[EV_SIZE]), min_price_sd=_num(r[EV_EXTRA]),
+                 raw_log_price_sd=_num(r[EV_STAT]))
     return d
 
 
@@ -220,10 +221,16 @@ def message(kind: str, action: str, series: str, r: np.ndarray, causes: str = ""
                 + (causes or "bad data (units, a broken price feed, a mislabelled series) or a "
                    "broken price test") + "; check the data before using this estimate.")
     if kind == "low_variation":
-        return (f"{series}: prices have barely varied since {since} (sd of log price "
-                f"{100.0 * r[EV_SIZE]:.1f}% < {100.0 * r[EV_EXTRA]:.1f}%); the elasticity "
-                f"{now} cannot be updated reliably and elasticity alerts are paused until "
-                "prices vary again. " + w["restore"])
+        raw = r[EV_STAT]
+        moved = math.isfinite(raw) and raw >= r[EV_EXTRA]
+        what = ("prices have barely varied" if not moved else
+                "the price has moved only with the controls")
+        tail = (f"; before the controls {100.0 * raw:.1f}%: the controls explain the price's "
+                f"moves, so its own effect cannot be told from theirs" if moved else "")
+        return (f"{series}: {what} since {since} (sd of log price left after the intercept "
+                f"and the controls {100.0 * r[EV_SIZE]:.1f}% < {100.0 * r[EV_EXTRA]:.1f}%"
+                f"{tail}); the elasticity {now} cannot be updated reliably and elasticity "
+                "alerts are paused until prices vary again. " + w["restore"])
     return f"{series}: {kind} {action} at {at}"
 
 
