@@ -33,8 +33,13 @@ def test_replay_poisson_keeps_zeros_and_equals_streaming(tmp_path, rng):
     df = _log(rng)
     assert (df["quantity"] == 0).mean() > 0.15
     df.to_csv(tmp_path / "log.csv", index=False)
+    # the counts are in control, but an elasticity alert (a false one: at ARL0 20,000 about a
+    # 1 in 4 chance over 2,700 rows and two charts) discounts the estimator's past by design,
+    # after which it differs from the plain streaming estimator: ARL0 100,000 keeps this
+    # test about the estimates (with 20,000 this seed raised one at row 823 of a series)
     rc = main(["replay", str(tmp_path / "log.csv"), "--out", str(tmp_path / "o"), "--quiet",
-               "--model", "poisson", "--exposure-col", "hours", "--forgetting", "0.99"])
+               "--model", "poisson", "--exposure-col", "hours", "--forgetting", "0.99",
+               "--arl0", "100000"])
     assert rc == 0
     summary = json.loads((tmp_path / "o" / "summary.json").read_text())
     assert summary["rejected"] == 0 and summary["accepted"] == len(df)   # zeros are data
