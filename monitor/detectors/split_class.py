@@ -29,6 +29,7 @@ import math
 
 import numpy as np
 
+from monitor.detectors import split_controls as SC
 from monitor.detectors import split_glr as S
 from monitor.detectors.base import check_number, floats_from_json, floats_to_json
 from monitor.detectors.split_design import expected_delay, split_thresholds
@@ -90,6 +91,7 @@ class SplitGLR:
                            se_start=self.se_start)
         self._state = np.zeros(S.SPLIT_SIZE)
         self._rep = np.empty(S.REPORT_SIZE)
+        self._work = np.empty(SC.SCRATCH)
         self.alarm: str | None = None
         self.report: dict | None = None
 
@@ -114,24 +116,30 @@ class SplitGLR:
         self.report = report_dict(self._rep)
         if slope:
             S.reanchor_slope(self._state, 0, self._p)
+            SC.fit_partial(self._state, S.CFIT0, 0)
+            SC.fit_partial(self._state, S.CFIT0, 1)
         else:
             S.reanchor_level(self._state, 0, self._p)
+            SC.fit_partial(self._state, S.CFIT0, 0)
 
     def observe(self, est, log_price: float, log_q: float, row=None,
                 ts: float = math.nan) -> "SplitGLR":
         """Update from an :class:`~monitor.estimators.ElasticityRLS` right after its
-        ``learn_one`` (``row``: the design row, needed only with controls). Rows while the
-        estimator is warming up are skipped."""
+        ``learn_one`` (``row``: the design row, needed only with controls: the controls'
+        effects are then removed with the detector's own fit of them,
+        :mod:`monitor.detectors.split_controls`, and rows are fed once they are identified).
+        Rows while the estimator is warming up are skipped."""
         st = est.state_vector
         k = est.row_width
         self.alarm, self.report = None, None
         if est.n_eff < max(est.min_n_eff, k + 2.0) or not math.isfinite(est.residual_sd):
             return self
         y = float(log_q)
-        if row is not None:
+        if row is not None and k > 2:
             r = np.asarray(row, dtype=np.float64)
-            for i in range(2, k):
-                y -= st[K.NS + i] * r[i]
+            y, ready = SC.fit_response(self._state, 0, r, y, k, st, self._work, 0)
+            if not ready:
+                return self
         f = S.split_step(self._state, 0, float(log_price), y, float(st[K.I_E]),
                          float(st[K.I_N]), float(ts), self._p)
         if f & S.SG_SLOPE:

@@ -186,14 +186,17 @@ SLOT0 = 33       # NSLOT slots of (n, sx, sxx, sy, sxy, ts)
 SLOT_W = 6
 #: checkpoints; the oldest is the window start (ages up to 2^(NSLOT-1) .. 2^NSLOT - 1)
 NSLOT = 11
-#: the detector's control coefficients (written by the pipeline,
-#: :mod:`monitor.pipeline.split_events`): for each of ``NCF`` controls a row count and the slow
-#: mean of the estimator's coefficient; controls beyond ``NCF`` use the estimator's current
-#: coefficient. Not read by :func:`split_step` (it sees only ``y*``).
+#: the detector's own fit of the control coefficients (written by the pipeline,
+#: :mod:`monitor.pipeline.split_events`, with :mod:`monitor.detectors.split_controls`): a flag
+#: (the controls were identified and the rows are fed) and the packed normal equations of
+#: ``log q`` on ``(1, log p, z_1 .. z_NCF)``; controls beyond ``NCF`` use the estimator's
+#: current coefficient. Not read by :func:`split_step` (it sees only ``y*``).
 NCF = 6
-CF0 = SLOT0 + SLOT_W * NSLOT      # NCF means
-CN0 = CF0 + NCF                   # NCF counts
-SPLIT_SIZE = CN0 + NCF
+CFIT_ON = SLOT0 + SLOT_W * NSLOT
+CFIT0 = CFIT_ON + 1
+#: floats of the packed normal equations (upper triangle of a (NCF + 3) square)
+CFIT_SIZE = (NCF + 3) * (NCF + 4) // 2
+SPLIT_SIZE = CFIT0 + CFIT_SIZE
 
 # ---------------------------------------------------------------- parameters
 (Q_HS, Q_HL, Q_CAP, Q_MINROWS, Q_LAMS, Q_SESTART, Q_LEVEL_ON, Q_SLOPE_ON, Q_HOTS,
@@ -252,8 +255,8 @@ REPORT_SIZE = 11
 
 
 def state_size() -> int:
-    """Floats of one series' split-GLR state: 33 + 6 x NSLOT + 2 x NCF (111 with 11
-    checkpoints and 6 control coefficients)."""
+    """Floats of one series' split-GLR state: 33 + 6 x NSLOT + 1 + (NCF + 3)(NCF + 4) / 2 (145
+    with 11 checkpoints and 6 controls)."""
     return SPLIT_SIZE
 
 

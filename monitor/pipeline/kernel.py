@@ -51,7 +51,7 @@ from monitor.estimators import kernel as K
 from monitor.estimators.dispatch import (FORM_IV, FORM_LINEAR, FORM_POISSON, FORM_TWO,
                                          compile_time_choice, form_discount, form_step)
 from monitor.pipeline.split_events import (change_start, detector_mean, split_open,
-                                           split_reanchor, split_row)
+                                           split_reanchor, split_row, split_warm)
 from monitor.pipeline.messages import (EV_AFTER_B, EV_AFTER_HI, EV_AFTER_LO, EV_DELAY,
                                        EV_SUPERSEDED,
                                        EV_ACTION, EV_BETA, EV_COUNT, EV_EXTRA, EV_HI, EV_KIND,
@@ -194,18 +194,21 @@ def _open(ev, ne, j, kind, st, lay, fl, fs, sj, n, t, b, lo, hi, sd, tq, d, z, b
 
 
 def _detect_split(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,
-                  lp, skind, sp, gp, mu):
+                  lp, skind, sp, gp, mu, work):
     """The split GLR (slope and level kinds from the same sums) on every row past warm-up
-    (``mu``: the Poisson model's predicted mean, the row's working weight; NaN otherwise)."""
+    (``mu``: the Poisson model's predicted mean, the row's working weight; NaN otherwise); its
+    own fit of the controls (series with controls) on every row."""
     fl = 0
     fs = 0
     if not warm:
-        fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp, mu)
+        fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp, mu, work)
+    elif k > 2:
+        split_warm(st, lay[L_SPLIT], xj, yj, k)
     return np.nan, fl, fs
 
 
 def _detect_charts(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind,
-                   lp, skind, sp, gp, mu):
+                   lp, skind, sp, gp, mu, work):
     """The previous charts: the slope statistic d, the level chart on the standardized
     innovation, the slope chart on d (informative rows only), with their episode trackers."""
     d = slope_step(st, lay[L_SLOPE], xj[1], adjusted_response(st, xj, yj, k), sd, st[K.I_PAUSED],
@@ -219,13 +222,13 @@ def _detect_charts(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm,
 
 @compile_time_choice({True: _detect_split, False: _detect_charts})
 def detect(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind, lp,
-           skind, sp, gp, mu):
+           skind, sp, gp, mu, work):
     """The change detector family's step on one row; returns ``(d, level_flags,
     slope_flags)``. ``split`` is a constant: only that family is compiled (as a function of
     its own: it is most of the loop's code)."""
     return (_detect_split if split else _detect_charts)(
         split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr, lkind, lp, skind, sp,
-        gp, mu)
+        gp, mu, work)
 
 
 @njit(cache=True, _nrt=False)
@@ -301,7 +304,8 @@ def _row(form, split, a, st, o, xj, yj, j, sj, k, t, ne):
     # paused, b and the slope statistic are frozen; feeding them again is not new evidence)
     inf = ok and st[K.I_PAUSED] == 0.0
     d, fl, fs = detect(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, lf, lr,
-                       lkind, lp, skind, sp, gp, detector_mean(form, a[3][j], o))
+                       lkind, lp, skind, sp, gp, detector_mean(form, a[3][j], o),
+                       rep)
     # bounds, sign flip, low variation
     ba, bra = lay[L_BOUNDS], lay[L_BRUN]
     if inf and bon[sj]:

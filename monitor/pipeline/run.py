@@ -48,7 +48,7 @@ from monitor.estimators.dispatch import step_form, work_size
 from monitor.detectors import split_glr as SG
 from monitor.detectors.split_design import split_thresholds
 from monitor.pipeline.kernel import L_SIZE, L_SPLIT, NSIG, pipeline_run
-from monitor.pipeline.split_events import delay50_all
+from monitor.pipeline.split_events import WORK_SIZE, delay50_all
 from monitor.pipeline.messages import NEV, events_frame
 from monitor.pipeline.rules import EP_SIZE, KINDS, RULE_SIZE, RUN_SIZE, rule_params
 from monitor.pipeline.settings import (BoundsSettings, DetectorSettings, RuleSettings,
@@ -60,6 +60,9 @@ BLOCKS = (("slope", SLOPE_SIZE), ("level_chart", CHART_SIZE), ("level_episode", 
           ("bounds_run", RUN_SIZE), ("sign", BOUNDS_SIZE), ("sign_run", RUN_SIZE),
           ("low_variation", BOUNDS_SIZE), ("low_variation_run", RUN_SIZE),
           ("rules", 5 * RULE_SIZE), ("split", SG.SPLIT_SIZE))
+#: floats of the split detector's control block in earlier layouts (none; the slow control
+#: means and counts) that :meth:`Pipeline.checked_state` upgrades
+PREVIOUS_CONTROL_BLOCKS = (0, 2 * SG.NCF)
 #: blocks of the previous charts, empty (size 0) with the split detector, and vice versa
 CHART_BLOCKS = ("slope", "level_chart", "level_episode", "slope_chart", "slope_episode")
 SIGNAL_COLUMNS = ["d", "b_fast", "b_fast_lo", "b_fast_hi", "level_stat", "slope_stat",
@@ -255,17 +258,22 @@ class Pipeline:
     def checked_state(self, vec: np.ndarray) -> np.ndarray:
         """One series' stored state row, checked against this pipeline's length.
 
-        A row written before the split detector kept its slow control means (4 December 2026:
-        ``2 * NCF`` floats appended to the split block) is upgraded by inserting them as zeros:
-        the means then start afresh from the next row, everything else resumes exactly.
+        Rows written by earlier layouts of the split detector's control block are upgraded:
+        the block before the slow control means (99 floats) and the one with them (111: 2 x
+        ``NCF`` means and counts, 4 December 2026) both become the detector's own control fit
+        (:mod:`monitor.detectors.split_controls`) started afresh: the slow means are dropped,
+        the fit's flag and normal equations are inserted as zeros, everything else resumes
+        exactly. A series with controls is then fed to its charts again once the new fit has
+        identified its controls; a series without controls resumes as it was.
         Any other length raises :class:`~monitor.errors.ConfigError`."""
         vec = np.asarray(vec, dtype=np.float64)
         if vec.shape == (self.state_size,):
             return vec
-        added = 2 * SG.NCF
-        if self.split and vec.ndim == 1 and vec.size == self.state_size - added:
-            at = int(self._layout[L_SPLIT]) + SG.SPLIT_SIZE - added
-            return np.concatenate([vec[:at], np.zeros(added), vec[at:]])
+        new = SG.SPLIT_SIZE - SG.CFIT_ON
+        for old in PREVIOUS_CONTROL_BLOCKS:
+            if self.split and vec.ndim == 1 and vec.size == self.state_size - new + old:
+                at = int(self._layout[L_SPLIT]) + SG.CFIT_ON
+                return np.concatenate([vec[:at], np.zeros(new), vec[at + old:]])
         raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "
                           f"{self.state_size} (estimator controls or layout changed)")
 
@@ -317,7 +325,7 @@ class Pipeline:
                                     d.reference_forgetting, lkind, lp, skind, sp, bparams, bon,
                                     self._gparams, self._vparams, self._rparams, out, ev, status,
                                     sig, keep_signals, np.empty(work_size(est.model, X.shape[1])),
-                                    self._gp, np.empty(SG.REPORT_SIZE))
+                                    self._gp, np.empty(WORK_SIZE))
             records.append(ev[:ne])
             if stop >= n:
                 break

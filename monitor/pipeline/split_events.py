@@ -1,9 +1,10 @@
 """The split GLR inside the compiled pipeline: its step on one row and its event records.
 
 :func:`split_row` feeds the detector of :mod:`monitor.detectors.split_glr` with the row's log
-price, the response with the controls' effects removed (the estimator's current control
-coefficients) and the estimator's innovation; it returns the pipeline's chart flags (bit
-``F_ALARM``) for the level and slope kinds. :func:`split_open` writes the event record of an
+price, the response with the controls' effects removed (the detector's own fit of the
+control coefficients, :mod:`monitor.detectors.split_controls`) and the estimator's
+innovation; it returns the pipeline's chart flags (bit ``F_ALARM``) for the level and slope
+kinds. :func:`split_open` writes the event record of an
 opening: the change time and observation (the likelihood's argmax), b before and after with
 Student-t intervals from the data on each side (degrees of freedom: each side's rows - 2), the
 size (``b_after - b_before``, or the log level change), the statistic and the series' expected
@@ -18,6 +19,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from monitor.detectors import split_controls as SC
 from monitor.detectors import split_glr as SG
 from monitor.detectors.kernels import F_ALARM
 from monitor.detectors.split_table import DELAY_FACTOR
@@ -33,9 +35,10 @@ from monitor.pipeline.rules import ACTION_OPEN, KIND_ELASTICITY_CHANGE
 
 #: change of b the per-series delay is quoted for
 DB_QUOTED = 0.5
-#: rows (with the control non-zero) over which the detector's control coefficients average
-#: the estimator's
-N_SLOW = 500.0
+#: where the control fit's scratch starts in the work vector (after the report)
+W0 = SG.REPORT_SIZE
+#: floats of the work vector: the report and the control fit's scratch
+WORK_SIZE = SG.REPORT_SIZE + SC.SCRATCH
 
 
 def _no_mean(form, q, o):
@@ -56,23 +59,27 @@ def detector_mean(form, q, o):
 
 
 @njit(cache=True, inline="always")
-def split_row(st, at, xj, yj, k, e, n, t, gp, mu):
+def split_row(st, at, xj, yj, k, e, n, t, gp, mu, work):
     """One row of the split GLR; returns ``(level_flags, slope_flags)`` (``F_ALARM`` bits).
 
-    The response is ``y* = y - cbar' z`` with ``cbar`` the slow means of the estimator's
-    control coefficients (:func:`slow_control`); series without controls (``k == 2``) are
+    The response is ``y* = y - c' z`` with ``c`` from the detector's own fit of the controls
+    (:mod:`monitor.detectors.split_controls`: least squares over every row, with the regimes'
+    intercepts and slopes partialled out after alarms); controls beyond ``NCF`` use the
+    estimator's current coefficient. A series with controls is fed to the detector only once
+    its controls are identified (:func:`~monitor.detectors.split_controls.fit_identified`);
+    ``work`` is scratch (:data:`WORK_SIZE` floats). Series without controls (``k == 2``) are
     untouched. ``y`` is log q under the log-log model (``mu`` NaN: every row weight 1, ``e``
     the log-scale innovation) and the working response ``x' theta + (q - mu) / mu`` under the
     Poisson model (``mu`` the predicted mean, ``e = q - mu``): the row then enters with the
     working weight ``w = mu`` and the scale sees the Pearson residual ``(q - mu) / sqrt(mu)``
-    (:func:`monitor.detectors.split_glr.split_step_w`, "Working weights")."""
+    (:func:`monitor.detectors.split_glr.split_step_w`, "Working weights"). The control fit is
+    unweighted, and under the Poisson model the detector's sums are not seeded from it at
+    identification (they are weighted)."""
     ys = yj
-    for i in range(2, k):
-        if i - 2 < SG.NCF:
-            slow_control(st, at, i, xj[i])
-            ys -= st[at + SG.CF0 + i - 2] * xj[i]
-        else:
-            ys -= st[K.NS + i] * xj[i]
+    if k > 2:
+        ys, ready = SC.fit_response(st, at, xj, yj, k, st, work, W0, not (mu == mu))
+        if not ready:
+            return 0, 0
     w = 1.0
     if mu == mu:
         w = mu
@@ -81,36 +88,6 @@ def split_row(st, at, xj, yj, k, e, n, t, gp, mu):
     fl = F_ALARM if f & SG.SG_LEVEL else 0
     fs = F_ALARM if f & SG.SG_SLOPE else 0
     return fl, fs
-
-
-@njit(cache=True, inline="always")
-def slow_control(st, at, i, z):
-    """Update the slow mean ``cbar_i`` of the estimator's coefficient of control ``i``.
-
-    On rows where the control is non-zero (``z != 0``), ``cbar_i += (c_i - cbar_i) / min(n_i,
-    N_SLOW)`` with ``n_i`` those rows so far: the plain mean of the first ``N_SLOW`` such rows,
-    then an exponentially weighted mean over about ``N_SLOW`` of them. Rows where the control
-    is zero leave it (the estimator learns nothing about ``c_i`` there, and the control adds
-    nothing to ``y*``): a control that is rarely non-zero (event days) or that starts late in
-    the year (cooling degrees) would otherwise be averaged over rows before the estimator had
-    learned it, and lag behind it for hundreds of rows (measured: 5-8x more false alarms).
-
-    Why not the current ``c_t``: the detector's test treats ``y* = log q - c' z`` as known up
-    to its regression on log price. With the estimator's current ``c_t`` (forgetting 0.995:
-    about 200 rows) ``y*`` moves whenever ``c_t`` wanders; where a control is collinear with
-    the price (tariff blocks that are hour-of-day controls) the error of ``c_t`` is minus the
-    error of ``b_t`` times the controls' prediction of log price (Frisch & Waugh 1933, Lovell
-    1963), so it wanders with ``b_t``, and the moves look like changes of level and slope.
-    State: 2 x ``NCF`` floats (means and counts)."""
-    if z == 0.0 or not (z == z):
-        return
-    c = st[K.NS + i]
-    if not (c == c):            # a NaN coefficient (dependent column) leaves the mean as is
-        return
-    q = at + SG.CF0 + i - 2
-    nn = st[at + SG.CN0 + i - 2] + 1.0
-    st[at + SG.CN0 + i - 2] = nn
-    st[q] += (c - st[q]) / min(nn, N_SLOW)
 
 
 @njit(cache=True, inline="always")
@@ -181,9 +158,14 @@ def change_start(st, at, slope, n, gp):
 
 @njit(cache=True, inline="always")
 def split_reanchor(st, at, fl, fs, gp):
-    """Re-anchor after the row's alarms (slope first: it drops everything)."""
+    """Re-anchor after the row's alarms (slope first: it drops everything); the control fit
+    starts a regime: after a slope alarm the intercept and log price are partialled out of its
+    normal equations, after a level alarm the intercept (a no-op without controls)."""
     if fs & F_ALARM:
         SG.reanchor_slope(st, at, gp)
+        SC.fit_partial(st, at + SG.CFIT0, 0)
+        SC.fit_partial(st, at + SG.CFIT0, 1)
     elif fl & F_ALARM:
         SG.reanchor_level(st, at, gp)
+        SC.fit_partial(st, at + SG.CFIT0, 0)
 
