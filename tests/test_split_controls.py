@@ -83,21 +83,48 @@ def test_after_alarms_the_fit_has_each_regimes_level_and_slope():
     np.testing.assert_allclose(got[:2], [ols[2], ols[4]], rtol=1e-8)
 
 
-def test_identified_is_the_variance_inflation_rule():
+def test_identified_is_the_price_variance_inflation_rule():
+    # reference: statsmodels' variance_inflation_factor of log price in (1, log p, z) (the
+    # centred VIF, 1 / (1 - R^2) of log price on the intercept and the controls)
+    from statsmodels.stats.outliers_influence import variance_inflation_factor
+
     rng = np.random.default_rng(5)
     x, z, y = _rows(rng, 2000, kc=2)
     W = np.column_stack([np.ones_like(x), x, z])
-    for n in (20, 40, 60, 200, 2000):
+    for n in (12, 20, 40, 60, 200, 2000):
         st = np.zeros(SG.SPLIT_SIZE)
         _feed(st, x[:n], z[:n], y[:n])
         _, work = _coef(st, 2)
-        N = W[:n].T @ W[:n]
-        vif = np.diag(np.linalg.inv(N))[2:] * np.diag(N)[2:]     # numpy inverse
+        vif = variance_inflation_factor(W[:n], 1)
         for eps in (0.1, 0.3):
-            want = bool(np.all(vif - 1.0 <= eps * eps * n)) and n >= SC.MIN_FIT_ROWS
-            assert SC.fit_identified(st, SG.CFIT0, work, 0, 2, eps) == want
-    # by 2,000 rows these controls are identified at the default, by 20 they are not
+            want = bool(vif - 1.0 <= eps * eps * n) and n >= SC.MIN_FIT_ROWS
+            assert SC.fit_identified(st, SG.CFIT0, work, 0, 2, eps) == want, (n, eps, vif)
+    # log price that is 0.2 x a 30% flag plus noise of sd 0.1 has VIF_x about 1.1: identified
+    # by 2,000 rows at the default, not by 12
     assert SC.fit_identified(st, SG.CFIT0, work, 0, 2, SC.IDENT_EPS)
+    st = np.zeros(SG.SPLIT_SIZE)
+    _feed(st, x[:12], z[:12], y[:12])
+    _, work = _coef(st, 2)
+    assert not SC.fit_identified(st, SG.CFIT0, work, 0, 2, 0.01)
+
+
+def test_a_control_the_others_determine_is_not_identified():
+    # hourly load in its first hours: the price is one tariff block, a control copies another
+    # column; the factor drops the dependent control, which must not pass for VIF_x = 1
+    rng = np.random.default_rng(6)
+    n = 60
+    x = rng.normal(0.0, 0.1, n)
+    z = np.column_stack([rng.normal(0.0, 1.0, n), np.zeros(n)])
+    z[:, 1] = 2.0 * z[:, 0]                                        # dependent on the first
+    y = 1.0 - x + z[:, 0] + rng.normal(0.0, 0.1, n)
+    st = np.zeros(SG.SPLIT_SIZE)
+    _feed(st, x, z, y)
+    _, work = _coef(st, 2)
+    assert not SC.fit_identified(st, SG.CFIT0, work, 0, 2, SC.IDENT_EPS)
+    st = np.zeros(SG.SPLIT_SIZE)
+    _feed(st, x, z[:, :1], y)
+    _, work = _coef(st, 1)
+    assert SC.fit_identified(st, SG.CFIT0, work, 0, 1, SC.IDENT_EPS)
 
 
 def _run_with_controls():
@@ -116,11 +143,13 @@ def test_a_series_with_controls_is_fed_once_they_are_identified():
     pipe, X, y, states, past_warmup = _run_with_controls()
     at = int(pipe._layout[L_SPLIT])
     assert states[0, at + SG.CFIT_ON] == 1.0
-    # the fit holds the rows past the estimator's warm-up (N_00 is the row count; rows while
-    # the detector holds its scale are left out); the detector was fed from the row the
-    # controls were identified
-    assert 0.0 < states[0, at + SG.CFIT0] <= past_warmup
-    assert 0.0 < states[0, at + SG.D_NF] < past_warmup
+    # the fit holds every row, the estimator's warm-up included (N_00 is the row count, no
+    # alarm here partialled the intercept out); the detector was fed from the row the
+    # controls were identified, which for a flag drawn apart from the price is soon after the
+    # warm-up's end: its chance collinearity R^2 ~ chi2(1) / n must fall below 0.01 n, i.e.
+    # n of 10 to 30 rows (here 16 rows after the 10 of the warm-up)
+    assert states[0, at + SG.CFIT0] == len(y)
+    assert past_warmup - 30 <= states[0, at + SG.D_NF] <= past_warmup
 
 
 @pytest.mark.parametrize("old", PREVIOUS_CONTROL_BLOCKS)
@@ -145,3 +174,25 @@ def test_an_older_checkpoint_resumes_with_the_control_fit_fresh(old):
     assert more.states[0, at] == 1.0
     with pytest.raises(ConfigError, match="layout changed"):
         pipe.checked_state(vec[:-1])
+
+
+def test_at_identification_the_earlier_rows_seed_the_window_sums():
+    # the detector's window sums start from every row before the identifying one, with y*
+    # for the fit's c at that row (numpy least squares and sums on the same rows)
+    rng = np.random.default_rng(8)
+    x, z, y = _rows(rng, 400, kc=2)
+    st = np.zeros(SG.SPLIT_SIZE)
+    work = np.zeros(SC.SCRATCH)
+    est = np.zeros(64)
+    for j in range(len(x)):
+        xj = np.r_[1.0, x[j], z[j]]
+        _, ready = SC.fit_response(st, 0, xj, y[j], 4, est, work, 0, True)
+        if ready:
+            break
+    assert SC.MIN_FIT_ROWS - 1 <= j < len(x) - 1
+    W = np.column_stack([np.ones(j + 1), x[:j + 1], z[:j + 1]])
+    c = np.linalg.lstsq(W, y[:j + 1], rcond=None)[0]
+    ys = (y - z @ c[2:])[:j]                      # rows before the identifying one
+    xc = x[:j] - x[j]                             # the detector's origin: the current price
+    want = [j, xc.sum(), (xc * xc).sum(), ys.sum(), (xc * ys).sum()]
+    np.testing.assert_allclose(st[SG.C0:SG.C0 + 5], want, rtol=1e-9, atol=1e-9)

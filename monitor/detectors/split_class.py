@@ -128,16 +128,19 @@ class SplitGLR:
         ``learn_one`` (``row``: the design row, needed only with controls: the controls'
         effects are then removed with the detector's own fit of them,
         :mod:`monitor.detectors.split_controls`, and rows are fed once they are identified).
-        Rows while the estimator is warming up are skipped."""
+        Rows while the estimator is warming up enter only that fit."""
         st = est.state_vector
         k = est.row_width
         self.alarm, self.report = None, None
         if est.n_eff < max(est.min_n_eff, k + 2.0) or not math.isfinite(est.residual_sd):
+            if row is not None and k > 2:     # warm-up rows enter only the control fit
+                SC.fit_row(self._state, 0, np.asarray(row, dtype=np.float64), float(log_q), k,
+                           st)
             return self
         y = float(log_q)
         if row is not None and k > 2:
             r = np.asarray(row, dtype=np.float64)
-            y, ready = SC.fit_response(self._state, 0, r, y, k, st, self._work, 0)
+            y, ready = SC.fit_response(self._state, 0, r, y, k, st, self._work, 0, True)
             if not ready:
                 return self
         f = S.split_step(self._state, 0, float(log_price), y, float(st[K.I_E]),

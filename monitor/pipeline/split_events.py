@@ -91,6 +91,14 @@ def split_row(st, at, xj, yj, k, e, n, t, gp, mu, work):
 
 
 @njit(cache=True, inline="always")
+def split_warm(st, at, xj, yj, k):
+    """A row of a series with controls (``k > 2``) while the estimator warms up: it enters
+    only the detector's control fit (:func:`~monitor.detectors.split_controls.fit_row`), so
+    the controls can be identified by the time the detector may start."""
+    SC.fit_row(st, at, xj, yj, k, st)
+
+
+@njit(cache=True, inline="always")
 def delay50(st, at, h):
     """Expected rows to detect a change of 0.5 in b at this series' price variation and noise:
     ``DELAY_FACTOR * h / I`` with ``I = 0.25 Var(log p) / (2 sigma_s^2)`` (NaN when there is
