@@ -197,25 +197,15 @@ def hc_factor(W, W2, W3, rank):
 
 
 @njit(cache=True, inline="always")
-def finish(st, out, beta, intercept, identified, vb, V, rank, k, neff, lowvar, band, e, z,
-           min_neff, tq, ylog, qmult=1.0):
-    """Write the output row from the updated quantities (shared by both step forms)."""
-    W = st[I_W]
-    dof = W - rank
-    out[O_NEFF] = neff
-    out[O_E] = e
-    out[O_Z] = z
-    out[O_INTERCEPT] = intercept
-    out[O_BAND] = band
-    out[O_YLOG] = ylog
-    warm = neff < min_neff or neff < k + 2.0
-    if dof > 0.0 and V > 0.0:
-        out[O_RESID_SD] = np.sqrt(V / dof)
-    else:
-        out[O_RESID_SD] = np.nan
-    if identified and dof > 0.0 and V > 0.0 and vb >= 0.0:
-        se = np.sqrt(vb)
-        tq_ = t_lookup(tq, neff - rank) * qmult
+def band_row(out, ok, beta, se, tq_, identified, warm, lowvar):
+    """The elasticity, its band and the status of the output row (both step forms).
+
+    ``ok``: b is identified and its variance defined (``se`` and the t quantile ``tq_`` are
+    then used: limits ``beta -+ tq_ se``); otherwise the band is NaN and the status is
+    ``warming_up`` while b is identified or the estimator is warming up, else
+    ``low_variation``. With a band, the status is ``warming_up`` while warming up or when the
+    t quantile is undefined, ``low_variation`` when the price varies too little, else ``ok``."""
+    if ok:
         out[O_BETA] = beta
         out[O_SE] = se
         out[O_LO] = beta - tq_ * se
@@ -235,6 +225,31 @@ def finish(st, out, beta, intercept, identified, vb, V, rank, k, neff, lowvar, b
             out[O_STATUS] = ST_WARMING_UP
         else:
             out[O_STATUS] = ST_LOW_VARIATION
+
+
+@njit(cache=True, inline="always")
+def finish(st, out, beta, intercept, identified, vb, V, rank, k, neff, lowvar, band, e, z,
+           min_neff, tq, ylog, qmult=1.0):
+    """Write the output row from the updated quantities (shared by both step forms)."""
+    W = st[I_W]
+    dof = W - rank
+    out[O_NEFF] = neff
+    out[O_E] = e
+    out[O_Z] = z
+    out[O_INTERCEPT] = intercept
+    out[O_BAND] = band
+    out[O_YLOG] = ylog
+    warm = neff < min_neff or neff < k + 2.0
+    if dof > 0.0 and V > 0.0:
+        out[O_RESID_SD] = np.sqrt(V / dof)
+    else:
+        out[O_RESID_SD] = np.nan
+    if identified and dof > 0.0 and V > 0.0 and vb >= 0.0:
+        se = np.sqrt(vb)
+        band_row(out, True, beta, se, t_lookup(tq, neff - rank) * qmult, identified, warm,
+                 lowvar)
+    else:
+        band_row(out, False, beta, np.nan, np.nan, identified, warm, lowvar)
 
 
 @njit(cache=True, inline="always")
@@ -432,26 +447,10 @@ def step_two_band(st, x1, y, band, lam, guard, guard_lam, min_price_sd, min_neff
     vok = dof > 0.0 and V > 0.0
     out[O_RESID_SD] = rsd if vok else np.nan
     if identified and vok and vb >= 0.0:
-        tq_ = t_lookup_inv(tq, neff - rank, u_df)
-        out[O_BETA] = b
-        out[O_SE] = se
-        out[O_LO] = b - tq_ * se
-        out[O_HI] = b + tq_ * se
-        if warm or not (tq_ == tq_):
-            out[O_STATUS] = ST_WARMING_UP
-        elif lowvar:
-            out[O_STATUS] = ST_LOW_VARIATION
-        else:
-            out[O_STATUS] = ST_OK
+        band_row(out, True, b, se, t_lookup_inv(tq, neff - rank, u_df), identified, warm,
+                 lowvar)
     else:
-        out[O_BETA] = b if identified else np.nan
-        out[O_SE] = np.nan
-        out[O_LO] = np.nan
-        out[O_HI] = np.nan
-        if identified or warm:
-            out[O_STATUS] = ST_WARMING_UP
-        else:
-            out[O_STATUS] = ST_LOW_VARIATION
+        band_row(out, False, b, np.nan, np.nan, identified, warm, lowvar)
     diagnostics(st, y - a - b * x1, lt)
 
 
