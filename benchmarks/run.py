@@ -53,16 +53,19 @@ def _marks(group: str) -> tuple[str, str]:
     return f"<!-- partial run: {group} -->", f"<!-- end of partial run: {group} -->"
 
 
-def partial_section(group: str, rows: list[Row], info: dict, elapsed: float) -> str:
-    """A group's figures from a ``--only ... --update`` run, with the machine and load."""
+def partial_section(group: str, rows: list[Row], info: dict, elapsed: float,
+                    sections: list[str] = ()) -> str:
+    """A group's figures from a ``--only ... --update`` run, with the machine and load, and the
+    whole tables the group added (``ctx.sections``: the detection grid's)."""
     from benchmarks import notes
 
     start, end = _marks(group)
     missed = notes.missed_lines(rows)
     why = ["", "Missed targets of this group:", "", *missed] if missed else []
+    extra = [x for sec in sections for x in ("", sec)]
     return "\n".join([start, f"## Figures of group `{group}` (partial run: `python -m "
                       f"benchmarks.run --only {group} --update`)", "",
-                      machine_text(info, elapsed), "", table(rows), *why, "", end])
+                      machine_text(info, elapsed), "", table(rows), *why, *extra, "", end])
 
 
 def update_section(text: str, group: str, section: str) -> str:
@@ -101,6 +104,7 @@ def main(argv: list[str] | None = None) -> int:
     info = machine()
     t_all = time.perf_counter()
     rows: list[Row] = []
+    group_sections: dict[str, list[str]] = {}
     failed = False
     with tempfile.TemporaryDirectory(prefix="elmon-bench-") as tmp:
         ctx = Context(quick=args.quick, runs=args.runs, tmp=Path(tmp),
@@ -109,6 +113,7 @@ def main(argv: list[str] | None = None) -> int:
             ctx.reserve_s = sum(MIN_S.get(h, 0.0) for h in groups[i + 1:])
             t0 = time.perf_counter()
             print(f"==> {g}", flush=True)
+            n_sections = len(getattr(ctx, "sections", []))
             try:
                 mod = importlib.import_module(f"benchmarks.{g}")
                 got = mod.run(ctx)
@@ -119,6 +124,7 @@ def main(argv: list[str] | None = None) -> int:
                 failed = True
             for r in got:
                 r.group = r.group or g
+            group_sections[g] = list(getattr(ctx, "sections", []))[n_sections:]
             rows += got
             print(table(got), flush=True)
             print(f"    ({g}: {time.perf_counter() - t0:.0f} s)", flush=True)
@@ -137,7 +143,8 @@ def main(argv: list[str] | None = None) -> int:
         text = target.read_text() if target.exists() else INTRO
         for g in groups:
             got = [r for r in rows if r.group == g]
-            text = update_section(text, g, partial_section(g, got, info, elapsed))
+            text = update_section(text, g, partial_section(g, got, info, elapsed,
+                                                           group_sections.get(g, [])))
         target.write_text(text)
         print(f"\nupdated {target} (groups {', '.join(groups)})")
     elif out is not None:

@@ -82,3 +82,18 @@ def test_partial_update_replaces_only_its_group_section():
                                       "<!-- end of partial run: startup -->")
     assert a2.startswith(text.rstrip("\n")) and "A1" not in a2 and "A2" in a2 and "\nB\n" in a2
     assert a2.count("<!-- partial run: startup -->") == 1
+
+
+def test_partial_section_keeps_the_whole_tables_its_group_added():
+    """A partial run of the detection group writes its grid tables (ctx.sections) into its
+    section of RESULTS.md, not only the summary rows (they were dropped before)."""
+    from benchmarks.common import Row, machine
+    from benchmarks.run import partial_section
+
+    grid = "### Detection against the information bound (issue 12)\n\n| a | b |\n|---|---|"
+    rows = [Row("detection: x", 1.0, "x", [1.0], target="report", group="detection")]
+    info = machine()
+    info["load_end"] = info.get("load_start")
+    sec = partial_section("detection", rows, info, 60.0, [grid])
+    assert grid in sec and sec.index("detection: x") < sec.index(grid)
+    assert sec.rstrip().endswith("<!-- end of partial run: detection -->")
