@@ -20,6 +20,16 @@ def store(tmp_path):
     s.close()
 
 
+@pytest.fixture(scope="module")
+def cluster():
+    """A local Dask cluster (2 worker processes, 1 thread each) shared by a module's tests."""
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, host="127.0.0.1",
+                      dashboard_address=None) as c:
+        yield c
+
+
 @pytest.fixture
 def rng():
     return np.random.default_rng(20261201)

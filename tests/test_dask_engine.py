@@ -22,15 +22,6 @@ NOW = pd.Timestamp("2030-01-01", tz="UTC").value
 
 
 @pytest.fixture(scope="module")
-def cluster():
-    from distributed import LocalCluster
-
-    with LocalCluster(n_workers=2, threads_per_worker=1, host="127.0.0.1",
-                      dashboard_address=None) as c:
-        yield c
-
-
-@pytest.fixture(scope="module")
 def data(tmp_path_factory):
     d = tmp_path_factory.mktemp("dask")
     sim = simulators.simulate("retail", seed=8, n_series=12, length=365)

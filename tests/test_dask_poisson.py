@@ -29,15 +29,6 @@ pytestmark = pytest.mark.slow
 NOW = pd.Timestamp("2030-01-01", tz="UTC").value
 
 
-@pytest.fixture(scope="module")
-def cluster():
-    from distributed import LocalCluster
-
-    with LocalCluster(n_workers=2, threads_per_worker=1, host="127.0.0.1",
-                      dashboard_address=None) as c:
-        yield c
-
-
 def count_log(seed: int = 21, n_series: int = 6, length: int = 150) -> pd.DataFrame:
     """Hourly counts of ``n_series`` invented kiosk items, rows in time order, as text."""
     rng = np.random.default_rng(seed)
