@@ -110,19 +110,11 @@ class SeriesBook:
             self.states = np.zeros((0, self.width), dtype=np.float64)
 
 
-def gate_from_state(state, window: int) -> tuple:
-    """``(last_ts, ring, ring_ts, count, qring, qcount)`` of one series from a checkpoint's
-    gate state (:func:`monitor.rows.gate_state.gate_parts`: the binary text, or the object of
-    older checkpoints; one without rings, as a reset writes, or without ``qring``, as older
-    versions wrote, starts them at zero, as :meth:`SeriesGate.restore` does)."""
-    return gate_parts(state, window)
-
-
 def _gate_arrays(gate: SeriesGate, names: list[str], parts: list) -> None:
     """Set every restored series' gate state at once (``parts[k]`` of ``names[k]``: the raw
-    binary record (:func:`monitor.rows.gate_state.gate_bytes`) or the tuple of
-    :func:`gate_from_state` for an older checkpoint): one array per field, instead of growing
-    the gate's arrays one series at a time (quadratic: 100k series took 170 s that way). The
+    binary record (:func:`monitor.rows.gate_state.gate_bytes`) or, for an older checkpoint,
+    the tuple of :func:`monitor.rows.gate_state.gate_parts`): one array per field, instead of
+    growing the gate's arrays one series at a time (quadratic: 100k series took 170 s that way). The
     binary records are decoded together by one ``np.frombuffer``."""
     window = gate.ring.shape[1]
     n = len(names)
@@ -194,7 +186,7 @@ def restore(store, pipeline) -> tuple[SeriesGate, SeriesBook]:
         if st.get("gate") is not None:
             try:
                 rec = gate_bytes(st["gate"], window)
-                gate_rows.append(rec if rec is not None else gate_from_state(st["gate"], window))
+                gate_rows.append(rec if rec is not None else gate_parts(st["gate"], window))
             except (ConfigError, ValueError, KeyError, TypeError) as exc:
                 raise _changed_model(series, f"gate state unreadable ({exc})") from None
             gate_names.append(series)
