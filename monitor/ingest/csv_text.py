@@ -49,6 +49,9 @@ READ_STEP = 1 << 22
 MAX_HEADER_BYTES = 1 << 20
 #: characters never accepted inside a field: NUL and the byte-order mark (zero width)
 INVISIBLE = ("\x00", "\ufeff")
+#: the dtype of the fields of a chunk read by Arrow: text, a missing field ``pd.NA``
+TEXT_DTYPE = pd.StringDtype("pyarrow")
+
 def file_delimiter(path, stated: str | None = None) -> str:
     """``stated`` when given, else the separator sniffed from the file's first line."""
     if stated:
@@ -166,13 +169,18 @@ def _drop_invisible(frame: pd.DataFrame, rows: np.ndarray, names: list[str]
                     "reason": f"row {int(rows[i])}: field {names[j]!r} = {shown}: holds a NUL "
                               f"byte or a byte-order mark (U+FEFF); rule: fields hold no "
                               f"invisible characters (the same id would become another series)",
-                    "raw": json.dumps({names[k]: rec.iloc[k] for k in range(len(cols))})})
+                    "raw": json.dumps({names[k]: _field(rec.iloc[k]) for k in range(len(cols))})})
     keep = ~bad
     return frame.loc[keep].reset_index(drop=True), rows[keep], out
 
 
 def _text(v) -> str:
-    return "" if v is None else str(v)
+    return "" if v is None or v is pd.NA else str(v)
+
+
+def _field(v):
+    """A field for a reject's ``raw`` JSON: a missing one (``pd.NA`` or None) is null."""
+    return None if v is None or v is pd.NA else v
 
 
 def _decode(line: bytes) -> str:
@@ -204,9 +212,14 @@ def _parse_fast(names: list[str], body: bytes, delimiter: str = ","
         convert_options=pacsv.ConvertOptions(column_types={n: pa.string() for n in names},
                                              null_values=[""], strings_can_be_null=True,
                                              quoted_strings_can_be_null=True))
-    frame = pd.DataFrame({f"c{j}": table.column(j).to_pandas(types_mapper=None)
+    # Arrow-backed text (``string[pyarrow]``, an empty field is ``pd.NA``): validation reads
+    # such columns in C (blank test, number cast, series codes) instead of one Python object per
+    # field; the values, blanks and reject texts are those of object columns holding None
+    # (tests/test_ingest_same.py)
+    text = {pa.string(): TEXT_DTYPE}.get
+    frame = pd.DataFrame({f"c{j}": table.column(j).to_pandas(types_mapper=text)
                           for j in range(table.num_columns)})
-    return frame.astype(object).where(frame.notna(), None), sorted(bad)
+    return frame, sorted(bad)
 
 
 def _parse_slow(names, body, starts, nl, line_rows, blank, delimiter=","):
@@ -398,7 +411,8 @@ def header_row(frame: pd.DataFrame, names: list[str]) -> int | None:
     wanted = sorted(n.strip() for n in names)
     first = frame.iloc[:, 0].astype("string").str.strip().str.lstrip("\ufeff")
     for i in np.flatnonzero(first.isin(wanted).to_numpy(dtype=bool)):
-        values = [None if v is None else str(v).strip().lstrip("\ufeff") for v in frame.iloc[i]]
+        values = [None if v is None or v is pd.NA else str(v).strip().lstrip("\ufeff")
+                  for v in frame.iloc[i]]
         if None not in values and sorted(values) == wanted:
             return int(i)
     return None
