@@ -110,7 +110,11 @@ def duplicates_against_store(store, cand: pd.DataFrame, last_seen: dict, reject_
     keys = cand.iloc[order][["series", "ts"]]
     rep = keys.duplicated(keep=False if reject_all else "first").to_numpy()
     dup[order[rep]] = True
-    seen = cand["series"].map(last_seen).fillna(NAT).to_numpy(dtype=np.int64)
+    codes, names = pd.factorize(cand["series"])
+    if (codes >= 0).all() and all(n in last_seen for n in names):   # each name looked up once
+        seen = np.array([last_seen[n] for n in names], dtype=np.int64)[codes]
+    else:
+        seen = cand["series"].map(last_seen).fillna(NAT).to_numpy(dtype=np.int64)
     ts = cand["ts"].to_numpy(dtype=np.int64)
     check = (ts <= seen) & ~dup
     if check.any():

@@ -277,7 +277,7 @@ class Monitor:
         cand = pd.concat([good[["row", "series", "ts"]].assign(zero=False),
                           zeros[["row", "series", "ts"]].assign(zero=True)
                           if zeros is not None else None], ignore_index=True)
-        seen = {n: self.book.last_obs.get(n, NAT) for n in set(cand["series"])}
+        seen = {n: self.book.last_obs.get(n, NAT) for n in cand["series"].unique().tolist()}
         dup, late = duplicates_against_store(
             self.store, cand, seen, self.validation.duplicate_policy == "reject_all",
             int(self.validation.allowed_lateness_s * 1e9))

@@ -9,7 +9,7 @@ import pandas as pd
 
 from monitor.estimators import kernel as K
 from monitor.pipeline.messages import CHANGE_COLUMNS, events_frame
-from monitor.rows.isotime import format_ts
+from monitor.rows.isotime import format_ts, iso_utc
 from monitor.types import STATUS_LABELS
 
 
@@ -53,11 +53,18 @@ def estimates_frame(good: pd.DataFrame, out: np.ndarray, status: np.ndarray) -> 
 
 def _estimates(good: pd.DataFrame, out: np.ndarray, labels: np.ndarray) -> pd.DataFrame:
     return pd.DataFrame({
-        "series": good["series"].to_numpy(), "ts": format_ts(good["ts"].to_numpy()),
+        "series": good["series"].to_numpy(), "ts": _iso_text(good["ts"].to_numpy()),
         "beta": out[:, K.O_BETA], "beta_se": out[:, K.O_SE], "beta_lo": out[:, K.O_LO],
         "beta_hi": out[:, K.O_HI], "n_eff": out[:, K.O_NEFF], "status": labels,
         "intercept": out[:, K.O_INTERCEPT], "resid_sd": out[:, K.O_RESID_SD],
         "innovation": out[:, K.O_E], "z": out[:, K.O_Z], "band": band_kinds(out)})
+
+
+def _iso_text(ns: np.ndarray) -> np.ndarray:
+    """:func:`monitor.rows.isotime.format_ts` of int64 ns as an object array of ``str``,
+    written by the compiled :func:`monitor.rows.isotime.iso_utc` (the same text; it hands
+    sub-second and far times to ``format_ts`` itself)."""
+    return iso_utc(ns).to_numpy(zero_copy_only=False).astype(object)
 
 
 def _change_columns(ev: pd.DataFrame) -> dict:

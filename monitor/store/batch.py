@@ -19,41 +19,51 @@ from monitor.store.codec import format_ts_array, from_json, wall_ts
 from monitor.store.core import Store, accepts_path
 from monitor.store.rows import (ESTIMATE_COLUMNS, OBSERVATION_COLUMNS, as_frame, checkpoint_rows,
                                 estimate_rows, newest_per_series, observation_rows,
-                                offset_statements, reject_rows, series_counts, settings_sql)
-from monitor.store.schema import SPARK_KEEP, beta_text, spark_text
+                                offset_statements, reject_rows, series_counts, series_time_order,
+                                settings_sql, SeriesTimeOrder)
+from monitor.store.schema import SPARK_KEEP
 
 
 UPSERT_SPARK = ("INSERT INTO sparklines (series, n, ts, beta) VALUES (?, ?, ?, ?) ON CONFLICT "
                  "(series) DO UPDATE SET n = excluded.n, ts = excluded.ts, beta = excluded.beta")
 
 
-def _spark_updates(store: Store, est_df: pd.DataFrame, est_rows: list[tuple]) -> list[tuple]:
+def _spark_updates(store: Store, est_df: pd.DataFrame, est_rows: list[tuple],
+                   by: SeriesTimeOrder | None = None) -> list[tuple]:
     """New sparkline cache rows: each series' cached points plus this batch's, last SPARK_KEEP.
 
     Rows of a batch normally come after the cached ones; a late estimate (older ``ts``) is
-    merged in time order.
+    merged in time order. The batch's rows are taken in (series, ts) order
+    (:func:`monitor.store.rows.series_time_order`), the last SPARK_KEEP of each series.
     """
-    order = pd.DataFrame({"series": est_df["series"].to_numpy(object),
-                          "ts": est_df["ts"].to_numpy(object)})
-    order = order.sort_values(["series", "ts"], kind="stable")
-    order = order.groupby("series", sort=False).tail(SPARK_KEEP)
-    idx = order.index.to_numpy()
-    names = order["series"].to_numpy(object)
-    cuts = np.flatnonzero(names[1:] != names[:-1]) + 1
-    starts, ends = np.r_[0, cuts], np.r_[cuts, len(names)]
+    by = series_time_order(est_df) if by is None else by
+    sizes = by.ends - by.starts
+    keep = np.minimum(sizes, SPARK_KEEP)
+    # positions in ``by.order`` of each series' last ``keep`` rows, series after series
+    lo = np.repeat(by.ends - keep, keep)
+    idx = by.order[lo + np.arange(lo.size) - np.repeat(np.cumsum(keep) - keep, keep)]
+    ends = np.cumsum(keep)
+    starts = ends - keep
+    names = est_df["series"].to_numpy(dtype=object)[idx]
     cached = {r[0]: r[1:] for r in store.conn.execute(
         "SELECT series, ts, beta FROM sparklines WHERE series IN (SELECT value FROM json_each(?))",
         (json.dumps(names[starts].tolist()),))}
-    ts_all = order["ts"].tolist()
-    beta_all = [beta_text(est_rows[i][2]) for i in idx]
+    ts_all = est_df["ts"].to_numpy(dtype=object)[idx].tolist()
+    # the rows' beta (None for NULL) as beta_text writes it: repr, 'nan' for NULL
+    beta = np.array([est_rows[i][2] for i in idx.tolist()], dtype=np.float64)
+    beta_all = list(map(repr, beta.tolist()))
     out = []
-    for lo, hi in zip(starts.tolist(), ends.tolist()):
-        name = names[lo]
-        new = list(zip(ts_all[lo:hi], beta_all[lo:hi]))
+    for name, a, b in zip(names[starts].tolist(), starts.tolist(), ends.tolist()):
+        new_ts, new_beta = ts_all[a:b], beta_all[a:b]
         if name in cached:
-            old = list(zip(cached[name][0].split(","), cached[name][1].split(",")))
-            new = old + new if old[-1][0] < new[0][0] else sorted(old + new)
-        out.append((name, *spark_text(new[-SPARK_KEEP:])))
+            old_ts, old_beta = cached[name][0].split(","), cached[name][1].split(",")
+            if old_ts[-1] < new_ts[0]:
+                new_ts, new_beta = old_ts + new_ts, old_beta + new_beta
+            else:
+                pairs = sorted(list(zip(old_ts, old_beta)) + list(zip(new_ts, new_beta)))
+                new_ts, new_beta = [p[0] for p in pairs], [p[1] for p in pairs]
+        new_ts, new_beta = new_ts[-SPARK_KEEP:], new_beta[-SPARK_KEEP:]
+        out.append((name, len(new_ts), ",".join(new_ts), ",".join(new_beta)))
     return out
 
 
@@ -148,12 +158,17 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
     obs_df = obs_rows = est_df = est_rows = latest_rows = None
     if observations is not None:
         obs_df, obs_rows = observation_rows(observations)
+    est_order = None
     if estimates is not None:
         est_df, est_rows = estimate_rows(estimates)
-    if latest_estimates is not None:
-        latest_rows = newest_per_series(*estimate_rows(latest_estimates))
+        est_order = series_time_order(est_df)
+    if latest_estimates is not None and est_rows is not None and _same_frame(latest_estimates,
+                                                                             estimates):
+        latest_rows = newest_per_series(est_df, est_rows, est_order)  # rows checked above
+    elif latest_estimates is not None:
+        latest_rows = estimate_rows(latest_estimates, newest=True)[1]
     elif est_rows:
-        latest_rows = newest_per_series(est_df, est_rows)
+        latest_rows = newest_per_series(est_df, est_rows, est_order)
     settings_df = as_frame(series, key="series") if series is not None else None
     settings_stmts = settings_sql(settings_df, now) if settings_df is not None else []
     own_bounds = settings_df is not None and bool({"low", "high"} & set(settings_df.columns))
@@ -162,8 +177,8 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
     offset_params = offset_statements(offsets, now) if offsets is not None else []
     changes = list(alert_changes or [])
     with store.atomic():
-        for sql, params in settings_stmts:
-            store.conn.execute(sql, params)
+        for sql, params in _runs(settings_stmts):      # one executemany per run of equal SQL
+            store.conn.executemany(sql, params)
         if own_bounds and settings_stmts:
             store.bounds_version += 1            # Monitor.own_bounds drops its cache
         summary["series"] = len(settings_stmts)
@@ -190,7 +205,8 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
         if latest_rows:
             store.conn.executemany(UPSERT_LATEST, latest_rows)
         if est_rows:
-            store.conn.executemany(UPSERT_SPARK, _spark_updates(store, est_df, est_rows))
+            store.conn.executemany(UPSERT_SPARK, _spark_updates(store, est_df, est_rows,
+                                                                est_order))
         if reject_params:
             store.conn.executemany(
                 "INSERT INTO rejects (source, row, series, ts, field, value, raw, reason, "
@@ -211,6 +227,31 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
             if alert_id is not None:
                 summary[f"alerts_{outcome}"].append(alert_id)
     return summary
+
+
+def _same_frame(a: Any, b: Any) -> bool:
+    """Whether two estimate inputs are the same rows: the same object, or two DataFrames
+    with equal columns, dtypes and values (``DataFrame.equals``: NaN equal to NaN in the same
+    place), as the engine's unthinned and kept frames are when every estimate is kept."""
+    if a is b:
+        return True
+    if not (isinstance(a, pd.DataFrame) and isinstance(b, pd.DataFrame)):
+        return False
+    if a.shape != b.shape or list(a.columns) != list(b.columns):
+        return False
+    return a.reset_index(drop=True).equals(b.reset_index(drop=True))
+
+
+def _runs(statements: list[tuple[str, tuple]]) -> list[tuple[str, list[tuple]]]:
+    """Consecutive statements with the same SQL text as one ``(sql, [params, ...])`` each, in
+    order (the same statements in the same order, run by fewer calls)."""
+    out: list[tuple[str, list[tuple]]] = []
+    for sql, params in statements:
+        if out and out[-1][0] == sql:
+            out[-1][1].append(params)
+        else:
+            out.append((sql, [params]))
+    return out
 
 
 def _duplicate_message(store: Store, df: pd.DataFrame) -> str:

@@ -22,11 +22,15 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from monitor.errors import ValidationError
 
 
 _WHOLE_SECOND = re.compile(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ$")
+#: the same pattern for Arrow's RE2 (stricter than Python's: see _all_whole_second)
+_WHOLE_SECOND_RE2 = r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ$"
 
 
 def _to_timestamp(value: Any) -> pd.Timestamp:
@@ -65,6 +69,21 @@ def format_ts(value: Any) -> str:
     return stamp.strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
+def _all_whole_second(text: pd.Series) -> bool:
+    """Whether every value is a ``str`` of the canonical whole-second form (already what
+    :func:`format_ts` writes), decided in C: Arrow takes the column as text only when every
+    value is a ``str`` (anything else raises), then one RE2 expression over it. RE2's ``\\d``
+    is ASCII only and its ``$`` the very end, so a ``True`` here is also ``True`` by
+    :data:`_WHOLE_SECOND` (Python's ``re``); a ``False`` is checked again the Python way."""
+    try:
+        arr = pa.array(text.to_numpy(object), type=pa.string(), from_pandas=False)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError):
+        return False
+    if arr.null_count:
+        return False
+    return bool(pc.all(pc.match_substring_regex(arr, _WHOLE_SECOND_RE2)).as_py())
+
+
 def format_ts_array(values: Any, field: str = "ts") -> np.ndarray:
     """Vectorized :func:`format_ts` over a column; returns an object array of strings.
 
@@ -78,9 +97,11 @@ def format_ts_array(values: Any, field: str = "ts") -> np.ndarray:
         stamps = pd.to_datetime(col.astype("float64"), unit="s", utc=True)
     else:
         text = col.astype(object)
+        if _all_whole_second(text):
+            return text.to_numpy(object)
         is_str = np.fromiter((isinstance(v, str) for v in text), bool, len(text))
         if is_str.all() and col.astype(str).str.match(_WHOLE_SECOND.pattern).all():
-            return text.to_numpy(object)
+            return text.to_numpy(object)      # Python's reading (Unicode digits, "...Z\n")
         try:
             if is_str.all():
                 stamps = pd.to_datetime(text, utc=True, format="ISO8601", errors="coerce")

@@ -9,7 +9,7 @@ value and the rule.
 from __future__ import annotations
 
 import dataclasses
-from typing import Any, Iterable, Mapping
+from typing import Any, Iterable, Mapping, NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -43,8 +43,11 @@ def as_frame(data: Any, key: str | None = None) -> pd.DataFrame:
 
 def _objects(values: np.ndarray) -> list:
     """Float array -> list with ``None`` in place of NaN (SQLite NULL)."""
+    nan = np.isnan(values)
+    if not nan.any():
+        return values.tolist()
     out = values.astype(object)
-    out[np.isnan(values)] = None
+    out[nan] = None
     return out.tolist()
 
 
@@ -62,6 +65,14 @@ def _floats(df: pd.DataFrame, col: str, what: str) -> np.ndarray:
 
 def _where(df: pd.DataFrame, i: int, what: str) -> str:
     return f"{what} {i} (series {df['series'].iloc[i]!r}, ts {df['ts'].iloc[i]!r})"
+
+
+def _text_column(col: pd.Series) -> pd.Series:
+    """``col.astype(str)``, or ``col`` itself when it already holds only ``str`` objects
+    (the engine's frames): the same values without a round trip through Arrow text."""
+    if col.dtype == object and set(map(type, col.to_numpy())) <= {str}:
+        return col
+    return col.astype(str)
 
 
 def _require(df: pd.DataFrame, cols: Iterable[str], what: str) -> None:
@@ -83,7 +94,7 @@ def observation_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
     df = as_frame(data)
     what = "observation"
     _require(df, ("series", "ts", "price", "quantity"), what)
-    df = df.assign(series=df["series"].astype(str), ts=format_ts_array(df["ts"]))
+    df = df.assign(series=_text_column(df["series"]), ts=format_ts_array(df["ts"]))
     price, qty = _floats(df, "price", what), _floats(df, "quantity", what)
     for name, vals, ok in (("price", price, price > 0), ("quantity", qty, qty >= 0)):
         bad = ~(np.isfinite(vals) & ok)
@@ -99,7 +110,9 @@ def observation_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
         i = int(np.flatnonzero(dup.to_numpy())[0])
         raise StoreError(f"{_where(df, i, what)} appears twice in the batch")
     extra = [c for c in df.columns if c not in OBSERVATION_COLUMNS]
-    if "controls" in df.columns:
+    if "controls" in df.columns and set(map(type, df["controls"].tolist())) <= {str, type(None)}:
+        controls = df["controls"].tolist()          # text or None: stored as they are
+    elif "controls" in df.columns:
         controls = [v if isinstance(v, str) or v is None else
                     (None if isinstance(v, float) and np.isnan(v) else to_json(dict(v)))
                     for v in df["controls"].tolist()]
@@ -110,11 +123,27 @@ def observation_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
         controls = [None] * len(df)
     source = df["source"].astype(object).where(df["source"].notna(), None).tolist() \
         if "source" in df.columns else [None] * len(df)
-    srow = _objects(_floats(df, "source_row", what))
-    srow = [None if v is None else int(v) for v in srow]
+    srow = _source_rows(df, what)
     rows = list(zip(df["series"].tolist(), df["ts"].tolist(), price.tolist(), qty.tolist(),
                     controls, source, srow, exposure))
     return df, rows
+
+
+#: integers up to this size pass through float64 unchanged (2**53)
+_EXACT_INT = 2 ** 53
+
+
+def _source_rows(df: pd.DataFrame, what: str) -> list:
+    """``source_row`` as a list of ``int`` (``None`` where missing): each value goes through
+    float64 and ``int`` as it always has; an integer column whose values float64 holds
+    exactly (all row numbers) is the same list straight from the integers."""
+    col = df["source_row"] if "source_row" in df.columns else None
+    if col is not None and pd.api.types.is_integer_dtype(col.dtype) \
+            and not pd.api.types.is_bool_dtype(col.dtype) and not col.isna().any():
+        vals = col.to_numpy(dtype=np.int64)
+        if not len(vals) or np.abs(vals).max() <= _EXACT_INT:
+            return vals.tolist()
+    return [None if v is None else int(v) for v in _objects(_floats(df, "source_row", what))]
 
 
 def _exposures(df: pd.DataFrame, what: str) -> list:
@@ -141,12 +170,16 @@ def _exposures(df: pd.DataFrame, what: str) -> list:
     return _objects(vals)
 
 
-def estimate_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
-    """Checked estimates in :data:`ESTIMATE_COLUMNS` order; NaN -> None, inf refused."""
+def estimate_rows(data: Any, newest: bool = False) -> tuple[pd.DataFrame, list[tuple]]:
+    """Checked estimates in :data:`ESTIMATE_COLUMNS` order; NaN -> None, inf refused.
+
+    Every row is checked; with ``newest=True`` the tuples are those of
+    :func:`newest_per_series` only (the rows that update ``latest_estimates``).
+    """
     df = as_frame(data)
     what = "estimate"
     _require(df, ("series", "ts", "status"), what)
-    df = df.assign(series=df["series"].astype(str), ts=format_ts_array(df["ts"]))
+    df = df.assign(series=_text_column(df["series"]), ts=format_ts_array(df["ts"]))
     status = df["status"].astype(object)
     bad = ~status.isin(STATUS_LABELS)
     if bad.any():
@@ -154,7 +187,7 @@ def estimate_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
         raise ValidationError(f"{_where(df, i, what)}: field 'status' = {status.iloc[i]!r}: "
                               f"status must be one of {', '.join(STATUS_LABELS)}",
                               field="status", value=status.iloc[i], row=i)
-    cols = []
+    floats = []
     for col in _EST_FLOATS:
         vals = _floats(df, col, what)
         if np.isinf(vals).any():
@@ -168,33 +201,90 @@ def estimate_rows(data: Any) -> tuple[pd.DataFrame, list[tuple]]:
                 raise ValidationError(f"{_where(df, i, what)}: beta is NaN with status "
                                       f"{status.iloc[i]!r}: an undefined beta needs status "
                                       f"warming_up or low_variation", field="beta", row=i)
-        cols.append(_objects(vals))
+        floats.append(vals)
     band = _band_kinds(df, what)
-    rows = [(s, t, *vals[:5], st, *vals[5:], b) for s, t, st, b, *vals in
-            zip(df["series"].tolist(), df["ts"].tolist(), status.tolist(), band, *cols)]
+    texts = [df["series"].to_numpy(dtype=object), df["ts"].to_numpy(dtype=object),
+             status.to_numpy(dtype=object)]
+    if newest:
+        take = newest_index(df)
+        floats, texts, band = [v[take] for v in floats], [v[take] for v in texts], band[take]
+    # the insert's column order: series, ts, five floats, status, four floats, band; one
+    # list per column, zipped (no per-row unpacking)
+    f = [_objects(v) for v in floats]
+    rows = list(zip(texts[0].tolist(), texts[1].tolist(), *f[:5], texts[2].tolist(), *f[5:],
+                    band.tolist()))
     return df, rows
 
 
-def _band_kinds(df: pd.DataFrame, what: str) -> list:
-    """The ``band`` column as a list (``None`` where missing, NaN or absent), checked."""
+def _band_kinds(df: pd.DataFrame, what: str) -> np.ndarray:
+    """The ``band`` column as an object array (``None`` where missing, NaN or absent),
+    checked: anything else must be one of :data:`BAND_KINDS`."""
     if "band" not in df.columns:
-        return [None] * len(df)
-    vals = [None if v is None or (isinstance(v, float) and v != v) else v
-            for v in df["band"].tolist()]
-    for i, v in enumerate(vals):
-        if v is not None and v not in BAND_KINDS:
-            raise ValidationError(f"{_where(df, i, what)}: field 'band' = {v!r}: band must be "
-                                  f"one of {', '.join(BAND_KINDS)} or empty", field="band",
-                                  value=v, row=i)
+        return np.full(len(df), None, dtype=object)
+    col = df["band"]
+    if isinstance(col.dtype, pd.StringDtype) and col.dtype.na_value is np.nan:
+        # text with NaN for missing (pandas' default for a column of str and None): the
+        # same reading, decided on the column (a NaN is missing, any other value is text)
+        missing = col.isna().to_numpy()
+        bad = ~missing & ~col.isin(BAND_KINDS).to_numpy()
+        if not bad.any():
+            return col.to_numpy(dtype=object, na_value=None)
+    vals = pd.Series(df["band"].tolist(), dtype=object).to_numpy(copy=True)
+    # missing: None or a float NaN (any other value must be a band kind)
+    missing = np.fromiter((v is None or (isinstance(v, float) and v != v) for v in vals),
+                          dtype=bool, count=len(vals))
+    vals[missing] = None
+    try:
+        known = pd.Series(vals, dtype=object).isin(BAND_KINDS).to_numpy()
+    except TypeError:                               # an unhashable value: compare one by one
+        known = np.fromiter((v in BAND_KINDS for v in vals), dtype=bool, count=len(vals))
+    bad = ~missing & ~known
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        v = vals[i]
+        raise ValidationError(f"{_where(df, i, what)}: field 'band' = {v!r}: band must be "
+                              f"one of {', '.join(BAND_KINDS)} or empty", field="band",
+                              value=v, row=i)
     return vals
 
 
-def newest_per_series(df: pd.DataFrame, rows: list[tuple]) -> list[tuple]:
+class SeriesTimeOrder(NamedTuple):
+    """Rows of a frame in (series, ts) order: ``order`` (positions), and per series (in name
+    order) ``starts`` / ``ends`` into ``order``."""
+
+    order: np.ndarray
+    starts: np.ndarray
+    ends: np.ndarray
+
+
+def series_time_order(df: pd.DataFrame) -> SeriesTimeOrder:
+    """A stable sort of the rows by series, then ``ts`` (rows of equal keys keep the frame's
+    order), as ``sort_values(["series", "ts"], kind="stable")`` orders them: on the codes of
+    ``factorize(sort=True)`` of each column (the text order of names and of ``ts``, which is
+    time order for data times, :mod:`monitor.store.codec`) with ``np.lexsort`` (stable)."""
+    n = len(df)
+    if not n:
+        z = np.zeros(0, dtype=np.int64)
+        return SeriesTimeOrder(z, z, z)
+    s_codes, _ = pd.factorize(df["series"].to_numpy(dtype=object), sort=True)
+    t_codes, _ = pd.factorize(df["ts"].to_numpy(dtype=object), sort=True)
+    order = np.lexsort((t_codes, s_codes))
+    sc = s_codes[order]
+    starts = np.flatnonzero(np.r_[True, sc[1:] != sc[:-1]])
+    return SeriesTimeOrder(order, starts, np.r_[starts[1:], n])
+
+
+def newest_index(df: pd.DataFrame, by: SeriesTimeOrder | None = None) -> np.ndarray:
+    """Positions of the row with the newest ``ts`` of each series (the last one on ties), in
+    series order (the last row of each series in :func:`series_time_order`)."""
+    by = series_time_order(df) if by is None else by
+    return by.order[by.ends - 1]
+
+
+def newest_per_series(df: pd.DataFrame, rows: list[tuple],
+                      by: SeriesTimeOrder | None = None) -> list[tuple]:
     """The row with the newest ts of each series (the last one on ties)."""
-    order = pd.DataFrame({"series": df["series"], "ts": df["ts"]})
-    order = order.sort_values(["series", "ts"], kind="stable").drop_duplicates("series",
-                                                                               keep="last")
-    return [rows[i] for i in order.index]
+    return [rows[i] for i in newest_index(df, by).tolist()]
 
 
 def series_counts(obs: pd.DataFrame | None, est: pd.DataFrame | None, now: str) -> list[tuple]:
@@ -268,16 +358,40 @@ def reject_rows(data: Any, now: str) -> list[tuple]:
 
 def checkpoint_rows(data: Any, now: str) -> list[tuple]:
     """Checkpoints: state and last_pos as JSON (NaN kept), last_ts canonical."""
-    df = as_frame(data, key="series")
-    if "state" not in df.columns:
-        raise ValidationError("checkpoint: missing field 'state'", field="state")
+    records = _same_key_records(data)
+    if records is None:
+        df = as_frame(data, key="series")
+        if "state" not in df.columns:
+            raise ValidationError("checkpoint: missing field 'state'", field="state")
+        records = df.to_dict("records")
     rows = []
-    for r in df.to_dict("records"):
+    for r in records:
         last_ts = r.get("last_ts")
         rows.append((str(r["series"]), to_json(r["state"]),
                      None if last_ts is None or (isinstance(last_ts, float) and np.isnan(last_ts))
                      else format_ts(last_ts), to_json(r.get("last_pos")), now))
     return rows
+
+
+def _same_key_records(data: Any) -> list[dict] | None:
+    """The records :func:`as_frame` would give for a mapping ``series -> dict`` whose dicts
+    all have the same keys, one of them ``state`` (the engine's checkpoints), without the
+    frame round trip; ``None`` for anything else (the frame path decides)."""
+    if isinstance(data, pd.DataFrame) or not isinstance(data, Mapping) or not data:
+        return None
+    keys = None
+    out = []
+    for k, v in data.items():
+        if not isinstance(v, Mapping) or "series" in v:
+            return None
+        if keys is None:
+            keys = set(v)
+            if "state" not in keys:
+                return None
+        elif len(v) != len(keys) or set(v) != keys:
+            return None
+        out.append({"series": k, **v})
+    return out
 
 
 def offset_statements(data: Any, now: str) -> list[tuple]:
