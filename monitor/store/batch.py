@@ -182,7 +182,7 @@ def write_batch(store: Store, *, observations: Any = None, estimates: Any = None
         if own_bounds and settings_stmts:
             store.bounds_version += 1            # Monitor.own_bounds drops its cache
         summary["series"] = len(settings_stmts)
-        counts = series_counts(obs_df, est_df, now)
+        counts = series_counts(obs_df, est_df, now, est_order)
         if counts:
             store.conn.executemany(UPSERT_SERIES_COUNTS, counts)
         if obs_rows:

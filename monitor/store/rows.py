@@ -266,8 +266,10 @@ def series_time_order(df: pd.DataFrame) -> SeriesTimeOrder:
     if not n:
         z = np.zeros(0, dtype=np.int64)
         return SeriesTimeOrder(z, z, z)
-    s_codes, _ = pd.factorize(df["series"].to_numpy(dtype=object), sort=True)
-    t_codes, _ = pd.factorize(df["ts"].to_numpy(dtype=object), sort=True)
+    # on the columns as they are: Arrow text is coded by Arrow (its sort is code point order,
+    # Python's str order) without a Python object per row
+    s_codes, _ = pd.factorize(df["series"], sort=True)
+    t_codes, _ = pd.factorize(df["ts"], sort=True)
     order = np.lexsort((t_codes, s_codes))
     sc = s_codes[order]
     starts = np.flatnonzero(np.r_[True, sc[1:] != sc[:-1]])
@@ -287,8 +289,10 @@ def newest_per_series(df: pd.DataFrame, rows: list[tuple],
     return [rows[i] for i in newest_index(df, by).tolist()]
 
 
-def series_counts(obs: pd.DataFrame | None, est: pd.DataFrame | None, now: str) -> list[tuple]:
-    """Per series: (series, first_ts, last_ts, n_obs, n_estimates, now) of this batch."""
+def series_counts(obs: pd.DataFrame | None, est: pd.DataFrame | None, now: str,
+                  est_order: SeriesTimeOrder | None = None) -> list[tuple]:
+    """Per series: (series, first_ts, last_ts, n_obs, n_estimates, now) of this batch
+    (``est_order``: :func:`series_time_order` of ``est`` when already known)."""
     parts = {}
     if obs is not None and len(obs):
         # series in sorted order (as a groupby gives them); the batch's rows of each series
@@ -305,7 +309,10 @@ def series_counts(obs: pd.DataFrame | None, est: pd.DataFrame | None, now: str) 
                               size.tolist()):
             parts[s] = [a, b, int(n), 0]
     if est is not None and len(est):
-        for s, n in est.groupby("series").size().items():
+        # rows per series in name order (what groupby("series").size() gives)
+        by = series_time_order(est) if est_order is None else est_order
+        names = est["series"].to_numpy(dtype=object)[by.order[by.starts]]
+        for s, n in zip(names.tolist(), (by.ends - by.starts).tolist()):
             parts.setdefault(s, [None, None, 0, 0])[3] = int(n)
     return [(s, lo, hi, n, ne, now) for s, (lo, hi, n, ne) in parts.items()]
 
