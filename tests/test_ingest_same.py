@@ -25,6 +25,7 @@ import monitor.ingest.csv_text as csv_text
 import monitor.live.monitor as live_monitor
 import tests.store_write_before as before
 from monitor import store as ms
+from monitor.errors import ValidationError
 from monitor.ingest.csv_text import parse_lines
 from monitor.live.batch import raw_rows
 from monitor.live.service import ingest_file
@@ -217,8 +218,16 @@ def test_insert_tuples_equal_the_previous_functions(text):
     ckpt = {f"s{i}": {"state": [1.0, float("nan"), i], "last_ts": "2024-01-01T00:00:00Z",
                       "last_pos": {"row": i}} for i in range(5)}
     assert R.checkpoint_rows(ckpt, "now") == before.checkpoint_rows(ckpt, "now")
+    stamp = pd.Timestamp("2024-01-01 05:00", tz="UTC")
+    for i, t in enumerate([stamp, stamp, 1704085200, 1704085200.5, "2024-01-01T06:00:00+01:00",
+                           stamp.tz_localize(None), None]):
+        ckpt[f"s{i}"] = {"state": [float(i)], "last_ts": t, "last_pos": None}
+    assert R.checkpoint_rows(ckpt, "now") == before.checkpoint_rows(ckpt, "now")
     ckpt["s2"] = {"state": [2.0]}                   # keys differ: the frame path
     assert R.checkpoint_rows(ckpt, "now") == before.checkpoint_rows(ckpt, "now")
+    for bad in (True, "no time"):                    # refused as before, naming the value
+        with pytest.raises(ValidationError):
+            R.checkpoint_rows({"a": {"state": [1.0], "last_ts": bad}}, "now")
 
 
 def test_sparkline_rows_equal_the_previous_function(tmp_path):

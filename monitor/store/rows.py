@@ -372,11 +372,21 @@ def checkpoint_rows(data: Any, now: str) -> list[tuple]:
             raise ValidationError("checkpoint: missing field 'state'", field="state")
         records = df.to_dict("records")
     rows = []
+    done: dict = {}        # (type, value) -> its text: a batch's checkpoints share their times
     for r in records:
         last_ts = r.get("last_ts")
-        rows.append((str(r["series"]), to_json(r["state"]),
-                     None if last_ts is None or (isinstance(last_ts, float) and np.isnan(last_ts))
-                     else format_ts(last_ts), to_json(r.get("last_pos")), now))
+        if last_ts is None or (isinstance(last_ts, float) and np.isnan(last_ts)):
+            text = None
+        else:
+            try:
+                key = (type(last_ts), last_ts)
+                text = done.get(key)
+                if text is None:
+                    text = done[key] = format_ts(last_ts)
+            except TypeError:                  # unhashable: format_ts judges it
+                text = format_ts(last_ts)
+        rows.append((str(r["series"]), to_json(r["state"]), text, to_json(r.get("last_pos")),
+                     now))
     return rows
 
 
