@@ -5,6 +5,9 @@
   against its previous form, kept verbatim in benchmarks/estimator_previous.py, on rows that
   reach every branch: the excitation guard pausing, a price held constant (log price
   unidentified), low variation, forgetting 1, a prior, bands hc and classic;
+- :func:`monitor.estimators.kernel.linear_step` (any k, every band; its moment tensors updated
+  and read row by row with side-by-side sums) against its previous form, kept verbatim in
+  benchmarks/estimator_previous_general.py, with controls that are dependent for a while;
 - the packed division and square root (:mod:`monitor.estimators.packed`) against numpy's
   scalar IEEE operations, special values included;
 - ``ElasticityRLS.learn_one`` (compiled entry, inline checks) against ``run_batch``, and its
@@ -20,6 +23,7 @@ import pytest
 from numba import njit
 
 from benchmarks.estimator_previous import previous_rls_run_two
+from benchmarks.estimator_previous_general import previous_rls_run_general
 from monitor.errors import ValidationError
 from monitor.estimators import ElasticityRLS, run_batch
 from monitor.estimators import kernel as K
@@ -91,6 +95,54 @@ def test_k2_step_one_long_series_to_the_bit(rng):
     out, states = _previous(est, np.zeros(sid.size, dtype=np.int64), X, y)
     np.testing.assert_array_equal(_bits(res.out), _bits(out))
     np.testing.assert_array_equal(_bits(res.states), _bits(states))
+
+
+def _control_rows(rng, n_series: int, T: int, n_controls: int):
+    """Rows of :func:`_hard_rows` with controls: a 30% promotion flag, normal controls, and in
+    some series a control held at 0 for the first 30 steps (dependent on the intercept: the
+    factor drops it) and, for one series, the log price equal to a control (b unidentified)."""
+    sid, X, y = _hard_rows(rng, n_series, T)
+    step = np.repeat(np.arange(T), n_series)
+    C = rng.normal(0.0, 1.0, (sid.size, n_controls))
+    C[:, 0] = rng.random(sid.size) < 0.3
+    if n_controls > 1:
+        C[(sid % 4 == 2) & (step < 30), 1] = 0.0
+        C[sid == 3, n_controls - 1] = X[sid == 3, 1]
+    y = y + C @ np.full(n_controls, 0.2)
+    return sid, np.column_stack([X, C]), y
+
+
+GENERAL = [
+    (1, {"band": "classic"}),
+    (1, {"band": "hc"}),
+    (1, {"band": "hac"}),
+    (4, {"band": "classic"}),
+    (4, {"band": "hc"}),
+    (4, {"band": "hc", "forgetting": 1.0}),
+    (4, {"band": "hac"}),
+    (4, {"band": "hac", "hac_lags": 3, "excitation_guard": False}),
+]
+
+
+@pytest.mark.parametrize("n_controls, settings", GENERAL)
+def test_general_step_equals_its_previous_form_to_the_bit(rng, n_controls, settings):
+    sid, X, y = _control_rows(rng, 12, 150, n_controls)
+    names = [f"c{i}" for i in range(n_controls)]
+    est = ElasticityRLS(**{"forgetting": 0.97, "controls": names, **settings})
+    res = run_batch(est, sid, X, y)
+    states = np.tile(est.initial_state(), (12, 1))
+    out = np.empty((sid.size, K.NOUT))
+    band, lags, lam, guard, guard_lam, mps, mneff, tq = est.kernel_args
+    k = X.shape[1]
+    previous_rls_run_general(states, sid, X, y, band, lags, lam, guard, guard_lam, mps, mneff,
+                             tq, out, np.empty(k * k + 8 * k))
+    np.testing.assert_array_equal(_bits(res.out), _bits(out))
+    np.testing.assert_array_equal(_bits(res.states), _bits(states))
+    # the rows reached the branches they were built for
+    status = res.status
+    assert (status == K.ST_OK).any() and (status == K.ST_WARMING_UP).any()
+    assert np.isnan(res.beta[sid == 3][-1]) == (n_controls > 1)
+    assert np.isfinite(res.out[:, K.O_SE]).sum() > sid.size // 2
 
 
 @njit(cache=True)

@@ -62,9 +62,9 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from monitor.estimators.sandwich import (centre_theta, centre_vector, meat_form, s_form,
-                                        update_q, update_t)
-from monitor.estimators.solve import DROP_TOL, factor, price_column, solve
+from monitor.estimators.sandwich import (cd_pairs, centre_theta, centre_vector, g_pairs,
+                                        meat_form, s_form, update_q, update_t)
+from monitor.estimators.solve import DROP_TOL, factor_pair, price_column, solve_pair
 from monitor.estimators.packed import div2, div4, sqrt4
 from monitor.estimators.tquantile import t_lookup, t_lookup_inv
 
@@ -106,8 +106,12 @@ def state_size(k: int, band: int = BAND_CLASSIC, lags: int = 0) -> int:
 
 
 def work_size(k: int) -> int:
-    """Length of the scratch vector the general step needs."""
-    return k * k + 8 * k
+    """Length of the scratch vector the general step needs: the factors of the information
+    matrix before and after the row and the matrix after it (``3 k^2``), eight vectors of k,
+    the centred row ``(x, y)`` (k + 1), the meat weights and the operands of the tensor
+    updates (6 x ``(k + 1)(k + 2) / 2``) and the meat's rows ``Omega_ab``
+    (``k (k + 1) / 2``)."""
+    return 3 * k * k + 9 * k + 1 + 6 * ((k + 1) * (k + 2) // 2) + k * (k + 1) // 2
 
 
 def init_state(prior_mean: np.ndarray, prior_var: np.ndarray, band: int = BAND_CLASSIC,
@@ -478,9 +482,23 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
     tmp = w[k * k + k:k * k + 2 * k]
     u = w[k * k + 2 * k:k * k + 3 * k]
     pc = w[k * k + 3 * k:k * k + 4 * k]
-    xc = w[k * k + 4 * k:k * k + 5 * k]
-    thc = w[k * k + 5 * k:k * k + 6 * k]
-    pt = w[k * k + 6 * k:k * k + 7 * k]
+    thc = w[k * k + 4 * k:k * k + 5 * k]
+    pt = w[k * k + 5 * k:k * k + 6 * k]
+    xc = w[k * k + 6 * k:k * k + 7 * k + 1]    # centred (x, y)
+    nz = (k + 1) * (k + 2) // 2
+    z0 = k * k + 7 * k + 1
+    gg = w[z0:z0 + nz]
+    zcn = w[z0 + nz:z0 + 2 * nz]
+    zdn = w[z0 + 2 * nz:z0 + 3 * nz]
+    lcn = w[z0 + 3 * nz:z0 + 4 * nz]
+    ldn = w[z0 + 4 * nz:z0 + 5 * nz]
+    dg = w[z0 + 5 * nz:z0 + 6 * nz]
+    acc = w[z0 + 6 * nz:z0 + 6 * nz + nab]
+    m0 = z0 + 6 * nz + nab
+    M = w[m0:m0 + k * k]              # factor of A after the row
+    An = w[m0 + k * k:m0 + 2 * k * k]    # A after the row
+    dropm = w[m0 + 2 * k * k:m0 + 2 * k * k + k]
+    tmp2 = w[m0 + 2 * k * k + k:m0 + 2 * k * k + 2 * k]
     if st[I_N] == 0.0:
         for j in range(1, k):
             st[r0 + j - 1] = x[j]
@@ -489,18 +507,29 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
     for j in range(1, k):
         xc[j] = x[j] - st[r0 + j - 1]
     yc = y - st[r0 + k - 1]
+    xc[k] = yc
     yhat = 0.0
     for i in range(k):
         yhat += st[th + i] * x[i]
     e = y - yhat
-    # classic predictive variance from the previous state
     W = st[I_W]
     V = st[I_V]
-    _, rank0 = factor(st, a0, k, L, drop)
+    # A before the row (factor L: the predictive variance) and after it (factor M: the
+    # solution), factored and solved side by side
+    for i in range(k):
+        for j in range(i, k):
+            v = lt * st[a0 + i * k + j] + x[i] * x[j]
+            An[i * k + j] = v
+            An[j * k + i] = v
+        st[c0 + i] = lt * st[c0 + i] + x[i] * y
+    _, rank0, sb, rank = factor_pair(st, a0, L, drop, An, 0, M, dropm, k)
+    solve_pair(L, drop, x, 0, u, 0, tmp, M, dropm, st, c0, st, th, tmp2, k)
+    for i in range(k * k):
+        st[a0 + i] = An[i]
+    # classic predictive variance from the previous state
     z = np.nan
     zsd = np.nan
     if rank0 == k:
-        solve(L, drop, k, x, 0, u, 0, tmp)
         centre_vector(u, 0, st, r0, k, pt)
         q = s_form(st, t0, k, ncd, pt, 0)
         dof = W - k
@@ -511,12 +540,6 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
     st[I_ZSD] = zsd
     st[I_Z] = z
     # update the sums
-    for i in range(k):
-        for j in range(i, k):
-            v = lt * st[a0 + i * k + j] + x[i] * x[j]
-            st[a0 + i * k + j] = v
-            st[a0 + j * k + i] = v
-        st[c0 + i] = lt * st[c0 + i] + x[i] * y
     YY = lt * st[I_YY] + y * y
     st[I_YY] = YY
     W = lt * W + 1.0
@@ -529,8 +552,6 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
     st[I_W3] = W3
     st[I_W4] = W4
     st[I_N] += 1.0
-    sb, rank = factor(st, a0, k, L, drop)
-    solve(L, drop, k, st, c0, st, th, tmp)
     V = YY
     r = y
     for i in range(k):
@@ -543,7 +564,8 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
     st[I_XSD] = xsd
     diagnostics(st, r, lt)
     # meat sums
-    update_t(st, t0, xc, yc, k, ncd, l2)
+    cd_pairs(xc, k, ncd, zcn, zdn)
+    update_t(st, t0, xc, k, ncd, l2, zcn, zdn)
     if band == BAND_HAC:
         size = nab * ncd
         q0 = t0 + size
@@ -553,7 +575,7 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
             ro = g0 + l * rw
             wl = st[ro + k + 1] * lt
             st[ro + k + 1] = wl
-            update_q(st, q0 + l * size, xc, yc, st[ro:ro + k], st[ro + k], wl, k, ncd, l2)
+            update_q(st, q0 + l * size, xc, st[ro:ro + k + 1], wl, k, l2, zcn, zdn, lcn, ldn)
         for l in range(lags - 1, 0, -1):
             ro = g0 + l * rw
             for i in range(rw):
@@ -564,10 +586,10 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
             st[g0 + k] = yc
             st[g0 + k + 1] = 1.0
     neff = W * W / W2
-    identified = drop[k - 1] == 0.0
+    identified = dropm[k - 1] == 0.0
     vb = np.nan
     if identified:
-        price_column(L, drop, k, pc, 0)
+        price_column(M, dropm, k, pc, 0)
         centre_vector(pc, 0, st, r0, k, pt)
         if band == BAND_CLASSIC:
             vb = s_form(st, t0, k, ncd, pt, 0)
@@ -575,12 +597,13 @@ def linear_step(st, x, y, k, band, lags, lam, guard, guard_lam, min_price_sd, mi
                 vb *= V / (W - rank)
         else:
             centre_theta(st, th, st, r0, k, thc)
-            vb = meat_form(st, t0, thc, k, pt, 0, 1.0)
+            g_pairs(thc, k, gg, dg)
+            vb = meat_form(st, t0, gg, dg, k, pt, 0, 1.0, acc)
             if band == BAND_HAC:
                 size = nab * ncd
                 for l in range(lags):
-                    vb += meat_form(st, t0 + (l + 1) * size, thc, k, pt, 0,
-                                    1.0 - (l + 1.0) / (lags + 1.0))
+                    vb += meat_form(st, t0 + (l + 1) * size, gg, dg, k, pt, 0,
+                                    1.0 - (l + 1.0) / (lags + 1.0), acc)
             vb *= hc_factor(W, W2, W3, rank)
     qmult = 1.0
     if band == BAND_HAC:

@@ -38,69 +38,132 @@ from numba import njit
 
 
 @njit(cache=True, inline="always")
-def zval(x, y, k, c):
-    """Entry ``c`` of ``z = (x, y)``."""
-    return y if c == k else x[c]
+def cd_pairs(z, k, ncd, zc, zd):
+    """``zc[n] = z_c``, ``zd[n] = z_d`` over the packed pairs ``c <= d`` (``n`` in packed order,
+    ``ncd`` of them; ``z = z[0:k+1]``): the operands of :func:`update_t` laid out in a row."""
+    m = k + 1 if ncd > 1 else 1
+    n = 0
+    for c in range(m):
+        for d in range(c, m):
+            zc[n] = z[c]
+            zd[n] = z[d]
+            n += 1
 
 
 @njit(cache=True, inline="always")
-def update_t(st, t0, x, y, k, ncd, l2):
-    """``T <- l2 T + x_a x_b z_c z_d`` over the packed pairs (``ncd = 1``: only ``S``)."""
-    m = k + 1
+def update_t(st, t0, z, k, ncd, l2, zc, zd):
+    """``T <- l2 T + x_a x_b z_c z_d`` over the packed pairs (``ncd = 1``: only ``S``).
+
+    ``z = (x, y)`` is ``z[0:k+1]``; ``zc``, ``zd`` from :func:`cd_pairs`. Each entry is
+    ``l2 T + ((x_a x_b) z_c) z_d`` (the same operations, in the same order, as computing it
+    from ``z``); a row ``ab`` of the tensor is one loop over ``ncd`` contiguous entries, which
+    the compiler turns into vector instructions."""
     i = t0
+    zc = zc[:ncd]
+    zd = zd[:ncd]
     for a in range(k):
         for b in range(a, k):
-            xab = x[a] * x[b]
-            n = 0
-            for c in range(m):
-                zc = zval(x, y, k, c)
-                for d in range(c, m):
-                    if n >= ncd:
-                        break
-                    st[i] = l2 * st[i] + xab * zc * zval(x, y, k, d)
-                    i += 1
-                    n += 1
+            xab = z[a] * z[b]
+            row = st[i:i + ncd]
+            for n in range(ncd):
+                row[n] = l2 * row[n] + xab * zc[n] * zd[n]
+            i += ncd
 
 
 @njit(cache=True, inline="always")
-def update_q(st, q0, x, y, lx, ly, wl, k, ncd, l2):
-    """``Q^l <- l2 Q^l + wl sym(x x_l') sym(z z_l')`` for one lag (``lx, ly``: the lagged row,
-    ``wl``: its current weight)."""
-    m = k + 1
+def update_q(st, q0, z, lz, wl, k, l2, zc, zd, lc, ld):
+    """``Q^l <- l2 Q^l + wl sym(x x_l') sym(z z_l')`` for one lag (``z = z[0:k+1]`` the row,
+    ``lz = lz[0:k+1]`` the lagged row, ``wl``: its current weight; ``zc``, ``zd`` from
+    :func:`cd_pairs` of ``z``; ``lc``, ``ld`` scratch for the same of ``lz``). Each entry is
+    ``l2 Q + ((wl xab) (z_c lz_d + z_d lz_c)) 0.5`` with ``xab = x_a lx_b + x_b lx_a``; a row
+    ``ab`` is one loop over contiguous entries (vector instructions)."""
+    ncd = (k + 1) * (k + 2) // 2
+    cd_pairs(lz, k, ncd, lc, ld)
     i = q0
+    zc = zc[:ncd]
+    zd = zd[:ncd]
+    lc = lc[:ncd]
+    ld = ld[:ncd]
     for a in range(k):
         for b in range(a, k):
-            xab = x[a] * lx[b] + x[b] * lx[a]
-            for c in range(m):
-                zc = zval(x, y, k, c)
-                lzc = zval(lx, ly, k, c)
-                for d in range(c, m):
-                    v = zc * zval(lx, ly, k, d) + zval(x, y, k, d) * lzc
-                    st[i] = l2 * st[i] + wl * xab * v * 0.5
-                    i += 1
+            wx = wl * (z[a] * lz[b] + z[b] * lz[a])
+            row = st[i:i + ncd]
+            for n in range(ncd):
+                row[n] = l2 * row[n] + wx * (zc[n] * ld[n] + zd[n] * lc[n]) * 0.5
+            i += ncd
 
 
 @njit(cache=True, inline="always")
-def meat_form(st, t0, th, k, p, p0, scale):
-    """``scale * p' Omega(g) p`` for the packed tensor at ``t0`` (``g = (-theta, 1)`` with
-    ``theta = th[0:k]``; ``p = p[p0:p0+k]``)."""
+def g_pairs(th, k, gg, dg):
+    """``gg[n] = g_c g_d`` over the packed pairs ``c <= d`` (``n`` in packed order), with
+    ``g = (-theta, 1)``, ``theta = th[0:k]``, and ``dg[n]`` 1 on the diagonal ``c = d``, 2 off
+    it: the weights of :func:`meat_form`."""
     m = k + 1
-    i = t0
+    n = 0
+    for c in range(m):
+        gc = 1.0 if c == k else -th[c]
+        for d in range(c, m):
+            gd = 1.0 if d == k else -th[d]
+            gg[n] = gc * gd
+            dg[n] = 1.0 if c == d else 2.0
+            n += 1
+
+
+@njit(cache=True, inline="always")
+def meat_form(st, t0, gg, dg, k, p, p0, scale, acc):
+    """``scale * p' Omega(g) p`` for the packed tensor at ``t0``: ``Omega_ab = sum_{c <= d}
+    dg_cd (gg_cd T_{ab,cd})``, ``gg``, ``dg`` from :func:`g_pairs`, ``p = p[p0:p0+k]``;
+    ``acc`` is scratch of ``k (k + 1) / 2`` floats.
+
+    Each ``Omega_ab`` is a sum over ``cd`` in packed order and ``p' Omega p`` a sum over ``ab``
+    in packed order, as written (``1 * v`` is ``v`` exactly and ``2 * v`` is what the entries
+    off the diagonal always added); four ``Omega_ab`` are summed side by side (their additions
+    are independent), so the processor overlaps them instead of waiting on one chain of
+    ``k^2 (k+1)^2 / 4`` dependent additions (k = 6: 588)."""
+    nab = k * (k + 1) // 2
+    ncd = (k + 1) * (k + 2) // 2
+    gg = gg[:ncd]
+    dg = dg[:ncd]
+    ab = 0
+    while ab + 4 <= nab:
+        i0 = t0 + ab * ncd
+        r0 = st[i0:i0 + ncd]
+        r1 = st[i0 + ncd:i0 + 2 * ncd]
+        r2 = st[i0 + 2 * ncd:i0 + 3 * ncd]
+        r3 = st[i0 + 3 * ncd:i0 + 4 * ncd]
+        s0 = 0.0
+        s1 = 0.0
+        s2 = 0.0
+        s3 = 0.0
+        for n in range(ncd):
+            g = gg[n]
+            f = dg[n]
+            s0 += f * (g * r0[n])
+            s1 += f * (g * r1[n])
+            s2 += f * (g * r2[n])
+            s3 += f * (g * r3[n])
+        acc[ab] = s0
+        acc[ab + 1] = s1
+        acc[ab + 2] = s2
+        acc[ab + 3] = s3
+        ab += 4
+    while ab < nab:
+        i0 = t0 + ab * ncd
+        r0 = st[i0:i0 + ncd]
+        s0 = 0.0
+        for n in range(ncd):
+            s0 += dg[n] * (gg[n] * r0[n])
+        acc[ab] = s0
+        ab += 1
     tot = 0.0
+    ab = 0
     for a in range(k):
         for b in range(a, k):
             f = p[p0 + a] * p[p0 + b]
             if a != b:
                 f *= 2.0
-            acc = 0.0
-            for c in range(m):
-                gc = 1.0 if c == k else -th[c]
-                for d in range(c, m):
-                    gd = 1.0 if d == k else -th[d]
-                    v = gc * gd * st[i]
-                    acc += v if c == d else 2.0 * v
-                    i += 1
-            tot += f * acc
+            tot += f * acc[ab]
+            ab += 1
     return scale * tot
 
 

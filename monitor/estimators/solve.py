@@ -41,6 +41,32 @@ def perm(i, k):
 
 
 @njit(cache=True, inline="always")
+def factor_column(A, a0, k, L, drop, jj):
+    """Column ``jj`` (factor order) of :func:`factor`; return ``(s, a_jj, kept)``: the pivot
+    before the drop test, the diagonal entry of ``A`` and whether the column is kept."""
+    j = perm(jj, k)
+    ajj = A[a0 + j * k + j]
+    s = ajj
+    for p in range(jj):
+        s -= L[jj * k + p] * L[jj * k + p]
+    if not (ajj > 0.0) or s <= DROP_TOL * ajj:
+        drop[jj] = 1.0
+        for ii in range(jj, k):
+            L[ii * k + jj] = 0.0
+        return s, ajj, False
+    drop[jj] = 0.0
+    d = np.sqrt(s)
+    L[jj * k + jj] = d
+    for ii in range(jj + 1, k):
+        i = perm(ii, k)
+        t = A[a0 + i * k + j]
+        for p in range(jj):
+            t -= L[ii * k + p] * L[jj * k + p]
+        L[ii * k + jj] = t / d
+    return s, ajj, True
+
+
+@njit(cache=True, inline="always")
 def factor(A, a0, k, L, drop):
     """Factor ``A = st[a0 : a0 + k*k]`` into ``L``; return ``(s_b, rank)``.
 
@@ -50,29 +76,59 @@ def factor(A, a0, k, L, drop):
     rank = 0
     s_b = np.nan
     for jj in range(k):
-        j = perm(jj, k)
-        ajj = A[a0 + j * k + j]
-        s = ajj
-        for p in range(jj):
-            s -= L[jj * k + p] * L[jj * k + p]
+        s, ajj, kept = factor_column(A, a0, k, L, drop, jj)
         if jj == k - 1:
             s_b = s if ajj > 0.0 else np.nan
-        if not (ajj > 0.0) or s <= DROP_TOL * ajj:
-            drop[jj] = 1.0
-            for ii in range(jj, k):
-                L[ii * k + jj] = 0.0
-            continue
-        drop[jj] = 0.0
-        rank += 1
-        d = np.sqrt(s)
-        L[jj * k + jj] = d
-        for ii in range(jj + 1, k):
-            i = perm(ii, k)
-            t = A[a0 + i * k + j]
-            for p in range(jj):
-                t -= L[ii * k + p] * L[jj * k + p]
-            L[ii * k + jj] = t / d
+        if kept:
+            rank += 1
     return s_b, rank
+
+
+@njit(cache=True, inline="always")
+def factor_pair(A, a0, L, drop, B, b0, M, dropm, k):
+    """:func:`factor` of ``A`` (into ``L``, ``drop``) and of ``B`` (into ``M``, ``dropm``) at
+    once, column by column: the two factorizations are independent chains of square roots and
+    divisions, so written side by side the processor overlaps them. Each is the same to the
+    bit as :func:`factor` alone. Returns ``(s_b, rank)`` of ``A``, then of ``B``."""
+    rank_a = 0
+    rank_b = 0
+    sa = np.nan
+    sb = np.nan
+    for jj in range(k):
+        s1, a1, kept1 = factor_column(A, a0, k, L, drop, jj)
+        s2, a2, kept2 = factor_column(B, b0, k, M, dropm, jj)
+        if jj == k - 1:
+            sa = s1 if a1 > 0.0 else np.nan
+            sb = s2 if a2 > 0.0 else np.nan
+        if kept1:
+            rank_a += 1
+        if kept2:
+            rank_b += 1
+    return sa, rank_a, sb, rank_b
+
+
+@njit(cache=True, inline="always")
+def forward_row(L, drop, k, rhs, r0, tmp, jj):
+    """Row ``jj`` of the forward substitution ``L t = P rhs`` of :func:`solve`."""
+    if drop[jj] != 0.0:
+        tmp[jj] = 0.0
+        return
+    t = rhs[r0 + perm(jj, k)]
+    for p in range(jj):
+        t -= L[jj * k + p] * tmp[p]
+    tmp[jj] = t / L[jj * k + jj]
+
+
+@njit(cache=True, inline="always")
+def back_row(L, drop, k, tmp, jj):
+    """Row ``jj`` of the backward substitution ``L' v = t`` of :func:`solve` (in place)."""
+    if drop[jj] != 0.0:
+        tmp[jj] = 0.0
+        return
+    t = tmp[jj]
+    for p in range(jj + 1, k):
+        t -= L[p * k + jj] * tmp[p]
+    tmp[jj] = t / L[jj * k + jj]
 
 
 @njit(cache=True, inline="always")
@@ -80,23 +136,26 @@ def solve(L, drop, k, rhs, r0, out, o0, tmp):
     """``out[o0:o0+k] = A^- rhs[r0:r0+k]`` with the factor of :func:`factor` (dropped columns
     get 0). ``rhs`` and ``out`` are in the original column order; they may not overlap."""
     for jj in range(k):
-        if drop[jj] != 0.0:
-            tmp[jj] = 0.0
-            continue
-        t = rhs[r0 + perm(jj, k)]
-        for p in range(jj):
-            t -= L[jj * k + p] * tmp[p]
-        tmp[jj] = t / L[jj * k + jj]
+        forward_row(L, drop, k, rhs, r0, tmp, jj)
     for jj in range(k - 1, -1, -1):
-        if drop[jj] != 0.0:
-            tmp[jj] = 0.0
-            continue
-        t = tmp[jj]
-        for p in range(jj + 1, k):
-            t -= L[p * k + jj] * tmp[p]
-        tmp[jj] = t / L[jj * k + jj]
+        back_row(L, drop, k, tmp, jj)
     for jj in range(k):
         out[o0 + perm(jj, k)] = tmp[jj]
+
+
+@njit(cache=True, inline="always")
+def solve_pair(L, drop, rhs, r0, out, o0, tmp, M, dropm, rhs2, r2, out2, o2, tmp2, k):
+    """:func:`solve` with ``L`` and with ``M`` at once, row by row (two independent chains the
+    processor overlaps); each the same to the bit as :func:`solve` alone."""
+    for jj in range(k):
+        forward_row(L, drop, k, rhs, r0, tmp, jj)
+        forward_row(M, dropm, k, rhs2, r2, tmp2, jj)
+    for jj in range(k - 1, -1, -1):
+        back_row(L, drop, k, tmp, jj)
+        back_row(M, dropm, k, tmp2, jj)
+    for jj in range(k):
+        out[o0 + perm(jj, k)] = tmp[jj]
+        out2[o2 + perm(jj, k)] = tmp2[jj]
 
 
 @njit(cache=True, inline="always")
