@@ -246,3 +246,20 @@ def test_sparkline_rows_equal_the_previous_function(tmp_path):
             ms.write_batch(store, estimates=est.iloc[:0])
     finally:
         store.close()
+
+
+def test_hostile_lines_read_as_before(monkeypatch):
+    """NUL bytes and byte-order marks beside empty fields, a repeated header after a BOM,
+    an all-empty line: the same rows, row numbers, rejects and raw JSON (an empty field
+    ``null``) as the object columns of before."""
+    names = ["series", "ts", "price", "quantity"]
+    body = (b"a\x00b,2024-01-01T00:00:00Z,,3\nok,2024-01-01T00:00:00Z,1,2\n"
+            b"\xef\xbb\xbfseries,ts,price,quantity\n,,,\nc,2024-01-01T01:00:00Z,\xef\xbb\xbf2,\n")
+    now = parse_lines(names, names, body, 1)
+    with monkeypatch.context() as m:
+        m.setattr(csv_text, "_parse_fast", before.parse_fast_before)
+        was = parse_lines(names, names, body, 1)
+    assert now[0].astype(object).where(now[0].notna(), None).equals(was[0])
+    assert now[1].tolist() == was[1].tolist() and now[3] == was[3]
+    pd.testing.assert_frame_equal(now[2], was[2], check_exact=True)
+    assert len(now[2]) == 2 and '"price": null' in now[2]["raw"].iloc[0]
