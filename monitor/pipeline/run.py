@@ -264,11 +264,19 @@ class Pipeline:
         (:mod:`monitor.detectors.split_controls`) started afresh: the slow means are dropped,
         the fit's flag and normal equations are inserted as zeros, everything else resumes
         exactly. A series with controls is then fed to its charts again once the new fit has
-        identified its controls; a series without controls resumes as it was.
+        identified its controls; a series without controls resumes as it was. Rows of the layout
+        without the split detector's sums of ``x^3``, ``x^4`` (``HX_SIZE`` floats fewer, 5
+        December 2026) get them as zeros with their flag off: the after sample's variance is
+        the average's until the window next restarts.
         Any other length raises :class:`~monitor.errors.ConfigError`."""
         vec = np.asarray(vec, dtype=np.float64)
         if vec.shape == (self.state_size,):
             return vec
+        if self.split and vec.ndim == 1 and vec.size == self.state_size - SG.HX_SIZE:
+            # the layout before the after sample's sums of x^3, x^4 (5 December 2026): they
+            # come in as zeros, flag off, until the window next restarts (split_glr)
+            at = int(self._layout[L_SPLIT]) + SG.HX0
+            return np.concatenate([vec[:at], np.zeros(SG.HX_SIZE), vec[at:]])
         new = SG.SPLIT_SIZE - SG.CFIT_ON
         for old in PREVIOUS_CONTROL_BLOCKS:
             if self.split and vec.ndim == 1 and vec.size == self.state_size - new + old:
