@@ -276,6 +276,7 @@ def run(ctx: Context) -> list[Row]:
     main.check = ("general-k step (loops over k); promo, weekend, temperature, competitor log "
                   f"price; {share_note(elmon_times.shares, p.n, times)}")
     rows.append(main)
+    rows.append(_previous_general_row(ctx, p, est6, main.value, res))
     sub = np.flatnonzero(p.sid < ctx.size(20, 5))
     rows += _refs(ctx, p, sub, est6, main.value, res,
                   f"the first {ctx.size(20, 5)} series", blr=False)
@@ -297,6 +298,39 @@ def run(ctx: Context) -> list[Row]:
     for r in rows:
         r.group = "estimator"
     return rows
+def _previous_general_row(ctx: Context, p, est, elmon_rate: float, res) -> Row:
+    """The general step as it was before issue 15's third round (kept verbatim in
+    benchmarks/estimator_previous_general.py) on the same rows, its outputs and states
+    compared with elmon's timed run as integers."""
+    from monitor.estimators import kernel as K
+    from benchmarks.estimator_previous_general import previous_rls_run_general
+
+    k = p.X.shape[1]
+    band, lags, lam, guard, guard_lam, mps, mneff, tq = est.kernel_args
+    out = np.empty((p.n, K.NOUT))
+    w = np.empty(k * k + 8 * k)
+    m = min(p.n, 2000)
+    previous_rls_run_general(np.tile(est.initial_state(), (p.n_series, 1)), p.sid[:m], p.X[:m],
+                             p.y[:m], band, lags, lam, guard, guard_lam, mps, mneff, tq, out[:m],
+                             w)
+    times, shares, states = [], [], None
+    for _ in range(ctx.runs):
+        states = np.tile(est.initial_state(), (p.n_series, 1))
+        t, _ = timed(lambda: previous_rls_run_general(states, p.sid, p.X, p.y, band, lags, lam,
+                                                      guard, guard_lam, mps, mneff, tq, out, w))
+        times.append(t)
+        shares.append(timed.cpu_share)
+    same = (np.array_equal(out.view(np.int64), res.out.view(np.int64))
+            and np.array_equal(states.view(np.int64), res.states.view(np.int64)))
+    row = rate_row("the general step before issue 15's third round "
+                   "(benchmarks/estimator_previous_general.py), same rows", p.n, times,
+                   reference=True)
+    row.ratio = speed_ratio(elmon_rate, row.value)
+    row.check = (f"outputs and states identical to elmon's timed run, compared as integers: "
+                 f"{'agrees' if same else '**DIFFERS**'}; {share_note(shares, p.n, times)}")
+    return row
+
+
 def _poisson_row(ctx: Context, p) -> Row:
     """Poisson pseudo-ML filter on counts drawn around the panel's log-log means."""
     from monitor.estimators import ElasticityPoisson, poisson_fit, run_batch
