@@ -138,6 +138,14 @@ REMEDIES = {
     "pipeline kernel": "see the pipeline figure",
     "store writes (write_batch)": "keep estimates thinned ([store] estimates_every) and build "
                                   "the insert tuples from numpy columns in one pass",
+    "SQLite statements (executemany, execute, commit)": (
+        "this is SQLite's own work for these rows (the plain-sqlite3 replay of the very same "
+        "statements beside the whole service batch row is its floor): every kept estimate is a "
+        "13-column row under a (series, ts) key besides the observation; keep estimates "
+        "thinned ([store] estimates_every) where the history need not hold every update"),
+    "write_batch's own Python (checks, tuples)": (
+        "sqlite3's executemany takes one Python tuple per row, so what is left is building "
+        "them (one list per column, zipped) and the sparkline text of each kept estimate"),
     "checkpoints": "write checkpoints as one vectorized batch (or every n batches) instead of "
                    "one JSON document per touched series per batch",
     "duplicate check against the store": "check against the in-memory last timestamps first "
