@@ -7,8 +7,8 @@ of every series: one service poll). Each run starts from a new store file (WAL,
 - elmon, observations: :func:`monitor.store.write_batch` with the batch's observations (checks
   every value, formats the timestamps, updates the per-series counts); target >= 100k rows/s;
 - elmon, a whole service batch: the same observations plus one estimate per observation, the
-  newest estimate per series and one checkpoint per series (what the service commits per poll);
-  reported;
+  newest estimate per series and one checkpoint per series in the service's form (state vector
+  as binary text; what the service commits per poll); reported;
 - reference: plain ``sqlite3`` ``executemany`` of the same rows, already as tuples with
   formatted timestamps, into a table and unique index identical to the store's observations
   (the exposure column and its check included), one transaction per batch, same pragmas: the
@@ -81,8 +81,17 @@ def _estimates(obs: pd.DataFrame, states: dict) -> tuple[pd.DataFrame, dict]:
                           "status": res.status_labels(), "intercept": o[:, K.O_INTERCEPT],
                           "resid_sd": o[:, K.O_RESID_SD], "innovation": o[:, K.O_E],
                           "z": o[:, K.O_Z]})
+    # checkpoints in the service's form (monitor.live.checkpoints.checkpoints): the state
+    # vector as binary text, the newest time as ISO text, the source position
+    from monitor.live.checkpoints import vector_to_json
+
     last_ts = obs["ts"].iloc[-1]
-    ckpt = {str(n): {"state": res.states[i].tolist(), "last_ts": last_ts}
+    iso = last_ts.strftime("%Y-%m-%dT%H:%M:%SZ")
+    row = int(obs["source_row"].iloc[-1])
+    ckpt = {str(n): {"state": {"pipeline": vector_to_json(None, res.states[i]),
+                               "last_obs_ns": int(last_ts.value), "updates": 0,
+                               "last_status": "ok"},
+                     "last_ts": iso, "last_pos": {"source": "feed.csv", "row": row}}
             for i, n in enumerate(names)}
     return frame, ckpt
 
