@@ -51,8 +51,12 @@ def test_iv_pipeline_batches_resume_exactly_and_report_first_stage_f(rows):
     halves = pd.concat([a.events, b.events.assign(row=b.events["row"] + cut)])
     assert len(pf) and (halves["kind"] == "price_feedback").sum() == len(pf)
     assert (pf["severity"] == "info").all()
-    # the estimates already go through an instrument: the text says so
-    assert pf["message"].str.contains("go through the instruments").all()
+    # the estimates already go through an instrument: the opening text says so (a clear says
+    # that the feedback is no longer detected; one series clears once the estimator is
+    # discounted after a level shift, 5 December)
+    opened = pf[pf["action"] == "open"]
+    assert len(opened) >= len(names) - 1
+    assert opened["message"].str.contains("go through the instruments").all()
 
 
 def test_least_squares_pipeline_flags_feedback_and_orders_sign_flip_causes(rows):

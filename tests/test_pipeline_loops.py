@@ -30,7 +30,7 @@ from monitor.estimators import kernel as K
 from monitor.estimators.dispatch import (FORM_IV, FORM_LINEAR, FORM_POISSON, FORM_TWO,
                                          form_step, step_form)
 from monitor.estimators.iv import ElasticityIV, run_iv
-from monitor.pipeline.kernel import LOOPS, S_SLOPE_FLAGS
+from monitor.pipeline.kernel import LOOPS, S_LEVEL_FLAGS, S_SLOPE_FLAGS
 from monitor.pipeline.run import Pipeline
 from monitor.pipeline.settings import BoundsSettings, DetectorSettings, RuleSettings
 from monitor.settings import default_config
@@ -57,9 +57,11 @@ def _rows(seed: int = 11, controls: int = 0, counts: bool = False):
 
 
 def _before_first_alarm(sid: np.ndarray, signals: np.ndarray) -> np.ndarray:
-    """Rows up to and including each series' first slope alarm (the estimator's output of
-    that row is written before the detector discounts its past)."""
-    alarm = (signals[:, S_SLOPE_FLAGS].astype(np.int64) & F_ALARM) != 0
+    """Rows up to and including each series' first slope or level alarm (the estimator's
+    output of that row is written before the pipeline discounts its past; it does after
+    either alarm of the split detector)."""
+    alarm = ((signals[:, S_SLOPE_FLAGS].astype(np.int64) |
+              signals[:, S_LEVEL_FLAGS].astype(np.int64)) & F_ALARM) != 0
     keep = np.ones(len(sid), dtype=bool)
     for s in np.unique(sid):
         rows = np.flatnonzero(sid == s)

@@ -9,9 +9,10 @@ opening: the change time and observation (the likelihood's argmax), b before and
 Student-t intervals from the data on each side (degrees of freedom: each side's rows - 2), the
 size (``b_after - b_before``, or the log level change), the statistic and the series' expected
 delay for a change of 0.5 in b (:func:`delay50`). :func:`split_reanchor` re-anchors the
-detector after the rule has seen the alarm, and, after an elasticity change, discounts the
-estimator's past (when the estimator offers ``discount``; see the module docstring of
-:mod:`monitor.pipeline.kernel`).
+detector after the rule has seen the alarm; the kernel then discounts the estimator's past
+after an elasticity change or a level shift (a level shift only under the log-log and
+instrumental-variable models; when the estimator offers ``discount``; the reasons are beside
+the call in :mod:`monitor.pipeline.kernel`).
 """
 
 from __future__ import annotations
