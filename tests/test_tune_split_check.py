@@ -7,7 +7,10 @@ pipeline itself does on such data, measured on 300 series x 2,000 observations p
 ARL0 2,000 (alerts per 10,000 / design, elasticity_change / level_shift; the detector with the
 label rule of commit 9f870e6, measured 19:05 UTC on 4 December 2026): independent errors 1.04 /
 1.23; error sd growing with price (g = 3, log-price sd 0.2) 2.60 / 0.12; AR(1) errors of 0.9
-0.47 / 3.11. (Before the label rule: 1.00 / 0.95, 1.74 / 2.92, 0.49 / 1.83.)"""
+0.47 / 3.11. (Before the label rule: 1.00 / 0.95, 1.74 / 2.92, 0.49 / 1.83.) Since commit
+b0cf54d (5 December 2026: each row winsorized at its own sd, a short after sample tested with
+the variance its own prices give it) the slope chart keeps its design under error sd growing
+with price: 0.85 at ARL0 2,000 in the pipeline (was 1.72 on the detection grid's pattern)."""
 
 from __future__ import annotations
 
@@ -59,24 +62,27 @@ def test_iid_errors_keep_the_design_and_the_command_says_so(tmp_path, capsys):
     assert "False alerts on resampled in-control logs" in html and "design holds" in html
 
 
-def test_variance_growing_with_price_is_flagged_with_its_cause(tmp_path):
+def test_variance_growing_with_price_keeps_the_slope_design_and_names_the_link(tmp_path):
     _log(tmp_path / "grow.csv", errors="growing", price_sd=0.2)
     s = calibrate(tmp_path / "grow.csv", tmp_path / "o", config=validate({}), arl0=ARL0,
                   n_steps=BUDGET, progress=False, now_ns=NOW)
     a = s["alert_rates"]
     slope, level = a["kinds"]["elasticity_change"], a["kinds"]["level_shift"]
-    # the pipeline raises 2.6 times the designed elasticity_change alerts on such data and
-    # 0.12 times the level_shift alerts (module docstring); the check sees both
-    assert slope["verdict"] == "breaks" and slope["flagged"] and s["flagged"]
-    assert slope["ratio_lo"] > 1.25 and slope["ratio"] > 1.8, slope["message"]
-    assert "the data break it" in slope["message"]
+    # the pipeline raised 2.6 times the designed elasticity_change alerts on such data before
+    # commit b0cf54d, and the check said "breaks"; the slope chart now scales each after
+    # sample's slope by the variance its own prices give it, and the check sees the design hold
+    # (measured 0.86, 95% interval 0.73-1.02, 173 alerts; 5 December 2026)
+    assert slope["verdict"] == "holds" and not slope["flagged"], slope["message"]
+    assert 0.75 < slope["ratio"] < 1.25 and slope["ratio_lo"] < 1.0, slope["message"]
+    assert "design holds" in slope["message"]
+    # the level chart stays conservative there (0.12 in the pipeline; 0.20 in the check)
     assert level["verdict"] == "holds" and not level["flagged"] and level["ratio_hi"] < 0.75
     assert "conservative" in level["message"]
-    # and says why: the same prices with independent normal errors keep the design
+    # the same prices with independent normal errors keep the design too
     assert 0.75 < slope["reference"]["ratio"] < 1.25
-    assert "the errors cause it" in slope["message"]
+    # the series' health still names the link of the error size to the price
     assert a["health"]["price_linked_variance"] == a["health"]["series"] == 6
-    assert "the data break it" in (tmp_path / "o" / "recommended.toml").read_text()
+    assert not s["flagged"]
     # the same seed gives the same answer
     again = calibrate(tmp_path / "grow.csv", tmp_path / "o2", config=validate({}), arl0=ARL0,
                       n_steps=BUDGET, progress=False, now_ns=NOW)
