@@ -175,11 +175,11 @@ def _run_v1(est, old, sid, X, y, lam, guard, guard_lam, mps, mneff, tq, h, kk, b
 
 @njit(cache=True)
 def _run_v2(est, old, sid, X, y, band, lags, lam, guard, guard_lam, mps, mneff, tq, h, kk,
-            burn, clear_after, cooldown, opened, z):
-    """The same with the estimator step of later commits (``rls_step`` with bands)."""
+            burn, clear_after, cooldown, opened, z, w):
+    """The same with the estimator step of later commits (``rls_step`` with bands); ``w`` is
+    its scratch vector, sized by the tree's ``work_size``."""
     k = X.shape[1]
     o = np.empty(K.NOUT)
-    w = np.empty(k * k + 8 * k + 64)
     for j in range(X.shape[0]):
         st = est[sid[j]]
         K.rls_step(st, X[j], y[j], k, band, lags, lam, guard, guard_lam, mps, mneff, tq, o, w)
@@ -209,9 +209,16 @@ def run_old_slope(est, sid, X, y, n_series: int, arl0: float) -> tuple[np.ndarra
     # the estimator's kernel arguments grew (band, lags) after 4b04b35; the old chart sits on
     # whichever estimator step the tree has (classic band: the one it was designed with)
     run = _run_v1 if len(args) == 6 else _run_v2
+    extra = ()
+    if run is _run_v2:
+        # the general step's scratch grew in issue 15's third round (5 December 2026): a fixed
+        # size written here overran it with controls (k = 3) and corrupted memory
+        k = X.shape[1]
+        size = K.work_size(k) if hasattr(K, "work_size") else k * k + 8 * k + 64
+        extra = (np.empty(max(size, k * k + 8 * k + 64)),)
     run(st, old, np.ascontiguousarray(sid, dtype=np.int64), X,
         np.ascontiguousarray(y, dtype=np.float64), *args, OLD_H[float(arl0)], OLD_K,
-        float(OLD_BURN), float(CLEAR_AFTER), float(COOLDOWN), opened, z)
+        float(OLD_BURN), float(CLEAR_AFTER), float(COOLDOWN), opened, z, *extra)
     return opened, z
 
 
