@@ -8,13 +8,17 @@
   (PRAGMA data_version).
 - WAL checkpoints run in a thread of their own: SQLite's automatic checkpoint is off on the
   writer connection while a Monitor runs, passive checkpoints keep the log small, and the
-  automatic checkpoint is given back to a shared store when the Monitor closes.
+  automatic checkpoint is given back to a shared store when the Monitor closes. The second
+  pass that holds the store's lock runs only when commits landed during a pass and the log has
+  reached restart_pages frames: counted per code path, the log stays bounded over a long run
+  of commits, and a writer that pauses between commits never waits for that pass.
 No speed is asserted here (benchmarks/live.py measures it).
 """
 
 from __future__ import annotations
 
 import json
+import os
 import re
 import sqlite3
 import time
@@ -33,8 +37,9 @@ from tests.conftest import DESIGNED
 NAMES = ["shop1/tea", "shop2/oats", "shop3/rice"]
 
 
-def _cfg():
-    return validate({"detectors": dict(DESIGNED), "bounds": {"low": -4.0, "high": -0.2}})
+def _cfg(**store):
+    return validate({"detectors": dict(DESIGNED), "bounds": {"low": -4.0, "high": -0.2},
+                     "store": store})
 
 
 def _calls(n: int, seed: int = 3):
@@ -138,8 +143,9 @@ def test_wal_checkpoints_run_beside_the_writer_and_keep_the_log_small(tmp_path):
     db = tmp_path / "w.sqlite"
     store = Store.open(db)
     assert store.scalar("PRAGMA wal_autocheckpoint") == 1000       # SQLite's default
-    calls = _calls(600)
+    calls = _calls(2000)
     with Monitor(store, _cfg()) as mon:
+        assert mon.wal.restart_pages == 4000          # wal_max_mb 64: restart_pages_for
         assert store.scalar("PRAGMA wal_autocheckpoint") == 0      # not inside our commits
         _feed(mon, calls[:3 * mon.wal.every_commits])
         guard = time.monotonic() + 60.0                            # hang guard only
@@ -151,13 +157,122 @@ def test_wal_checkpoints_run_beside_the_writer_and_keep_the_log_small(tmp_path):
         _feed(mon, calls[3 * mon.wal.every_commits:])
         # every call writes at least 7 pages (a row in each of series, observations,
         # estimates, latest_estimates, sparklines, checkpoints, source_offsets), so a log
-        # that never starts again holds >= 4,200 frames after 600 calls (6,584 measured);
-        # started again after each copy it holds about one budget's frames (821 measured)
+        # that never starts again holds >= 14,000 frames after 2,000 calls; started again
+        # once it passed restart_pages (4,000) it holds at most those and about two budgets'
+        # frames (one budget: 64 calls, 700-950 frames)
         frames = (db.parent / (db.name + "-wal")).stat().st_size / (4096 + 24)
-        assert frames < 600 * 7 / 2
+        assert frames < 2000 * 7 / 2
     assert store.scalar("PRAGMA wal_autocheckpoint") == 1000       # given back on close
     with sqlite3.connect(db) as con:
-        assert con.execute("SELECT count(*) FROM observations").fetchone()[0] == 600
+        assert con.execute("SELECT count(*) FROM observations").fetchone()[0] == 2000
+    store.close()
+
+
+def _blob_store(path):
+    store = Store.open(path)
+    store.execute("CREATE TABLE blobs (id INTEGER PRIMARY KEY, b BLOB)")
+    return store
+
+
+def _commit(store):
+    """One small transaction: a 3,000-byte row (a leaf page and the table's root: 2-3 frames)."""
+    with store.atomic():
+        store.execute("INSERT INTO blobs (b) VALUES (zeroblob(3000))")
+
+
+def _wal_frames(store):
+    path = str(store.path) + "-wal"
+    return os.path.getsize(path) // (4096 + 24) if os.path.exists(path) else 0
+
+
+class _CommitDuringPass(WalCheckpointer):
+    """A writer that commits while each unlocked pass copies, made deterministic: a reader
+    begins its snapshot before the pass, the commit follows the pass and cannot start the log
+    again while that reader is in the log (sqlite.org/wal.html, "WAL reset"), then the reader
+    ends, so the pass leaves the commit's frames uncopied as a concurrent commit would. The
+    thread never wakes (budget of 10**9 commits): the test calls ``checkpoint`` itself."""
+
+    def __init__(self, store, **kw):
+        super().__init__(store, every_commits=10**9, **kw)
+        self.reader = sqlite3.connect(store.path, isolation_level=None)
+
+    def _pass(self, locked):
+        if locked:
+            return super()._pass(locked)
+        self.reader.execute("BEGIN")
+        self.reader.execute("SELECT count(*) FROM blobs").fetchone()
+        got = super()._pass(locked)
+        _commit(self.store)
+        self.reader.execute("COMMIT")
+        return got
+
+    def close(self):
+        self.reader.close()
+        super().close()
+
+
+def _run_budgets(wal, budgets, per_budget=8):
+    """``budgets`` times: ``per_budget`` commits, then one checkpoint; returns the outcomes, the
+    largest log file seen and the log's frames at each pass."""
+    outcomes, most, logs = [], 0, []
+    for _ in range(budgets):
+        for _ in range(per_budget):
+            _commit(wal.store)
+        outcomes.append(wal.checkpoint())
+        most = max(most, _wal_frames(wal.store))
+        logs.append(wal.last[1])
+    return outcomes, most, logs
+
+
+def test_commits_during_passes_start_the_log_again_only_past_restart_pages(tmp_path):
+    store = _blob_store(tmp_path / "busy.sqlite")
+    wal = _CommitDuringPass(store, restart_pages=60)
+    outcomes, most, logs = _run_budgets(wal, 150)
+    wal.close()
+    # 150 budgets of 9 commits of 3 frames write about 4,000 frames; after a locked pass the
+    # log holds 24, 51, 81 frames at the next three passes (measured), so it reaches 60 at
+    # every third one and only then the locked pass runs (it used to follow every pass)
+    assert outcomes[:4] == ["locked", "grows", "grows", "locked"]   # the first: the schema's
+    assert wal.locked_passes == outcomes.count("locked") == 50
+    assert wal.checkpoints == 150
+    # bounded: below restart_pages plus one more budget (9 commits of 3-4 frames: 88 frames
+    # measured), the file by restart_pages plus two budgets (101 measured: the schema's pass)
+    assert max(logs[1:]) <= 60 + 9 * 4
+    assert most <= 60 + 2 * 9 * 4
+    rows = store.scalar("SELECT count(*) FROM blobs")
+    assert rows == 150 * 9
+    store.close()
+    # without the locked pass (restart_pages out of reach) the same run's log only grows
+    store = _blob_store(tmp_path / "never.sqlite")
+    wal = _CommitDuringPass(store, restart_pages=10**9)
+    outcomes, most, _ = _run_budgets(wal, 150)
+    wal.close()
+    assert set(outcomes) == {"grows"} and wal.locked_passes == 0
+    assert most > 150 * 9 * 2                      # 4,148 frames measured
+    store.close()
+
+
+def test_a_writer_that_pauses_during_passes_never_waits_for_the_locked_pass(tmp_path):
+    store = _blob_store(tmp_path / "quiet.sqlite")
+    wal = WalCheckpointer(store, every_commits=10**9, restart_pages=1)
+    outcomes, _, logs = _run_budgets(wal, 100)
+    # nothing committed during a pass: the whole log is copied and the next commit starts it
+    # again by itself, however low restart_pages is
+    assert set(outcomes) == {"copied"} and wal.locked_passes == 0
+    assert max(logs[1:]) <= 8 * 4          # one budget: 8 commits of 3-4 frames (24-26
+    #                                        measured; the first pass copies the schema's too)
+    # a reader's old snapshot stops the copy: no locked pass (it could not help either)
+    reader = sqlite3.connect(store.path, isolation_level=None)
+    reader.execute("BEGIN")
+    reader.execute("SELECT count(*) FROM blobs").fetchone()
+    for _ in range(8):
+        _commit(store)
+    assert wal.checkpoint() == "pinned" and wal.locked_passes == 0
+    busy, log, done = wal.last
+    assert busy == 0 and done < log
+    reader.execute("COMMIT")
+    reader.close()
+    wal.close()
     store.close()
 
 

@@ -46,7 +46,7 @@ from monitor.store import Store, thin_estimates, wall_ts, write_batch, write_del
 from monitor.groups.keys import split_key
 from monitor.live.groups import GroupUpkeep, settings_from_config as group_settings_of
 from monitor.store.live import release_writer_lock, series_bounds, take_writer_lock
-from monitor.store.wal import WalCheckpointer
+from monitor.store.wal import WalCheckpointer, restart_pages_for
 from monitor.types import Estimate
 
 
@@ -117,8 +117,10 @@ class Monitor:
             #: the engine's per-series memory (monitor.live.checkpoints.SeriesBook) and gate
             self.gate, self.book = None, None
             self._restore()
-            #: WAL checkpoints in a thread of their own, outside the commits (issue 15)
-            self.wal = WalCheckpointer(self.store)
+            #: WAL checkpoints in a thread of their own, outside the commits (issue 15); the
+            #: log starts again at most every restart_pages frames (half of wal_max_mb at most)
+            self.wal = WalCheckpointer(self.store, restart_pages=restart_pages_for(
+                self.wal_max_bytes, self.store.scalar("PRAGMA page_size")))
         except BaseException:
             self.close()
             raise
