@@ -408,6 +408,29 @@ def test_sparkline_cache_follows_batches_and_late_rows(store):
     assert cached.groupby("series").size().tolist() == [ms.SPARK_KEEP] * 2
 
 
+def test_one_point_sparkline_update_keeps_the_newest_points_in_time_order():
+    """spark_add (the one-row writer's cache update, text appended for the newest point) against
+    a reference built from scratch: every point so far, sorted by time, the last SPARK_KEEP."""
+    from monitor.store.live import spark_add
+
+    rng = np.random.default_rng(11)
+    for _ in range(40):
+        n = int(rng.integers(1, 3 * ms.SPARK_KEEP))
+        minutes = rng.choice(100_000, size=n, replace=False)
+        late = rng.random(n) < 0.1                   # some points older than the newest
+        order = np.where(late, minutes, np.sort(minutes))
+        row, seen = None, []
+        for m in order:
+            ts = (T0 + pd.Timedelta(minutes=int(m))).strftime("%Y-%m-%dT%H:%M:%SZ")
+            beta = "nan" if rng.random() < 0.1 else repr(float(rng.normal(-1.5, 0.3)))
+            seen.append((ts, beta))
+            row = spark_add(row, ts, beta)
+            keep = sorted(seen)[-ms.SPARK_KEEP:]
+            assert row == (len(keep), ",".join(t for t, _ in keep),
+                           ",".join(b for _, b in keep))
+            seen = keep                              # the cache forgets older points too
+
+
 def test_migration_from_version_1_backfills_the_sparkline_cache(tmp_path):
     path = tmp_path / "old.sqlite"
     conn = sqlite3.connect(path, isolation_level=None)

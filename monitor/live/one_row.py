@@ -193,9 +193,8 @@ def _run_and_commit(mon, series, vi, ns, p, q, values, price_arr, q_arr, lq, off
         mon.store, observation=(series, ts, p, q, controls, source, row, exposure),
         estimate=estimate,
         keep=keep, now=now,
-        checkpoint=(series, to_json(state), iso_z(last_obs), to_json({"row": row,
-                                                                        "source": source}),
-                    now),
+        checkpoint=(series, to_json(state), ts if last_obs == ns else iso_z(last_obs),
+                    to_json({"row": row, "source": source}), now),
         offset=(source, "api", None, 1, 0, now, None, 0), changes=changes,
         delay50=mon.pipeline.delay50_obs(res.states)[0])
     mon.book.states[vi] = res.states[0]
