@@ -267,16 +267,28 @@ class Pipeline:
         identified its controls; a series without controls resumes as it was. Rows of the layout
         without the split detector's sums of ``x^3``, ``x^4`` (``HX_SIZE`` floats fewer, 5
         December 2026) get them as zeros with their flag off: the after sample's variance is
-        the average's until the window next restarts.
+        the average's until the window next restarts. Rows of the layout without the
+        controls' sums (``ZS_SIZE`` floats fewer, 5 December 2026, :mod:`~monitor.detectors.
+        split_glr`) get them as zeros with their flag off: the detector's response sums keep
+        the control fit's ``c`` as it was when each row came until a slope alarm drops every
+        sum.
         Any other length raises :class:`~monitor.errors.ConfigError`."""
         vec = np.asarray(vec, dtype=np.float64)
         if vec.shape == (self.state_size,):
             return vec
-        if self.split and vec.ndim == 1 and vec.size == self.state_size - SG.HX_SIZE:
+        if self.split and vec.ndim == 1 and vec.size == self.state_size - SG.ZS_SIZE:
+            # the layout before the controls' sums (5 December 2026): they come in as zeros,
+            # flag off (the response sums keep the fit's c as it was when each row came, as
+            # before), until every sum is dropped by a slope alarm (split_glr)
+            at = int(self._layout[L_SPLIT]) + SG.ZS0
+            return np.concatenate([vec[:at], np.zeros(SG.ZS_SIZE), vec[at:]])
+        if self.split and vec.ndim == 1 and \
+                vec.size == self.state_size - SG.HX_SIZE - SG.ZS_SIZE:
             # the layout before the after sample's sums of x^3, x^4 (5 December 2026): they
-            # come in as zeros, flag off, until the window next restarts (split_glr)
+            # come in as zeros, flag off, until the window next restarts (split_glr); the
+            # controls' sums as above
             at = int(self._layout[L_SPLIT]) + SG.HX0
-            return np.concatenate([vec[:at], np.zeros(SG.HX_SIZE), vec[at:]])
+            return np.concatenate([vec[:at], np.zeros(SG.HX_SIZE + SG.ZS_SIZE), vec[at:]])
         new = SG.SPLIT_SIZE - SG.CFIT_ON
         for old in PREVIOUS_CONTROL_BLOCKS:
             if self.split and vec.ndim == 1 and vec.size == self.state_size - new + old:
