@@ -146,25 +146,21 @@ def test_in_control_slope_alarms_hold_the_design_when_variance_grows_with_price(
 
 
 def test_a_state_of_the_previous_layout_resumes_with_the_variance_sums_off():
-    # a row of the layout without the sums of x^3, x^4 (HX_SIZE floats fewer; it had no
-    # controls' sums either, ZS_SIZE floats) is upgraded with zeros (flags off); it runs on,
-    # and the flag comes on when the window restarts
+    # a row of the layout without the sums of x^3, x^4 (HX_SIZE floats fewer) is upgraded
+    # with zeros (flag off); it runs on, and the flag comes on when the window restarts
     from monitor.pipeline.run import L_SPLIT
     pipe = _pipeline()
     sid, X, y, ts = _panel(1, 400, seed=4)
     res = pipe.run(sid, X, y, 1, ts=ts)
     row = res.states[0]
     at = int(pipe._layout[L_SPLIT]) + SG.HX0
-    az = int(pipe._layout[L_SPLIT]) + SG.ZS0
     assert row[at] == 1.0                                  # charts started: flag on
-    old = np.concatenate([row[:at], row[at + SG.HX_SIZE:az], row[az + SG.ZS_SIZE:]])
+    old = np.concatenate([row[:at], row[at + SG.HX_SIZE:]])
     up = pipe.checked_state(old)
     assert up.shape == row.shape
     assert np.array_equal(up[:at], row[:at], equal_nan=True)
-    assert np.array_equal(up[at + SG.HX_SIZE:az], row[at + SG.HX_SIZE:az], equal_nan=True)
-    assert np.array_equal(up[az + SG.ZS_SIZE:], row[az + SG.ZS_SIZE:], equal_nan=True)
+    assert np.array_equal(up[at + SG.HX_SIZE:], row[at + SG.HX_SIZE:], equal_nan=True)
     assert np.all(up[at:at + SG.HX_SIZE] == 0.0)
-    assert np.all(up[az:az + SG.ZS_SIZE] == 0.0)
     assert np.array_equal(pipe.state_from_json(pipe.state_to_json(old)), up, equal_nan=True)
     st = up.copy()
     SG.reanchor_slope(st, int(pipe._layout[L_SPLIT]), SG.params(1.0, 1.0))  # restart

@@ -146,3 +146,17 @@ def test_a_state_without_the_controls_sums_resumes_with_them_off_until_a_slope_a
     SC.fit_solve(s2, at + SG.CFIT0, work, 0, 2)
     np.testing.assert_allclose(s2[at + SG.ZS_C:at + SG.ZS_C + 2],
                                work[SC.M * SC.M + 2:SC.M * SC.M + 4], rtol=1e-12)
+
+
+def test_only_a_pipeline_whose_rows_have_controls_carries_the_controls_sums():
+    with_c, _, _ = _run()
+    plain = Pipeline(ElasticityRLS(forgetting=0.99))
+    a, b = with_c.layout()["split"], plain.layout()["split"]
+    assert a[1] - a[0] == SG.SPLIT_SIZE and b[1] - b[0] == SG.ZS0
+    # without controls a state of the layout before is this layout: it resumes as it is
+    rng = np.random.default_rng(3)
+    x = rng.normal(0.0, 0.15, 700)
+    y = 2.0 - np.where(np.arange(700) < 400, 1.0, 1.8) * x + rng.normal(0.0, 0.1, 700)
+    X = np.column_stack([np.ones(700), x])
+    res = plain.run(np.zeros(700, np.int64), X, y, 1)
+    assert np.array_equal(plain.checked_state(res.states[0]), res.states[0], equal_nan=True)

@@ -149,7 +149,9 @@ move of the response sums (the cascade, the window start moving into R, the cap,
 re-anchorings), and when the fit's ``c`` changes by ``dc`` each response sum is re-expressed:
 ``Sy -= dc' Sz``, ``Sxy -= dc' Sxz`` (:func:`zs_express`, called by the pipeline before each
 row; the row's controls come in ``ZS_ROW``). 2 x 6 floats for R, C and each of the 11
-checkpoints, 6 for L, 15 of bookkeeping: :data:`ZS_SIZE` = 176.
+checkpoints, 6 for L, 14 of bookkeeping: :data:`ZS_SIZE` = 176, only in pipelines whose rows
+have controls (the pipeline's split block ends at :data:`ZS0` otherwise, and the block is
+touched only while the control fit is on).
 
 Why: before, each row entered its sums with the ``c`` the fit had when the row came. While the
 fit is young its ``c`` moves, and a move of the coefficient of a control with a mean away from
@@ -282,7 +284,9 @@ HX_SIZE = 3 + 2 * NHX
 #: checkpoint, and the centred ``sum (x - xbar)(z_k - zbar_k)`` of the level-free part L.
 #: Appended after the sums of x^3, x^4, so that a state of the previous layout restores by
 #: padding zeros (flag 0: the response sums keep the control fit's ``c`` as it was when each
-#: row came, as before, until every sum is next dropped by a slope alarm)
+#: row came, as before, until every sum is next dropped by a slope alarm). Only pipelines
+#: whose rows have controls have this block (the pipeline's split block is ``ZS0`` floats
+#: otherwise); it is read and written only while the control fit is on (``CFIT_ON``)
 ZS0 = HX0 + HX_SIZE
 ZS_ON = ZS0
 ZS_K = ZS0 + 1
@@ -357,7 +361,8 @@ REPORT_SIZE = 11
 def state_size() -> int:
     """Floats of one series' split-GLR state: 33 + 6 x NSLOT + 1 + (NCF + 3)(NCF + 4) / 2 + 3 +
     2 x NHX + 2 + 2 NCF + 2 NCF (NSLOT + 2) + NCF (338 with 11 checkpoints, 6 controls and 7
-    checkpoints with sums of x^3, x^4; 176 of them the controls' sums)."""
+    checkpoints with sums of x^3, x^4; 176 of them the controls' sums, which a pipeline whose
+    rows have no controls leaves out: 162)."""
     return SPLIT_SIZE
 
 
@@ -667,8 +672,10 @@ def _level_vs_pivot(na, nb, dx, dy, cxa, cya, cxb, cyb, v):
 # ---------------------------------------------------------------- the controls' sums
 @njit(cache=True, inline="always")
 def _kz(st, at):
-    """Controls whose sums are kept (0 without controls or while the sums are off)."""
-    if st[at + ZS_ON] == 0.0:
+    """Controls whose sums are kept (0 without controls or while the sums are off). The block
+    is read only where the control fit is on (``CFIT_ON``): a pipeline whose rows have no
+    controls has no such block (its split state ends at ``ZS0``)."""
+    if st[at + CFIT_ON] == 0.0 or st[at + ZS_ON] == 0.0:
         return 0
     return int(st[at + ZS_K])
 
@@ -1128,9 +1135,10 @@ def _clear_window(st, at):
     ts = st[at + SLOT0 + 5]
     for i in range(5):
         st[at + C0 + i] = 0.0
-    _zs_zero(st, at + ZS_CW)
-    for i in range(NSLOT):
-        _zs_zero(st, _zs_slot(at, i))
+    if st[at + CFIT_ON] != 0.0:          # the controls' sums (only with the control fit on)
+        _zs_zero(st, at + ZS_CW)
+        for i in range(NSLOT):
+            _zs_zero(st, _zs_slot(at, i))
     for i in range(NSLOT):
         q = at + SLOT0 + SLOT_W * i
         for m in range(5):
@@ -1171,12 +1179,14 @@ def reanchor_slope(st, at, p):
         st[at + R0 + i] = 0.0
     for i in range(3):
         st[at + L0 + i] = 0.0
-    _zs_zero(st, at + ZS_R)
-    for k in range(NCF):
-        st[at + ZS_L + k] = 0.0
-    # every sum is empty: the controls' sums are complete from here (a state restored from
-    # the layout without them, flag 0, turns them on; the caller sets kz and c next row)
-    st[at + ZS_ON] = 1.0
+    if st[at + CFIT_ON] != 0.0:
+        _zs_zero(st, at + ZS_R)
+        for k in range(NCF):
+            st[at + ZS_L + k] = 0.0
+        # every sum is empty: the controls' sums are complete from here (a state restored
+        # from the layout without them, flag 0, turns them on; the caller sets kz and c at
+        # the next row)
+        st[at + ZS_ON] = 1.0
     st[at + D_ON_S] = 0.0
     st[at + D_GS] = 0.0
     st[at + D_GL] = 0.0
@@ -1203,7 +1213,8 @@ def reanchor_level(st, at, p):
     _clear_window(st, at)
     for i in range(5):
         st[at + R0 + i] = 0.0
-    _zs_zero(st, at + ZS_R)
+    if st[at + CFIT_ON] != 0.0:
+        _zs_zero(st, at + ZS_R)
     st[at + D_GL] = 0.0
     st[at + D_GS] = 0.0
     st[at + D_HOT] = HOLD
