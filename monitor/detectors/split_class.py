@@ -177,9 +177,13 @@ class SplitGLR:
         p = dict(state["params"])
         det = cls(p.pop("arl0"), p.pop("h_slope"), p.pop("h_level"), **p)
         vec = floats_from_json(state["state"])
-        if vec.size == S.SPLIT_SIZE - S.HX_SIZE:
+        if vec.size == S.SPLIT_SIZE - S.ZS_SIZE - S.HX_SIZE:
             # saved before the after sample's sums of x^3, x^4 (5 December 2026): they come in
             # as zeros, flag off, until the window next restarts (split_glr)
             vec = np.concatenate([vec[:S.HX0], np.zeros(S.HX_SIZE), vec[S.HX0:]])
+        if vec.size == S.SPLIT_SIZE - S.ZS_SIZE:
+            # saved before the controls' sums (5 December 2026; this class has no controls):
+            # zeros
+            vec = np.concatenate([vec, np.zeros(S.ZS_SIZE)])
         det._state[:] = vec
         return det

@@ -208,10 +208,18 @@ class Pipeline:
         for name, size in BLOCKS:
             if (name == "split") != self.split and (name == "split" or name in CHART_BLOCKS):
                 size = 0  # the other detector's blocks are empty
+            elif name == "split":
+                size += self._split_zs() - SG.ZS_SIZE   # no controls: no controls' sums
             offs.append(offs[-1] + size)
         lay = np.array(offs, dtype=np.int64)
         assert lay.size == L_SIZE + 1
         return lay
+
+    def _split_zs(self) -> int:
+        """Floats of the split detector's controls' sums in this layout: ``ZS_SIZE`` where the
+        rows have columns beyond ``(1, log p)`` (controls, or an instrument model's
+        instruments: the detector's control fit reads them), else 0."""
+        return SG.ZS_SIZE if self.estimator.row_width > 2 else 0
 
     def layout(self) -> dict[str, tuple[int, int]]:
         """``{block: (start, stop)}`` offsets of one series' state row."""
@@ -267,17 +275,30 @@ class Pipeline:
         identified its controls; a series without controls resumes as it was. Rows of the layout
         without the split detector's sums of ``x^3``, ``x^4`` (``HX_SIZE`` floats fewer, 5
         December 2026) get them as zeros with their flag off: the after sample's variance is
-        the average's until the window next restarts.
+        the average's until the window next restarts. Rows of the layout without the
+        controls' sums (``ZS_SIZE`` floats fewer where the rows have controls, 5 December
+        2026, :mod:`~monitor.detectors.split_glr`) get them as zeros with their flag off: the
+        detector's response sums keep the control fit's ``c`` as it was when each row came
+        until a slope alarm drops every sum. Without controls the layout has no such block and
+        rows of the previous layout resume as they are.
         Any other length raises :class:`~monitor.errors.ConfigError`."""
         vec = np.asarray(vec, dtype=np.float64)
         if vec.shape == (self.state_size,):
             return vec
-        if self.split and vec.ndim == 1 and vec.size == self.state_size - SG.HX_SIZE:
+        zs = self._split_zs() if self.split else 0
+        if zs and vec.ndim == 1 and vec.size == self.state_size - zs:
+            # the layout before the controls' sums (5 December 2026): they come in as zeros,
+            # flag off (the response sums keep the fit's c as it was when each row came, as
+            # before), until every sum is dropped by a slope alarm (split_glr)
+            at = int(self._layout[L_SPLIT]) + SG.ZS0
+            return np.concatenate([vec[:at], np.zeros(SG.ZS_SIZE), vec[at:]])
+        if self.split and vec.ndim == 1 and vec.size == self.state_size - SG.HX_SIZE - zs:
             # the layout before the after sample's sums of x^3, x^4 (5 December 2026): they
-            # come in as zeros, flag off, until the window next restarts (split_glr)
+            # come in as zeros, flag off, until the window next restarts (split_glr); the
+            # controls' sums as above
             at = int(self._layout[L_SPLIT]) + SG.HX0
-            return np.concatenate([vec[:at], np.zeros(SG.HX_SIZE), vec[at:]])
-        new = SG.SPLIT_SIZE - SG.CFIT_ON
+            return np.concatenate([vec[:at], np.zeros(SG.HX_SIZE + zs), vec[at:]])
+        new = SG.ZS0 + zs - SG.CFIT_ON
         for old in PREVIOUS_CONTROL_BLOCKS:
             if self.split and vec.ndim == 1 and vec.size == self.state_size - new + old:
                 at = int(self._layout[L_SPLIT]) + SG.CFIT_ON

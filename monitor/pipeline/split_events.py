@@ -66,9 +66,11 @@ def split_row(st, at, xj, yj, k, e, n, t, gp, mu, work):
     The response is ``y* = y - c' z`` with ``c`` from the detector's own fit of the controls
     (:mod:`monitor.detectors.split_controls`: least squares over every row, with the regimes'
     intercepts and slopes partialled out after alarms); controls beyond ``NCF`` use the
-    estimator's current coefficient. A series with controls is fed to the detector only once
-    its controls are identified (:func:`~monitor.detectors.split_controls.fit_identified`);
-    ``work`` is scratch (:data:`WORK_SIZE` floats). Series without controls (``k == 2``) are
+    estimator's current coefficient; every response sum the detector holds is re-expressed
+    with the fit's current ``c`` first (split_glr's docstring, "The controls' sums"), so all
+    its candidates are tested with one ``c``. A series with controls is fed to the detector
+    only once its controls are identified
+    (:func:`~monitor.detectors.split_controls.fit_identified`); ``work`` is scratch (:data:`WORK_SIZE` floats). Series without controls (``k == 2``) are
     untouched. ``y`` is log q under the log-log model (``mu`` NaN: every row weight 1, ``e``
     the log-scale innovation) and the working response ``x' theta + (q - mu) / mu`` under the
     Poisson model (``mu`` the predicted mean, ``e = q - mu``): the row then enters with the
