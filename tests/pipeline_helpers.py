@@ -38,3 +38,20 @@ def simulate(n_series: int, n: int, *, beta: float = -1.5, change_at: int | None
 def rows_of(sid: np.ndarray, s: int) -> np.ndarray:
     """Row indices of series ``s``."""
     return np.flatnonzero(sid == s)
+
+
+def restores_without_block(pipe, row: np.ndarray, at: int, size: int,
+                            filler: np.ndarray | None = None) -> np.ndarray:
+    """The state ``row`` with its block ``[at, at + size)`` cut out, or replaced by ``filler``
+    (a layout saved before the block existed, or with an older block there), restored by
+    ``pipe.checked_state`` and through the JSON form: asserts the restored row has the current
+    shape, every other number kept and the block zero; returns it."""
+    mid = np.empty(0) if filler is None else filler
+    old = np.concatenate([row[:at], mid, row[at + size:]])
+    up = pipe.checked_state(old)
+    assert up.shape == row.shape
+    assert np.array_equal(up[:at], row[:at], equal_nan=True)
+    assert np.array_equal(up[at + size:], row[at + size:], equal_nan=True)
+    assert np.all(up[at:at + size] == 0.0)
+    assert np.array_equal(pipe.state_from_json(pipe.state_to_json(old)), up, equal_nan=True)
+    return up

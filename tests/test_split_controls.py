@@ -20,6 +20,7 @@ from monitor.errors import ConfigError
 from monitor.estimators import ElasticityRLS
 from monitor.estimators import kernel as K
 from monitor.pipeline.run import L_SPLIT, PREVIOUS_CONTROL_BLOCKS, Pipeline
+from tests.pipeline_helpers import restores_without_block
 
 
 def _rows(rng, n, kc=3, b=-1.0, a=2.0, c=(0.3, -0.2, 0.5)):
@@ -161,19 +162,13 @@ def test_an_older_checkpoint_resumes_with_the_control_fit_fresh(old):
     at = int(pipe._layout[L_SPLIT]) + SG.CFIT_ON
     new = SG.SPLIT_SIZE - SG.CFIT_ON
     assert np.any(row[at:at + new] != 0.0)                # the fit was in use
-    vec = np.concatenate([row[:at], np.full(old, 0.25), row[at + new:]])
-    up = pipe.checked_state(vec)
-    assert up.shape == row.shape
-    assert np.array_equal(up[:at], row[:at], equal_nan=True)
-    assert np.array_equal(up[at + new:], row[at + new:], equal_nan=True)
-    assert np.all(up[at:at + new] == 0.0)
-    assert np.array_equal(pipe.state_from_json(pipe.state_to_json(vec)), up, equal_nan=True)
+    up = restores_without_block(pipe, row, at, new, filler=np.full(old, 0.25))
     # the upgraded row runs on, and feeds its charts again once the controls are identified
     more = pipe.run(np.zeros(len(y), np.int64), X, y, 1, states=up[None, :].copy())
     assert np.all(np.isfinite(more.out[:, K.O_BETA]))
     assert more.states[0, at] == 1.0
     with pytest.raises(ConfigError, match="layout changed"):
-        pipe.checked_state(vec[:-1])
+        pipe.checked_state(np.concatenate([row[:at], np.full(old, 0.25), row[at + new:-1]]))
 
 
 def test_at_identification_the_earlier_rows_seed_the_window_sums():

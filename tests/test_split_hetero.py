@@ -18,6 +18,7 @@ from statsmodels.stats.sandwich_covariance import _HCCM
 from monitor.detectors import split_glr as SG
 from monitor.estimators import ElasticityRLS
 from monitor.estimators import kernel as K
+from tests.pipeline_helpers import restores_without_block
 
 LP0 = math.log(10.0)
 #: the error variance grows as exp(A t) with the standardized log price t (the benchmark's
@@ -155,13 +156,7 @@ def test_a_state_of_the_previous_layout_resumes_with_the_variance_sums_off():
     row = res.states[0]
     at = int(pipe._layout[L_SPLIT]) + SG.HX0
     assert row[at] == 1.0                                  # charts started: flag on
-    old = np.concatenate([row[:at], row[at + SG.HX_SIZE:]])
-    up = pipe.checked_state(old)
-    assert up.shape == row.shape
-    assert np.array_equal(up[:at], row[:at], equal_nan=True)
-    assert np.array_equal(up[at + SG.HX_SIZE:], row[at + SG.HX_SIZE:], equal_nan=True)
-    assert np.all(up[at:at + SG.HX_SIZE] == 0.0)
-    assert np.array_equal(pipe.state_from_json(pipe.state_to_json(old)), up, equal_nan=True)
+    up = restores_without_block(pipe, row, at, SG.HX_SIZE)
     st = up.copy()
     SG.reanchor_slope(st, int(pipe._layout[L_SPLIT]), SG.params(1.0, 1.0))  # restart
     assert st[at] == 1.0

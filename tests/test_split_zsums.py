@@ -18,6 +18,7 @@ from monitor.detectors import split_glr as SG
 from monitor.estimators import ElasticityRLS
 from monitor.estimators import kernel as K
 from monitor.pipeline.run import L_SPLIT, Pipeline
+from tests.pipeline_helpers import restores_without_block
 
 
 def _rows(rng, n):
@@ -123,13 +124,7 @@ def test_a_state_without_the_controls_sums_resumes_with_them_off_until_a_slope_a
     at = int(pipe._layout[L_SPLIT])
     az = at + SG.ZS0
     assert row[at + SG.CFIT_ON] == 1.0 and row[az] == 1.0 and row[at + SG.ZS_K] == 2.0
-    old = np.concatenate([row[:az], row[az + SG.ZS_SIZE:]])   # the layout before
-    up = pipe.checked_state(old)
-    assert up.shape == row.shape
-    assert np.array_equal(up[:az], row[:az], equal_nan=True)
-    assert np.array_equal(up[az + SG.ZS_SIZE:], row[az + SG.ZS_SIZE:], equal_nan=True)
-    assert np.all(up[az:az + SG.ZS_SIZE] == 0.0)
-    assert np.array_equal(pipe.state_from_json(pipe.state_to_json(old)), up, equal_nan=True)
+    up = restores_without_block(pipe, row, az, SG.ZS_SIZE)   # the layout before
     # it runs on with the sums off (the response sums keep each row's c, as before) ...
     more = pipe.run(np.zeros(300, np.int64), X[600:], y[600:], 1, states=up[None, :].copy())
     assert np.all(np.isfinite(more.out[:, K.O_BETA]))
