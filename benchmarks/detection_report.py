@@ -41,17 +41,17 @@ def poisson_ci(count: int, expected: float) -> tuple[float, float]:
 
 
 def slope_table(g: Grid) -> str:
-    head = ("| prices | change | db | ARL0 | bound (obs) | elmon delay / bound | elmon ≤ 5x bound "
+    head = ("| prices | change | db | ARL0 | bound (obs) | rows before the change | elmon delay / bound | elmon ≤ 5x bound "
             "| label right | \\|τ̂ − τ\\| / delay | old slope chart delay / bound | old ≤ 5x "
             "| PageHinkley on z | PH ≤ 5x | ADWIN on z | ADWIN ≤ 5x |")
-    lines = [head, "|" + "---|" * 15]
+    lines = [head, "|" + "---|" * 16]
     for r in g.slope:
         e, o = r["elmon"], r["old"]
         md = e["median_delay"]
         cerr = e["change_err"] / md if md and math.isfinite(md) and md > 0 else math.nan
         lines.append("| " + " | ".join([
             r["pattern"], r["form"], f"{r['size']:g}", f"{r['arl0']:,.0f}", f"{r['bound']:.0f}",
-            _r(e["ratio"]), _pct(e["within5"]), _pct(e["label"]), _r(cerr), _r(o["ratio"]),
+            f"{r.get('history', 600):,}", _r(e["ratio"]), _pct(e["within5"]), _pct(e["label"]), _r(cerr), _r(o["ratio"]),
             _pct(o["within5"]), _r(r["ph"]["ratio"]), _pct(r["ph"]["within5"]),
             _r(r["adwin"]["ratio"]), _pct(r["adwin"]["within5"])]) + " |")
     return "\n".join(lines)
