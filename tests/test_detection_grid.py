@@ -171,8 +171,9 @@ def test_level_chart_keeps_its_design_with_autocorrelated_errors(runner):
 def test_a_scale_frozen_early_does_not_loop(runner):
     """A series whose scale froze after 37 rows at 0.45 times the others' (AR(1) errors 0.6)
     raised 53 level alerts, one every 30-40 rows to its end: the low scale kept the level
-    statistic hot and each alarm re-armed the hold, so the scale never updated again. The
-    scale now freezes only once it rests on split_glr.FREEZE_MIN_W of weight (57 rows)."""
+    statistic hot and each alarm re-armed the hold, so the scale never updated again. An
+    alarm now holds the scale only once it rests on split_glr.FREEZE_MIN_W of weight (57 rows);
+    a hot statistic freezes it at any weight, as in the design runs."""
     sim = simulate(Scenario("AR(1) 0.6", errors="ar1", rho=0.6), 300, seed=12)
     one = sim.sid == 266
     est, pipe = runner.pipeline(ARL0, 0)

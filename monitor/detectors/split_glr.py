@@ -296,15 +296,19 @@ MIN_COUNT_SLOPE = 10.0
 #: the intercept held are found about 4% later at ARL0 2,000 (the old freeze stopped the scale
 #: from taking in the innovations of the change after the level alarm); pivots unchanged
 HOT_LEVEL = 4.0
-#: EW weight of the scale (``D_W``, 57 rows at ``lam_s`` 0.995) below which it never
-#: freezes (neither while a statistic is hot nor in the hold after an alarm). A scale frozen on
-#: a few dozen rows can sit far below the truth, and then it stays frozen: the statistics it
-#: scales run high, so they keep it hot, and each alarm re-arms the hold before the last one
-#: ends. Measured (AR(1) errors 0.6, 300 series, seed 12, ARL0 2,000): one series froze its
-#: scale at 0.0099 (the others: 0.022) with lag-1 autocorrelation 0 after 37 rows and raised
-#: 53 level alerts, one every 30-40 rows to its end, with either freeze point of the level chart
-#: (1 with this rule). The grid's in-control rates moved by at most 5 alerts of 400-570 per
-#: cell at ARL0 2,000 with 50; with 100 (140 rows) the elasticity_change rates fell up to 5%
+#: EW weight of the scale (``D_W``, 57 rows at ``lam_s`` 0.995) below which an alarm does not
+#: hold the scale for :data:`HOLD` rows (a hot statistic still freezes it at any weight, as in
+#: the design runs). A scale frozen low on a few dozen rows stayed frozen: the statistics it
+#: scales ran high, the alarms came every 30-40 rows and each re-armed the hold before the last
+#: one ended. Measured (AR(1) errors 0.6, 300 series, seed 12, ARL0 2,000): one series froze its
+#: scale at 0.0099 (the others: 0.022) after 37 rows and raised 53 level alerts to its end (1
+#: with this rule). An earlier form of the rule (no freeze at all below this weight, commit
+#: be1ed59) let a large early change into the scale: a change of b of 0.9 after 60 rows (noise
+#: 0.1, information about 1.6 per row; tests/test_replay_outputs_same.py) went hot at a weight
+#: of 47, the scale rose from 0.10 to 0.18 and the lag-1 autocorrelation to 0.51 in four rows,
+#: and no alert followed; with the hold alone gated it opens elasticity_change 8 rows after the
+#: change, as before. In-control rates at ARL0 2,000 (benchmarks.detection_grid control cells,
+#: 500 series, seed 12) within 3 alerts per cell of either form
 FREEZE_MIN_W = 50.0
 #: rows after an alarm during which the scale is not updated (the estimator re-converges).
 #: Longer is worse for false alarms: a false alarm is more likely when the scale happens to be
@@ -743,12 +747,11 @@ def split_step_w(st, at, x, y, e, wt, n_obs, ts, p):
     lam = p[Q_LAMS]
     # --- scale, autocorrelation and sandwich statistics (EW, weight D_W); frozen while the
     # slope statistic is above half its threshold or the level statistic above HOT_LEVEL (a
-    # change building up would inflate it), once it rests on FREEZE_MIN_W of weight; no
+    # change building up would inflate it), and for HOLD rows after an alarm (_hold); no
     # winsorizing before min_rows rows (the scale is not yet known)
-    frozen = st[at + D_HOT] > 0.0 and st[at + D_W] >= FREEZE_MIN_W
     if st[at + D_HOT] > 0.0:
         st[at + D_HOT] -= 1.0
-    if not frozen:
+    else:
         w = lam * st[at + D_W] + 1.0
         iw = 1.0 / w
         st[at + D_W] = w
@@ -1020,6 +1023,14 @@ def _retire_level(st, at, n, sx, sxx, sy, sxy):
 
 
 @njit(cache=True, inline="always")
+def _hold(st, at):
+    """After an alarm: the scale is held for :data:`HOLD` rows, once it rests on
+    :data:`FREEZE_MIN_W` of weight (before that only a hot statistic freezes it)."""
+    if st[at + D_W] >= FREEZE_MIN_W:
+        st[at + D_HOT] = HOLD
+
+
+@njit(cache=True, inline="always")
 def reanchor_slope(st, at, p):
     """After a slope alarm: every sum is dropped and the slope chart waits for the start rule
     on new data; the level chart's candidates need ``min_rows`` new rows.
@@ -1036,7 +1047,7 @@ def reanchor_slope(st, at, p):
     st[at + D_ON_S] = 0.0
     st[at + D_GS] = 0.0
     st[at + D_GL] = 0.0
-    st[at + D_HOT] = HOLD
+    _hold(st, at)
 
 
 @njit(cache=True, inline="always")
@@ -1060,7 +1071,7 @@ def reanchor_level(st, at, p):
         st[at + R0 + i] = 0.0
     st[at + D_GL] = 0.0
     st[at + D_GS] = 0.0
-    st[at + D_HOT] = HOLD
+    _hold(st, at)
 
 
 def split_statistics(before, after, s2: float = 1.0, weighted: bool = True) -> dict:
