@@ -157,9 +157,10 @@ def test_level_chart_keeps_its_design_with_autocorrelated_errors(runner):
     ARL0 2,000), not at the design's 4.0 (split_glr.HOT_LEVEL). 300 series x 2,000
     observations (about 300 alerts expected per cell at the design rate), measured over seeds
     1-8: 1.39 / 1.73 (sd over seeds 0.09 / 0.06) with the freeze at half the threshold, 0.97 /
-    0.83 (sd 0.06 / 0.06) at the design's point. Seed 12 gives 0.99 / 1.11 (1.45 / 1.98
-    before); its AR(1) 0.6 draw holds one series that raises 53 level alerts, one every 30-40
-    rows, with either freeze point (a loop this change does not touch), without it 0.93.
+    0.83 (sd 0.06 / 0.06) at the design's point. Seed 12 gives 0.99 / 0.93 (1.46 / 1.81
+    with the level point at half the threshold on the same code, set through the parameter
+    vector); its AR(1) 0.6 draw holds the series of the next test, which raised 53 level alerts
+    before the hold after an alarm waited for split_glr.FREEZE_MIN_W (then 1.11).
     """
     for rho in (0.3, 0.6):
         sim = simulate(Scenario(f"AR(1) {rho}", errors="ar1", rho=rho), 300, seed=12)
