@@ -8,8 +8,9 @@ import math
 
 import pytest
 
-from monitor.detectors.split_design import (FORGETTING_RANGE, information, information_bound,
-                                            split_thresholds)
+from monitor.detectors import split_glr as S
+from monitor.detectors.split_design import (FORGETTING_RANGE, HOT, information,
+                                            information_bound, split_thresholds)
 from monitor.detectors.split_table import PRECOMPUTED
 
 
@@ -27,6 +28,18 @@ def test_simulated_design_agrees_with_the_table():
     assert abs(t.level - hl) < 0.3, (t.level, hl)
     # at ARL0 500 the slope chart sits at its floor, the likelihood margin (see split_table)
     assert abs(t.slope - hs) < 0.3, (t.slope, hs)
+
+
+def test_detector_freezes_the_scale_where_the_design_did():
+    """The level chart's scale freezes at the statistic the thresholds were simulated with
+    (split_design.HOT), whatever the threshold: at half the threshold (2.54 at ARL0 2,000) the
+    scale froze on far more in-control rows than in the design, and the level chart alarmed
+    1.2-1.8x its design at ARL0 2,000 (tests/test_detection_grid.py holds the rate)."""
+    for arl0 in (500.0, 2000.0, 20000.0, 100000.0):
+        t = split_thresholds(arl0)
+        p = S.params(t.slope, t.level)
+        assert p[S.Q_HOTL] == HOT
+        assert p[S.Q_HOTS] == 0.5 * t.slope
 
 
 def test_table_serves_the_measured_forgetting_range():

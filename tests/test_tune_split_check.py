@@ -10,7 +10,10 @@ label rule of commit 9f870e6, measured 19:05 UTC on 4 December 2026): independen
 0.47 / 3.11. (Before the label rule: 1.00 / 0.95, 1.74 / 2.92, 0.49 / 1.83.) Since commit
 b0cf54d (5 December 2026: each row winsorized at its own sd, a short after sample tested with
 the variance its own prices give it) the slope chart keeps its design under error sd growing
-with price: 0.85 at ARL0 2,000 in the pipeline (was 1.72 on the detection grid's pattern)."""
+with price: 0.85 at ARL0 2,000 in the pipeline (was 1.72 on the detection grid's pattern).
+Since the level chart's scale freezes at the design's point (split_glr.HOT_LEVEL, 5 December
+2026), AR(1) errors of 0.9 keep the level chart's design as well (0.92 in the pipeline, 500
+series, seed 12; 3.28 with the freeze at half the threshold)."""
 
 from __future__ import annotations
 
@@ -89,21 +92,21 @@ def test_variance_growing_with_price_keeps_the_slope_design_and_names_the_link(t
     assert again["alert_rates"]["kinds"] == a["kinds"]
 
 
-def test_strongly_autocorrelated_errors_flag_the_level_alerts_only(tmp_path):
-    """AR(1) errors of 0.9: the pipeline raises 3.11 times the designed level_shift alerts and
-    0.47 times the elasticity_change alerts on such data (module docstring); the check flags
-    the level kind and leaves the slope kind as holding. The level chart runs at 1.2-1.3 times
-    its design on independent errors with these prices, so the cause named is the errors on
-    top of that."""
+def test_strongly_autocorrelated_errors_keep_the_level_design(tmp_path):
+    """AR(1) errors of 0.9: the pipeline raised 3.11 times the designed level_shift alerts on
+    such data (module docstring) while the level chart's scale froze at half its threshold;
+    with the freeze at the design's point (split_glr.HOT_LEVEL) it raises 0.92 times (500
+    series x 2,000 observations, seed 12, 458 alerts; 3.28 times, 1,634 alerts, with the old
+    freeze on the same series). The check follows: the level kind holds (0.82, 95% interval
+    0.70-0.96, 164 alerts; it said "breaks" at 3.1 times before), and the series' health still
+    names the autocorrelation."""
     _log(tmp_path / "ar.csv", errors="ar1", rho=0.9)
     s = calibrate(tmp_path / "ar.csv", tmp_path / "o", config=validate({}), arl0=ARL0,
                   n_steps=BUDGET, progress=False, now_ns=NOW)
     a = s["alert_rates"]
     level, slope = a["kinds"]["level_shift"], a["kinds"]["elasticity_change"]
-    assert level["verdict"] == "breaks" and level["ratio"] > 1.5, level["message"]
-    assert level["ratio"] > 1.25 * level["reference"]["ratio"]
-    assert "the errors cause" in level["message"] and "6 of 6 series autocorrelated" in \
-        level["message"]
+    assert level["verdict"] == "holds" and not level["flagged"], level["message"]
+    assert 0.75 < level["ratio"] < 1.25, level["message"]
     assert slope["verdict"] == "holds" and not slope["flagged"], slope["message"]
     assert a["health"]["autocorrelated"] == 6 and a["health"]["median_resid_ac1"] > 0.8
 

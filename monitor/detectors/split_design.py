@@ -62,8 +62,9 @@ DEFAULT_PATHS = 400
 #: 4.46 / 5.76 at 0.999, against the table's 4.41 / 5.80: within the Monte Carlo error (the
 #: ARL's relative se of about 6% moves h by about 0.06)
 FORGETTING_RANGE = (0.95, 1.0)
-#: statistic above which the scale freezes in the design runs (half a typical threshold)
-HOT = 4.0
+#: statistic above which the scale freezes in the design runs (half a typical threshold; the
+#: pipeline's level chart freezes at the same point, :data:`monitor.detectors.split_glr.HOT_LEVEL`)
+HOT = S.HOT_LEVEL
 MAX_RECORDS = 512
 _LP0, _PSD, _A, _B, _SIG = math.log(10.0), 0.1, 5.0, -1.5, 0.2
 

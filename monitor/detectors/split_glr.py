@@ -342,6 +342,37 @@ MIN_COUNT_LEVEL = 10.0
 #: 2,000 and 1.8x at 20,000, with 10 0.38x and 0.82x (the lower, safe side at both); from a
 #: mean of about 1 up the rows rule (MIN_AFTER) is the stricter one
 MIN_COUNT_SLOPE = 10.0
+#: level statistic above which the scale stops updating (the level chart's part of the freeze
+#: while a change builds up, :func:`split_step`): the value the thresholds were designed with
+#: (:mod:`monitor.detectors.split_design` simulates the freeze at this point for every ARL0).
+#: It was half the level threshold (2.54 at ARL0 2,000), which froze the scale on far more
+#: in-control rows than the design did, and a false alarm is likelier while the scale is frozen
+#: (the excursion's own residuals no longer raise the scale and, with autocorrelated errors,
+#: the AR(1) factor): level alerts / design at ARL0 2,000, pipeline, benchmarks.detection_grid
+#: control cells, 500 series x 2,000 rows, seed 12: independent prices 1.23x / 1.28x -> 1.08x /
+#: 1.15x, AR(1) errors 0.3 / 0.6 1.37x / 1.79x -> 0.99x / 0.87x; at ARL0 20,000 (half the
+#: threshold 3.91) unchanged within Monte Carlo error; AR(1) errors of 0.9 3.28x -> 0.92x. The
+#: slope chart's point stays at half its threshold: moving it to 4 as well lowered the slope
+#: chart's in-control rates further (independent prices 0.92x / 0.99x -> 0.85x / 0.94x, AR(1)
+#: 0.6 0.61x -> 0.49x at ARL0 2,000) and slowed changes of b with the intercept held. Cost of
+#: this one, measured on slope_cells (1,000 series, seed 12): changes of b of 0.3 / 0.5 with
+#: the intercept held are found about 4% later at ARL0 2,000 (the old freeze stopped the scale
+#: from taking in the innovations of the change after the level alarm); pivots unchanged
+HOT_LEVEL = 4.0
+#: EW weight of the scale (``D_W``, 57 rows at ``lam_s`` 0.995) below which an alarm does not
+#: hold the scale for :data:`HOLD` rows (a hot statistic still freezes it at any weight, as in
+#: the design runs). A scale frozen low on a few dozen rows stayed frozen: the statistics it
+#: scales ran high, the alarms came every 30-40 rows and each re-armed the hold before the last
+#: one ended. Measured (AR(1) errors 0.6, 300 series, seed 12, ARL0 2,000): one series froze its
+#: scale at 0.0099 (the others: 0.022) after 37 rows and raised 53 level alerts to its end (1
+#: with this rule). An earlier form of the rule (no freeze at all below this weight, commit
+#: be1ed59) let a large early change into the scale: a change of b of 0.9 after 60 rows (noise
+#: 0.1, information about 1.6 per row; tests/test_replay_outputs_same.py) went hot at a weight
+#: of 47, the scale rose from 0.10 to 0.18 and the lag-1 autocorrelation to 0.51 in four rows,
+#: and no alert followed; with the hold alone gated it opens elasticity_change 8 rows after the
+#: change, as before. In-control rates at ARL0 2,000 (benchmarks.detection_grid control cells,
+#: 500 series, seed 12) within 3 alerts per cell of either form
+FREEZE_MIN_W = 50.0
 #: rows after an alarm during which the scale is not updated (the estimator re-converges).
 #: Longer is worse for false alarms: a false alarm is more likely when the scale happens to be
 #: low, and freezing it for 200 rows more than doubled the level chart's false alarms on held
@@ -377,12 +408,14 @@ def params(h_slope: float, h_level: float, *, ref_cap: float = DEFAULT_REF_CAP,
     weights (:func:`split_step_w`, the Poisson model; module docstring, "Working weights");
     ``min_weight``: fewest total weight (expected count) after a level candidate's change time
     for it to alarm (default :data:`MIN_COUNT_LEVEL` with weights, 0 without);
-    ``min_weight_slope``: the same for a slope candidate (:data:`MIN_COUNT_SLOPE`)."""
+    ``min_weight_slope``: the same for a slope candidate (:data:`MIN_COUNT_SLOPE`). The scale
+    freezes while the slope statistic is above ``h_slope / 2`` or the level statistic above
+    :data:`HOT_LEVEL`."""
     p = np.zeros(SPLIT_PARAMS)
     p[Q_HS], p[Q_HL], p[Q_CAP], p[Q_MINROWS] = h_slope, h_level, ref_cap, min_rows
     p[Q_LAMS], p[Q_SESTART] = lam_scale, se_start
     p[Q_LEVEL_ON], p[Q_SLOPE_ON] = float(level_on), float(slope_on)
-    p[Q_HOTS], p[Q_HOTL] = 0.5 * h_slope, 0.5 * h_level
+    p[Q_HOTS], p[Q_HOTL] = 0.5 * h_slope, HOT_LEVEL
     p[Q_LMARGIN] = level_margin
     p[Q_WEIGHTED] = float(weighted)
     p[Q_MIN_WEIGHT] = (MIN_COUNT_LEVEL if weighted else 0.0) if min_weight is None else min_weight
@@ -869,9 +902,10 @@ def split_step_w(st, at, x, y, e, wt, n_obs, ts, p):
     x = x - st[at + D_X0]
     y = y
     lam = p[Q_LAMS]
-    # --- scale, autocorrelation and sandwich statistics (EW, weight D_W); frozen while a
-    # chart's statistic is above half its threshold (a change building up would inflate it);
-    # no winsorizing before min_rows rows (the scale is not yet known)
+    # --- scale, autocorrelation and sandwich statistics (EW, weight D_W); frozen while the
+    # slope statistic is above half its threshold or the level statistic above HOT_LEVEL (a
+    # change building up would inflate it), and for HOLD rows after an alarm (_hold); no
+    # winsorizing before min_rows rows (the scale is not yet known)
     if st[at + D_HOT] > 0.0:
         st[at + D_HOT] -= 1.0
     else:
@@ -1166,6 +1200,14 @@ def _retire_level(st, at, n, sx, sxx, sy, sxy, za, zb, zsign):
 
 
 @njit(cache=True, inline="always")
+def _hold(st, at):
+    """After an alarm: the scale is held for :data:`HOLD` rows, once it rests on
+    :data:`FREEZE_MIN_W` of weight (before that only a hot statistic freezes it)."""
+    if st[at + D_W] >= FREEZE_MIN_W:
+        st[at + D_HOT] = HOLD
+
+
+@njit(cache=True, inline="always")
 def reanchor_slope(st, at, p):
     """After a slope alarm: every sum is dropped and the slope chart waits for the start rule
     on new data; the level chart's candidates need ``min_rows`` new rows.
@@ -1190,7 +1232,7 @@ def reanchor_slope(st, at, p):
     st[at + D_ON_S] = 0.0
     st[at + D_GS] = 0.0
     st[at + D_GL] = 0.0
-    st[at + D_HOT] = HOLD
+    _hold(st, at)
 
 
 @njit(cache=True, inline="always")
@@ -1217,7 +1259,7 @@ def reanchor_level(st, at, p):
         _zs_zero(st, at + ZS_R)
     st[at + D_GL] = 0.0
     st[at + D_GS] = 0.0
-    st[at + D_HOT] = HOLD
+    _hold(st, at)
 
 
 def split_statistics(before, after, s2: float = 1.0, weighted: bool = True) -> dict:
