@@ -34,7 +34,11 @@ def _spark_updates(store: Store, est_df: pd.DataFrame, est_rows: list[tuple],
 
     Rows of a batch normally come after the cached ones; a late estimate (older ``ts``) is
     merged in time order. The batch's rows are taken in (series, ts) order
-    (:func:`monitor.store.rows.series_time_order`), the last SPARK_KEEP of each series.
+    (:func:`monitor.store.rows.series_time_order`), the last SPARK_KEEP of each series. Names,
+    times and betas are read from the insert tuples (``est_rows``: the same text and floats as
+    the frame, without converting whole Arrow columns to Python objects); a batch that comes
+    after the cached points is joined to the cached text as text, splitting only the cached
+    points it drops.
     """
     by = series_time_order(est_df) if by is None else by
     sizes = by.ends - by.starts
@@ -44,24 +48,39 @@ def _spark_updates(store: Store, est_df: pd.DataFrame, est_rows: list[tuple],
     idx = by.order[lo + np.arange(lo.size) - np.repeat(np.cumsum(keep) - keep, keep)]
     ends = np.cumsum(keep)
     starts = ends - keep
-    names = est_df["series"].to_numpy(dtype=object)[idx]
+    taken = [est_rows[i] for i in idx.tolist()]
+    names = [taken[a][0] for a in starts.tolist()]
     cached = {r[0]: r[1:] for r in store.conn.execute(
-        "SELECT series, ts, beta FROM sparklines WHERE series IN (SELECT value FROM json_each(?))",
-        (json.dumps(names[starts].tolist()),))}
-    ts_all = est_df["ts"].to_numpy(dtype=object)[idx].tolist()
+        "SELECT series, n, ts, beta FROM sparklines WHERE series IN "
+        "(SELECT value FROM json_each(?))", (json.dumps(names),))}
+    ts_all = [r[1] for r in taken]
     # the rows' beta (None for NULL) as beta_text writes it: repr, 'nan' for NULL
-    beta = np.array([est_rows[i][2] for i in idx.tolist()], dtype=np.float64)
+    beta = np.array([r[2] for r in taken], dtype=np.float64)
     beta_all = list(map(repr, beta.tolist()))
     out = []
-    for name, a, b in zip(names[starts].tolist(), starts.tolist(), ends.tolist()):
+    for name, a, b in zip(names, starts.tolist(), ends.tolist()):
         new_ts, new_beta = ts_all[a:b], beta_all[a:b]
-        if name in cached:
-            old_ts, old_beta = cached[name][0].split(","), cached[name][1].split(",")
-            if old_ts[-1] < new_ts[0]:
-                new_ts, new_beta = old_ts + new_ts, old_beta + new_beta
+        old = cached.get(name)
+        if old is None:
+            out.append((name, b - a, ",".join(new_ts), ",".join(new_beta)))
+            continue
+        old_n, old_ts, old_beta = old
+        if old_ts.rsplit(",", 1)[-1] < new_ts[0]:
+            # the batch comes after the cached points: keep the last ``room`` of them
+            room = min(SPARK_KEEP - (b - a), old_n)
+            if room <= 0:
+                out.append((name, b - a, ",".join(new_ts), ",".join(new_beta)))
+            elif room == old_n:
+                out.append((name, old_n + b - a, old_ts + "," + ",".join(new_ts),
+                            old_beta + "," + ",".join(new_beta)))
             else:
-                pairs = sorted(list(zip(old_ts, old_beta)) + list(zip(new_ts, new_beta)))
-                new_ts, new_beta = [p[0] for p in pairs], [p[1] for p in pairs]
+                out.append((name, room + b - a,
+                            ",".join(old_ts.rsplit(",", room)[1:] + new_ts),
+                            ",".join(old_beta.rsplit(",", room)[1:] + new_beta)))
+            continue
+        pairs = sorted(list(zip(old_ts.split(","), old_beta.split(","))) +
+                       list(zip(new_ts, new_beta)))
+        new_ts, new_beta = [p[0] for p in pairs], [p[1] for p in pairs]
         new_ts, new_beta = new_ts[-SPARK_KEEP:], new_beta[-SPARK_KEEP:]
         out.append((name, len(new_ts), ",".join(new_ts), ",".join(new_beta)))
     return out
