@@ -8,7 +8,7 @@ linearly; the grid is dense enough that the table agrees with ``scipy.stats.t.pp
 
 The table is computed with ``scipy.special`` (``stdtrit``, ``ndtri``: the functions
 ``scipy.stats.t.ppf`` and ``scipy.stats.norm.ppf`` call; the table equals theirs to the bit,
-tests/test_tquantile.py): importing ``scipy.stats`` cost about 0.3 s of every command's start
+tests/test_ingest_startup.py): importing ``scipy.stats`` cost about 0.3 s of every command's start
 (``elmon ingest`` among them).
 """
 
