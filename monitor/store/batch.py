@@ -67,18 +67,20 @@ def _spark_updates(store: Store, est_df: pd.DataFrame, est_rows: list[tuple],
             out.append((name, b - a, ",".join(new_ts), ",".join(new_beta)))
             continue
         old_n, old_ts, old_beta = old
-        if old_ts.rsplit(",", 1)[-1] < new_ts[0]:
-            # the batch comes after the cached points: keep the last ``room`` of them
+        if 0 < old_n <= SPARK_KEEP and old_ts[old_ts.rfind(",") + 1:] < new_ts[0]:
+            # the batch comes after the cached points: keep the last ``room`` of them (the
+            # text after the first ``old_n - room`` commas; ``n`` counts the cached points, as
+            # monitor.store.live.spark_add relies on too)
             room = min(SPARK_KEEP - (b - a), old_n)
             if room <= 0:
                 out.append((name, b - a, ",".join(new_ts), ",".join(new_beta)))
-            elif room == old_n:
-                out.append((name, old_n + b - a, old_ts + "," + ",".join(new_ts),
-                            old_beta + "," + ",".join(new_beta)))
-            else:
-                out.append((name, room + b - a,
-                            ",".join(old_ts.rsplit(",", room)[1:] + new_ts),
-                            ",".join(old_beta.rsplit(",", room)[1:] + new_beta)))
+                continue
+            if room < old_n:
+                drop = old_n - room
+                old_ts = old_ts.split(",", drop)[drop]
+                old_beta = old_beta.split(",", drop)[drop]
+            out.append((name, room + b - a, old_ts + "," + ",".join(new_ts),
+                        old_beta + "," + ",".join(new_beta)))
             continue
         pairs = sorted(list(zip(old_ts.split(","), old_beta.split(","))) +
                        list(zip(new_ts, new_beta)))
