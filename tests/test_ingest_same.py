@@ -237,13 +237,19 @@ def test_sparkline_rows_equal_the_previous_function(tmp_path):
     try:
         first = _estimates(600, seed=2)
         ms.write_batch(store, estimates=first)
-        for seed in (3, 4):
-            est = _estimates(300, seed=seed)
-            est["ts"] = (pd.to_datetime(est["ts"]) + pd.Timedelta(hours=60 * (seed - 3))
+        # overlapping times (merged), then batches strictly after the cache: a few points
+        # per series (part of the cached ones kept), many (none kept), and a new series
+        for seed, hours, n in ((3, 0, 300), (4, 60, 300), (5, 200, 40), (6, 400, 400),
+                               (7, 600, 12)):
+            est = _estimates(n, seed=seed)
+            est["ts"] = (pd.to_datetime(est["ts"]) + pd.Timedelta(hours=hours)
                          ).dt.strftime("%Y-%m-%dT%H:%M:%SZ")
+            if seed == 7:
+                est.loc[0, "series"] = "d/4"
             df, rows = R.estimate_rows(est)
-            assert _spark_updates(store, df, rows) == before._spark_updates(store, df, rows)
-            ms.write_batch(store, estimates=est.iloc[:0])
+            got = _spark_updates(store, df, rows)
+            assert got == before._spark_updates(store, df, rows)
+            ms.write_batch(store, estimates=est if hours >= 200 else est.iloc[:0])
     finally:
         store.close()
 

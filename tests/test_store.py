@@ -532,3 +532,27 @@ def test_batch_series_counts_equal_a_pandas_groupby():
             for s, lo, hi, k in zip(ref.index, ref["min"], ref["max"], ref["size"])]
     assert got == want
     assert any("." in r[1] for r in got)              # fractional times were compared as text
+
+
+def test_write_batch_gives_the_garbage_collector_back(tmp_path):
+    """write_batch pauses Python's cyclic collector while it builds tuples (issue 15): it is
+    on again after a batch that fails, and left off for a caller that had turned it off."""
+    import gc
+
+    good = pd.DataFrame({"series": ["a"], "ts": ["2024-01-01T00:00:00Z"], "price": [1.0],
+                         "quantity": [1.0]})
+    store = ms.Store.open(tmp_path / "gc.sqlite")
+    try:
+        assert gc.isenabled()
+        with pytest.raises(ValidationError):
+            ms.write_batch(store, observations=good.assign(price=[-1.0]))
+        assert gc.isenabled()
+        gc.disable()
+        try:
+            ms.write_batch(store, observations=good)
+            assert not gc.isenabled()
+        finally:
+            gc.enable()
+        assert store.scalar("SELECT count(*) FROM observations") == 1
+    finally:
+        store.close()

@@ -13,7 +13,18 @@ estimates and their spread, time to precision, health checks and a verdict.
 
 from monitor.experiments.plan import (EXPERIMENTS_SECTION, ExperimentPlan, check_experiments,
                                       plan_from_config, plans_from_section)
-from monitor.experiments.status import SUMMARY_FIELDS, VERDICTS, ExperimentStatus, evaluate
+
+#: names read from :mod:`~monitor.experiments.status` when first used: importing it imports
+#: scipy.stats (health checks, confidence sequences), about 0.3 s that every command paid at
+#: its start through :mod:`monitor.settings`, which needs only the ``[experiments]`` schema
+_FROM_STATUS = ("SUMMARY_FIELDS", "VERDICTS", "ExperimentStatus", "evaluate")
+
+
+def __getattr__(name: str):
+    if name in _FROM_STATUS:
+        from monitor.experiments import status
+        return getattr(status, name)
+    raise AttributeError(f"module 'monitor.experiments' has no attribute {name!r}")
 
 
 __all__ = ["EXPERIMENTS_SECTION", "ExperimentPlan", "ExperimentStatus", "SUMMARY_FIELDS",

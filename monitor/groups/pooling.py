@@ -54,7 +54,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 #: Fewest series with a standard error for a group to be pooled (tau2 needs k - 1 >= 2).
 MIN_SERIES = 3
@@ -137,6 +136,8 @@ def pool_group(b, se, level: float = 0.95, method: str = "hksj") -> PooledGroup:
     b = np.asarray(b, dtype=np.float64)
     se = np.asarray(se, dtype=np.float64)
     k = len(b)
+    from scipy import stats      # here, not at import: elmon ingest's start (issue 15)
+
     if k < MIN_SERIES:
         raise ValueError(f"pool_group: {k} series, at least {MIN_SERIES} are needed")
     if not (np.isfinite(b).all() and np.isfinite(se).all() and (se > 0).all()):

@@ -182,8 +182,17 @@ def to_json(obj: Any, *, finite: bool = False) -> str | None:
         return None
     if finite:
         obj = finite_or_none(json.loads(json.dumps(obj, default=_json_default)))
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=_json_default,
-                      allow_nan=not finite)
+        return _FINITE.encode(obj)
+    return _EXACT.encode(obj)
+
+
+#: the encoders :func:`to_json` uses: what ``json.dumps(obj, sort_keys=True, separators=(",",
+#: ":"), default=_json_default, allow_nan=...)`` makes for each call (the same text), made once
+#: (a batch's checkpoints call it twice per series)
+_EXACT = json.JSONEncoder(sort_keys=True, separators=(",", ":"), default=_json_default,
+                          allow_nan=True)
+_FINITE = json.JSONEncoder(sort_keys=True, separators=(",", ":"), default=_json_default,
+                           allow_nan=False)
 
 
 def finite_or_none(obj: Any) -> Any:
