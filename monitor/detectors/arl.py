@@ -47,7 +47,6 @@ from functools import lru_cache
 
 import numpy as np
 from numpy.polynomial.legendre import leggauss
-from scipy.optimize import brentq
 from scipy.special import ndtr, ndtri
 
 from monitor.errors import ConfigError
@@ -362,6 +361,8 @@ def _solve_log(f, target: float, lo: float, hi: float, floor: float) -> float:
             ghi = g(hi)
     else:  # pragma: no cover - guarded by the callers' range checks
         raise ConfigError(f"could not bracket a threshold for ARL {target:g}")
+    from scipy.optimize import brentq   # on first use: scipy.optimize is 0.15-0.45 s of a start
+
     return brentq(g, lo, hi, xtol=1e-12, rtol=1e-12)
 
 
@@ -373,6 +374,8 @@ def _cusum_h_cached(k: float, arl0: float, sides: int) -> float:
     if sieg(1e4) < arl0:  # only near k = 0; the exact solve would need > MAX_NODES nodes
         raise ConfigError(f"arl0 = {arl0:g} is out of range for k = {k:g}: it needs h > 1e4; "
                           "use a larger k")
+    from scipy.optimize import brentq
+
     guess = 0.1 if sieg(1e-9) >= arl0 else \
         brentq(lambda h: math.log(sieg(h)) - math.log(arl0), 1e-9, 1e4)
     def exact(h):
