@@ -97,6 +97,59 @@ def test_k2_step_one_long_series_to_the_bit(rng):
     np.testing.assert_array_equal(_bits(res.states), _bits(states))
 
 
+def _burst_order(rng, sid: np.ndarray) -> np.ndarray:
+    """A permutation of the rows of interleaved ``sid`` that keeps each series' rows in time
+    order but delivers them in bursts of 1 to 6 consecutive rows of the same series."""
+    queues = [list(np.flatnonzero(sid == s)) for s in range(int(sid.max()) + 1)]
+    order: list[int] = []
+    while any(queues):
+        live = [s for s, q in enumerate(queues) if q]
+        s = live[int(rng.integers(len(live)))]
+        take = int(rng.integers(1, 7))
+        order += queues[s][:take]
+        del queues[s][:take]
+    return np.asarray(order, dtype=np.int64)
+
+
+BURST_SETTINGS = [
+    {},
+    {"band": "classic", "forgetting": 0.9},
+    {"excitation_guard": False, "forgetting": 0.99},
+]
+
+
+@pytest.mark.parametrize("settings", BURST_SETTINGS)
+def test_k2_step_bursts_and_nan_rows_to_the_bit(rng, settings):
+    """Rows of one series in bursts (the state a row wrote is read by the next row at once)
+    and rows with a NaN quantity or log price: every output column and state slot, NaN's bits
+    included (compared as int64), equals the previous form's. A NaN row poisons its series'
+    sums from then on, so the NaN paths of every later step (comparisons, the packed
+    divisions' NaN lanes, the t lookup) are compared too."""
+    sid0, X0, y0 = _hard_rows(rng, 16, 250)
+    order = _burst_order(rng, sid0)
+    sid, X, y = sid0[order], X0[order].copy(), y0[order].copy()
+    step = np.empty(sid.size, dtype=np.int64)
+    for s in range(16):
+        rows = np.flatnonzero(sid == s)
+        step[rows] = np.arange(rows.size)
+    y[(sid == 4) & (step == 150)] = np.nan
+    X[(sid == 7) & (step == 200), 1] = np.nan
+    y[(sid == 11) & (step == 0)] = np.nan          # from the first row (the centring reference)
+    est = ElasticityRLS(**{"forgetting": 0.97, **settings})
+    res = run_batch(est, sid, X, y)
+    out, states = _previous(est, sid, X, y)
+    for c in range(K.NOUT):
+        np.testing.assert_array_equal(_bits(res.out[:, c]), _bits(out[:, c]),
+                                      err_msg=f"column {c}")
+    np.testing.assert_array_equal(_bits(res.states), _bits(states))
+    # the premises: bursts, and NaN reaching the outputs after the NaN rows only
+    assert (sid[1:] == sid[:-1]).mean() > 0.5
+    assert np.isnan(res.beta[(sid == 4) & (step > 150)]).all()
+    assert np.isfinite(res.beta[(sid == 4) & (step > 100) & (step < 150)]).all()
+    assert np.isnan(res.beta[(sid == 7) & (step > 200)]).all()
+    assert np.isnan(res.out[sid == 11, K.O_INTERCEPT]).all()
+
+
 def _control_rows(rng, n_series: int, T: int, n_controls: int):
     """Rows of :func:`_hard_rows` with controls: a 30% promotion flag, normal controls, and in
     some series a control held at 0 for the first 30 steps (dependent on the intercept: the
