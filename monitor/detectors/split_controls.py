@@ -122,13 +122,16 @@ def _w(i, xj, y, kc):
 
 
 @njit(cache=True, inline="always")
-def fit_add(st, o, xj, y, kc):
+def fit_add(st, o, xj, y, kc, wt):
     """Add one row (``xj``: the design row, ``xj[1]`` log price, ``xj[2:2 + kc]`` the first
-    ``kc`` controls; ``y``: log q less any further controls' effects) to ``N`` at ``st[o:]``."""
+    ``kc`` controls; ``y``: log q less any further controls' effects) with weight ``wt`` to
+    ``N`` at ``st[o:]`` (``N += wt [w, y][w, y]'``; with ``wt = 1`` exactly the unweighted
+    sums)."""
     for i in range(MP):
         wi = _w(i, xj, y, kc)
         if wi == 0.0:
             continue
+        wi = wt * wi
         for j in range(i, MP):
             wj = _w(j, xj, y, kc)
             if wj != 0.0:
@@ -178,10 +181,12 @@ def fit_solve(st, o, s, s0, kc):
 
 
 @njit(cache=True, inline="always")
-def fit_identified(st, o, s, s0, kc, eps):
+def fit_identified(st, o, s, s0, kc, eps, n):
     """True when ``n >= MIN_FIT_ROWS`` and the price's variance inflation by the controls is
     small for this many rows: ``VIF_x - 1 <= eps^2 n`` with ``VIF_x = N^-1_11 Sxx`` (``Sxx =
-    N_11 - N_01^2 / N_00`` the centred sum of squares of log price, ``n = N_00``). Uses the
+    N_11 - N_01^2 / N_00`` the centred sum of squares of log price) and ``n`` the rows in the
+    fit (``N_00`` for unweighted rows; with working weights the estimator's row count, see
+    :func:`fit_response`). Uses the
     factor :func:`fit_solve` left in ``s[s0:]`` and ``s[s0 + M * M + M:]`` as work space. A log
     price that is constant, or a control seen so far that is dependent on the intercept, log
     price and the controls before it (zero pivot), is not identified: the factor would
@@ -202,7 +207,6 @@ def fit_identified(st, o, s, s0, kc, eps):
     series with promotions (a 20% cut) and weekends 1.2-1.6."""
     m = 2 + kc
     v0 = s0 + M * M + M
-    n = st[o + _pi(0, 0)]
     if n < MIN_FIT_ROWS:
         return False
     if not (s[s0 + 1 * M + 1] > 0.0):
@@ -220,7 +224,7 @@ def fit_identified(st, o, s, s0, kc, eps):
         vq = acc / dq if dq > 0.0 else 0.0
         s[v0 + q] = vq
         vv += vq * vq
-    sxx = st[o + _pi(1, 1)] - st[o + _pi(0, 1)] ** 2 / n
+    sxx = st[o + _pi(1, 1)] - st[o + _pi(0, 1)] ** 2 / st[o + _pi(0, 0)]
     return vv * sxx - 1.0 <= eps * eps * n
 
 
@@ -248,11 +252,13 @@ def fit_partial(st, o, q):
 
 
 @njit(cache=True, inline="always")
-def fit_row(st, at, xj, yj, k, est):
-    """Add one row of a series with controls (``k > 2``) to the fit and return ``log q`` less
-    the effects of controls beyond ``NCF`` (the estimator's current coefficients). Called on
-    every row, the estimator's warm-up included, so that the controls are identified about
-    when the detector could start; a row with a NaN is not added."""
+def fit_row(st, at, xj, yj, k, est, mu):
+    """Add one row of a series with controls (``k > 2``) to the fit and return ``log q`` (the
+    working response under the Poisson model) less the effects of controls beyond ``NCF``
+    (the estimator's current coefficients). ``mu``: the row's working weight, the Poisson
+    model's predicted mean, NaN for the log-log models (weight 1). Called on every row, the
+    estimator's warm-up included, so that the controls are identified about when the detector
+    could start; a row with a NaN is not added."""
     kc = min(k - 2, SG.NCF)
     ys = yj
     for i in range(2 + SG.NCF, k):
@@ -261,31 +267,41 @@ def fit_row(st, at, xj, yj, k, est):
     for i in range(2, 2 + kc):
         if not (xj[i] == xj[i]):
             ok = False
+    wt = 1.0
+    if mu == mu:
+        wt = mu
+        ok = ok and mu > 0.0
     if ok:
-        fit_add(st, at + SG.CFIT0, xj, ys, kc)
+        fit_add(st, at + SG.CFIT0, xj, ys, kc, wt)
     return ys
 
 
 @njit(cache=True, inline="always")
-def fit_response(st, at, xj, yj, k, est, work, w0, seed):
+def fit_response(st, at, xj, yj, k, est, work, w0, mu):
     """``(y*, ready)`` for one row of a series with controls (``k > 2``; split state at
     ``st[at:]``, the estimator's state ``est``, scratch ``work[w0:]`` of :data:`SCRATCH`
-    floats): adds the row to the fit (:func:`fit_row`), solves it and returns ``y* = log q - c' z`` with the
-    fit's ``c`` for the first ``NCF`` controls and the estimator's current coefficient for any
-    further ones; ``ready`` is False (do not feed the detector) until the controls are
-    identified (:func:`fit_identified`, once per series); at that row the detector's window
-    sums start from the earlier rows when ``seed`` (:func:`fit_seed`; not with weighted rows).
+    floats): adds the row to the fit (:func:`fit_row`; weight ``mu``, the Poisson model's
+    predicted mean, or 1 when ``mu`` is NaN), solves it and returns ``y* = log q - c' z`` with
+    the fit's ``c`` for the first ``NCF`` controls and the estimator's current coefficient for
+    any further ones; ``ready`` is False (do not feed the detector) until the controls are
+    identified (:func:`fit_identified`, once per series; ``n`` the fit's rows: ``N_00``
+    unweighted, the estimator's row count ``est[I_N]`` with weights, so that
+    :data:`MIN_FIT_ROWS` and the rule's noise stay those of one typical row); at that row the
+    detector's window sums start from the earlier rows when the rows are unweighted
+    (:func:`fit_seed`; not under the Poisson model).
     Once the controls' sums are on (from identification; a state restored from the layout
     without them turns them on at its next slope alarm), every response sum of the detector is
     re-expressed with the fit's ``c`` now (:func:`~monitor.detectors.split_glr.zs_express`)
     and the row's controls are left in ``ZS_ROW`` for the detector's step."""
     kc = min(k - 2, SG.NCF)
-    ys = fit_row(st, at, xj, yj, k, est)
+    ys = fit_row(st, at, xj, yj, k, est, mu)
     o = at + SG.CFIT0
     fit_solve(st, o, work, w0, kc)
     c0 = w0 + M * M
+    seed = not (mu == mu)
     if st[at + SG.CFIT_ON] == 0.0:
-        if not fit_identified(st, o, work, w0, kc, IDENT_EPS):
+        n = st[o + _pi(0, 0)] if seed else est[K.I_N]
+        if not fit_identified(st, o, work, w0, kc, IDENT_EPS, n):
             return ys, False
         st[at + SG.CFIT_ON] = 1.0
         _zs_start(st, at, work, c0, kc)
