@@ -19,7 +19,8 @@ The detector keeps the normal equations of its own least-squares fit of ``log q`
 the upper triangle of ``N = sum v [w, y][w, y]'`` (``(m + 3)(m + 4) / 2`` floats, 45 for
 ``m = NCF = 6``; the row weight ``v`` is 1 under the log-log models and the predicted mean
 ``mu`` under the Poisson model, below), and uses ``c`` from it: the control coefficients of a
-fit that only sharpens, instead of one that forgets. Changes the detector finds are the fit's regimes:
+fit that only sharpens, instead of one that forgets. Changes the detector finds are the fit's
+regimes:
 
 - after a ``level_shift`` the intercept is partialled out of ``N`` (its Schur complement on
   the intercept, :func:`fit_partial`): the rows before keep their information on ``b`` and
