@@ -17,8 +17,10 @@ detector's control fit being wrong when the controls were first identified (prom
 coefficient 5.1 after 15 rows, truth 0.3: every later row's level was compared with a
 reference 0.75 too low). Since the detector re-expresses all its sums with the fit's current
 coefficients (split_glr, "The controls' sums") that help is gone and the seed raised no alert.
-At 400 rows the shift at row 200 is alerted in 6 of 10 seeds (21-30), 8 of 10 before, with
-1 false level alert over the ten replays without the shift (4 before): see split_controls.
+At 400 rows the shift at row 200 is alerted in 8 of 10 seeds (21-30) since the control fit
+is weighted by the predicted mean (7 unweighted; 8 with each row's own coefficients), with no
+false level alert over the ten replays without the shift (1 unweighted, 4 with each row's own
+coefficients): see split_controls.
 """
 
 from __future__ import annotations

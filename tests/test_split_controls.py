@@ -35,7 +35,7 @@ def _rows(rng, n, kc=3, b=-1.0, a=2.0, c=(0.3, -0.2, 0.5)):
 def _feed(st, x, z, y):
     kc = z.shape[1]
     for i in range(len(x)):
-        SC.fit_add(st, SG.CFIT0, np.r_[1.0, x[i], z[i]], y[i], kc)
+        SC.fit_add(st, SG.CFIT0, np.r_[1.0, x[i], z[i]], y[i], kc, 1.0)
 
 
 def _coef(st, kc):
@@ -99,14 +99,15 @@ def test_identified_is_the_price_variance_inflation_rule():
         vif = variance_inflation_factor(W[:n], 1)
         for eps in (0.1, 0.3):
             want = bool(vif - 1.0 <= eps * eps * n) and n >= SC.MIN_FIT_ROWS
-            assert SC.fit_identified(st, SG.CFIT0, work, 0, 2, eps) == want, (n, eps, vif)
+            got = SC.fit_identified(st, SG.CFIT0, work, 0, 2, eps, st[SG.CFIT0])
+            assert got == want, (n, eps, vif)
     # log price that is 0.2 x a 30% flag plus noise of sd 0.1 has VIF_x about 1.1: identified
     # by 2,000 rows at the default, not by 12
-    assert SC.fit_identified(st, SG.CFIT0, work, 0, 2, SC.IDENT_EPS)
+    assert SC.fit_identified(st, SG.CFIT0, work, 0, 2, SC.IDENT_EPS, st[SG.CFIT0])
     st = np.zeros(SG.SPLIT_SIZE)
     _feed(st, x[:12], z[:12], y[:12])
     _, work = _coef(st, 2)
-    assert not SC.fit_identified(st, SG.CFIT0, work, 0, 2, 0.01)
+    assert not SC.fit_identified(st, SG.CFIT0, work, 0, 2, 0.01, st[SG.CFIT0])
 
 
 def test_a_control_the_others_determine_is_not_identified():
@@ -121,11 +122,11 @@ def test_a_control_the_others_determine_is_not_identified():
     st = np.zeros(SG.SPLIT_SIZE)
     _feed(st, x, z, y)
     _, work = _coef(st, 2)
-    assert not SC.fit_identified(st, SG.CFIT0, work, 0, 2, SC.IDENT_EPS)
+    assert not SC.fit_identified(st, SG.CFIT0, work, 0, 2, SC.IDENT_EPS, st[SG.CFIT0])
     st = np.zeros(SG.SPLIT_SIZE)
     _feed(st, x, z[:, :1], y)
     _, work = _coef(st, 1)
-    assert SC.fit_identified(st, SG.CFIT0, work, 0, 1, SC.IDENT_EPS)
+    assert SC.fit_identified(st, SG.CFIT0, work, 0, 1, SC.IDENT_EPS, st[SG.CFIT0])
 
 
 def _run_with_controls():
@@ -181,7 +182,7 @@ def test_at_identification_the_earlier_rows_seed_the_window_sums():
     est = np.zeros(64)
     for j in range(len(x)):
         xj = np.r_[1.0, x[j], z[j]]
-        _, ready = SC.fit_response(st, 0, xj, y[j], 4, est, work, 0, True)
+        _, ready = SC.fit_response(st, 0, xj, y[j], 4, est, work, 0, np.nan)
         if ready:
             break
     assert SC.MIN_FIT_ROWS - 1 <= j < len(x) - 1
@@ -191,3 +192,79 @@ def test_at_identification_the_earlier_rows_seed_the_window_sums():
     xc = x[:j] - x[j]                             # the detector's origin: the current price
     want = [j, xc.sum(), (xc * xc).sum(), ys.sum(), (xc * ys).sum()]
     np.testing.assert_allclose(st[SG.C0:SG.C0 + 5], want, rtol=1e-9, atol=1e-9)
+
+
+def _poisson_run(seed, n=400):
+    """One invented kiosk series of counts (mean about 1, zeros common) with a 25% promotion
+    flag drawn apart from the price and an exposure, through the Poisson pipeline; no change."""
+    from monitor.estimators import ElasticityPoisson
+
+    rng = np.random.default_rng(seed)
+    x = rng.normal(0.0, 0.3, n)
+    z = (rng.random(n) < 0.25).astype(float)
+    off = np.log(rng.choice([4.0, 6.0, 8.0, 12.0], n) / 8.0)
+    q = rng.poisson(np.exp(-0.2 - 1.5 * x + 0.3 * z + off)).astype(float)
+    X = np.column_stack([np.ones(n), x, z])
+    pipe = Pipeline(ElasticityPoisson(forgetting=0.995, controls=["promo"]))
+    res = pipe.run(np.zeros(n, np.int64), X, q, 1, offset=off)
+    return pipe, X, q, res
+
+
+def test_under_the_poisson_model_the_fit_is_weighted_least_squares_with_weights_mu():
+    # reference: statsmodels WLS (weights mu, the estimator's predicted mean of each row) of
+    # the working responses x' theta + (q - mu) / mu on (1, log p, promo), every row of the
+    # series, the estimator's warm-up included (the IRLS weights: McCullagh & Nelder 1989,
+    # sec. 2.5). The unweighted fit of the same rows (main before 5 December, 08:00) misses
+    # it by far more than the tolerance.
+    pipe, X, q, res = _poisson_run(11)
+    assert len(_opens_of(res)) == 0                   # no alarm: no regime was partialled out
+    mu = q - res.out[:, K.O_E]
+    z = res.out[:, K.O_YLOG]
+    assert np.all(mu > 0.0) and np.all(np.isfinite(z))
+    st = res.states[0]
+    at = int(pipe._layout[L_SPLIT])
+    got, _ = _coef(st[at:], 1)
+    wls = sm.WLS(z, X, weights=mu).fit().params
+    np.testing.assert_allclose(got[:3], wls, rtol=1e-8, atol=1e-10)
+    ols = sm.OLS(z, X).fit().params
+    assert abs(ols[2] - wls[2]) > 1e-3
+    # N_00 is the sum of the weights, not the row count
+    np.testing.assert_allclose(st[at + SG.CFIT0], mu.sum(), rtol=1e-12)
+
+
+def _first_identified(x, z, w):
+    """Index of the first row at which ``VIF_x - 1 <= IDENT_EPS^2 n`` (n: rows) with the
+    VIF of log price in a least-squares fit weighted by ``w`` (statsmodels WLS: the weighted
+    residual sum of squares of log price on the intercept over that on the intercept and the
+    flag), from ``MIN_FIT_ROWS`` rows on."""
+    for j in range(int(SC.MIN_FIT_ROWS) - 1, len(x)):
+        s = slice(0, j + 1)
+        one = np.ones(j + 1)
+        sxx = sm.WLS(x[s], one, weights=w[s]).fit().ssr
+        rss = sm.WLS(x[s], np.column_stack([one, z[s]]), weights=w[s]).fit().ssr
+        if sxx / rss - 1.0 <= SC.IDENT_EPS ** 2 * (j + 1):
+            return j
+    return None
+
+
+def test_under_the_poisson_model_identification_is_the_weighted_vif_over_rows():
+    # with weights the rule's VIF is the weighted fit's and its n the estimator's row count
+    # (not sum mu: MIN_FIT_ROWS and the noise the rule is in units of stay one row's). The
+    # detector is fed from the first row at which the weighted rule holds (statsmodels WLS);
+    # the unweighted rule (main before 5 December, 08:00) holds at another row in this seed
+    pipe, X, q, res = _poisson_run(17)
+    mu = q - res.out[:, K.O_E]
+    st = res.states[0]
+    at = int(pipe._layout[L_SPLIT])
+    assert st[at + SG.CFIT_ON] == 1.0
+    want = _first_identified(X[:, 1], X[:, 2], mu)
+    assert want is not None
+    assert len(q) - st[at + SG.D_NF] == want          # rows before the first one fed
+    assert _first_identified(X[:, 1], X[:, 2], np.ones(len(q))) != want
+
+
+def _opens_of(res):
+    ev = res.events
+    if ev is None or len(ev) == 0:
+        return []
+    return ev[(ev["action"] == "open") & ev["kind"].isin(["elasticity_change", "level_shift"])]

@@ -38,7 +38,7 @@ def _feed(st, x, z, y, p, first, last, work):
     fed = []
     for j in range(first, last):
         xj = np.r_[1.0, x[j], z[j]]
-        ys, ready = SC.fit_response(st, 0, xj, y[j], 4, est, work, 0, True)
+        ys, ready = SC.fit_response(st, 0, xj, y[j], 4, est, work, 0, np.nan)
         if ready:
             SG.split_step(st, 0, x[j], ys, 0.05 * ((j * 7919) % 13 - 6) / 6, float(j),
                           float(j), p)

@@ -135,12 +135,12 @@ class SplitGLR:
         if est.n_eff < max(est.min_n_eff, k + 2.0) or not math.isfinite(est.residual_sd):
             if row is not None and k > 2:     # warm-up rows enter only the control fit
                 SC.fit_row(self._state, 0, np.asarray(row, dtype=np.float64), float(log_q), k,
-                           st)
+                           st, np.nan)
             return self
         y = float(log_q)
         if row is not None and k > 2:
             r = np.asarray(row, dtype=np.float64)
-            y, ready = SC.fit_response(self._state, 0, r, y, k, st, self._work, 0, True)
+            y, ready = SC.fit_response(self._state, 0, r, y, k, st, self._work, 0, np.nan)
             if not ready:
                 return self
         f = S.split_step(self._state, 0, float(log_price), y, float(st[K.I_E]),

@@ -16,9 +16,11 @@ What
 ----
 The detector keeps the normal equations of its own least-squares fit of ``log q`` on
 ``w = (1, log p, z_1 .. z_m)`` (forgetting 1: every row since the series started), packed as
-the upper triangle of ``N = sum [w, y][w, y]'`` (``(m + 3)(m + 4) / 2`` floats, 45 for
-``m = NCF = 6``), and uses ``c`` from it: the control coefficients of a fit that only
-sharpens, instead of one that forgets. Changes the detector finds are the fit's regimes:
+the upper triangle of ``N = sum v [w, y][w, y]'`` (``(m + 3)(m + 4) / 2`` floats, 45 for
+``m = NCF = 6``; the row weight ``v`` is 1 under the log-log models and the predicted mean
+``mu`` under the Poisson model, below), and uses ``c`` from it: the control coefficients of a
+fit that only sharpens, instead of one that forgets. Changes the detector finds are the fit's
+regimes:
 
 - after a ``level_shift`` the intercept is partialled out of ``N`` (its Schur complement on
   the intercept, :func:`fit_partial`): the rows before keep their information on ``b`` and
@@ -59,16 +61,27 @@ change holds the whole history, as for a series without controls.
 A control first seen after the start (cooling degrees from May, rare event hours) enters the
 fit then; its coefficient sharpens as the fit's others did.
 
-Under the Poisson model the fit is of the working responses ``x' theta + (q - mu) / mu``,
-unweighted, so rows with small means (variance ``1 / mu``) dominate it and ``c`` is poorly
-determined early: on the count log of tests/test_dask_poisson.py (mean counts 0.3-3, a
-promotion flag on 25% of rows, true coefficient 0.3) the fit gave 5.1 at identification after
-15 rows and 0.9-2.8 after 40-140. With every sum re-expressed at the current ``c`` that error
-no longer stays in the reference: over ten 400-row replays (seeds 21-30, 6 series, a x2.5
-level shift at row 200 in one) the shift is alerted in 6 (8 with each row's own ``c``) and
-the replays without the shift raise 1 false level alert (4); at 150 rows either way it is
-found in about 1 seed of 5. A fit weighted by ``mu`` (the IRLS weights) would determine ``c``
-better; not done (noted in issue 12).
+Under the Poisson model the fit is of the working responses ``x' theta + (q - mu) / mu``
+(variance about ``phi / mu``) with the working weights ``v = mu``, the estimator's predicted
+mean of the row, as the detector's own sums (split_glr, "Working weights"): weighted least
+squares of the working responses, the iteratively reweighted least squares of the Poisson
+regression (McCullagh & Nelder 1989, sec. 2.5) with each row linearized at the estimator's
+coefficients when it came. The warm-up's rows enter with the warming estimator's ``mu`` (a
+fit without them was no better: rms error of the promotion coefficient 1.58 against 1.00 at
+40 rows, 0.42 against 0.38 at 100, below). The identification rule then takes the weighted
+``VIF_x`` and ``n`` the rows (the estimator's row count, not ``sum mu``), so that
+:data:`MIN_FIT_ROWS` stays a count of rows and the rule's noise that of one row; the
+partialling after alarms is the weighted within estimator; the detector's sums are not seeded
+from the fit at identification (:func:`fit_seed`, log-log only). Unweighted, rows with small
+means dominated the fit: on the count log of tests/test_dask_poisson.py (mean counts 0.3-3, a
+promotion flag on 25% of rows, true coefficient 0.3; 50 series, seeds 21-30, no shift) the
+promotion coefficient's rms error was 2.97 / 1.31 / 0.67 / 0.36 after 40 / 100 / 200 / 400
+rows (worst 14.5 / 5.3 / 2.6 / 1.3) unweighted and 1.00 / 0.38 / 0.21 / 0.14 (worst 3.5 /
+1.2 / 0.6 / 0.3) weighted. Over ten 400-row replays of that log (seeds 21-30, 6 series, a
+x2.5 level shift at row 200 in one) the shift is alerted in 8 (7 unweighted) with 1 level
+alert on another series (2), and the replays without the shift raise no false alert (1). At
+these counts the coefficient is poorly determined for a long time either way (its sd is
+about ``1 / sqrt(n mu p (1 - p))``: 0.35 after 100 rows at a mean of 0.5).
 
 The solve uses a Cholesky factorization in a scratch vector (no allocation in the compiled
 loop); a column that is zero so far or linearly dependent on earlier ones (pivot below
@@ -122,13 +135,16 @@ def _w(i, xj, y, kc):
 
 
 @njit(cache=True, inline="always")
-def fit_add(st, o, xj, y, kc):
+def fit_add(st, o, xj, y, kc, wt):
     """Add one row (``xj``: the design row, ``xj[1]`` log price, ``xj[2:2 + kc]`` the first
-    ``kc`` controls; ``y``: log q less any further controls' effects) to ``N`` at ``st[o:]``."""
+    ``kc`` controls; ``y``: log q less any further controls' effects) with weight ``wt`` to
+    ``N`` at ``st[o:]`` (``N += wt [w, y][w, y]'``; with ``wt = 1`` exactly the unweighted
+    sums)."""
     for i in range(MP):
         wi = _w(i, xj, y, kc)
         if wi == 0.0:
             continue
+        wi = wt * wi
         for j in range(i, MP):
             wj = _w(j, xj, y, kc)
             if wj != 0.0:
@@ -178,10 +194,12 @@ def fit_solve(st, o, s, s0, kc):
 
 
 @njit(cache=True, inline="always")
-def fit_identified(st, o, s, s0, kc, eps):
+def fit_identified(st, o, s, s0, kc, eps, n):
     """True when ``n >= MIN_FIT_ROWS`` and the price's variance inflation by the controls is
     small for this many rows: ``VIF_x - 1 <= eps^2 n`` with ``VIF_x = N^-1_11 Sxx`` (``Sxx =
-    N_11 - N_01^2 / N_00`` the centred sum of squares of log price, ``n = N_00``). Uses the
+    N_11 - N_01^2 / N_00`` the centred sum of squares of log price) and ``n`` the rows in the
+    fit (``N_00`` for unweighted rows; with working weights the estimator's row count, see
+    :func:`fit_response`). Uses the
     factor :func:`fit_solve` left in ``s[s0:]`` and ``s[s0 + M * M + M:]`` as work space. A log
     price that is constant, or a control seen so far that is dependent on the intercept, log
     price and the controls before it (zero pivot), is not identified: the factor would
@@ -202,7 +220,6 @@ def fit_identified(st, o, s, s0, kc, eps):
     series with promotions (a 20% cut) and weekends 1.2-1.6."""
     m = 2 + kc
     v0 = s0 + M * M + M
-    n = st[o + _pi(0, 0)]
     if n < MIN_FIT_ROWS:
         return False
     if not (s[s0 + 1 * M + 1] > 0.0):
@@ -220,7 +237,7 @@ def fit_identified(st, o, s, s0, kc, eps):
         vq = acc / dq if dq > 0.0 else 0.0
         s[v0 + q] = vq
         vv += vq * vq
-    sxx = st[o + _pi(1, 1)] - st[o + _pi(0, 1)] ** 2 / n
+    sxx = st[o + _pi(1, 1)] - st[o + _pi(0, 1)] ** 2 / st[o + _pi(0, 0)]
     return vv * sxx - 1.0 <= eps * eps * n
 
 
@@ -248,11 +265,13 @@ def fit_partial(st, o, q):
 
 
 @njit(cache=True, inline="always")
-def fit_row(st, at, xj, yj, k, est):
-    """Add one row of a series with controls (``k > 2``) to the fit and return ``log q`` less
-    the effects of controls beyond ``NCF`` (the estimator's current coefficients). Called on
-    every row, the estimator's warm-up included, so that the controls are identified about
-    when the detector could start; a row with a NaN is not added."""
+def fit_row(st, at, xj, yj, k, est, mu):
+    """Add one row of a series with controls (``k > 2``) to the fit and return ``log q`` (the
+    working response under the Poisson model) less the effects of controls beyond ``NCF``
+    (the estimator's current coefficients). ``mu``: the row's working weight, the Poisson
+    model's predicted mean, NaN for the log-log models (weight 1). Called on every row, the
+    estimator's warm-up included, so that the controls are identified about when the detector
+    could start; a row with a NaN is not added."""
     kc = min(k - 2, SG.NCF)
     ys = yj
     for i in range(2 + SG.NCF, k):
@@ -261,31 +280,41 @@ def fit_row(st, at, xj, yj, k, est):
     for i in range(2, 2 + kc):
         if not (xj[i] == xj[i]):
             ok = False
+    wt = 1.0
+    if mu == mu:
+        wt = mu
+        ok = ok and mu > 0.0
     if ok:
-        fit_add(st, at + SG.CFIT0, xj, ys, kc)
+        fit_add(st, at + SG.CFIT0, xj, ys, kc, wt)
     return ys
 
 
 @njit(cache=True, inline="always")
-def fit_response(st, at, xj, yj, k, est, work, w0, seed):
+def fit_response(st, at, xj, yj, k, est, work, w0, mu):
     """``(y*, ready)`` for one row of a series with controls (``k > 2``; split state at
     ``st[at:]``, the estimator's state ``est``, scratch ``work[w0:]`` of :data:`SCRATCH`
-    floats): adds the row to the fit (:func:`fit_row`), solves it and returns ``y* = log q - c' z`` with the
-    fit's ``c`` for the first ``NCF`` controls and the estimator's current coefficient for any
-    further ones; ``ready`` is False (do not feed the detector) until the controls are
-    identified (:func:`fit_identified`, once per series); at that row the detector's window
-    sums start from the earlier rows when ``seed`` (:func:`fit_seed`; not with weighted rows).
+    floats): adds the row to the fit (:func:`fit_row`; weight ``mu``, the Poisson model's
+    predicted mean, or 1 when ``mu`` is NaN), solves it and returns ``y* = log q - c' z`` with
+    the fit's ``c`` for the first ``NCF`` controls and the estimator's current coefficient for
+    any further ones; ``ready`` is False (do not feed the detector) until the controls are
+    identified (:func:`fit_identified`, once per series; ``n`` the fit's rows: ``N_00``
+    unweighted, the estimator's row count ``est[I_N]`` with weights, so that
+    :data:`MIN_FIT_ROWS` and the rule's noise stay those of one typical row); at that row the
+    detector's window sums start from the earlier rows when the rows are unweighted
+    (:func:`fit_seed`; not under the Poisson model).
     Once the controls' sums are on (from identification; a state restored from the layout
     without them turns them on at its next slope alarm), every response sum of the detector is
     re-expressed with the fit's ``c`` now (:func:`~monitor.detectors.split_glr.zs_express`)
     and the row's controls are left in ``ZS_ROW`` for the detector's step."""
     kc = min(k - 2, SG.NCF)
-    ys = fit_row(st, at, xj, yj, k, est)
+    ys = fit_row(st, at, xj, yj, k, est, mu)
     o = at + SG.CFIT0
     fit_solve(st, o, work, w0, kc)
     c0 = w0 + M * M
+    seed = not (mu == mu)
     if st[at + SG.CFIT_ON] == 0.0:
-        if not fit_identified(st, o, work, w0, kc, IDENT_EPS):
+        n = st[o + _pi(0, 0)] if seed else est[K.I_N]
+        if not fit_identified(st, o, work, w0, kc, IDENT_EPS, n):
             return ys, False
         st[at + SG.CFIT_ON] = 1.0
         _zs_start(st, at, work, c0, kc)

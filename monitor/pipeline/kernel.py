@@ -203,7 +203,7 @@ def _detect_split(split, st, lay, xj, yj, k, o, n, t, b, lo, hi, sd, inf, warm, 
     if not warm:
         fl, fs = split_row(st, lay[L_SPLIT], xj, yj, k, o[K.O_E], n, t, gp, mu, work)
     elif k > 2:
-        split_warm(st, lay[L_SPLIT], xj, yj, k)
+        split_warm(st, lay[L_SPLIT], xj, yj, k, mu)
     return np.nan, fl, fs
 
 

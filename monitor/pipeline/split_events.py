@@ -75,12 +75,12 @@ def split_row(st, at, xj, yj, k, e, n, t, gp, mu, work):
     the log-scale innovation) and the working response ``x' theta + (q - mu) / mu`` under the
     Poisson model (``mu`` the predicted mean, ``e = q - mu``): the row then enters with the
     working weight ``w = mu`` and the scale sees the Pearson residual ``(q - mu) / sqrt(mu)``
-    (:func:`monitor.detectors.split_glr.split_step_w`, "Working weights"). The control fit is
-    unweighted, and under the Poisson model the detector's sums are not seeded from it at
-    identification (they are weighted)."""
+    (:func:`monitor.detectors.split_glr.split_step_w`, "Working weights"). The control fit
+    weights its rows alike (``mu``, 1 under log-log); under the Poisson model the detector's
+    sums are not seeded from it at identification."""
     ys = yj
     if k > 2:
-        ys, ready = SC.fit_response(st, at, xj, yj, k, st, work, W0, not (mu == mu))
+        ys, ready = SC.fit_response(st, at, xj, yj, k, st, work, W0, mu)
         if not ready:
             return 0, 0
     w = 1.0
@@ -94,11 +94,12 @@ def split_row(st, at, xj, yj, k, e, n, t, gp, mu, work):
 
 
 @njit(cache=True, inline="always")
-def split_warm(st, at, xj, yj, k):
+def split_warm(st, at, xj, yj, k, mu):
     """A row of a series with controls (``k > 2``) while the estimator warms up: it enters
-    only the detector's control fit (:func:`~monitor.detectors.split_controls.fit_row`), so
+    only the detector's control fit (:func:`~monitor.detectors.split_controls.fit_row`; weight
+    ``mu``, the Poisson model's predicted mean from the warming estimator, 1 when NaN), so
     the controls can be identified by the time the detector may start."""
-    SC.fit_row(st, at, xj, yj, k, st)
+    SC.fit_row(st, at, xj, yj, k, st, mu)
 
 
 @njit(cache=True, inline="always")
