@@ -23,7 +23,7 @@ from monitor.store.rows import (ESTIMATE_COLUMNS, OBSERVATION_COLUMNS, as_frame,
                                 estimate_rows, newest_per_series, observation_rows,
                                 offset_statements, reject_rows, series_counts, series_time_order,
                                 settings_sql, SeriesTimeOrder)
-from monitor.store.schema import SPARK_KEEP
+from monitor.store.schema import SPARK_KEEP, spark_text
 
 
 UPSERT_SPARK = ("INSERT INTO sparklines (series, n, ts, beta) VALUES (?, ?, ?, ?) ON CONFLICT "
@@ -63,30 +63,28 @@ def _spark_updates(store: Store, est_df: pd.DataFrame, est_rows: list[tuple],
     for name, a, b in zip(names, starts.tolist(), ends.tolist()):
         new_ts, new_beta = ts_all[a:b], beta_all[a:b]
         old = cached.get(name)
-        if old is None:
-            out.append((name, b - a, ",".join(new_ts), ",".join(new_beta)))
-            continue
-        old_n, old_ts, old_beta = old
-        if 0 < old_n <= SPARK_KEEP and old_ts[old_ts.rfind(",") + 1:] < new_ts[0]:
+        if old is not None and 0 < old[0] <= SPARK_KEEP and \
+                old[1][old[1].rfind(",") + 1:] < new_ts[0]:
             # the batch comes after the cached points: keep the last ``room`` of them (the
             # text after the first ``old_n - room`` commas; ``n`` counts the cached points, as
             # monitor.store.live.spark_add relies on too)
+            old_n, old_ts, old_beta = old
             room = min(SPARK_KEEP - (b - a), old_n)
-            if room <= 0:
-                out.append((name, b - a, ",".join(new_ts), ",".join(new_beta)))
+            if room > 0:
+                if room < old_n:
+                    drop = old_n - room
+                    old_ts = old_ts.split(",", drop)[drop]
+                    old_beta = old_beta.split(",", drop)[drop]
+                out.append((name, room + b - a, old_ts + "," + ",".join(new_ts),
+                            old_beta + "," + ",".join(new_beta)))
                 continue
-            if room < old_n:
-                drop = old_n - room
-                old_ts = old_ts.split(",", drop)[drop]
-                old_beta = old_beta.split(",", drop)[drop]
-            out.append((name, room + b - a, old_ts + "," + ",".join(new_ts),
-                        old_beta + "," + ",".join(new_beta)))
+            old = None                     # the batch alone fills the cache
+        if old is None:
+            out.append((name, b - a, ",".join(new_ts), ",".join(new_beta)))
             continue
-        pairs = sorted(list(zip(old_ts.split(","), old_beta.split(","))) +
+        pairs = sorted(list(zip(old[1].split(","), old[2].split(","))) +
                        list(zip(new_ts, new_beta)))
-        new_ts, new_beta = [p[0] for p in pairs], [p[1] for p in pairs]
-        new_ts, new_beta = new_ts[-SPARK_KEEP:], new_beta[-SPARK_KEEP:]
-        out.append((name, len(new_ts), ",".join(new_ts), ",".join(new_beta)))
+        out.append((name, *spark_text(pairs[-SPARK_KEEP:])))
     return out
 
 

@@ -387,12 +387,10 @@ def spark_add(row: tuple | None, ts: str, beta: str) -> tuple[int, str, str]:
     """
     if row is not None and 0 < row[0] <= SPARK_KEEP and row[1].rpartition(",")[2] < ts:
         n, ts_text, beta_text_ = row
-        if n == SPARK_KEEP:                      # cut the oldest point
+        if n == SPARK_KEEP:                      # cut the oldest point (SPARK_KEEP >= 2)
             ts_text = ts_text.partition(",")[2]
             beta_text_ = beta_text_.partition(",")[2]
             n -= 1
-        if n == 0:
-            return 1, ts, beta
         return n + 1, f"{ts_text},{ts}", f"{beta_text_},{beta}"
     pairs = list(zip(row[1].split(","), row[2].split(","))) if row else []
     new = (ts, beta)
