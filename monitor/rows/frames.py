@@ -95,7 +95,7 @@ def alerts_frame(result, good: pd.DataFrame, names: list[str]) -> pd.DataFrame:
     rows = ev["row"].to_numpy()
     change = _change_columns(ev)
     return pd.DataFrame({**change,
-        "series": good["series"].to_numpy()[rows],
+        "series": good["series"].iloc[rows].to_numpy(),       # no object copy of the column
         "ts": format_ts(good["ts"].to_numpy()[rows]), "rule": ev["kind"].to_numpy(),
         "beta": ev["beta"].to_numpy(), "beta_lo": ev["beta_lo"].to_numpy(),
         "beta_hi": ev["beta_hi"].to_numpy(), "message": ev["message"].to_numpy(),

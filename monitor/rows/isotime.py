@@ -148,7 +148,7 @@ def parse_plain_iso(arr, year_lo: int, year_hi: int) -> tuple[np.ndarray, np.nda
     data = np.frombuffer(bufs[2], np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
     valid = (np.ones(n, bool) if arr.null_count == 0
              else np.asarray(arr.is_valid().to_numpy(zero_copy_only=False), dtype=bool))
-    _read_plain(offsets.astype(np.int64), data, valid, int(year_lo), int(year_hi), out, ok)
+    _read_plain(np.asarray(offsets, np.int64), data, valid, int(year_lo), int(year_hi), out, ok)
     return out, ok
 
 

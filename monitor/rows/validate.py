@@ -196,7 +196,7 @@ def plain_text(arr) -> bool:
     offsets = np.frombuffer(bufs[1], np.int64 if wide else np.int32)[arr.offset:arr.offset + n + 1]
     data = np.frombuffer(bufs[2], np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
     out = np.empty(n, bool)
-    _edges_plain(offsets.astype(np.int64), data, np.ones(n, bool), out)
+    _edges_plain(np.asarray(offsets, np.int64), data, np.ones(n, bool), out)
     return bool(out.all())
 
 
@@ -731,11 +731,17 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         lp = np.log(values["price"][order])
         with np.errstate(divide="ignore"):
             lq = np.log(values["quantity"][order])          # a zero kept as data: -inf
-        grouped = pd.Series(lp).groupby(sid_all[order])
         batch_median = np.full(gate.last_ts.size, np.nan)
         if order_by == "time":
-            med = grouped.median().where(grouped.size() >= MIN_BATCH)
-            batch_median[med.index.to_numpy()] = med.to_numpy(dtype=np.float64)
+            # the walk reads a series' batch median only while the series has fewer than
+            # MIN_HISTORY accepted prices, and that count only grows: the medians of series
+            # that start the batch with that many are never read and are not computed
+            s_ord = sid_all[order]
+            young = gate.count[s_ord] < MIN_HISTORY
+            if young.any():
+                grouped = pd.Series(lp[young]).groupby(s_ord[young])
+                med = grouped.median().where(grouped.size() >= MIN_BATCH)
+                batch_median[med.index.to_numpy()] = med.to_numpy(dtype=np.float64)
         ordered_checks(sid_all[order], ts[order], lp, gate.last_ts,
                         gate.ring, gate.ring_ts, gate.count, np.int64(settings.allowed_lateness_s * 1e9),
                         math.log(settings.unit_ratio), settings.duplicate_policy == "reject_all", code,
@@ -754,9 +760,9 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         good_series = series.iloc[good_idx].astype("str").reset_index(drop=True)   # same values
     else:
         good_series = series.to_numpy(dtype=object)[good_idx].astype(str)
-    good = pd.DataFrame({"row": rows[good_idx], "series": good_series, "ts": ts[good_idx]})
-    for c, v in values.items():
-        good[c] = v[good_idx]
+    # one frame of fresh arrays, not copied again into consolidated blocks
+    good = pd.DataFrame({"row": rows[good_idx], "series": good_series, "ts": ts[good_idx],
+                         **{c: v[good_idx] for c, v in values.items()}}, copy=False)
     bad = np.flatnonzero(flagged)
     rejects = _reject_frame(frame, rows, bad, bad_field, reason)
     zi = np.flatnonzero(zero)
