@@ -663,6 +663,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     flagged = np.zeros(n, dtype=bool)          # reason is set (cheaper than reason == None)
 
     def flag(mask, fld, text):
+        if not mask.any():        # the usual case on clean data: no pass over the row arrays
+            return
         m = mask & ~flagged
         reason[m] = text
         bad_field[m] = fld
@@ -675,7 +677,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     ts, ts_why = read_timestamps(frame["ts"], settings.ts_format)
     nat = np.iinfo(np.int64).min
     flag(_is_blank(frame["ts"]), "ts", "empty field")
-    for text in pd.unique(ts_why[ts_why != None]):    # noqa: E711 (object array)
+    failed = ts_why[ts == nat]           # a reason is only ever given where the time failed
+    for text in pd.unique(failed[failed != None]):    # noqa: E711 (object array)
         flag(ts_why == text, "ts", text)
     flag(ts == nat, "ts", TS_UNPARSABLE_RULE)
     if now_ns is not None:
@@ -722,7 +725,9 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     if idx.size:
         # a text column (arrow-backed) is factorized by arrow without making Python strings
         arrow_text = pd.api.types.is_string_dtype(series) and series.dtype != object
-        sid_all[idx] = gate.ids(series.iloc[idx] if arrow_text else series.to_numpy(dtype=object)[idx])
+        every = idx.size == n                # no row flagged so far: no take of the column
+        sid_all[idx] = gate.ids((series if every else series.iloc[idx]) if arrow_text
+                                else series.to_numpy(dtype=object)[idx])
         if order_by == "time":
             order = idx[np.lexsort((idx, ts[idx], sid_all[idx]))]
         else:
