@@ -142,10 +142,13 @@ def test_plain_text_skip_same_good_rows_and_rejects(monkeypatch, dirty):
                                       _old(monkeypatch, V._is_blank, frame[c]))
     now = pd.Timestamp("2025-01-01T00:00:00Z").value
     for order in ("time", "arrival"):
-        new = validate_frame(frame, now_ns=now, order_by=order)
+        gate = V.SeriesGate()
+        new = validate_frame(frame, now_ns=now, order_by=order, gate=gate)
         old = _old(monkeypatch, validate_frame, frame, now_ns=now, order_by=order)
         pd.testing.assert_frame_equal(new.good, old.good)
         pd.testing.assert_frame_equal(new.rejects, old.rejects)
+        # the good rows' gate ids handed on to the replay kernel are the gate's own
+        np.testing.assert_array_equal(new.sid, gate.ids(new.good["series"]))
         assert len(new.good) > 1500 and len(new.rejects) > (30 if dirty else 0)
 
 

@@ -150,7 +150,9 @@ def validate_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row
                    rows=rows, row_offset=row_offset, line_rejects=line_rejects,
                    order=order_of(setup.vset, "time"))
     if len(v.good):
-        sid = carried.gate.ids(v.good["series"])      # arrow-backed text: no Python strings
+        # the ids the ordered checks gave the good rows; else from the gate (arrow-backed text:
+        # no Python strings)
+        sid = v.sid if v.sid is not None else carried.gate.ids(v.good["series"])
     else:
         sid = np.zeros(0, np.int64)
     return v, sid

@@ -165,6 +165,9 @@ class Validated:
     good: pd.DataFrame
     rejects: pd.DataFrame
     zero_skipped: pd.DataFrame = field(default_factory=pd.DataFrame)
+    #: the gate's series id of each good row (``gate.ids(good["series"])``, known to the
+    #: ordered checks; None where it was not computed)
+    sid: np.ndarray | None = None
 
 
 REJECT_COLUMNS = ["row", "series", "ts", "field", "value", "reason", "raw"]
@@ -773,7 +776,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     zi = np.flatnonzero(zero)
     zero_frame = pd.DataFrame({"row": rows[zi], "series": series.iloc[zi].to_numpy(dtype=object),
                                "ts": ts[zi]})
-    return Validated(good=good.reset_index(drop=True), rejects=rejects, zero_skipped=zero_frame)
+    return Validated(good=good.reset_index(drop=True), rejects=rejects, zero_skipped=zero_frame,
+                     sid=sid_all[good_idx])
 
 
 def _inf_words(col: pd.Series) -> np.ndarray:
@@ -862,4 +866,4 @@ def renumber(v: Validated, rows: np.ndarray) -> Validated:
     else:
         zero = zero.assign(local=np.zeros(0, dtype=np.int64)) if len(zero.columns) else \
             pd.DataFrame({"row": [], "series": [], "ts": [], "local": []})
-    return Validated(good=good, rejects=rej, zero_skipped=zero)
+    return Validated(good=good, rejects=rej, zero_skipped=zero, sid=v.sid)
