@@ -109,6 +109,26 @@ def test_plain_iso_reads_sliced_and_chunked_arrays():
     assert ns[0] == pd.Timestamp("2024-03-01T05:00:00Z").value
 
 
+def test_iso_utc_text_equals_format_ts():
+    """The compiled writer (the day's text kept while rows stay in one day) against
+    format_ts (pandas' strftime): hourly runs crossing days, months, leap days and years
+    (before 1970 too), random whole seconds over the int64 range, and the same days
+    revisited out of order; with one sub-second time the whole array takes format_ts."""
+    from monitor.rows.isotime import format_ts, iso_utc
+
+    rng = np.random.default_rng(2027)
+    starts = [pd.Timestamp(t).value for t in ("1969-12-31T20:00:00", "2000-02-28T18:00:00",
+                                              "1900-02-28T20:00:00", "2023-12-31T21:00:00",
+                                              "1678-01-01T00:00:00", "2261-12-30T00:00:00")]
+    runs = [t0 + np.arange(60, dtype=np.int64) * 3_600 * 10**9 for t0 in starts]
+    lo, hi = pd.Timestamp("1678-01-01").value // 10**9, pd.Timestamp("2261-12-31").value // 10**9
+    rand = rng.integers(lo, hi, 5000) * 10**9
+    ns = np.concatenate(runs + [rand, rng.permutation(np.concatenate(runs))])
+    assert iso_utc(ns).to_pylist() == format_ts(ns).tolist()
+    odd = np.r_[ns[:50], ns[50] + 1]
+    assert iso_utc(odd).to_pylist() == format_ts(odd).tolist()
+
+
 #: edges the plain-text skip must send to the general path
 EDGES = ["", " ", "\t", "\x1c", "\x1f", "\x85", "\xa0", "\u2003", "\u3000", "\ufeff", "\x00",
          "\x7f", "é", "\r"]

@@ -40,35 +40,41 @@ _LO, _HI = -62_167_219_200, 253_402_300_799      # 0000-01-01T00:00:00Z .. 9999-
 
 @njit(cache=True)
 def _write(ns, buf):  # pragma: no cover - compiled
+    date = np.empty(10, np.uint8)          # the text of the day last written
+    last_days = np.iinfo(np.int64).min
     for i in range(ns.shape[0]):
         s = ns[i] // NS
         days = s // 86400
         sod = s - days * 86400
-        z = days + 719468
-        era = (z if z >= 0 else z - 146096) // 146097
-        doe = z - era * 146097
-        yoe = (doe - doe // 1460 + doe // 36524 - doe // 146096) // 365
-        y = yoe + era * 400
-        doy = doe - (365 * yoe + yoe // 4 - yoe // 100)
-        mp = (5 * doy + 2) // 153
-        d = doy - (153 * mp + 2) // 5 + 1
-        m = mp + 3 if mp < 10 else mp - 9
-        if m <= 2:
-            y += 1
+        o = i * 20
+        if days != last_days:              # rows of a series are mostly within one day
+            last_days = days
+            z = days + 719468
+            era = (z if z >= 0 else z - 146096) // 146097
+            doe = z - era * 146097
+            yoe = (doe - doe // 1460 + doe // 36524 - doe // 146096) // 365
+            y = yoe + era * 400
+            doy = doe - (365 * yoe + yoe // 4 - yoe // 100)
+            mp = (5 * doy + 2) // 153
+            d = doy - (153 * mp + 2) // 5 + 1
+            m = mp + 3 if mp < 10 else mp - 9
+            if m <= 2:
+                y += 1
+            date[0] = 48 + y // 1000
+            date[1] = 48 + (y // 100) % 10
+            date[2] = 48 + (y // 10) % 10
+            date[3] = 48 + y % 10
+            date[4] = 45
+            date[5] = 48 + m // 10
+            date[6] = 48 + m % 10
+            date[7] = 45
+            date[8] = 48 + d // 10
+            date[9] = 48 + d % 10
+        for k in range(10):
+            buf[o + k] = date[k]
         hh = sod // 3600
         mi = (sod % 3600) // 60
         ss = sod % 60
-        o = i * 20
-        buf[o] = 48 + y // 1000
-        buf[o + 1] = 48 + (y // 100) % 10
-        buf[o + 2] = 48 + (y // 10) % 10
-        buf[o + 3] = 48 + y % 10
-        buf[o + 4] = 45
-        buf[o + 5] = 48 + m // 10
-        buf[o + 6] = 48 + m % 10
-        buf[o + 7] = 45
-        buf[o + 8] = 48 + d // 10
-        buf[o + 9] = 48 + d % 10
         buf[o + 10] = 84
         buf[o + 11] = 48 + hh // 10
         buf[o + 12] = 48 + hh % 10
