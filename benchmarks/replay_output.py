@@ -15,8 +15,9 @@ the machine is shared, and wall time there measures the neighbours (the wall tim
   (:func:`monitor.replay.driver.summary_json`) against ``json.dumps(summary, indent=2,
   sort_keys=True)`` of the same summary, equal JSON values checked.
 - the ordered validation checks (duplicates, late rows, unit errors) on the 3M rows
-  (:func:`monitor.rows.validate.ordered_checks`, an allocation-free median of the recent
-  prices) against the previous form compiled here (``np.median`` per row); identical codes.
+  (:func:`monitor.rows.validate.ordered_checks`, medians from ascending copies of the
+  series' windows kept in order as rows are accepted) against the previous form compiled here
+  (``np.median`` per row); identical codes.
 """
 
 from __future__ import annotations
@@ -155,7 +156,8 @@ def _ordered_rows(ctx: Context) -> list[Row]:
     rn, ro = n / median(t_new), n / median(t_old)
     main = Row(f"validation, ordered checks (duplicate, late, unit error) on {n:,} rows of "
                f"{S:,} series", rn, "rows/s", [n / t for t in t_new], target="report",
-               check=(f"median of the last {WINDOW} accepted prices without allocating; codes "
+               check=(f"median of the last {WINDOW} accepted prices from a sorted copy of the "
+                      f"window kept in order; codes "
                       f"{codes[1]:,} duplicates, {codes[2]:,} late, {codes[3]:,} unit errors"))
     ref = Row("the same checks in their previous form (np.median per row, compiled here)", ro,
               "rows/s", [n / t for t in t_old], reference=True, ratio=f"elmon {rn / ro:.1f}x faster",

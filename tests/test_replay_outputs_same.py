@@ -120,3 +120,99 @@ def test_replay_outputs_equal_the_whole_file_path_on_a_hostile_log(tmp_path, chu
     for k in ("rows", "accepted", "rejected", "zero_skipped", "series", "alerts",
               "alerts_by_rule", "final"):
         assert written[k] == ref[k], k
+
+
+def _dirty_log(path, n_series=12, length=300):
+    """Seeded rows of ``n_series`` series (two with an elasticity change) with duplicates,
+    unit and quantity errors, rows out of time order, timestamps in several ISO spellings,
+    and the hostile corpus and :data:`ODD` rows between them."""
+    rng = np.random.default_rng(1515)
+    ts = pd.date_range("2024-03-01", periods=length, freq="h", tz="UTC")
+    spell = ["%Y-%m-%dT%H:%M:%SZ", "%Y-%m-%d %H:%M:%S", "%Y-%m-%dT%H:%M:%S+00:00",
+             "%Y-%m-%dT%H:%M:%S.000Z"]
+    p = np.exp(rng.normal(0.3, 0.2, (length, n_series)))
+    b = np.where(np.arange(length)[:, None] < length // 2, -1.5,
+                 np.where(np.arange(n_series) < 2, -0.6, -1.5))
+    q = np.exp(5.0 + b * np.log(p) + rng.normal(0, 0.1, p.shape))
+    p[rng.random(p.shape) < 0.01] *= 100                         # unit errors
+    q[rng.random(p.shape) < 0.01] *= 1e5                         # quantity errors
+    lines = []
+    for i, t in enumerate(ts):                                   # time order, series interleaved
+        for s in range(n_series):
+            k = 0 if rng.random() < 0.9 else int(rng.integers(1, len(spell)))
+            lines.append(f"s{s},{t.strftime(spell[k])},{p[i, s]:.4f},{q[i, s]:.3f}")
+            if rng.random() < 0.02:
+                lines.append(lines[-1])                          # duplicates
+    for i in rng.choice(len(lines) - 50, 150, replace=False):    # rows out of time order
+        lines[i], lines[i + 49] = lines[i + 49], lines[i]
+    bad = [",".join(h[:4]) for h in HOSTILE] + [",".join(r) for r in ODD]
+    for k, row in enumerate(bad):
+        lines.insert(5 + 37 * k, row)
+    path.write_text("series,ts,price,quantity\n" + "\n".join(lines) + "\n")
+    return path
+
+
+def _median_walk(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_ratio, reject_all,
+                 code, batch_median, lq, qring, qcount, log_qratio):
+    """validate.ordered_checks in plain Python with np.median of the windows (the walk's
+    arithmetic before its sorted windows), for the reference replay below."""
+    from tests.test_validate_fast import _walk_oracle
+
+    _walk_oracle(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_ratio, code,
+                 batch_median, lq, qring, qcount, log_qratio)
+    if reject_all:
+        raise NotImplementedError
+
+
+#: unit and quantity ratios near the noise of the log: many codes turn on the medians' values
+TIGHT = dict(unit_ratio=1.25, quantity_ratio=1.3)
+
+
+@pytest.mark.parametrize("kw", [dict(), dict(estimates_format="parquet", sample_every=24),
+                                dict(chunk_rows=700), dict(chunk_rows=700, sample_every=24,
+                                                           estimates_format="parquet"),
+                                dict(chunk_rows=700, config=TIGHT)])
+def test_replay_files_equal_with_the_fast_paths_switched_off(tmp_path, monkeypatch, kw):
+    """Every file of a replay of a dirty log (rejects of every kind, duplicates, twelve series,
+    sampling, chunks) is the same with validation's compiled fast paths (plain ISO times,
+    plain text, sorted windows) as with the general paths they replace."""
+    kw = dict(kw)
+    if "config" in kw:
+        kw["config"] = Config().with_overrides("validation", **kw["config"])
+    import pyarrow.parquet as pq
+
+    import monitor.rows.validate as V
+    from tests.test_validate_fast import _no_plain_iso
+
+    log = _dirty_log(tmp_path / "log.csv")
+    new = replay(log, tmp_path / "new", progress=False, now_ns=NOW, **kw)
+    with monkeypatch.context() as m:
+        m.setattr(V, "parse_plain_iso", _no_plain_iso)
+        m.setattr(V, "plain_text", lambda arr: False)
+        m.setattr(V, "ordered_checks", _median_walk)
+        old = replay(log, tmp_path / "old", progress=False, now_ns=NOW, **kw)
+    text = {f.name for f in (tmp_path / "new").iterdir()}
+    assert text == {f.name for f in (tmp_path / "old").iterdir()}
+    for f in sorted(text):
+        a, b = tmp_path / "new" / f, tmp_path / "old" / f
+        if f == "summary.json":
+            ja, jb = json.loads(a.read_text()), json.loads(b.read_text())
+            ja.pop("timing"), jb.pop("timing")
+            assert ja == jb
+        elif f.endswith(".parquet"):
+            assert pq.read_table(a).equals(pq.read_table(b))
+        else:
+            assert a.read_bytes() == b.read_bytes(), f
+    rej = pd.read_csv(tmp_path / "new" / "rejects.csv", keep_default_na=False)["reason"]
+    for what in ("duplicate row", "unit error", "quantity error", "empty field",
+                 "unparsable timestamp"):
+        assert rej.str.contains(what).any(), what
+    if "config" in kw:
+        assert rej.str.contains("unit error").sum() > 300
+        assert rej.str.contains("quantity error").sum() > 100
+    if kw.get("chunk_rows"):
+        assert rej.str.contains("late row").any()
+    assert new["series"] >= 12 and new["alerts"] > 0 and new["accepted"] > 1500
+    if kw.get("sample_every"):
+        assert new["estimates_written"] < new["accepted"] // 5
+    assert new == {**old, "timing": new["timing"]}

@@ -110,7 +110,8 @@ def parse_lines(names: list[str], canon: list[str], body: bytes, first_row: int,
         return pd.DataFrame({c: pd.Series(dtype=object) for c in canon}), \
             np.zeros(0, dtype=np.int64), empty_rejects(), n_lines
     try:
-        body.decode("utf-8")                 # pyarrow's bad-line handler needs UTF-8 text
+        if not body.isascii():               # ASCII is UTF-8 (isascii: one fast pass)
+            body.decode("utf-8")             # pyarrow's bad-line handler needs UTF-8 text
         frame, bad_lines = _parse_fast(names, body, delimiter)
         if len(frame) + len(bad_lines) != n_lines:   # a lone CR split a line: go line by line
             raise UnicodeDecodeError("utf-8", b"", 0, 1, "line count differs")
@@ -128,7 +129,8 @@ def parse_lines(names: list[str], canon: list[str], body: bytes, first_row: int,
     take = ~blank[keep_rows]
     frame = frame.loc[take].reset_index(drop=True)
     rows = line_rows[keep_rows][take]
-    if b"\x00" in body or b"\xef\xbb\xbf" in body:      # NUL or a UTF-8 byte-order mark
+    # NUL or a UTF-8 byte-order mark (a lone 0xEF byte first: a fast scan where none is)
+    if b"\x00" in body or (b"\xef" in body and b"\xef\xbb\xbf" in body):
         frame, rows, hidden = _drop_invisible(frame, rows, names)
         rejects += hidden
     if rejects:

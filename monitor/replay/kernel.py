@@ -23,8 +23,8 @@ import pyarrow as pa
 from monitor.estimators import kernel as K
 from monitor.ingest.bounds_file import per_series_limits
 from monitor.replay.health import HEALTH_COLUMNS, HealthSums, zero_counts
-from monitor.rows.frames import (ALERT_COLUMNS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS, alerts_frame,
-                                 band_kinds, estimates_frame)
+from monitor.rows.frames import (ALERT_COLUMNS, BAND_KINDS, ESTIMATE_COLUMNS, REJECT_OUT_COLUMNS,
+                                 alerts_frame, band_index, estimates_frame)
 from monitor.rows.isotime import iso_utc
 from monitor.rows.prepare import check_rows, design_rows, offset_of, order_of
 from monitor.rows.validate import SeriesGate, Validated
@@ -150,7 +150,9 @@ def validate_chunk(frame: pd.DataFrame, setup: Setup, carried: CarriedState, row
                    rows=rows, row_offset=row_offset, line_rejects=line_rejects,
                    order=order_of(setup.vset, "time"))
     if len(v.good):
-        sid = carried.gate.ids(v.good["series"])      # arrow-backed text: no Python strings
+        # the ids the ordered checks gave the good rows; else from the gate (arrow-backed text:
+        # no Python strings)
+        sid = v.sid if v.sid is not None else carried.gate.ids(v.good["series"])
     else:
         sid = np.zeros(0, np.int64)
     return v, sid
@@ -211,6 +213,7 @@ class Partial:
 
 
 _LABELS = pa.array(STATUS_LABELS, pa.string())
+_BANDS = pa.array(BAND_KINDS, pa.string())
 _EST_FLOATS = (("beta", K.O_BETA), ("beta_se", K.O_SE), ("beta_lo", K.O_LO), ("beta_hi", K.O_HI),
                ("n_eff", K.O_NEFF))
 _EST_TAIL = (("intercept", K.O_INTERCEPT), ("resid_sd", K.O_RESID_SD), ("innovation", K.O_E),
@@ -236,7 +239,9 @@ def estimates_table(good: pd.DataFrame, out: np.ndarray, status: np.ndarray,
     cols["status"] = _LABELS.take(pa.array(np.asarray(status[sel], dtype=np.int64)))
     for k, (name, _) in enumerate(_EST_TAIL, start=len(_EST_FLOATS)):
         cols[name] = pa.array(o[k], pa.float64(), from_pandas=True)
-    cols["band"] = pa.array(band_kinds(out[sel]), pa.string())   # the band's kind (issue 13)
+    # the band's kind (issue 13): band_kinds' text, taken from the codes without Python objects
+    bi = band_index(out[sel])
+    cols["band"] = _BANDS.take(pa.array(bi, mask=bi == len(BAND_KINDS)))
     if out.shape[1] > K.NOUT:      # instruments: the effective first-stage F (issue 17)
         cols["first_stage_f"] = pa.array(o[-1], pa.float64(), from_pandas=True)
     return pa.table(cols)

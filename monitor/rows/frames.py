@@ -22,14 +22,18 @@ ESTIMATE_COLUMNS = ["series", "ts", "beta", "beta_se", "beta_lo", "beta_hi", "n_
 BAND_KINDS = tuple(K.BAND_NAMES[c] for c in sorted(K.BAND_NAMES))
 
 
+def band_index(out: np.ndarray) -> np.ndarray:
+    """Each output row's index into :data:`BAND_KINDS`, ``len(BAND_KINDS)`` where the row has
+    no band (``beta_lo`` or ``beta_hi`` NaN)."""
+    code = out[:, K.O_BAND]
+    has = np.isfinite(out[:, K.O_LO]) & np.isfinite(out[:, K.O_HI]) & np.isfinite(code)
+    return np.where(has, np.nan_to_num(code, nan=0.0), len(BAND_KINDS)).astype(np.int64)
+
+
 def band_kinds(out: np.ndarray) -> np.ndarray:
     """The band kind of each output row (object array of "classic" / "hc" / "hac"), ``None``
     where the row has no band (``beta_lo`` or ``beta_hi`` NaN)."""
-    names = np.array(BAND_KINDS + (None,), dtype=object)
-    code = out[:, K.O_BAND]
-    has = np.isfinite(out[:, K.O_LO]) & np.isfinite(out[:, K.O_HI]) & np.isfinite(code)
-    idx = np.where(has, np.nan_to_num(code, nan=0.0), len(BAND_KINDS)).astype(np.int64)
-    return names[idx]
+    return np.array(BAND_KINDS + (None,), dtype=object)[band_index(out)]
 
 
 #: a change alert (elasticity_change, level_shift) also carries CHANGE_COLUMNS: the
@@ -95,7 +99,7 @@ def alerts_frame(result, good: pd.DataFrame, names: list[str]) -> pd.DataFrame:
     rows = ev["row"].to_numpy()
     change = _change_columns(ev)
     return pd.DataFrame({**change,
-        "series": good["series"].to_numpy()[rows],
+        "series": good["series"].iloc[rows].to_numpy(),       # no object copy of the column
         "ts": format_ts(good["ts"].to_numpy()[rows]), "rule": ev["kind"].to_numpy(),
         "beta": ev["beta"].to_numpy(), "beta_lo": ev["beta_lo"].to_numpy(),
         "beta_hi": ev["beta_hi"].to_numpy(), "message": ev["message"].to_numpy(),

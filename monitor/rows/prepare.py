@@ -102,7 +102,7 @@ def check_rows(frame: pd.DataFrame, est, *, settings: ValidationSettings | None 
         rej = v.rejects
         both = pd.concat([line_rejects, rej], ignore_index=True) if len(rej) else line_rejects
         both = both.sort_values("row", kind="stable").reset_index(drop=True)
-        v = Validated(good=v.good, rejects=both, zero_skipped=v.zero_skipped)
+        v = Validated(good=v.good, rejects=both, zero_skipped=v.zero_skipped, sid=v.sid)
     return v
 
 

@@ -41,6 +41,7 @@ from numba import njit
 
 from monitor.errors import ConfigError, SourceError
 from monitor.groups.keys import EMPTY_PART_RULE, compose_series
+from monitor.rows.isotime import parse_plain_iso
 
 
 REQUIRED = ("series", "ts", "price", "quantity")
@@ -58,6 +59,8 @@ TS_MIN_NS = int(np.datetime64(TS_MIN[:-1], "ns").astype(np.int64))
 TS_MAX_NS = int(np.datetime64("2262-01-01T00:00:00", "ns").astype(np.int64)) - 1
 #: words pandas would read as the wall clock
 TS_WORDS = frozenset({"now", "today", "yesterday", "tomorrow"})
+#: whole years inside the supported range (the plain ISO reader's limits)
+_YEAR_LO, _YEAR_HI = int(TS_MIN[:4]), int(TS_MAX[:4])
 TS_RANGE_RULE = (f"timestamp outside the supported range {TS_MIN} .. {TS_MAX} (times are "
                  f"int64 nanoseconds since 1970-01-01)")
 TS_WORD_RULE = ("unparsable timestamp: a word, not a time (a row's time is never taken from "
@@ -162,14 +165,50 @@ class Validated:
     good: pd.DataFrame
     rejects: pd.DataFrame
     zero_skipped: pd.DataFrame = field(default_factory=pd.DataFrame)
+    #: the gate's series id of each good row (``gate.ids(good["series"])``, known to the
+    #: ordered checks; None where it was not computed)
+    sid: np.ndarray | None = None
 
 
 REJECT_COLUMNS = ["row", "series", "ts", "field", "value", "reason", "raw"]
 
 
+@njit(cache=True)
+def _edges_plain(offsets, data, valid, out):  # pragma: no cover - compiled
+    for i in range(out.shape[0]):
+        a, b = offsets[i], offsets[i + 1]
+        out[i] = (valid[i] and b > a and 33 <= data[a] <= 126 and 33 <= data[b - 1] <= 126)
+
+
+def plain_text(arr) -> bool:
+    """True when every field of the Arrow string array ``arr`` is present, not empty, and
+    starts and ends with a printable ASCII character other than a space (``!`` .. ``~``): then
+    no field is blank and stripping changes none (Python's ``str.strip`` and Arrow's
+    ``utf8_trim_whitespace`` remove only whitespace, and no whitespace character is in that
+    range). Read in one compiled pass over the array's buffers; False sends a column to the
+    general path."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks() if arr.num_chunks != 1 else arr.chunk(0)
+    n = len(arr)
+    if arr.null_count or not (pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type)):
+        return False
+    if n == 0:
+        return True
+    bufs = arr.buffers()
+    wide = pa.types.is_large_string(arr.type)
+    offsets = np.frombuffer(bufs[1], np.int64 if wide else np.int32)[arr.offset:arr.offset + n + 1]
+    data = np.frombuffer(bufs[2], np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
+    out = np.empty(n, bool)
+    _edges_plain(np.asarray(offsets, np.int64), data, np.ones(n, bool), out)
+    return bool(out.all())
+
+
 def _is_blank(col: pd.Series) -> np.ndarray:
     """Empty fields. Float columns hold no empties (:func:`monitor.ingest.logio.table_to_frame` turns a
     float column with nulls into objects with None), so a NaN there is a literal NaN."""
+    arr = arrow_text_array(col)
+    if arr is not None and plain_text(arr):
+        return np.zeros(len(col), dtype=bool)
     if col.dtype == object:
         none = np.fromiter((v is None or v is pd.NA or (isinstance(v, str) and not v.strip())
                             for v in col), dtype=bool, count=len(col))
@@ -214,7 +253,7 @@ def _arrow_numbers(col: pd.Series) -> np.ndarray | None:
     arr = arrow_text_array(col)
     if arr is None or arr.null_count:
         return None
-    text = pc.utf8_trim_whitespace(arr)
+    text = arr if plain_text(arr) else pc.utf8_trim_whitespace(arr)
     if pc.any(pc.starts_with(text, "+")).as_py():
         return None
     try:
@@ -316,6 +355,18 @@ def read_timestamps(col: pd.Series, ts_format: str = "") -> tuple[np.ndarray, np
         out[ok] = np.round(v[ok] * 1e9).astype(np.int64)
         why[~ok & ~np.isnan(v)] = TS_RANGE_RULE
         return out, why
+    if not ts_format:
+        # the plain ISO forms (most logs: YYYY-MM-DDTHH:MM:SSZ) read from the Arrow buffers in
+        # one compiled pass; the other fields (if any) take the general path below
+        arr = arrow_text_array(col)
+        if arr is not None:
+            ns, plain = parse_plain_iso(arr, _YEAR_LO, _YEAR_HI)
+            if plain.all():
+                return ns, why
+            if plain.any():
+                rest = np.flatnonzero(~plain)
+                ns[rest], why[rest] = read_timestamps(col.iloc[rest].reset_index(drop=True))
+                return ns, why
     s = col.astype("string").str.strip()
     maybe = _number_like(s)
     if maybe is None:
@@ -437,6 +488,50 @@ def ring_median(ring, s, c, tmp):
     return (tmp[half - 1] + tmp[half]) / 2
 
 
+@njit(cache=True, inline="always")
+def _sorted_copy(ring, s, c, out):
+    """``out[:c]`` = ``ring[s, :c]`` in ascending order (insertion sort)."""
+    for i in range(c):
+        v = ring[s, i]
+        k = i
+        while k > 0 and out[k - 1] > v:
+            out[k] = out[k - 1]
+            k -= 1
+        out[k] = v
+
+
+@njit(cache=True, inline="always")
+def _sorted_median(srt, c):
+    """Median of the ascending ``srt[:c]``: the arithmetic of :func:`ring_median`."""
+    half = c >> 1
+    if c & 1:
+        return srt[half]
+    return (srt[half - 1] + srt[half]) / 2
+
+
+@njit(cache=True, inline="always")
+def _sorted_push(srt, c, w, old, new):
+    """The window's ascending copy ``srt[:c]`` after ``new`` enters the ring: added when the
+    ring holds fewer than ``w`` values, else replacing one value equal to ``old`` (the value it
+    overwrites). Returns False when no value equals ``old`` (the copy is then stale)."""
+    if c >= w:
+        k = 0
+        while k < c and srt[k] != old:
+            k += 1
+        if k == c:
+            return False
+        while k < c - 1:               # take ``old`` out
+            srt[k] = srt[k + 1]
+            k += 1
+        c -= 1
+    k = c
+    while k > 0 and srt[k - 1] > new:
+        srt[k] = srt[k - 1]
+        k -= 1
+    srt[k] = new
+    return True
+
+
 @njit(cache=True)
 def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_ratio,
                     reject_all, code, batch_median, lq, qring, qcount, log_qratio):
@@ -447,12 +542,24 @@ def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_
     2 are known), or else with ``batch_median`` (NaN: no check). The quantity check compares a
     finite log quantity ``lq`` (``-inf`` for a zero kept as data: not checked, not kept) with
     the median of the series' last accepted ones (once 2 are known; ``log_qratio`` <= 0: off).
+
+    The medians come from ascending copies of the series' two windows, built from the rings
+    when the walk reaches a series and kept in order as values enter (one insertion and one
+    removal per accepted row, instead of sorting the window for every row): the same values in
+    the same order as :func:`ring_median`'s sort, so the same medians to the bit (rows of a
+    series need not be adjacent: the copies are rebuilt whenever the series changes).
     """
     n = sid.shape[0]
     w = ring.shape[1]
-    tmp = np.empty(w)
+    sp = np.empty(w)               # ring[cur, :min(count, w)] ascending
+    sq = np.empty(w)               # qring[cur, :min(qcount, w)] ascending
+    cur = -1
     for j in range(n):
         s = sid[j]
+        if s != cur:
+            _sorted_copy(ring, s, min(count[s], w), sp)
+            _sorted_copy(qring, s, min(qcount[s], w), sq)
+            cur = s
         if count[s] > 0 or last_ts[s] != np.iinfo(np.int64).min:
             dup = ts[j] == last_ts[s]
             for i in range(min(count[s], w)):
@@ -466,7 +573,7 @@ def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_
                 continue
         c = min(count[s], w)
         if c >= 2:
-            med = ring_median(ring, s, c, tmp)
+            med = _sorted_median(sp, c)
         else:
             med = batch_median[s]
         if med == med and abs(lp[j] - med) >= log_ratio:
@@ -474,13 +581,17 @@ def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_
             continue
         finite_q = lq[j] > -np.inf
         if finite_q and log_qratio > 0 and qcount[s] >= 2:
-            qmed = ring_median(qring, s, min(qcount[s], w), tmp)
+            qmed = _sorted_median(sq, min(qcount[s], w))
             if abs(lq[j] - qmed) >= log_qratio:
                 code[j] = 4
                 continue
         if finite_q:
+            if not _sorted_push(sq, min(qcount[s], w), w, qring[s, qcount[s] % w], lq[j]):
+                cur = -1
             qring[s, qcount[s] % w] = lq[j]
             qcount[s] += 1
+        if not _sorted_push(sp, c, w, ring[s, count[s] % w], lp[j]):
+            cur = -1
         ring[s, count[s] % w] = lp[j]
         ring_ts[s, count[s] % w] = ts[j]
         count[s] += 1
@@ -555,6 +666,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     flagged = np.zeros(n, dtype=bool)          # reason is set (cheaper than reason == None)
 
     def flag(mask, fld, text):
+        if not mask.any():        # the usual case on clean data: no pass over the row arrays
+            return
         m = mask & ~flagged
         reason[m] = text
         bad_field[m] = fld
@@ -567,7 +680,8 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     ts, ts_why = read_timestamps(frame["ts"], settings.ts_format)
     nat = np.iinfo(np.int64).min
     flag(_is_blank(frame["ts"]), "ts", "empty field")
-    for text in pd.unique(ts_why[ts_why != None]):    # noqa: E711 (object array)
+    failed = ts_why[ts == nat]           # a reason is only ever given where the time failed
+    for text in pd.unique(failed[failed != None]):    # noqa: E711 (object array)
         flag(ts_why == text, "ts", text)
     flag(ts == nat, "ts", TS_UNPARSABLE_RULE)
     if now_ns is not None:
@@ -614,7 +728,9 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
     if idx.size:
         # a text column (arrow-backed) is factorized by arrow without making Python strings
         arrow_text = pd.api.types.is_string_dtype(series) and series.dtype != object
-        sid_all[idx] = gate.ids(series.iloc[idx] if arrow_text else series.to_numpy(dtype=object)[idx])
+        every = idx.size == n                # no row flagged so far: no take of the column
+        sid_all[idx] = gate.ids((series if every else series.iloc[idx]) if arrow_text
+                                else series.to_numpy(dtype=object)[idx])
         if order_by == "time":
             order = idx[np.lexsort((idx, ts[idx], sid_all[idx]))]
         else:
@@ -623,11 +739,17 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         lp = np.log(values["price"][order])
         with np.errstate(divide="ignore"):
             lq = np.log(values["quantity"][order])          # a zero kept as data: -inf
-        grouped = pd.Series(lp).groupby(sid_all[order])
         batch_median = np.full(gate.last_ts.size, np.nan)
         if order_by == "time":
-            med = grouped.median().where(grouped.size() >= MIN_BATCH)
-            batch_median[med.index.to_numpy()] = med.to_numpy(dtype=np.float64)
+            # the walk reads a series' batch median only while the series has fewer than
+            # MIN_HISTORY accepted prices, and that count only grows: the medians of series
+            # that start the batch with that many are never read and are not computed
+            s_ord = sid_all[order]
+            young = gate.count[s_ord] < MIN_HISTORY
+            if young.any():
+                grouped = pd.Series(lp[young]).groupby(s_ord[young])
+                med = grouped.median().where(grouped.size() >= MIN_BATCH)
+                batch_median[med.index.to_numpy()] = med.to_numpy(dtype=np.float64)
         ordered_checks(sid_all[order], ts[order], lp, gate.last_ts,
                         gate.ring, gate.ring_ts, gate.count, np.int64(settings.allowed_lateness_s * 1e9),
                         math.log(settings.unit_ratio), settings.duplicate_policy == "reject_all", code,
@@ -646,15 +768,16 @@ def validate_frame(frame: pd.DataFrame, *, controls=(), log_controls=(),
         good_series = series.iloc[good_idx].astype("str").reset_index(drop=True)   # same values
     else:
         good_series = series.to_numpy(dtype=object)[good_idx].astype(str)
-    good = pd.DataFrame({"row": rows[good_idx], "series": good_series, "ts": ts[good_idx]})
-    for c, v in values.items():
-        good[c] = v[good_idx]
+    # one frame of fresh arrays, not copied again into consolidated blocks
+    good = pd.DataFrame({"row": rows[good_idx], "series": good_series, "ts": ts[good_idx],
+                         **{c: v[good_idx] for c, v in values.items()}}, copy=False)
     bad = np.flatnonzero(flagged)
     rejects = _reject_frame(frame, rows, bad, bad_field, reason)
     zi = np.flatnonzero(zero)
     zero_frame = pd.DataFrame({"row": rows[zi], "series": series.iloc[zi].to_numpy(dtype=object),
                                "ts": ts[zi]})
-    return Validated(good=good.reset_index(drop=True), rejects=rejects, zero_skipped=zero_frame)
+    return Validated(good=good.reset_index(drop=True), rejects=rejects, zero_skipped=zero_frame,
+                     sid=sid_all[good_idx])
 
 
 def _inf_words(col: pd.Series) -> np.ndarray:
@@ -743,4 +866,4 @@ def renumber(v: Validated, rows: np.ndarray) -> Validated:
     else:
         zero = zero.assign(local=np.zeros(0, dtype=np.int64)) if len(zero.columns) else \
             pd.DataFrame({"row": [], "series": [], "ts": [], "local": []})
-    return Validated(good=good, rejects=rej, zero_skipped=zero)
+    return Validated(good=good, rejects=rej, zero_skipped=zero, sid=v.sid)
