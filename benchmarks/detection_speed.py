@@ -44,8 +44,13 @@ def _config(**sections):
 
 
 #: every chart and rule switched off: what the pipeline step costs beyond the estimator anyway
+#: (the split GLR, the default change detector, still runs: it has no off switch)
 ALL_OFF = {"detectors": {"level_chart": "none", "slope_chart": "none"},
            "rules": {"out_of_bounds": False, "sign_flip": False, "low_variation": False}}
+#: the same with the previous charts' family in place of the split GLR, its charts off (its
+#: slope statistic still runs): about the step's cost outside the split GLR
+NO_DETECTOR = {"detectors": {**ALL_OFF["detectors"], "change_detector": "charts"},
+               "rules": ALL_OFF["rules"]}
 
 
 def _cpu_rate(pipe, p, ts, S) -> float:
@@ -58,6 +63,70 @@ def _cpu_rate(pipe, p, ts, S) -> float:
     c = _t.process_time()
     pipe.run(p.sid, p.X, p.y, n_series=S, states=st, ts=ts)
     return p.n / max(_t.process_time() - c, 1e-9)
+
+
+def _feedback_views():
+    """The price-feedback loop as it was before 5 December: a view of the series' state, of
+    the output row and of seven work-space parts made on every row, under numba's reference
+    counting (the step itself is the current one: the arithmetic did not change)."""
+    from numba import njit
+
+    from monitor.estimators.feedback import feedback_step
+
+    @njit(cache=False)
+    def run(state, sid, lp, e, use, lam, t_on, t_off, min_neff, out, w):
+        for j in range(lp.shape[0]):
+            feedback_step(state[sid[j]], lp[j], e[j], use[j], lam, t_on, t_off, min_neff,
+                          out[j], w)
+    return run
+
+
+def _feedback_rows(q, est, runs: int) -> list[Row]:
+    """The price-feedback diagnostic (run after the compiled pipeline loop on every batch) on
+    the rows of ``q``, per CPU-second, beside its previous loop; outputs compared to the bit."""
+    from monitor.estimators import feedback as FB
+    from monitor.estimators import kernel as K
+    from monitor.estimators.batch import initial_states
+    from monitor.estimators import run_batch
+
+    out = run_batch(est, q.sid, q.X, q.y, states=initial_states(est, q.n_series)).out
+    e = np.ascontiguousarray(out[:, K.O_E])
+    use = (out[:, K.O_STATUS] != K.ST_WARMING_UP) & np.isfinite(e)
+    lp = np.ascontiguousarray(q.X[:, 1])
+    sid = np.ascontiguousarray(q.sid, dtype=np.int64)
+    old = _feedback_views()
+
+    def one(fn):
+        st = np.zeros((q.n_series, FB.STATE_SIZE))
+        res = np.empty((q.n, FB.FB_NOUT))
+        c = time.process_time()
+        fn(st, sid, lp, e, use, LAM, FB.DEFAULT_T_ON, FB.DEFAULT_T_OFF, FB.DEFAULT_MIN_N_EFF,
+           res, np.empty(FB.WORK_SIZE))
+        return time.process_time() - c, st, res
+
+    one(FB.feedback_run)
+    one(old)                                  # compile and warm both
+    tn, to = [], []
+    for _ in range(max(runs, 3)):
+        a, st_n, res_n = one(FB.feedback_run)
+        b, st_o, res_o = one(old)
+        tn.append(a)
+        to.append(b)
+    same = (np.array_equal(st_n.view(np.int64), st_o.view(np.int64))
+            and np.array_equal(res_n.view(np.int64), res_o.view(np.int64)))
+    new = rate_row(f"price-feedback diagnostic (feedback_run, after the pipeline loop), "
+                   f"{q.n_series:,} series x {q.n // q.n_series:,} steps, per CPU-second",
+                   q.n, tn, target=None)
+    new.target = "report"
+    new.check = ("the Granger (1969) regression of each series' price move on its last demand "
+                 "surprise, with its HC1 standard error, on every row; compiled without "
+                 "reference counting, work-space parts made once per batch")
+    ref = rate_row("the same step in its loop before 5 December (per-row views, reference "
+                   "counting)", q.n, to, reference=True)
+    ref.ratio = speed_ratio(new.value, ref.value)
+    ref.check = (f"states and per-row outputs ({q.n:,} x {FB.FB_NOUT}) identical to the bit "
+                 f"(compared as int64): {'agrees' if same else '**DIFFER**'}")
+    return [new, ref]
 
 
 def _z_streams(res, p, rows: np.ndarray) -> dict[int, np.ndarray]:
@@ -177,12 +246,15 @@ def run(ctx: Context) -> list[Row]:
            + q.step * 3_600_000_000_000)
     on_rate = _cpu_rate(pipe, q, qts, q.n_series)
     off_rate = _cpu_rate(Pipeline.from_config(_config(**ALL_OFF), est), q, qts, q.n_series)
+    bare_rate = _cpu_rate(Pipeline.from_config(_config(**NO_DETECTOR), est), q, qts, q.n_series)
     main.check = (f"{_detection_summary(res, p)}; the estimator alone on the same rows: "
                   f"{est_rate / 1e6:.1f}M obs/s; {share_note(shares, p.n, times)}; "
                   f"state row {pipe.state_size} floats; on {q.n:,} rows, per CPU-second: "
                   f"{on_rate / 1e6:.2f}M obs with the default detectors and rules, "
-                  f"{off_rate / 1e6:.2f}M with every chart and rule switched off")
-    rows = [main]
+                  f"{off_rate / 1e6:.2f}M with every chart and rule switched off (the split "
+                  f"GLR still on), {bare_rate / 1e6:.2f}M with the previous charts' family "
+                  f"off in its place")
+    rows = [main] + _feedback_rows(q, est, ctx.runs)
 
     sub = np.flatnonzero(p.sid < 20)
     streams = _z_streams(res, p, sub)

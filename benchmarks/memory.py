@@ -95,8 +95,10 @@ def child(n: int) -> dict:
 
     est_bytes = K.state_size(est.row_width) * 8 * n
     assert len(index) == n
+    blocks = {name: stop - start for name, (start, stop) in pipe.layout().items() if stop > start}
+    blocks["price_feedback"] = pipe.state_size - sum(blocks.values())
     return {"n": n, "rss0": rss0, "rss1": rss1, "peak": _peak(), "state_bytes": state_bytes,
-            "estimator_state_bytes": est_bytes, "per_series": state_bytes / n}
+            "estimator_state_bytes": est_bytes, "per_series": state_bytes / n, "blocks": blocks}
 
 
 def run(ctx: Context) -> list[Row]:
@@ -117,7 +119,9 @@ def run(ctx: Context) -> list[Row]:
                 check=(f"k = 2 (intercept, log price): estimator "
                        f"{r['estimator_state_bytes'] / n:,.0f} bytes, detectors, episode "
                        f"trackers and rules {(r['state_bytes'] - r['estimator_state_bytes']) / n:,.0f}"
-                       f" bytes (float64 throughout)")),
+                       f" bytes (float64 throughout); floats per block of the pipeline's row: "
+                       + ", ".join(f"{k.replace('_', ' ')} {v}"
+                                   for k, v in r["blocks"].items()))),
             Row(f"state at {n:,} series", state_mb, "MB", [x["state_bytes"] / 1e6 for x in results],
                 target="<= 150 MB", met=state_mb <= 150.0, better="lower",
                 check="exact size of the state arrays (deterministic)")]

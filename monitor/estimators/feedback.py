@@ -74,18 +74,25 @@ def feedback_step(st, lp, e, use, lam, t_on, t_off, min_neff, out, w):
     """One row of one series: ``lp`` log price, ``e`` the elasticity estimator's innovation on
     this row, ``use`` False for rows whose innovation is not evidence (estimator warming up).
 
-    The regression row is built from the previous usable row; writes ``out`` (FB_NOUT)."""
+    The regression row is built from the previous usable row; writes ``out`` (FB_NOUT).
+    ``w``: work space of :data:`WORK_SIZE` floats."""
+    g, Gf, Sxx, L, Sinv, M, T, c = _work_views(w)
+    _step(st, lp, e, use, lam, t_on, t_off, min_neff, out, g, Gf, Sxx, L, Sinv, M, T, c)
+
+
+@njit(cache=True, inline="always")
+def _work_views(w):
+    """The work space's parts (made once per batch: views cost on every row)."""
+    p0 = NG + NG * NG
+    return (w[0:NG], w[NG:p0], w[p0:p0 + 9], w[p0 + 9:p0 + 18], w[p0 + 18:p0 + 27],
+            w[p0 + 27:p0 + 36], w[p0 + 36:p0 + 45], w[p0 + 45:p0 + 45 + NG])
+
+
+@njit(cache=True, inline="always")
+def _step(st, lp, e, use, lam, t_on, t_off, min_neff, out, g, Gf, Sxx, L, Sinv, M, T, c):
+    """:func:`feedback_step` with the work space's parts made by the caller."""
     have = st[F_HAVE_PREV] != 0.0
     if have:
-        g = w[0:NG]
-        Gf = w[NG:NG + NG * NG]
-        p0 = NG + NG * NG
-        Sxx = w[p0:p0 + 9]
-        L = w[p0 + 9:p0 + 18]
-        Sinv = w[p0 + 18:p0 + 27]
-        M = w[p0 + 27:p0 + 36]
-        T = w[p0 + 36:p0 + 45]
-        c = w[p0 + 45:p0 + 45 + NG]
         g[0] = lp - st[F_PREV_LP]
         g[1] = 1.0
         g[2] = st[F_PREV_LP]
@@ -124,7 +131,7 @@ def feedback_step(st, lp, e, use, lam, t_on, t_off, min_neff, out, w):
     st[F_HAVE_PREV] = 1.0 if (use and e == e) else 0.0
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _estimate(st, Gf, Sxx, L, Sinv, M, T, c, t_on, t_off, min_neff, out):
     W = st[F_W]
     neff = W * W / st[F_W2]
@@ -180,11 +187,13 @@ def _estimate(st, Gf, Sxx, L, Sinv, M, T, c, t_on, t_off, min_neff, out):
     out[FB_DIRECTION] = direction
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def feedback_run(state, sid, lp, e, use, lam, t_on, t_off, min_neff, out, w):
     """:func:`feedback_step` over rows in order; row j belongs to series ``sid[j]``."""
+    g, Gf, Sxx, L, Sinv, M, T, c = _work_views(w)
     for j in range(lp.shape[0]):
-        feedback_step(state[sid[j]], lp[j], e[j], use[j], lam, t_on, t_off, min_neff, out[j], w)
+        _step(state[sid[j]], lp[j], e[j], use[j], lam, t_on, t_off, min_neff, out[j], g, Gf, Sxx,
+              L, Sinv, M, T, c)
 
 
 def init_state() -> np.ndarray:
