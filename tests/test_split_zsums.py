@@ -124,7 +124,8 @@ def test_a_state_without_the_controls_sums_resumes_with_them_off_until_a_slope_a
     at = int(pipe._layout[L_SPLIT])
     az = at + SG.ZS0
     assert row[at + SG.CFIT_ON] == 1.0 and row[az] == 1.0 and row[at + SG.ZS_K] == 2.0
-    up = restores_without_block(pipe, row, az, SG.ZS_SIZE)   # the layout before
+    # the layout before (it had no aligned level candidates either: they sit just before)
+    up = restores_without_block(pipe, row, at + SG.AL0, SG.AL_SIZE + SG.ZS_SIZE)
     # it runs on with the sums off (the response sums keep each row's c, as before) ...
     more = pipe.run(np.zeros(300, np.int64), X[600:], y[600:], 1, states=up[None, :].copy())
     assert np.all(np.isfinite(more.out[:, K.O_BETA]))

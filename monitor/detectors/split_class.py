@@ -177,6 +177,13 @@ class SplitGLR:
         p = dict(state["params"])
         det = cls(p.pop("arl0"), p.pop("h_slope"), p.pop("h_level"), **p)
         vec = floats_from_json(state["state"])
+        if vec.size in (S.SPLIT_SIZE - S.AL_SIZE, S.SPLIT_SIZE - S.AL_SIZE - S.ZS_SIZE,
+                        S.SPLIT_SIZE - S.AL_SIZE - S.ZS_SIZE - S.HX_SIZE):
+            # saved before the aligned level candidates (5 December 2026): zeros, flags off
+            # (each comes in when its CUSUM next resets); they follow the sums of x^3, x^4,
+            # which the layout before those ends without (inserted below)
+            at = min(S.AL0, vec.size)
+            vec = np.concatenate([vec[:at], np.zeros(S.AL_SIZE), vec[at:]])
         if vec.size == S.SPLIT_SIZE - S.ZS_SIZE - S.HX_SIZE:
             # saved before the after sample's sums of x^3, x^4 (5 December 2026): they come in
             # as zeros, flag off, until the window next restarts (split_glr)

@@ -208,6 +208,48 @@ slope. Measured at ARL0 2,000 with prices held 7-28 rows (pipeline, 100 series):
 change of 0.3 / 0.5 / 0.8 opened elasticity_change first in 58% / 46% / 35% of series before
 this rule, 94% / 96% / 95% with it.
 
+The candidate change times are the log-spaced checkpoints, so the level-only alternatives the
+slope alarm must beat do not include the change time itself: after a level shift the nearest
+checkpoints either miss some of its rows or mix rows from before it into the after sample,
+and a large shift loses much of its level statistic either way (a -50% shift is 4.6 sd of the
+noise per row). An older checkpoint's after sample meanwhile holds rows before the shift at
+their held prices and rows after it at another, and the full (level + slope) fit there
+explains the step by a slope. Under step prices this raised ``elasticity_change`` on pure level
+shifts: traced on the grid's steps cell at ARL0 20,000, a -50% shift at observation 1000 with
+the price moving at the same row, at the shift's second row the slope candidate of age 25 (23
+rows at the old price, 2 at the new) had G_s + G_l = 19.2, the best checkpoint's level-only
+statistic 9.97 (age 1) and the level-only statistic at the true change time about 21. So the
+level-only alternatives include *aligned* candidates whose change time the data place: two
+CUSUMs of the standardized innovations per direction (Page 1954; reference values ``k`` of 0.5
+and 2 sd, :data:`AL_KS`), each keeping the current window's sums at its last reset, which is
+the maximum-likelihood change time of a shift of ``2 k`` (Hinkley 1971). They enter only the
+slope alarm's margin (never an alarm of either chart, whose designed candidates stay the
+checkpoints), and only where their level statistic passes the level threshold ``h_l`` (a
+level change the level chart would call significant takes the label from the slope; below it
+the checkpoints' alternatives decide, as before). Measured (pipeline, grid cells, seed 12;
+``elasticity_change`` per 10,000 rows in the 500 after the shift, steps pattern):
+
+==============  ===================  ==========================  ===========================
+ARL0            in control (steps)   +20% / -20% / -50% before   +20% / -20% / -50% with them
+==============  ===================  ==========================  ===========================
+2,000 (500)     2.34 -> 2.29         2.68 / 3.44 / 3.32          2.12 / 2.44 / 1.76
+20,000 (1,000)  0.37 -> 0.36         0.86 / 0.98 / 1.44          0.42 / 0.26 / 0.30
+==============  ===================  ==========================  ===========================
+
+(series per cell in brackets; the in-control cells have 2,000 rows per series, the shift
+cells 1,500). Without the gate (every aligned candidate in the margin) the shifts fell further
+(1.52 / 1.80 / 1.40 and 0.22 / 0.18 / 0.30) but so did the in-control slope rate of step
+prices (2.34 -> 1.73 at ARL0 2,000), and pivot changes under step prices were found later (db
+0.8: median 55.5 -> 61 rows at ARL0 2,000; with the gate 59). One CUSUM per direction (k =
+0.5 only, no gate) left 27 alerts of 1,000 series at -50% (ARL0 20,000): its last reset lagged
+a large shift by a few rows when a small drift had kept it above zero. The cost: a change of b
+with the intercept held under step prices (a level step of ``db log p0`` with it) no longer
+opens ``elasticity_change`` in the first rows from the misplaced candidates; it waits for the
+price to move and for the level alarm, and is found later (median 97.5 -> 105.5 rows for db
+0.5, 68 -> 75 for db 0.8 at ARL0 2,000; 130.5 -> 138.5 and 73.5 -> 79.5 at 20,000; 200 series).
+Series whose controls' sums are kept (:func:`_kz` > 0) have no aligned candidates (their sums
+are not re-expressed with ``c``).
+
 After a *slope* alarm (argmax checkpoint ``j``) every sum is dropped
 (:func:`reanchor_slope`), the slope chart restarts under the start rule on new rows, and a
 further change is looked for from there. After a *level* alarm the data
@@ -287,7 +329,22 @@ HX_SIZE = 3 + 2 * NHX
 #: row came, as before, until every sum is next dropped by a slope alarm). Only pipelines
 #: whose rows have controls have this block (the pipeline's split block is ``ZS0`` floats
 #: otherwise); it is read and written only while the control fit is on (``CFIT_ON``)
-ZS0 = HX0 + HX_SIZE
+#: the level-only alternatives at change times found by the data (module docstring, "Labels"):
+#: per direction (up, down) and reference value (``AL_KS``) a CUSUM of the standardized
+#: innovations and the sums ``(n, Sx, Sxx, Sy, Sxy)`` of the current window at its last reset,
+#: with a flag (the sums are set). Inserted before the controls' sums, so that a state of the
+#: previous layout restores by inserting zeros (flags 0: no such alternative until the CUSUM
+#: next resets)
+AL0 = HX0 + HX_SIZE
+AL_W = 7
+#: reference values of those CUSUMs (in sd of the innovations): Page's (1954) CUSUM with
+#: reference k, whose last reset is the maximum-likelihood change time of a shift of 2 k
+#: (Hinkley 1971); 0.5 for shifts of about 1 sd, 2 for shifts of 4 sd and more (whose
+#: statistic loses most from a misplaced change time)
+AL_KS = (0.5, 2.0)
+NAL = 2 * len(AL_KS)
+AL_SIZE = NAL * AL_W
+ZS0 = AL0 + AL_SIZE
 ZS_ON = ZS0
 ZS_K = ZS0 + 1
 ZS_C = ZS0 + 2
@@ -391,9 +448,9 @@ REPORT_SIZE = 11
 
 def state_size() -> int:
     """Floats of one series' split-GLR state: 33 + 6 x NSLOT + 1 + (NCF + 3)(NCF + 4) / 2 + 3 +
-    2 x NHX + 2 + 2 NCF + 2 NCF (NSLOT + 2) + NCF (338 with 11 checkpoints, 6 controls and 7
-    checkpoints with sums of x^3, x^4; 176 of them the controls' sums, which a pipeline whose
-    rows have no controls leaves out: 162)."""
+    2 x NHX + 7 x NAL + 2 + 2 NCF + 2 NCF (NSLOT + 2) + NCF (366 with 11 checkpoints, 6
+    controls, 7 checkpoints with sums of x^3, x^4 and 4 aligned level candidates; 176 of them
+    the controls' sums, which a pipeline whose rows have no controls leaves out: 190)."""
     return SPLIT_SIZE
 
 
@@ -610,13 +667,20 @@ def _moments(n, sx, sxx, sy, sxy):
 
 @njit(cache=True, inline="always")
 def _candidate(st, at, j, s2, kap, rs, rl, minw_s, unit, weighted):
+    """:func:`_candidate_o` of checkpoint ``j``."""
+    return _candidate_o(st, at, at + SLOT0 + SLOT_W * j, j, s2, kap, rs, rl, minw_s, unit,
+                        weighted)
+
+
+@njit(cache=True, inline="always")
+def _candidate_o(st, at, o, j, s2, kap, rs, rl, minw_s, unit, weighted):
     """``(G_s, G_l, n_A, n_B, G_l0, G_p)`` of checkpoint ``j`` (-1 where undefined; ``G_l`` is
     computed from one row on each side of the change time, the caller decides which may
     alarm; ``G_l0`` and ``G_p`` compare a level-only with a slope-only change for the label,
     see :func:`_level_vs_pivot`). ``unit``: the weight of a typical row (:func:`row_unit`),
     ``weighted``: working weights in use, ``minw_s``: fewest total weight after the change
-    time for a slope statistic."""
-    o = at + SLOT0 + SLOT_W * j
+    time for a slope statistic; ``o``: offset of the candidate's sums ``(n, Sx, Sxx, Sy,
+    Sxy)`` (a checkpoint's, or an aligned candidate's with ``j = NHX``: no sums of x^3, x^4)."""
     na = st[at + C0] - st[o]
     gs = -1.0
     gl = -1.0
@@ -797,6 +861,72 @@ def _add_ref(st, at, n, sx, sxx, sy, sxy, cap):
 
 
 @njit(cache=True, inline="always")
+def _al_reset(st, at):
+    """The aligned candidates restart at the current sums (the window restarted)."""
+    for d in range(NAL):
+        b = at + AL0 + AL_W * d
+        st[b] = 0.0
+        st[b + 1] = 1.0
+        for m in range(5):
+            st[b + 2 + m] = st[at + C0 + m]
+
+
+@njit(cache=True, inline="always")
+def _al_rebase(st, at, n, sx, sxx, sy, sxy):
+    """The window start moved by the block ``(n, ...)`` (:func:`_rebase`): an aligned candidate
+    after it is re-expressed like the checkpoints, one before it collapses onto the start."""
+    for d in range(NAL):
+        b = at + AL0 + AL_W * d
+        if st[b + 2] >= n:
+            st[b + 2] -= n
+            st[b + 3] -= sx
+            st[b + 4] -= sxx
+            st[b + 5] -= sy
+            st[b + 6] -= sxy
+        else:
+            for m in range(5):
+                st[b + 2 + m] = 0.0
+
+
+@njit(cache=True, inline="always")
+def _al_step(st, at, e, s2):
+    """One row of the CUSUMs (after the row entered the current sums): ``z = e / sigma``
+    clipped to +-WINSOR_C; a CUSUM that resets takes the current sums as its candidate (the
+    change, if any, comes after this row)."""
+    z = 0.0
+    if s2 > 0.0:
+        z = min(max(e / np.sqrt(s2), -WINSOR_C), WINSOR_C)
+    for d in range(NAL):
+        b = at + AL0 + AL_W * d
+        c = st[b] + (z if d % 2 == 0 else -z) - AL_KS[d // 2]
+        if c <= 0.0 or not (s2 > 0.0):
+            st[b] = 0.0
+            st[b + 1] = 1.0
+            for m in range(5):
+                st[b + 2 + m] = st[at + C0 + m]
+        else:
+            st[b] = c
+
+
+@njit(cache=True, inline="always")
+def _al_level(st, at, s2, kap, rs, rl, unit, weighted):
+    """The largest level statistic ``G_l`` of the aligned candidates (0 where none is set, or
+    while the controls' sums are kept: the aligned sums are not re-expressed with ``c``)."""
+    g = 0.0
+    if _kz(st, at) > 0:
+        return g
+    for d in range(NAL):
+        b = at + AL0 + AL_W * d
+        if st[b + 1] == 0.0:
+            continue
+        _, gl, _, _, _, _ = _candidate_o(st, at, b + 2, NHX, s2, kap, rs, rl, 0.0, unit,
+                                         weighted)
+        if gl > g:
+            g = gl
+    return g
+
+
+@njit(cache=True, inline="always")
 def _rebase(st, at, j):
     """Make checkpoint ``j`` the window start: its sums move into R (the caller decides what
     R is), later checkpoints and the current sums are re-expressed from it, older slots
@@ -839,6 +969,7 @@ def _rebase(st, at, j):
     st[at + C0 + 2] -= sxx
     st[at + C0 + 3] -= sy
     st[at + C0 + 4] -= sxy
+    _al_rebase(st, at, n, sx, sxx, sy, sxy)
     return n, sx, sxx, sy, sxy
 
 
@@ -870,6 +1001,7 @@ def _restart(st, at, ts, cap):
         st[q + 5] = ts
     st[at + D_T] = 0.0
     _clear_hx(st, at)
+    _al_reset(st, at)
     _add_ref(st, at, n, sx, sxx, sy, sxy, cap)
 
 
@@ -1002,6 +1134,7 @@ def split_step_w(st, at, x, y, e, wt, n_obs, ts, p):
     st[at + HX_C + 1] += x3 * x
     # --- start rules
     s2, kap, rs, rl = _scales(st, at)
+    _al_step(st, at, e, s2)
     flags = SG_FED
     if st[at + D_NF] < p[Q_MINROWS] or not (s2 > 0.0):
         return flags
@@ -1050,6 +1183,12 @@ def split_step_w(st, at, x, y, e, wt, n_obs, ts, p):
             gl_max = gl
             jl = j
             gl0_jl = gl0
+    # the level-only alternatives at the CUSUMs' change times (module docstring, "Labels"):
+    # a level shift between two checkpoints is otherwise explained by an older checkpoint's
+    # slope across a price change; only where that level change is itself significant
+    gl_al = _al_level(st, at, s2, kap, rs, rl, unit, weighted)
+    if gl_al > p[Q_HL] and gl_al > gl_any:
+        gl_any = gl_al
     if st[at + D_ON_S] == 0.0:
         gs_max = 0.0
         js = -1.0
@@ -1180,6 +1319,7 @@ def _clear_window(st, at):
         st[q + 5] = ts
     st[at + D_T] = 0.0
     _clear_hx(st, at)
+    _al_reset(st, at)
 
 
 @njit(cache=True, inline="always")

@@ -280,27 +280,44 @@ class Pipeline:
         2026, :mod:`~monitor.detectors.split_glr`) get them as zeros with their flag off: the
         detector's response sums keep the control fit's ``c`` as it was when each row came
         until a slope alarm drops every sum. Without controls the layout has no such block and
-        rows of the previous layout resume as they are.
+        rows of the previous layout resume as they are. Rows of every layout before the
+        split detector's aligned level candidates (``AL_SIZE`` floats, 5 December 2026) get
+        them as zeros with their flags off: each comes in when its CUSUM next resets.
         Any other length raises :class:`~monitor.errors.ConfigError`."""
         vec = np.asarray(vec, dtype=np.float64)
         if vec.shape == (self.state_size,):
             return vec
-        zs = self._split_zs() if self.split else 0
-        if zs and vec.ndim == 1 and vec.size == self.state_size - zs:
+        if self.split and vec.ndim == 1 and vec.size < self.state_size:
+            # the layouts before the split detector's aligned level candidates (``AL_SIZE``
+            # floats, 5 December 2026): upgraded to that layout, then the candidates come in
+            # as zeros, flags off, until their CUSUMs next reset (split_glr)
+            up = self._upgraded(vec, self.state_size - SG.AL_SIZE, SG.ZS0 - SG.AL_SIZE)
+            at = int(self._layout[L_SPLIT]) + SG.AL0
+            return np.concatenate([up[:at], np.zeros(SG.AL_SIZE), up[at:]])
+        raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "
+                          f"{self.state_size} (estimator controls or layout changed)")
+
+    def _upgraded(self, vec: np.ndarray, size: int, zs0: int) -> np.ndarray:
+        """``vec`` upgraded to the split layout of ``size`` floats whose controls' sums start at
+        ``zs0`` in the split block (:meth:`checked_state`'s earlier layouts)."""
+        if vec.size == size:
+            return vec
+        zs = self._split_zs()
+        if zs and vec.size == size - zs:
             # the layout before the controls' sums (5 December 2026): they come in as zeros,
             # flag off (the response sums keep the fit's c as it was when each row came, as
             # before), until every sum is dropped by a slope alarm (split_glr)
-            at = int(self._layout[L_SPLIT]) + SG.ZS0
+            at = int(self._layout[L_SPLIT]) + zs0
             return np.concatenate([vec[:at], np.zeros(SG.ZS_SIZE), vec[at:]])
-        if self.split and vec.ndim == 1 and vec.size == self.state_size - SG.HX_SIZE - zs:
+        if vec.size == size - SG.HX_SIZE - zs:
             # the layout before the after sample's sums of x^3, x^4 (5 December 2026): they
             # come in as zeros, flag off, until the window next restarts (split_glr); the
             # controls' sums as above
             at = int(self._layout[L_SPLIT]) + SG.HX0
             return np.concatenate([vec[:at], np.zeros(SG.HX_SIZE + zs), vec[at:]])
-        new = SG.ZS0 + zs - SG.CFIT_ON
+        new = zs0 + zs - SG.CFIT_ON
         for old in PREVIOUS_CONTROL_BLOCKS:
-            if self.split and vec.ndim == 1 and vec.size == self.state_size - new + old:
+            if vec.size == size - new + old:
                 at = int(self._layout[L_SPLIT]) + SG.CFIT_ON
                 return np.concatenate([vec[:at], np.zeros(new), vec[at + old:]])
         raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "
