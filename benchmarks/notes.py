@@ -122,10 +122,11 @@ CAUSES = {
         "statistics only when a cheap bound says a checkpoint can reach the threshold"),
     "state at": (
         "the row's blocks are listed beside the state per series above. The largest is the "
-        "split likelihood-ratio detector of issue 12 (162 floats without controls: 11 "
+        "split likelihood-ratio detector of issue 12 (190 floats without controls: 11 "
         "log-spaced checkpoints of 6 sums each, the reference, level-free and window sums, "
-        "its own fit of the controls' normal equations, 46, and the sums of x^3 and x^4 for "
-        "the after sample's variance, 17); its checkpoints alone are 528 bytes in float64 "
+        "its own fit of the controls' normal equations, 46, the sums of x^3 and x^4 for "
+        "the after sample's variance, 17, and four CUSUM-placed level candidates, 28); its "
+        "checkpoints alone are 528 bytes in float64 "
         "and still 264 in float32. 150 MB at 1M series allows about 19 float64 per series, "
         "which a detector that tests a change at every log-spaced past time cannot fit: the "
         "target conflicts with issue 12's detector. What would shrink the rest: float32 for "
