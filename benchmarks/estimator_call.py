@@ -5,9 +5,9 @@ previous form.
   log-log model), 10,000 series x 1,000 steps in arrival order, default settings (hc band,
   forgetting 0.995, excitation guard on); it takes four different series' rows in one vector
   step (``step_two_lanes``). References: the same loop one row at a time (as it ran before
-  the lane step: benchmarks/estimator_previous.py ``rows_rls_run_two``), the k = 2 step as it
-  was before the second round (benchmarks/estimator_previous.py: the same loop, without reference counting,
-  the scalar divisions one by one), and the loop as it was before issue 15 (compiled here with
+  the lane step: benchmarks/estimator_previous.py ``rows_rls_run_two``), the k = 2 step as
+  it was before the second round (benchmarks/estimator_previous.py: the same loop, without
+  reference counting, the scalar divisions one by one), and the loop as it was before issue 15 (compiled here with
   reference counting, the model and form chosen per row). Outputs and final states compared
   to the bit. Target (issue 15): >= 30M obs per CPU-second.
 - ``ElasticityRLS.learn_one`` called row by row from Python (price only). References: its
@@ -114,13 +114,14 @@ def _kernel_rows(ctx: Context) -> list[Row]:
     main.check = ("default settings (hc band, forgetting 0.995, guard on); rate per second of "
                   "process CPU time, so a busy machine's waiting is not counted")
     by_row = rate_row("the same loop one row at a time (before the four-series lane step; "
-                    "benchmarks/estimator_previous.py rows_rls_run_two)", p.n, cpu_rows,
-                    unit="obs/s")
+                      "benchmarks/estimator_previous.py rows_rls_run_two)", p.n, cpu_rows,
+                      unit="obs/s")
     by_row.reference = True
-    by_row.ratio = (f"elmon {main.value / by_row.value:.2f}x faster" if main.value >= by_row.value
-                  else f"elmon {by_row.value / main.value:.2f}x slower")
+    by_row.ratio = (f"elmon {main.value / by_row.value:.2f}x faster"
+                    if main.value >= by_row.value
+                    else f"elmon {by_row.value / main.value:.2f}x slower")
     by_row.check = (f"outputs ({p.n:,} x {K.NOUT}) and final states identical to the bit "
-                  f"(compared as int64): {'agrees' if same_rows else '**DIFFERS**'}")
+                    f"(compared as int64): {'agrees' if same_rows else '**DIFFERS**'}")
     prev = rate_row("the k = 2 step before the second round (benchmarks/estimator_previous.py), "
                     "same loop without reference counting", p.n, cpu_prev, unit="obs/s")
     prev.reference = True
