@@ -7,9 +7,9 @@ previous form.
   step (``step_two_lanes``). References: the same loop one row at a time (as it ran before
   the lane step: benchmarks/estimator_previous.py ``rows_rls_run_two``), the k = 2 step as
   it was before the second round (benchmarks/estimator_previous.py: the same loop, without
-  reference counting, the scalar divisions one by one), and the loop as it was before issue 15 (compiled here with
-  reference counting, the model and form chosen per row). Outputs and final states compared
-  to the bit. Target (issue 15): >= 30M obs per CPU-second.
+  reference counting, the scalar divisions one by one), and the loop as it was before issue
+  15 (compiled here with reference counting, the model and form chosen per row). Outputs and
+  final states compared to the bit. Target (issue 15): >= 30M obs per CPU-second.
 - ``ElasticityRLS.learn_one`` called row by row from Python (price only). References: its
   previous form (the seven-argument ``rls_learn`` through numba's dispatcher, the log price
   written into the design row in numpy), and the call before issue 15, ``design_row`` +
