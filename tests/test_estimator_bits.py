@@ -31,7 +31,7 @@ from monitor.errors import ValidationError
 from monitor.estimators import ElasticityRLS, run_batch
 from monitor.estimators import kernel as K
 from monitor.estimators.packed import (div2, div4, sqrt4, vadd, vand, vdiv, veq, vgt, vlt, vmul,
-                                       vor, vsel, vsqrt, vsub)
+                                       vnot, vor, vsel, vsqrt, vsub)
 
 
 def _bits(a: np.ndarray) -> np.ndarray:
@@ -367,7 +367,8 @@ def _lane_ops(a, b, out):
         lt = vlt(u, v)
         gt = vgt(u, v)
         eq = veq(u, v)
-        m = vor(vand(lt, vgt(v, (0.0, 0.0, 0.0, 0.0))), eq)
+        m = vor(vand(lt, vgt(v, (0.0, 0.0, 0.0, 0.0))), vnot(vnot(eq)))
+        ne = vnot(eq)
         res = (vadd(u, v), vsub(u, v), vmul(u, v), vdiv(u, v), vsqrt(u), vsel(m, u, v))
         for i in range(4):
             for c in range(6):
@@ -375,6 +376,7 @@ def _lane_ops(a, b, out):
             out[j + i, 6] = 1.0 if lt[i] else 0.0
             out[j + i, 7] = 1.0 if gt[i] else 0.0
             out[j + i, 8] = 1.0 if eq[i] else 0.0
+            out[j + i, 9] = 1.0 if ne[i] else 0.0
 
 
 @njit(error_model="numpy")
@@ -391,13 +393,14 @@ def _scalar_ops(a, b, out):
         out[j, 6] = 1.0 if u < v else 0.0
         out[j, 7] = 1.0 if u > v else 0.0
         out[j, 8] = 1.0 if u == v else 0.0
+        out[j, 9] = 0.0 if u == v else 1.0
 
 
 def test_lane_operations_equal_scalar_operations(rng):
     """The lane-wise operations of :func:`monitor.estimators.kernel.step_two_lanes` (add,
-    subtract, multiply, divide, square root, comparisons, masks, select) equal the scalar
-    operations of compiled code lane by lane, to the bit (NaN's bits included), with zeros,
-    infinities, NaN, negative and subnormal operands."""
+    subtract, multiply, divide, square root, comparisons, masks and their negation, select)
+    equal the scalar operations of compiled code lane by lane, to the bit (NaN's bits
+    included), with zeros, infinities, NaN, negative and subnormal operands."""
     special = np.array([0.0, -0.0, 1.0, -1.0, np.inf, -np.inf, np.nan, 5e-324, 2.2e-308,
                         1.7e308, 3.0, 1e-300])
     a = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
@@ -405,11 +408,11 @@ def test_lane_operations_equal_scalar_operations(rng):
     b = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
                         np.tile(special, special.size)])
     n = a.size - a.size % 4
-    got = np.empty((n, 9))
-    want = np.empty((n, 9))
+    got = np.empty((n, 10))
+    want = np.empty((n, 10))
     _lane_ops(a[:n], b[:n], got)
     _scalar_ops(a[:n], b[:n], want)
-    for c in range(9):
+    for c in range(10):
         np.testing.assert_array_equal(_bits(got[:, c]), _bits(want[:, c]),
                                       err_msg=f"operation {c}")
     assert np.isnan(want[:, 3]).any() and np.isinf(want[:, 3]).any()

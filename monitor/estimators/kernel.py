@@ -69,7 +69,7 @@ from monitor.estimators.sandwich import (cd_pairs, centre_theta, centre_vector, 
                                         meat_form, s_form, update_q, update_t)
 from monitor.estimators.solve import DROP_TOL, factor_pair, price_column, solve_pair
 from monitor.estimators.packed import (div2, div4, sqrt4, vadd, vand, vdiv, veq, vgt, vlt,
-                                       vmul, vor, vsel, vsqrt, vsub)
+                                       vmul, vnot, vor, vsel, vsqrt, vsub)
 from monitor.estimators.tquantile import t_lookup, t_lookup_inv
 
 
@@ -502,24 +502,20 @@ def _meat_row4(s0, s1, s2, s3, i, l2, xa, xc, yc, x2, xy, y2):
 
 
 @njit(cache=True, inline="always")
-def _lane_out(st, out, x1, y, a, b, e, z, neff, dof, V, rsd, vb, se, u_df, rank, identified,
-              lowvar, lt, band, min_neff, tq):
-    """One lane's output row and residual diagnostics (the end of :func:`step_two_band`)."""
+def _lane_row(out, beta, se, lo, hi, neff, status, e, z, a, rsd, band, y):
+    """Store one lane's output row."""
+    out[O_BETA] = beta
+    out[O_SE] = se
+    out[O_LO] = lo
+    out[O_HI] = hi
     out[O_NEFF] = neff
+    out[O_STATUS] = status
     out[O_E] = e
     out[O_Z] = z
     out[O_INTERCEPT] = a
+    out[O_RESID_SD] = rsd
     out[O_BAND] = band
     out[O_YLOG] = y
-    warm = neff < min_neff or neff < 4.0
-    vok = dof > 0.0 and V > 0.0
-    out[O_RESID_SD] = rsd if vok else np.nan
-    if identified and vok and vb >= 0.0:
-        band_row(out, True, b, se, t_lookup_inv(tq, neff - rank, u_df), identified, warm,
-                 lowvar)
-    else:
-        band_row(out, False, b, np.nan, np.nan, identified, warm, lowvar)
-    diagnostics(st, y - a - b * x1, lt)
 
 
 @njit(cache=True, inline="always")
@@ -531,10 +527,11 @@ def step_two_lanes(s0, s1, s2, s3, o0, o1, o2, o3, x1, y, band, lam, guard, guar
     ``y`` 4-tuples of log price and response. Every operation is the scalar step's, on the
     same operands in the same order, done lane-wise by :mod:`monitor.estimators.packed`'s
     vector operations (IEEE, no fast-math: each lane's result is the scalar result to the
-    bit); the branches of the scalar step become lane-wise selects of values computed on
-    every lane (a lane may divide by zero or take the root of a negative number where the
-    scalar step would not: that value is not selected). The t lookup, the output row and the
-    residual diagnostics (a call to ``exp``) run lane by lane in scalar code.
+    bit); the branches of the scalar step (:func:`band_row`'s included) become lane-wise
+    selects of values computed on every lane (a lane may divide by zero or take the root of a
+    negative number where the scalar step would not: that value is not selected). The t
+    lookup, the stores of the output rows and the residual diagnostics (a call to ``exp``) run
+    lane by lane in scalar code.
     """
     ONE = _c4(1.0)
     TWO = _c4(2.0)
@@ -701,18 +698,39 @@ def step_two_lanes(s0, s1, s2, s3, o0, o1, o2, o3, x1, y, band, lam, guard, guar
     se = vsqrt(vb)
     _p4(s0, s1, s2, s3, I_XSD, xsd)
     lowvar = vor(raw_low, vlt(xsd, _c4(min_price_sd)))
-    _lane_out(s0, o0, x1[0], y[0], a[0], b[0], e[0], z[0], neff[0], dof[0], V[0], rsd[0],
-              vb[0], se[0], u_df[0], rank[0], identified[0], lowvar[0], lt[0], band, min_neff,
-              tq)
-    _lane_out(s1, o1, x1[1], y[1], a[1], b[1], e[1], z[1], neff[1], dof[1], V[1], rsd[1],
-              vb[1], se[1], u_df[1], rank[1], identified[1], lowvar[1], lt[1], band, min_neff,
-              tq)
-    _lane_out(s2, o2, x1[2], y[2], a[2], b[2], e[2], z[2], neff[2], dof[2], V[2], rsd[2],
-              vb[2], se[2], u_df[2], rank[2], identified[2], lowvar[2], lt[2], band, min_neff,
-              tq)
-    _lane_out(s3, o3, x1[3], y[3], a[3], b[3], e[3], z[3], neff[3], dof[3], V[3], rsd[3],
-              vb[3], se[3], u_df[3], rank[3], identified[3], lowvar[3], lt[3], band, min_neff,
-              tq)
+    # the output rows (as band_row and the end of step_two_band), lane-wise; the t quantile
+    # lane by lane
+    vok = vand(vgt(dof, ZERO), vgt(V, ZERO))
+    ok = vand(vand(identified, vok), vor(vgt(vb, ZERO), veq(vb, ZERO)))
+    warm = vor(vlt(neff, _c4(min_neff)), vlt(neff, _c4(4.0)))
+    q0 = t_lookup_inv(tq, neff[0] - rank[0], u_df[0]) if ok[0] else np.nan
+    q1 = t_lookup_inv(tq, neff[1] - rank[1], u_df[1]) if ok[1] else np.nan
+    q2 = t_lookup_inv(tq, neff[2] - rank[2], u_df[2]) if ok[2] else np.nan
+    q3 = t_lookup_inv(tq, neff[3] - rank[3], u_df[3]) if ok[3] else np.nan
+    tqv = (q0, q1, q2, q3)
+    beta = vsel(vor(ok, identified), b, NAN)
+    seo = vsel(ok, se, NAN)
+    lo = vsel(ok, vsub(b, vmul(tqv, se)), NAN)
+    hi = vsel(ok, vadd(b, vmul(tqv, se)), NAN)
+    WU = _c4(float(ST_WARMING_UP))
+    LV = _c4(float(ST_LOW_VARIATION))
+    status = vsel(ok, vsel(vor(warm, vnot(veq(tqv, tqv))), WU,
+                           vsel(lowvar, LV, _c4(float(ST_OK)))),
+                  vsel(vor(identified, warm), WU, LV))
+    rso = vsel(vok, rsd, NAN)
+    bnd = _c4(float(band))
+    _lane_row(o0, beta[0], seo[0], lo[0], hi[0], neff[0], status[0], e[0], z[0], a[0], rso[0],
+              bnd[0], y[0])
+    _lane_row(o1, beta[1], seo[1], lo[1], hi[1], neff[1], status[1], e[1], z[1], a[1], rso[1],
+              bnd[1], y[1])
+    _lane_row(o2, beta[2], seo[2], lo[2], hi[2], neff[2], status[2], e[2], z[2], a[2], rso[2],
+              bnd[2], y[2])
+    _lane_row(o3, beta[3], seo[3], lo[3], hi[3], neff[3], status[3], e[3], z[3], a[3], rso[3],
+              bnd[3], y[3])
+    diagnostics(s0, y[0] - a[0] - b[0] * x1[0], lt[0])
+    diagnostics(s1, y[1] - a[1] - b[1] * x1[1], lt[1])
+    diagnostics(s2, y[2] - a[2] - b[2] * x1[2], lt[2])
+    diagnostics(s3, y[3] - a[3] - b[3] * x1[3], lt[3])
 
 
 @njit(cache=True, inline="always")

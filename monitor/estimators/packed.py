@@ -19,10 +19,11 @@ the caller then ignores that lane.
 
 The lane-wise operations below (:func:`vadd`, :func:`vsub`, :func:`vmul`, :func:`vdiv`,
 :func:`vsqrt`, the comparisons :func:`vlt`, :func:`vgt`, :func:`veq`, the masks :func:`vand`,
-:func:`vor` and the select :func:`vsel`) carry one value per lane in a tuple and serve
-:func:`monitor.estimators.kernel.step_two_lanes`, which runs four different series' rows in
-one pass: addition, subtraction and multiplication are correctly rounded too, comparisons are
-ordered (false with a NaN operand, as in scalar code), so every lane equals the scalar step.
+:func:`vor`, :func:`vnot` and the select :func:`vsel`) carry one value per lane in a tuple
+and serve :func:`monitor.estimators.kernel.step_two_lanes`, which runs four different series'
+rows in one pass: addition, subtraction and multiplication are correctly rounded too,
+comparisons are ordered (false with a NaN operand, as in scalar code), so every lane equals
+the scalar step.
 """
 
 from __future__ import annotations
@@ -235,3 +236,16 @@ def vsqrt(typingctx, a):
     if not n:
         return None
     return _sqrt(n)(typingctx, a)
+
+
+@intrinsic
+def vnot(typingctx, m):
+    """Lane-wise ``not m`` of a mask."""
+    n = _masks(m)
+    if not n:
+        return None
+
+    def codegen(context, builder, sig, args):
+        r = builder.not_(_pack(builder, args[0], n))
+        return _unpack(context, builder, sig.return_type, r, n)
+    return m(m), codegen
