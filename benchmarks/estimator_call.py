@@ -3,11 +3,13 @@ previous form.
 
 - The batch loop :func:`monitor.estimators.kernel.rls_run` (what ``run_batch`` runs for the
   log-log model), 10,000 series x 1,000 steps in arrival order, default settings (hc band,
-  forgetting 0.995, excitation guard on). References: the k = 2 step as it was before the
-  second round (benchmarks/estimator_previous.py: the same loop, without reference counting,
-  the scalar divisions one by one), and the loop as it was before issue 15 (compiled here with
-  reference counting, the model and form chosen per row). Outputs and final states compared
-  to the bit. Target (issue 15): >= 30M obs per CPU-second.
+  forgetting 0.995, excitation guard on); it takes four different series' rows in one vector
+  step (``step_two_lanes``). References: the same loop one row at a time (as it ran before
+  the lane step: benchmarks/estimator_previous.py ``rows_rls_run_two``), the k = 2 step as
+  it was before the second round (benchmarks/estimator_previous.py: the same loop, without
+  reference counting, the scalar divisions one by one), and the loop as it was before issue
+  15 (compiled here with reference counting, the model and form chosen per row). Outputs and
+  final states compared to the bit. Target (issue 15): >= 30M obs per CPU-second.
 - ``ElasticityRLS.learn_one`` called row by row from Python (price only). References: its
   previous form (the seven-argument ``rls_learn`` through numba's dispatcher, the log price
   written into the design row in numpy), and the call before issue 15, ``design_row`` +
@@ -55,7 +57,7 @@ def _cpu(fn):
 
 
 def _kernel_rows(ctx: Context) -> list[Row]:
-    from benchmarks.estimator_previous import previous_rls_run_two
+    from benchmarks.estimator_previous import previous_rls_run_two, rows_rls_run_two
     from monitor.estimators import ElasticityRLS, run_batch
     from monitor.estimators import kernel as K
     from monitor.estimators.batch import initial_states
@@ -73,17 +75,26 @@ def _kernel_rows(ctx: Context) -> list[Row]:
     m = 2000
     out_prev = np.empty((p.n, K.NOUT))
     out_prev.fill(0.0)
+    out_rows = np.empty((p.n, K.NOUT))
+    out_rows.fill(0.0)
     band, _, lam, guard, guard_lam, mps, mneff, tq = est.kernel_args
     run_batch(est, p.sid[:m], p.X[:m], p.y[:m])
     old(0, initial_states(est, S), p.sid[:m], p.X[:m], p.y[:m], np.empty(0), *est.kernel_args,
         out_old[:m], w)
     previous_rls_run_two(initial_states(est, S), p.sid[:m], p.X[:m], p.y[:m], band, lam, guard,
                          guard_lam, mps, mneff, tq, out_prev[:m])
+    rows_rls_run_two(initial_states(est, S), p.sid[:m], p.X[:m], p.y[:m], band, lam, guard,
+                     guard_lam, mps, mneff, tq, out_rows[:m])
     cpu_new, cpu_old, cpu_prev, st_new, st_old, st_prev = [], [], [], None, None, None
+    cpu_rows, st_rows = [], None
     for _ in range(ctx.runs):
         st_new = initial_states(est, S)
         _, c, _ = _cpu(lambda: run_batch(est, p.sid, p.X, p.y, states=st_new, out=out_new))
         cpu_new.append(c)
+        st_rows = initial_states(est, S)
+        _, c, _ = _cpu(lambda: rows_rls_run_two(st_rows, p.sid, p.X, p.y, band, lam, guard,
+                                                guard_lam, mps, mneff, tq, out_rows))
+        cpu_rows.append(c)
         st_prev = initial_states(est, S)
         _, c, _ = _cpu(lambda: previous_rls_run_two(st_prev, p.sid, p.X, p.y, band, lam, guard,
                                                     guard_lam, mps, mneff, tq, out_prev))
@@ -96,10 +107,21 @@ def _kernel_rows(ctx: Context) -> list[Row]:
             and np.array_equal(st_new, st_old, equal_nan=True))
     same_prev = (np.array_equal(out_new.view(np.int64), out_prev.view(np.int64))
                  and np.array_equal(st_new.view(np.int64), st_prev.view(np.int64)))
+    same_rows = (np.array_equal(out_new.view(np.int64), out_rows.view(np.int64))
+                 and np.array_equal(st_new.view(np.int64), st_rows.view(np.int64)))
     main = rate_row(f"estimator batch loop (rls_run via run_batch), {S:,} series x {T:,} "
                     f"steps, per CPU-second", p.n, cpu_new, unit="obs/s", target=30e6)
     main.check = ("default settings (hc band, forgetting 0.995, guard on); rate per second of "
                   "process CPU time, so a busy machine's waiting is not counted")
+    by_row = rate_row("the same loop one row at a time (before the four-series lane step; "
+                      "benchmarks/estimator_previous.py rows_rls_run_two)", p.n, cpu_rows,
+                      unit="obs/s")
+    by_row.reference = True
+    by_row.ratio = (f"elmon {main.value / by_row.value:.2f}x faster"
+                    if main.value >= by_row.value
+                    else f"elmon {by_row.value / main.value:.2f}x slower")
+    by_row.check = (f"outputs ({p.n:,} x {K.NOUT}) and final states identical to the bit "
+                    f"(compared as int64): {'agrees' if same_rows else '**DIFFERS**'}")
     prev = rate_row("the k = 2 step before the second round (benchmarks/estimator_previous.py), "
                     "same loop without reference counting", p.n, cpu_prev, unit="obs/s")
     prev.reference = True
@@ -114,7 +136,7 @@ def _kernel_rows(ctx: Context) -> list[Row]:
                  else f"elmon {ref.value / main.value:.2f}x slower")
     ref.check = (f"outputs ({p.n:,} x {K.NOUT}) and final states identical to the bit: "
                  f"{'agrees' if same else '**DIFFERS**'}")
-    return [main, prev, ref]
+    return [main, by_row, prev, ref]
 
 
 def _learn_one_rows(ctx: Context) -> list[Row]:

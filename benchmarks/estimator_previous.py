@@ -16,7 +16,7 @@ from numba import njit
 
 from monitor.estimators.kernel import (BAND_CLASSIC, I_N, I_V, I_W, I_W2, I_W3, I_XSD, I_YY,
                                        I_E, I_Z, I_ZSD, NS, diagnostics, excitation, finish,
-                                       hc_factor)
+                                       hc_factor, step_two_band)
 from monitor.estimators.solve import DROP_TOL
 
 
@@ -166,3 +166,16 @@ def previous_rls_run_two(state, sid, X, y, band, lam, guard, guard_lam, min_pric
     for j in range(X.shape[0]):
         previous_step_two_band(state[sid[j]], X[j, 1], y[j], band, lam, guard, guard_lam,
                                min_price_sd, min_neff, tq, out[j])
+
+
+@njit(cache=True, _nrt=False)
+def rows_rls_run_two(state, sid, X, y, band, lam, guard, guard_lam, min_price_sd, min_neff, tq,
+                     out):
+    """The batch loop one row at a time with the current k = 2 step
+    (:func:`monitor.estimators.kernel.step_two_band`), as
+    :func:`monitor.estimators.kernel.rls_run` ran the k = 2 rows before it took them four
+    series at a time (:func:`monitor.estimators.kernel.step_two_lanes`): the reference of the
+    lane path, in tests/test_estimator_bits.py and benchmarks/estimator_call.py."""
+    for j in range(X.shape[0]):
+        step_two_band(state[sid[j]], X[j, 1], y[j], band, lam, guard, guard_lam, min_price_sd,
+                      min_neff, tq, out[j])

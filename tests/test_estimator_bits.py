@@ -8,6 +8,9 @@
 - :func:`monitor.estimators.kernel.linear_step` (any k, every band; its moment tensors updated
   and read row by row with side-by-side sums) against its previous form, kept verbatim in
   benchmarks/estimator_previous_general.py, with controls that are dependent for a while;
+- the batch loop's k = 2 rows four series at a time (:func:`monitor.estimators.kernel.
+  step_two_lanes`, one series per vector lane) against the same loop one row at a time
+  (benchmarks/estimator_previous.py ``rows_rls_run_two``) on a batch that mixes both paths;
 - the packed division and square root (:mod:`monitor.estimators.packed`) against numpy's
   scalar IEEE operations, special values included;
 - ``ElasticityRLS.learn_one`` (compiled entry, inline checks) against ``run_batch``, and its
@@ -22,12 +25,13 @@ import numpy as np
 import pytest
 from numba import njit
 
-from benchmarks.estimator_previous import previous_rls_run_two
+from benchmarks.estimator_previous import previous_rls_run_two, rows_rls_run_two
 from benchmarks.estimator_previous_general import previous_rls_run_general
 from monitor.errors import ValidationError
 from monitor.estimators import ElasticityRLS, run_batch
 from monitor.estimators import kernel as K
-from monitor.estimators.packed import div2, div4, sqrt4
+from monitor.estimators.packed import (div2, div4, sqrt4, vadd, vand, vdiv, veq, vgt, vlt, vmul,
+                                       vnot, vor, vsel, vsqrt, vsub)
 
 
 def _bits(a: np.ndarray) -> np.ndarray:
@@ -147,6 +151,79 @@ def test_k2_step_bursts_and_nan_rows_to_the_bit(rng, settings):
     assert np.isnan(res.beta[(sid == 4) & (step > 150)]).all()
     assert np.isfinite(res.beta[(sid == 4) & (step > 100) & (step < 150)]).all()
     assert np.isnan(res.beta[(sid == 7) & (step > 200)]).all()
+    assert np.isnan(res.out[sid == 11, K.O_INTERCEPT]).all()
+
+
+
+def _mixed_order(rng, ns: int) -> np.ndarray:
+    """An order of the rows of ``_hard_rows(rng, ns, 150)`` (row of series s at step t is
+    ``t * ns + s``) that keeps each series' rows in time order and mixes the batch loop's two
+    k = 2 paths: steps 0-49 in arrival order (groups of four different series: the lane
+    path), steps 50-99 in bursts of one series, steps 100-149 of series 0-2 cycling among
+    themselves (every group of four repeats a series: the row path) and then the other
+    series' steps 100-149 in arrival order."""
+    order = [t * ns + s for t in range(50) for s in range(ns)]
+    mid = np.array([t * ns + s for t in range(50, 100) for s in range(ns)])
+    order += mid[_burst_order(rng, mid % ns)].tolist()
+    order += [t * ns + s for t in range(100, 150) for s in range(3)]
+    order += [t * ns + s for t in range(100, 150) for s in range(3, ns)]
+    return np.asarray(order, dtype=np.int64)
+
+
+def _lane_rows(sid: np.ndarray) -> int:
+    """How many rows :func:`monitor.estimators.kernel.run_two_lanes` takes four at a time (its
+    rule: four consecutive rows of four different series)."""
+    j, lanes, s = 0, 0, sid.tolist()
+    while j + 4 <= len(s):
+        if len(set(s[j:j + 4])) == 4:
+            lanes += 4
+            j += 4
+        else:
+            j += 1
+    return lanes
+
+
+LANE_SETTINGS = [
+    {},
+    {"band": "classic"},
+    {"excitation_guard": False, "forgetting": 1.0},
+    {"prior_mean": -1.5, "prior_sd": 1.0, "level": 0.9, "band": "classic"},
+]
+
+
+@pytest.mark.parametrize("settings", LANE_SETTINGS)
+def test_k2_lane_path_equals_row_path_to_the_bit(rng, settings):
+    """The batch loop (``run_batch``: four different series' rows in one vector step where it
+    can) gives every output column and state slot, NaN's bits included, of the same loop one
+    row at a time, on a batch that takes both paths: series starting in a lane (the centring
+    reference), the guard pausing, prices held, NaN rows, bursts, three series cycling."""
+    ns = 37
+    sid0, X0, y0 = _hard_rows(rng, ns, 150)
+    order = _mixed_order(rng, ns)
+    sid, X, y = sid0[order], X0[order].copy(), y0[order].copy()
+    step = order // ns
+    y[(sid == 4) & (step == 120)] = np.nan
+    X[(sid == 7) & (step == 60), 1] = np.nan
+    y[(sid == 11) & (step == 0)] = np.nan
+    est = ElasticityRLS(**{"forgetting": 0.97, **settings})
+    res = run_batch(est, sid, X, y)
+    states = np.tile(est.initial_state(), (ns, 1))
+    out = np.empty((sid.size, K.NOUT))
+    band, _, lam, guard, guard_lam, mps, mneff, tq = est.kernel_args
+    rows_rls_run_two(states, sid, X, y, band, lam, guard, guard_lam, mps, mneff, tq, out)
+    for c in range(K.NOUT):
+        np.testing.assert_array_equal(_bits(res.out[:, c]), _bits(out[:, c]),
+                                      err_msg=f"column {c}")
+    np.testing.assert_array_equal(_bits(res.states), _bits(states))
+    # the premises: both paths taken, every status reached, NaN after the NaN rows only
+    assert 0.5 * sid.size < _lane_rows(sid) < 0.9 * sid.size
+    status = res.status
+    assert (status == K.ST_OK).any() and (status == K.ST_LOW_VARIATION).any()
+    assert (status == K.ST_WARMING_UP).any()
+    if est.excitation_guard:
+        assert res.states[:, K.I_NPAUSED].sum() > 0
+    assert np.isnan(res.beta[(sid == 4) & (step > 120)]).all()
+    assert np.isfinite(res.beta[(sid == 4) & (step > 100) & (step < 120)]).all()
     assert np.isnan(res.out[sid == 11, K.O_INTERCEPT]).all()
 
 
@@ -280,3 +357,63 @@ def test_learn_one_bad_input_names_field_and_leaves_the_state(x, q, field, rule)
         assert err.value.rule == rule
     assert field in str(err.value)
     np.testing.assert_array_equal(_bits(est._state), _bits(before))
+
+
+@njit
+def _lane_ops(a, b, out):
+    for j in range(0, a.shape[0], 4):
+        u = (a[j], a[j + 1], a[j + 2], a[j + 3])
+        v = (b[j], b[j + 1], b[j + 2], b[j + 3])
+        lt = vlt(u, v)
+        gt = vgt(u, v)
+        eq = veq(u, v)
+        m = vor(vand(lt, vgt(v, (0.0, 0.0, 0.0, 0.0))), vnot(vnot(eq)))
+        ne = vnot(eq)
+        res = (vadd(u, v), vsub(u, v), vmul(u, v), vdiv(u, v), vsqrt(u), vsel(m, u, v))
+        for i in range(4):
+            for c in range(6):
+                out[j + i, c] = res[c][i]
+            out[j + i, 6] = 1.0 if lt[i] else 0.0
+            out[j + i, 7] = 1.0 if gt[i] else 0.0
+            out[j + i, 8] = 1.0 if eq[i] else 0.0
+            out[j + i, 9] = 1.0 if ne[i] else 0.0
+
+
+@njit(error_model="numpy")
+def _scalar_ops(a, b, out):
+    for j in range(a.shape[0]):
+        u = a[j]
+        v = b[j]
+        out[j, 0] = u + v
+        out[j, 1] = u - v
+        out[j, 2] = u * v
+        out[j, 3] = u / v
+        out[j, 4] = np.sqrt(u)
+        out[j, 5] = u if (u < v and v > 0.0) or u == v else v
+        out[j, 6] = 1.0 if u < v else 0.0
+        out[j, 7] = 1.0 if u > v else 0.0
+        out[j, 8] = 1.0 if u == v else 0.0
+        out[j, 9] = 0.0 if u == v else 1.0
+
+
+def test_lane_operations_equal_scalar_operations(rng):
+    """The lane-wise operations of :func:`monitor.estimators.kernel.step_two_lanes` (add,
+    subtract, multiply, divide, square root, comparisons, masks and their negation, select)
+    equal the scalar operations of compiled code lane by lane, to the bit (NaN's bits
+    included), with zeros, infinities, NaN, negative and subnormal operands."""
+    special = np.array([0.0, -0.0, 1.0, -1.0, np.inf, -np.inf, np.nan, 5e-324, 2.2e-308,
+                        1.7e308, 3.0, 1e-300])
+    a = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
+                        np.repeat(special, special.size)])
+    b = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
+                        np.tile(special, special.size)])
+    n = a.size - a.size % 4
+    got = np.empty((n, 10))
+    want = np.empty((n, 10))
+    _lane_ops(a[:n], b[:n], got)
+    _scalar_ops(a[:n], b[:n], want)
+    for c in range(10):
+        np.testing.assert_array_equal(_bits(got[:, c]), _bits(want[:, c]),
+                                      err_msg=f"operation {c}")
+    assert np.isnan(want[:, 3]).any() and np.isinf(want[:, 3]).any()
+    assert 0 < want[:, 6].sum() < n

@@ -5,7 +5,10 @@ One series' state is one flat float64 vector (layout below, size :func:`state_si
 batch of series is a 2-D array and a checkpoint is a list of floats. The same compiled step
 runs inside :meth:`monitor.estimators.ElasticityRLS.learn_one`, the batch loop :func:`rls_run`
 and the pipeline (through :func:`monitor.estimators.dispatch.estimator_step`), so streaming and
-batch results are identical to the bit.
+batch results are identical to the bit. The batch loop also runs the k = 2 step on four
+different series at once (:func:`step_two_lanes`, one series per vector lane): the same IEEE
+operations in the same order, so the same bits; it is a second copy of :func:`step_two_band`
+that must change with it (tests/test_estimator_bits.py compares the two paths).
 
 The update, for design row ``x`` (length k), response ``y = log q`` and forgetting ``lam``:
 
@@ -65,7 +68,8 @@ from numba import njit
 from monitor.estimators.sandwich import (cd_pairs, centre_theta, centre_vector, g_pairs,
                                         meat_form, s_form, update_q, update_t)
 from monitor.estimators.solve import DROP_TOL, factor_pair, price_column, solve_pair
-from monitor.estimators.packed import div2, div4, sqrt4
+from monitor.estimators.packed import (div2, div4, sqrt4, vadd, vand, vdiv, veq, vgt, vlt,
+                                       vmul, vnot, vor, vsel, vsqrt, vsub)
 from monitor.estimators.tquantile import t_lookup, t_lookup_inv
 
 
@@ -458,6 +462,316 @@ def step_two_band(st, x1, y, band, lam, guard, guard_lam, min_price_sd, min_neff
     diagnostics(st, y - a - b * x1, lt)
 
 
+# ---- four series at once (the batch loop's k = 2 rows of four different series) ----------
+
+@njit(cache=True, inline="always")
+def _c4(v):
+    return (v, v, v, v)
+
+
+@njit(cache=True, inline="always")
+def _g4(s0, s1, s2, s3, i):
+    return (s0[i], s1[i], s2[i], s3[i])
+
+
+@njit(cache=True, inline="always")
+def _p4(s0, s1, s2, s3, i, v):
+    s0[i] = v[0]
+    s1[i] = v[1]
+    s2[i] = v[2]
+    s3[i] = v[3]
+
+
+@njit(cache=True, inline="always")
+def _meat_row4(s0, s1, s2, s3, i, l2, xa, xc, yc, x2, xy, y2):
+    """One row of the hc meat tensor (as the loop over ``ia`` in :func:`step_two_band`);
+    returns its six updated sums."""
+    m0 = vadd(vmul(l2, _g4(s0, s1, s2, s3, i)), xa)
+    m1 = vadd(vmul(l2, _g4(s0, s1, s2, s3, i + 1)), vmul(xa, xc))
+    m2 = vadd(vmul(l2, _g4(s0, s1, s2, s3, i + 2)), vmul(xa, yc))
+    m3 = vadd(vmul(l2, _g4(s0, s1, s2, s3, i + 3)), vmul(xa, x2))
+    m4 = vadd(vmul(l2, _g4(s0, s1, s2, s3, i + 4)), vmul(xa, xy))
+    m5 = vadd(vmul(l2, _g4(s0, s1, s2, s3, i + 5)), vmul(xa, y2))
+    _p4(s0, s1, s2, s3, i, m0)
+    _p4(s0, s1, s2, s3, i + 1, m1)
+    _p4(s0, s1, s2, s3, i + 2, m2)
+    _p4(s0, s1, s2, s3, i + 3, m3)
+    _p4(s0, s1, s2, s3, i + 4, m4)
+    _p4(s0, s1, s2, s3, i + 5, m5)
+    return m0, m1, m2, m3, m4, m5
+
+
+@njit(cache=True, inline="always")
+def _lane_row(out, beta, se, lo, hi, neff, status, e, z, a, rsd, band, y):
+    """Store one lane's output row."""
+    out[O_BETA] = beta
+    out[O_SE] = se
+    out[O_LO] = lo
+    out[O_HI] = hi
+    out[O_NEFF] = neff
+    out[O_STATUS] = status
+    out[O_E] = e
+    out[O_Z] = z
+    out[O_INTERCEPT] = a
+    out[O_RESID_SD] = rsd
+    out[O_BAND] = band
+    out[O_YLOG] = y
+
+
+@njit(cache=True, inline="always")
+def step_two_lanes(s0, s1, s2, s3, o0, o1, o2, o3, x1, y, band, lam, guard, guard_lam,
+                   min_price_sd, min_neff, tq):
+    """:func:`step_two_band` on four different series at once, one per vector lane.
+
+    ``s0..s3`` are the four states (distinct series), ``o0..o3`` their output rows, ``x1`` and
+    ``y`` 4-tuples of log price and response. Every operation is the scalar step's, on the
+    same operands in the same order, done lane-wise by :mod:`monitor.estimators.packed`'s
+    vector operations (IEEE, no fast-math: each lane's result is the scalar result to the
+    bit); the branches of the scalar step (:func:`band_row`'s included) become lane-wise
+    selects of values computed on every lane (a lane may divide by zero or take the root of a
+    negative number where the scalar step would not: that value is not selected). The t
+    lookup, the stores of the output rows and the residual diagnostics (a call to ``exp``) run
+    lane by lane in scalar code.
+    """
+    ONE = _c4(1.0)
+    TWO = _c4(2.0)
+    ZERO = _c4(0.0)
+    NZ = _c4(-0.0)
+    NAN = _c4(np.nan)
+    DT = _c4(DROP_TOL)
+    LAM = _c4(lam)
+    GL = _c4(guard_lam)
+    thr = min_price_sd * min_price_sd
+    THR = _c4(thr)
+    w1 = vadd(vmul(LAM, _g4(s0, s1, s2, s3, I_LPW)), ONE)
+    lpmean = _g4(s0, s1, s2, s3, I_LPMEAN)
+    d1 = vsub(x1, lpmean)
+    w2 = vadd(vmul(GL, _g4(s0, s1, s2, s3, I_GW)), ONE)
+    gmean = _g4(s0, s1, s2, s3, I_GMEAN)
+    d2 = vsub(x1, gmean)
+    a = _g4(s0, s1, s2, s3, NS)
+    b = _g4(s0, s1, s2, s3, NS + 1)
+    A00 = _g4(s0, s1, s2, s3, NS + 2)
+    A01 = _g4(s0, s1, s2, s3, NS + 3)
+    A11 = _g4(s0, s1, s2, s3, NS + 5)
+    W = _g4(s0, s1, s2, s3, I_W)
+    V = _g4(s0, s1, s2, s3, I_V)
+    q_d1 = vdiv(d1, w1)
+    q_d2 = vdiv(d2, w2)
+    q_sq = vdiv(vmul(A01, A01), A00)
+    q_r = vdiv(A01, A00)
+    q_i00 = vdiv(ONE, A00)
+    q_vd = vdiv(V, vsub(W, TWO))
+    mean1 = vadd(lpmean, q_d1)
+    m2a = vadd(vmul(LAM, _g4(s0, s1, s2, s3, I_LPM2)), vmul(d1, vsub(x1, mean1)))
+    m2a = vsel(vlt(m2a, ZERO), ZERO, m2a)
+    mean2 = vadd(gmean, q_d2)
+    m2b = vadd(vmul(GL, _g4(s0, s1, s2, s3, I_GM2)), vmul(d2, vsub(x1, mean2)))
+    m2b = vsel(vlt(m2b, ZERO), ZERO, m2b)
+    sb0 = vsub(A11, q_sq)
+    v1 = vdiv(m2a, w1)
+    v2 = vdiv(m2b, w2)
+    p11 = vdiv(ONE, sb0)
+    _p4(s0, s1, s2, s3, I_LPW, w1)
+    _p4(s0, s1, s2, s3, I_LPMEAN, mean1)
+    _p4(s0, s1, s2, s3, I_LPM2, m2a)
+    _p4(s0, s1, s2, s3, I_GW, w2)
+    _p4(s0, s1, s2, s3, I_GMEAN, mean2)
+    _p4(s0, s1, s2, s3, I_GM2, m2b)
+    raw_low = vlt(v1, THR)
+    pause = vand(vlt(v2, THR), _c4(guard))
+    npaused = _g4(s0, s1, s2, s3, I_NPAUSED)
+    _p4(s0, s1, s2, s3, I_NPAUSED, vsel(pause, vadd(npaused, ONE), npaused))
+    _p4(s0, s1, s2, s3, I_PAUSED, vsel(pause, ONE, ZERO))
+    lt = vsel(pause, ONE, LAM)
+    ncd = 1 if band == BAND_CLASSIC else 6
+    t0 = NS + 10
+    first = veq(_g4(s0, s1, s2, s3, I_N), ZERO)
+    mu = vsel(first, x1, _g4(s0, s1, s2, s3, NS + 8))
+    nu = vsel(first, y, _g4(s0, s1, s2, s3, NS + 9))
+    _p4(s0, s1, s2, s3, NS + 8, mu)
+    _p4(s0, s1, s2, s3, NS + 9, nu)
+    xc = vsub(x1, mu)
+    yc = vsub(y, nu)
+    e = vsub(vsub(y, a), vmul(b, x1))
+    # classic predictive variance from the previous state, on every lane; kept where the
+    # scalar step computes it
+    p01 = vmul(vsub(NZ, q_r), p11)
+    p00 = vsub(q_i00, vmul(q_r, p01))
+    u1 = vadd(p01, vmul(p11, x1))
+    u0 = vadd(vadd(p00, vmul(p01, x1)), vmul(mu, u1))
+    s00 = _g4(s0, s1, s2, s3, t0)
+    s01 = _g4(s0, s1, s2, s3, t0 + ncd)
+    s11 = _g4(s0, s1, s2, s3, t0 + 2 * ncd)
+    q = vadd(vmul(u0, vadd(vmul(s00, u0), vmul(s01, u1))),
+             vmul(u1, vadd(vmul(s01, u0), vmul(s11, u1))))
+    zok = vand(vand(vand(vgt(A00, ZERO), vgt(A11, ZERO)), vgt(sb0, vmul(DT, A11))),
+               vand(vgt(vsub(W, TWO), ZERO), vgt(V, ZERO)))
+    zsd = vsel(zok, vsqrt(vmul(q_vd, vadd(ONE, q))), NAN)
+    # update the sums
+    A00 = vadd(vmul(lt, A00), ONE)
+    A01 = vadd(vmul(lt, A01), x1)
+    A11 = vadd(vmul(lt, A11), vmul(x1, x1))
+    c0 = vadd(vmul(lt, _g4(s0, s1, s2, s3, NS + 6)), y)
+    c1 = vadd(vmul(lt, _g4(s0, s1, s2, s3, NS + 7)), vmul(x1, y))
+    YY = vadd(vmul(lt, _g4(s0, s1, s2, s3, I_YY)), vmul(y, y))
+    W = vadd(vmul(lt, W), ONE)
+    l2 = vmul(lt, lt)
+    W2 = vadd(vmul(l2, _g4(s0, s1, s2, s3, I_W2)), ONE)
+    W3 = vadd(vmul(vmul(l2, lt), _g4(s0, s1, s2, s3, I_W3)), ONE)
+    _p4(s0, s1, s2, s3, I_W3, W3)
+    _p4(s0, s1, s2, s3, NS + 2, A00)
+    _p4(s0, s1, s2, s3, NS + 3, A01)
+    _p4(s0, s1, s2, s3, NS + 4, A01)
+    _p4(s0, s1, s2, s3, NS + 5, A11)
+    _p4(s0, s1, s2, s3, NS + 6, c0)
+    _p4(s0, s1, s2, s3, NS + 7, c1)
+    _p4(s0, s1, s2, s3, I_YY, YY)
+    _p4(s0, s1, s2, s3, I_W, W)
+    _p4(s0, s1, s2, s3, I_W2, W2)
+    _p4(s0, s1, s2, s3, I_N, vadd(_g4(s0, s1, s2, s3, I_N), ONE))
+    q_sq = vdiv(vmul(A01, A01), A00)
+    q_r = vdiv(A01, A00)
+    neff = vdiv(vmul(W, W), W2)
+    q_w3 = vdiv(W3, W)
+    z = vsel(zok, vdiv(e, zsd), NAN)
+    _p4(s0, s1, s2, s3, I_E, e)
+    _p4(s0, s1, s2, s3, I_ZSD, zsd)
+    _p4(s0, s1, s2, s3, I_Z, z)
+    sb = vsub(A11, q_sq)
+    identified = vand(vgt(A11, ZERO), vgt(sb, vmul(DT, A11)))
+    rank = vsel(identified, TWO, ONE)
+    hd = vsub(W2, vmul(rank, q_w3))
+    bq = vdiv(vsub(c1, vmul(q_r, c0)), sb)
+    p11 = vdiv(ONE, sb)
+    xs2 = vdiv(sb, W)
+    u_df = vdiv(ONE, vsub(neff, rank))
+    b = vsel(identified, bq, ZERO)
+    num = vsel(identified, vsub(c0, vmul(A01, b)), c0)
+    a = vdiv(num, A00)
+    hf = vdiv(W2, hd)
+    _p4(s0, s1, s2, s3, NS, a)
+    _p4(s0, s1, s2, s3, NS + 1, b)
+    V = vsub(vsub(YY, vmul(a, c0)), vmul(b, c1))
+    V = vsel(vlt(V, ZERO), ZERO, V)
+    _p4(s0, s1, s2, s3, I_V, V)
+    dof = vsub(W, rank)
+    vd = vdiv(V, dof)
+    p01 = vadd(vmul(vsub(NZ, q_r), p11), vmul(mu, p11))
+    if band == BAND_CLASSIC:
+        s00 = vadd(vmul(l2, _g4(s0, s1, s2, s3, t0)), ONE)
+        s01 = vadd(vmul(l2, _g4(s0, s1, s2, s3, t0 + 1)), xc)
+        s11 = vadd(vmul(l2, _g4(s0, s1, s2, s3, t0 + 2)), vmul(xc, xc))
+        _p4(s0, s1, s2, s3, t0, s00)
+        _p4(s0, s1, s2, s3, t0 + 1, s01)
+        _p4(s0, s1, s2, s3, t0 + 2, s11)
+        vb = vadd(vmul(p01, vadd(vmul(s00, p01), vmul(s01, p11))),
+                  vmul(p11, vadd(vmul(s01, p01), vmul(s11, p11))))
+        vb = vsel(vgt(W, rank), vmul(vb, vd), vb)
+    else:
+        x2 = vmul(xc, xc)
+        xy = vmul(xc, yc)
+        y2 = vmul(yc, yc)
+        T0, T1, T2, T3, T4, T5 = _meat_row4(s0, s1, s2, s3, t0, l2, ONE, xc, yc, x2, xy, y2)
+        T6, T7, T8, T9, T10, T11 = _meat_row4(s0, s1, s2, s3, t0 + 6, l2, xc, xc, yc, x2, xy,
+                                              y2)
+        T12, T13, T14, T15, T16, T17 = _meat_row4(s0, s1, s2, s3, t0 + 12, l2, x2, xc, yc,
+                                                  x2, xy, y2)
+        ac = vsub(vadd(a, vmul(mu, b)), nu)
+        g0 = vmul(ac, ac)
+        g1 = vmul(vmul(TWO, ac), b)
+        g2 = vmul(_c4(-2.0), ac)
+        g3 = vmul(b, b)
+        g4 = vmul(_c4(-2.0), b)
+        m00 = vadd(vadd(vadd(vadd(vadd(vmul(g0, T0), vmul(g1, T1)), vmul(g2, T2)),
+                             vmul(g3, T3)), vmul(g4, T4)), T5)
+        m01 = vadd(vadd(vadd(vadd(vadd(vmul(g0, T6), vmul(g1, T7)), vmul(g2, T8)),
+                             vmul(g3, T9)), vmul(g4, T10)), T11)
+        m11 = vadd(vadd(vadd(vadd(vadd(vmul(g0, T12), vmul(g1, T13)), vmul(g2, T14)),
+                             vmul(g3, T15)), vmul(g4, T16)), T17)
+        vb = vadd(vadd(vmul(vmul(p01, p01), m00), vmul(vmul(vmul(TWO, p01), p11), m01)),
+                  vmul(vmul(p11, p11), m11))
+        vb = vmul(vb, vsel(vgt(hd, ZERO), hf, NAN))
+    vb = vsel(identified, vb, NAN)
+    xsd = vsel(vgt(sb, ZERO), vsqrt(xs2), ZERO)
+    rsd = vsqrt(vd)
+    se = vsqrt(vb)
+    _p4(s0, s1, s2, s3, I_XSD, xsd)
+    lowvar = vor(raw_low, vlt(xsd, _c4(min_price_sd)))
+    # the output rows (as band_row and the end of step_two_band), lane-wise; the t quantile
+    # lane by lane
+    vok = vand(vgt(dof, ZERO), vgt(V, ZERO))
+    ok = vand(vand(identified, vok), vor(vgt(vb, ZERO), veq(vb, ZERO)))
+    warm = vor(vlt(neff, _c4(min_neff)), vlt(neff, _c4(4.0)))
+    q0 = t_lookup_inv(tq, neff[0] - rank[0], u_df[0]) if ok[0] else np.nan
+    q1 = t_lookup_inv(tq, neff[1] - rank[1], u_df[1]) if ok[1] else np.nan
+    q2 = t_lookup_inv(tq, neff[2] - rank[2], u_df[2]) if ok[2] else np.nan
+    q3 = t_lookup_inv(tq, neff[3] - rank[3], u_df[3]) if ok[3] else np.nan
+    tqv = (q0, q1, q2, q3)
+    beta = vsel(vor(ok, identified), b, NAN)
+    seo = vsel(ok, se, NAN)
+    lo = vsel(ok, vsub(b, vmul(tqv, se)), NAN)
+    hi = vsel(ok, vadd(b, vmul(tqv, se)), NAN)
+    WU = _c4(float(ST_WARMING_UP))
+    LV = _c4(float(ST_LOW_VARIATION))
+    status = vsel(ok, vsel(vor(warm, vnot(veq(tqv, tqv))), WU,
+                           vsel(lowvar, LV, _c4(float(ST_OK)))),
+                  vsel(vor(identified, warm), WU, LV))
+    rso = vsel(vok, rsd, NAN)
+    bnd = _c4(float(band))
+    _lane_row(o0, beta[0], seo[0], lo[0], hi[0], neff[0], status[0], e[0], z[0], a[0], rso[0],
+              bnd[0], y[0])
+    _lane_row(o1, beta[1], seo[1], lo[1], hi[1], neff[1], status[1], e[1], z[1], a[1], rso[1],
+              bnd[1], y[1])
+    _lane_row(o2, beta[2], seo[2], lo[2], hi[2], neff[2], status[2], e[2], z[2], a[2], rso[2],
+              bnd[2], y[2])
+    _lane_row(o3, beta[3], seo[3], lo[3], hi[3], neff[3], status[3], e[3], z[3], a[3], rso[3],
+              bnd[3], y[3])
+    diagnostics(s0, y[0] - a[0] - b[0] * x1[0], lt[0])
+    diagnostics(s1, y[1] - a[1] - b[1] * x1[1], lt[1])
+    diagnostics(s2, y[2] - a[2] - b[2] * x1[2], lt[2])
+    diagnostics(s3, y[3] - a[3] - b[3] * x1[3], lt[3])
+
+
+@njit(cache=True, inline="always")
+def run_two_lanes(state, sid, X, y, band, lam, guard, guard_lam, min_price_sd, min_neff, tq,
+                  out):
+    """The k = 2 rows in order, four rows at a time when they belong to four different series
+    (:func:`step_two_lanes`), else one row (:func:`step_two_band`)."""
+    n = X.shape[0]
+    j = 0
+    while j + 4 <= n:
+        i0 = sid[j]
+        i1 = sid[j + 1]
+        if i0 != i1:
+            i2 = sid[j + 2]
+            i3 = sid[j + 3]
+            if i0 != i2 and i0 != i3 and i1 != i2 and i1 != i3 and i2 != i3:
+                step_two_lanes(state[i0], state[i1], state[i2], state[i3], out[j], out[j + 1],
+                               out[j + 2], out[j + 3],
+                               (X[j, 1], X[j + 1, 1], X[j + 2, 1], X[j + 3, 1]),
+                               (y[j], y[j + 1], y[j + 2], y[j + 3]), band, lam, guard,
+                               guard_lam, min_price_sd, min_neff, tq)
+                j += 4
+                continue
+            step_two_band(state[i0], X[j, 1], y[j], band, lam, guard, guard_lam,
+                          min_price_sd, min_neff, tq, out[j])
+            j += 1
+            continue
+        # a run of one series' rows (a burst, one long series): row by row to its end
+        step_two_band(state[i0], X[j, 1], y[j], band, lam, guard, guard_lam, min_price_sd,
+                      min_neff, tq, out[j])
+        j += 1
+        while j + 1 < n and sid[j + 1] == i0:
+            step_two_band(state[i0], X[j, 1], y[j], band, lam, guard, guard_lam,
+                          min_price_sd, min_neff, tq, out[j])
+            j += 1
+    while j < n:
+        step_two_band(state[sid[j]], X[j, 1], y[j], band, lam, guard, guard_lam, min_price_sd,
+                      min_neff, tq, out[j])
+        j += 1
+
+
 @njit(cache=True, inline="always")
 def step_two(st, x1, y, lam, guard, guard_lam, min_price_sd, min_neff, tq, out):
     """k = 2, classic band (the form the detector threshold design simulates)."""
@@ -640,13 +954,18 @@ def rls_run(state, sid, X, y, band, lags, lam, guard, guard_lam, min_price_sd, m
     and the reference-count updates on the per-row slices (``state[sid[j]]``, ``out[j]``) cost
     more than the slices themselves. The choice between the written-out k = 2 step and the
     general one is made once, outside the row loop (the same functions :func:`rls_step` picks,
-    so the outputs are identical to the bit).
+    so the outputs are identical to the bit). The k = 2 rows go four at a time through
+    :func:`step_two_lanes` whenever four consecutive rows belong to four different series
+    (:func:`run_two_lanes`; rows in arrival order almost always do), one at a time otherwise;
+    the band is fixed per compiled loop, so the lane step has no band branch.
     """
     k = X.shape[1]
-    if k == 2 and band != BAND_HAC:
-        for j in range(X.shape[0]):
-            step_two_band(state[sid[j]], X[j, 1], y[j], band, lam, guard, guard_lam,
-                          min_price_sd, min_neff, tq, out[j])
+    if k == 2 and band == BAND_CLASSIC:
+        run_two_lanes(state, sid, X, y, BAND_CLASSIC, lam, guard, guard_lam, min_price_sd,
+                      min_neff, tq, out)
+    elif k == 2 and band == BAND_HC:
+        run_two_lanes(state, sid, X, y, BAND_HC, lam, guard, guard_lam, min_price_sd,
+                      min_neff, tq, out)
     else:
         for j in range(X.shape[0]):
             linear_step(state[sid[j]], X[j], y[j], k, band, lags, lam, guard, guard_lam,
