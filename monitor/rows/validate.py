@@ -472,20 +472,12 @@ class SeriesGate:
 
 @njit(cache=True, inline="always")
 def ring_median(ring, s, c, tmp):
-    """Median of ``ring[s, :c]`` without allocating: an insertion sort of a copy in ``tmp``
-    (c <= WINDOW = 15 values); the mean of the two middle values when c is even, the same
-    arithmetic as ``np.median`` (``(a + b) / 2``), so the result is identical."""
-    for i in range(c):
-        v = ring[s, i]
-        k = i
-        while k > 0 and tmp[k - 1] > v:
-            tmp[k] = tmp[k - 1]
-            k -= 1
-        tmp[k] = v
-    half = c >> 1
-    if c & 1:
-        return tmp[half]
-    return (tmp[half - 1] + tmp[half]) / 2
+    """Median of ``ring[s, :c]`` without allocating: :func:`_sorted_copy` into ``tmp`` (c <=
+    WINDOW = 15 values), then :func:`_sorted_median`, the arithmetic the ordered checks use;
+    the mean of the two middle values when c is even is ``np.median``'s (``(a + b) / 2``), so
+    the result is identical (tests/test_validate.py)."""
+    _sorted_copy(ring, s, c, tmp)
+    return _sorted_median(tmp, c)
 
 
 @njit(cache=True, inline="always")
@@ -502,7 +494,8 @@ def _sorted_copy(ring, s, c, out):
 
 @njit(cache=True, inline="always")
 def _sorted_median(srt, c):
-    """Median of the ascending ``srt[:c]``: the arithmetic of :func:`ring_median`."""
+    """Median of the ascending ``srt[:c]`` (the mean of the two middle values when ``c`` is
+    even, as ``np.median``)."""
     half = c >> 1
     if c & 1:
         return srt[half]
@@ -546,8 +539,9 @@ def ordered_checks(sid, ts, lp, last_ts, ring, ring_ts, count, lateness_ns, log_
     The medians come from ascending copies of the series' two windows, built from the rings
     when the walk reaches a series and kept in order as values enter (one insertion and one
     removal per accepted row, instead of sorting the window for every row): the same values in
-    the same order as :func:`ring_median`'s sort, so the same medians to the bit (rows of a
-    series need not be adjacent: the copies are rebuilt whenever the series changes).
+    the same order as a sort of the window (:func:`ring_median`), so the same medians to the
+    bit (rows of a series need not be adjacent: the copies are rebuilt whenever the series
+    changes).
     """
     n = sid.shape[0]
     w = ring.shape[1]
