@@ -289,16 +289,23 @@ def _packed(a, b):
     return out
 
 
-def test_packed_division_and_sqrt_equal_scalar_ieee_operations(rng):
-    """Lane by lane equal to numpy's float64 division and square root (IEEE 754 correctly
-    rounded), with zeros, infinities, NaN, negative and subnormal values among the operands."""
+def _operands(rng):
+    """Pairs of operands for the lane-wise operation tests: 4,000 random values over 60
+    decades, then every pair of special values (zeros, infinities, NaN, subnormals, extremes);
+    ``n`` the count in whole groups of four lanes."""
     special = np.array([0.0, -0.0, 1.0, -1.0, np.inf, -np.inf, np.nan, 5e-324, 2.2e-308,
                         1.7e308, 3.0, 1e-300])
     a = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
                         np.repeat(special, special.size)])
     b = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
                         np.tile(special, special.size)])
-    n = a.size - a.size % 4
+    return a, b, a.size - a.size % 4
+
+
+def test_packed_division_and_sqrt_equal_scalar_ieee_operations(rng):
+    """Lane by lane equal to numpy's float64 division and square root (IEEE 754 correctly
+    rounded), with zeros, infinities, NaN, negative and subnormal values among the operands."""
+    a, b, n = _operands(rng)
     got = _packed(a[:n], b[:n])
     with np.errstate(all="ignore"):
         q = a[:n] / b[:n]
@@ -401,13 +408,7 @@ def test_lane_operations_equal_scalar_operations(rng):
     subtract, multiply, divide, square root, comparisons, masks and their negation, select)
     equal the scalar operations of compiled code lane by lane, to the bit (NaN's bits
     included), with zeros, infinities, NaN, negative and subnormal operands."""
-    special = np.array([0.0, -0.0, 1.0, -1.0, np.inf, -np.inf, np.nan, 5e-324, 2.2e-308,
-                        1.7e308, 3.0, 1e-300])
-    a = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
-                        np.repeat(special, special.size)])
-    b = np.concatenate([rng.normal(0, 1, 4000) * 10.0 ** rng.integers(-30, 30, 4000),
-                        np.tile(special, special.size)])
-    n = a.size - a.size % 4
+    a, b, n = _operands(rng)
     got = np.empty((n, 10))
     want = np.empty((n, 10))
     _lane_ops(a[:n], b[:n], got)
