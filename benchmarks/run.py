@@ -77,6 +77,31 @@ def update_section(text: str, group: str, section: str) -> str:
     return text.rstrip("\n") + "\n\n" + section + "\n"
 
 
+#: the line under a full run's "## Figures" naming the groups re-measured in partial runs
+SUPERSEDED = "Re-measured since in partial runs (their sections below; rows removed here): "
+
+
+def drop_superseded(text: str, group: str, rows: list[Row]) -> str:
+    """``text`` with ``rows``' lines (table rows, missed-target and ratio lines) taken out of
+    the full run's part (before the first partial section), and ``group`` named under its
+    "## Figures": a partial run replaces a group's figures, so the full run's older ones must
+    not stand beside them."""
+    cut = text.find("<!-- partial run:")
+    head, tail = (text, "") if cut < 0 else (text[:cut], text[cut:])
+    names = {r.figure for r in rows}
+    starts = tuple(p for n in names for p in (f"| **{n}** |", f"| &nbsp;&nbsp;↳ {n} |",
+                                               f"- **{n}**:", f"- {n}:"))
+    lines = [ln for ln in head.split("\n") if not ln.startswith(starts)]
+    if "## Figures" in lines:
+        i = lines.index("## Figures")
+        if i + 2 < len(lines) and lines[i + 2].startswith(SUPERSEDED):
+            done = lines[i + 2][len(SUPERSEDED):].rstrip(".").split(", ")
+            lines[i + 2] = SUPERSEDED + ", ".join(sorted(set(done) | {f"`{group}`"})) + "."
+        else:
+            lines[i + 1:i + 1] = ["", SUPERSEDED + f"`{group}`."]
+    return "\n".join(lines) + tail
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m benchmarks.run", description=__doc__,
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -145,6 +170,7 @@ def main(argv: list[str] | None = None) -> int:
             got = [r for r in rows if r.group == g]
             text = update_section(text, g, partial_section(g, got, info, elapsed,
                                                            group_sections.get(g, [])))
+            text = drop_superseded(text, g, got)
         target.write_text(text)
         print(f"\nupdated {target} (groups {', '.join(groups)})")
     elif out is not None:

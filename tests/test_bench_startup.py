@@ -84,6 +84,28 @@ def test_partial_update_replaces_only_its_group_section():
     assert a2.count("<!-- partial run: startup -->") == 1
 
 
+def test_partial_update_takes_its_rows_out_of_the_full_run():
+    """A partial run's figures replace the full run's: their table rows, missed-target and ratio
+    lines leave the full run's part (not the partial sections), and the group is named there."""
+    from benchmarks.common import Row
+    from benchmarks.run import SUPERSEDED, drop_superseded
+
+    full = ("# results\n\n## Figures\n\n| figure | v |\n|---|---|\n| **fast thing** | 1 |\n"
+            "| &nbsp;&nbsp;↳ slow ref | 2 |\n| **other thing** | 3 |\n\n## Missed targets\n\n"
+            "- **fast thing**: 1 against 2.\n\n## Ratios against the references\n\n"
+            "- fast thing: 1; slow ref 2\n- other thing: 3\n\n"
+            "<!-- partial run: g -->\n| **fast thing** | 9 |\n<!-- end of partial run: g -->\n")
+    rows = [Row("fast thing", 9.0, "x", [9.0]), Row("slow ref", 2.0, "x", [2.0], reference=True)]
+    out = drop_superseded(full, "g", rows)
+    head, tail = out.split("<!-- partial run: g -->")
+    assert "fast thing" not in head and "slow ref" not in head
+    assert "| **other thing** | 3 |" in head and "- other thing: 3" in head
+    assert "| **fast thing** | 9 |" in tail
+    assert f"{SUPERSEDED}`g`." in head
+    again = drop_superseded(out, "h", [])
+    assert f"{SUPERSEDED}`g`, `h`." in again and again.count(SUPERSEDED) == 1
+
+
 def test_partial_section_keeps_the_whole_tables_its_group_added():
     """A partial run of the detection group writes its grid tables (ctx.sections) into its
     section of RESULTS.md, not only the summary rows (they were dropped before)."""
