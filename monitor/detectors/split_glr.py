@@ -861,14 +861,19 @@ def _add_ref(st, at, n, sx, sxx, sy, sxy, cap):
 
 
 @njit(cache=True, inline="always")
+def _al_take(st, at, b):
+    """The aligned candidate at ``b`` resets: CUSUM 0, its sums the current window's."""
+    st[b] = 0.0
+    st[b + 1] = 1.0
+    for m in range(5):
+        st[b + 2 + m] = st[at + C0 + m]
+
+
+@njit(cache=True, inline="always")
 def _al_reset(st, at):
     """The aligned candidates restart at the current sums (the window restarted)."""
     for d in range(NAL):
-        b = at + AL0 + AL_W * d
-        st[b] = 0.0
-        st[b + 1] = 1.0
-        for m in range(5):
-            st[b + 2 + m] = st[at + C0 + m]
+        _al_take(st, at, at + AL0 + AL_W * d)
 
 
 @njit(cache=True, inline="always")
@@ -900,10 +905,7 @@ def _al_step(st, at, e, s2):
         b = at + AL0 + AL_W * d
         c = st[b] + (z if d % 2 == 0 else -z) - AL_KS[d // 2]
         if c <= 0.0 or not (s2 > 0.0):
-            st[b] = 0.0
-            st[b + 1] = 1.0
-            for m in range(5):
-                st[b + 2 + m] = st[at + C0 + m]
+            _al_take(st, at, b)
         else:
             st[b] = c
 

@@ -174,10 +174,14 @@ REJECT_COLUMNS = ["row", "series", "ts", "field", "value", "reason", "raw"]
 
 
 @njit(cache=True)
-def _edges_plain(offsets, data, valid, out):  # pragma: no cover - compiled
-    for i in range(out.shape[0]):
+def _edges_plain(offsets, data):  # pragma: no cover - compiled
+    """True when every field (``data[offsets[i]:offsets[i + 1]]``) is non-empty and starts and
+    ends with a byte in ``!`` .. ``~``."""
+    for i in range(offsets.shape[0] - 1):
         a, b = offsets[i], offsets[i + 1]
-        out[i] = (valid[i] and b > a and 33 <= data[a] <= 126 and 33 <= data[b - 1] <= 126)
+        if not (b > a and 33 <= data[a] <= 126 and 33 <= data[b - 1] <= 126):
+            return False
+    return True
 
 
 def plain_text(arr) -> bool:
@@ -198,9 +202,7 @@ def plain_text(arr) -> bool:
     wide = pa.types.is_large_string(arr.type)
     offsets = np.frombuffer(bufs[1], np.int64 if wide else np.int32)[arr.offset:arr.offset + n + 1]
     data = np.frombuffer(bufs[2], np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
-    out = np.empty(n, bool)
-    _edges_plain(np.asarray(offsets, np.int64), data, np.ones(n, bool), out)
-    return bool(out.all())
+    return bool(_edges_plain(np.asarray(offsets, np.int64), data))
 
 
 def _is_blank(col: pd.Series) -> np.ndarray:
@@ -481,15 +483,20 @@ def ring_median(ring, s, c, tmp):
 
 
 @njit(cache=True, inline="always")
+def _insert(srt, c, v):
+    """``srt[:c + 1]``: ``v`` inserted into the ascending ``srt[:c]`` (after equal values)."""
+    k = c
+    while k > 0 and srt[k - 1] > v:
+        srt[k] = srt[k - 1]
+        k -= 1
+    srt[k] = v
+
+
+@njit(cache=True, inline="always")
 def _sorted_copy(ring, s, c, out):
     """``out[:c]`` = ``ring[s, :c]`` in ascending order (insertion sort)."""
     for i in range(c):
-        v = ring[s, i]
-        k = i
-        while k > 0 and out[k - 1] > v:
-            out[k] = out[k - 1]
-            k -= 1
-        out[k] = v
+        _insert(out, i, ring[s, i])
 
 
 @njit(cache=True, inline="always")
@@ -517,11 +524,7 @@ def _sorted_push(srt, c, w, old, new):
             srt[k] = srt[k + 1]
             k += 1
         c -= 1
-    k = c
-    while k > 0 and srt[k - 1] > new:
-        srt[k] = srt[k - 1]
-        k -= 1
-    srt[k] = new
+    _insert(srt, c, new)
     return True
 
 
