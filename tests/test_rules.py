@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -93,6 +94,20 @@ def test_effect_of_a_price_rise_is_exact():
     for b in (-0.5, -1.5, -2.0, -3.2, 0.4):
         assert effect_of_10pct(b) == f"{100 * (1.1 ** b - 1):+.1f}%"
     assert effect_of_10pct(-2.0) == "-17.4%" and effect_of_10pct(math.nan) == "unknown"
+
+
+def test_effect_of_a_price_rise_of_an_extreme_b_does_not_overflow():
+    # 1.1^b overflows a float64 above b ~ 7,447 (log(1.8e308) / log(1.1)); such an estimate
+    # (b not identified) once gave "+inf%" and a numpy overflow warning in the alert text
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert effect_of_10pct(np.float64(8000.0)) == "more than +100000000%"
+        assert effect_of_10pct(np.float64(-8000.0)) == "-100.0%"
+        assert effect_of_10pct(150.0) == "more than +100000000%"      # 1.1^150 - 1 = 1.6e6
+        assert effect_of_10pct(140.0) == f"{100 * (1.1 ** 140 - 1):+.1f}%"   # 6.3e5: spelt out
+        r = np.full(NEV, np.nan)
+        r[EV_BETA] = 8000.0
+        assert details("elasticity_change", "open", r)["effect_of_10pct_price_rise"] == 1e6
 
 
 def test_messages_and_severities_per_kind():

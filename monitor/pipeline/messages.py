@@ -40,11 +40,29 @@ EVENT_COLUMNS = ["row", "sid", "kind", "action", "severity", "beta", "beta_lo", 
                  "message", "details"]
 
 
+#: largest quantity change (relative) the texts spell out: ``1.1^b - 1`` overflows a float64 for
+#: b above about 7,400 (an estimate that far out says only that b is not identified)
+EFFECT_CAP = 1e6
+
+
+def rise_effect(b: float) -> float:
+    """``1.1^b - 1`` (relative quantity change for a 10% price rise), at most
+    :data:`EFFECT_CAP`; NaN for a b that is not finite."""
+    if b is None or not math.isfinite(b):
+        return math.nan
+    v = float(b) * math.log(1.1)
+    return EFFECT_CAP if v > math.log1p(EFFECT_CAP) else math.expm1(v)
+
+
 def effect_of_10pct(b: float) -> str:
-    """Quantity change for a 10% price rise at elasticity b, ``1.1^b - 1``, as a percentage."""
-    if not math.isfinite(b):
+    """Quantity change for a 10% price rise at elasticity b, ``1.1^b - 1``, as a percentage
+    ("more than" where it reaches :data:`EFFECT_CAP`)."""
+    e = rise_effect(b)
+    if not math.isfinite(e):
         return "unknown"
-    return f"{100.0 * (1.1 ** b - 1.0):+.1f}%"
+    if e >= EFFECT_CAP:
+        return f"more than +{100.0 * EFFECT_CAP:.0f}%"
+    return f"{100.0 * e:+.1f}%"
 
 
 def _fmt_ts(ts: float, n: float) -> str:
@@ -95,7 +113,7 @@ def details(kind: str, action: str, r: np.ndarray) -> dict:
          "started_ts": _fmt_ts(r[EV_START_TS], r[EV_START_N]) if math.isfinite(r[EV_START_TS]) else None,
          "beta_before": _num(r[EV_OLD_B]), "beta_before_lo": _num(r[EV_OLD_LO]),
          "beta_before_hi": _num(r[EV_OLD_HI]),
-         "effect_of_10pct_price_rise": _num(1.1 ** r[EV_BETA] - 1.0) if math.isfinite(r[EV_BETA]) else None}
+         "effect_of_10pct_price_rise": _num(rise_effect(r[EV_BETA]))}
     if action == "clear":
         d.update(opened_observation=_int(r[EV_START_N]), open_for_observations=_int(r[EV_SIZE]),
                  alarms_while_open=_int(r[EV_COUNT]), superseded=bool(r[EV_SUPERSEDED] == 1.0))
