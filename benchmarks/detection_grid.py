@@ -131,6 +131,7 @@ class Outcome:
     obs: int = 0                                    # observations counted (from the first ok)
     start_obs: int = 0
     window_counts: dict = field(default_factory=dict)  # kind -> alerts in [tau, tau + W)
+    last_ec_before: np.ndarray | None = None        # (S,) last elasticity_change before tau, -1
 
 
 class Runner:
@@ -151,6 +152,12 @@ class Runner:
             est = self.est_from(cfg)
             self._pipes[key] = (est, self.Pipeline.from_config(cfg, est))
         return self._pipes[key]
+
+    def slope_threshold(self, arl0: float, controls: int) -> float:
+        """The slope chart's threshold ``h`` of the pipeline for this ARL0."""
+        from monitor.detectors import split_glr as SG
+
+        return float(self.pipeline(arl0, controls)[1]._gp[SG.Q_HS])
 
     def run(self, sim: Simulation, arl0: float, at: int) -> tuple[Outcome, np.ndarray, np.ndarray]:
         """elmon's outcome on ``sim`` (change to detect at observation ``at``), the innovations
@@ -217,6 +224,9 @@ def outcome(sim: Simulation, rows: np.ndarray, kinds: np.ndarray, cobs: np.ndarr
         # rows are in arrival order, so the first hit per series is its earliest
         np.minimum.at(d, s[sel], (t[sel] - at).astype(float))
         o.delay[name] = d
+    o.last_ec_before = np.full(S, -1, dtype=np.int64)
+    pre = (kinds == 0) & ~after
+    np.maximum.at(o.last_ec_before, s[pre], t[pre].astype(np.int64))
     o.first_kind = np.full(S, -1)
     o.first_delay = np.full(S, np.inf)
     o.change_err = np.full(S, np.nan)
@@ -233,6 +243,45 @@ def outcome(sim: Simulation, rows: np.ndarray, kinds: np.ndarray, cobs: np.ndarr
 
 
 # ---------------------------------------------------------------------------- references
+
+def oracle_delays(sim: Simulation, at: int, h: float, first: np.ndarray,
+                  horizon: int) -> np.ndarray:
+    """Delays (observations after ``at``; inf if none within ``horizon``) of a detector that
+    knows the change time and the noise sd: b before from the rows ``first[s] .. at - 1`` of
+    each series, b after from the rows since ``at`` (each sample with its own intercept, so a
+    level that moves with the change costs it nothing), alarm at the first row where
+    ``(b_A - b_B)^2 / (2 (v_A + v_B)) > h`` (elmon's slope threshold ``h``; ``v`` = sigma^2 /
+    the sample's centred Sxx). It needs no label and tests one change time only, so it is a
+    reference for what the rows allow, not a detector with the ARL0 (as in
+    :data:`HISTORY_BOUNDS`)."""
+    T, S = sim.n_obs, sim.n_series
+    x = sim.X[:, 1].reshape(T, S)
+    y = sim.y.reshape(T, S)
+    sig2 = sim.sigma.reshape(T, S) ** 2
+    cols = np.arange(S)
+
+    def sums(rows_x, rows_y):
+        return [np.cumsum(v, axis=0) for v in (np.ones_like(rows_x), rows_x, rows_x * rows_x,
+                                                rows_y, rows_x * rows_y)]
+
+    def slope(n, sx, sxx, sy, sxy):
+        with np.errstate(all="ignore"):
+            cxx = sxx - sx * sx / n
+            cxy = sxy - sx * sy / n
+            ok = cxx > 1e-12 * n
+            return np.where(ok, cxy / np.where(ok, cxx, 1.0), np.nan), np.where(ok, cxx, np.nan)
+
+    cb = [np.vstack([np.zeros((1, S)), c]) for c in sums(x[:at], y[:at])]
+    f = np.clip(first, 0, at - 1)
+    bb, cxb = slope(*[c[at] - c[f, cols] for c in cb])
+    vb = sig2[at - 1] / cxb
+    end = min(T, at + horizon)
+    ba, cxa = slope(*sums(x[at:end], y[at:end]))
+    with np.errstate(all="ignore"):
+        g = (ba - bb) ** 2 / (2.0 * (sig2[at:end] / cxa + vb))
+    hit = np.nan_to_num(g, nan=0.0) > h
+    return np.where(hit.any(axis=0), hit.argmax(axis=0).astype(float), np.inf)
+
 
 def old_outcome(sim: Simulation, arl0: float, at: int, est) -> tuple[Outcome, np.ndarray]:
     from benchmarks.detection_old_slope import run_old_slope
@@ -333,7 +382,7 @@ def measure(n_slope: int = 200, n_control: int = 500, n_level: int = 500, n_rive
             sim = simulate(sc, n_slope, seed)
             bound = sim.bound(arl0)
             at = sc.change_at
-            el, z, _ = R.run(sim, arl0, at)
+            el, z, start = R.run(sim, arl0, at)
             old, _ = old_outcome(sim, arl0, at, R.pipeline(arl0, sc.controls)[0])
             rec = {"cell": sc.name, **sc.tags, "size": sc.size, "arl0": arl0, "bound": bound,
                    "horizon": sc.n_obs - at, "history": at}
@@ -348,6 +397,14 @@ def measure(n_slope: int = 200, n_control: int = 500, n_level: int = 500, n_rive
                 o = river_outcome(sim, z, arl0, at, n_river, which)
                 d = o.first_delay
                 rec[which] = {"ratio": med_ratio(d, bound), "within5": within(d, 5 * bound)}
+            # the known-time oracle with every row before the change, and with only the rows
+            # since elmon's last elasticity_change before it (elmon starts again there)
+            h = R.slope_threshold(arl0, sc.controls)
+            horizon = sc.n_obs - at
+            for name, first in (("oracle", start),
+                                ("oracle_since", np.maximum(start, el.last_ec_before + 1))):
+                d = oracle_delays(sim, at, h, first, horizon)
+                rec[name] = {"ratio": med_ratio(d, bound), "within5": within(d, 5 * bound)}
             g.slope.append(rec)
             log(f"    slope {sc.name} arl0 {arl0:.0f}: bound {bound:.0f}, elmon "
                 f"{rec['elmon']['ratio']:.2f}x ({rec['elmon']['within5']:.0%} in 5x, label "

@@ -40,11 +40,33 @@ def poisson_ci(count: int, expected: float) -> tuple[float, float]:
     return lo / expected, hi / expected
 
 
+def _oracle_cells(r: dict) -> list[str]:
+    """The known-time oracle's delay / bound and share within 5x (in brackets: with only the
+    rows since elmon's last elasticity_change before the change); '-' for records of runs
+    made before the oracle was measured."""
+    a, b = r.get("oracle"), r.get("oracle_since")
+    if not a or not b:
+        return ["-", "-"]
+    return [_r(a["ratio"]), f"{_pct(a['within5'])} ({_pct(b['within5'])})"]
+
+
+def _oracle_note(r: dict, key: str) -> str:
+    """'; known-time oracle there: ...' for a target row's check (empty for older records)."""
+    a, b = r.get("oracle"), r.get("oracle_since")
+    if not a or not b:
+        return ""
+    if key == "ratio":
+        return f"; the known-time oracle there: {_r(a['ratio'])}x"
+    return (f" (the known-time oracle there: {_pct(a['within5'])}, with only the rows since "
+            f"elmon's last elasticity_change before the change {_pct(b['within5'])})")
+
+
 def slope_table(g: Grid) -> str:
     head = ("| prices | change | db | ARL0 | bound (obs) | rows before the change | elmon delay / bound | elmon ≤ 5x bound "
-            "| label right (ceiling) | \\|τ̂ − τ\\| / delay | old slope chart delay / bound | old ≤ 5x "
+            "| label right (ceiling) | \\|τ̂ − τ\\| / delay | known-time oracle delay / bound "
+            "| oracle ≤ 5x (with elmon's history) | old slope chart delay / bound | old ≤ 5x "
             "| PageHinkley on z | PH ≤ 5x | ADWIN on z | ADWIN ≤ 5x |")
-    lines = [head, "|" + "---|" * 16]
+    lines = [head, "|" + "---|" * 18]
     for r in g.slope:
         e, o = r["elmon"], r["old"]
         md = e["median_delay"]
@@ -52,7 +74,8 @@ def slope_table(g: Grid) -> str:
         lines.append("| " + " | ".join([
             r["pattern"], r["form"], f"{r['size']:g}", f"{r['arl0']:,.0f}", f"{r['bound']:.0f}",
             f"{r.get('history', 600):,}", _r(e["ratio"]), _pct(e["within5"]),
-            f"{_pct(e['label'])} ({_pct(e.get('label_ceiling', math.nan))})", _r(cerr), _r(o["ratio"]),
+            f"{_pct(e['label'])} ({_pct(e.get('label_ceiling', math.nan))})", _r(cerr),
+            *_oracle_cells(r), _r(o["ratio"]),
             _pct(o["within5"]), _r(r["ph"]["ratio"]), _pct(r["ph"]["within5"]),
             _r(r["adwin"]["ratio"]), _pct(r["adwin"]["within5"])]) + " |")
     return "\n".join(lines)
@@ -122,7 +145,12 @@ def section(g: Grid, title: str = "Detection against the information bound (issu
         "the chance that no in-control level_shift (1 / ARL0 per observation) opens between the "
         "change and the elasticity_change alert; change-time "
         "error over the median delay (target ≤ 0.5; the old chart's 'started' time is the start "
-        "of its excursion).", "",
+        "of its excursion); *known-time oracle*: a reference that knows the change time and the "
+        "noise sd, fits b before and after it (each with its own intercept) and alarms when "
+        "(b_A − b_B)² / (2 (v_A + v_B)) passes elmon's slope threshold; it tests one change time "
+        "and needs no label, so it shows what the rows allow (in brackets: the same oracle "
+        "with only the rows since elmon's last `elasticity_change` before the change, where elmon "
+        "starts again after an in-control alarm; benchmarks.detection_grid.oracle_delays).", "",
         "### Changes of the elasticity", "", slope_table(g), "",
         "### In control: alerts opened per 10,000 observations from the first usable estimate (count)", "",
         control_table(g), "",
@@ -152,11 +180,13 @@ def target_rows(g: Grid, prefix: str = "detection") -> list[Row]:
                         f"{len(recs)} cells)", v, "x", [v], target=f"<= {target:g}x",
                         met=v <= target, better="lower",
                         check=f"worst cell: {r['cell']} at ARL0 {r['arl0']:,.0f} (bound "
-                              f"{r['bound']:.0f} obs); the old slope chart's worst: {_r(ov)}x"))
+                              f"{r['bound']:.0f} obs{_oracle_note(r, 'ratio')}); the old slope "
+                              f"chart's worst: {_r(ov)}x"))
     v, r = worst(g.slope, "min", lambda r: r["elmon"]["within5"])
     rows.append(Row(f"{prefix}: share of changes of b detected within 5x the bound (worst cell)",
                     100 * v, "%", [100 * v], target=">= 95%", met=v >= 0.95,
-                    check=f"worst cell: {r['cell']} at ARL0 {r['arl0']:,.0f}"))
+                    check=f"worst cell: {r['cell']} at ARL0 {r['arl0']:,.0f}"
+                          f"{_oracle_note(r, 'within5')}"))
     # pure slope changes = pivots (no level change at the typical price); a change with the
     # intercept held moves the level too, so a level_shift first is not a wrong label there
     pivots = [r for r in g.slope if r.get("form") == "pivot"]

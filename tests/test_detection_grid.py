@@ -16,7 +16,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from benchmarks.detection_grid import KINDS, Runner, outcome
+from benchmarks.detection_grid import KINDS, Runner, oracle_delays, outcome
 from simulators.change_grid import Scenario, simulate
 
 ARL0 = 2000.0
@@ -121,6 +121,40 @@ def test_outcome_scores_delays_labels_and_rates():
     np.testing.assert_array_equal(o.first_kind, [1, 0, -1])
     np.testing.assert_array_equal(o.change_err[:2], [1.0, 4.0])
     assert o.counts == {KINDS[0]: 3, KINDS[1]: 1} and o.obs == 150
+    # the last elasticity_change before the change (elmon starts again there): series 1 at 10
+    np.testing.assert_array_equal(o.last_ec_before, [-1, 10, -1])
+
+
+def test_known_time_oracle_matches_two_regressions():
+    """The bench's known-time oracle against statsmodels: b before and after the change from
+    two OLS fits (each with its own intercept), variances sigma^2 (X'X)^-1 with the true sigma
+    (normalized_cov_params), first row where (b_A - b_B)^2 / (2 (v_A + v_B)) passes h; with
+    the before sample starting at a given row per series."""
+    sim = simulate(Scenario("t", prices="steps", change="slope_held", size=0.8, n_obs=400,
+                            change_at=250), 4, seed=3)
+    T, S, at, h = sim.n_obs, sim.n_series, 250, 4.68
+    first = np.array([0, 200, 150, 225])
+    got = oracle_delays(sim, at, h, first, T - at)
+    x = sim.X[:, 1].reshape(T, S)
+    y = sim.y.reshape(T, S)
+    sig2 = sim.sigma.reshape(T, S) ** 2
+
+    def fit(xs, ys):
+        if np.ptp(xs) == 0.0:
+            return np.nan, np.nan
+        r = sm.OLS(ys, sm.add_constant(xs, has_constant="add")).fit()
+        return r.params[1], r.normalized_cov_params[1, 1]
+
+    for s in range(S):
+        bb, cb = fit(x[first[s]:at, s], y[first[s]:at, s])
+        want = np.inf
+        for na in range(2, T - at + 1):
+            ba, ca = fit(x[at:at + na, s], y[at:at + na, s])
+            if np.isfinite(ba) and (ba - bb) ** 2 / (2 * (sig2[at, s] * ca + sig2[at - 1, s] * cb)) > h:
+                want = float(na - 1)
+                break
+        assert got[s] == want, (s, got[s], want)
+    assert np.isfinite(got).sum() >= 2          # the check is not vacuous
 
 
 # ---------------------------------------------------------------------------- detection
