@@ -452,10 +452,18 @@ def measure(n_slope: int = 200, n_control: int = 500, n_level: int = 500, n_rive
             sim = simulate(sc, n_slope, seed)
             at = sim.second_at
             bound = sim.bound(arl0, at=at)
-            el, _, _ = R.run(sim, arl0, at)
+            el, _, start = R.run(sim, arl0, at)
             old, _ = old_outcome(sim, arl0, at, R.pipeline(arl0, sc.controls)[0])
             key = "open" if sc.change == "two_slopes" else "fresh"
-            rec[key] = {"bound": bound,
+            # the known-time oracle: from the first change on (open) or every row (fresh), and
+            # with only the rows since elmon's last elasticity_change before the second change
+            h = R.slope_threshold(arl0, sc.controls)
+            first = np.maximum(start, sim.change_at) if key == "open" else start
+            orc = oracle_delays(sim, at, h, first, sc.n_obs - at)
+            orc_since = oracle_delays(sim, at, h, np.maximum(first, el.last_ec_before + 1),
+                                      sc.n_obs - at)
+            rec[key] = {"bound": bound, "oracle": float(np.median(orc)),
+                        "oracle_since": float(np.median(orc_since)),
                         "elmon": float(np.median(el.delay[KINDS[0]])),
                         "elmon_within5": within(el.delay[KINDS[0]], 5 * bound),
                         "old": float(np.median(old.delay[KINDS[0]])),

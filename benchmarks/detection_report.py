@@ -110,13 +110,16 @@ def level_table(g: Grid) -> str:
 
 def second_table(g: Grid) -> str:
     lines = ["| ARL0 | bound (obs) | elmon: first alert open | elmon: fresh series | "
-             "old chart: first alert open | old chart: fresh series |", "|" + "---|" * 6]
+             "known-time oracle: first change open (with elmon's history) | oracle: fresh series | "
+             "old chart: first alert open | old chart: fresh series |", "|" + "---|" * 8]
     for r in g.second:
         a, b = r["open"], r["fresh"]
+        orc = ([f"{_r(a['oracle'], 0)} ({_r(a['oracle_since'], 0)})", _r(b["oracle"], 0)]
+               if "oracle" in a and "oracle" in b else ["-", "-"])
         lines.append("| " + " | ".join([
             f"{r['arl0']:,.0f}", f"{b['bound']:.0f}",
             f"{_r(a['elmon'], 0)} ({_pct(a['elmon_within5'])} ≤ 5x)",
-            f"{_r(b['elmon'], 0)} ({_pct(b['elmon_within5'])})",
+            f"{_r(b['elmon'], 0)} ({_pct(b['elmon_within5'])})", *orc,
             f"{_r(a['old'], 0)} ({_pct(a['old_within5'])})",
             f"{_r(b['old'], 0)} ({_pct(b['old_within5'])})"]) + " |")
     return "\n".join(lines)
@@ -255,5 +258,10 @@ def target_rows(g: Grid, prefix: str = "detection") -> list[Row]:
                         f"median delay, ARL0 {r['arl0']:,.0f}", v, "x", [v], target="<= 1.25x",
                         met=v <= 1.25, better="lower",
                         check=f"{_r(a, 0)} vs {_r(b, 0)} observations (old chart: "
-                              f"{_r(r['open']['old'], 0)} vs {_r(r['fresh']['old'], 0)})"))
+                              f"{_r(r['open']['old'], 0)} vs {_r(r['fresh']['old'], 0)}"
+                              + (f"; known-time oracle with elmon's history "
+                                 f"{_r(r['open']['oracle_since'], 0)} vs "
+                                 f"{_r(r['fresh']['oracle'], 0)} fresh"
+                                 if "oracle_since" in r["open"] and "oracle" in r["fresh"]
+                                 else "") + ")"))
     return rows
