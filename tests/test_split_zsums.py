@@ -165,8 +165,9 @@ def test_the_aligned_candidates_sums_hold_their_rows_with_the_fits_current_coeff
     since its change time with ``y* = log q - c' z``, ``c`` the least-squares coefficients of
     all rows so far (numpy lstsq). A +2 sd level shift 1,100 rows before the end keeps the
     upward k = 0.5 CUSUM's candidate at the shift across a move of the window start.
-    Fails if zs_express skips the candidates (their sums keep older ``c``: off by about 1e-3
-    of log q per row here), or without their controls' sums (main before 5 December)."""
+    Fails if zs_express skips the candidates (Sy, Sxy off by up to 0.30 here) or the move of
+    the window start skips their controls' sums (0.13), or without those sums (main before 5
+    December)."""
     rng = np.random.default_rng(18)
     n, r = 2600, 1500
     x, z, y = _rows(rng, n)

@@ -730,7 +730,10 @@ def _level_g(st, at, na, mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb, ra, rb, s2,
 @njit(cache=True, inline="always")
 def _level_o(st, at, o, s2, kap, rs, rl, unit, weighted):
     """``G_l`` of :func:`_candidate_o` alone, the same arithmetic (the aligned candidates use
-    only it): -1 where undefined."""
+    only it): -1 where undefined. Written for speed, it measured no faster (the compiler
+    already dropped the unused outputs of the inlined :func:`_candidate_o`: pipeline, 1,000
+    series x 2,000 rows, 1.30-1.36 / 1.82-1.86 CPU s per million rows without / with a
+    control either way); kept because it says what the aligned candidates compute."""
     na = st[at + C0] - st[o]
     if na < 1.0 * unit or not (s2 > 0.0):
         return -1.0
