@@ -179,7 +179,9 @@ headline change (promotions collinear with the price) 13 / 32 / 28 / 56 / 32 -> 
 A state of the layout without these sums restores with them off (:data:`ZS_ON` 0): the
 response sums then keep each row's ``c`` as before, until a slope alarm drops every sum
 (:func:`reanchor_slope` turns them on; the pipeline sets the controls' count and ``c`` at
-the next row).
+the next row). A state of the layout without the aligned candidates' sums (``ZS_AL``, the
+block's last 48 floats) restores with them as zeros and the candidates unset, each until its
+CUSUM next resets (:meth:`monitor.pipeline.run.Pipeline.checked_state`).
 
 Start rule and re-anchoring
 ---------------------------
@@ -881,9 +883,9 @@ def _zs_zero(st, dst):
 @njit(cache=True, inline="always")
 def zs_express(st, at, c, c0):
     """Re-express every response sum (R, C, the checkpoints, L and the aligned candidates) with
-    the control coefficients ``c[c0:c0 + kz]`` instead of the ones they hold (``ZS_C``): the sums of ``y* =
-    y - c' z`` are linear in ``c``, so ``Sy* -= dc' Sz`` and ``Sxy* -= dc' Sxz`` with ``dc`` the
-    change of ``c``. A no-op while the sums are off."""
+    the control coefficients ``c[c0:c0 + kz]`` instead of the ones they hold (``ZS_C``): the
+    sums of ``y* = y - c' z`` are linear in ``c``, so ``Sy* -= dc' Sz`` and ``Sxy* -= dc' Sxz``
+    with ``dc`` the change of ``c``. A no-op while the sums are off."""
     kz = _kz(st, at)
     if kz == 0:
         return
