@@ -156,3 +156,101 @@ def test_only_a_pipeline_whose_rows_have_controls_carries_the_controls_sums():
     X = np.column_stack([np.ones(700), x])
     res = plain.run(np.zeros(700, np.int64), X, y, 1)
     assert np.array_equal(plain.checked_state(res.states[0]), res.states[0], equal_nan=True)
+
+
+def test_the_aligned_candidates_sums_hold_their_rows_with_the_fits_current_coefficients():
+    """The aligned level candidates (split_glr, "Labels") keep their controls' sums and are
+    re-expressed with the fit's ``c`` like the checkpoints: after every row each set
+    candidate's after sample (the window's sums less its own) equals the sums of the rows
+    since its change time with ``y* = log q - c' z``, ``c`` the least-squares coefficients of
+    all rows so far (numpy lstsq). A +2 sd level shift 1,100 rows before the end keeps the
+    upward k = 0.5 CUSUM's candidate at the shift across a move of the window start.
+    Fails if zs_express skips the candidates (Sy, Sxy off by up to 0.30 here) or the move of
+    the window start skips their controls' sums (0.13), or without those sums (main before 5
+    December)."""
+    rng = np.random.default_rng(18)
+    n, r = 2600, 1500
+    x, z, y = _rows(rng, n)
+    y[r:] += 0.1
+    st = np.zeros(SG.SPLIT_SIZE)
+    work = np.zeros(SC.SCRATCH)
+    est = np.zeros(64)
+    p = SG.params(1e9, 1e9)                                     # no alarms
+    A = np.column_stack([np.ones(n), x, z])
+    x0 = None
+    checked = across = 0
+    for j in range(n):
+        xj = np.r_[1.0, x[j], z[j]]
+        ys, ready = SC.fit_response(st, 0, xj, y[j], 4, est, work, 0, np.nan)
+        if not ready:
+            continue
+        x0 = x[j] if x0 is None else x0
+        e = y[j] - (3.0 - 0.2 * x[j] + 0.45 * z[j, 1] + 0.035 * z[j, 0])   # shift stays in e
+        SG.split_step(st, 0, x[j], ys, e, float(j), float(j), p)
+        if j < r - 50 or j % 7:
+            continue
+        c = np.linalg.lstsq(A[:j + 1], y[:j + 1], rcond=None)[0]
+        yst = y[:j + 1] - z[:j + 1] @ c[2:]
+        for d in range(SG.NAL):
+            b = SG.AL0 + SG.AL_W * d
+            if st[b + 1] == 0.0:
+                continue
+            na = int(round(st[SG.C0] - st[b + 2]))
+            if na < 2:
+                continue
+            rows = slice(j + 1 - na, j + 1)
+            np.testing.assert_allclose(st[SG.C0:SG.C0 + 5] - st[b + 2:b + 7],
+                                       _sums(x[rows], yst[rows], x0), rtol=1e-8, atol=1e-7)
+            checked += 1
+            across += na > int(st[SG.D_T]) % 1024          # taken before the window moved
+    assert checked > 100 and across > 20
+
+
+def test_a_state_saved_before_the_aligned_candidates_controls_sums_resumes():
+    """A state of the layout before the aligned candidates' controls' sums (main before 5
+    December: ``AL_ZS_SIZE`` floats fewer at the end of the controls' sums; and the one before
+    the aligned candidates as well) restores with those sums zero and the candidates unset,
+    everything else as it was, and runs on; each candidate comes back when its CUSUM next
+    resets, with its controls' sums taken from the window's."""
+    pipe, X, y = _run()
+    res = pipe.run(np.zeros(600, np.int64), X[:600], y[:600], 1)
+    row = res.states[0]
+    at = int(pipe._layout[L_SPLIT])
+    al, zal = at + SG.AL0, at + SG.ZS_AL
+    flags = slice(al + 1, al + SG.AL_SIZE, SG.AL_W)
+    assert np.all(row[flags] == 1.0) and np.any(row[zal:zal + SG.AL_ZS_SIZE] != 0.0)
+    old = np.concatenate([row[:zal], row[zal + SG.AL_ZS_SIZE:]])
+    up = pipe.checked_state(old)
+    assert np.array_equal(pipe.state_from_json(pipe.state_to_json(old)), up, equal_nan=True)
+    want = row.copy()
+    want[zal:zal + SG.AL_ZS_SIZE] = 0.0
+    want[flags] = 0.0
+    assert np.array_equal(up, want, equal_nan=True)
+    more = pipe.run(np.zeros(300, np.int64), X[600:], y[600:], 1, states=up[None, :].copy())
+    assert np.all(np.isfinite(more.out[:, K.O_BETA]))
+    s2 = more.states[0]
+    assert np.all(s2[flags] == 1.0)
+    assert np.any(s2[zal:zal + SG.AL_ZS_SIZE] != 0.0)
+    # the layout before the aligned candidates (with the controls' sums of then): both
+    # blocks come in as zeros, the rest as it was
+    older = np.concatenate([row[:al], row[al + SG.AL_SIZE:zal], row[zal + SG.AL_ZS_SIZE:]])
+    up2 = pipe.checked_state(older)
+    want[al:al + SG.AL_SIZE] = 0.0
+    assert np.array_equal(up2, want, equal_nan=True)
+
+
+def test_a_streaming_detector_saved_before_the_aligned_candidates_controls_sums_resumes():
+    # the streaming class has no controls: a state of main's layout before 5 December
+    # (AL_ZS_SIZE floats fewer) comes back with those sums as zeros, the rest exactly
+    from monitor.detectors.split_class import SplitGLR
+    rng = np.random.default_rng(7)
+    det = SplitGLR(arl0=20000)
+    for i in range(300):
+        x = rng.normal(0.0, 0.15)
+        det.update(x, 2.0 - x + rng.normal(0.0, 0.1), rng.normal(0.0, 0.1), ts=float(i))
+    saved = det.to_state()
+    full = np.array(saved["state"], dtype=float)
+    assert np.all(full[SG.ZS_AL:] == 0.0)
+    back = SplitGLR.from_state(dict(saved, state=list(full[:SG.ZS_AL])))
+    assert np.array_equal(back._state, full, equal_nan=True)
+    assert back.update(0.01, 2.0, 0.0, ts=300.0) is not None

@@ -177,6 +177,10 @@ class SplitGLR:
         p = dict(state["params"])
         det = cls(p.pop("arl0"), p.pop("h_slope"), p.pop("h_level"), **p)
         vec = floats_from_json(state["state"])
+        if vec.size in (S.SPLIT_SIZE - S.AL_ZS_SIZE, S.SPLIT_SIZE - S.AL_ZS_SIZE - S.AL_SIZE):
+            # saved before the aligned candidates' controls' sums (5 December 2026; this class
+            # has no controls, the sums are never read): zeros at the end
+            vec = np.concatenate([vec, np.zeros(S.AL_ZS_SIZE)])
         if vec.size in (S.SPLIT_SIZE - S.AL_SIZE, S.SPLIT_SIZE - S.AL_SIZE - S.ZS_SIZE,
                         S.SPLIT_SIZE - S.AL_SIZE - S.ZS_SIZE - S.HX_SIZE):
             # saved before the aligned level candidates (5 December 2026): zeros, flags off

@@ -148,9 +148,11 @@ and ``sum w x z_k`` (for L the centred ``sum (x - xbar)(z_k - zbar_k)``), which 
 move of the response sums (the cascade, the window start moving into R, the cap, the
 re-anchorings), and when the fit's ``c`` changes by ``dc`` each response sum is re-expressed:
 ``Sy -= dc' Sz``, ``Sxy -= dc' Sxz`` (:func:`zs_express`, called by the pipeline before each
-row; the row's controls come in ``ZS_ROW``). 2 x 6 floats for R, C and each of the 11
-checkpoints, 6 for L, 14 of bookkeeping: :data:`ZS_SIZE` = 176, only in pipelines whose rows
-have controls (the pipeline's split block ends at :data:`ZS0` otherwise, and the block is
+row; the row's controls come in ``ZS_ROW``). The aligned level candidates ("Labels") keep
+theirs the same way (taken with the window's at a CUSUM reset, moved with the window start,
+re-expressed, cleared). 2 x 6 floats for R, C, each of the 11 checkpoints and each of the 4
+aligned candidates, 6 for L, 14 of bookkeeping: :data:`ZS_SIZE` = 224, only in pipelines whose
+rows have controls (the pipeline's split block ends at :data:`ZS0` otherwise, and the block is
 touched only while the control fit is on).
 
 Why: before, each row entered its sums with the ``c`` the fit had when the row came. While the
@@ -177,7 +179,9 @@ headline change (promotions collinear with the price) 13 / 32 / 28 / 56 / 32 -> 
 A state of the layout without these sums restores with them off (:data:`ZS_ON` 0): the
 response sums then keep each row's ``c`` as before, until a slope alarm drops every sum
 (:func:`reanchor_slope` turns them on; the pipeline sets the controls' count and ``c`` at
-the next row).
+the next row). A state of the layout without the aligned candidates' sums (``ZS_AL``, the
+block's last 48 floats) restores with them as zeros and the candidates unset, each until its
+CUSUM next resets (:meth:`monitor.pipeline.run.Pipeline.checked_state`).
 
 Start rule and re-anchoring
 ---------------------------
@@ -247,8 +251,21 @@ with the intercept held under step prices (a level step of ``db log p0`` with it
 opens ``elasticity_change`` in the first rows from the misplaced candidates; it waits for the
 price to move and for the level alarm, and is found later (median 97.5 -> 105.5 rows for db
 0.5, 68 -> 75 for db 0.8 at ARL0 2,000; 130.5 -> 138.5 and 73.5 -> 79.5 at 20,000; 200 series).
-Series whose controls' sums are kept (:func:`_kz` > 0) have no aligned candidates (their sums
-are not re-expressed with ``c``).
+Series with controls have them too: each candidate's controls' sums are kept beside its
+response sums and re-expressed with the fit's ``c`` ("The controls' sums"; before, a series
+whose controls' sums were kept had none). Measured (pipeline, seed 12, ``elasticity_change``
+in the 500 rows after +20% / -20% / -50% shifts, 500 series at ARL0 2,000 and 1,000 at 20,000;
+design 125 and 25): step prices with a control drawn apart from the price (``z ~ N(0,
+0.15^2)``, coefficient 0.5) 75 / 72 / 90 -> 53 / 48 / 41 and 56 / 49 / 101 -> 28 / 15 / 15;
+the grid's ``collinear stretch`` (independent prices, where the candidates matter little)
+105 / 96 / 95 -> 104 / 94 / 93 and 15 / 33 / 24 -> 15 / 32 / 21. In control within a few
+alerts (steps with the control, slope / level alerts: 210 / 146 -> 202 / 145 at 2,000, 71 /
+29 -> 68 / 30 at 20,000; collinear stretch 430 / 559 -> 429 / 557 and 90 / 84 -> 90 / 84). The
+cost is the one above, now for series with controls too (steps with the control, 200 series,
+median delay at ARL0 2,000 / 20,000): a change of b with the intercept held 103 -> 115 / 128.5
+-> 139 rows (db 0.5), 64 -> 73.5 / 69 -> 77.5 (db 0.8); pivots 79.5 -> 81.5 / 109 -> 109 (db
+0.5), 49.5 -> 54.5 / 57.5 -> 61 (db 0.8); the collinear stretch's pivots and held changes
+within a row of before.
 
 After a *slope* alarm (argmax checkpoint ``j``) every sum is dropped
 (:func:`reanchor_slope`), the slope chart restarts under the start rule on new rows, and a
@@ -319,16 +336,6 @@ HX_C = HX0 + 1
 NHX = 7
 HX_SLOT = HX_C + 2
 HX_SIZE = 3 + 2 * NHX
-#: the controls' sums (module docstring, "The controls' sums"): a flag (the sums are complete
-#: and the response sums are in units of the current ``c``), the number of controls ``kz``
-#: (at most NCF), the ``c`` the response sums are expressed with, the current row's controls,
-#: then ``sum w z_k`` and ``sum w x z_k`` of the reference R, the current window C and each
-#: checkpoint, and the centred ``sum (x - xbar)(z_k - zbar_k)`` of the level-free part L.
-#: Appended after the sums of x^3, x^4, so that a state of the previous layout restores by
-#: padding zeros (flag 0: the response sums keep the control fit's ``c`` as it was when each
-#: row came, as before, until every sum is next dropped by a slope alarm). Only pipelines
-#: whose rows have controls have this block (the pipeline's split block is ``ZS0`` floats
-#: otherwise); it is read and written only while the control fit is on (``CFIT_ON``)
 #: the level-only alternatives at change times found by the data (module docstring, "Labels"):
 #: per direction (up, down) and reference value (``AL_KS``) a CUSUM of the standardized
 #: innovations and the sums ``(n, Sx, Sxx, Sy, Sxy)`` of the current window at its last reset,
@@ -344,6 +351,17 @@ AL_W = 7
 AL_KS = (0.5, 2.0)
 NAL = 2 * len(AL_KS)
 AL_SIZE = NAL * AL_W
+#: the controls' sums (module docstring, "The controls' sums"): a flag (the sums are complete
+#: and the response sums are in units of the current ``c``), the number of controls ``kz``
+#: (at most NCF), the ``c`` the response sums are expressed with, the current row's controls,
+#: then ``sum w z_k`` and ``sum w x z_k`` of the reference R, the current window C and each
+#: checkpoint, the centred ``sum (x - xbar)(z_k - zbar_k)`` of the level-free part L, and
+#: ``sum w z_k``, ``sum w x z_k`` of each aligned candidate (``ZS_AL``). Appended after the
+#: sums of x^3, x^4, so that a state of the previous layout restores by padding zeros (flag 0:
+#: the response sums keep the control fit's ``c`` as it was when each row came, as before,
+#: until every sum is next dropped by a slope alarm). Only pipelines whose rows have controls
+#: have this block (the pipeline's split block is ``ZS0`` floats otherwise); it is read and
+#: written only while the control fit is on (``CFIT_ON``)
 ZS0 = AL0 + AL_SIZE
 ZS_ON = ZS0
 ZS_K = ZS0 + 1
@@ -354,7 +372,13 @@ ZS_CW = ZS_R + 2 * NCF
 ZS_SLOT = ZS_CW + 2 * NCF
 ZS_W = 2 * NCF
 ZS_L = ZS_SLOT + ZS_W * NSLOT
-ZS_SIZE = ZS_L + NCF - ZS0
+#: the aligned candidates' controls' sums, ``ZS_W`` floats each. Appended at the end of the
+#: block, so that a state of the layout before (with controls: ``AL_ZS_SIZE`` floats fewer)
+#: restores by padding zeros; the restore clears the candidates' flags (their sums are not
+#: in the current ``c``), and each comes in when its CUSUM next resets
+ZS_AL = ZS_L + NCF
+AL_ZS_SIZE = ZS_W * NAL
+ZS_SIZE = ZS_AL + AL_ZS_SIZE - ZS0
 SPLIT_SIZE = ZS0 + ZS_SIZE
 
 # ---------------------------------------------------------------- parameters
@@ -448,8 +472,8 @@ REPORT_SIZE = 11
 
 def state_size() -> int:
     """Floats of one series' split-GLR state: 33 + 6 x NSLOT + 1 + (NCF + 3)(NCF + 4) / 2 + 3 +
-    2 x NHX + 7 x NAL + 2 + 2 NCF + 2 NCF (NSLOT + 2) + NCF (366 with 11 checkpoints, 6
-    controls, 7 checkpoints with sums of x^3, x^4 and 4 aligned level candidates; 176 of them
+    2 x NHX + 7 x NAL + 2 + 2 NCF + 2 NCF (NSLOT + 2 + NAL) + NCF (414 with 11 checkpoints, 6
+    controls, 7 checkpoints with sums of x^3, x^4 and 4 aligned level candidates; 224 of them
     the controls' sums, which a pipeline whose rows have no controls leaves out: 190)."""
     return SPLIT_SIZE
 
@@ -673,19 +697,10 @@ def _candidate(st, at, j, s2, kap, rs, rl, minw_s, unit, weighted):
 
 
 @njit(cache=True, inline="always")
-def _candidate_o(st, at, o, j, s2, kap, rs, rl, minw_s, unit, weighted):
-    """``(G_s, G_l, n_A, n_B, G_l0, G_p)`` of checkpoint ``j`` (-1 where undefined; ``G_l`` is
-    computed from one row on each side of the change time, the caller decides which may
-    alarm; ``G_l0`` and ``G_p`` compare a level-only with a slope-only change for the label,
-    see :func:`_level_vs_pivot`). ``unit``: the weight of a typical row (:func:`row_unit`),
-    ``weighted``: working weights in use, ``minw_s``: fewest total weight after the change
-    time for a slope statistic; ``o``: offset of the candidate's sums ``(n, Sx, Sxx, Sy,
-    Sxy)`` (a checkpoint's, or an aligned candidate's with ``j = NHX``: no sums of x^3, x^4)."""
-    na = st[at + C0] - st[o]
-    gs = -1.0
-    gl = -1.0
-    if na < 1.0 * unit or not (s2 > 0.0):
-        return gs, gl, na, 0.0, 0.0, 0.0
+def _samples(st, at, o, na):
+    """The after sample ``C - (sums at o)`` (of weight ``na``) and the before sample ``R + (sums
+    at o)`` with the level-free part L: ``(mx_A, my_A, Sxx_A, Sxy_A, n_B, mx_B, my_B, Sxx_B,
+    Sxy_B)``, centred sums (L's added to B's)."""
     mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
                                   st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
     nb = st[at + R0] + st[o]
@@ -693,6 +708,60 @@ def _candidate_o(st, at, o, j, s2, kap, rs, rl, minw_s, unit, weighted):
                                   st[at + R0 + 3] + st[o + 3], st[at + R0 + 4] + st[o + 4])
     cxb += st[at + L0 + 1]
     cyb += st[at + L0 + 2]
+    return mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb
+
+
+@njit(cache=True, inline="always")
+def _level_g(st, at, na, mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb, ra, rb, s2, kap, rs, rl,
+             unit, weighted):
+    """``G_l`` of a candidate from its samples (:func:`_samples`; ``ra``, ``rb`` their rows,
+    B's with L), -1 where undefined; ``n_B >= unit`` is the caller's."""
+    tiny = 1e-12
+    cx = cxa + cxb
+    dx = mxa - mxb
+    bw = (cya + cyb) / cx if cx > tiny else 0.0
+    if cx > tiny or dx == 0.0:
+        v = (_lrf(rl, ra) * _var_at(st, at, s2, mxa, weighted) / na
+             + _lrf(rl, nb / unit) * _var_at(st, at, s2, mxb, weighted) / nb
+             + (s2 * kap * _lrf(rs, ra + rb) * dx * dx / cx if cx > tiny else 0.0))
+        d = mya - myb - bw * dx
+        return 0.5 * d * d / v
+    return -1.0
+
+
+@njit(cache=True, inline="always")
+def _level_o(st, at, o, s2, kap, rs, rl, unit, weighted):
+    """``G_l`` of :func:`_candidate_o` alone, the same arithmetic (the aligned candidates use
+    only it): -1 where undefined. Written for speed, it measured no faster (the compiler
+    already dropped the unused outputs of the inlined :func:`_candidate_o`: pipeline, 1,000
+    series x 2,000 rows, 1.30-1.36 / 1.82-1.86 CPU s per million rows without / with a
+    control either way); kept because it says what the aligned candidates compute."""
+    na = st[at + C0] - st[o]
+    if na < 1.0 * unit or not (s2 > 0.0):
+        return -1.0
+    mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb = _samples(st, at, o, na)
+    if not (nb >= 1.0 * unit):
+        return -1.0
+    return _level_g(st, at, na, mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb, na / unit,
+                    (nb + st[at + L0]) / unit, s2, kap, rs, rl, unit, weighted)
+
+
+@njit(cache=True, inline="always")
+def _candidate_o(st, at, o, j, s2, kap, rs, rl, minw_s, unit, weighted):
+    """``(G_s, G_l, n_A, n_B, G_l0, G_p)`` of checkpoint ``j`` (-1 where undefined; ``G_l`` is
+    computed from one row on each side of the change time, the caller decides which may
+    alarm; ``G_l0`` and ``G_p`` compare a level-only with a slope-only change for the label,
+    see :func:`_level_vs_pivot`). ``unit``: the weight of a typical row (:func:`row_unit`),
+    ``weighted``: working weights in use, ``minw_s``: fewest total weight after the change
+    time for a slope statistic; ``o``: offset of the candidate's sums ``(n, Sx, Sxx, Sy,
+    Sxy)`` (a checkpoint's, or an aligned candidate's with ``j = NHX``: no sums of x^3, x^4;
+    the aligned candidates use :func:`_level_o`, its ``G_l`` alone)."""
+    na = st[at + C0] - st[o]
+    gs = -1.0
+    gl = -1.0
+    if na < 1.0 * unit or not (s2 > 0.0):
+        return gs, gl, na, 0.0, 0.0, 0.0
+    mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb = _samples(st, at, o, na)
     nbs = nb + st[at + L0]
     tiny = 1e-12
     ra = na / unit
@@ -709,16 +778,10 @@ def _candidate_o(st, at, o, j, s2, kap, rs, rl, minw_s, unit, weighted):
     gl0 = 0.0
     gp = 0.0
     if nb >= 1.0 * unit:
-        cx = cxa + cxb
-        dx = mxa - mxb
-        bw = (cya + cyb) / cx if cx > tiny else 0.0
-        if cx > tiny or dx == 0.0:
-            v = (_lrf(rl, ra) * _var_at(st, at, s2, mxa, weighted) / na
-                 + _lrf(rl, nb / unit) * _var_at(st, at, s2, mxb, weighted) / nb
-                 + (s2 * kap * _lrf(rs, ra + rb) * dx * dx / cx if cx > tiny else 0.0))
-            d = mya - myb - bw * dx
-            gl = 0.5 * d * d / v
-        gl0, gp = _level_vs_pivot(na, nb, dx, mya - myb, cxa, cya, cxb, cyb, s2 * _lrf(rl, ra))
+        gl = _level_g(st, at, na, mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb, ra, rb, s2, kap,
+                      rs, rl, unit, weighted)
+        gl0, gp = _level_vs_pivot(na, nb, mxa - mxb, mya - myb, cxa, cya, cxb, cyb,
+                                  s2 * _lrf(rl, ra))
     return gs, gl, na, nb, gl0, gp
 
 
@@ -784,6 +847,12 @@ def _zs_slot(at, j):
 
 
 @njit(cache=True, inline="always")
+def _al_zs(at, d):
+    """Offset of aligned candidate ``d``'s controls' sums (``sum w z``, then ``sum w x z``)."""
+    return at + ZS_AL + ZS_W * d
+
+
+@njit(cache=True, inline="always")
 def _zs_copy(st, dst, src, kz):
     for k in range(kz):
         st[dst + k] = st[src + k]
@@ -813,10 +882,10 @@ def _zs_zero(st, dst):
 
 @njit(cache=True, inline="always")
 def zs_express(st, at, c, c0):
-    """Re-express every response sum (R, C, the checkpoints and L) with the control
-    coefficients ``c[c0:c0 + kz]`` instead of the ones they hold (``ZS_C``): the sums of ``y* =
-    y - c' z`` are linear in ``c``, so ``Sy* -= dc' Sz`` and ``Sxy* -= dc' Sxz`` with ``dc`` the
-    change of ``c``. A no-op while the sums are off."""
+    """Re-express every response sum (R, C, the checkpoints, L and the aligned candidates) with
+    the control coefficients ``c[c0:c0 + kz]`` instead of the ones they hold (``ZS_C``): the
+    sums of ``y* = y - c' z`` are linear in ``c``, so ``Sy* -= dc' Sz`` and ``Sxy* -= dc' Sxz``
+    with ``dc`` the change of ``c``. A no-op while the sums are off."""
     kz = _kz(st, at)
     if kz == 0:
         return
@@ -835,6 +904,11 @@ def zs_express(st, at, c, c0):
             st[o + 3] -= dc * st[q + k]
             st[o + 4] -= dc * st[q + NCF + k]
         st[at + L0 + 2] -= dc * st[at + ZS_L + k]
+        for d in range(NAL):
+            b = at + AL0 + AL_W * d
+            q = _al_zs(at, d)
+            st[b + 5] -= dc * st[q + k]
+            st[b + 6] -= dc * st[q + NCF + k]
 
 
 @njit(cache=True, inline="always")
@@ -861,25 +935,31 @@ def _add_ref(st, at, n, sx, sxx, sy, sxy, cap):
 
 
 @njit(cache=True, inline="always")
-def _al_take(st, at, b):
-    """The aligned candidate at ``b`` resets: CUSUM 0, its sums the current window's."""
+def _al_take(st, at, d):
+    """Aligned candidate ``d`` resets: CUSUM 0, its sums the current window's (with the
+    controls' sums, all ``NCF`` of them, wherever the control fit is on: the window's are
+    kept, or zero, whenever they are read)."""
+    b = at + AL0 + AL_W * d
     st[b] = 0.0
     st[b + 1] = 1.0
     for m in range(5):
         st[b + 2 + m] = st[at + C0 + m]
+    if st[at + CFIT_ON] != 0.0:
+        _zs_copy(st, _al_zs(at, d), at + ZS_CW, NCF)
 
 
 @njit(cache=True, inline="always")
 def _al_reset(st, at):
     """The aligned candidates restart at the current sums (the window restarted)."""
     for d in range(NAL):
-        _al_take(st, at, at + AL0 + AL_W * d)
+        _al_take(st, at, d)
 
 
 @njit(cache=True, inline="always")
-def _al_rebase(st, at, n, sx, sxx, sy, sxy):
-    """The window start moved by the block ``(n, ...)`` (:func:`_rebase`): an aligned candidate
-    after it is re-expressed like the checkpoints, one before it collapses onto the start."""
+def _al_rebase(st, at, n, sx, sxx, sy, sxy, zj, kz):
+    """The window start moved by the block ``(n, ...)`` whose controls' sums are at ``zj``
+    (:func:`_rebase`, before it clears them): an aligned candidate after it is re-expressed
+    like the checkpoints, one before it collapses onto the start."""
     for d in range(NAL):
         b = at + AL0 + AL_W * d
         if st[b + 2] >= n:
@@ -888,9 +968,13 @@ def _al_rebase(st, at, n, sx, sxx, sy, sxy):
             st[b + 4] -= sxx
             st[b + 5] -= sy
             st[b + 6] -= sxy
+            if kz > 0:
+                _zs_axpy(st, _al_zs(at, d), zj, -1.0, kz)
         else:
             for m in range(5):
                 st[b + 2 + m] = 0.0
+            if kz > 0:
+                _zs_zero(st, _al_zs(at, d))
 
 
 @njit(cache=True, inline="always")
@@ -905,24 +989,20 @@ def _al_step(st, at, e, s2):
         b = at + AL0 + AL_W * d
         c = st[b] + (z if d % 2 == 0 else -z) - AL_KS[d // 2]
         if c <= 0.0 or not (s2 > 0.0):
-            _al_take(st, at, b)
+            _al_take(st, at, d)
         else:
             st[b] = c
 
 
 @njit(cache=True, inline="always")
 def _al_level(st, at, s2, kap, rs, rl, unit, weighted):
-    """The largest level statistic ``G_l`` of the aligned candidates (0 where none is set, or
-    while the controls' sums are kept: the aligned sums are not re-expressed with ``c``)."""
+    """The largest level statistic ``G_l`` of the aligned candidates (0 where none is set)."""
     g = 0.0
-    if _kz(st, at) > 0:
-        return g
     for d in range(NAL):
         b = at + AL0 + AL_W * d
         if st[b + 1] == 0.0:
             continue
-        _, gl, _, _, _, _ = _candidate_o(st, at, b + 2, NHX, s2, kap, rs, rl, 0.0, unit,
-                                         weighted)
+        gl = _level_o(st, at, b + 2, s2, kap, rs, rl, unit, weighted)
         if gl > g:
             g = gl
     return g
@@ -936,15 +1016,16 @@ def _rebase(st, at, j):
     o = at + SLOT0 + SLOT_W * j
     n, sx, sxx, sy, sxy = st[o], st[o + 1], st[o + 2], st[o + 3], st[o + 4]
     ts = st[o + 5]
+    kz = _kz(st, at)
+    zj = _zs_slot(at, j)
+    _al_rebase(st, at, n, sx, sxx, sy, sxy, zj, kz)
     # the sums of x^3, x^4 are not re-expressed (only differences are read): later slots
     # (empty after this) take checkpoint j's, which is what they now stand for
     if j < NHX:
         for i in range(j + 1, NHX):
             st[at + HX_SLOT + 2 * i] = st[at + HX_SLOT + 2 * j]
             st[at + HX_SLOT + 2 * i + 1] = st[at + HX_SLOT + 2 * j + 1]
-    kz = _kz(st, at)
     if kz > 0:                      # the controls' sums are re-expressed the same way
-        zj = _zs_slot(at, j)
         for i in range(NSLOT):
             if i < j:
                 _zs_axpy(st, _zs_slot(at, i), zj, -1.0, kz)
@@ -971,7 +1052,6 @@ def _rebase(st, at, j):
     st[at + C0 + 2] -= sxx
     st[at + C0 + 3] -= sy
     st[at + C0 + 4] -= sxy
-    _al_rebase(st, at, n, sx, sxx, sy, sxy)
     return n, sx, sxx, sy, sxy
 
 

@@ -282,11 +282,28 @@ class Pipeline:
         until a slope alarm drops every sum. Without controls the layout has no such block and
         rows of the previous layout resume as they are. Rows of every layout before the
         split detector's aligned level candidates (``AL_SIZE`` floats, 5 December 2026) get
-        them as zeros with their flags off: each comes in when its CUSUM next resets.
+        them as zeros with their flags off: each comes in when its CUSUM next resets. Where the
+        rows have controls, rows of the layouts before the aligned candidates' controls' sums
+        (``AL_ZS_SIZE`` floats fewer at the end of the controls' sums, 5 December 2026) get them
+        as zeros and the candidates' flags off (their response sums are not in the fit's
+        current ``c``): each comes in when its CUSUM next resets.
         Any other length raises :class:`~monitor.errors.ConfigError`."""
         vec = np.asarray(vec, dtype=np.float64)
         if vec.shape == (self.state_size,):
             return vec
+        if self.split and vec.ndim == 1 and self._split_zs() and vec.size in (
+                self.state_size - SG.AL_ZS_SIZE, self.state_size - SG.AL_ZS_SIZE - SG.AL_SIZE):
+            # the layouts before the aligned candidates' controls' sums (with or without the
+            # candidates): the sums are padded at the end of the controls' sums, the candidates
+            # are unset until their CUSUMs next reset (split_glr, "The controls' sums")
+            split = int(self._layout[L_SPLIT])
+            at = split + SG.ZS0 + SG.ZS_SIZE - SG.AL_ZS_SIZE
+            if vec.size != self.state_size - SG.AL_ZS_SIZE:
+                at -= SG.AL_SIZE
+            vec = np.concatenate([vec[:at], np.zeros(SG.AL_ZS_SIZE), vec[at:]])
+            if vec.size == self.state_size:
+                vec[split + SG.AL0 + 1:split + SG.AL0 + SG.AL_SIZE:SG.AL_W] = 0.0
+                return vec
         if self.split and vec.ndim == 1 and vec.size < self.state_size:
             # the layouts before the split detector's aligned level candidates (``AL_SIZE``
             # floats, 5 December 2026): upgraded to that layout, then the candidates come in
