@@ -81,17 +81,25 @@ def update_section(text: str, group: str, section: str) -> str:
 SUPERSEDED = "Re-measured since in partial runs (their sections below; rows removed here): "
 
 
-def drop_superseded(text: str, group: str, rows: list[Row]) -> str:
-    """``text`` with ``rows``' lines (table rows, missed-target and ratio lines) taken out of
-    the full run's part (before the first partial section), and ``group`` named under its
-    "## Figures": a partial run replaces a group's figures, so the full run's older ones must
-    not stand beside them."""
+def drop_superseded(text: str, group: str, rows: list[Row], sections: list[str] = ()) -> str:
+    """``text`` with ``rows``' lines (table rows, missed-target and ratio lines) and the whole
+    tables the group added (``sections``: the full run's "## " section of the same title, up
+    to the next "## " heading) taken out of the full run's part (before the first partial
+    section), and ``group`` named under its "## Figures": a partial run replaces a group's
+    figures, so the full run's older ones must not stand beside them."""
     cut = text.find("<!-- partial run:")
     head, tail = (text, "") if cut < 0 else (text[:cut], text[cut:])
     names = {r.figure for r in rows}
     starts = tuple(p for n in names for p in (f"| **{n}** |", f"| &nbsp;&nbsp;↳ {n} |",
                                                f"- **{n}**:", f"- {n}:"))
-    lines = [ln for ln in head.split("\n") if not ln.startswith(starts)]
+    titles = {sec.lstrip().split("\n", 1)[0].strip() for sec in sections}
+    titles = {t for t in titles if t.startswith("## ")}
+    lines, skip = [], False
+    for ln in head.split("\n"):
+        if ln.startswith("## "):
+            skip = ln.strip() in titles
+        if not skip and not ln.startswith(starts):
+            lines.append(ln)
     if "## Figures" in lines:
         i = lines.index("## Figures")
         if i + 2 < len(lines) and lines[i + 2].startswith(SUPERSEDED):
@@ -170,7 +178,7 @@ def main(argv: list[str] | None = None) -> int:
             got = [r for r in rows if r.group == g]
             text = update_section(text, g, partial_section(g, got, info, elapsed,
                                                            group_sections.get(g, [])))
-            text = drop_superseded(text, g, got)
+            text = drop_superseded(text, g, got, group_sections.get(g, []))
         target.write_text(text)
         print(f"\nupdated {target} (groups {', '.join(groups)})")
     elif out is not None:

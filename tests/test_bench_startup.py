@@ -104,6 +104,15 @@ def test_partial_update_takes_its_rows_out_of_the_full_run():
     assert f"{SUPERSEDED}`g`." in head
     again = drop_superseded(out, "h", [])
     assert f"{SUPERSEDED}`g`, `h`." in again and again.count(SUPERSEDED) == 1
+    # the whole tables a group added (the detection grid's section) leave the full run's part
+    # too, up to the next section; the partial part keeps its copy
+    full = ("# results\n\n## Figures\n\n| **x** | 1 |\n\n## Grid of g\n\nold cells\n\n"
+            "### sub\n\nold sub\n\n## Missed targets\n\n- **x**: 1\n\n"
+            "<!-- partial run: g -->\n## Grid of g\n\nnew cells\n<!-- end of partial run: g -->\n")
+    out = drop_superseded(full, "g", [Row("x", 2.0, "x", [2.0])], ["## Grid of g\n\nnew cells"])
+    head, tail = out.split("<!-- partial run: g -->")
+    assert "old cells" not in head and "old sub" not in head and "## Grid of g" not in head
+    assert "## Missed targets" in head and "new cells" in tail
 
 
 def test_partial_section_keeps_the_whole_tables_its_group_added():
