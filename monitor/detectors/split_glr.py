@@ -1337,13 +1337,7 @@ def split_report(st, at, slope, n_obs, out, p):
     o = at + SLOT0 + SLOT_W * j
     s2, kap, rs, rl = _scales(st, at)
     na = st[at + C0] - st[o]
-    mxa, mya, cxa, cya = _moments(na, st[at + C0 + 1] - st[o + 1], st[at + C0 + 2] - st[o + 2],
-                                  st[at + C0 + 3] - st[o + 3], st[at + C0 + 4] - st[o + 4])
-    nb = st[at + R0] + st[o]
-    mxb, myb, cxb, cyb = _moments(nb, st[at + R0 + 1] + st[o + 1], st[at + R0 + 2] + st[o + 2],
-                                  st[at + R0 + 3] + st[o + 3], st[at + R0 + 4] + st[o + 4])
-    cxb += st[at + L0 + 1]
-    cyb += st[at + L0 + 2]
+    mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb = _samples(st, at, o, na)
     out[RP_TS] = st[o + 5]
     out[RP_NA] = _nrows(na, unit)
     nbs = nb + st[at + L0]
