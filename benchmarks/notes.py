@@ -88,16 +88,15 @@ CAUSES = {
     # and a helper's runs; the known-time oracle is in every slope cell of the section below)
     "detection: median delay / information bound, step prices": (
         "under held prices the statistic moves in jumps at price steps: the known-time oracle "
-        "beside it (true change time, no label to earn) is itself at 1.6x the bound in this "
-        "cell. With the intercept held a level_shift opens first (a median 10 rows after the "
-        "change, at the first price step); after it one price step is explained as well by a "
-        "second level shift there as by a change of b, so the elasticity_change waits for the "
-        "3rd-5th price step of the new regime (64% of series). Tried and not kept: a slope "
-        "threshold 25% lower (the held-price in-control cells then at 0.84 of their budget) "
-        "left it at 3.15x; no label margin gave 2.77x but doubled elasticity_change in control "
-        "under held prices and raised it after level shifts to 2.3x the budget; keeping the "
-        "level alarm's after sample with its level gave no gain (a second level_shift at once "
-        "in 27% of series)"),
+        "beside it (true change time, no label to earn) is itself at 1.6x the bound for a "
+        "change of 0.8. With the intercept held a level_shift opens first (a median 10 rows "
+        "after the change, at the first price step); until 5 December 14:00 the slope chart "
+        "then compared only the rows after the alarm, where one price step is explained as "
+        "well by a second level shift there as by a change of b (3.15x); a strong level alarm "
+        "now keeps the new regime's rows for the slope test (2.77x). Tried and not kept: a "
+        "slope threshold 25% lower (the held-price in-control cells then at 0.84 of their "
+        "budget) left it at 3.15x; no label margin gave 2.77x but doubled elasticity_change in "
+        "control under held prices and raised it after level shifts to 2.3x the budget"),
     "detection: share of changes of b detected within 5x": (
         "the known-time oracle beside it finds 97-100% in every cell. Traced: at ARL0 2,000 "
         "with small changes most late series had an in-control elasticity_change shortly "

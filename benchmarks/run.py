@@ -90,6 +90,7 @@ def drop_superseded(text: str, group: str, rows: list[Row], sections: list[str] 
     cut = text.find("<!-- partial run:")
     head, tail = (text, "") if cut < 0 else (text[:cut], text[cut:])
     names = {r.figure for r in rows}
+    names |= {n.replace("|", "\\|") for n in names}       # as the tables escape a bar
     starts = tuple(p for n in names for p in (f"| **{n}** |", f"| &nbsp;&nbsp;↳ {n} |",
                                                f"- **{n}**:", f"- {n}:"))
     titles = {sec.lstrip().split("\n", 1)[0].strip() for sec in sections}

@@ -113,6 +113,10 @@ def test_partial_update_takes_its_rows_out_of_the_full_run():
     head, tail = out.split("<!-- partial run: g -->")
     assert "old cells" not in head and "old sub" not in head and "## Grid of g" not in head
     assert "## Missed targets" in head and "new cells" in tail
+    # a figure whose name holds a bar is escaped in the table (the change-time row was left)
+    full = "## Figures\n\n| **err \\|a\\| / b** | 1 |\n| **other** | 2 |\n"
+    out = drop_superseded(full, "g", [Row("err |a| / b", 1.0, "x", [1.0])])
+    assert "err" not in out and "| **other** | 2 |" in out
 
 
 def test_partial_section_keeps_the_whole_tables_its_group_added():
