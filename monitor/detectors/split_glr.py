@@ -1078,6 +1078,19 @@ def _rebase(st, at, j):
 
 
 @njit(cache=True, inline="always")
+def _take_out(st, q, zq, n, sx, sxx, sy, sxy, zd, kz):
+    """The sums at ``q`` (their controls' sums at ``zq``) less the block ``(n, ...)`` whose
+    controls' sums are at ``zd``."""
+    st[q] -= n
+    st[q + 1] -= sx
+    st[q + 2] -= sxx
+    st[q + 3] -= sy
+    st[q + 4] -= sxy
+    if kz > 0:
+        _zs_axpy(st, zq, zd, -1.0, kz)
+
+
+@njit(cache=True, inline="always")
 def _rebase_al(st, at, d):
     """Make aligned candidate ``d``'s change time the window start (a strong level alarm's
     re-anchoring, :func:`reanchor_level`; the caller has retired the sums before it): later
@@ -1108,16 +1121,7 @@ def _rebase_al(st, at, d):
     for i in range(NSLOT):
         q = at + SLOT0 + SLOT_W * i
         if i < jo:
-            st[q] -= n
-            st[q + 1] -= sx
-            st[q + 2] -= sxx
-            st[q + 3] -= sy
-            st[q + 4] -= sxy
-            if kz > 0:
-                zq = _zs_slot(at, i)
-                for k in range(kz):
-                    st[zq + k] -= st[zd + k]
-                    st[zq + NCF + k] -= st[zd + NCF + k]
+            _take_out(st, q, _zs_slot(at, i), n, sx, sxx, sy, sxy, zd, kz)
         else:
             for m in range(5):
                 st[q + m] = 0.0
@@ -1127,28 +1131,12 @@ def _rebase_al(st, at, d):
             if i < NHX and i != jo:
                 st[at + HX_SLOT + 2 * i] = st[at + HX_SLOT + 2 * jo]
                 st[at + HX_SLOT + 2 * i + 1] = st[at + HX_SLOT + 2 * jo + 1]
-    st[at + C0] -= n
-    st[at + C0 + 1] -= sx
-    st[at + C0 + 2] -= sxx
-    st[at + C0 + 3] -= sy
-    st[at + C0 + 4] -= sxy
-    for k in range(kz):
-        st[at + ZS_CW + k] -= st[zd + k]
-        st[at + ZS_CW + NCF + k] -= st[zd + NCF + k]
+    _take_out(st, at + C0, at + ZS_CW, n, sx, sxx, sy, sxy, zd, kz)
     for d3 in range(NAL):
         d2 = (d + 1 + d3) % NAL
         b2 = at + AL0 + AL_W * d2
         if st[b2 + 2] >= n:
-            st[b2 + 2] -= n
-            st[b2 + 3] -= sx
-            st[b2 + 4] -= sxx
-            st[b2 + 5] -= sy
-            st[b2 + 6] -= sxy
-            if kz > 0:
-                q = _al_zs(at, d2)
-                for k in range(kz):
-                    st[q + k] -= st[zd + k]
-                    st[q + NCF + k] -= st[zd + NCF + k]
+            _take_out(st, b2 + 2, _al_zs(at, d2), n, sx, sxx, sy, sxy, zd, kz)
         else:
             for m in range(5):
                 st[b2 + 2 + m] = 0.0
