@@ -119,8 +119,8 @@ def test_load_demo_finds_its_changes_with_the_designed_false_alerts(tmp_path_fac
     # over seeds 1-10 (13:00 UTC 5 Dec 2026, with the aligned level candidates for series
     # with controls; at 05:00 1 / 3 / 5 / 3 / 0, 2.1, and 1.7 over seeds 11-30; 5 / 5 / 8 /
     # 6 / 4 and means 5.6 and 4.6 before the detector kept its controls' sums: the response
-    # sums then held the
-    # control fit's c as it was when each row came; 16-20 before it fitted the controls)
+    # sums then held the control fit's c as it was when each row came; 16-20 before it
+    # fitted the controls)
     mu, bound = DESIGN["load"]
     assert len(false) <= bound, (mu, false)
 
