@@ -978,20 +978,16 @@ def _al_reset(st, at):
 
 
 @njit(cache=True, inline="always")
-def _al_rebase(st, at, n, sx, sxx, sy, sxy, zj, kz):
+def _al_rebase(st, at, n, sx, sxx, sy, sxy, zj, kz, last):
     """The window start moved by the block ``(n, ...)`` whose controls' sums are at ``zj``
-    (:func:`_rebase`, before it clears them): an aligned candidate after it is re-expressed
-    like the checkpoints, one before it collapses onto the start."""
-    for d in range(NAL):
+    (:func:`_rebase`, before it clears them; :func:`_rebase_al`, whose block is candidate
+    ``last``'s own, so that one goes last: -1 for none): an aligned candidate after it is
+    re-expressed like the checkpoints, one before it collapses onto the start."""
+    for d3 in range(NAL):
+        d = (last + 1 + d3) % NAL
         b = at + AL0 + AL_W * d
         if st[b + 2] >= n:
-            st[b + 2] -= n
-            st[b + 3] -= sx
-            st[b + 4] -= sxx
-            st[b + 5] -= sy
-            st[b + 6] -= sxy
-            if kz > 0:
-                _zs_axpy(st, _al_zs(at, d), zj, -1.0, kz)
+            _take_out(st, b + 2, _al_zs(at, d), n, sx, sxx, sy, sxy, zj, kz)
         else:
             for m in range(5):
                 st[b + 2 + m] = 0.0
@@ -1040,7 +1036,7 @@ def _rebase(st, at, j):
     ts = st[o + 5]
     kz = _kz(st, at)
     zj = _zs_slot(at, j)
-    _al_rebase(st, at, n, sx, sxx, sy, sxy, zj, kz)
+    _al_rebase(st, at, n, sx, sxx, sy, sxy, zj, kz, -1)
     # the sums of x^3, x^4 are not re-expressed (only differences are read): later slots
     # (empty after this) take checkpoint j's, which is what they now stand for
     if j < NHX:
@@ -1132,16 +1128,7 @@ def _rebase_al(st, at, d):
                 st[at + HX_SLOT + 2 * i] = st[at + HX_SLOT + 2 * jo]
                 st[at + HX_SLOT + 2 * i + 1] = st[at + HX_SLOT + 2 * jo + 1]
     _take_out(st, at + C0, at + ZS_CW, n, sx, sxx, sy, sxy, zd, kz)
-    for d3 in range(NAL):
-        d2 = (d + 1 + d3) % NAL
-        b2 = at + AL0 + AL_W * d2
-        if st[b2 + 2] >= n:
-            _take_out(st, b2 + 2, _al_zs(at, d2), n, sx, sxx, sy, sxy, zd, kz)
-        else:
-            for m in range(5):
-                st[b2 + 2 + m] = 0.0
-            if kz > 0:
-                _zs_zero(st, _al_zs(at, d2))
+    _al_rebase(st, at, n, sx, sxx, sy, sxy, zd, kz, d)
 
 
 @njit(cache=True, inline="always")
