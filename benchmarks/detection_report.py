@@ -159,7 +159,9 @@ def section(g: Grid, title: str = "Detection against the information bound (issu
         control_table(g), "",
         "### Pure level shifts: `elasticity_change` per 10,000 observations after the shift", "",
         level_table(g), "",
-        "### A second change (b back by 0.8, 150 observations after the first): median delay", "",
+        "### A second change (b back by 0.8, 150 observations after the first): median delay"
+        + (f" ({g.second[0]['fresh']['n']:,} series per cell)"
+           if g.second and "n" in g.second[0]["fresh"] else ""), "",
         second_table(g), ""])
 
 
