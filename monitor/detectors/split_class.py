@@ -88,7 +88,7 @@ class SplitGLR:
         self.h_level = check_number("h_level", h_level, 0.0, 1e6, low_open=True)
         self._p = S.params(self.h_slope, self.h_level, ref_cap=self.ref_cap,
                            min_rows=self.min_rows, lam_scale=self.lam_scale,
-                           se_start=self.se_start)
+                           se_start=self.se_start, margin_slope=S.slope_margin(self.arl0))
         self._state = np.zeros(S.SPLIT_SIZE)
         self._rep = np.empty(S.REPORT_SIZE)
         self._work = np.empty(SC.SCRATCH)

@@ -127,9 +127,10 @@ def _run_paths(n_paths, max_len, h_stop, p, lam, tq, est0, rec_t, rec_v, nrec): 
 class _Simulation:
     def __init__(self, n_paths: int, max_len: int, seed: int, ref_cap: float,
                  min_rows: float, lam_scale: float, se_start: float, forgetting: float,
-                 h_stop: float = math.inf):
+                 h_stop: float = math.inf, margin_slope: float = S.MARGIN):
         p = S.params(math.inf, math.inf, ref_cap=ref_cap, min_rows=min_rows,
-                     lam_scale=lam_scale, se_start=se_start)
+                     lam_scale=lam_scale, se_start=se_start, margin_slope=margin_slope)
+        self.margin_slope = margin_slope
         p[S.Q_HOTS] = p[S.Q_HOTL] = HOT  # the scale freezes at about half the thresholds
         self.n, self.max_len = n_paths, max_len
         self.rec_t = np.zeros((2, n_paths, MAX_RECORDS), np.int64)
@@ -155,8 +156,8 @@ class _Simulation:
         return s / self.n
 
     def solve(self, chart: int, arl0: float) -> float:
-        # both statistics are 0 or above about the likelihood margin (split_glr: labels)
-        lo = S.MARGIN
+        # both statistics are 0 or above about their likelihood margin (split_glr: labels)
+        lo = self.margin_slope if chart == 0 else S.MARGIN
         grid = np.linspace(lo, 25.0, 2401)
         a = self.arl(chart, grid)
         if a[-1] < arl0 or arl0 > self.max_len / 4:
@@ -171,8 +172,10 @@ class _Simulation:
 
 
 @lru_cache(maxsize=16)
-def _simulation(n_paths, max_len, seed, ref_cap, min_rows, lam_scale, se_start, forgetting):
-    return _Simulation(n_paths, max_len, seed, ref_cap, min_rows, lam_scale, se_start, forgetting)
+def _simulation(n_paths, max_len, seed, ref_cap, min_rows, lam_scale, se_start, forgetting,
+                margin_slope=S.MARGIN):
+    return _Simulation(n_paths, max_len, seed, ref_cap, min_rows, lam_scale, se_start, forgetting,
+                       margin_slope=margin_slope)
 
 
 def _key(ref_cap, min_rows, lam_scale, se_start, forgetting) -> tuple:
@@ -206,7 +209,7 @@ def split_thresholds(arl0: float, *, ref_cap: float = S.DEFAULT_REF_CAP,
             return SplitThresholds(hs, hl, arl0, int(PRECOMPUTED[arls[0]][2]), "precomputed")
     n_paths = int(check_number("n_paths", n_paths, 20, 1e6, integer=True))
     max_len = int(min(max(8 * arl0, 2000), 2_000_000))
-    sim = _simulation(n_paths, max_len, int(seed), *key[:5])
+    sim = _simulation(n_paths, max_len, int(seed), *key[:5], S.slope_margin(arl0))
     return SplitThresholds(sim.solve(0, arl0), sim.solve(1, arl0), arl0, n_paths, "simulation")
 
 
@@ -229,11 +232,25 @@ def expected_delay(h: float, info: float) -> float:
     return DELAY_FACTOR * h / info
 
 
-def _precompute(n_paths: int = 500) -> dict:  # pragma: no cover - offline generator
-    sim = _Simulation(n_paths, 600_000, 12345, S.DEFAULT_REF_CAP, S.DEFAULT_MIN_ROWS,
-                      S.DEFAULT_LAM_SCALE, S.DEFAULT_SE_START, 0.99, h_stop=11.5)
-    return {a: (round(sim.solve(0, a), 4), round(sim.solve(1, a), 4), n_paths)
-            for a in (500.0, 1000.0, 2000.0, 5000.0, 10000.0, 20000.0, 50000.0, 100000.0)}
+#: the ARL0s of the precomputed table
+PRECOMPUTED_ARLS = (500.0, 1000.0, 2000.0, 5000.0, 10000.0, 20000.0, 50000.0, 100000.0)
+
+
+def _precompute(n_paths: int = 500, arls=PRECOMPUTED_ARLS) -> dict:  # pragma: no cover
+    """The table: one simulation with the whole margin serves both charts from ARL0
+    ``MARGIN_ARL0`` up and the level chart everywhere (its statistic does not see the slope
+    alarm's margin); below, the slope chart's margin is smaller (:func:`split_glr.slope_margin`)
+    and each ARL0 has a simulation of its own (same seed, ``40 arl0`` rows per path)."""
+    args = (S.DEFAULT_REF_CAP, S.DEFAULT_MIN_ROWS, S.DEFAULT_LAM_SCALE, S.DEFAULT_SE_START, 0.99)
+    sim = _Simulation(n_paths, 600_000, 12345, *args, h_stop=11.5)
+    out = {}
+    for a in arls:
+        hs = sim.solve(0, a)
+        if S.slope_margin(a) < S.MARGIN:
+            hs = _Simulation(n_paths, int(40 * a), 12345, *args,
+                             margin_slope=S.slope_margin(a)).solve(0, a)
+        out[a] = (round(hs, 4), round(sim.solve(1, a), 4), n_paths)
+    return out
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -196,9 +196,24 @@ MIN_AFTER_LEVEL`` (3) after it.
 
 Labels
 ------
-A slope alarm also needs the slope change to beat, by the likelihood margin ``MARGIN``, every
-level-only change the data allow, including those at candidates that may not alarm
-themselves (one or two rows after the change time, or few rows before it). Symmetrically, a
+A slope alarm also needs the slope change to beat, by a likelihood margin, every level-only
+change the data allow, including those at candidates that may not alarm themselves (one or two
+rows after the change time, or few rows before it). The margin is ``MARGIN`` (3.32,
+chi-square(1) 0.99 / 2) at ARL0 20,000 and above and ``MARGIN + ln(arl0 / 20,000)`` below it,
+at least 1 (:func:`slope_margin`; 1.01 at 2,000): a level shift that the slope candidates explain
+as well as the level-only ones wins the slope label by chance with a probability that falls
+about as ``exp(-margin)``, once per shift, while the budget it must keep to (``elasticity_change``
+after a pure level shift no more often than in control) falls as ``1 / arl0``. Measured with the
+whole margin at every ARL0 (pipeline, detection grid cells, seed 12, ARL0 2,000): prices held
+7-28 rows gave ``elasticity_change`` in control at 0.46 of the budget and a change of b of 0.8
+with the intercept held took 2.77 times the information bound; with 1.0 (thresholds as
+designed then) 0.84 and 2.23 times, long flat stretches 0.75 -> 0.89, independent prices 0.88
+-> 1.07, and after +20% / -20% / -50% level shifts under held prices 2.08 / 2.68 / 1.76 -> 4.64 /
+4.72 / 2.88 per 10,000 rows (budget 5); pivot labels unchanged (95-98%). At ARL0 20,000 the
+same 1.0 raised ``elasticity_change`` after +20% / -20% shifts under held prices from 0.36 /
+0.30 to 0.78 / 0.84 (budget 0.5): hence the margin's growth with ``ln(arl0)``. The thresholds
+below ARL0 20,000 are designed with the smaller margin (:mod:`monitor.detectors.split_design`).
+Symmetrically, a
 level alarm needs the level-only change at its change time to beat every *slope-only* change
 (b moves, demand at the before sample's mean price stays: ``z = 1_A (x - xbar_B)``) by the same
 margin (:func:`_level_vs_pivot`; comparing two non-nested one-parameter alternatives by their
@@ -397,8 +412,8 @@ SPLIT_SIZE = ZS0 + ZS_SIZE
 
 # ---------------------------------------------------------------- parameters
 (Q_HS, Q_HL, Q_CAP, Q_MINROWS, Q_LAMS, Q_SESTART, Q_LEVEL_ON, Q_SLOPE_ON, Q_HOTS,
- Q_HOTL, Q_LMARGIN, Q_WEIGHTED, Q_MIN_WEIGHT, Q_MIN_WEIGHT_S) = range(14)
-SPLIT_PARAMS = 14
+ Q_HOTL, Q_LMARGIN, Q_WEIGHTED, Q_MIN_WEIGHT, Q_MIN_WEIGHT_S, Q_SMARGIN) = range(15)
+SPLIT_PARAMS = 15
 DEFAULT_REF_CAP = 2000.0
 DEFAULT_MIN_ROWS = 30.0
 DEFAULT_LAM_SCALE = 0.995
@@ -409,8 +424,14 @@ WINSOR_K = 0.99988
 R_MAX = 0.9
 #: largest row variance over the average that the winsorizing limit follows (:func:`_row_var`)
 ROW_VAR_CAP = 10.0
-#: chi-square(1) 0.99 quantile / 2: the likelihood margin of a slope change over a level-only one
+#: chi-square(1) 0.99 quantile / 2: the likelihood margin of a level-only change over a
+#: slope-only one (a level alarm's label), and of a slope change over every level-only one at
+#: ARL0 20,000 and above (:func:`slope_margin`)
 MARGIN = 3.3174
+#: the ARL0 from which the slope alarm's margin is the whole :data:`MARGIN`
+MARGIN_ARL0 = 20000.0
+#: the slope alarm's smallest margin (:func:`slope_margin`)
+MARGIN_MIN = 1.0
 #: fewest rows after a candidate change time for the slope test: with fewer, a slope rests on
 #: a handful of residuals and heavy tails or price-dependent noise decide it (the smallest
 #: slope change the issue asks about needs far more rows than this anyway)
@@ -500,18 +521,38 @@ def state_size() -> int:
     return SPLIT_SIZE
 
 
+def slope_margin(arl0: float) -> float:
+    """The likelihood margin a slope alarm's change must beat every level-only change by, for
+    false-alarm budget ``arl0``: ``MARGIN + ln(arl0 / MARGIN_ARL0)`` between :data:`MARGIN_MIN`
+    and :data:`MARGIN` (module docstring, "Labels").
+
+    A pure level shift that the slope alarm's candidates explain by a slope wins the label by
+    chance, with probability falling about as ``exp(-margin)`` (the tail of a difference of
+    log-likelihood ratios), once per shift; the budget it has to stay within, the in-control
+    rate ``1 / arl0`` per observation, falls as ``1 / arl0``. So the margin grows with
+    ``ln(arl0)``: 3.32 (chi-square(1) 0.99 / 2) at ARL0 20,000 and above, 1.01 at 2,000, 1.0 below.
+
+    >>> round(slope_margin(2000), 2), round(slope_margin(20000), 4), slope_margin(500)
+    (1.01, 3.3174, 1.0)
+    """
+    return max(MARGIN_MIN, min(MARGIN, MARGIN + math.log(float(arl0) / MARGIN_ARL0)))
+
+
 def params(h_slope: float, h_level: float, *, ref_cap: float = DEFAULT_REF_CAP,
            min_rows: float = DEFAULT_MIN_ROWS, lam_scale: float = DEFAULT_LAM_SCALE,
            se_start: float = DEFAULT_SE_START, level_on: bool = True,
            slope_on: bool = True, level_margin: float = MARGIN,
            weighted: bool = False, min_weight: float | None = None,
-           min_weight_slope: float | None = None) -> np.ndarray:
+           min_weight_slope: float | None = None,
+           margin_slope: float = MARGIN) -> np.ndarray:
     """Parameter vector of :func:`split_step` (thresholds in units of G = log-likelihood
     ratio, i.e. half the chi-square(1) statistic). ``weighted``: rows come with working
     weights (:func:`split_step_w`, the Poisson model; module docstring, "Working weights");
     ``min_weight``: fewest total weight (expected count) after a level candidate's change time
     for it to alarm (default :data:`MIN_COUNT_LEVEL` with weights, 0 without);
-    ``min_weight_slope``: the same for a slope candidate (:data:`MIN_COUNT_SLOPE`). The scale
+    ``min_weight_slope``: the same for a slope candidate (:data:`MIN_COUNT_SLOPE`);
+    ``margin_slope``: the likelihood margin of a slope alarm over every level-only change
+    (:func:`slope_margin` of the ARL0; ``level_margin`` the level alarm's). The scale
     freezes while the slope statistic is above ``h_slope / 2`` or the level statistic above
     :data:`HOT_LEVEL`."""
     p = np.zeros(SPLIT_PARAMS)
@@ -520,6 +561,7 @@ def params(h_slope: float, h_level: float, *, ref_cap: float = DEFAULT_REF_CAP,
     p[Q_LEVEL_ON], p[Q_SLOPE_ON] = float(level_on), float(slope_on)
     p[Q_HOTS], p[Q_HOTL] = 0.5 * h_slope, HOT_LEVEL
     p[Q_LMARGIN] = level_margin
+    p[Q_SMARGIN] = margin_slope
     p[Q_WEIGHTED] = float(weighted)
     p[Q_MIN_WEIGHT] = (MIN_COUNT_LEVEL if weighted else 0.0) if min_weight is None else min_weight
     p[Q_MIN_WEIGHT_S] = ((MIN_COUNT_SLOPE if weighted else 0.0) if min_weight_slope is None
@@ -1363,7 +1405,7 @@ def split_step_w(st, at, x, y, e, wt, n_obs, ts, p):
     # (measured: 53 of 400 series with a -50% shift under step prices, ARL0 2,000).
     # D_GS holds the statistic compared with h_s: G_s where the margin holds, else 0.
     hot = gs_max > p[Q_HOTS] or gl_max > p[Q_HOTL]
-    if gs_max + gl_js - max(gl_max, gl_any) < MARGIN:
+    if gs_max + gl_js - max(gl_max, gl_any) < p[Q_SMARGIN]:
         gs_max = 0.0
     # and a level alarm needs the level-only change at its time to beat every slope-only
     # change (pivoting at the before sample's mean price) by MARGIN (likelihood ratio of two

@@ -190,7 +190,7 @@ class Pipeline:
                                                      t.method)
         # the Poisson model's rows enter with their working weights (split_glr, "Working
         # weights"); the log-log models' with weight 1
-        return SG.params(t.slope, t.level,
+        return SG.params(t.slope, t.level, margin_slope=SG.slope_margin(d.arl0),
                          weighted=getattr(self.estimator, "model", "") == "poisson")
 
     def delay50_obs(self, states: np.ndarray) -> np.ndarray:
