@@ -81,11 +81,14 @@ def test_variance_growing_with_price_keeps_the_slope_design_and_names_the_link(t
     # freeze at half the level threshold, when this check's 0.86 passed 0.75 by its own
     # sampling error; direct replays of the pattern, seed 12, helper of 07:47 UTC), a
     # conservative cell recorded under issue 12. The check must see what the pipeline does:
-    # not above the design, and an interval that holds the pipeline's own rate
-    # (measured 0.68, 95% interval 0.55-0.83, 135 alerts)
+    # not above the design, and an interval that holds the pipeline's own rate. Since the slope
+    # alarm's label margin follows the ARL0 (1.01 at 2,000) and its threshold was redesigned
+    # for it (4.68 -> 4.79), the pipeline's own rate on this pattern is 0.62 (500 series x 2,000
+    # rows, seed 12, 309 alerts; 17:30 UTC on 5 December 2026), and the check says 0.55, 95%
+    # interval 0.45-0.68, 111 alerts (0.68, 0.55-0.83 before)
     assert slope["verdict"] == "holds" and not slope["flagged"], slope["message"]
     assert slope["ratio"] < 1.25 and slope["ratio_lo"] < 1.0, slope["message"]
-    assert slope["ratio_lo"] <= 0.68 <= slope["ratio_hi"], slope["message"]
+    assert slope["ratio_lo"] <= 0.62 <= slope["ratio_hi"], slope["message"]
     assert "design holds" in slope["message"]
     # the level chart stays conservative there (0.12 in the pipeline; 0.20 in the check)
     assert level["verdict"] == "holds" and not level["flagged"] and level["ratio_hi"] < 0.75
@@ -108,14 +111,19 @@ def test_strongly_autocorrelated_errors_keep_the_level_design(tmp_path):
     series x 2,000 observations, seed 12, 458 alerts; 3.28 times, 1,634 alerts, with the old
     freeze on the same series). The check follows: the level kind holds (0.82, 95% interval
     0.70-0.96, 164 alerts; it said "breaks" at 3.1 times before), and the series' health still
-    names the autocorrelation."""
+    names the autocorrelation. Since the slope alarm's label margin follows the ARL0 (5 December
+    2026, 17:30 UTC) the pipeline raises 0.86 times (500 series, seed 12, 427 alerts) and the
+    check says 0.75, 95% interval 0.63-0.89, 150 alerts: the check's interval must hold the
+    pipeline's own rate, and the check must not call the level chart conservative."""
     _log(tmp_path / "ar.csv", errors="ar1", rho=0.9)
     s = calibrate(tmp_path / "ar.csv", tmp_path / "o", config=validate({}), arl0=ARL0,
                   n_steps=BUDGET, progress=False, now_ns=NOW)
     a = s["alert_rates"]
     level, slope = a["kinds"]["level_shift"], a["kinds"]["elasticity_change"]
     assert level["verdict"] == "holds" and not level["flagged"], level["message"]
-    assert 0.75 < level["ratio"] < 1.25, level["message"]
+    assert level["ratio"] < 1.25 and level["ratio_lo"] <= 0.86 <= level["ratio_hi"], \
+        level["message"]
+    assert "conservative" not in level["message"], level["message"]
     assert slope["verdict"] == "holds" and not slope["flagged"], slope["message"]
     assert a["health"]["autocorrelated"] == 6 and a["health"]["median_resid_ac1"] > 0.8
 
