@@ -22,9 +22,8 @@ def run(ctx: Context) -> list[Row]:
     from benchmarks.detection_report import section, target_rows
 
     rows = attempt("estimator + detectors + rules (Pipeline.run)", lambda: detection_speed.run(ctx))
-    sizes = (dict(n_slope=40, n_control=100, n_level=100, n_river=8, n_second=40,
-                       quick=True) if ctx.quick
-             else {})
+    sizes = (dict(n_slope=40, n_control=100, n_level=100, n_river=8, n_second=40, quick=True)
+             if ctx.quick else {})
     grid = measure(log=ctx.log, **sizes)
     ctx.sections = [*getattr(ctx, "sections", []), section(grid)]
     return rows + target_rows(grid)

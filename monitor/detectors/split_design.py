@@ -245,11 +245,10 @@ def _precompute(n_paths: int = 500, arls=PRECOMPUTED_ARLS) -> dict:  # pragma: n
     sim = _Simulation(n_paths, 600_000, 12345, *args, h_stop=11.5)
     out = {}
     for a in arls:
-        hs = sim.solve(0, a)
-        if S.slope_margin(a) < S.MARGIN:
-            hs = _Simulation(n_paths, int(40 * a), 12345, *args,
-                             margin_slope=S.slope_margin(a)).solve(0, a)
-        out[a] = (round(hs, 4), round(sim.solve(1, a), 4), n_paths)
+        m = S.slope_margin(a)
+        own = sim if m == S.MARGIN else _Simulation(n_paths, int(40 * a), 12345, *args,
+                                                     margin_slope=m)
+        out[a] = (round(own.solve(0, a), 4), round(sim.solve(1, a), 4), n_paths)
     return out
 
 
