@@ -122,12 +122,15 @@ def test_pure_level_shift_is_a_level_shift():
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=False, reason="issue 12 open: without re-anchoring the estimator "
-                   "after a level shift the following slope alarm can take over 5x the bound "
-                   "(one of six series at 5.6x, measured)")
 def test_intercept_held_change_gives_both_kinds():
     """b -1.0 -> -1.5 with the intercept held: demand at the typical price moves too, so a
-    level shift is reported at once and the elasticity change follows within 5x the bound."""
+    level shift is reported at once and the elasticity change follows within 5x the bound.
+
+    The streaming class fed by an outside estimator (which it cannot re-anchor after the level
+    alarm, as the pipeline does) is slow here: an expected failure until 5 December 2026 (one
+    of six series at 5.6 bounds); since the slope score's autocorrelation is capped by the
+    prices' times the errors' (18:55 UTC) the six take 4.4 / 3.8 / 2.2 / 0.4 / 0.7 / 4.2
+    bounds (79 rows each)."""
     rng = np.random.default_rng(13)
     bound = information_bound(0.5, 0.15, 0.15, 20000)
     for _ in range(6):
@@ -217,10 +220,10 @@ def _pipeline(arl0=2000.0, **rules):
 
 KNOWN_STEP_RATE = pytest.mark.xfail(
     strict=False, reason="issue 12 open: with prices held 7-28 rows the level chart raises too FEW "
-    "alarms at ARL0 2,000: 62 vs 180 expected (0.34x; the level label must beat a change of b, "
-    "and while the price is held the two are tied); the slope chart's 134 (0.74x) is within "
+    "alarms at ARL0 2,000: 59 vs 180 expected (0.33x; the level label must beat a change of b, "
+    "and while the price is held the two are tied); the slope chart's 129 (0.72x) is within "
     "this test's tolerance since its label margin follows the ARL0 (96 before, 0.53x; measured "
-    "17:00 UTC on 5 December 2026 on this panel)")
+    "18:55 UTC on 5 December 2026 on this panel)")
 
 
 @pytest.mark.slow
@@ -230,8 +233,10 @@ def test_in_control_alarm_rates_hold_the_design(pattern, ar):
     """ARL0 2,000 per chart: alarms per row of each chart (it restarts after each) within
     Monte Carlo error of 1 / 2,000 on independent prices, prices held 7-28 rows and AR(1)
     errors 0.6. Count sd ~ sqrt(count); the design's own sd (500 paths) about 5%. AR(1) 0.6:
-    slope 139, level 150 of 180 expected (0.77x, 0.83x); the slope chart's 112 (0.62x) made it
-    an expected failure until its label margin followed the ARL0 (5 December 2026)."""
+    slope 166, level 147 of 180 expected (0.92x, 0.82x; slope 139 before the slope score's
+    autocorrelation was capped by the prices' times the errors', 18:55 UTC); the slope chart's
+    112 (0.62x) made it an expected failure until its label margin followed the ARL0 (5
+    December 2026)."""
     from monitor.pipeline.kernel import S_LEVEL_FLAGS, S_SLOPE_FLAGS
     n_series, n = 60, 6000
     sid, X, y, ts = _panel(n_series, n, seed=21 + int(10 * ar), pattern=pattern, ar=ar)

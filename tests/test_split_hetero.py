@@ -156,8 +156,9 @@ def test_a_state_of_the_previous_layout_resumes_with_the_variance_sums_off():
     row = res.states[0]
     at = int(pipe._layout[L_SPLIT]) + SG.HX0
     assert row[at] == 1.0                                  # charts started: flag on
-    # (that layout had no aligned level candidates either: they follow the sums of x^3, x^4)
-    up = restores_without_block(pipe, row, at, SG.HX_SIZE + SG.AL_SIZE)
+    # (that layout had no aligned level candidates nor the prices' lag-1 moments either:
+    # they follow the sums of x^3, x^4)
+    up = restores_without_block(pipe, row, at, SG.HX_SIZE + SG.AL_SIZE + SG.PX_SIZE)
     st = up.copy()
     SG.reanchor_slope(st, int(pipe._layout[L_SPLIT]), SG.params(1.0, 1.0))  # restart
     assert st[at] == 1.0

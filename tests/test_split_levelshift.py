@@ -97,7 +97,8 @@ def test_a_state_saved_before_the_aligned_candidates_resumes():
     row = res.states[0]
     at = int(pipe._layout[L_SPLIT]) + SG.AL0
     assert np.any(row[at:at + SG.AL_SIZE] != 0.0)
-    up = restores_without_block(pipe, row, at, SG.AL_SIZE)
+    # (nor the prices' lag-1 moments, which follow them)
+    up = restores_without_block(pipe, row, at, SG.AL_SIZE + SG.PX_SIZE)
     more = pipe.run(sim.sid[300:], sim.X[300:], sim.y[300:], 1, states=up[None, :].copy())
     assert np.all(np.isfinite(more.out[:, 0]))
     flags = more.states[0, at + 1:at + SG.AL_SIZE:SG.AL_W]

@@ -124,8 +124,9 @@ def test_a_state_without_the_controls_sums_resumes_with_them_off_until_a_slope_a
     at = int(pipe._layout[L_SPLIT])
     az = at + SG.ZS0
     assert row[at + SG.CFIT_ON] == 1.0 and row[az] == 1.0 and row[at + SG.ZS_K] == 2.0
-    # the layout before (it had no aligned level candidates either: they sit just before)
-    up = restores_without_block(pipe, row, at + SG.AL0, SG.AL_SIZE + SG.ZS_SIZE)
+    # the layout before (it had no aligned level candidates nor the prices' lag-1 moments
+    # either: they sit just before)
+    up = restores_without_block(pipe, row, at + SG.AL0, SG.AL_SIZE + SG.PX_SIZE + SG.ZS_SIZE)
     # it runs on with the sums off (the response sums keep each row's c, as before) ...
     more = pipe.run(np.zeros(300, np.int64), X[600:], y[600:], 1, states=up[None, :].copy())
     assert np.all(np.isfinite(more.out[:, K.O_BETA]))
@@ -216,14 +217,16 @@ def test_a_state_saved_before_the_aligned_candidates_controls_sums_resumes():
     res = pipe.run(np.zeros(600, np.int64), X[:600], y[:600], 1)
     row = res.states[0]
     at = int(pipe._layout[L_SPLIT])
-    al, zal = at + SG.AL0, at + SG.ZS_AL
+    al, zal, px = at + SG.AL0, at + SG.ZS_AL, at + SG.PX0
     flags = slice(al + 1, al + SG.AL_SIZE, SG.AL_W)
     assert np.all(row[flags] == 1.0) and np.any(row[zal:zal + SG.AL_ZS_SIZE] != 0.0)
-    old = np.concatenate([row[:zal], row[zal + SG.AL_ZS_SIZE:]])
+    # (that layout had no prices' lag-1 moments either)
+    old = np.concatenate([row[:px], row[px + SG.PX_SIZE:zal], row[zal + SG.AL_ZS_SIZE:]])
     up = pipe.checked_state(old)
     assert np.array_equal(pipe.state_from_json(pipe.state_to_json(old)), up, equal_nan=True)
     want = row.copy()
     want[zal:zal + SG.AL_ZS_SIZE] = 0.0
+    want[px:px + SG.PX_SIZE] = 0.0
     want[flags] = 0.0
     assert np.array_equal(up, want, equal_nan=True)
     more = pipe.run(np.zeros(300, np.int64), X[600:], y[600:], 1, states=up[None, :].copy())
@@ -233,7 +236,7 @@ def test_a_state_saved_before_the_aligned_candidates_controls_sums_resumes():
     assert np.any(s2[zal:zal + SG.AL_ZS_SIZE] != 0.0)
     # the layout before the aligned candidates (with the controls' sums of then): both
     # blocks come in as zeros, the rest as it was
-    older = np.concatenate([row[:al], row[al + SG.AL_SIZE:zal], row[zal + SG.AL_ZS_SIZE:]])
+    older = np.concatenate([row[:al], row[px + SG.PX_SIZE:zal], row[zal + SG.AL_ZS_SIZE:]])
     up2 = pipe.checked_state(older)
     want[al:al + SG.AL_SIZE] = 0.0
     assert np.array_equal(up2, want, equal_nan=True)
@@ -251,6 +254,10 @@ def test_a_streaming_detector_saved_before_the_aligned_candidates_controls_sums_
     saved = det.to_state()
     full = np.array(saved["state"], dtype=float)
     assert np.all(full[SG.ZS_AL:] == 0.0)
-    back = SplitGLR.from_state(dict(saved, state=list(full[:SG.ZS_AL])))
-    assert np.array_equal(back._state, full, equal_nan=True)
+    # (nor the prices' lag-1 moments)
+    old = np.concatenate([full[:SG.PX0], full[SG.ZS0:SG.ZS_AL]])
+    back = SplitGLR.from_state(dict(saved, state=list(old)))
+    want = full.copy()
+    want[SG.PX0:SG.ZS0] = 0.0
+    assert np.array_equal(back._state, want, equal_nan=True)
     assert back.update(0.01, 2.0, 0.0, ts=300.0) is not None

@@ -177,24 +177,31 @@ class SplitGLR:
         p = dict(state["params"])
         det = cls(p.pop("arl0"), p.pop("h_slope"), p.pop("h_level"), **p)
         vec = floats_from_json(state["state"])
-        if vec.size in (S.SPLIT_SIZE - S.AL_ZS_SIZE, S.SPLIT_SIZE - S.AL_ZS_SIZE - S.AL_SIZE):
+        # every layout before the moments of the prices' lag-1 autocorrelation (5 December
+        # 2026) is first upgraded to the one just before them (``full`` floats), then they come
+        # in as zeros, flag off (the slope score's autocorrelation is capped by the errors'
+        # alone until they build up)
+        full = S.SPLIT_SIZE - S.PX_SIZE
+        if vec.size in (full - S.AL_ZS_SIZE, full - S.AL_ZS_SIZE - S.AL_SIZE):
             # saved before the aligned candidates' controls' sums (5 December 2026; this class
             # has no controls, the sums are never read): zeros at the end
             vec = np.concatenate([vec, np.zeros(S.AL_ZS_SIZE)])
-        if vec.size in (S.SPLIT_SIZE - S.AL_SIZE, S.SPLIT_SIZE - S.AL_SIZE - S.ZS_SIZE,
-                        S.SPLIT_SIZE - S.AL_SIZE - S.ZS_SIZE - S.HX_SIZE):
+        if vec.size in (full - S.AL_SIZE, full - S.AL_SIZE - S.ZS_SIZE,
+                        full - S.AL_SIZE - S.ZS_SIZE - S.HX_SIZE):
             # saved before the aligned level candidates (5 December 2026): zeros, flags off
             # (each comes in when its CUSUM next resets); they follow the sums of x^3, x^4,
             # which the layout before those ends without (inserted below)
             at = min(S.AL0, vec.size)
             vec = np.concatenate([vec[:at], np.zeros(S.AL_SIZE), vec[at:]])
-        if vec.size == S.SPLIT_SIZE - S.ZS_SIZE - S.HX_SIZE:
+        if vec.size == full - S.ZS_SIZE - S.HX_SIZE:
             # saved before the after sample's sums of x^3, x^4 (5 December 2026): they come in
             # as zeros, flag off, until the window next restarts (split_glr)
             vec = np.concatenate([vec[:S.HX0], np.zeros(S.HX_SIZE), vec[S.HX0:]])
-        if vec.size == S.SPLIT_SIZE - S.ZS_SIZE:
+        if vec.size == full - S.ZS_SIZE:
             # saved before the controls' sums (5 December 2026; this class has no controls):
             # zeros
             vec = np.concatenate([vec, np.zeros(S.ZS_SIZE)])
+        if vec.size == full:
+            vec = np.concatenate([vec[:S.PX0], np.zeros(S.PX_SIZE), vec[S.PX0:]])
         det._state[:] = vec
         return det

@@ -90,6 +90,21 @@ squared centred prices are heavy-tailed and clustered (promotion runs of 20% cut
 retail demo's rye-crackers (iid errors, lag-1 autocorrelation of ``x`` 0.20 from promo runs)
 it read 0.15-0.20 (raised to 0.25 by the one-se margin), shrank the slope statistic by about
 40% and hid a change of b from -1.4 to -2.2 for 113 rows; capped, it is found after 15 rows.
+For prices and errors independent of each other the slope score's lag-1 autocorrelation is
+the product of theirs, ``corr(u_t, u_{t-1}) = rho_x rho_e`` (``E[x_t x_{t-1} e_t e_{t-1}] =
+E[x_t x_{t-1}] E[e_t e_{t-1}]``), so ``r_s`` is capped at ``r_x r_l`` as well, with ``r_x`` the
+prices' own EW lag-1 autocorrelation (the centred price part ``sqrt(w) (x - xbar)``, its own EW
+weight, raised by one se as the scores' are but clipped to 1, not R_MAX: four floats,
+``PX0``). Why: with prices that move freely (``r_x`` near 0) and AR(1) errors, ``r_l`` is large,
+the cap by it stops binding and ``r_s`` kept the noise of its own estimate (true value 0) raised
+by one se, which held the slope chart at 0.58-0.78 of its budget (detection grid, AR(1) 0.3 and
+0.6 errors, ARL0 2,000 and 20,000); setting ``r_s`` to 0 fixed those cells but let prices held
+for weeks with AR(1) 0.6 errors alarm at 10.5x (``r_x`` near 1 there keeps ``r_s`` at ``r_l``).
+Errors whose variance depends on the price break the product (``rho_u = E[w_t w_{t-1}] / E[w^2]
+rho_e`` with ``w = (x - xbar) s(x)``, ``s(x)`` the errors' sd at price ``x``): with independent
+prices ``(E[w])^2 / E[w^2] rho_e``, 0.09 ``rho_e`` at the grid's "variance grows with price"
+pattern (``s = exp(3 (x - xbar))``, price sd 0.15; lognormal moments), where ``r_x`` reads 0, so
+the cap is low by that much where such errors are also autocorrelated (not in the grid).
 
 Working weights (the Poisson model)
 -----------------------------------
@@ -394,7 +409,20 @@ AL_SIZE = NAL * AL_W
 #: until every sum is next dropped by a slope alarm). Only pipelines whose rows have controls
 #: have this block (the pipeline's split block is ``ZS0`` floats otherwise); it is read and
 #: written only while the control fit is on (``CFIT_ON``)
-ZS0 = AL0 + AL_SIZE
+#: the prices' own lag-1 autocorrelation (module docstring, "Scale, autocorrelation and
+#: heteroskedasticity"): a flag (the previous row's price part is set), the EW weight of the
+#: mean below (its own, so that a restored state does not read a mean of few terms as one of
+#: many), the previous row's centred price part ``sqrt(w) (x - xbar)`` and the EW mean of its
+#: lag-1 product. Inserted before the controls' sums, so that a state of the previous layout
+#: restores by inserting zeros (flag 0: the slope score's autocorrelation is capped by the
+#: errors' alone, as before, until the moments build up)
+PX0 = AL0 + AL_SIZE
+PX_ON = PX0
+PX_W = PX0 + 1
+PX_P = PX0 + 2
+PX_1 = PX0 + 3
+PX_SIZE = 4
+ZS0 = PX0 + PX_SIZE
 ZS_ON = ZS0
 ZS_K = ZS0 + 1
 ZS_C = ZS0 + 2
@@ -602,11 +630,19 @@ def _r_upper(r, neff):
     and, through the exponential tail of its maximum, raised the level chart's false alarms to
     about 2x its design with AR(1) errors 0.6 (measured 14:35 UTC, ARL0 2,000). Independent
     errors (r near 0, for which the thresholds were designed) are left almost unchanged."""
+    return min(_r_price(r, neff), R_MAX)
+
+
+@njit(cache=True, inline="always")
+def _r_price(r, neff):
+    """:func:`_r_upper` clipped to [0, 1] instead of [0, R_MAX]: the prices' lag-1
+    autocorrelation, which multiplies the errors' (a price held for weeks has ``r`` near 1, and
+    the slope score then keeps the errors' ``r_l`` whole, as before)."""
     if not (r > 0.0):
         return 0.0
     se = np.sqrt(max(1.0 - r * r, 0.0) / neff)
     w = min(r / (2.0 * se), 1.0) if se > 0.0 else 1.0
-    return min(r + w * se, R_MAX)
+    return min(r + w * se, 1.0)
 
 
 @njit(cache=True, inline="always")
@@ -627,8 +663,15 @@ def _scales(st, at):
         xx = st[at + D_XX]
         if xx > 0.0:
             kap = max(uu / (m2 * xx), 1.0)
-    # the slope score is never more autocorrelated than the errors (module docstring): cap
-    return s2, kap, min(rs, rl), rl
+    # the slope score is never more autocorrelated than the errors, nor (for prices and
+    # errors independent of each other) than the errors times the prices (module docstring)
+    rs = min(rs, rl)
+    wx = st[at + PX_W]
+    if wx > 0.0 and rs > 0.0:
+        xx = st[at + D_XX]
+        if xx > 0.0:
+            rs = min(rs, _r_price(abs(st[at + PX_1]) / xx, max(2.0 * wx - 1.0, 1.0)) * rl)
+    return s2, kap, rs, rl
 
 
 @njit(cache=True, inline="always")
@@ -1288,6 +1331,14 @@ def split_step_w(st, at, x, y, e, wt, n_obs, ts, p):
             st[at + D_HX] += (xc * ec * ec - st[at + D_HX]) * iw
         st[at + D_PE] = ec
         st[at + D_PU] = u
+        # the prices' own lag-1 moment (its own EW weight: PX_W)
+        pc = np.sqrt(wt) * xc
+        if st[at + PX_ON] != 0.0:
+            wx = lam * st[at + PX_W] + 1.0
+            st[at + PX_W] = wx
+            st[at + PX_1] += (pc * st[at + PX_P] - st[at + PX_1]) / wx
+        st[at + PX_P] = pc
+        st[at + PX_ON] = 1.0
     st[at + D_NF] += 1.0
     unit = row_unit(st, at, p)
     cap = p[Q_CAP] * unit

@@ -286,29 +286,50 @@ class Pipeline:
         rows have controls, rows of the layouts before the aligned candidates' controls' sums
         (``AL_ZS_SIZE`` floats fewer at the end of the controls' sums, 5 December 2026) get them
         as zeros and the candidates' flags off (their response sums are not in the fit's
-        current ``c``): each comes in when its CUSUM next resets.
+        current ``c``): each comes in when its CUSUM next resets. Rows of every layout before the
+        split detector's moments of the prices' lag-1 autocorrelation (``PX_SIZE`` floats, 5
+        December 2026) get them as zeros, flag off: the slope score's autocorrelation is capped
+        by the errors' alone until they build up.
         Any other length raises :class:`~monitor.errors.ConfigError`."""
         vec = np.asarray(vec, dtype=np.float64)
         if vec.shape == (self.state_size,):
             return vec
-        if self.split and vec.ndim == 1 and self._split_zs() and vec.size in (
-                self.state_size - SG.AL_ZS_SIZE, self.state_size - SG.AL_ZS_SIZE - SG.AL_SIZE):
+        if self.split and vec.ndim == 1 and vec.size < self.state_size:
+            # every earlier layout lacks the split detector's moments of the prices' lag-1
+            # autocorrelation (``PX_SIZE`` floats, 5 December 2026): upgraded to the layout
+            # just before them, then they come in as zeros, flag off (the slope score's
+            # autocorrelation is capped by the errors' alone until they build up)
+            vec = self._before_px(vec)
+            at = int(self._layout[L_SPLIT]) + SG.PX0
+            return np.concatenate([vec[:at], np.zeros(SG.PX_SIZE), vec[at:]])
+        raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "
+                          f"{self.state_size} (estimator controls or layout changed)")
+
+    def _before_px(self, vec: np.ndarray) -> np.ndarray:
+        """``vec`` (an earlier layout) upgraded to the layout just before the split detector's
+        prices' lag-1 moments (:meth:`checked_state`)."""
+        size = self.state_size - SG.PX_SIZE
+        zs0 = SG.ZS0 - SG.PX_SIZE
+        if self._split_zs() and vec.size in (size - SG.AL_ZS_SIZE,
+                                             size - SG.AL_ZS_SIZE - SG.AL_SIZE):
             # the layouts before the aligned candidates' controls' sums (with or without the
             # candidates): the sums are padded at the end of the controls' sums, the candidates
             # are unset until their CUSUMs next reset (split_glr, "The controls' sums")
             split = int(self._layout[L_SPLIT])
-            at = split + SG.ZS0 + SG.ZS_SIZE - SG.AL_ZS_SIZE
-            if vec.size != self.state_size - SG.AL_ZS_SIZE:
+            at = split + zs0 + SG.ZS_SIZE - SG.AL_ZS_SIZE
+            if vec.size != size - SG.AL_ZS_SIZE:
                 at -= SG.AL_SIZE
             vec = np.concatenate([vec[:at], np.zeros(SG.AL_ZS_SIZE), vec[at:]])
-            if vec.size == self.state_size:
+            if vec.size == size:
                 vec[split + SG.AL0 + 1:split + SG.AL0 + SG.AL_SIZE:SG.AL_W] = 0.0
                 return vec
-        if self.split and vec.ndim == 1 and vec.size < self.state_size:
+        if vec.size == size:
+            return vec
+        if vec.size < size:
             # the layouts before the split detector's aligned level candidates (``AL_SIZE``
             # floats, 5 December 2026): upgraded to that layout, then the candidates come in
             # as zeros, flags off, until their CUSUMs next reset (split_glr)
-            up = self._upgraded(vec, self.state_size - SG.AL_SIZE, SG.ZS0 - SG.AL_SIZE)
+            up = self._upgraded(vec, size - SG.AL_SIZE, zs0 - SG.AL_SIZE)
             at = int(self._layout[L_SPLIT]) + SG.AL0
             return np.concatenate([up[:at], np.zeros(SG.AL_SIZE), up[at:]])
         raise ConfigError(f"checkpoint state has length {vec.size}; this pipeline needs "
