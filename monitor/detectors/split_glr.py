@@ -398,17 +398,6 @@ AL_W = 7
 AL_KS = (0.5, 2.0)
 NAL = 2 * len(AL_KS)
 AL_SIZE = NAL * AL_W
-#: the controls' sums (module docstring, "The controls' sums"): a flag (the sums are complete
-#: and the response sums are in units of the current ``c``), the number of controls ``kz``
-#: (at most NCF), the ``c`` the response sums are expressed with, the current row's controls,
-#: then ``sum w z_k`` and ``sum w x z_k`` of the reference R, the current window C and each
-#: checkpoint, the centred ``sum (x - xbar)(z_k - zbar_k)`` of the level-free part L, and
-#: ``sum w z_k``, ``sum w x z_k`` of each aligned candidate (``ZS_AL``). Appended after the
-#: sums of x^3, x^4, so that a state of the previous layout restores by padding zeros (flag 0:
-#: the response sums keep the control fit's ``c`` as it was when each row came, as before,
-#: until every sum is next dropped by a slope alarm). Only pipelines whose rows have controls
-#: have this block (the pipeline's split block is ``ZS0`` floats otherwise); it is read and
-#: written only while the control fit is on (``CFIT_ON``)
 #: the prices' own lag-1 autocorrelation (module docstring, "Scale, autocorrelation and
 #: heteroskedasticity"): a flag (the previous row's price part is set), the EW weight of the
 #: mean below (its own, so that a restored state does not read a mean of few terms as one of
@@ -422,6 +411,17 @@ PX_W = PX0 + 1
 PX_P = PX0 + 2
 PX_1 = PX0 + 3
 PX_SIZE = 4
+#: the controls' sums (module docstring, "The controls' sums"): a flag (the sums are complete
+#: and the response sums are in units of the current ``c``), the number of controls ``kz``
+#: (at most NCF), the ``c`` the response sums are expressed with, the current row's controls,
+#: then ``sum w z_k`` and ``sum w x z_k`` of the reference R, the current window C and each
+#: checkpoint, the centred ``sum (x - xbar)(z_k - zbar_k)`` of the level-free part L, and
+#: ``sum w z_k``, ``sum w x z_k`` of each aligned candidate (``ZS_AL``). Appended after the
+#: sums of x^3, x^4, so that a state of the previous layout restores by padding zeros (flag 0:
+#: the response sums keep the control fit's ``c`` as it was when each row came, as before,
+#: until every sum is next dropped by a slope alarm). Only pipelines whose rows have controls
+#: have this block (the pipeline's split block is ``ZS0`` floats otherwise); it is read and
+#: written only while the control fit is on (``CFIT_ON``)
 ZS0 = PX0 + PX_SIZE
 ZS_ON = ZS0
 ZS_K = ZS0 + 1
