@@ -656,21 +656,19 @@ def _scales(st, at):
     neff = max(2.0 * st[at + D_W] - 1.0, 1.0)
     rl = _r_upper(st[at + D_E1] / m2, neff)
     uu = st[at + D_UU]
+    xx = st[at + D_XX]
     rs = 0.0
     kap = 1.0
     if uu > 0.0:
         rs = _r_upper(st[at + D_U1] / uu, neff)
-        xx = st[at + D_XX]
         if xx > 0.0:
             kap = max(uu / (m2 * xx), 1.0)
     # the slope score is never more autocorrelated than the errors, nor (for prices and
     # errors independent of each other) than the errors times the prices (module docstring)
     rs = min(rs, rl)
     wx = st[at + PX_W]
-    if wx > 0.0 and rs > 0.0:
-        xx = st[at + D_XX]
-        if xx > 0.0:
-            rs = min(rs, _r_price(abs(st[at + PX_1]) / xx, max(2.0 * wx - 1.0, 1.0)) * rl)
+    if wx > 0.0 and rs > 0.0 and xx > 0.0:
+        rs = min(rs, _r_price(abs(st[at + PX_1]) / xx, max(2.0 * wx - 1.0, 1.0)) * rl)
     return s2, kap, rs, rl
 
 
