@@ -27,7 +27,7 @@ def _sums(x, y):
 def _g_pair(xb, yb, xa, ya, v=1.0):
     mb, ma = _sums(xb, yb), _sums(xa, ya)
     return S._level_vs_pivot(float(len(xa)), float(len(xb)), ma[0] - mb[0], ma[1] - mb[1],
-                             ma[2], ma[3], mb[2], mb[3], v)
+                             ma[2], ma[3], mb[2], mb[3], v, v)
 
 
 def _ols_g(x, y, z):

@@ -245,6 +245,58 @@ slope. Measured at ARL0 2,000 with prices held 7-28 rows (pipeline, 100 series):
 change of 0.3 / 0.5 / 0.8 opened elasticity_change first in 58% / 46% / 35% of series before
 this rule, 94% / 96% / 95% with it.
 
+Where the errors' variance depends on the price the two alternatives are not compared with one
+variance: the pivot's regressor ``x - xbar_B`` is largest at the far prices, where noise that
+grows with the price is largest, so with the average variance its statistic ran high and the
+level label was rarely earned (in control, the grid's "variance grows with price" pattern: mean
+``G_pivot`` of checkpoints 3-6 0.82 against the 0.5 of half a chi-square(1), the level-only
+0.47, with r = 0 and the true innovations, tests/test_split_label_hetero.py; the level chart at
+0.22x its design at ARL0 2,000, 0.32x at 20,000). Each now has the variance its own score has
+given the after sample's prices (:func:`_label_vars`: the heteroskedasticity-robust score
+statistic, White 1980 and Davidson & MacKinnon 1985, with the model's variance function
+``v(x)`` of "Scale, autocorrelation and heteroskedasticity": the mean of ``v`` over A for the
+level, weighted by ``(x_i - xbar_B)^2`` for the pivot; mean ``G_pivot`` 0.46, level-only 0.47
+on the same rows). Both are ``v(x1)`` where A sits at one price ``x1``, so the held-price tie
+stays; where the variance function is off (no significant heteroskedasticity, working weights,
+checkpoints of 128 rows and more, which have no sums of ``x^3``, ``x^4``) the one variance is
+used as before, to the bit. Not so on every path of the design model (homoskedastic): over
+20,000 rows the variance function passes its significance test by chance on some rows, and 24
+of 300 paths (split_design's simulation, seed 1, before the cap of ``r_s``) had a
+different level-chart record; the level threshold solved from those paths moved 5.266 -> 5.254
+at ARL0 2,000 (6.287 -> 6.285 at 5,000; the slope chart's records were the same), within the
+table's Monte Carlo error, and the table was not regenerated. Measured (pipeline, seed 12, with
+the cap of ``r_s`` by the prices' autocorrelation; in control 500 series of 2,000 rows at ARL0
+2,000 and 1,000 at 20,000, per 10,000 rows, ``elasticity_change`` / ``level_shift``, design 5
+and 0.5):
+
+=========================  ==========================  ==========================
+pattern                    ARL0 2,000                  ARL0 20,000
+=========================  ==========================  ==========================
+variance grows with price  3.60 / 1.10 -> 3.60 / 2.02  0.45 / 0.14 -> 0.44 / 0.20
+steps sd0.15               3.54 / 1.21 -> 3.59 / 1.26  0.36 / 0.19 -> 0.36 / 0.18
+indep sd0.1                4.93 / 5.24 -> 4.95 / 5.24  0.51 / 0.42 -> 0.51 / 0.43
+=========================  ==========================  ==========================
+
+(before the price-autocorrelation cap of ``r_s``, the same cells read 1.10 -> 2.01 and 0.16 ->
+0.23 for the level chart under variance-grows, the others within an alert). Step prices at ARL0
+2,000 (200 series, median delay over the bound, ``elasticity_change`` first): pivots of 0.3 /
+0.8 0.97x / 2.35x -> 0.97x / 2.37x (95% / 96% -> 93% / 97%), changes of b with the intercept
+held 1.13x / 2.39x -> 1.13x / 2.27x, within 5 bounds 91.5-94% before and after;
+``elasticity_change`` in the 500 rows after +20% / -20% / -50% level shifts (500 series) 4.32 /
+4.40 / 2.72 -> 4.36 / 4.40 / 2.68. The level chart under price-dependent noise stays below its
+design (0.40x / 0.40x), and the label is still what holds it (ARL0 2,000, 500 series, before
+the cap): without the label rule 10.51 per 10,000 (independent prices 9.64, against 5.44 with
+it), with the rule but the alarm's own ``G_l`` in place of the label's level-only statistic
+4.52 (independent prices 5.51). The alarm's ``G_l`` has the samples' own variances from the
+linear variance function of :func:`_var_at` (clipped to 4 sigma^2), the label's level-only
+statistic the quadratic one over A's prices, so the two differ at the far prices where the
+level alarms of such series come. The same variances for the checkpoints of 128 rows and more
+(A's third and fourth moments the normal's) moved it within Monte Carlo error (2.14 / 0.27
+against 2.01 / 0.23), not kept. Anchoring the label at the alarm's ``G_l`` (the pivot's
+statistic scaled by the same factor, which keeps the tie) gave 3.50 / 0.65 (0.70x / 1.30x):
+above the band at 20,000, so not kept; the level statistic's own variance at far prices is the
+lead to follow.
+
 The candidate change times are the log-spaced checkpoints, so the level-only alternatives the
 slope alarm must beat do not include the change time itself: after a level shift the nearest
 checkpoints either miss some of its rows or mix rows from before it into the after sample,
@@ -888,15 +940,26 @@ def _candidate_o(st, at, o, j, s2, kap, rs, rl, minw_s, unit, weighted):
     if nb >= 1.0 * unit:
         gl = _level_g(st, at, na, mxa, mya, cxa, cya, nb, mxb, myb, cxb, cyb, ra, rb, s2, kap,
                       rs, rl, unit, weighted)
-        gl0, gp = _level_vs_pivot(na, nb, mxa - mxb, mya - myb, cxa, cya, cxb, cyb,
-                                  s2 * _lrf(rl, ra))
+        # the two alternatives' error variances: each the mean of the variance function over
+        # the after sample's prices with its own regressor's squares as weights where the
+        # variance depends on the price (:func:`_label_vars`), else the one average variance
+        v = s2 * _lrf(rl, ra)
+        vp = v
+        wl, wp = _label_vars(st, at, j, na, mxa, cxa, mxa - mxb, s2, weighted)
+        if wl > 0.0:
+            f = _lrf(rl, ra)
+            v = wl * f
+            vp = wp * f
+        gl0, gp = _level_vs_pivot(na, nb, mxa - mxb, mya - myb, cxa, cya, cxb, cyb, v, vp)
     return gs, gl, na, nb, gl0, gp
 
 
 @njit(cache=True, inline="always")
-def _level_vs_pivot(na, nb, dx, dy, cxa, cya, cxb, cyb, v):
+def _level_vs_pivot(na, nb, dx, dy, cxa, cya, cxb, cyb, v, vp):
     """``(G_level, G_pivot)``: the two one-parameter alternatives to "no change" at one
-    candidate time, with the same error variance ``v`` (so they compare as likelihoods).
+    candidate time, with error variances ``v`` (level) and ``vp`` (pivot): the same ``v`` where
+    the errors' variance does not depend on the price (so they compare as likelihoods), else
+    each the variance its own score has given the after sample's prices (:func:`_label_vars`).
 
     Null model: one line ``y = a + b x`` through the before sample B and the after sample A
     (plus the level-free part L, which shares only the slope; its centred sums are in
@@ -913,10 +976,11 @@ def _level_vs_pivot(na, nb, dx, dy, cxa, cya, cxb, cyb, v):
 
     When the after sample sits at one price (``Sxx_A = 0``: a price held since the change)
     the two regressors are proportional on A and ``G_pivot = G_level`` exactly: the data
-    cannot tell a level shift from a slope change there, and neither label is earned."""
+    cannot tell a level shift from a slope change there, and neither label is earned (the two
+    variances of :func:`_label_vars` are then equal too)."""
     n = na + nb
     tiny = 1e-12
-    if n <= 0.0 or not (v > 0.0):
+    if n <= 0.0 or not (v > 0.0) or not (vp > 0.0):
         return 0.0, 0.0
     h = na * nb / n
     S = cxa + cxb + h * dx * dx
@@ -933,8 +997,70 @@ def _level_vs_pivot(na, nb, dx, dy, cxa, cya, cxb, cyb, v):
     zz = Q * cxb / S
     if zz > tiny * max(Q, 1.0):
         zy = ((cya + h * dx * dy) * S - Q * T) / S
-        gp = 0.5 * zy * zy / (v * zz)
+        gp = 0.5 * zy * zy / (vp * zz)
     return gl0, gp
+
+
+@njit(cache=True, inline="always")
+def _label_vars(st, at, j, na, mxa, cxa, dx, s2, weighted):
+    """``(v_level, v_pivot)``: the error variances of :func:`_level_vs_pivot`'s two alternatives
+    at checkpoint ``j`` given the after sample's own prices, or ``(-1, -1)`` where the one
+    average variance applies (working weights, no significant heteroskedasticity, a checkpoint
+    without the sums of ``x^3``, ``x^4``, or sums not complete since the window restarted: the
+    cases of :func:`_after_var`, so those statistics are unchanged to the bit).
+
+    Where the variance depends on the price, ``v(x) = sigma^2 (1 + g1 t + g2 (t^2 - 1))``
+    (:func:`_var_coef`), the score ``z'M e`` of a one-regressor extension ``z`` has variance
+    ``z'M V M z``, not ``v z'M z``, and the heteroskedasticity-robust score statistic is ``G =
+    (z'M y)^2 / (2 z'M V M z)`` (White 1980; the robust LM test of Davidson & MacKinnon 1985,
+    with the model's ``V`` in place of squared residuals, as :func:`_after_var` does). Both
+    regressors are zero before the change time, and ``M z`` is ``z`` on the after sample A up
+    to its projection on the null line, whose share is of order ``n_A / n_B`` (checkpoints
+    ``j < NHX``: at most 127 rows after, a window of hundreds to thousands before); dropping it,
+    ``z'M V M z / z'M z`` is the mean of ``v`` over A with ``z^2`` as weights:
+
+        level (z = 1_A):              v_level = sum_A v(x_i) / n_A
+        pivot (z = 1_A (x - xbar_B)):  v_pivot = sum_A (x_i - xbar_B)^2 v(x_i)
+                                                 / sum_A (x_i - xbar_B)^2
+
+    (checked against the exact ``z'M V M z`` of the rows in tests/test_split_label_hetero.py:
+    the robust statistic was 0.7% larger for 13 rows after, 3.3% for 61, 5% for 125). With
+    ``v`` written around A's mean price ``m`` (:func:`_after_var`) as ``v0 + v1 u + q2 u^2``, ``u
+    = x - m``, and ``d = m - xbar_B`` (``dx``): ``sum_A v = n_A v0 + q2 M2`` and ``sum_A (u +
+    d)^2 v = v0 (M2 + n_A d^2) + v1 (M3 + 2 d M2) + q2 (M4 + 2 d M3 + d^2 M2)``, ``M_k`` A's
+    central moment sums. Where A sits at one price ``x1`` (``M2 = 0``) both are ``v(x1)``: the
+    exact tie of a held price stays. Each is kept within ``[sigma^2 / ROW_VAR_CAP, ROW_VAR_CAP
+    sigma^2]`` (the quadratic is a fit, not a variance: it must stay positive)."""
+    if weighted or j >= NHX or st[at + HX_ON] == 0.0:
+        return -1.0, -1.0
+    g1, g2, sx = _var_coef(st, at)
+    if g1 == 0.0 and g2 == 0.0:
+        return -1.0, -1.0
+    if not (cxa >= 0.0) or not (na > 0.0):
+        return -1.0, -1.0
+    o = at + HX_SLOT + 2 * j
+    s3 = st[at + HX_C] - st[o]
+    s4 = st[at + HX_C + 1] - st[o + 1]
+    m = mxa
+    s2r = cxa + na * m * m
+    m3 = s3 - 3.0 * m * s2r + 2.0 * m * m * m * na
+    m4 = s4 - 4.0 * m * s3 + 6.0 * m * m * s2r - 3.0 * m * m * m * m * na
+    q1 = s2 * g1 / sx
+    q2 = s2 * g2 / (sx * sx)
+    dm = m - st[at + D_MX]
+    v0 = s2 * (1.0 - g2) + q1 * dm + q2 * dm * dm
+    v1 = q1 + 2.0 * q2 * dm
+    lo = s2 / ROW_VAR_CAP
+    hi = s2 * ROW_VAR_CAP
+    vl = min(max(v0 + q2 * cxa / na, lo), hi)
+    d = dx
+    den = cxa + na * d * d
+    vp = vl
+    if den > 0.0:
+        num = (v0 * den + v1 * (m3 + 2.0 * d * cxa)
+               + q2 * (m4 + 2.0 * d * m3 + d * d * cxa))
+        vp = min(max(num / den, lo), hi)
+    return vl, vp
 
 
 # ---------------------------------------------------------------- the controls' sums
