@@ -817,9 +817,23 @@ def _after_var(st, at, j, na, mxa, cxa, s2, weighted):
     sample's central moment sums (from its raw sums of ``x^0..x^4``)."""
     if weighted or j >= NHX or st[at + HX_ON] == 0.0 or not (cxa > 0.0):
         return -1.0
+    on, m3, m4, v0, v1, q2 = _a_var_poly(st, at, j, na, mxa, cxa, s2)
+    if not on:
+        return -1.0
+    return (v0 * cxa + v1 * m3 + q2 * m4) / (cxa * cxa)
+
+
+@njit(cache=True, inline="always")
+def _a_var_poly(st, at, j, na, mxa, cxa, s2):
+    """``(on, M3, M4, v0, v1, q2)``: the after sample A's (since checkpoint ``j < NHX``) third
+    and fourth central moment sums, from the window's and the checkpoint's raw sums of ``x^3``,
+    ``x^4``, and the variance function of :func:`_var_coef` written around A's mean price
+    ``m``: ``v(x) = v0 + v1 (x - m) + q2 (x - m)^2``; ``on`` False where that function is off
+    (no significant heteroskedasticity). Shared by :func:`_after_var` and :func:`_label_vars`;
+    the caller checks the sums are complete (``HX_ON``, ``j < NHX``)."""
     g1, g2, sx = _var_coef(st, at)
     if g1 == 0.0 and g2 == 0.0:
-        return -1.0
+        return False, 0.0, 0.0, 0.0, 0.0, 0.0
     o = at + HX_SLOT + 2 * j
     s3 = st[at + HX_C] - st[o]
     s4 = st[at + HX_C + 1] - st[o + 1]
@@ -833,7 +847,7 @@ def _after_var(st, at, j, na, mxa, cxa, s2, weighted):
     dm = m - st[at + D_MX]
     v0 = s2 * (1.0 - g2) + q1 * dm + q2 * dm * dm
     v1 = q1 + 2.0 * q2 * dm
-    return (v0 * cxa + v1 * m3 + q2 * m4) / (cxa * cxa)
+    return True, m3, m4, v0, v1, q2
 
 
 @njit(cache=True, inline="always")
@@ -1033,23 +1047,11 @@ def _label_vars(st, at, j, na, mxa, cxa, dx, s2, weighted):
     sigma^2]`` (the quadratic is a fit, not a variance: it must stay positive)."""
     if weighted or j >= NHX or st[at + HX_ON] == 0.0:
         return -1.0, -1.0
-    g1, g2, sx = _var_coef(st, at)
-    if g1 == 0.0 and g2 == 0.0:
-        return -1.0, -1.0
     if not (cxa >= 0.0) or not (na > 0.0):
         return -1.0, -1.0
-    o = at + HX_SLOT + 2 * j
-    s3 = st[at + HX_C] - st[o]
-    s4 = st[at + HX_C + 1] - st[o + 1]
-    m = mxa
-    s2r = cxa + na * m * m
-    m3 = s3 - 3.0 * m * s2r + 2.0 * m * m * m * na
-    m4 = s4 - 4.0 * m * s3 + 6.0 * m * m * s2r - 3.0 * m * m * m * m * na
-    q1 = s2 * g1 / sx
-    q2 = s2 * g2 / (sx * sx)
-    dm = m - st[at + D_MX]
-    v0 = s2 * (1.0 - g2) + q1 * dm + q2 * dm * dm
-    v1 = q1 + 2.0 * q2 * dm
+    on, m3, m4, v0, v1, q2 = _a_var_poly(st, at, j, na, mxa, cxa, s2)
+    if not on:
+        return -1.0, -1.0
     lo = s2 / ROW_VAR_CAP
     hi = s2 * ROW_VAR_CAP
     vl = min(max(v0 + q2 * cxa / na, lo), hi)
