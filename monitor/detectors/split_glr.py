@@ -264,7 +264,9 @@ used as before, to the bit. Not so on every path of the design model (homoskedas
 of 300 paths (split_design's simulation, seed 1, before the cap of ``r_s``) had a
 different level-chart record; the level threshold solved from those paths moved 5.266 -> 5.254
 at ARL0 2,000 (6.287 -> 6.285 at 5,000; the slope chart's records were the same), within the
-table's Monte Carlo error, and the table was not regenerated. Measured (pipeline, seed 12, with
+table's Monte Carlo error; the whole table was regenerated after the merge (5 December 2026,
+22:00 UTC: level column -0.04 at ARL0 2,000, within 0.01 from 5,000 to 20,000; split_table.py).
+Measured (pipeline, seed 12, with
 the cap of ``r_s`` by the prices' autocorrelation; in control 500 series of 2,000 rows at ARL0
 2,000 and 1,000 at 20,000, per 10,000 rows, ``elasticity_change`` / ``level_shift``, design 5
 and 0.5):
