@@ -47,16 +47,16 @@ This check asks whether the data at hand keep that promise.
    length drawn from the fitted sieve (:func:`refits`; a parametric bootstrap of the fit), and
    the groups' spread beyond their counts' own is the fit's variance (:func:`fit_variance`, by
    moments as in DerSimonian & Laird 1986, at least 0), added to the interval's half-width in
-   quadrature; the ratio itself is then the mean over the refits, which also smooths the
-   AR order that AIC picks for each series. Measured on six logs of six series x 2,000 observations with AR(1) errors of 0.9
-   (ARL0 2,000, 400,000 resampled observations, seeds 11-16, 5 December 2026; the pipeline's own
-   level rate on the process 0.874, 500 series): with one fit the level ratio ranged 0.59 to
-   1.06 between the logs (mean 0.835) and two of the six intervals missed 0.874; with the
-   refits 0.75 to 1.06 (mean 0.869) and all six held it. With eight groups the fit's variance
-   is itself a rough estimate (a chi-square of 7 degrees of freedom less the counts' part): on
-   independent errors it widens an interval by chance now and then (a larger budget narrows
-   both parts). Every observation
-   of a path counts, its start included, as in replay's ``false_alarms_per_10k``; on short
+   quadrature; the ratio itself is then the mean over the refits, which also smooths the AR
+   order that AIC picks for each series. Measured on six logs of six series x 2,000
+   observations with AR(1) errors of 0.9 (ARL0 2,000, 400,000 resampled observations, seeds
+   11-16, 5 December 2026; the pipeline's own level rate on the process 0.874, 500 series):
+   with one fit the level ratio ranged 0.59 to 1.06 between the logs (mean 0.835) and two of
+   the six intervals missed 0.874; with the refits 0.75 to 1.06 (mean 0.869) and all six held
+   it. With eight groups the fit's variance is itself a rough estimate (a chi-square of 7
+   degrees of freedom less the counts' part): on independent errors it widens an interval by
+   chance now and then (a larger budget narrows both parts). Every observation of a path
+   counts, its start included, as in replay's ``false_alarms_per_10k``; on short
    series (a year of daily data) the rows before the charts start lower the rate a little.
 4. Reference. The same paths with independent normal errors of the series' innovation sd
    (what the design assumes, on the data's own prices): when the data's paths are over the
